@@ -1,0 +1,18 @@
+"""creditsurv: lifetime PD and ECL from loan-month panels with competing risks."""
+
+from .config import Config, config_from_dict, load_config
+from .errors import ConfigError, CreditsurvError, CreditsurvWarning, DataCheckError, DataError
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "Config",
+    "ConfigError",
+    "CreditsurvError",
+    "CreditsurvWarning",
+    "DataCheckError",
+    "DataError",
+    "config_from_dict",
+    "load_config",
+    "__version__",
+]

@@ -1,0 +1,101 @@
+"""The ``creditsurv`` command line: argument parsing and display only.
+
+Exit codes: 0 success; 1 data or data-check errors, model or run errors;
+2 usage or config errors; 3 a reproduced run does not match its record.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import traceback
+from pathlib import Path
+
+from . import __version__
+from .errors import CreditsurvError
+
+
+def _cmd_make_demo_data(args) -> int:
+    from .simulate import write_demo_book
+
+    summary = write_demo_book(args.out_dir, args.loans, args.seed)
+    print(f"wrote a synthetic book of {summary['loans']:,} loans to {args.out_dir}")
+    for name, rows in summary["rows"].items():
+        print(f"  {name}: {rows:,} rows")
+    return 0
+
+
+def _cmd_check(args) -> int:
+    from .pipeline import check_data
+
+    outcome = check_data(args.config, out=args.out)
+    print(outcome.text)
+    return 1 if outcome.failed else 0
+
+
+def _cmd_fit(args) -> int:
+    from .pipeline import fit_model_command
+
+    outcome = fit_model_command(args.config, out_dir=args.out)
+    print(outcome.text)
+    return 0
+
+
+def _cmd_run(args) -> int:
+    from .pipeline import run_command
+
+    outcome = run_command(args.config, as_of=args.as_of, out=args.out, argv=sys.argv)
+    print(outcome.text)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="creditsurv",
+        description="Lifetime PD and ECL from loan-month panels, with prepayment as a competing risk.",
+    )
+    parser.add_argument("--version", action="version", version=f"creditsurv {__version__}")
+    parser.add_argument("--verbose", action="store_true", help="show tracebacks and more detail")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    p = sub.add_parser("make-demo-data", help="simulate a synthetic loan book (fictional lender)")
+    p.add_argument("out_dir", type=Path, metavar="OUT_DIR")
+    p.add_argument("--loans", type=int, default=20_000, help="number of loans (default 20000)")
+    p.add_argument("--seed", type=int, default=20261202, help="random seed (default 20261202)")
+    p.set_defaults(func=_cmd_make_demo_data)
+
+    p = sub.add_parser("check", help="run the data checks on the config's inputs")
+    p.add_argument("config", type=Path, metavar="CONFIG")
+    p.add_argument("--out", type=Path, default=None, help="also write the check table to this CSV file")
+    p.set_defaults(func=_cmd_check)
+
+    p = sub.add_parser("fit", help="fit the hazard model and write its JSON and coefficient table")
+    p.add_argument("config", type=Path, metavar="CONFIG")
+    p.add_argument("--out", type=Path, default=None, help="folder to write into (must not exist)")
+    p.set_defaults(func=_cmd_fit)
+
+    p = sub.add_parser("run", help="the monthly job: checks, fit, projection, ECL, report")
+    p.add_argument("config", type=Path, metavar="CONFIG")
+    p.add_argument("--as-of", default=None, metavar="YYYY-MM", help="reporting month (overrides the config)")
+    p.add_argument("--out", type=Path, default=None, help="folder that holds run folders")
+    p.set_defaults(func=_cmd_run)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return args.func(args)
+    except CreditsurvError as exc:
+        if args.verbose:
+            traceback.print_exc()
+        print(f"{type(exc).__name__}: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

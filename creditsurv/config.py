@@ -1,0 +1,546 @@
+"""The run configuration: one YAML file, one declared schema, frozen values.
+
+``load_config(path)`` reads the YAML with ``yaml.safe_load`` semantics (plus a
+duplicate-key check), validates every key against the dataclasses below,
+resolves file paths against the config file's folder and fills the documented
+defaults. Every problem is reported in one ``ConfigError`` whose lines name the
+key path (``model.covariates[2].transform``), what is wrong, and the closest
+valid choice.
+
+The dataclasses are the schema: each field's type says how its value is read
+and its metadata says what it means (``doc``) and which bounds apply.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Literal
+
+import yaml
+
+from ._months import format_month
+from ._schema import FilePath, Month, build, describe
+from .errors import ConfigError
+
+__all__ = [
+    "Config",
+    "load_config",
+    "config_from_dict",
+    "config_to_dict",
+    "config_sha256",
+    "schema_reference",
+]
+
+
+def _doc(text: str, **more) -> dict:
+    return {"doc": text, **more}
+
+
+def _unique(values) -> str | None:
+    seen, dupes = set(), []
+    for v in values:
+        if v in seen:
+            dupes.append(v)
+        seen.add(v)
+    return f"repeated entries: {', '.join(map(str, dupes))}" if dupes else None
+
+
+def _increasing(values) -> str | None:
+    if any(b <= a for a, b in zip(values, values[1:])):
+        return f"must be strictly increasing, got {list(values)}"
+    return None
+
+
+# --------------------------------------------------------------------------- inputs
+
+InputFormat = Literal["auto", "parquet", "csv", "duckdb"]
+
+
+@dataclass(frozen=True)
+class PanelColumns:
+    """Source column for each internal panel column (internal name: source name)."""
+
+    loan_id: str = field(default="loan_id", metadata=_doc("loan identifier"))
+    month: str = field(default="month", metadata=_doc("calendar month (date or YYYY-MM text)"))
+    age: str = field(default="age", metadata=_doc("months since origination; 1 in the month after"))
+    balance: str = field(default="balance", metadata=_doc("outstanding balance at month end"))
+    days_past_due: str = field(default="days_past_due", metadata=_doc("days past due at month end"))
+    status: str | None = field(default=None, metadata=_doc("optional status code column"))
+
+
+@dataclass(frozen=True)
+class LoanColumns:
+    """Source column for each internal loan-table column."""
+
+    loan_id: str = field(default="loan_id", metadata=_doc("loan identifier"))
+    origination_month: str = field(default="origination_month", metadata=_doc("month of origination"))
+    original_balance: str = field(default="original_balance", metadata=_doc("balance at origination"))
+    note_rate: str = field(default="note_rate", metadata=_doc("annual note rate, the effective interest rate"))
+    term: str = field(default="term", metadata=_doc("contractual term in months"))
+    property_value: str | None = field(default=None, metadata=_doc("collateral value at origination"))
+
+
+@dataclass(frozen=True)
+class MacroColumns:
+    """Source column of the macro history's month; every other column is a series."""
+
+    month: str = field(default="month", metadata=_doc("calendar month (date or YYYY-MM text)"))
+
+
+def _source_check(obj) -> list[str]:
+    problems = []
+    fmt = obj.format
+    if fmt == "auto":
+        suffix = obj.path.suffix.lower()
+        fmt = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv", ".duckdb": "duckdb", ".db": "duckdb"}.get(suffix)
+        if fmt is None:
+            problems.append(
+                f"path: cannot tell the format of {obj.path.name!r} from its suffix; "
+                "set format to parquet, csv or duckdb"
+            )
+    if fmt == "duckdb" and not obj.table:
+        problems.append("table: required when the source is a DuckDB database file")
+    if fmt not in (None, "duckdb") and obj.table:
+        problems.append("table: only used with a DuckDB database file; remove it")
+    return problems
+
+
+@dataclass(frozen=True)
+class PanelSource:
+    """The loan-month performance panel."""
+
+    path: FilePath = field(metadata=_doc("Parquet or CSV file (glob allowed), or a DuckDB database file"))
+    format: InputFormat = field(default="auto", metadata=_doc("file format; auto reads the suffix"))
+    table: str | None = field(default=None, metadata=_doc("table name inside a DuckDB database file"))
+    columns: PanelColumns = field(default_factory=PanelColumns, metadata=_doc("column mapping"))
+
+    _validate = _source_check
+
+
+@dataclass(frozen=True)
+class LoanSource:
+    """The loan table: one row per loan with static facts."""
+
+    path: FilePath = field(metadata=_doc("Parquet or CSV file, or a DuckDB database file"))
+    format: InputFormat = field(default="auto", metadata=_doc("file format; auto reads the suffix"))
+    table: str | None = field(default=None, metadata=_doc("table name inside a DuckDB database file"))
+    columns: LoanColumns = field(default_factory=LoanColumns, metadata=_doc("column mapping"))
+    rate_unit: Literal["percent", "decimal"] = field(
+        default="percent", metadata=_doc("unit of the note rate: 4.25 (percent) or 0.0425 (decimal)")
+    )
+
+    _validate = _source_check
+
+
+@dataclass(frozen=True)
+class MacroSource:
+    """Macro-economic history: one row per month, one column per series."""
+
+    path: FilePath = field(metadata=_doc("Parquet or CSV file, or a DuckDB database file"))
+    format: InputFormat = field(default="auto", metadata=_doc("file format; auto reads the suffix"))
+    table: str | None = field(default=None, metadata=_doc("table name inside a DuckDB database file"))
+    columns: MacroColumns = field(default_factory=MacroColumns, metadata=_doc("column mapping"))
+
+    _validate = _source_check
+
+
+@dataclass(frozen=True)
+class Inputs:
+    panel: PanelSource = field(metadata=_doc("loan-month panel"))
+    loans: LoanSource = field(metadata=_doc("loan table"))
+    macro: MacroSource | None = field(default=None, metadata=_doc("macro history"))
+
+
+# --------------------------------------------------------------------------- events
+
+
+@dataclass(frozen=True)
+class DefaultDefinition:
+    """When a loan is in default: days past due at or above a threshold, or a status code."""
+
+    days_past_due: int | None = field(default=90, metadata=_doc("threshold in days past due", min=1))
+    status_codes: tuple[str, ...] = field(default=(), metadata=_doc("status codes that mean default"))
+
+    def _validate(self) -> list[str]:
+        if self.days_past_due is None and not self.status_codes:
+            return ["give days_past_due, status_codes, or both"]
+        return []
+
+
+@dataclass(frozen=True)
+class Events:
+    """How closures are read from the panel."""
+
+    paid_off_balance: float = field(
+        default=0.005, metadata=_doc("balance at or below which a loan counts as paid off", min=0.0)
+    )
+
+
+@dataclass(frozen=True)
+class Window:
+    start: Month = field(metadata=_doc("first calendar month, YYYY-MM"))
+    end: Month = field(metadata=_doc("last calendar month, YYYY-MM"))
+
+    def _validate(self) -> list[str]:
+        if self.end < self.start:
+            return [f"end {self.end} is before start {self.start}"]
+        return []
+
+
+@dataclass(frozen=True)
+class Windows:
+    development: Window = field(metadata=_doc("months whose loan-months the model is fitted on"))
+    out_of_time: Window | None = field(default=None, metadata=_doc("months held out for the backtest"))
+
+
+# --------------------------------------------------------------------------- model
+
+
+@dataclass(frozen=True)
+class Baseline:
+    """The loan-age baseline of each cause's hazard."""
+
+    kind: Literal["age_bands", "spline", "age_indicators", "none"] = field(
+        default="age_bands", metadata=_doc("piecewise constant, natural cubic spline, one indicator per age, or none")
+    )
+    edges: tuple[int, ...] = field(
+        default=(3, 6, 12, 24, 36, 48, 60, 84, 120),
+        metadata=_doc("age_bands: ages where a new band starts", min=1, check=_increasing),
+    )
+    knots: tuple[float, ...] = field(
+        default=(6.0, 18.0, 36.0, 60.0, 120.0),
+        metadata=_doc("spline: knots in months of age (first and last are boundary knots)", gt=0, check=_increasing),
+    )
+    max_age: int | None = field(
+        default=None, metadata=_doc("age_indicators: ages above this share the last indicator", min=1)
+    )
+
+
+@dataclass(frozen=True)
+class Covariate:
+    """One term of the design: a column or macro series, transformed."""
+
+    name: str = field(metadata=_doc("name of the term in the model"))
+    column: str | None = field(default=None, metadata=_doc("panel, loan-table or derived column"))
+    macro: str | None = field(default=None, metadata=_doc("macro series, joined by calendar month"))
+    lag: int = field(default=0, metadata=_doc("macro lag in months", min=0))
+    kind: Literal["numeric", "categorical", "bins"] = field(default="numeric", metadata=_doc("how the value enters"))
+    transform: Literal["none", "log", "standardise"] = field(default="none", metadata=_doc("numeric transform"))
+    floor: float | None = field(default=None, metadata=_doc("values below are raised to this (before transform)"))
+    cap: float | None = field(default=None, metadata=_doc("values above are lowered to this (before transform)"))
+    bins: tuple[float, ...] = field(default=(), metadata=_doc("bins: inner cut points", check=_increasing))
+    reference: str | None = field(default=None, metadata=_doc("categorical or bins: reference level"))
+
+    def _validate(self) -> list[str]:
+        problems = []
+        if (self.column is None) == (self.macro is None):
+            problems.append(f"covariate {self.name!r}: give exactly one of column or macro")
+        if self.lag and self.macro is None:
+            problems.append(f"covariate {self.name!r}: lag applies to macro series only")
+        if self.kind == "bins" and not self.bins:
+            problems.append(f"covariate {self.name!r}: kind bins needs bins: [cut points]")
+        if self.kind != "bins" and self.bins:
+            problems.append(f"covariate {self.name!r}: bins given but kind is {self.kind}; set kind: bins")
+        if self.kind == "categorical" and self.transform != "none":
+            problems.append(f"covariate {self.name!r}: a categorical covariate takes no transform")
+        if self.kind == "numeric" and self.reference is not None:
+            problems.append(f"covariate {self.name!r}: reference applies to categorical or bins")
+        if self.floor is not None and self.cap is not None and self.cap < self.floor:
+            problems.append(f"covariate {self.name!r}: cap {self.cap} is below floor {self.floor}")
+        return problems
+
+
+@dataclass(frozen=True)
+class FitSettings:
+    batch_size: int = field(default=250_000, metadata=_doc("loan-months per batch read from DuckDB", min=1))
+    max_iter: int = field(default=50, metadata=_doc("Newton iterations at most", min=1))
+    tol: float = field(default=1e-8, metadata=_doc("convergence tolerance on the Newton step", gt=0))
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """Discrete-time competing-risk hazard model of default and prepayment."""
+
+    kind: Literal["multinomial", "cause_specific"] = field(
+        default="multinomial", metadata=_doc("joint multinomial logit, or one binary logit per cause")
+    )
+    baseline: Baseline = field(default_factory=Baseline, metadata=_doc("loan-age baseline"))
+    covariates: tuple[Covariate, ...] = field(default=(), metadata=_doc("terms of the design"))
+    interactions: tuple[tuple[str, ...], ...] = field(default=(), metadata=_doc("pairs of term names to multiply"))
+    ridge: float = field(default=0.0, metadata=_doc("ridge penalty on non-intercept coefficients", min=0.0))
+    fit: FitSettings = field(default_factory=FitSettings, metadata=_doc("numerical settings"))
+    path: FilePath | None = field(
+        default=None, metadata=_doc("use this saved model JSON instead of fitting")
+    )
+
+    def _validate(self) -> list[str]:
+        names = [c.name for c in self.covariates]
+        problems = [f"covariates: {t}" for t in [_unique(names)] if t]
+        for i, pair in enumerate(self.interactions):
+            if len(pair) != 2:
+                problems.append(f"interactions[{i}]: give two term names, got {list(pair)}")
+            for name in pair:
+                if name not in names:
+                    problems.append(f"interactions[{i}]: {name!r} is not a covariate name")
+        return problems
+
+
+@dataclass(frozen=True)
+class Collateral:
+    """How derived covariates are built: current LTV and the rate incentive."""
+
+    region_column: str | None = field(default="region", metadata=_doc("loan-table column naming the region"))
+    hpi_series: str | None = field(
+        default="hpi_{region}", metadata=_doc("macro series of the house-price index; {region} is lower-cased")
+    )
+    market_rate_series: str | None = field(default="mortgage_rate", metadata=_doc("macro series of the market rate"))
+
+
+# --------------------------------------------------------------------------- scenarios and loss
+
+
+@dataclass(frozen=True)
+class Scenario:
+    name: str = field(metadata=_doc("scenario name"))
+    weight: float = field(metadata=_doc("probability weight", min=0.0, max=1.0))
+    path: FilePath = field(metadata=_doc("CSV or Parquet of monthly macro paths"))
+
+
+@dataclass(frozen=True)
+class ScenarioExtension:
+    """How a scenario path is extended beyond its last month."""
+
+    rule: Literal["revert_to_mean", "hold_last"] = field(default="revert_to_mean", metadata=_doc("extension rule"))
+    months: int = field(default=24, metadata=_doc("revert_to_mean: months to reach the long-run value", min=1))
+    long_run: dict[str, float] = field(
+        default_factory=dict, metadata=_doc("long-run value per series; default the history's mean")
+    )
+
+
+@dataclass(frozen=True)
+class Lgd:
+    kind: Literal["constant", "collateral"] = field(default="collateral", metadata=_doc("LGD method"))
+    constant: float = field(default=0.25, metadata=_doc("constant LGD", min=0.0, max=1.0))
+    by_segment: dict[str, float] = field(default_factory=dict, metadata=_doc("constant LGD per segment"))
+    forced_sale_haircut: float = field(default=0.25, metadata=_doc("collateral: discount on a forced sale", min=0.0, max=1.0))
+    sale_costs: float = field(default=0.06, metadata=_doc("collateral: costs as a share of the property value", min=0.0, max=1.0))
+    months_to_recovery: int = field(default=18, metadata=_doc("collateral: months from default to sale", min=0))
+    floor: float = field(default=0.05, metadata=_doc("minimum LGD", min=0.0, max=1.0))
+
+
+@dataclass(frozen=True)
+class Loss:
+    lgd: Lgd = field(default_factory=Lgd, metadata=_doc("loss given default"))
+    accrued_interest: bool = field(default=False, metadata=_doc("add a month's accrued interest to EAD"))
+    discount: Literal["effective_interest_rate", "none"] = field(
+        default="effective_interest_rate", metadata=_doc("discount rate of expected losses (IFRS 9 B5.5.44)")
+    )
+
+
+@dataclass(frozen=True)
+class Staging:
+    sicr_relative: float = field(default=2.0, metadata=_doc("stage 2 when lifetime PD now / at origination >= this", gt=0.0))
+    sicr_absolute: float = field(default=0.01, metadata=_doc("... and lifetime PD now - at origination >= this", min=0.0))
+    sicr_rule: Literal["both", "either"] = field(default="both", metadata=_doc("combine the two thresholds"))
+    dpd_backstop: int = field(default=30, metadata=_doc("stage 2 at or above these days past due (IFRS 9 5.5.11)", min=1))
+    pd_at_origination_column: str | None = field(
+        default=None, metadata=_doc("loan-table column of lifetime PD at origination; else projected")
+    )
+
+
+@dataclass(frozen=True)
+class Segments:
+    column: str | None = field(default="region", metadata=_doc("loan-table column of the segment"))
+    band_column: str | None = field(default=None, metadata=_doc("column to band into grades, e.g. a score"))
+    band_edges: tuple[float, ...] = field(default=(), metadata=_doc("inner cut points of the bands", check=_increasing))
+
+
+@dataclass(frozen=True)
+class ValidationSettings:
+    bootstrap: int = field(default=200, metadata=_doc("bootstrap resamples for the AUC interval", min=0))
+    pd_groups: int = field(default=10, metadata=_doc("groups for calibration", min=2))
+    psi_bins: int = field(default=10, metadata=_doc("bins for stability indices", min=2))
+    prior_model: FilePath | None = field(default=None, metadata=_doc("a prior model JSON to compare"))
+
+
+@dataclass(frozen=True)
+class Outputs:
+    dir: FilePath | None = field(
+        default=None, metadata=_doc("folder that holds run folders; default reports/ beside the config")
+    )
+    csv_copies: bool = field(default=False, metadata=_doc("also write CSV copies of Parquet tables"))
+    prior_run: FilePath | None = field(default=None, metadata=_doc("previous run folder for the movement"))
+
+
+@dataclass(frozen=True)
+class DuckdbSettings:
+    threads: int | None = field(default=None, metadata=_doc("DuckDB threads; default all cores", min=1))
+    memory_limit: str = field(default="2GB", metadata=_doc("DuckDB memory limit, e.g. 2GB"))
+
+
+@dataclass(frozen=True)
+class Checks:
+    severity: dict[str, Literal["error", "warning", "off"]] = field(
+        default_factory=dict, metadata=_doc("override a data check's severity by its name")
+    )
+
+
+# --------------------------------------------------------------------------- the whole run
+
+
+@dataclass(frozen=True)
+class Config:
+    """A validated run configuration. Build it with :func:`load_config`."""
+
+    as_of: Month = field(metadata=_doc("reporting month, YYYY-MM"))
+    inputs: Inputs = field(metadata=_doc("where the data are and how columns map"))
+    windows: Windows = field(metadata=_doc("development and out-of-time windows"))
+    name: str = field(default="creditsurv", metadata=_doc("a label for the run"))
+    default_definition: DefaultDefinition = field(default_factory=DefaultDefinition, metadata=_doc("default definition"))
+    events: Events = field(default_factory=Events, metadata=_doc("closure rules"))
+    model: ModelSpec = field(default_factory=ModelSpec, metadata=_doc("hazard model"))
+    collateral: Collateral = field(default_factory=Collateral, metadata=_doc("derived covariates"))
+    scenarios: tuple[Scenario, ...] = field(default=(), metadata=_doc("forward macro scenarios"))
+    scenario_extension: ScenarioExtension = field(default_factory=ScenarioExtension, metadata=_doc("beyond a path's end"))
+    loss: Loss = field(default_factory=Loss, metadata=_doc("EAD, LGD and discounting"))
+    staging: Staging = field(default_factory=Staging, metadata=_doc("stage allocation rules"))
+    segments: Segments = field(default_factory=Segments, metadata=_doc("segment and grade definitions"))
+    validation: ValidationSettings = field(default_factory=ValidationSettings, metadata=_doc("validation settings"))
+    outputs: Outputs = field(default_factory=Outputs, metadata=_doc("where runs are written"))
+    duckdb: DuckdbSettings = field(default_factory=DuckdbSettings, metadata=_doc("DuckDB settings"))
+    checks: Checks = field(default_factory=Checks, metadata=_doc("data-check settings"))
+    seed: int = field(default=20240101, metadata=_doc("seed for every random step (bootstrap)", min=0))
+    source: FilePath | None = field(default=None, init=False, compare=False, repr=False)
+
+    def _validate(self) -> list[str]:
+        problems = []
+        dev, oot = self.windows.development, self.windows.out_of_time
+        if dev.end > self.as_of:
+            problems.append(f"windows.development.end: {dev.end} is after as_of {self.as_of}")
+        if oot is not None:
+            if oot.start <= dev.end:
+                problems.append(f"windows.out_of_time.start: {oot.start} must be after development.end {dev.end}")
+            if oot.end > self.as_of:
+                problems.append(f"windows.out_of_time.end: {oot.end} is after as_of {self.as_of}")
+        if self.scenarios:
+            text = _unique([s.name for s in self.scenarios])
+            if text:
+                problems.append(f"scenarios: {text}")
+            if "weighted" in {s.name for s in self.scenarios}:
+                problems.append("scenarios: the name 'weighted' is reserved for the probability-weighted result")
+            total = sum(s.weight for s in self.scenarios)
+            if abs(total - 1.0) > 1e-9:
+                weights = ", ".join(f"{s.name}={s.weight:g}" for s in self.scenarios)
+                problems.append(f"scenarios: weights must sum to 1, got {total:.10g} ({weights})")
+        return problems
+
+
+# --------------------------------------------------------------------------- loading
+
+
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """``yaml.SafeLoader`` that rejects a key repeated in one mapping."""
+
+
+def _construct_mapping(loader, node, deep=False):
+    seen = {}
+    for key_node, _ in node.value:
+        key = loader.construct_object(key_node, deep=deep)
+        if key in seen:
+            raise yaml.constructor.ConstructorError(
+                "while reading a mapping",
+                node.start_mark,
+                f"found the key {key!r} twice (first on line {seen[key] + 1})",
+                key_node.start_mark,
+            )
+        seen[key] = key_node.start_mark.line
+    return loader.construct_mapping(node, deep=deep)
+
+
+_UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
+
+
+def _read_yaml(path: Path) -> dict:
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"{path}: config file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{path}: cannot read the config file ({exc})") from None
+    try:
+        data = yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - SafeLoader subclass
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark or exc.context_mark
+        where = f"line {mark.line + 1}, column {mark.column + 1}" if mark else "unknown position"
+        what = " ".join(t for t in (exc.context, exc.problem) if t)
+        raise ConfigError(f"{path}: YAML syntax error at {where}: {what}") from None
+    except yaml.YAMLError as exc:
+        raise ConfigError(f"{path}: YAML syntax error: {exc}") from None
+    if data is None:
+        raise ConfigError(f"{path}: the config file is empty")
+    if not isinstance(data, dict):
+        raise ConfigError(f"{path}: the config must be a mapping of keys, got {type(data).__name__}")
+    return data
+
+
+def config_from_dict(data: dict, base_dir: str | Path = ".", *, source: str | Path | None = None) -> Config:
+    """Validate ``data`` (parsed YAML) and return a frozen :class:`Config`.
+
+    Relative paths resolve against ``base_dir``. Raises ``ConfigError`` listing
+    every problem found.
+    """
+    cfg, problems = build(Config, data, Path(base_dir).resolve())
+    if problems:
+        label = str(source) if source else "config"
+        lines = "\n".join(f"  - {p}" for p in problems)
+        n = len(problems)
+        raise ConfigError(f"{label}: {n} problem{'s' if n > 1 else ''} in the config:\n{lines}", problems)
+    if source is not None:
+        object.__setattr__(cfg, "source", FilePath(Path(source).resolve()))
+    return cfg
+
+
+def load_config(path: str | Path) -> Config:
+    """Read, validate and resolve the YAML config at ``path``."""
+    path = Path(path)
+    data = _read_yaml(path)
+    return config_from_dict(data, path.resolve().parent, source=path)
+
+
+def _plain(value):
+    if dataclasses.is_dataclass(value):
+        return {f.name: _plain(getattr(value, f.name)) for f in dataclasses.fields(value) if f.init}
+    if isinstance(value, Month):
+        return format_month(value)
+    if isinstance(value, Path):
+        return str(value)
+    if isinstance(value, tuple):
+        return [_plain(v) for v in value]
+    if isinstance(value, dict):
+        return {k: _plain(v) for k, v in value.items()}
+    return value
+
+
+def config_to_dict(cfg: Config) -> dict:
+    """The resolved config as plain data (absolute paths, months as YYYY-MM)."""
+    return _plain(cfg)
+
+
+def config_sha256(cfg: Config) -> str:
+    """SHA-256 of the resolved config's canonical JSON."""
+    text = json.dumps(config_to_dict(cfg), sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def schema_reference() -> str:
+    """A Markdown table of every config key, its type, default and meaning."""
+    rows = ["| key | type | default | meaning |", "| --- | --- | --- | --- |"]
+    for path, tp, default, doc in describe(Config):
+        if path == "source":
+            continue
+        rows.append(f"| `{path}` | {tp} | {default} | {doc} |")
+    return "\n".join(rows)

@@ -1,0 +1,119 @@
+"""Errors and warnings raised by creditsurv.
+
+One root class, one subclass per stage::
+
+    CreditsurvError
+    ├── ConfigError          (ValueError)  the YAML config is malformed or invalid
+    ├── DataError            (ValueError)  an input file or column cannot be used
+    │   └── DataCheckError                  data checks of severity "error" failed
+    ├── SimulationError      (ValueError)  bad arguments to the synthetic book
+    ├── FeatureError         (ValueError)  the feature spec cannot be evaluated
+    ├── ModelError                          the hazard fit failed
+    │   ├── ConvergenceError                Newton did not converge
+    │   ├── SeparationError                 a covariate or level has no events of a cause
+    │   └── SingularDesignError             collinear design columns
+    ├── ProjectionError      (ValueError)  scenarios or loans cannot be projected
+    └── RunError                            the run folder or its record is unusable
+        └── ReproduceMismatch               a reproduced run differs from its record
+
+    CreditsurvWarning (UserWarning)
+    ├── ConvergenceWarning
+    ├── FewEventsWarning
+    └── DataCheckWarning
+
+The command line catches ``CreditsurvError`` and prints ``ClassName: message``.
+"""
+
+from __future__ import annotations
+
+
+class CreditsurvError(Exception):
+    """Root of every error raised on purpose by creditsurv."""
+
+    exit_code = 2
+
+
+class ConfigError(CreditsurvError, ValueError):
+    """The YAML config is malformed or fails validation.
+
+    ``problems`` holds every problem found in one pass, each already prefixed
+    with its key path (``model.covariates[2].transform``).
+    """
+
+    exit_code = 2
+
+    def __init__(self, message: str, problems: list[str] | None = None):
+        super().__init__(message)
+        self.problems = list(problems or [message])
+
+
+class DataError(CreditsurvError, ValueError):
+    """An input file, table or column cannot be used as configured."""
+
+    exit_code = 1
+
+
+class DataCheckError(DataError):
+    """At least one data check of severity ``error`` failed."""
+
+    exit_code = 1
+
+
+class SimulationError(CreditsurvError, ValueError):
+    """Bad arguments to the synthetic-book simulator."""
+
+
+class FeatureError(CreditsurvError, ValueError):
+    """The feature spec cannot be evaluated on the given data."""
+
+
+class ModelError(CreditsurvError):
+    """The hazard model cannot be fitted or loaded."""
+
+    exit_code = 1
+
+
+class ConvergenceError(ModelError):
+    """Newton iterations did not converge."""
+
+
+class SeparationError(ModelError):
+    """Quasi-complete separation: a covariate or level has no events of a cause."""
+
+
+class SingularDesignError(ModelError):
+    """The design matrix is rank deficient (collinear columns)."""
+
+
+class ProjectionError(CreditsurvError, ValueError):
+    """Scenarios or loans cannot be projected."""
+
+    exit_code = 1
+
+
+class RunError(CreditsurvError):
+    """A run folder or its manifest is missing, incomplete or inconsistent."""
+
+    exit_code = 1
+
+
+class ReproduceMismatch(RunError):
+    """A reproduced run does not match the outputs recorded in its manifest."""
+
+    exit_code = 3
+
+
+class CreditsurvWarning(UserWarning):
+    """Root of creditsurv's warnings (non-fatal numerical or data trouble)."""
+
+
+class ConvergenceWarning(CreditsurvWarning):
+    """A fit stopped at its iteration limit or converged slowly."""
+
+
+class FewEventsWarning(CreditsurvWarning):
+    """Too few events of a cause for the number of parameters."""
+
+
+class DataCheckWarning(CreditsurvWarning):
+    """A data check of severity ``warning`` fired."""
