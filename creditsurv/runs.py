@@ -1,0 +1,160 @@
+"""Run folders and their manifest.
+
+A run is built in a hidden temporary folder beside its final place and renamed
+into place only when every output is written; ``manifest.json`` is written
+last. An existing run folder is never overwritten, and a failed or interrupted
+run leaves no folder that looks complete (the temporary folder is removed, and
+a folder without ``manifest.json`` is never a run).
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import os
+import platform
+import shutil
+import sys
+import uuid
+from dataclasses import dataclass, field
+from importlib import metadata
+from pathlib import Path
+
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ._months import format_month
+from .errors import RunError
+
+MANIFEST = "manifest.json"
+_PACKAGES = ("creditsurv", "numpy", "pandas", "pyarrow", "duckdb", "statsmodels", "scipy", "scikit-learn", "pyyaml")
+
+
+def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
+    """SHA-256 of a file's bytes, read in chunks."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while block := fh.read(chunk):
+            h.update(block)
+    return h.hexdigest()
+
+
+def package_versions() -> dict[str, str]:
+    out = {}
+    for name in _PACKAGES:
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = "not installed"
+    return out
+
+
+def write_table(df: pd.DataFrame, path: Path) -> None:
+    """Write ``df`` as Parquet deterministically (no index, fixed settings)."""
+    table = pa.Table.from_pandas(df, preserve_index=False)
+    # Drop pandas' schema metadata: it records the pandas version, which is
+    # not part of the table's content.
+    table = table.replace_schema_metadata(None)
+    pq.write_table(table, path, compression="zstd", use_dictionary=True, write_statistics=True)
+
+
+@dataclass
+class RunFolder:
+    """A run being built: write outputs into ``.path``, then :meth:`commit`.
+
+    Use as a context manager; on an exception the temporary folder is removed.
+    """
+
+    parent: Path
+    name: str
+    path: Path = field(init=False)
+    outputs: dict[str, dict] = field(default_factory=dict, init=False)
+
+    def __post_init__(self):
+        self.parent = Path(self.parent)
+        self.final = self.parent / self.name
+        if self.final.exists():
+            raise RunError(
+                f"{self.final}: a run folder of this name already exists; creditsurv never "
+                "overwrites a run. Change the config or inputs, or use --out for another folder."
+            )
+        self.parent.mkdir(parents=True, exist_ok=True)
+        self.path = self.parent / f".incomplete-{self.name}-{uuid.uuid4().hex[:8]}"
+        self.path.mkdir()
+
+    def __enter__(self) -> "RunFolder":
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if exc_type is not None:
+            shutil.rmtree(self.path, ignore_errors=True)
+
+    def add_table(self, df: pd.DataFrame, name: str, *, csv: bool = False) -> Path:
+        """Write ``df`` as ``name`` (``.parquet`` or ``.csv``) and record it."""
+        target = self.path / name
+        target.parent.mkdir(parents=True, exist_ok=True)
+        if name.endswith(".parquet"):
+            write_table(df, target)
+        elif name.endswith(".csv"):
+            df.to_csv(target, index=False, lineterminator="\n", float_format="%.10g")
+        else:  # pragma: no cover - programming error
+            raise ValueError(name)
+        self.outputs[name] = {"rows": int(len(df))}
+        if csv and name.endswith(".parquet"):
+            self.add_table(df, name[: -len(".parquet")] + ".csv")
+        return target
+
+    def add_file(self, name: str, rows: int | None = None) -> Path:
+        """Record a file that the caller wrote itself under ``.path``."""
+        self.outputs[name] = {"rows": rows}
+        return self.path / name
+
+    def commit(self, manifest: dict) -> Path:
+        """Hash the outputs, write the manifest last, rename into place."""
+        files = []
+        for name in sorted(self.outputs):
+            p = self.path / name
+            files.append({"file": name, "rows": self.outputs[name]["rows"], "bytes": p.stat().st_size, "sha256": sha256_file(p)})
+        manifest = {**manifest, "outputs": files}
+        text = json.dumps(manifest, indent=2, sort_keys=True, default=str)
+        (self.path / MANIFEST).write_text(text + "\n", encoding="utf-8")
+        if self.final.exists():
+            raise RunError(f"{self.final}: appeared while the run was being built; the run was not moved into place")
+        os.rename(self.path, self.final)
+        return self.final
+
+
+def describe_inputs(sources: dict[str, Path], rows: dict[str, int]) -> list[dict]:
+    """Path, size, SHA-256 and row count of every input file."""
+    out = []
+    for name in sorted(sources):
+        path = Path(sources[name])
+        files = sorted(path.parent.glob(path.name)) if any(c in path.name for c in "*?[") else [path]
+        for f in files:
+            out.append(
+                {"input": name, "path": str(f), "bytes": f.stat().st_size, "sha256": sha256_file(f), "rows": rows.get(name)}
+            )
+    return out
+
+
+def base_manifest(*, run_id: str, as_of: int, argv, config_text: str, config_resolved: dict, config_sha256: str, seed: int) -> dict:
+    return {
+        "run_id": run_id,
+        "as_of": format_month(as_of),
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "command": list(argv) if argv else None,
+        "config_as_given": config_text,
+        "config_resolved": config_resolved,
+        "config_sha256": config_sha256,
+        "versions": package_versions(),
+        "platform": {"python": sys.version.split()[0], "system": platform.platform(), "machine": platform.machine()},
+        "seed": seed,
+    }
+
+
+def run_name(as_of: int, config_sha: str, input_hashes: list[str]) -> str:
+    """``YYYY-MM_<10 hex>``: the reporting month and a short hash of config and inputs."""
+    h = hashlib.sha256((config_sha + "".join(input_hashes)).encode()).hexdigest()[:10]
+    return f"{format_month(as_of)}_{h}"
