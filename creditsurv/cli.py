@@ -19,9 +19,11 @@ def _cmd_make_demo_data(args) -> int:
     from .simulate import write_demo_book
 
     summary = write_demo_book(args.out_dir, args.loans, args.seed)
-    print(f"wrote a synthetic book of {summary['loans']:,} loans to {args.out_dir}")
-    for name, rows in summary["rows"].items():
-        print(f"  {name}: {rows:,} rows")
+    events = ", ".join(f"{n:,} {kind}" for kind, n in summary["events"].items())
+    print(f"wrote a synthetic book of {summary['loans']:,} loans ({summary['rows']:,} loan-months) to {args.out_dir}")
+    print(f"  outcomes: {events}")
+    for name, size in summary["files"].items():
+        print(f"  {name}: {size:,} bytes")
     return 0
 
 
