@@ -51,6 +51,14 @@ def _cmd_run(args) -> int:
     return 0
 
 
+def _cmd_init(args) -> int:
+    from .pipeline import init_project
+
+    for path in init_project(args.dir):
+        print(f"wrote {path}")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="creditsurv",
@@ -65,6 +73,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--loans", type=int, default=20_000, help="number of loans (default 20000)")
     p.add_argument("--seed", type=int, default=20261202, help="random seed (default 20261202)")
     p.set_defaults(func=_cmd_make_demo_data)
+
+    p = sub.add_parser("init", help="write a commented starter config and folder layout")
+    p.add_argument("dir", type=Path, metavar="DIR")
+    p.set_defaults(func=_cmd_init)
 
     p = sub.add_parser("check", help="run the data checks on the config's inputs")
     p.add_argument("config", type=Path, metavar="CONFIG")

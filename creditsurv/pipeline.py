@@ -23,6 +23,23 @@ def _refuse_existing(path: Path, what: str) -> None:
         raise DataError(f"{path}: {what} already exists; creditsurv never overwrites. Choose another path.")
 
 
+def init_project(folder) -> list[Path]:
+    """Write a commented starter config and an empty folder layout into ``folder``.
+
+    Refuses to write over anything that exists.
+    """
+    from importlib import resources
+
+    folder = Path(folder)
+    config = folder / "config.yaml"
+    _refuse_existing(config, "a config")
+    for sub in ("data", "data/scenarios", "reports"):
+        (folder / sub).mkdir(parents=True, exist_ok=True)
+    text = resources.files("creditsurv").joinpath("starter.yaml").read_text(encoding="utf-8")
+    config.write_text(text, encoding="utf-8")
+    return [config, folder / "data", folder / "reports"]
+
+
 def check_data(config_path, out: Path | None = None) -> Outcome:
     """Run the data checks of a config; optionally write the check table as CSV."""
     from .panel import format_checks, open_panel, run_checks

@@ -1,0 +1,58 @@
+"""The command line: errors as one line, exit codes, help, init."""
+
+import pytest
+
+from creditsurv.cli import main
+from creditsurv.config import load_config
+
+
+def test_help_lists_every_command(capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["--help"])
+    assert exc.value.code == 0
+    out = capsys.readouterr().out
+    for command in ("make-demo-data", "init", "check", "fit", "run"):
+        assert command in out
+
+
+def test_config_error_prints_one_line_without_traceback_and_exits_2(tmp_path, capsys):
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("as_of: 2024-12\nas_off: 2024-11\n")
+    code = main(["check", str(bad)])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert "Traceback" not in err
+    lines = err.splitlines()
+    assert lines[0] == f"ConfigError: {bad}: 3 problems in the config:"
+    assert "  - as_off: unknown key" in err and "did you mean 'as_of'?" in err
+    assert "  - inputs: missing required key" in err and "  - windows: missing required key" in err
+
+
+def test_yaml_syntax_error_names_the_line(tmp_path, capsys):
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("as_of: 2024-12\ninputs:\n  panel: [unclosed\n")
+    assert main(["check", str(bad)]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith(f"ConfigError: {bad}: YAML syntax error at line ")
+
+
+def test_usage_error_exits_2(capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["no-such-command"])
+    assert exc.value.code == 2
+
+
+def test_init_writes_a_valid_starter_config_and_refuses_to_overwrite(tmp_path, capsys):
+    assert main(["init", str(tmp_path / "book")]) == 0
+    cfg = load_config(tmp_path / "book" / "config.yaml")
+    assert cfg.inputs.panel.path == tmp_path / "book" / "data" / "panel.parquet"
+    assert (tmp_path / "book" / "reports").is_dir()
+    assert main(["init", str(tmp_path / "book")]) == 1
+    assert "never overwrites" in capsys.readouterr().err
+
+
+def test_make_demo_data_refuses_to_overwrite(tmp_path, capsys):
+    args = ["make-demo-data", str(tmp_path / "d"), "--loans", "50", "--seed", "1"]
+    assert main(args) == 0
+    assert main(args) == 2
+    assert capsys.readouterr().err.startswith("SimulationError: ")
