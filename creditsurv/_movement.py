@@ -1,0 +1,540 @@
+"""Month-on-month movement between two runs: ECL walk, stage migration, PD change.
+
+Run A is the earlier (opening) run and run B the later (closing) one. Loans are
+matched on ``loan_id``. Every amount is in the runs' currency; PDs are
+probabilities.
+
+ECL walk
+--------
+The walk goes from A's total reported ECL to B's in a fixed order of steps,
+each a row of :attr:`MovementResult.walk`:
+
+1. ``closed_or_repaid`` - loans in A and not in B: ``-ECL_A``.
+2. ``new_loans`` - loans in B and not in A: ``+ECL_B``.
+3. ``stage_transfer_<i>_to_<j>`` - loans in both whose stage moved from i to
+   j, one row per direction (1->2, 1->3, 2->1, 2->3, 3->1, 3->2):
+   ``ECL_B - ECL_A``, so the change of horizon and every other change of
+   those loans sit here.
+4. Loans in both with the same stage, by sequential substitution at the
+   horizon of that stage (12 months for stage 1, lifetime for stages 2 and 3).
+   With ``r = EAD_B / EAD_A`` and ``E_s`` the loan's ECL in scenario ``s``:
+
+   a. ``exposure`` = ``ECL_A x (r - 1)``. This assumes ECL scales in
+      proportion to EAD at fixed PD, LGD and shape of the exposure schedule;
+      it is an approximation (a different amortisation profile or an LGD
+      that depends on the balance is left to ``risk_parameters``). Loans
+      with ``EAD_A = 0`` have no ratio; their whole change is put here.
+   b. ``scenario_weights`` = ``sum_s (w_B,s - w_A,s) x E_A,s x r`` over the
+      scenarios of both runs; a scenario in only one run moves its whole
+      weighted contribution here: ``-w_A,s x E_A,s x r`` when it was dropped,
+      ``+w_B,s x E_B,s`` when it was added.
+   c. ``risk_parameters`` - the remainder ``ECL_B - ECL_A - a - b``: PD from
+      the model and the covariates, LGD, and the scenarios' macro paths.
+
+The steps sum to ``ECL_B_total - ECL_A_total``; the walk checks this to a
+relative 1e-6 of the larger total and raises :class:`RunError` otherwise.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import RunError
+from .runs import MANIFEST
+
+__all__ = ["MovementResult", "movement", "compare_run_folders"]
+
+LOAN_TABLE = "loan_ecl.parquet"
+STAGES = (1, 2, 3)
+TRANSFERS = tuple((i, j) for i in STAGES for j in STAGES if i != j)
+SAME_STAGE_STEPS = ("exposure", "scenario_weights", "risk_parameters")
+WALK_STEPS = (
+    ("closed_or_repaid", "new_loans")
+    + tuple(f"stage_transfer_{i}_to_{j}" for i, j in TRANSFERS)
+    + SAME_STAGE_STEPS
+)
+"""Step names of the walk, in order (without the opening and closing rows)."""
+
+RECONCILE_RTOL = 1e-6
+_REPORTED_RTOL = 1e-6  # ecl_reported against sum_s w_s ECL_s
+_REPORTED_ATOL = 1e-6  # currency units; absorbs rounding on tiny ECLs
+_WEIGHTED = "weighted"  # the probability-weighted columns, never a scenario
+_ALL = "all"  # label of the whole-book row of the PD-change table
+
+
+@dataclass(frozen=True)
+class MovementResult:
+    """What moved between run A and run B.
+
+    Attributes
+    ----------
+    walk : DataFrame
+        Columns ``step``, ``loans``, ``ecl_change``, ``ecl_balance``. First row
+        ``opening`` (loans of A, ``ecl_change`` NaN, A's total reported ECL),
+        then the steps of :data:`WALK_STEPS` in order (every step present, zero
+        when no loan falls in it; ``loans`` for the three same-stage steps is
+        the number of same-stage loans), then ``closing`` (loans of B, NaN,
+        B's total). ``ecl_balance`` is the running total after each step.
+    migration : DataFrame
+        Tidy stage migration: ``stage_from`` ("1", "2", "3", "new"),
+        ``stage_to`` ("1", "2", "3", "closed"), ``loans``, ``ead``. ``ead`` is
+        EAD_B for loans in B (matched or new) and EAD_A for closed loans.
+        The impossible cell new -> closed is not a row.
+    pd_change : DataFrame
+        Lifetime PD by segment, one row per segment (sorted) and a last row
+        ``all``. Over loans in both runs (segment as in B): ``loans``,
+        ``ead_a``, ``ead_b``, ``pd_lifetime_a`` (EAD_A-weighted mean),
+        ``pd_lifetime_b`` (EAD_B-weighted mean), ``pd_lifetime_change``
+        (B - A). Over every loan of each run (segment as in that run):
+        ``loans_a_book``, ``loans_b_book``, ``pd_lifetime_a_book``,
+        ``pd_lifetime_b_book``, ``pd_lifetime_change_book``. A mean over zero
+        exposure is NaN.
+    by_loan : DataFrame
+        One row per loan of A or B (A's order, then new loans in B's order):
+        ``loan_id``, ``segment``, ``stage_a``, ``stage_b`` (nullable Int64),
+        ``ead_a``, ``ead_b``, ``ecl_a``, ``ecl_b`` (NaN when absent),
+        ``step`` (``closed_or_repaid``, ``new_loans``,
+        ``stage_transfer_<i>_to_<j>`` or ``same_stage``), ``exposure``,
+        ``scenario_weights``, ``risk_parameters`` (zero outside same-stage
+        loans) and ``ecl_change``, the loan's whole contribution to the walk.
+    """
+
+    walk: pd.DataFrame
+    migration: pd.DataFrame
+    pd_change: pd.DataFrame
+    by_loan: pd.DataFrame
+
+    def migration_matrix(self, value: str = "loans") -> pd.DataFrame:
+        """Wide stage migration matrix.
+
+        Parameters
+        ----------
+        value : {"loans", "ead"}, default "loans"
+            Count of loans or exposure (see :attr:`migration`).
+
+        Returns
+        -------
+        DataFrame
+            Index ``stage_from`` ("1", "2", "3", "new"), columns ``stage_to``
+            ("1", "2", "3", "closed"); the new -> closed cell is 0.
+        """
+        if value not in ("loans", "ead"):
+            raise ValueError(f"value must be 'loans' or 'ead', got {value!r}")
+        wide = self.migration.pivot(index="stage_from", columns="stage_to", values=value)
+        wide = wide.reindex(index=["1", "2", "3", "new"], columns=["1", "2", "3", "closed"], fill_value=0)
+        wide = wide.fillna(0)
+        wide.index.name, wide.columns.name = "stage_from", "stage_to"
+        return wide.astype(self.migration[value].dtype)
+
+    def to_tables(self) -> dict[str, pd.DataFrame]:
+        """The tables to write, keyed by file name."""
+        return {
+            "movement_walk.csv": self.walk,
+            "stage_migration.csv": self.migration,
+            "pd_change_by_segment.csv": self.pd_change,
+        }
+
+
+# --------------------------------------------------------------------------- checks
+
+
+def _check_weights(weights: Mapping[str, float], label: str) -> list[str]:
+    if not weights:
+        return [f"{label}: no scenario weights given"]
+    problems = []
+    if _WEIGHTED in weights:
+        problems.append(f"{label}: {_WEIGHTED!r} is the probability-weighted result, not a scenario")
+    values = {}
+    for s, w in weights.items():
+        try:
+            values[s] = float(w)
+        except (TypeError, ValueError):
+            values[s] = np.nan
+    bad = {s: weights[s] for s, w in values.items() if not (np.isfinite(w) and w >= 0)}
+    if bad:
+        problems.append(f"{label}: scenario weights must be finite numbers >= 0, got {bad}")
+    elif abs(sum(values.values()) - 1.0) > 1e-6:
+        text = ", ".join(f"{s}={w:g}" for s, w in values.items())
+        problems.append(f"{label}: scenario weights must sum to 1, got {sum(values.values()):.10g} ({text})")
+    return problems
+
+
+def _check_loans(df: pd.DataFrame, weights: Mapping[str, float], label: str, segment_column: str) -> list[str]:
+    """Every problem of one run's loan table, each prefixed with ``label``."""
+    scen_cols = [f"ecl_{h}_{s}" for s in weights for h in ("12m", "lifetime")]
+    required = ["loan_id", segment_column, "stage", "pd_lifetime", "ead", "ecl_reported", *scen_cols]
+    missing = [c for c in required if c not in df.columns]
+    problems = []
+    if missing:
+        problems.append(f"{label}: missing columns {missing}; the table has {list(df.columns)}")
+    have = set(df.columns)
+
+    def rows(mask) -> str:
+        ids = df.loc[mask, "loan_id"].head(5).tolist() if "loan_id" in have else []
+        return f"{int(mask.sum())} rows (loan_id {ids})" if ids else f"{int(mask.sum())} rows"
+
+    if "loan_id" in have:
+        if df["loan_id"].isna().any():
+            problems.append(f"{label}: loan_id is missing in {int(df['loan_id'].isna().sum())} rows")
+        dup = df["loan_id"].duplicated(keep=False) & df["loan_id"].notna()
+        if dup.any():
+            problems.append(f"{label}: loan_id is not unique: {rows(dup)}")
+    if segment_column in have and df[segment_column].isna().any():
+        problems.append(f"{label}: {segment_column!r} is missing in {rows(df[segment_column].isna())}")
+    if "stage" in have:
+        stage = pd.to_numeric(df["stage"], errors="coerce")
+        bad = ~stage.isin(STAGES)
+        if bad.any():
+            seen = sorted({str(v) for v in df.loc[bad, "stage"].head(20)})
+            problems.append(f"{label}: stage must be 1, 2 or 3; {rows(bad)} have {seen}")
+    numeric = [c for c in ("ead", "ecl_reported", *scen_cols) if c in have]
+    for col in [*numeric, *(["pd_lifetime"] if "pd_lifetime" in have else [])]:
+        if not pd.api.types.is_numeric_dtype(df[col]) or pd.api.types.is_bool_dtype(df[col]):
+            problems.append(f"{label}: column {col!r} must be numeric, got {df[col].dtype}")
+            continue
+        x = df[col].to_numpy(dtype=np.float64, na_value=np.nan)
+        hi = 1.0 if col == "pd_lifetime" else np.inf
+        bad = ~(np.isfinite(x) & (x >= 0) & (x <= hi))
+        if bad.any():
+            allowed = "in [0, 1]" if col == "pd_lifetime" else "finite and >= 0"
+            problems.append(f"{label}: {col!r} must be {allowed}; {rows(bad)} are not")
+    if not problems and scen_cols:
+        reported = df["ecl_reported"].to_numpy(dtype=np.float64)
+        weighted = sum(float(w) * _horizon_ecl(df, s) for s, w in weights.items())
+        off = ~np.isclose(reported, weighted, rtol=_REPORTED_RTOL, atol=_REPORTED_ATOL)
+        if off.any():
+            problems.append(
+                f"{label}: ecl_reported is not the probability-weighted ECL of the stage's horizon "
+                f"(sum over scenarios of weight x ecl_12m_<s> for stage 1, ecl_lifetime_<s> otherwise) "
+                f"in {rows(off)}; check the weights {dict(weights)} belong to this table"
+            )
+    return problems
+
+
+def _raise(problems: list[str], what: str) -> None:
+    if problems:
+        n = len(problems)
+        raise RunError(f"{n} problem{'s' if n > 1 else ''} with {what}:\n" + "\n".join(f"  - {p}" for p in problems))
+
+
+# --------------------------------------------------------------------------- computation
+
+
+def _horizon_ecl(df: pd.DataFrame, scenario: str) -> np.ndarray:
+    """ECL of ``scenario`` at the horizon of each loan's stage (12 months for stage 1)."""
+    stage1 = pd.to_numeric(df["stage"]).to_numpy() == 1
+    return np.where(
+        stage1,
+        df[f"ecl_12m_{scenario}"].to_numpy(dtype=np.float64),
+        df[f"ecl_lifetime_{scenario}"].to_numpy(dtype=np.float64),
+    )
+
+
+def _ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
+    out = np.full(num.shape, np.nan)
+    np.divide(num, den, out=out, where=den > 0)
+    return out
+
+
+def _same_stage_steps(ea, eb, ecl_a, ecl_b, scen_a, scen_b, weights_a, weights_b):
+    """Exposure, scenario-weight and risk-parameter parts for same-stage loans (arrays)."""
+    zero = ~(ea > 0)
+    r = np.where(zero, 1.0, _ratio(eb, np.where(zero, 1.0, ea)))
+    exposure = np.where(zero, ecl_b - ecl_a, ecl_a * (r - 1.0))
+    sw = np.zeros_like(ecl_a)
+    # A fixed order of scenarios keeps the sums, and so the tables, byte-reproducible.
+    for s in [*weights_a, *(s for s in weights_b if s not in weights_a)]:
+        if s in weights_a and s in weights_b:
+            sw += (float(weights_b[s]) - float(weights_a[s])) * scen_a[s] * r
+        elif s in weights_a:
+            sw -= float(weights_a[s]) * scen_a[s] * r
+        else:
+            sw += float(weights_b[s]) * scen_b[s]
+    sw = np.where(zero, 0.0, sw)
+    risk = ecl_b - ecl_a - exposure - sw
+    return exposure, sw, risk
+
+
+def _pd_change(seg_m, pd_a, ead_a, pd_b, ead_b, seg_a_book, a_book, seg_b_book, b_book) -> pd.DataFrame:
+    matched = pd.DataFrame(
+        {"segment": seg_m, "loans": 1, "ead_a": ead_a, "ead_b": ead_b, "_pa": pd_a * ead_a, "_pb": pd_b * ead_b}
+    ).groupby("segment", sort=False).sum()
+    book_a = pd.DataFrame(
+        {"segment": seg_a_book, "loans_a_book": 1, "_ea": a_book[1], "_pab": a_book[0] * a_book[1]}
+    ).groupby("segment", sort=False).sum()
+    book_b = pd.DataFrame(
+        {"segment": seg_b_book, "loans_b_book": 1, "_eb": b_book[1], "_pbb": b_book[0] * b_book[1]}
+    ).groupby("segment", sort=False).sum()
+    t = pd.concat([matched, book_a, book_b], axis=1)
+    try:
+        t = t.sort_index()
+    except TypeError:  # mixed label types: keep first-seen order
+        pass
+    t = t.fillna(0)
+    # Appended, not assigned by label: a segment may itself be called "all".
+    t = pd.concat([t, t.sum(axis=0).to_frame(_ALL).T])
+    t.index.name = "segment"
+    out = pd.DataFrame(index=t.index)
+    out["loans"] = t["loans"].astype("int64")
+    out["ead_a"] = t["ead_a"]
+    out["ead_b"] = t["ead_b"]
+    out["pd_lifetime_a"] = _ratio(t["_pa"].to_numpy(), t["ead_a"].to_numpy())
+    out["pd_lifetime_b"] = _ratio(t["_pb"].to_numpy(), t["ead_b"].to_numpy())
+    out["pd_lifetime_change"] = out["pd_lifetime_b"] - out["pd_lifetime_a"]
+    out["loans_a_book"] = t["loans_a_book"].astype("int64")
+    out["loans_b_book"] = t["loans_b_book"].astype("int64")
+    out["pd_lifetime_a_book"] = _ratio(t["_pab"].to_numpy(), t["_ea"].to_numpy())
+    out["pd_lifetime_b_book"] = _ratio(t["_pbb"].to_numpy(), t["_eb"].to_numpy())
+    out["pd_lifetime_change_book"] = out["pd_lifetime_b_book"] - out["pd_lifetime_a_book"]
+    return out.reset_index()
+
+
+def movement(
+    loans_a: pd.DataFrame,
+    loans_b: pd.DataFrame,
+    weights_a: Mapping[str, float],
+    weights_b: Mapping[str, float],
+    *,
+    segment_column: str = "segment",
+) -> MovementResult:
+    """ECL walk, stage migration and lifetime PD change from run A to run B.
+
+    Parameters
+    ----------
+    loans_a, loans_b : DataFrame
+        Loan-level results of each run, one row per loan: ``loan_id``,
+        ``segment_column``, ``stage`` (1, 2 or 3), ``pd_lifetime``, ``ead``,
+        ``ecl_reported`` and, for every scenario s of that run's weights,
+        ``ecl_12m_<s>`` and ``ecl_lifetime_<s>``. Other columns are ignored.
+        Neither frame is modified.
+    weights_a, weights_b : mapping of str to float
+        Probability weight of each scenario in that run (summing to 1).
+    segment_column : str, default "segment"
+        Column naming the segment of the PD-change table.
+
+    Returns
+    -------
+    MovementResult
+        See the module docstring for the steps of the walk.
+
+    Raises
+    ------
+    RunError
+        Listing every problem of both tables at once: missing columns, loan_id
+        missing or not unique, stage not 1/2/3, negative or non-finite EAD or
+        ECL, lifetime PD outside [0, 1], weights not summing to 1, or
+        ``ecl_reported`` that is not the weighted ECL of the stage's horizon.
+        Also raised if the walk fails to reconcile (a bug, not a data problem).
+    """
+    return _movement(loans_a, loans_b, weights_a, weights_b, segment_column, ("run A", "run B"))
+
+
+def _validate(loans_a, loans_b, weights_a, weights_b, segment_column, labels) -> None:
+    """Check both runs' weights and tables; raise one RunError listing every problem."""
+    problems = []
+    for loans, weights, label in ((loans_a, weights_a, labels[0]), (loans_b, weights_b, labels[1])):
+        weight_problems = _check_weights(weights, f"{label} weights")
+        problems += weight_problems
+        # Scenario columns are only checked against usable weights.
+        problems += _check_loans(loans, {} if weight_problems else weights, f"{label} loans", segment_column)
+    _raise(problems, "the runs to compare")
+
+
+def _movement(loans_a, loans_b, weights_a, weights_b, segment_column, labels) -> MovementResult:
+    _validate(loans_a, loans_b, weights_a, weights_b, segment_column, labels)
+
+    def arrays(df, weights):
+        return {
+            "id": df["loan_id"].to_numpy(),
+            "segment": df[segment_column].to_numpy(),
+            "stage": pd.to_numeric(df["stage"]).to_numpy().astype(np.int64),
+            "pd": df["pd_lifetime"].to_numpy(dtype=np.float64),
+            "ead": df["ead"].to_numpy(dtype=np.float64),
+            "ecl": df["ecl_reported"].to_numpy(dtype=np.float64),
+            "scen": {s: _horizon_ecl(df, s) for s in weights},
+        }
+
+    a, b = arrays(loans_a, weights_a), arrays(loans_b, weights_b)
+    index_b = pd.Index(b["id"])
+    pos_b = index_b.get_indexer(a["id"])
+    in_b = pos_b >= 0
+    closed = ~in_b
+    new = ~index_b.isin(a["id"])
+    pb = pos_b[in_b]
+
+    # Matched loans: A's values at [in_b], B's values at [pb], aligned row by row.
+    sa, sb = a["stage"][in_b], b["stage"][pb]
+    ecl_a, ecl_b = a["ecl"][in_b], b["ecl"][pb]
+    ead_a, ead_b = a["ead"][in_b], b["ead"][pb]
+    same = sa == sb
+    exposure = np.zeros(len(sa))
+    sw = np.zeros(len(sa))
+    risk = np.zeros(len(sa))
+    exposure[same], sw[same], risk[same] = _same_stage_steps(
+        ead_a[same],
+        ead_b[same],
+        ecl_a[same],
+        ecl_b[same],
+        {s: v[in_b][same] for s, v in a["scen"].items()},
+        {s: v[pb][same] for s, v in b["scen"].items()},
+        weights_a,
+        weights_b,
+    )
+    transfer = np.array([f"stage_transfer_{i}_to_{j}" for i, j in zip(sa, sb)], dtype=object)
+    step_m = np.where(same, "same_stage", transfer) if len(sa) else np.array([], dtype=object)
+
+    n_m, n_c, n_n = int(in_b.sum()), int(closed.sum()), int(new.sum())
+    nan_c, nan_n = np.full(n_c, np.nan), np.full(n_n, np.nan)
+    stage_a = pd.array(np.concatenate([sa, a["stage"][closed], np.zeros(n_n, np.int64)]), dtype="Int64")
+    stage_a[n_m + n_c :] = pd.NA
+    stage_b = pd.array(np.concatenate([sb, np.zeros(n_c, np.int64), b["stage"][new]]), dtype="Int64")
+    stage_b[n_m : n_m + n_c] = pd.NA
+    by_loan = pd.DataFrame(
+        {
+            "loan_id": np.concatenate([a["id"][in_b], a["id"][closed], b["id"][new]]),
+            "segment": np.concatenate([b["segment"][pb], a["segment"][closed], b["segment"][new]]),
+            "stage_a": stage_a,
+            "stage_b": stage_b,
+            "ead_a": np.concatenate([ead_a, a["ead"][closed], nan_n]),
+            "ead_b": np.concatenate([ead_b, nan_c, b["ead"][new]]),
+            "ecl_a": np.concatenate([ecl_a, a["ecl"][closed], nan_n]),
+            "ecl_b": np.concatenate([ecl_b, nan_c, b["ecl"][new]]),
+            "step": np.concatenate([step_m, np.full(n_c, "closed_or_repaid"), np.full(n_n, "new_loans")]),
+            "exposure": np.concatenate([exposure, np.zeros(n_c + n_n)]),
+            "scenario_weights": np.concatenate([sw, np.zeros(n_c + n_n)]),
+            "risk_parameters": np.concatenate([risk, np.zeros(n_c + n_n)]),
+            "ecl_change": np.concatenate([ecl_b - ecl_a, -a["ecl"][closed], b["ecl"][new]]),
+        }
+    )
+
+    # The walk.
+    total_a, total_b = float(a["ecl"].sum()), float(b["ecl"].sum())
+    rows = [("opening", len(a["ecl"]), np.nan)]
+    rows.append(("closed_or_repaid", n_c, 0.0 - float(a["ecl"][closed].sum())))  # 0.0 - : no "-0" in the CSV
+    rows.append(("new_loans", n_n, float(b["ecl"][new].sum())))
+    for i, j in TRANSFERS:
+        m = (sa == i) & (sb == j)
+        rows.append((f"stage_transfer_{i}_to_{j}", int(m.sum()), float((ecl_b[m] - ecl_a[m]).sum())))
+    n_same = int(same.sum())
+    for name, part in zip(SAME_STAGE_STEPS, (exposure, sw, risk)):
+        rows.append((name, n_same, float(part[same].sum())))
+    rows.append(("closing", len(b["ecl"]), np.nan))
+    walk = pd.DataFrame(rows, columns=["step", "loans", "ecl_change"])
+    steps = walk["ecl_change"].to_numpy()[1:-1]
+    walk["ecl_balance"] = np.concatenate([[total_a], total_a + np.cumsum(steps), [total_b]])
+
+    gap = float(steps.sum()) - (total_b - total_a)
+    scale = max(abs(total_a), abs(total_b))
+    if not abs(gap) <= RECONCILE_RTOL * scale:
+        raise RunError(
+            f"the ECL walk does not reconcile: its steps sum to {steps.sum():.10g} but the totals move by "
+            f"{total_b - total_a:.10g} (gap {gap:.3g}); this is a bug in creditsurv, please report it"
+        )
+
+    # Stage migration.
+    labels_from = [*(str(s) for s in STAGES), "new"]
+    labels_to = [*(str(s) for s in STAGES), "closed"]
+    mig = []
+    for f in labels_from:
+        for t in labels_to:
+            if f == "new" and t == "closed":
+                continue
+            if f == "new":
+                m = b["stage"][new] == int(t)
+                mig.append((f, t, int(m.sum()), float(b["ead"][new][m].sum())))
+            elif t == "closed":
+                m = a["stage"][closed] == int(f)
+                mig.append((f, t, int(m.sum()), float(a["ead"][closed][m].sum())))
+            else:
+                m = (sa == int(f)) & (sb == int(t))
+                mig.append((f, t, int(m.sum()), float(ead_b[m].sum())))
+    migration = pd.DataFrame(mig, columns=["stage_from", "stage_to", "loans", "ead"])
+
+    pd_change = _pd_change(
+        b["segment"][pb],
+        a["pd"][in_b],
+        ead_a,
+        b["pd"][pb],
+        ead_b,
+        a["segment"],
+        (a["pd"], a["ead"]),
+        b["segment"],
+        (b["pd"], b["ead"]),
+    )
+    return MovementResult(walk=walk, migration=migration, pd_change=pd_change, by_loan=by_loan)
+
+
+# --------------------------------------------------------------------------- run folders
+
+
+def _read_run(path: Path) -> tuple[pd.DataFrame | None, dict | None, list[str]]:
+    """A run's loan table and scenario weights, or the problems that stop reading them."""
+    if not path.is_dir():
+        return None, None, [f"{path}: no such run folder"]
+    problems = []
+    manifest_path, table_path = path / MANIFEST, path / LOAN_TABLE
+    if not manifest_path.is_file():
+        problems.append(
+            f"{path}: not a complete run (no {MANIFEST}); a folder without {MANIFEST} is an unfinished or failed run"
+        )
+    if not table_path.is_file():
+        problems.append(f"{path}: the run has no {LOAN_TABLE}")
+    if problems:
+        return None, None, problems
+    try:
+        manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        return None, None, [f"{manifest_path}: cannot be read as JSON ({exc})"]
+    try:
+        loans = pd.read_parquet(table_path)
+    except Exception as exc:  # pyarrow raises several types for a damaged file
+        return None, None, [f"{table_path}: cannot be read as Parquet ({type(exc).__name__}: {exc})"]
+
+    scenarios = (manifest.get("config_resolved") or {}).get("scenarios") if isinstance(manifest, dict) else None
+    if scenarios is None:
+        return None, None, [f"{manifest_path}: no config_resolved.scenarios"]
+    weights = {}
+    for k, sc in enumerate(scenarios):
+        if not isinstance(sc, dict) or "name" not in sc or "weight" not in sc:
+            problems.append(f"{manifest_path}: config_resolved.scenarios[{k}] needs a name and a weight, got {sc!r}")
+        else:
+            weights[str(sc["name"])] = float(sc["weight"])
+    if not scenarios:
+        # A run without configured scenarios projects one; take it from the columns.
+        found = sorted(c[len("ecl_12m_") :] for c in loans.columns if c.startswith("ecl_12m_") and c != f"ecl_12m_{_WEIGHTED}")
+        if len(found) == 1:
+            weights = {found[0]: 1.0}
+        else:
+            problems.append(
+                f"{manifest_path}: config_resolved.scenarios is empty and {LOAN_TABLE} has "
+                f"{len(found)} scenarios {found}; cannot tell their weights"
+            )
+    return loans, weights, problems
+
+
+def compare_run_folders(run_a: Path, run_b: Path, *, segment_column: str = "segment") -> MovementResult:
+    """:func:`movement` between two run folders, A the earlier.
+
+    Reads each run's ``loan_ecl.parquet`` and its scenario weights from
+    ``manifest.json`` (``config_resolved.scenarios``).
+
+    Raises
+    ------
+    RunError
+        Naming the folder when it does not exist, is not a complete run (no
+        ``manifest.json``), lacks ``loan_ecl.parquet`` or has unreadable
+        files; problems of both folders are reported together. Otherwise as
+        :func:`movement`, with each problem naming its folder.
+    """
+    run_a, run_b = Path(run_a), Path(run_b)
+    loans_a, weights_a, problems_a = _read_run(run_a)
+    loans_b, weights_b, problems_b = _read_run(run_b)
+    _raise(problems_a + problems_b, "the runs to compare")
+    labels = (f"{run_a / LOAN_TABLE} (run A)", f"{run_b / LOAN_TABLE} (run B)")
+    return _movement(loans_a, loans_b, weights_a, weights_b, segment_column, labels)
