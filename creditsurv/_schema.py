@@ -85,7 +85,8 @@ class _Builder:
         self.problems: list[str] = []
 
     def problem(self, path: str, text: str) -> None:
-        self.problems.append(f"{path or '(top level)'}: {text}")
+        # Problems of the whole config (from Config._validate) name their own keys.
+        self.problems.append(f"{path}: {text}" if path else text)
 
     def build(self, tp, value: Any, path: str):
         """Return ``value`` read as ``tp``, or ``None`` after recording a problem."""

@@ -1,0 +1,100 @@
+"""Shared fixtures. Keep each fixture small and named for what it builds."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from creditsurv.config import config_from_dict
+
+PANEL_AS_OF = "2021-01"
+
+
+def _idx(text: str) -> int:
+    return int(text[:4]) * 12 + int(text[5:7]) - 1
+
+
+def _text(idx: int) -> str:
+    return f"{idx // 12:04d}-{idx % 12 + 1:02d}"
+
+
+@pytest.fixture
+def panel_clean_book():
+    """A small clean book as three frames ``(panel, loans, macro)``.
+
+    Loans L1 and L2 originate 2020-01 and run to the reporting month 2021-01
+    (ages 1..12); L3 originates 2020-06 and prepays at age 4. The macro
+    history covers 2019-01..2021-01. Months are YYYY-MM text.
+    """
+    rows = []
+    for loan_id, orig, last_age, paid_at in (("L1", "2020-01", 12, None), ("L2", "2020-01", 12, None), ("L3", "2020-06", 4, 4)):
+        for age in range(1, last_age + 1):
+            rows.append(
+                {
+                    "loan_id": loan_id,
+                    "month": _text(_idx(orig) + age),
+                    "age": age,
+                    "balance": 0.0 if age == paid_at else 1000.0 - 10 * age,
+                    "days_past_due": 0,
+                    "status": "current",
+                }
+            )
+    panel = pd.DataFrame(rows)
+    loans = pd.DataFrame(
+        {
+            "loan_id": ["L1", "L2", "L3"],
+            "origination_month": ["2020-01", "2020-01", "2020-06"],
+            "original_balance": [1000.0, 1000.0, 1000.0],
+            "note_rate": [4.5, 5.0, 3.25],
+            "term": [360, 360, 240],
+        }
+    )
+    months = [_text(i) for i in range(_idx("2019-01"), _idx(PANEL_AS_OF) + 1)]
+    macro = pd.DataFrame(
+        {
+            "month": months,
+            "unemployment_rate": [5.0 + 0.01 * i for i in range(len(months))],
+            "mortgage_rate": [3.0] * len(months),
+        }
+    )
+    return panel, loans, macro
+
+
+@pytest.fixture
+def panel_config_factory(tmp_path):
+    """Write frames to ``tmp_path`` and return a :class:`Config` reading them.
+
+    Call as ``factory(panel, loans, macro=None, fmt="parquet", **overrides)``;
+    ``overrides`` are merged into the top level of the config dict, and
+    ``panel_columns`` / ``loan_columns`` update the column mappings.
+    """
+
+    def write(frame: pd.DataFrame, stem: str, fmt: str) -> str:
+        path = tmp_path / f"{stem}.{fmt}"
+        if fmt == "parquet":
+            frame.to_parquet(path, index=False)
+        elif fmt == "csv":
+            frame.to_csv(path, index=False)
+        else:
+            raise ValueError(fmt)
+        return path.name
+
+    def factory(panel, loans, macro=None, fmt="parquet", panel_columns=None, loan_columns=None, **overrides):
+        inputs = {
+            "panel": {"path": write(panel, "panel", fmt), "columns": {"status": "status", **(panel_columns or {})}},
+            "loans": {"path": write(loans, "loans", fmt), "columns": dict(loan_columns or {})},
+        }
+        if macro is not None:
+            inputs["macro"] = {"path": write(macro, "macro", fmt)}
+        data = {
+            "as_of": PANEL_AS_OF,
+            "inputs": inputs,
+            "windows": {"development": {"start": "2020-01", "end": "2020-12"}},
+        }
+        data.update(overrides)
+        return config_from_dict(data, base_dir=tmp_path)
+
+    factory.base_dir = Path(tmp_path)
+    return factory

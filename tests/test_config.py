@@ -1,0 +1,212 @@
+"""Tests of creditsurv.config: every kind of config error and its message."""
+
+from __future__ import annotations
+
+import copy
+from pathlib import Path
+
+import pytest
+
+from creditsurv.config import config_from_dict, config_sha256, config_to_dict, load_config
+from creditsurv.errors import ConfigError
+
+MINIMAL = {
+    "as_of": "2021-01",
+    "inputs": {"panel": {"path": "data/panel.parquet"}, "loans": {"path": "data/loans.csv"}},
+    "windows": {"development": {"start": "2020-01", "end": "2020-12"}},
+}
+
+
+def _problems(change, tmp_path) -> list[str]:
+    data = copy.deepcopy(MINIMAL)
+    change(data)
+    with pytest.raises(ConfigError) as info:
+        config_from_dict(data, base_dir=tmp_path)
+    assert str(info.value).startswith("config: ")
+    for problem in info.value.problems:
+        assert f"  - {problem}" in str(info.value)
+    return info.value.problems
+
+
+@pytest.mark.parametrize(
+    "change, expected",
+    [
+        pytest.param(
+            lambda d: d.update(as_f="2021-01"),
+            "as_f: unknown key (valid keys: as_of, inputs, windows, name, default_definition, events, model, "
+            "collateral, scenarios, scenario_extension, loss, staging, segments, validation, outputs, duckdb, "
+            "checks, seed); did you mean 'as_of'?",
+            id="unknown-top-level",
+        ),
+        pytest.param(
+            lambda d: d["inputs"]["panel"].update(colums={}),
+            "inputs.panel.colums: unknown key (valid keys: path, format, table, columns); did you mean 'columns'?",
+            id="unknown-nested",
+        ),
+        pytest.param(
+            lambda d: d.update(model={"covariates": [{"name": "a", "column": "b"}, {"name": "c", "column": "d", "tranform": "log"}]}),
+            "model.covariates[1].tranform: unknown key (valid keys: name, column, macro, lag, kind, transform, "
+            "floor, cap, bins, reference); did you mean 'transform'?",
+            id="unknown-in-list-item",
+        ),
+        pytest.param(lambda d: d.update(seed="abc"), "seed: expected an integer, got 'abc'", id="wrong-type"),
+        pytest.param(lambda d: d.update(seed=True), "seed: expected an integer, got True", id="bool-is-not-int"),
+        pytest.param(lambda d: d.update(seed=-1), "seed: -1 is below the minimum 0", id="below-minimum"),
+        pytest.param(
+            lambda d: d.update(loss={"lgd": {"constant": 1.5}}),
+            "loss.lgd.constant: 1.5 is above the maximum 1.0",
+            id="above-maximum",
+        ),
+        pytest.param(
+            lambda d: d.update(model={"kind": "multinomal"}),
+            "model.kind: 'multinomal' is not one of multinomial, cause_specific; did you mean 'multinomial'?",
+            id="bad-literal",
+        ),
+        pytest.param(lambda d: d.pop("as_of"), "as_of: missing required key (reporting month, YYYY-MM)", id="missing"),
+        pytest.param(
+            lambda d: d["inputs"].pop("loans"), "inputs.loans: missing required key (loan table)", id="missing-nested"
+        ),
+        pytest.param(lambda d: d.update(as_of="2021-13"), "as_of: expected a month YYYY-MM, got '2021-13'", id="bad-month"),
+        pytest.param(
+            lambda d: d.update(
+                scenarios=[{"name": "a", "weight": 0.5, "path": "a.csv"}, {"name": "b", "weight": 0.4, "path": "b.csv"}]
+            ),
+            "(top level): scenarios: weights must sum to 1, got 0.9 (a=0.5, b=0.4)",
+            id="weights",
+        ),
+        pytest.param(
+            lambda d: d["windows"]["development"].update(end="2019-01"),
+            "windows.development: end 2019-01 is before start 2020-01",
+            id="window-order",
+        ),
+        pytest.param(
+            lambda d: d["inputs"]["panel"].update(path="data/panel.txt"),
+            "inputs.panel: path: cannot tell the format of 'panel.txt' from its suffix; set format to parquet, csv or duckdb",
+            id="unknown-suffix",
+        ),
+        pytest.param(
+            lambda d: d["inputs"]["panel"].update(path="book.duckdb"),
+            "inputs.panel: table: required when the source is a DuckDB database file",
+            id="duckdb-needs-table",
+        ),
+        pytest.param(
+            lambda d: d.update(checks={"severity": {"month_gaps": "warn"}}),
+            "checks.severity.month_gaps: 'warn' is not one of error, warning, off; did you mean 'warning'?",
+            id="severity-literal",
+        ),
+    ],
+)
+def test_each_problem_has_its_message(tmp_path, change, expected):
+    assert _problems(change, tmp_path) == [expected]
+
+
+def test_several_problems_in_one_error(tmp_path):
+    problems = _problems(lambda d: d.update(seed=-1, as_of="soon", bogus=1), tmp_path)
+    assert len(problems) == 3
+    assert problems[0].startswith("bogus: unknown key")
+    assert problems[1:] == ["as_of: expected a month YYYY-MM, got 'soon'", "seed: -1 is below the minimum 0"]
+
+
+def _write(tmp_path: Path, text: str, name="run.yaml") -> Path:
+    path = tmp_path / name
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+@pytest.mark.parametrize(
+    "text, pattern",
+    [
+        pytest.param("as_of: 2021-01\ninputs: [a, b\n", r"YAML syntax error at line 3, column 1: .*expected ',' or ']'", id="syntax"),
+        pytest.param(
+            "as_of: 2021-01\nname: a\nas_of: 2021-02\n",
+            r"YAML syntax error at line 3, column 1: while reading a mapping found the key 'as_of' twice \(first on line 1\)",
+            id="duplicate-key",
+        ),
+        pytest.param("", r"the config file is empty", id="empty"),
+        pytest.param("# only a comment\n", r"the config file is empty", id="comment-only"),
+        pytest.param("- a\n- b\n", r"the config must be a mapping of keys, got list", id="not-a-mapping"),
+    ],
+)
+def test_yaml_file_problems(tmp_path, text, pattern):
+    path = _write(tmp_path, text)
+    with pytest.raises(ConfigError, match=rf"^{path}: {pattern}"):
+        load_config(path)
+
+
+def test_missing_config_file(tmp_path):
+    with pytest.raises(ConfigError, match=r"nope\.yaml: config file not found"):
+        load_config(tmp_path / "nope.yaml")
+
+
+def test_problems_in_a_file_are_labelled_with_the_file(tmp_path):
+    path = _write(tmp_path, "as_of: 2021-01\nseed: -3\n")
+    with pytest.raises(ConfigError) as info:
+        load_config(path)
+    assert str(info.value).startswith(f"{path}: 3 problems in the config:")
+    assert info.value.problems == [
+        "inputs: missing required key (where the data are and how columns map)",
+        "windows: missing required key (development and out-of-time windows)",
+        "seed: -3 is below the minimum 0",
+    ]
+
+
+YAML_CONFIG = """\
+as_of: 2021-01
+inputs:
+  panel: {path: data/panel.parquet}
+  loans: {path: ../shared/loans.csv}
+  macro: {path: /abs/macro.csv}
+windows:
+  development: {start: 2020-01, end: 2020-12}
+model:
+  covariates:
+    - {name: u, macro: unemployment_rate, lag: 2}
+"""
+
+
+def test_relative_paths_resolve_against_the_config_folder(tmp_path, monkeypatch):
+    folder = tmp_path / "configs"
+    folder.mkdir()
+    path = _write(folder, YAML_CONFIG)
+    monkeypatch.chdir(tmp_path)  # the working folder must not matter
+    cfg = load_config(Path("configs") / "run.yaml")
+    assert cfg.inputs.panel.path == folder / "data" / "panel.parquet"
+    assert cfg.inputs.loans.path == tmp_path / "shared" / "loans.csv"
+    assert cfg.inputs.macro.path == Path("/abs/macro.csv")
+    assert cfg.source == path
+    assert cfg.as_of == 2021 * 12 and str(cfg.as_of) == "2021-01"
+
+
+def test_defaults_are_filled(tmp_path):
+    cfg = config_from_dict(MINIMAL, base_dir=tmp_path)
+    assert cfg.default_definition.days_past_due == 90
+    assert cfg.events.paid_off_balance == 0.005
+    assert cfg.inputs.loans.rate_unit == "percent"
+    assert cfg.inputs.panel.columns.status is None
+    assert cfg.checks.severity == {}
+
+
+def test_config_is_frozen(tmp_path):
+    cfg = config_from_dict(MINIMAL, base_dir=tmp_path)
+    with pytest.raises(AttributeError):
+        cfg.as_of = 5  # type: ignore[misc]
+
+
+def test_to_dict_and_sha256_are_stable(tmp_path):
+    folder = tmp_path / "configs"
+    folder.mkdir()
+    path = _write(folder, YAML_CONFIG)
+    first, second = load_config(path), load_config(path)
+    plain = config_to_dict(first)
+    assert plain == config_to_dict(second)
+    assert plain["as_of"] == "2021-01"
+    assert plain["inputs"]["panel"]["path"] == str(folder / "data" / "panel.parquet")
+    assert plain["model"]["covariates"][0]["lag"] == 2
+    assert config_sha256(first) == config_sha256(second)
+    assert len(config_sha256(first)) == 64
+    # round trip: the plain form builds the same config and hash
+    again = config_from_dict(plain, base_dir=tmp_path / "elsewhere")
+    assert config_sha256(again) == config_sha256(first)
+    # and any change of value changes the hash
+    changed = config_from_dict({**plain, "seed": plain["seed"] + 1}, base_dir=tmp_path)
+    assert config_sha256(changed) != config_sha256(first)

@@ -1,0 +1,274 @@
+"""Tests of creditsurv.events: outcomes and the risk set, against hand-labelled loans."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from statsmodels.duration.survfunc import SurvfuncRight
+
+from creditsurv.config import config_from_dict
+from creditsurv.events import event_counts, label_events
+from creditsurv.panel import open_panel, raise_for_errors, run_checks
+
+ORIG = 2020 * 12  # 2020-01
+AS_OF = ORIG + 12  # 2021-01
+
+
+def _text(idx: int) -> str:
+    return f"{idx // 12:04d}-{idx % 12 + 1:02d}"
+
+
+def _loan(loan_id, dpd, balance=None, status=None, orig=ORIG, first_age=1, term=360):
+    """Rows of one loan from ``first_age``; ``dpd``, ``balance``, ``status`` are per row."""
+    n = len(dpd)
+    ages = list(range(first_age, first_age + n))
+    balance = balance or [1000.0 - a for a in ages]
+    status = status or ["current" if d < 30 else "delinquent" for d in dpd]
+    rows = pd.DataFrame(
+        {
+            "loan_id": loan_id,
+            "month": [_text(orig + a) for a in ages],
+            "age": ages,
+            "balance": balance,
+            "days_past_due": dpd,
+            "status": status,
+        }
+    )
+    fact = {"loan_id": loan_id, "origination_month": _text(orig), "original_balance": 1000.0, "note_rate": 5.0, "term": term}
+    return rows, fact
+
+
+# Each loan written out by hand; expectations below are labelled by hand from these rows.
+BOOK = [
+    # default at 90 dpd after 30 and 60; its rows then stop
+    _loan("default90", [0, 0, 30, 60, 90, 120]),
+    # 30, 60, back to current: no event; censored at the reporting month (age 12)
+    _loan("cure", [0, 30, 60, 30, 0, 0, 0, 0, 0, 0, 0, 0]),
+    # pays off at age 4, before its term
+    _loan("prepay", [0, 0, 0, 0], balance=[900.0, 800.0, 700.0, 0.0]),
+    # runs to its 6-month term and pays off at age 6
+    _loan("mature", [0] * 6, balance=[800.0, 600.0, 400.0, 200.0, 100.0, 0.0], term=6),
+    # rows stop at age 7 without a closure
+    _loan("left", [0] * 7),
+    # 90 dpd at age 4, then in workout until the reporting month
+    _loan("workout", [0, 30, 60, 90, 120, 150, 180, 210, 240, 270, 300, 330]),
+    # 90 dpd at age 4, then charged off with a zero balance at age 7
+    _loan(
+        "chargeoff",
+        [0, 30, 60, 90, 120, 150, 180],
+        balance=[999.0, 998.0, 997.0, 997.0, 997.0, 997.0, 0.0],
+        status=["current", "delinquent", "delinquent", "delinquent", "delinquent", "delinquent", "charged_off"],
+    ),
+    # status code 'default' at age 3 with only 30 dpd
+    _loan("status", [0, 30, 30, 0, 0], status=["current", "delinquent", "default", "default", "default"]),
+    # 90 dpd and a zero balance in the same row (a short sale): default, not prepayment
+    _loan("both", [0, 30, 60, 90], balance=[999.0, 998.0, 997.0, 0.0]),
+    # delayed entry: originated 2019-07, first seen at age 7, censored at the reporting month (age 18)
+    _loan("late", [0] * 12, orig=ORIG - 6, first_age=7),
+]
+
+# loan_id: entry_age, entry_month_idx, last_age, last_month_idx, event, event_age,
+#          event_month_idx, censor_reason, in_default_at_as_of, days_past_due_at_as_of, balance_at_as_of
+EXPECTED_OUTCOMES = {
+    "both": (1, ORIG + 1, 4, ORIG + 4, "default", 4, ORIG + 4, None, False, None, None),
+    "chargeoff": (1, ORIG + 1, 7, ORIG + 7, "default", 4, ORIG + 4, None, False, None, None),
+    "cure": (1, ORIG + 1, 12, AS_OF, "censored", None, None, "end_of_window", False, 0, 988.0),
+    "default90": (1, ORIG + 1, 6, ORIG + 6, "default", 5, ORIG + 5, None, False, None, None),
+    "late": (7, ORIG + 1, 18, AS_OF, "censored", None, None, "end_of_window", False, 0, 982.0),
+    "left": (1, ORIG + 1, 7, ORIG + 7, "censored", None, None, "left_panel", False, None, None),
+    "mature": (1, ORIG + 1, 6, ORIG + 6, "maturity", 6, ORIG + 6, None, False, None, None),
+    "prepay": (1, ORIG + 1, 4, ORIG + 4, "prepay", 4, ORIG + 4, None, False, None, None),
+    "status": (1, ORIG + 1, 5, ORIG + 5, "default", 3, ORIG + 3, None, False, None, None),
+    "workout": (1, ORIG + 1, 12, AS_OF, "default", 4, ORIG + 4, None, True, 330, 988.0),
+}
+
+# loan_id: outcome of each risk-set row, from its first row on
+EXPECTED_RISK_SET = {
+    "both": [0, 0, 0, 1],
+    "chargeoff": [0, 0, 0, 1],
+    "cure": [0] * 12,
+    "default90": [0, 0, 0, 0, 1],
+    "late": [0] * 12,
+    "left": [0] * 7,
+    "mature": [0] * 6,
+    "prepay": [0, 0, 0, 2],
+    "status": [0, 0, 1],
+    "workout": [0, 0, 0, 1],
+}
+
+
+def _config(tmp_path, panel, loans, **overrides):
+    panel.to_parquet(tmp_path / "panel.parquet", index=False)
+    loans.to_parquet(tmp_path / "loans.parquet", index=False)
+    data = {
+        "as_of": _text(AS_OF),
+        "windows": {"development": {"start": "2020-01", "end": "2020-12"}},
+        "inputs": {"panel": {"path": "panel.parquet", "columns": {"status": "status"}}, "loans": {"path": "loans.parquet"}},
+        "default_definition": {"days_past_due": 90, "status_codes": ["default"]},
+    }
+    data.update(overrides)
+    return config_from_dict(data, base_dir=tmp_path)
+
+
+@pytest.fixture
+def events_book_panel(tmp_path):
+    """The hand-labelled book, opened, checked and labelled."""
+    panel = pd.concat([rows for rows, _ in BOOK], ignore_index=True)
+    loans = pd.DataFrame([fact for _, fact in BOOK])
+    with open_panel(_config(tmp_path, panel, loans)) as p:
+        raise_for_errors(run_checks(p))
+        label_events(p)
+        yield p
+
+
+def test_loan_outcomes_match_hand_labels(events_book_panel):
+    got = events_book_panel.con.execute("SELECT * FROM loan_outcomes ORDER BY loan_id").fetchall()
+    assert [r[0] for r in got] == sorted(EXPECTED_OUTCOMES)
+    for row in got:
+        assert tuple(row[1:]) == EXPECTED_OUTCOMES[row[0]], row[0]
+
+
+def test_loan_outcomes_types(events_book_panel):
+    types = dict(events_book_panel.con.execute("SELECT column_name, column_type FROM (DESCRIBE loan_outcomes)").fetchall())
+    assert types == {
+        "loan_id": "VARCHAR", "entry_age": "INTEGER", "entry_month_idx": "INTEGER", "last_age": "INTEGER",
+        "last_month_idx": "INTEGER", "event": "VARCHAR", "event_age": "INTEGER", "event_month_idx": "INTEGER",
+        "censor_reason": "VARCHAR", "in_default_at_as_of": "BOOLEAN", "days_past_due_at_as_of": "INTEGER",
+        "balance_at_as_of": "DOUBLE",
+    }
+
+
+def test_risk_set_matches_hand_labels(events_book_panel):
+    got = events_book_panel.con.execute("SELECT loan_id, month_idx, age, outcome FROM loan_months ORDER BY loan_id, month_idx").df()
+    types = dict(events_book_panel.con.execute("SELECT column_name, column_type FROM (DESCRIBE loan_months)").fetchall())
+    assert types == {"loan_id": "VARCHAR", "month_idx": "INTEGER", "age": "INTEGER", "outcome": "TINYINT"}
+    for loan_id, outcomes in EXPECTED_RISK_SET.items():
+        rows = got[got["loan_id"] == loan_id]
+        entry = EXPECTED_OUTCOMES[loan_id][0]
+        assert rows["outcome"].tolist() == outcomes, loan_id
+        assert rows["age"].tolist() == list(range(entry, entry + len(outcomes))), loan_id
+    assert len(got) == sum(map(len, EXPECTED_RISK_SET.values()))
+
+
+def test_event_counts(events_book_panel):
+    counts = event_counts(events_book_panel)
+    assert list(counts.columns) == ["event", "censor_reason", "loans", "share"]
+    assert [tuple(r) for r in counts[["event", "censor_reason", "loans"]].astype(object).itertuples(index=False)] == [
+        ("default", None, 5),
+        ("prepay", None, 1),
+        ("maturity", None, 1),
+        ("censored", "end_of_window", 2),
+        ("censored", "left_panel", 1),
+    ]
+    assert counts["share"].sum() == pytest.approx(1.0, abs=1e-12)
+
+
+def test_event_counts_labels_when_needed(tmp_path):
+    panel = pd.concat([rows for rows, _ in BOOK[:3]], ignore_index=True)
+    loans = pd.DataFrame([fact for _, fact in BOOK[:3]])
+    with open_panel(_config(tmp_path, panel, loans)) as p:
+        counts = event_counts(p)
+    assert counts["loans"].sum() == 3
+
+
+def test_status_codes_alone_and_dpd_alone(tmp_path):
+    rows, fact = _loan("s", [0, 120, 0], status=["current", "current", "default"])
+    loans = pd.DataFrame([fact])
+    with open_panel(_config(tmp_path, rows, loans, default_definition={"days_past_due": None, "status_codes": ["default"]})) as p:
+        label_events(p)
+        assert p.con.execute("SELECT event, event_age FROM loan_outcomes").fetchall() == [("default", 3)]
+    with open_panel(_config(tmp_path, rows, loans, default_definition={"days_past_due": 120})) as p:
+        label_events(p)
+        assert p.con.execute("SELECT event, event_age FROM loan_outcomes").fetchall() == [("default", 2)]
+
+
+# --------------------------------------------------------------------------- invariants on a random book
+
+
+def _random_book(seed=7, n_loans=300):
+    """Loans whose monthly rows hit 90 dpd, pay off or stop at random; some enter late."""
+    rng = np.random.default_rng(seed)
+    panels, facts = [], []
+    for i in range(n_loans):
+        orig = AS_OF - int(rng.integers(13, 40))
+        first_age = int(rng.integers(1, 6))
+        dpd, balance = [], []
+        for age in range(first_age, AS_OF - orig + 1):
+            u = rng.random()
+            if u < 0.02:
+                dpd.append(90)
+                balance.append(500.0)
+                break
+            if u < 0.05:
+                dpd.append(0)
+                balance.append(0.0)
+                break
+            if u < 0.06:
+                break  # leaves the panel
+            dpd.append(int(rng.choice([0, 0, 0, 30, 60])))
+            balance.append(1000.0 - age)
+        if not dpd:
+            continue
+        rows, fact = _loan(f"r{i:03d}", dpd, balance=balance, orig=orig, first_age=first_age, term=int(rng.choice([24, 360])))
+        panels.append(rows)
+        facts.append(fact)
+    return pd.concat(panels, ignore_index=True), pd.DataFrame(facts)
+
+
+@pytest.fixture
+def events_random_book_panel(tmp_path):
+    panel, loans = _random_book()
+    with open_panel(_config(tmp_path, panel, loans, default_definition={"days_past_due": 90})) as p:
+        raise_for_errors(run_checks(p))
+        label_events(p)
+        yield p
+
+
+def test_at_most_one_event_and_it_is_the_last_risk_set_row(events_random_book_panel):
+    con = events_random_book_panel.con
+    bad = con.execute(
+        """
+        SELECT loan_id FROM (
+            SELECT loan_id, outcome, month_idx,
+                   count(*) FILTER (WHERE outcome <> 0) OVER (PARTITION BY loan_id) AS events,
+                   max(month_idx) OVER (PARTITION BY loan_id) AS last_idx
+            FROM loan_months)
+        WHERE events > 1 OR (outcome <> 0 AND month_idx <> last_idx)
+        """
+    ).fetchall()
+    assert bad == []
+    # the two tables agree loan by loan
+    mismatched = con.execute(
+        """
+        SELECT o.loan_id FROM loan_outcomes AS o
+        JOIN (SELECT loan_id, max(age) AS last_risk_age, max(outcome) AS outcome FROM loan_months GROUP BY loan_id) AS m
+          USING (loan_id)
+        WHERE m.outcome <> CASE o.event WHEN 'default' THEN 1 WHEN 'prepay' THEN 2 ELSE 0 END
+           OR m.last_risk_age <> coalesce(o.event_age, o.last_age)
+        """
+    ).fetchall()
+    assert mismatched == []
+    kinds = dict(con.execute("SELECT event, count(*) FROM loan_outcomes GROUP BY ALL").fetchall())
+    assert set(kinds) == {"default", "prepay", "maturity", "censored"}  # the book exercises every case
+
+
+def test_kaplan_meier_from_outcomes_equals_risk_set_hazards(events_random_book_panel):
+    con = events_random_book_panel.con
+    out = con.execute(
+        "SELECT entry_age, coalesce(event_age, last_age) AS time, (event = 'default')::INTEGER AS status "
+        "FROM loan_outcomes ORDER BY loan_id"
+    ).df()
+    # Independent source: statsmodels' Kaplan-Meier with left truncation (a loan first seen
+    # at age e is at risk from age e, i.e. after entry time e - 1); prepayment and maturity censor.
+    km = SurvfuncRight(out["time"].to_numpy(float), out["status"].to_numpy(float), entry=out["entry_age"].to_numpy(float) - 1)
+    hazards = con.execute(
+        "SELECT age, count(*) AS at_risk, count(*) FILTER (WHERE outcome = 1) AS defaults "
+        "FROM loan_months GROUP BY age ORDER BY age"
+    ).df()
+    survival = np.cumprod(1.0 - hazards["defaults"] / hazards["at_risk"])
+    direct = pd.Series(survival.to_numpy(), index=hazards["age"].to_numpy())
+    assert len(km.surv_times) > 10
+    np.testing.assert_allclose(km.surv_prob, direct.loc[km.surv_times.astype(int)].to_numpy(), rtol=0, atol=1e-12)
+    # at-risk counts agree too
+    np.testing.assert_array_equal(km.n_risk, hazards.set_index("age").loc[km.surv_times.astype(int), "at_risk"].to_numpy())
