@@ -71,7 +71,7 @@ def _problems(change, tmp_path) -> list[str]:
             lambda d: d.update(
                 scenarios=[{"name": "a", "weight": 0.5, "path": "a.csv"}, {"name": "b", "weight": 0.4, "path": "b.csv"}]
             ),
-            "(top level): scenarios: weights must sum to 1, got 0.9 (a=0.5, b=0.4)",
+            "scenarios: weights must sum to 1, got 0.9 (a=0.5, b=0.4)",
             id="weights",
         ),
         pytest.param(
