@@ -1,0 +1,822 @@
+"""The feature spec: one definition of the design, evaluated on history and on the future.
+
+A :class:`FeatureSpec` is built from the config's ``model`` and ``collateral``
+sections. It is used in three steps:
+
+1. :meth:`FeatureSpec.raw_query` writes the SQL that yields, per risk-set row
+   (``loan_months``), the *raw inputs*: ``loan_id``, ``month_idx``, ``age``,
+   ``outcome`` and one column per input key (see :meth:`FeatureSpec.inputs`).
+2. :meth:`FeatureSpec.learn` computes the learned constants (standardisation
+   mean and sd, categorical levels, bin labels, the age range) from the
+   development rows with SQL aggregates and returns a learned copy of the spec.
+   The constants are plain JSON-safe data (:meth:`FeatureSpec.to_dict`).
+3. :meth:`FeatureSpec.design` evaluates the design matrix in numpy from a dict
+   of raw arrays. The same function serves the fit (raw rows read from DuckDB)
+   and the projection (raw arrays of future months), with no training data.
+
+Input keys
+----------
+A covariate on a column reads the key named like the column (``credit_score``,
+``current_ltv``); a macro covariate reads ``macro:<series>:<lag>`` (the
+series value ``lag`` months before the row's month). These are the input
+names of the projection stage's hazard-source protocol. ``age`` is always present; ``log_age`` is computed from ``age``
+when not given.
+
+Design parameterisation
+-----------------------
+Every design starts with an ``intercept`` column. The loan-age baseline adds:
+
+* ``age_bands`` -- one indicator per band except the first (the reference);
+  band ``j`` holds ages in ``[edges[j-1], edges[j])``, the first band ages
+  below ``edges[0]``, the last band ages at or above ``edges[-1]``.
+  Columns ``age_band[3-5]``, ..., ``age_band[120+]``.
+* ``spline`` -- a natural cubic spline in age with the given knots (first and
+  last are the boundary knots): ``age_lin`` and ``age_ns[1]`` ...
+  ``age_ns[K-2]`` (truncated power form, linear beyond the boundary knots;
+  Hastie, Tibshirani & Friedman, *Elements of Statistical Learning*, eq. 5.4-5.5).
+* ``age_indicators`` -- one indicator per age month above the youngest age
+  seen in training (the reference), up to ``max_age``; older ages share the
+  ``max_age`` indicator. Columns ``age[2]``, ..., ``age[max_age]``.
+* ``none`` -- the intercept only.
+
+Numeric covariates are raised to ``floor``, lowered to ``cap``, then
+transformed (``log`` or ``standardise`` with the learned mean and sd).
+Categorical covariates and bins give one indicator per level except the
+reference (``name[level]``). An interaction multiplies every column of one
+term with every column of the other (``a:b``).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import json
+from dataclasses import dataclass, field
+from typing import Any, Mapping
+
+import numpy as np
+import pandas as pd
+
+from .errors import ConfigError, FeatureError
+
+__all__ = [
+    "FeatureSpec",
+    "RawInput",
+    "feature_spec",
+    "natural_spline_basis",
+    "quote_ident",
+    "quote_literal",
+]
+
+RISK_SET_COLUMNS = ("loan_id", "month_idx", "age", "outcome")
+DERIVED_COLUMNS = ("current_ltv", "rate_incentive", "log_age")
+_LOAN_TERMS = ("origination_idx", "original_balance", "note_rate", "term", "property_value")
+
+
+# --------------------------------------------------------------------------- SQL text helpers
+
+
+def quote_ident(name: str) -> str:
+    """Quote ``name`` as a SQL identifier (double quotes, inner quotes doubled)."""
+    text = str(name)
+    if "\x00" in text:
+        raise FeatureError(f"identifier {text!r} contains a NUL character")
+    return '"' + text.replace('"', '""') + '"'
+
+
+def quote_literal(value: str) -> str:
+    """Quote ``value`` as a SQL text literal (single quotes, inner quotes doubled)."""
+    text = str(value)
+    if "\x00" in text:
+        raise FeatureError(f"text {text!r} contains a NUL character")
+    return "'" + text.replace("'", "''") + "'"
+
+
+def _closest(word: str, choices) -> str:
+    match = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.5)
+    return f"; did you mean '{match[0]}'?" if match else ""
+
+
+def _fmt(x: float) -> str:
+    return f"{x:g}"
+
+
+# --------------------------------------------------------------------------- natural cubic spline
+
+
+def natural_spline_basis(x: np.ndarray, knots) -> np.ndarray:
+    """Natural cubic spline basis without the constant, shape ``(n, K-1)``.
+
+    Column 0 is ``x`` itself; columns ``1..K-2`` are the truncated-power terms
+    ``N_{k+2}(x) = d_k(x) - d_{K-1}(x)`` with
+    ``d_k(x) = ((x - t_k)_+^3 - (x - t_K)_+^3) / (t_K - t_k)`` (ESL eq. 5.4-5.5),
+    divided by ``(t_K - t_1)^2`` to keep them on the scale of ``x``. Together
+    with a constant they span the cubic splines with knots ``t`` that are
+    linear below ``t_1`` and above ``t_K``.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    t = np.asarray(knots, dtype=np.float64)
+    k = len(t)
+    out = np.empty((x.shape[0], k - 1))
+    out[:, 0] = x
+    if k < 3:
+        return out
+    scale = (t[-1] - t[0]) ** 2
+
+    def d(j):
+        return (np.maximum(x - t[j], 0.0) ** 3 - np.maximum(x - t[-1], 0.0) ** 3) / (t[-1] - t[j])
+
+    last = d(k - 2)
+    for j in range(k - 2):
+        out[:, j + 1] = (d(j) - last) / scale
+    return out
+
+
+# --------------------------------------------------------------------------- raw inputs
+
+
+@dataclass(frozen=True)
+class RawInput:
+    """One raw input column: where it comes from and the key it is read under."""
+
+    key: str
+    source: str  # "risk_set", "panel", "loans", "derived", "macro"
+    column: str | None = None
+    series: str | None = None
+    lag: int = 0
+
+
+def _macro_key(series: str, lag: int) -> str:
+    return f"macro:{series}:{int(lag)}"
+
+
+def _columns_of(con, table: str) -> list[str] | None:
+    try:
+        cur = con.execute(f"SELECT * FROM {quote_ident(table)} LIMIT 0")
+        names = [d[0] for d in cur.description]
+        cur.fetchall()
+        return names
+    except Exception:  # noqa: BLE001 - a missing table shows up as "no columns"
+        return None
+
+
+# --------------------------------------------------------------------------- the spec
+
+
+@dataclass(frozen=True)
+class FeatureSpec:
+    """A declarative feature spec, optionally with learned constants.
+
+    Build it with :func:`feature_spec` (from the config) or
+    :meth:`from_dict` (from a saved model). ``learned`` is ``None`` until
+    :meth:`learn` has run.
+    """
+
+    baseline: dict
+    covariates: tuple[dict, ...]
+    interactions: tuple[tuple[str, str], ...] = ()
+    collateral: dict = field(default_factory=dict)
+    learned: dict | None = None
+
+    # ----------------------------------------------------------------- serialisation
+
+    def to_dict(self) -> dict:
+        """JSON-safe plain data: the spec and its learned constants."""
+        return {
+            "baseline": dict(self.baseline),
+            "covariates": [dict(c) for c in self.covariates],
+            "interactions": [list(p) for p in self.interactions],
+            "collateral": dict(self.collateral),
+            "learned": json.loads(json.dumps(self.learned)) if self.learned is not None else None,
+        }
+
+    @classmethod
+    def from_dict(cls, data: Mapping) -> "FeatureSpec":
+        """Rebuild a spec written by :meth:`to_dict`."""
+        try:
+            base = dict(data["baseline"])
+            base["edges"] = [int(e) for e in base.get("edges", [])]
+            base["knots"] = [float(k) for k in base.get("knots", [])]
+            covs = tuple(dict(c, bins=[float(b) for b in c.get("bins", [])]) for c in data["covariates"])
+            return cls(
+                baseline=base,
+                covariates=covs,
+                interactions=tuple(tuple(p) for p in data.get("interactions", [])),
+                collateral=dict(data.get("collateral", {})),
+                learned=data.get("learned"),
+            )
+        except (KeyError, TypeError, ValueError) as exc:
+            raise FeatureError(f"saved feature spec is malformed: {exc!r}") from None
+
+    # ----------------------------------------------------------------- inputs and SQL
+
+    def inputs(self) -> list[RawInput]:
+        """The raw input keys the design reads (besides ``age``), in spec order.
+
+        Sources are resolved against the DuckDB tables only in :meth:`raw_query`;
+        here ``source`` is ``"column"`` or ``"macro"``.
+        """
+        seen, out = set(), []
+        for c in self.covariates:
+            if c.get("macro"):
+                item = RawInput(_macro_key(c["macro"], int(c.get("lag", 0))), "macro", series=c["macro"], lag=int(c.get("lag", 0)))
+            else:
+                item = RawInput(c["column"], "column", column=c["column"])
+            if item.key not in seen and item.key != "age":
+                seen.add(item.key)
+                out.append(item)
+        return out
+
+    def _resolve(self, con) -> dict:
+        """Find each input's table; raise FeatureError listing every problem."""
+        tables = {t: _columns_of(con, t) for t in ("loan_months", "panel", "loans", "macro")}
+        if tables["loan_months"] is None:
+            raise FeatureError("the risk-set view 'loan_months' does not exist on this connection")
+        lm = set(tables["loan_months"])
+        missing = [c for c in RISK_SET_COLUMNS if c not in lm]
+        if missing:
+            raise FeatureError(f"view 'loan_months' lacks column(s) {missing}; it has {sorted(lm)}")
+        panel = [c for c in (tables["panel"] or []) if c not in ("loan_id", "month_idx", "age")]
+        loans = [c for c in (tables["loans"] or []) if c != "loan_id"]
+        macro = [c for c in (tables["macro"] or []) if c != "month_idx"]
+        coll = self.collateral
+        derived = ["log_age"]
+        hpi = coll.get("hpi_series")
+        region_col = coll.get("region_column")
+        if hpi and region_col and region_col in loans and "property_value" in loans:
+            derived.append("current_ltv")
+        if coll.get("market_rate_series") and "note_rate" in loans:
+            derived.append("rate_incentive")
+        available = sorted(set(lm) | set(panel) | set(loans) | set(DERIVED_COLUMNS))
+        problems, resolved = [], []
+        by_key = {}
+        for c in self.covariates:
+            if c.get("macro"):
+                s = c["macro"]
+                if s not in macro:
+                    where = "no 'macro' view exists" if tables["macro"] is None else f"available: {', '.join(macro)}"
+                    problems.append(f"covariate {c['name']!r}: unknown macro series {s!r} ({where}){_closest(s, macro)}")
+                continue
+            col = c["column"]
+            if col in lm:
+                src = "risk_set"
+            elif col in panel:
+                src = "panel"
+            elif col in loans:
+                src = "loans"
+            elif col in DERIVED_COLUMNS:
+                if col not in derived:
+                    problems.append(f"covariate {c['name']!r}: derived column {col!r} cannot be built: " + _derived_needs(col, coll, loans))
+                    continue
+                src = "derived"
+            else:
+                problems.append(f"covariate {c['name']!r}: unknown column {col!r}{_closest(col, available)}")
+                continue
+            by_key[col] = src
+        if problems:
+            raise FeatureError("feature spec does not match the data:\n" + "\n".join(f"  - {p}" for p in problems))
+        for item in self.inputs():
+            if item.source == "macro":
+                resolved.append(item)
+            else:
+                resolved.append(dataclasses.replace(item, source=by_key[item.key]))
+        return {"inputs": resolved, "macro": macro, "loans": loans, "panel": panel}
+
+    def raw_query(self, con, where_sql: str = "TRUE", *, order: bool = True) -> str:
+        """SQL yielding one row per risk-set row with the raw inputs.
+
+        Columns: ``loan_id``, ``month_idx``, ``age``, ``outcome`` and each input
+        key. ``where_sql`` is a boolean SQL expression over those columns (use
+        ``?`` placeholders for values and pass them as params); rows are
+        ordered by ``loan_id, month_idx`` so that reads are deterministic.
+        """
+        info = self._resolve(con)
+        q = quote_ident
+        inputs = info["inputs"]
+        needs_ltv = any(i.key == "current_ltv" for i in inputs)
+        needs_inc = any(i.key == "rate_incentive" for i in inputs)
+        ctes = []
+        ctes.append(
+            "risk_set AS (\n  SELECT lm.\"loan_id\", lm.\"month_idx\", lm.\"age\", lm.\"outcome\"\n"
+            "  FROM \"loan_months\" AS lm\n)"
+        )
+        prev = "risk_set"
+        panel_cols = [i for i in inputs if i.source == "panel"]
+        if panel_cols:
+            sel = ", ".join(f"p.{q(i.column)} AS {q(i.key)}" for i in panel_cols)
+            ctes.append(
+                f"with_panel AS (\n  SELECT r.*, {sel}\n  FROM {prev} AS r\n"
+                "  LEFT JOIN \"panel\" AS p ON p.\"loan_id\" = r.\"loan_id\" AND p.\"month_idx\" = r.\"month_idx\"\n)"
+            )
+            prev = "with_panel"
+        loan_sel = [f"l.{q(i.column)} AS {q(i.key)}" for i in inputs if i.source == "loans"]
+        if needs_ltv or needs_inc:
+            extra = ["note_rate"] if needs_inc else []
+            if needs_ltv:
+                extra = ["origination_idx", "original_balance", "note_rate", "term", "property_value", self.collateral["region_column"]]
+            for name in dict.fromkeys(extra):
+                loan_sel.append(f"l.{q(name)} AS {q('_cs_' + name)}")
+        if loan_sel:
+            ctes.append(
+                f"with_loans AS (\n  SELECT r.*, {', '.join(loan_sel)}\n  FROM {prev} AS r\n"
+                "  LEFT JOIN \"loans\" AS l ON l.\"loan_id\" = r.\"loan_id\"\n)"
+            )
+            prev = "with_loans"
+        macro_items = [i for i in inputs if i.source == "macro"]
+        lags = sorted({i.lag for i in macro_items} | ({0} if (needs_ltv or needs_inc) else set()))
+        if lags:
+            sel, joins = [], []
+            for lag in lags:
+                alias = f"m_lag{lag}"
+                joins.append(f"  LEFT JOIN \"macro\" AS {alias} ON {alias}.\"month_idx\" = r.\"month_idx\" - {int(lag)}")
+            for i in macro_items:
+                sel.append(f"m_lag{i.lag}.{q(i.series)} AS {q(i.key)}")
+            if needs_inc:
+                sel.append(f"m_lag0.{q(self.collateral['market_rate_series'])} AS \"_cs_market_rate\"")
+            if needs_ltv:
+                regions = self._hpi_regions(info["macro"])
+                region = q("_cs_" + self.collateral["region_column"])
+                for tag, alias in (("now", "m_lag0"), ("orig", "m_orig")):
+                    whens = " ".join(f"WHEN {quote_literal(r)} THEN {alias}.{q(s)}" for r, s in regions)
+                    sel.append(f"CASE lower(CAST(r.{region} AS VARCHAR)) {whens} END AS \"_cs_hpi_{tag}\"")
+                joins.append("  LEFT JOIN \"macro\" AS m_orig ON m_orig.\"month_idx\" = r.\"_cs_origination_idx\"")
+            ctes.append(f"with_macro AS (\n  SELECT r.*, {', '.join(sel)}\n  FROM {prev} AS r\n" + "\n".join(joins) + "\n)")
+            prev = "with_macro"
+        if needs_ltv or needs_inc:
+            sel = []
+            if needs_ltv:
+                # Scheduled level-payment balance after (age - 1) payments.
+                k = "LEAST(GREATEST(r.\"age\" - 1, 0), r.\"_cs_term\")"
+                rate = "(r.\"_cs_note_rate\" / 12.0)"
+                n = "r.\"_cs_term\""
+                bal = (
+                    f"CASE WHEN {rate} = 0 THEN r.\"_cs_original_balance\" * (1.0 - {k} / {n}) "
+                    f"ELSE r.\"_cs_original_balance\" * (power(1 + {rate}, {n}) - power(1 + {rate}, {k})) "
+                    f"/ (power(1 + {rate}, {n}) - 1) END"
+                )
+                value = "(r.\"_cs_property_value\" * r.\"_cs_hpi_now\" / r.\"_cs_hpi_orig\")"
+                sel.append(f"{bal} / {value} AS \"current_ltv\"")
+            if needs_inc:
+                sel.append("100.0 * r.\"_cs_note_rate\" - r.\"_cs_market_rate\" AS \"rate_incentive\"")
+            ctes.append(f"derived AS (\n  SELECT r.*, {', '.join(sel)}\n  FROM {prev} AS r\n)")
+            prev = "derived"
+        keys = [i.key for i in inputs if i.key != "log_age" or i.source != "derived"]
+        cols = ", ".join(q(c) for c in (*RISK_SET_COLUMNS, *keys))
+        ctes.append(f"raw AS (\n  SELECT {cols}\n  FROM {prev}\n)")
+        sql = "WITH " + ",\n".join(ctes) + f"\nSELECT * FROM raw\nWHERE ({where_sql})"
+        return sql + "\nORDER BY \"loan_id\", \"month_idx\"" if order else sql
+
+    def _hpi_regions(self, macro_cols) -> list[tuple[str, str]]:
+        template = self.collateral["hpi_series"]
+        if "{region}" not in template:
+            return []
+        pre, post = template.split("{region}", 1)
+        out = []
+        for c in macro_cols:
+            if c.startswith(pre) and c.endswith(post) and len(c) > len(pre) + len(post):
+                region = c[len(pre): len(c) - len(post)]
+                if region == region.lower():
+                    out.append((region, c))
+        return out
+
+    # ----------------------------------------------------------------- learning
+
+    def learn(self, con, where_sql: str = "TRUE", params=()) -> "FeatureSpec":
+        """Return a copy of the spec with constants learned from the development rows.
+
+        Every problem found (missing values, log of non-positive values,
+        unknown reference levels, knots outside the ages seen, macro lags that
+        run past the macro history) is reported in one :class:`FeatureError`.
+        """
+        body = self.raw_query(con, where_sql, order=False)
+        q = quote_ident
+        info = self._resolve(con)
+        aggs = ["count(*)", "min(\"age\")", "max(\"age\")", "min(\"month_idx\")"]
+        keys = [i.key for i in info["inputs"] if i.key != "log_age"]
+        for k in keys:
+            aggs.append(f"count(*) - count({q(k)})")
+        numeric = []
+        for c in self.covariates:
+            if c.get("kind", "numeric") != "numeric":
+                continue
+            x = self._clip_sql(c)
+            if c.get("transform") == "standardise":
+                numeric.append((c, "std"))
+                aggs += [f"avg({x})", f"stddev_samp({x})"]
+            elif c.get("transform") == "log":
+                numeric.append((c, "log"))
+                aggs.append(f"count(*) FILTER (WHERE {x} <= 0)")
+        row = con.execute(f"WITH data AS (\n{body}\n)\nSELECT {', '.join(aggs)} FROM data", list(params)).fetchall()[0]
+        n, age_min, age_max, month_min = row[:4]
+        problems = []
+        if not n:
+            raise FeatureError(f"no risk-set rows match the development filter ({where_sql})")
+        pos = 4
+        nulls = dict(zip(keys, row[pos: pos + len(keys)]))
+        pos += len(keys)
+        learned: dict[str, Any] = {"n_rows": int(n), "age_min": int(age_min), "age_max": int(age_max), "covariates": {}}
+        for c, what in numeric:
+            if what == "std":
+                mean, sd = row[pos], row[pos + 1]
+                pos += 2
+                if sd is None or not sd > 0:
+                    problems.append(f"covariate {c['name']!r}: cannot standardise, the values do not vary (sd = {sd})")
+                else:
+                    learned["covariates"][c["name"]] = {"mean": float(mean), "sd": float(sd)}
+            else:
+                bad = row[pos]
+                pos += 1
+                if bad:
+                    problems.append(
+                        f"covariate {c['name']!r}: log of non-positive values in {bad} rows; set floor: to a positive value"
+                    )
+        # Macro history: the first month each lagged series needs.
+        macro_first = {}
+        for item in info["inputs"]:
+            if item.source != "macro" or item.series in macro_first:
+                continue
+            macro_first[item.series] = con.execute(
+                f"SELECT min(\"month_idx\") FROM \"macro\" WHERE {q(item.series)} IS NOT NULL"
+            ).fetchall()[0][0]
+        for c in self.covariates:
+            if not c.get("macro"):
+                continue
+            lag = int(c.get("lag", 0))
+            first = macro_first.get(c["macro"])
+            need = month_min - lag
+            if first is None or need < first:
+                from ._months import format_month
+
+                have = "no values" if first is None else f"first available {format_month(first)}"
+                problems.append(
+                    f"covariate {c['name']!r}: macro series {c['macro']!r} at lag {lag} runs past the start of the "
+                    f"macro history: first month needed {format_month(need)}, {have}"
+                )
+        for c in self.covariates:
+            key = _macro_key(c["macro"], int(c.get("lag", 0))) if c.get("macro") else c["column"]
+            bad = nulls.get(key, 0)
+            if bad and not any(p.startswith(f"covariate {c['name']!r}: macro") for p in problems):
+                extra = ""
+                if key == "current_ltv":
+                    extra = (f" (check property_value, term and that every {self.collateral.get('region_column')!r} "
+                             f"value has an HPI series {self.collateral.get('hpi_series')!r} covering origination)")
+                problems.append(f"covariate {c['name']!r}: {bad} rows have no value for {key!r}{extra}")
+        # Baseline.
+        base = self.baseline
+        kind = base.get("kind", "age_bands")
+        if kind == "spline":
+            knots = list(base["knots"])
+            outside = [k for k in knots if k < age_min or k > age_max]
+            if len(knots) < 2:
+                problems.append("baseline: a spline needs at least two knots")
+            if outside:
+                problems.append(
+                    f"baseline: spline knots {[_fmt(k) for k in outside]} lie outside the ages in the data "
+                    f"({age_min} to {age_max}); move them inside that range"
+                )
+        elif kind == "age_indicators":
+            max_age = base.get("max_age") or int(age_max)
+            learned["max_age"] = int(min(max_age, age_max))
+            if learned["max_age"] <= age_min:
+                problems.append(f"baseline: max_age {max_age} leaves no age indicator above the youngest age {age_min}")
+        elif kind == "age_bands":
+            learned["band_labels"] = _band_labels(base["edges"])
+        # Levels of categoricals and bins.
+        for c in self.covariates:
+            kind_c = c.get("kind", "numeric")
+            if kind_c == "categorical":
+                key = c["column"] if c.get("column") else _macro_key(c["macro"], int(c.get("lag", 0)))
+                rows = con.execute(
+                    f"WITH data AS (\n{body}\n)\nSELECT DISTINCT CAST({q(key)} AS VARCHAR) FROM data WHERE {q(key)} IS NOT NULL",
+                    list(params),
+                ).fetchall()
+                levels = sorted(r[0] for r in rows)
+            elif kind_c == "bins":
+                levels = _bin_labels(c["bins"])
+            else:
+                continue
+            ref = c.get("reference")
+            if ref is None:
+                ref = levels[0] if levels else None
+            elif str(ref) not in levels:
+                problems.append(
+                    f"covariate {c['name']!r}: reference level {ref!r} is not a level (levels: {', '.join(levels)})"
+                    + _closest(ref, levels)
+                )
+                continue
+            if len(levels) < 2:
+                problems.append(f"covariate {c['name']!r}: needs at least two levels, the data have {levels}")
+                continue
+            learned["covariates"][c["name"]] = {"levels": levels, "reference": str(ref)}
+        if problems:
+            raise FeatureError("cannot learn the feature spec from the development data:\n" + "\n".join(f"  - {p}" for p in problems))
+        spec = dataclasses.replace(self, learned=learned)
+        learned["columns"] = spec._column_names()
+        dup = _duplicates(learned["columns"])
+        if dup:
+            raise FeatureError(f"design column names repeat: {dup}; rename the covariates")
+        return spec
+
+    @staticmethod
+    def _clip_sql(c) -> str:
+        key = c["column"] if c.get("column") else _macro_key(c["macro"], int(c.get("lag", 0)))
+        if key == "log_age":
+            x = "ln(CAST(\"age\" AS DOUBLE))"
+        else:
+            x = f"CAST({quote_ident(key)} AS DOUBLE)"
+        if c.get("floor") is not None:
+            x = f"GREATEST({x}, {float(c['floor'])!r})"
+        if c.get("cap") is not None:
+            x = f"LEAST({x}, {float(c['cap'])!r})"
+        return x
+
+    # ----------------------------------------------------------------- design
+
+    @property
+    def required_inputs(self) -> list[str]:
+        """Raw input names :meth:`design` reads: ``age`` and every input key."""
+        return ["age", *(i.key for i in self.inputs())]
+
+    def _require_learned(self) -> dict:
+        if self.learned is None:
+            raise FeatureError("the feature spec has not been learned; call learn(con, ...) first")
+        return self.learned
+
+    @property
+    def columns(self) -> list[str]:
+        """Design column names (after :meth:`learn`)."""
+        return list(self._require_learned()["columns"])
+
+    def _baseline_names(self) -> list[str]:
+        base, lrn = self.baseline, self._require_learned()
+        kind = base.get("kind", "age_bands")
+        if kind == "age_bands":
+            return [f"age_band[{lab}]" for lab in lrn["band_labels"][1:]]
+        if kind == "spline":
+            return ["age_lin"] + [f"age_ns[{j}]" for j in range(1, len(base["knots"]) - 1)]
+        if kind == "age_indicators":
+            return [f"age[{a}]" for a in range(lrn["age_min"] + 1, lrn["max_age"] + 1)]
+        return []
+
+    def _term_names(self) -> dict[str, list[str]]:
+        lrn = self._require_learned()
+        out = {}
+        for c in self.covariates:
+            kind = c.get("kind", "numeric")
+            if kind == "numeric":
+                out[c["name"]] = [c["name"]]
+            else:
+                lv = lrn["covariates"][c["name"]]
+                out[c["name"]] = [f"{c['name']}[{v}]" for v in lv["levels"] if v != lv["reference"]]
+        return out
+
+    def _column_names(self) -> list[str]:
+        terms = self._term_names()
+        names = ["intercept", *self._baseline_names()]
+        for c in self.covariates:
+            names += terms[c["name"]]
+        for a, b in self.interactions:
+            names += [f"{x}:{y}" for x in terms[a] for y in terms[b]]
+        return names
+
+    def indicator_groups(self) -> list[tuple[str, str, list[int]]]:
+        """Sets of mutually exclusive indicator columns: ``(term, reference, column indices)``.
+
+        The rows with every indicator of a set at zero are the term's reference
+        level. Used by the fit to check each level has events of each cause.
+        """
+        names = self.columns
+        idx = {n: i for i, n in enumerate(names)}
+        groups = []
+        base = self._baseline_names()
+        kind = self.baseline.get("kind", "age_bands")
+        if kind == "age_bands":
+            groups.append(("age_band", f"age_band[{self.learned['band_labels'][0]}]", [idx[n] for n in base]))
+        elif kind == "age_indicators":
+            groups.append(("age", f"age[{self.learned['age_min']}]", [idx[n] for n in base]))
+        terms = self._term_names()
+        for c in self.covariates:
+            if c.get("kind", "numeric") != "numeric":
+                ref = self.learned["covariates"][c["name"]]["reference"]
+                groups.append((c["name"], f"{c['name']}[{ref}]", [idx[n] for n in terms[c["name"]]]))
+        return groups
+
+    def design(self, raw) -> tuple[np.ndarray, list[str]]:
+        """Evaluate the design matrix.
+
+        Parameters
+        ----------
+        raw : dict of str to ndarray, or DataFrame
+            ``age`` and every input key (see :meth:`inputs`), one value per row.
+
+        Returns
+        -------
+        X : ndarray of float64, shape (n, p)
+        names : list of str, length p
+
+        Raises
+        ------
+        FeatureError
+            A key is missing, a value is missing, a log argument is not
+            positive, or a categorical level was not seen in training.
+        """
+        lrn = self._require_learned()
+        if isinstance(raw, pd.DataFrame):
+            raw = {c: raw[c].to_numpy() for c in raw.columns}
+        if "age" not in raw:
+            raise FeatureError("raw inputs lack 'age'")
+        age = np.asarray(raw["age"], dtype=np.float64)
+        n = age.shape[0]
+        names = self.columns
+        X = np.zeros((n, len(names)))
+        X[:, 0] = 1.0
+        col = 1
+        base = self.baseline
+        kind = base.get("kind", "age_bands")
+        if np.isnan(age).any():
+            raise FeatureError(f"age: {int(np.isnan(age).sum())} rows have no value")
+        if kind == "age_bands":
+            band = np.searchsorted(np.asarray(base["edges"], dtype=np.float64), age, side="right")
+            nb = len(base["edges"])
+            rows = np.nonzero(band > 0)[0]
+            X[rows, col + band[rows] - 1] = 1.0
+            col += nb
+        elif kind == "spline":
+            B = natural_spline_basis(age, base["knots"])
+            X[:, col: col + B.shape[1]] = B
+            col += B.shape[1]
+        elif kind == "age_indicators":
+            lo, hi = lrn["age_min"], lrn["max_age"]
+            a = np.minimum(age, hi).astype(np.int64)
+            rows = np.nonzero(a > lo)[0]
+            X[rows, col + a[rows] - lo - 1] = 1.0
+            col += hi - lo
+        term_cols: dict[str, np.ndarray] = {}
+        for c in self.covariates:
+            vals = self._term_values(c, raw, n, lrn)
+            k = vals.shape[1]
+            X[:, col: col + k] = vals
+            term_cols[c["name"]] = X[:, col: col + k]
+            col += k
+        for a, b in self.interactions:
+            A, B = term_cols[a], term_cols[b]
+            for i in range(A.shape[1]):
+                X[:, col: col + B.shape[1]] = A[:, i: i + 1] * B
+                col += B.shape[1]
+        return X, names
+
+    def _term_values(self, c, raw, n, lrn) -> np.ndarray:
+        name = c["name"]
+        key = c["column"] if c.get("column") else _macro_key(c["macro"], int(c.get("lag", 0)))
+        if key not in raw:
+            if key == "log_age":
+                values = np.log(np.asarray(raw["age"], dtype=np.float64))
+            else:
+                raise FeatureError(f"covariate {name!r}: raw inputs lack {key!r} (have: {', '.join(sorted(raw))})")
+        else:
+            values = np.asarray(raw[key])
+        if values.shape[0] != n:
+            raise FeatureError(f"covariate {name!r}: {values.shape[0]} values for {n} rows")
+        kind = c.get("kind", "numeric")
+        if kind == "categorical":
+            lv = lrn["covariates"][name]
+            missing = pd.isna(values)
+            if missing.any():
+                raise FeatureError(f"covariate {name!r}: {int(missing.sum())} rows have no value for {key!r}")
+            text = values.astype(object) if values.dtype.kind in "OUS" else values.astype(str).astype(object)
+            codes = pd.Index(lv["levels"], dtype=object).get_indexer(text)
+            bad = codes < 0
+            if bad.any():
+                unknown = sorted({str(v) for v in text[bad]})
+                raise FeatureError(
+                    f"covariate {name!r}: level(s) {unknown[:10]} were not seen in training "
+                    f"(levels: {', '.join(lv['levels'])})"
+                )
+            return _indicators(codes, lv["levels"], lv["reference"])
+        x = np.asarray(values, dtype=np.float64)
+        nan = np.isnan(x)
+        if nan.any():
+            raise FeatureError(f"covariate {name!r}: {int(nan.sum())} rows have no value for {key!r}")
+        if c.get("floor") is not None:
+            x = np.maximum(x, float(c["floor"]))
+        if c.get("cap") is not None:
+            x = np.minimum(x, float(c["cap"]))
+        if kind == "bins":
+            lv = lrn["covariates"][name]
+            codes = np.searchsorted(np.asarray(c["bins"], dtype=np.float64), x, side="right")
+            return _indicators(codes, lv["levels"], lv["reference"])
+        transform = c.get("transform", "none")
+        if transform == "log":
+            bad = int((x <= 0).sum())
+            if bad:
+                raise FeatureError(f"covariate {name!r}: log of non-positive values in {bad} rows; set floor: to a positive value")
+            x = np.log(x)
+        elif transform == "standardise":
+            st = lrn["covariates"][name]
+            x = (x - st["mean"]) / st["sd"]
+        return x[:, None]
+
+
+def _indicators(codes: np.ndarray, levels: list[str], reference: str) -> np.ndarray:
+    keep = [j for j, v in enumerate(levels) if v != reference]
+    out = np.zeros((codes.shape[0], len(keep)))
+    pos = np.full(len(levels), -1)
+    pos[keep] = np.arange(len(keep))
+    col = pos[codes]
+    rows = np.nonzero(col >= 0)[0]
+    out[rows, col[rows]] = 1.0
+    return out
+
+
+def _band_labels(edges) -> list[str]:
+    e = [int(x) for x in edges]
+    labels = [f"1-{e[0] - 1}" if e[0] > 2 else "1"]
+    for lo, hi in zip(e, e[1:]):
+        labels.append(f"{lo}-{hi - 1}" if hi - 1 > lo else f"{lo}")
+    labels.append(f"{e[-1]}+")
+    return labels
+
+
+def _bin_labels(cuts) -> list[str]:
+    c = [float(x) for x in cuts]
+    labels = [f"<{_fmt(c[0])}"]
+    labels += [f"[{_fmt(lo)},{_fmt(hi)})" for lo, hi in zip(c, c[1:])]
+    labels.append(f">={_fmt(c[-1])}")
+    return labels
+
+
+def _duplicates(names) -> list[str]:
+    seen, dup = set(), []
+    for n in names:
+        if n in seen:
+            dup.append(n)
+        seen.add(n)
+    return dup
+
+
+def _derived_needs(col: str, coll: dict, loans: list[str]) -> str:
+    if col == "current_ltv":
+        need = []
+        if not coll.get("hpi_series"):
+            need.append("collateral.hpi_series")
+        if not coll.get("region_column"):
+            need.append("collateral.region_column")
+        elif coll["region_column"] not in loans:
+            need.append(f"loan-table column {coll['region_column']!r}")
+        if "property_value" not in loans:
+            need.append("loan-table column 'property_value'")
+        return "needs " + ", ".join(need)
+    if col == "rate_incentive":
+        return "needs collateral.market_rate_series and the loan-table column 'note_rate'"
+    return "unavailable"
+
+
+def feature_spec(model, collateral=None) -> FeatureSpec:
+    """Build a :class:`FeatureSpec` from the config's ``model`` (a ``ModelSpec``) and ``collateral``.
+
+    Raises :class:`ConfigError` naming ``model.covariates[i]`` for a
+    covariate that cannot enter the design.
+    """
+    problems = []
+    covs = []
+    for i, c in enumerate(model.covariates):
+        d = {
+            "name": c.name,
+            "column": c.column,
+            "macro": c.macro,
+            "lag": int(c.lag),
+            "kind": c.kind,
+            "transform": c.transform,
+            "floor": c.floor,
+            "cap": c.cap,
+            "bins": [float(b) for b in c.bins],
+            "reference": c.reference,
+        }
+        if d["kind"] == "bins" and d["reference"] is not None and d["reference"] not in _bin_labels(d["bins"]):
+            problems.append(
+                f"model.covariates[{i}].reference: {d['reference']!r} is not a bin label "
+                f"(labels: {', '.join(_bin_labels(d['bins']))})" + _closest(d["reference"], _bin_labels(d["bins"]))
+            )
+        covs.append(d)
+    names = [c["name"] for c in covs]
+    for i, pair in enumerate(model.interactions):
+        for nm in pair:
+            if nm not in names:
+                problems.append(f"model.interactions[{i}]: {nm!r} is not a covariate name{_closest(nm, names)}")
+    if problems:
+        raise ConfigError("model section:\n" + "\n".join(f"  - {p}" for p in problems), problems)
+    b = model.baseline
+    baseline = {"kind": b.kind, "edges": [int(e) for e in b.edges], "knots": [float(k) for k in b.knots], "max_age": b.max_age}
+    coll = {}
+    if collateral is not None:
+        coll = {
+            "region_column": collateral.region_column,
+            "hpi_series": collateral.hpi_series,
+            "market_rate_series": collateral.market_rate_series,
+        }
+    return FeatureSpec(
+        baseline=baseline,
+        covariates=tuple(covs),
+        interactions=tuple(tuple(p) for p in model.interactions),
+        collateral=coll,
+    )

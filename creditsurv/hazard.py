@@ -1,0 +1,670 @@
+"""Discrete-time competing-risk hazard models, fitted exactly and out of core.
+
+Outcome ``Y`` of a loan-month is 0 (continue), 1 (default) or 2 (prepay).
+
+``kind="multinomial"``
+    One multinomial logit with ``continue`` as the reference and a separate
+    coefficient vector per cause: ``h_k = exp(eta_k) / (1 + sum_j exp(eta_j))``
+    (Allison 1982). Same likelihood as ``statsmodels.api.MNLogit``.
+``kind="cause_specific"``
+    One binary logit per cause: the cause against "no event this month". The
+    rows of the *other* cause are left out of that cause's logit, i.e. the
+    other event censors the loan at that month. Same likelihood as
+    ``statsmodels.api.GLM(..., family=Binomial())`` on those rows. The two
+    logits share no parameters, so the covariance is block diagonal.
+
+With ``causes=("default",)`` (or ``("prepay",)``) only that cause is modelled:
+rows of the other outcome are left out and both kinds reduce to one binary logit.
+
+The fit is Newton-Raphson with step halving on the (penalised)
+log-likelihood. A first pass streams the raw rows from DuckDB in batches,
+evaluates the design with :meth:`FeatureSpec.design` and writes it (float64)
+to a temporary file; each Newton iteration then streams that file in batches
+and accumulates the gradient and the observed information with BLAS, so memory
+is bounded by ``batch_size`` rows, not by the number of loan-months. When every
+term is discrete (age bands or indicators, bins, categoricals), the rows are
+first collapsed to covariate-pattern counts with SQL ``GROUP BY`` (exact,
+fewer rows) and fitted with frequency weights.
+
+The ridge penalty ``ridge * ||beta||^2 / 2`` applies to every coefficient
+except the intercepts; with a penalty the reported covariance is the inverse of
+the penalised information.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import shutil
+import tempfile
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from scipy import linalg, stats
+
+from .errors import ConvergenceError, DataError, FewEventsWarning, ModelError, SeparationError, SingularDesignError
+from .features import FeatureSpec, quote_ident
+
+__all__ = ["CAUSES", "HazardResults", "fit_hazard", "fit_model", "load_model"]
+
+CAUSES = {"default": 1, "prepay": 2}
+_FORMAT = "creditsurv.hazard_model"
+_FORMAT_VERSION = 1
+_MIN_EVENTS_PER_PARAMETER = 10
+
+
+# --------------------------------------------------------------------------- results
+
+
+@dataclass
+class HazardResults:
+    """A fitted hazard model.
+
+    Attributes
+    ----------
+    params, bse : DataFrame
+        Coefficients and standard errors; index the design column names,
+        one column per cause (``default``, ``prepay``).
+    cov : ndarray, shape (K*p, K*p)
+        Covariance of the coefficients, cause-major (all of ``default`` first),
+        the inverse of the observed (penalised) information.
+    loglik, aic, bic : float
+        Unpenalised log-likelihood at the estimates; AIC and BIC with
+        ``K*p`` parameters and ``n_rows`` observations.
+    n_rows : int
+        Loan-months the fit used. ``events`` counts them by cause.
+    iterations, converged, iteration_log
+        Newton iterations, and per iteration ``loglik``, ``max_step`` and
+        the step fraction kept by the line search.
+    kind, ridge, causes, spec
+        What was fitted: model kind, penalty, causes and the learned
+        :class:`FeatureSpec`.
+    data_fingerprint : str
+        SHA-256 of the evaluated training design, outcomes and weights in
+        read order: identical data and spec give the same fingerprint.
+    """
+
+    params: pd.DataFrame
+    bse: pd.DataFrame
+    cov: np.ndarray
+    loglik: float
+    aic: float
+    bic: float
+    n_rows: int
+    events: dict
+    iterations: int
+    converged: bool
+    kind: str
+    ridge: float
+    causes: tuple
+    spec: FeatureSpec
+    data_fingerprint: str
+    iteration_log: list = field(default_factory=list)
+    collapsed: bool = False
+    n_stored_rows: int = 0
+
+    def summary(self, alpha: float = 0.05) -> pd.DataFrame:
+        """Tidy table: cause, term, estimate, std_error, z, p_value, ci_lo, ci_hi."""
+        q = stats.norm.ppf(1 - alpha / 2)
+        frames = []
+        for cause in self.causes:
+            est = self.params[cause].to_numpy()
+            se = self.bse[cause].to_numpy()
+            z = est / se
+            frames.append(
+                pd.DataFrame(
+                    {
+                        "cause": cause,
+                        "term": self.params.index.to_list(),
+                        "estimate": est,
+                        "std_error": se,
+                        "z": z,
+                        "p_value": 2 * stats.norm.sf(np.abs(z)),
+                        "ci_lo": est - q * se,
+                        "ci_hi": est + q * se,
+                    }
+                )
+            )
+        return pd.concat(frames, ignore_index=True)
+
+    def predict_hazards(self, raw) -> tuple[np.ndarray, np.ndarray]:
+        """Hazards of default and prepayment for raw rows (see :meth:`FeatureSpec.design`).
+
+        A cause that was not fitted gets hazard 0. For ``cause_specific`` each
+        hazard is its own binary logit's probability.
+        """
+        X, _ = self.spec.design(raw)
+        beta = self.params[list(self.causes)].to_numpy().T
+        eta = X @ beta.T
+        if self.kind == "multinomial":
+            m = np.maximum(eta.max(axis=1), 0.0)
+            e = np.exp(eta - m[:, None])
+            h = e / (np.exp(-m) + e.sum(axis=1))[:, None]
+        else:
+            h = 1.0 / (1.0 + np.exp(-eta))
+        out = {c: h[:, i] for i, c in enumerate(self.causes)}
+        zero = np.zeros(X.shape[0])
+        return out.get("default", zero), out.get("prepay", zero)
+
+    @property
+    def required_inputs(self) -> list[str]:
+        """Raw input names the model reads (the projection's hazard-source protocol)."""
+        return self.spec.required_inputs
+
+    def hazards(self, raw) -> tuple[np.ndarray, np.ndarray]:
+        """Alias of :meth:`predict_hazards` (the projection's hazard-source protocol)."""
+        return self.predict_hazards(raw)
+
+    def to_dict(self) -> dict:
+        """The model as JSON-safe plain data (the layout :meth:`save` writes)."""
+        from . import __version__
+
+        terms = self.params.index.to_list()
+        order = [f"{c}:{t}" for c in self.causes for t in terms]
+        return {
+            "format": _FORMAT,
+            "format_version": _FORMAT_VERSION,
+            "creditsurv_version": __version__,
+            "kind": self.kind,
+            "causes": list(self.causes),
+            "ridge": self.ridge,
+            "terms": terms,
+            "coefficients": {c: dict(zip(terms, map(float, self.params[c]))) for c in self.causes},
+            "std_errors": {c: dict(zip(terms, map(float, self.bse[c]))) for c in self.causes},
+            "covariance": {"order": order, "matrix": [[float(v) for v in row] for row in self.cov]},
+            "fit": {
+                "loglik": self.loglik,
+                "aic": self.aic,
+                "bic": self.bic,
+                "n_rows": self.n_rows,
+                "n_stored_rows": self.n_stored_rows,
+                "collapsed": self.collapsed,
+                "events": dict(self.events),
+                "iterations": self.iterations,
+                "converged": self.converged,
+                "iteration_log": self.iteration_log,
+                "data_fingerprint": self.data_fingerprint,
+            },
+            "features": self.spec.to_dict(),
+        }
+
+    def save(self, path) -> Path:
+        """Write the model as readable JSON (indent 2, sorted keys); return the path."""
+        path = Path(path)
+        text = json.dumps(self.to_dict(), indent=2, sort_keys=True, allow_nan=False)
+        path.write_text(text + "\n", encoding="utf-8")
+        return path
+
+
+def load_model(path) -> HazardResults:
+    """Read a model written by :meth:`HazardResults.save`."""
+    path = Path(path)
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ModelError(f"{path}: model file not found") from None
+    except (OSError, ValueError) as exc:
+        raise ModelError(f"{path}: not a readable model JSON ({exc})") from None
+    if not isinstance(data, dict) or data.get("format") != _FORMAT:
+        raise ModelError(f"{path}: not a creditsurv hazard model (format should be {_FORMAT!r})")
+    if data.get("format_version") != _FORMAT_VERSION:
+        raise ModelError(f"{path}: model format version {data.get('format_version')} is not {_FORMAT_VERSION}")
+    try:
+        terms = list(data["terms"])
+        causes = tuple(data["causes"])
+        params = pd.DataFrame({c: [data["coefficients"][c][t] for t in terms] for c in causes}, index=terms)
+        bse = pd.DataFrame({c: [data["std_errors"][c][t] for t in terms] for c in causes}, index=terms)
+        fit = data["fit"]
+        spec = FeatureSpec.from_dict(data["features"])
+        if spec.learned is None or list(spec.learned.get("columns", [])) != terms:
+            raise ModelError(f"{path}: the feature spec's columns do not match the coefficient terms")
+        return HazardResults(
+            params=params,
+            bse=bse,
+            cov=np.asarray(data["covariance"]["matrix"], dtype=np.float64),
+            loglik=fit["loglik"],
+            aic=fit["aic"],
+            bic=fit["bic"],
+            n_rows=fit["n_rows"],
+            events=dict(fit["events"]),
+            iterations=fit["iterations"],
+            converged=fit["converged"],
+            kind=data["kind"],
+            ridge=data["ridge"],
+            causes=causes,
+            spec=spec,
+            data_fingerprint=fit["data_fingerprint"],
+            iteration_log=list(fit["iteration_log"]),
+            collapsed=fit.get("collapsed", False),
+            n_stored_rows=fit.get("n_stored_rows", 0),
+        )
+    except (KeyError, TypeError, ValueError) as exc:
+        raise ModelError(f"{path}: model JSON is missing or has a bad entry: {exc!r}") from None
+
+
+# --------------------------------------------------------------------------- design store
+
+
+class _DesignStore:
+    """The evaluated design, outcomes and weights in temporary files, read back in batches."""
+
+    def __init__(self, p: int, temp_dir=None):
+        self.p = p
+        self.dir = Path(tempfile.mkdtemp(prefix="creditsurv-fit-", dir=temp_dir))
+        self._files = {k: open(self.dir / f"{k}.bin", "wb") for k in ("X", "y", "w")}
+        self.n = 0
+        self.X = self.y = self.w = None
+
+    def append(self, X: np.ndarray, y: np.ndarray, w: np.ndarray) -> None:
+        self._files["X"].write(np.ascontiguousarray(X, dtype=np.float64).tobytes())
+        self._files["y"].write(np.ascontiguousarray(y, dtype=np.int8).tobytes())
+        self._files["w"].write(np.ascontiguousarray(w, dtype=np.float64).tobytes())
+        self.n += X.shape[0]
+
+    def finish(self) -> None:
+        for f in self._files.values():
+            f.close()
+        if self.n:
+            self.X = np.memmap(self.dir / "X.bin", dtype=np.float64, mode="r", shape=(self.n, self.p))
+            self.y = np.memmap(self.dir / "y.bin", dtype=np.int8, mode="r", shape=(self.n,))
+            self.w = np.memmap(self.dir / "w.bin", dtype=np.float64, mode="r", shape=(self.n,))
+
+    def batches(self, size: int):
+        for start in range(0, self.n, size):
+            stop = min(start + size, self.n)
+            yield np.array(self.X[start:stop]), np.array(self.y[start:stop]), np.array(self.w[start:stop])
+
+    def close(self) -> None:
+        for f in self._files.values():
+            if not f.closed:
+                f.close()
+        self.X = self.y = self.w = None
+        shutil.rmtree(self.dir, ignore_errors=True)
+
+
+# --------------------------------------------------------------------------- the likelihood
+
+
+def _evaluate(store, beta, codes, kind, batch_size, need_hess):
+    """Log-likelihood, score (K, p) and observed information (K*p, K*p) at ``beta`` (K, p).
+
+    Per-cause quantities are held as (K, n) rows so that every elementwise
+    step runs over contiguous memory; the information blocks are
+    ``X' diag(v) X`` products done by BLAS.
+    """
+    K, p = beta.shape
+    ll = 0.0
+    g = np.zeros((K, p))
+    H = np.zeros((K * p, K * p)) if need_hess else None
+    for X, y, w in store.batches(batch_size):
+        E = beta @ X.T  # (K, n)
+        Y = y[None, :] == codes[:, None]  # (K, n)
+        if kind == "multinomial":
+            m = np.maximum(E.max(axis=0), 0.0)
+            P = np.exp(E - m)
+            den = np.exp(-m) + P.sum(axis=0)
+            P /= den
+            ll += float(w @ (np.where(Y, E, 0.0).sum(axis=0) - m - np.log(den)))
+            g += ((Y - P) * w) @ X
+            if need_hess:
+                for a in range(K):
+                    for b in range(a, K):
+                        v = w * P[a] * ((1.0 - P[b]) if a == b else -P[b])
+                        H[a * p:(a + 1) * p, b * p:(b + 1) * p] += X.T @ (X * v[:, None])
+        else:
+            for a, code in enumerate(codes):
+                wa = w * ((y == 0) | (y == code))
+                ea = E[a]
+                P = 0.5 * (1.0 + np.tanh(0.5 * ea))  # logistic, stable for large |eta|
+                ll += float(wa @ (np.where(Y[a], ea, 0.0) - np.logaddexp(0.0, ea)))
+                g[a] += (wa * (Y[a] - P)) @ X
+                if need_hess:
+                    v = wa * P * (1.0 - P)
+                    H[a * p:(a + 1) * p, a * p:(a + 1) * p] += X.T @ (X * v[:, None])
+    if need_hess:
+        H = np.triu(H) + np.triu(H, 1).T
+    return ll, g, H
+
+
+# --------------------------------------------------------------------------- checks
+
+
+def _singular_columns(xtx: np.ndarray, names: list[str]) -> list[list[str]]:
+    d = np.diag(xtx).copy()
+    zero = [names[j] for j in np.nonzero(d <= 0)[0]]
+    if zero:
+        return [[z] for z in zero]
+    s = 1.0 / np.sqrt(d)
+    C = xtx * s[:, None] * s[None, :]
+    vals, vecs = np.linalg.eigh(C)
+    small = np.nonzero(vals < 1e-10 * vals.max())[0]
+    groups = []
+    for j in small:
+        v = vecs[:, j]
+        idx = [i for i in np.argsort(-np.abs(v)) if abs(v[i]) > 0.05]
+        groups.append([names[i] for i in idx])
+    return groups
+
+
+def _separation_problems(S, is01, names, groups, causes, codes, kind) -> list[str]:
+    """Indicator columns (and reference levels) with no events of a cause, or only events."""
+    problems = []
+    totals = S.sum(axis=0)  # by outcome 0, 1, 2
+
+    def check(label, counts):
+        n_rows = counts.sum()
+        if n_rows <= 0:
+            return
+        for cause, code in zip(causes, codes):
+            e = counts[code]
+            eligible = n_rows if kind == "multinomial" else counts[0] + counts[code]
+            if e == 0:
+                problems.append(
+                    f"{label} has no {cause} events ({_n(n_rows)} loan-months); the {cause} coefficient would run to "
+                    "minus infinity: merge the level with another, drop the term, or fit with ridge > 0"
+                )
+            elif e == eligible:
+                problems.append(f"{label} has only {cause} events ({_n(e)} loan-months); merge the level, drop the term, or fit with ridge > 0")
+
+    for j, name in enumerate(names):
+        if j == 0 or not is01[j]:
+            continue
+        check(f"column {name!r}", S[j])
+    for term, ref, cols in groups:
+        if cols:
+            check(f"reference level {ref!r} of {term!r}", totals - S[cols].sum(axis=0))
+    return problems
+
+
+def _n(x) -> str:
+    return f"{int(round(x)):,}"
+
+
+# --------------------------------------------------------------------------- the fit
+
+
+def _is_discrete(spec: FeatureSpec) -> bool:
+    if spec.baseline.get("kind", "age_bands") not in ("age_bands", "age_indicators", "none"):
+        return False
+    return all(c.get("kind", "numeric") in ("categorical", "bins") for c in spec.covariates)
+
+
+def fit_hazard(
+    con,
+    spec: FeatureSpec,
+    *,
+    where_sql: str = "TRUE",
+    params=(),
+    kind: str = "multinomial",
+    causes=("default", "prepay"),
+    ridge: float = 0.0,
+    batch_size: int = 250_000,
+    max_iter: int = 50,
+    tol: float = 1e-8,
+    collapse: bool | str = "auto",
+    temp_dir=None,
+) -> HazardResults:
+    """Fit a discrete-time competing-risk hazard model on the risk set.
+
+    Parameters
+    ----------
+    con : duckdb.DuckDBPyConnection
+        Connection holding the ``loan_months``, ``panel``, ``loans`` and
+        ``macro`` views.
+    spec : FeatureSpec
+        The feature spec; learned from the same rows first if not learned yet.
+    where_sql, params
+        Row filter over the raw-input columns (e.g. ``"month_idx BETWEEN ? AND ?"``)
+        and its bound values.
+    kind : {"multinomial", "cause_specific"}
+    causes : tuple of {"default", "prepay"}
+        Causes to model; a single cause drops the rows of the other outcome.
+    ridge : float, default 0
+        Penalty ``ridge * ||beta||^2 / 2`` on the non-intercept coefficients.
+    batch_size : int
+        Rows per batch when reading and when accumulating the information.
+    max_iter : int
+        Newton iterations at most.
+    tol : float
+        Converged when the largest absolute Newton step is below ``tol``.
+    collapse : bool or "auto"
+        Collapse to covariate-pattern counts (only possible when every term
+        is discrete; "auto" does so when possible).
+    temp_dir : path, optional
+        Folder for the temporary design file (default: the system temp folder).
+
+    Returns
+    -------
+    HazardResults
+
+    Raises
+    ------
+    SeparationError, SingularDesignError, ConvergenceError, ModelError
+    """
+    if kind not in ("multinomial", "cause_specific"):
+        raise ModelError(f"kind must be 'multinomial' or 'cause_specific', got {kind!r}")
+    causes = tuple(causes)
+    if not causes or any(c not in CAUSES for c in causes) or len(set(causes)) != len(causes):
+        raise ModelError(f"causes must be a non-empty subset of {list(CAUSES)}, got {list(causes)}")
+    causes = tuple(c for c in CAUSES if c in causes)
+    codes = np.array([CAUSES[c] for c in causes], dtype=np.int8)
+    dropped = [code for code in CAUSES.values() if code not in codes]
+    if ridge < 0 or not math.isfinite(ridge):
+        raise ModelError(f"ridge must be a finite number >= 0, got {ridge}")
+    if batch_size < 1 or max_iter < 1 or not tol > 0:
+        raise ModelError("batch_size and max_iter must be >= 1 and tol > 0")
+    if spec.learned is None:
+        spec = spec.learn(con, where_sql, params)
+    names = spec.columns
+    p = len(names)
+    K = len(causes)
+    if collapse == "auto":
+        collapse = _is_discrete(spec)
+    elif collapse and not _is_discrete(spec):
+        raise ModelError("collapse=True needs a fully discrete design (age bands or indicators, bins, categoricals)")
+
+    sql = spec.raw_query(con, where_sql, order=not collapse)
+    if collapse:
+        keys = [i.key for i in spec.inputs() if i.key != "log_age"]
+        group = ", ".join(quote_ident(k) for k in ["age", "outcome", *keys])
+        sql = f"WITH data AS (\n{sql}\n)\nSELECT {group}, count(*) AS \"_cs_weight\"\nFROM data\nGROUP BY ALL\nORDER BY ALL"
+
+    store = _DesignStore(p, temp_dir)
+    try:
+        # One hash per stream so that the fingerprint does not depend on batch boundaries.
+        digests = {k: hashlib.sha256() for k in ("X", "y", "w")}
+        S = np.zeros((p, 3))
+        xtx = np.zeros((p, p))
+        is01 = np.ones(p, dtype=bool)
+        rel = con.sql(sql, params=list(params)) if params else con.sql(sql)
+        with rel.to_arrow_reader(batch_size=batch_size) as reader:
+            for batch in reader:
+                raw = {nm: batch.column(i).to_numpy(zero_copy_only=False) for i, nm in enumerate(batch.schema.names)}
+                y = np.asarray(raw["outcome"])
+                if y.dtype.kind == "f" and np.isnan(y).any() or not np.isin(y, (0, 1, 2)).all():
+                    bad = sorted(set(np.unique(y[~np.isin(y, (0, 1, 2))]).tolist()))[:5]
+                    raise DataError(f"loan_months.outcome must be 0, 1 or 2; found {bad}")
+                y = y.astype(np.int8)
+                w = np.asarray(raw["_cs_weight"], dtype=np.float64) if collapse else np.ones(y.shape[0])
+                if dropped:
+                    keep = ~np.isin(y, dropped)
+                    raw = {k: v[keep] for k, v in raw.items()}
+                    y, w = y[keep], w[keep]
+                if y.shape[0] == 0:
+                    continue
+                X, _ = spec.design(raw)
+                store.append(X, y, w)
+                digests["X"].update(np.ascontiguousarray(X).tobytes())
+                digests["y"].update(y.tobytes())
+                digests["w"].update(w.tobytes())
+                onehot = (y[:, None] == np.arange(3)[None, :]) * w[:, None]
+                S += X.T @ onehot
+                xtx += (X * w[:, None]).T @ X
+                is01 &= ((X == 0) | (X == 1)).all(axis=0)
+        store.finish()
+        if store.n == 0:
+            raise ModelError(f"no loan-months to fit (filter: {where_sql})")
+        totals = S[0]
+        n_rows = int(round(totals.sum()))
+        events = {c: int(round(totals[code])) for c, code in zip(causes, codes)}
+
+        groups = _singular_columns(xtx, names)
+        if groups:
+            text = "; ".join(
+                f"column {g[0]!r} is zero in every row" if len(g) == 1 else "columns " + ", ".join(repr(x) for x in g) + " are collinear"
+                for g in groups
+            )
+            raise SingularDesignError(
+                f"the design is singular: {text}. Drop one of the collinear terms, merge levels or bands, or change the reference level"
+            )
+        missing = [c for c in causes if events[c] == 0]
+        if missing:
+            raise SeparationError(f"no {', '.join(missing)} events in the {n_rows:,} loan-months; remove the cause from causes or widen the data")
+        if ridge == 0:
+            problems = _separation_problems(S, is01, names, spec.indicator_groups(), causes, codes, kind)
+            if problems:
+                raise SeparationError("quasi-complete separation:\n" + "\n".join(f"  - {t}" for t in problems))
+        for c in causes:
+            if events[c] < _MIN_EVENTS_PER_PARAMETER * p:
+                warnings.warn(
+                    FewEventsWarning(
+                        f"{c}: {events[c]:,} events for {p} parameters ({events[c] / p:.1f} per parameter, "
+                        f"fewer than {_MIN_EVENTS_PER_PARAMETER}); estimates may be unstable"
+                    ),
+                    stacklevel=2,
+                )
+
+        beta, ll, H, log, converged = _newton(store, names, causes, codes, kind, totals, ridge, batch_size, max_iter, tol)
+        pen = np.tile(np.r_[0.0, np.full(p - 1, ridge)], K)
+        try:
+            cov = linalg.inv(H + np.diag(pen))
+        except linalg.LinAlgError:
+            raise SingularDesignError("the information matrix at the estimates is singular; fit with ridge > 0 or drop terms") from None
+        cov = 0.5 * (cov + cov.T)
+        se = np.sqrt(np.clip(np.diag(cov), 0.0, None)).reshape(K, p)
+        k_par = K * p
+        return HazardResults(
+            params=pd.DataFrame(beta.T, index=names, columns=list(causes)),
+            bse=pd.DataFrame(se.T, index=names, columns=list(causes)),
+            cov=cov,
+            loglik=ll,
+            aic=-2 * ll + 2 * k_par,
+            bic=-2 * ll + k_par * math.log(n_rows),
+            n_rows=n_rows,
+            events=events,
+            iterations=len(log) - 1,
+            converged=converged,
+            kind=kind,
+            ridge=float(ridge),
+            causes=causes,
+            spec=spec,
+            data_fingerprint=hashlib.sha256(
+                f"creditsurv-design|{store.n}|{'|'.join(names)}|".encode()
+                + "|".join(d.hexdigest() for d in digests.values()).encode()
+            ).hexdigest(),
+            iteration_log=log,
+            collapsed=bool(collapse),
+            n_stored_rows=store.n,
+        )
+    finally:
+        store.close()
+
+
+def _newton(store, names, causes, codes, kind, totals, ridge, batch_size, max_iter, tol):
+    K, p = len(causes), len(names)
+    beta = np.zeros((K, p))
+    for a, code in enumerate(codes):
+        base = totals[0] if kind == "multinomial" else totals[0]
+        beta[a, 0] = math.log(totals[code] / base) if base > 0 else 0.0
+    pen = np.tile(np.r_[0.0, np.full(p - 1, ridge)], K)
+
+    def objective(ll, b):
+        return ll - 0.5 * float(pen @ (b.ravel() ** 2))
+
+    ll, g, H = _evaluate(store, beta, codes, kind, batch_size, True)
+    obj = objective(ll, beta)
+    log = [{"iteration": 0, "loglik": ll, "max_step": None, "step_fraction": None}]
+    for it in range(1, max_iter + 1):
+        grad = g.ravel() - pen * beta.ravel()
+        A = H + np.diag(pen)
+        try:
+            step = linalg.cho_solve(linalg.cho_factor(A), grad)
+        except linalg.LinAlgError:
+            try:
+                step = linalg.solve(A, grad, assume_a="sym")
+            except linalg.LinAlgError:
+                raise _convergence_error("the information matrix is singular at an iterate", log) from None
+        step = step.reshape(K, p)
+        t = 1.0
+        new = beta + step
+        ll_new, g_new, H_new = _evaluate(store, new, codes, kind, batch_size, True)
+        obj_new = objective(ll_new, new)
+        slack = 1e-12 * max(1.0, abs(obj))
+        while not (obj_new >= obj - slack):
+            t *= 0.5
+            if t < 1e-10:
+                break
+            new = beta + t * step
+            ll_new, _, _ = _evaluate(store, new, codes, kind, batch_size, False)
+            obj_new = objective(ll_new, new)
+            H_new = None
+        max_step = float(np.max(np.abs(t * step)))
+        if t < 1e-10:
+            log.append({"iteration": it, "loglik": ll, "max_step": 0.0, "step_fraction": 0.0})
+            if float(np.max(np.abs(step))) < math.sqrt(tol):
+                return beta, ll, H, log, True
+            raise _convergence_error("the line search could not increase the log-likelihood", log)
+        if H_new is None:
+            ll_new, g_new, H_new = _evaluate(store, new, codes, kind, batch_size, True)
+        log.append({"iteration": it, "loglik": ll_new, "max_step": max_step, "step_fraction": t})
+        change = abs(obj_new - obj)
+        beta, ll, g, H, obj = new, ll_new, g_new, H_new, obj_new
+        if max_step < tol or change <= 1e-15 * max(1.0, abs(obj)):
+            return beta, ll, H, log, True
+    raise _convergence_error(f"no convergence in {max_iter} iterations", log)
+
+
+def _convergence_error(what: str, log: list) -> ConvergenceError:
+    err = ConvergenceError(_convergence_text(what, log))
+    err.iteration_log = list(log)
+    return err
+
+
+def _convergence_text(what: str, log: list) -> str:
+    lines = [f"Newton-Raphson failed: {what}.", "  iteration        loglik      max|step|"]
+    for row in log:
+        step = "" if row["max_step"] is None else f"{row['max_step']:.3e}"
+        lines.append(f"  {row['iteration']:>9d}  {row['loglik']:>14.6f}  {step:>12}")
+    lines.append(
+        "Try: a ridge penalty (model.ridge > 0), fewer terms or merged levels, "
+        "or a larger model.fit.max_iter."
+    )
+    return "\n".join(lines)
+
+
+def fit_model(con, model, collateral=None, *, where_sql: str = "TRUE", params=(), temp_dir=None) -> HazardResults:
+    """Fit the model a config describes: ``model`` is the config's ``ModelSpec``.
+
+    Builds the feature spec from ``model`` and ``collateral``, learns it on the
+    rows ``where_sql`` selects and fits with ``model.kind``, ``model.ridge``
+    and ``model.fit`` (batch size, iterations, tolerance).
+    """
+    from .features import feature_spec
+
+    spec = feature_spec(model, collateral).learn(con, where_sql, params)
+    return fit_hazard(
+        con,
+        spec,
+        where_sql=where_sql,
+        params=params,
+        kind=model.kind,
+        ridge=model.ridge,
+        batch_size=model.fit.batch_size,
+        max_iter=model.fit.max_iter,
+        tol=model.fit.tol,
+        temp_dir=temp_dir,
+    )

@@ -1,0 +1,269 @@
+"""Tests of creditsurv.features: the feature spec, its SQL and its numpy design."""
+
+from __future__ import annotations
+
+import copy
+import json
+
+import duckdb
+import numpy as np
+import pandas as pd
+import pytest
+
+from creditsurv.config import Baseline, Collateral, Covariate, ModelSpec
+from creditsurv.errors import ConfigError, FeatureError
+from creditsurv.features import FeatureSpec, feature_spec, natural_spline_basis, quote_ident, quote_literal
+
+from test_hazard import connect, simulate_book
+
+
+@pytest.fixture(scope="module")
+def book():
+    return simulate_book(n_loans=400, seed=3, max_age=24)
+
+
+@pytest.fixture()
+def con(book):
+    c = connect(book)
+    yield c
+    c.close()
+
+
+def _spec(*covariates, baseline=None, interactions=()):
+    model = ModelSpec(baseline=baseline or Baseline(), covariates=tuple(covariates), interactions=interactions)
+    return feature_spec(model, Collateral())
+
+
+def _raw(con, spec, where="TRUE"):
+    return con.sql(spec.raw_query(con, where)).df()
+
+
+# --------------------------------------------------------------------------- quoting
+
+
+def test_quote_helpers_double_inner_quotes():
+    assert quote_ident('we"ird') == '"we""ird"'
+    assert quote_literal("o'neil") == "'o''neil'"
+
+
+def test_raw_query_quotes_odd_column_names(book):
+    # A loan-table column whose name holds a double quote and a space must be read as data, not SQL.
+    loans = book["loans"].rename(columns={"dti": 'debt "to" income'})
+    con = connect({**book, "loans": loans})
+    spec = _spec(Covariate(name="dti", column='debt "to" income')).learn(con)
+    raw = _raw(con, spec)
+    expected = loans.set_index("loan_id").loc[raw["loan_id"], 'debt "to" income'].to_numpy()
+    np.testing.assert_array_equal(raw['debt "to" income'].to_numpy(), expected)
+
+
+# --------------------------------------------------------------------------- raw inputs
+
+
+def test_raw_inputs_match_direct_computation(con, book):
+    spec = _spec(
+        Covariate(name="u3", macro="unemployment_rate", lag=3),
+        Covariate(name="ltv", column="current_ltv"),
+        Covariate(name="inc", column="rate_incentive"),
+        Covariate(name="score", column="credit_score"),
+        Covariate(name="bal", column="balance"),
+    ).learn(con)
+    raw = _raw(con, spec)
+    lm = book["loan_months"].sort_values(["loan_id", "month_idx"]).reset_index(drop=True)
+    np.testing.assert_array_equal(raw["loan_id"], lm["loan_id"])
+    macro = book["macro"].set_index("month_idx")
+    # Reference: pandas look-ups of the macro table at month - 3.
+    np.testing.assert_allclose(raw["macro:unemployment_rate:3"], macro.loc[raw["month_idx"] - 3, "unemployment_rate"].to_numpy(), rtol=0, atol=0)
+    loans = book["loans"].set_index("loan_id").loc[raw["loan_id"]]
+    # Reference: the amortisation schedule rolled forward month by month (balance*(1+r) - payment).
+    r = loans["note_rate"].to_numpy() / 12
+    n = loans["term"].to_numpy()
+    p0 = loans["original_balance"].to_numpy()
+    pay = p0 * r / (1 - (1 + r) ** -n)
+    bal = p0.copy()
+    sched = np.empty_like(bal)
+    k = raw["age"].to_numpy() - 1
+    for step in range(int(k.max()) + 1):
+        sched[k == step] = bal[k == step]
+        bal = bal * (1 + r) - pay
+    region = loans["region"].to_numpy()
+    hpi_now = np.array([macro.loc[m, f"hpi_{g}"] for m, g in zip(raw["month_idx"], region)])
+    hpi_orig = np.array([macro.loc[m, f"hpi_{g}"] for m, g in zip(loans["origination_idx"], region)])
+    ltv = sched / (loans["property_value"].to_numpy() * hpi_now / hpi_orig)
+    np.testing.assert_allclose(raw["current_ltv"], ltv, rtol=1e-10)
+    inc = 100 * loans["note_rate"].to_numpy() - macro.loc[raw["month_idx"], "mortgage_rate"].to_numpy()
+    np.testing.assert_allclose(raw["rate_incentive"], inc, rtol=1e-12)
+    np.testing.assert_array_equal(raw["credit_score"], loans["credit_score"])
+    assert spec.required_inputs == ["age", "macro:unemployment_rate:3", "current_ltv", "rate_incentive", "credit_score", "balance"]
+
+
+def test_where_filter_and_params(con, book):
+    spec = _spec(Covariate(name="score", column="credit_score"))
+    first = int(book["loan_months"]["month_idx"].min()) + 12
+    sql = spec.raw_query(con, "month_idx >= ?")
+    raw = con.sql(sql, params=[first]).df()
+    assert len(raw) == int((book["loan_months"]["month_idx"] >= first).sum())
+
+
+# --------------------------------------------------------------------------- learning and serialisation
+
+
+def test_learned_constants_and_json_round_trip(con, book):
+    spec = _spec(
+        Covariate(name="score", column="credit_score", transform="standardise", floor=600),
+        Covariate(name="region", column="region", kind="categorical", reference="south"),
+        Covariate(name="dti_band", column="dti", kind="bins", bins=(0.2, 0.35)),
+        Covariate(name="la", column="log_age"),
+        interactions=(("score", "region"),),
+    ).learn(con)
+    raw = _raw(con, spec)
+    # Reference: numpy mean and sample sd of the floored values over the risk set.
+    x = np.maximum(raw["credit_score"].to_numpy(dtype=float), 600)
+    st = spec.learned["covariates"]["score"]
+    assert st["mean"] == pytest.approx(x.mean(), rel=1e-12)
+    assert st["sd"] == pytest.approx(x.std(ddof=1), rel=1e-12)
+    lv = spec.learned["covariates"]["region"]
+    assert lv["levels"] == sorted(book["loans"]["region"].unique()) and lv["reference"] == "south"
+    assert spec.learned["covariates"]["dti_band"]["levels"] == ["<0.2", "[0.2,0.35)", ">=0.35"]
+    text = json.dumps(spec.to_dict(), sort_keys=True)
+    again = FeatureSpec.from_dict(json.loads(text))
+    X1, n1 = spec.design(raw)
+    X2, n2 = again.design(raw)
+    assert n1 == n2 and np.array_equal(X1, X2)
+    assert "score:region[east]" in n1 and "region[south]" not in n1
+
+
+def test_design_columns_and_inputs_untouched(con):
+    spec = _spec(
+        Covariate(name="score", column="credit_score", transform="log", cap=800),
+        Covariate(name="region", column="region", kind="categorical"),
+        baseline=Baseline(kind="age_bands", edges=(3, 6, 12)),
+    ).learn(con)
+    raw = {k: v.copy() for k, v in {"age": np.array([1, 3, 5, 6, 12, 40]), "credit_score": np.array([600, 700, 810, 650, 700, 700]),
+                                      "region": np.array(["north", "central", "east", "west", "south", "north"], dtype=object)}.items()}
+    before = copy.deepcopy(raw)
+    X, names = spec.design(raw)
+    for k in raw:
+        np.testing.assert_array_equal(raw[k], before[k])
+    assert names[:4] == ["intercept", "age_band[3-5]", "age_band[6-11]", "age_band[12+]"]
+    np.testing.assert_array_equal(X[:, 1:4], [[0, 0, 0], [1, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1], [0, 0, 1]])
+    np.testing.assert_allclose(X[:, names.index("score")], np.log([600, 700, 800, 650, 700, 700]))
+    np.testing.assert_array_equal(X[:, names.index("region[north]")], [1, 0, 0, 0, 0, 1])
+    assert X.dtype == np.float64 and X.shape == (6, len(names))
+
+
+def test_age_indicators_share_last(con):
+    spec = _spec(baseline=Baseline(kind="age_indicators", max_age=5)).learn(con)
+    X, names = spec.design({"age": np.array([1, 2, 5, 9])})
+    assert names == ["intercept", "age[2]", "age[3]", "age[4]", "age[5]"]
+    np.testing.assert_array_equal(X[:, 1:], [[0, 0, 0, 0], [1, 0, 0, 0], [0, 0, 0, 1], [0, 0, 0, 1]])
+
+
+# --------------------------------------------------------------------------- natural cubic spline
+
+
+KNOTS = (3.0, 8.0, 15.0, 24.0, 30.0)
+
+
+def test_spline_linear_beyond_boundary_knots():
+    # Reference: definition of a natural spline (zero second derivative outside the boundary knots).
+    x = np.r_[np.arange(-20.0, 3.01, 1.0), np.arange(30.0, 80.0, 1.0)]
+    B = natural_spline_basis(x, KNOTS)
+    lo, hi = B[x <= 3.0], B[x >= 30.0]
+    np.testing.assert_allclose(np.diff(lo, 2, axis=0), 0.0, atol=1e-9)
+    np.testing.assert_allclose(np.diff(hi, 2, axis=0), 0.0, atol=1e-9)
+    # ...and it is not linear inside.
+    inside = natural_spline_basis(np.arange(3.0, 31.0), KNOTS)
+    assert np.abs(np.diff(inside[:, 1:], 2, axis=0)).max() > 1e-4
+
+
+def test_spline_reproduces_linear_functions_exactly():
+    x = np.arange(1.0, 60.0)
+    D = np.column_stack([np.ones_like(x), natural_spline_basis(x, KNOTS)])
+    y = 2.5 - 0.37 * x
+    coef, *_ = np.linalg.lstsq(D, y, rcond=None)
+    np.testing.assert_allclose(D @ coef, y, atol=1e-10)
+
+
+def test_spline_spans_the_same_space_as_patsy_cr():
+    patsy = pytest.importorskip("patsy")
+    # Reference: patsy's cr() (a natural cubic regression spline parameterised by its values at the
+    # knots). Different basis, same column space: least-squares fitted values must agree.
+    x = np.linspace(3.0, 30.0, 200)
+    y = np.sin(x / 4.0) + 0.01 * x**2
+    P = np.asarray(patsy.dmatrix("cr(x, knots=(8, 15, 24), lower_bound=3, upper_bound=30) - 1", {"x": x}))
+    D = np.column_stack([np.ones_like(x), natural_spline_basis(x, KNOTS)])
+    fit_p = P @ np.linalg.lstsq(P, y, rcond=None)[0]
+    fit_d = D @ np.linalg.lstsq(D, y, rcond=None)[0]
+    np.testing.assert_allclose(fit_d, fit_p, atol=1e-9)
+
+
+# --------------------------------------------------------------------------- errors
+
+
+def test_unknown_column_names_closest_match(con):
+    with pytest.raises(FeatureError, match=r"covariate 'score': unknown column 'credit_scor'; did you mean 'credit_score'\?"):
+        _spec(Covariate(name="score", column="credit_scor")).learn(con)
+
+
+def test_unknown_macro_series(con):
+    with pytest.raises(FeatureError, match=r"unknown macro series 'unemployment'.*did you mean 'unemployment_rate'"):
+        _spec(Covariate(name="u", macro="unemployment")).learn(con)
+
+
+def test_unknown_reference_level_lists_levels(con):
+    with pytest.raises(FeatureError, match=r"covariate 'region': reference level 'nord' is not a level \(levels: central, east, north, south, west\); did you mean 'north'"):
+        _spec(Covariate(name="region", column="region", kind="categorical", reference="nord")).learn(con)
+
+
+def test_bad_bin_reference_is_a_config_error():
+    with pytest.raises(ConfigError, match=r"model.covariates\[0\].reference: '0.2' is not a bin label"):
+        _spec(Covariate(name="d", column="dti", kind="bins", bins=(0.2, 0.3), reference="0.2"))
+
+
+def test_unknown_level_at_design_time(con):
+    spec = _spec(Covariate(name="region", column="region", kind="categorical")).learn(con)
+    with pytest.raises(FeatureError, match=r"covariate 'region': level\(s\) \['mars'\] were not seen in training"):
+        spec.design({"age": np.array([1, 2]), "region": np.array(["north", "mars"], dtype=object)})
+
+
+def test_spline_knots_outside_ages(con):
+    with pytest.raises(FeatureError, match=r"spline knots \['60'\] lie outside the ages in the data \(1 to 24\)"):
+        _spec(baseline=Baseline(kind="spline", knots=(3.0, 12.0, 60.0))).learn(con)
+
+
+def test_macro_lag_past_history(con, book):
+    first = int(book["macro"]["month_idx"].min())
+    con.execute("DELETE FROM macro WHERE month_idx < ?", [first + 30])
+    with pytest.raises(FeatureError, match=r"covariate 'u6': macro series 'unemployment_rate' at lag 6 runs past the start of the macro history: first month needed 20\d\d-\d\d, first available 2015-07"):
+        _spec(Covariate(name="u6", macro="unemployment_rate", lag=6)).learn(con)
+
+
+def test_log_of_non_positive_values(con):
+    with pytest.raises(FeatureError, match=r"covariate 'ls': log of non-positive values in \d+ rows"):
+        _spec(Covariate(name="ls", column="days_past_due", transform="log")).learn(con)
+    spec = _spec(Covariate(name="ls", column="days_past_due", transform="log", floor=1.0)).learn(con)
+    spec_nofloor = FeatureSpec.from_dict({**spec.to_dict(), "covariates": [{**spec.covariates[0], "floor": None}]})
+    with pytest.raises(FeatureError, match=r"covariate 'ls': log of non-positive values in 1 rows"):
+        spec_nofloor.design({"age": np.array([1, 2]), "days_past_due": np.array([0, 30])})
+
+
+def test_all_problems_in_one_error(con):
+    with pytest.raises(FeatureError) as info:
+        _spec(Covariate(name="a", column="nope"), Covariate(name="b", macro="nada")).learn(con)
+    assert "'a': unknown column 'nope'" in str(info.value) and "'b': unknown macro series 'nada'" in str(info.value)
+
+
+def test_design_needs_learning():
+    spec = _spec(Covariate(name="score", column="credit_score"))
+    with pytest.raises(FeatureError, match="has not been learned"):
+        spec.design(pd.DataFrame({"age": [1], "credit_score": [700]}))
+
+
+def test_missing_values_named(con):
+    con.execute("UPDATE loans SET credit_score = NULL WHERE loan_id IN (SELECT loan_id FROM loans LIMIT 3)")
+    with pytest.raises(FeatureError, match=r"covariate 'score': \d+ rows have no value for 'credit_score'"):
+        _spec(Covariate(name="score", column="credit_score")).learn(con)
+
+
+def test_duckdb_is_the_engine():
+    assert duckdb.__version__

@@ -1,0 +1,410 @@
+"""Tests of creditsurv.hazard: exact out-of-core fits of discrete-time competing-risk models.
+
+Each check names its independent reference: statsmodels' GLM / MNLogit on the same design,
+statsmodels' Kaplan-Meier (SurvfuncRight) and Aalen-Johansen (CumIncidenceRight) estimators,
+or a direct scipy.optimize minimisation written here.
+"""
+
+from __future__ import annotations
+
+import json
+
+import duckdb
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+from scipy import optimize
+from statsmodels.duration.survfunc import CumIncidenceRight, SurvfuncRight
+
+from creditsurv.config import Baseline, Collateral, Covariate, ModelSpec
+from creditsurv.errors import ConvergenceError, FewEventsWarning, SeparationError, SingularDesignError
+from creditsurv.features import feature_spec
+from creditsurv.hazard import HazardResults, fit_hazard, fit_model, load_model
+
+# --------------------------------------------------------------------------- a small simulated book
+
+REGIONS = ("north", "south", "east", "west", "central")
+START = 2015 * 12  # 2015-01
+
+
+def simulate_book(n_loans=3000, seed=7, max_age=36, prepay=True, hazard_scale=1.0, min_censor=6):
+    """Return dict of DataFrames: loans, macro, loan_months, panel."""
+    rng = np.random.default_rng(seed)
+    n_months = 12 * 8
+    months = np.arange(START - 24, START - 24 + n_months)
+    t = np.arange(n_months)
+    macro = pd.DataFrame(
+        {
+            "month_idx": months.astype(np.int32),
+            "unemployment_rate": 5.0 + 1.5 * np.sin(t / 9.0),
+            "mortgage_rate": 4.0 + 0.8 * np.cos(t / 13.0),
+        }
+    )
+    for j, r in enumerate(REGIONS):
+        macro[f"hpi_{r}"] = 100.0 * np.exp((0.002 + 0.0005 * j) * t + 0.02 * np.sin(t / (5.0 + j)))
+    orig = START + rng.integers(0, 30, n_loans)
+    loans = pd.DataFrame(
+        {
+            "loan_id": [f"L{i:06d}" for i in range(n_loans)],
+            "origination_idx": orig.astype(np.int32),
+            "original_balance": rng.uniform(50_000, 400_000, n_loans).round(2),
+            "note_rate": rng.uniform(0.025, 0.065, n_loans).round(4),
+            "term": rng.choice([180, 240, 360], n_loans).astype(np.int32),
+            "region": rng.choice(REGIONS, n_loans),
+            "credit_score": rng.integers(560, 820, n_loans).astype(np.int32),
+            "dti": rng.uniform(0.1, 0.5, n_loans),
+            "channel": rng.choice(["retail", "broker"], n_loans),
+        }
+    )
+    loans["property_value"] = (loans["original_balance"] / rng.uniform(0.55, 0.95, n_loans)).round(2)
+    censor = rng.integers(min_censor, max_age + 1, n_loans)
+    score = (loans["credit_score"].to_numpy() - 700) / 50.0
+    reg = np.array([REGIONS.index(r) for r in loans["region"]])
+    mac = macro.set_index("month_idx")["unemployment_rate"]
+    rows = []
+    alive = np.ones(n_loans, dtype=bool)
+    for age in range(1, max_age + 1):
+        idx = np.nonzero(alive & (age <= censor))[0]
+        if idx.size == 0:
+            break
+        month = orig[idx] + age
+        u = mac.reindex(month - 3).to_numpy()
+        eta1 = -4.6 + 0.02 * age - 0.5 * score[idx] + 0.15 * (u - 5.0) + 0.1 * reg[idx] + np.log(hazard_scale)
+        eta2 = -3.6 + 0.01 * age + 0.2 * score[idx] - 0.1 * reg[idx]
+        e1, e2 = np.exp(eta1), np.exp(eta2) if prepay else 0.0 * eta2
+        den = 1 + e1 + e2
+        draw = rng.random(idx.size)
+        out = np.where(draw < e1 / den, 1, np.where(draw < (e1 + e2) / den, 2, 0))
+        rows.append(pd.DataFrame({"loan_id": loans["loan_id"].to_numpy()[idx], "month_idx": month, "age": age, "outcome": out}))
+        alive[idx[out > 0]] = False
+    lm = pd.concat(rows, ignore_index=True)
+    lm = lm.astype({"month_idx": np.int32, "age": np.int32, "outcome": np.int8})
+    panel = lm[["loan_id", "month_idx", "age"]].copy()
+    panel["balance"] = 100_000.0 - 100.0 * panel["age"]
+    panel["days_past_due"] = rng.choice([0, 0, 0, 30], len(panel)).astype(np.int32)
+    panel["status"] = "C"
+    return {"loans": loans, "macro": macro, "loan_months": lm, "panel": panel}
+
+
+def connect(book) -> duckdb.DuckDBPyConnection:
+    con = duckdb.connect()
+    for name, df in book.items():
+        con.register(f"_df_{name}", df)
+        con.execute(f"CREATE TABLE {name} AS SELECT * FROM _df_{name}")
+        con.unregister(f"_df_{name}")
+    return con
+
+
+def _spec(con, *covariates, baseline=None, interactions=(), learn=True):
+    model = ModelSpec(baseline=baseline or Baseline(), covariates=tuple(covariates), interactions=interactions)
+    spec = feature_spec(model, Collateral())
+    return spec.learn(con) if learn else spec
+
+
+def _design(con, spec):
+    raw = con.sql(spec.raw_query(con)).df()
+    X, names = spec.design(raw)
+    return X, names, raw["outcome"].to_numpy()
+
+
+MIXED = (
+    Covariate(name="score", column="credit_score", transform="standardise"),
+    Covariate(name="u3", macro="unemployment_rate", lag=3),
+    Covariate(name="region", column="region", kind="categorical"),
+    Covariate(name="ltv", column="current_ltv"),
+)
+
+
+@pytest.fixture(scope="module")
+def book():
+    return simulate_book(n_loans=3000, seed=11, max_age=36)
+
+
+@pytest.fixture(scope="module")
+def con(book):
+    c = connect(book)
+    yield c
+    c.close()
+
+
+@pytest.fixture(scope="module")
+def small_con():
+    c = connect(simulate_book(n_loans=800, seed=5, max_age=24, hazard_scale=3.0))
+    yield c
+    c.close()
+
+
+def _spline():
+    return Baseline(kind="spline", knots=(3.0, 12.0, 24.0))
+
+
+# --------------------------------------------------------------------------- against statsmodels
+
+
+def test_cause_specific_matches_statsmodels_glm(con):
+    spec = _spec(con, *MIXED, baseline=_spline(), interactions=(("score", "ltv"),))
+    X, names, y = _design(con, spec)
+    refs = {}
+    for cause, code, other in (("default", 1, 2), ("prepay", 2, 1)):
+        keep = y != other  # the other cause censors the loan in its event month
+        # Reference: statsmodels GLM binomial (IRLS) on the same rows and design.
+        refs[cause] = sm.GLM((y[keep] == code).astype(float), X[keep], family=sm.families.Binomial()).fit(tol=1e-12)
+    for batch_size in (250_000, 1000):
+        res = fit_hazard(con, spec, kind="cause_specific", batch_size=batch_size)
+        assert res.params.index.to_list() == names and res.converged
+        for cause, ref in refs.items():
+            np.testing.assert_allclose(res.params[cause], ref.params, rtol=1e-6)
+            np.testing.assert_allclose(res.bse[cause], ref.bse, rtol=1e-6)
+        assert res.loglik == pytest.approx(refs["default"].llf + refs["prepay"].llf, rel=1e-10)
+        # The two logits share no parameters: the covariance is block diagonal.
+        p = len(names)
+        assert not res.cov[:p, p:].any()
+
+
+def test_multinomial_matches_statsmodels_mnlogit(con):
+    spec = _spec(con, *MIXED, baseline=_spline())
+    X, names, y = _design(con, spec)
+    # Reference: statsmodels MNLogit (Newton) with 'continue' (0) as the base outcome.
+    ref = sm.MNLogit(y, X).fit(method="newton", maxiter=100, tol=1e-12, disp=0)
+    for batch_size in (250_000, 1000):
+        res = fit_hazard(con, spec, kind="multinomial", batch_size=batch_size)
+        np.testing.assert_allclose(res.params[["default", "prepay"]].to_numpy(), ref.params, rtol=1e-6)
+        np.testing.assert_allclose(res.bse[["default", "prepay"]].to_numpy(), ref.bse, rtol=1e-6)
+        assert res.loglik == pytest.approx(ref.llf, rel=1e-10)
+        # Full covariance, cause-major, against MNLogit's (same parameter order).
+        np.testing.assert_allclose(res.cov, np.asarray(ref.cov_params()), rtol=1e-6, atol=1e-12)
+        assert res.aic == pytest.approx(ref.aic, rel=1e-10)
+        assert res.bic == pytest.approx(ref.bic, rel=1e-10)
+
+
+def test_tiny_batches_out_of_core(small_con):
+    # batch_size 7: every read and every Newton pass goes through thousands of 7-row batches.
+    spec = _spec(small_con, Covariate(name="score", column="credit_score", transform="standardise"),
+                 Covariate(name="region", column="region", kind="categorical"), baseline=Baseline(kind="age_bands", edges=(6, 12)))
+    X, names, y = _design(small_con, spec)
+    for kind in ("multinomial", "cause_specific"):
+        res = fit_hazard(small_con, spec, kind=kind, batch_size=7, collapse=False)
+        assert res.n_stored_rows == len(y)
+        if kind == "multinomial":
+            # Reference: statsmodels MNLogit on the full in-memory design.
+            ref = sm.MNLogit(y, X).fit(method="newton", maxiter=100, tol=1e-12, disp=0)
+            np.testing.assert_allclose(res.params.to_numpy(), ref.params, rtol=1e-6)
+            np.testing.assert_allclose(res.bse.to_numpy(), ref.bse, rtol=1e-6)
+        else:
+            for cause, code, other in (("default", 1, 2), ("prepay", 2, 1)):
+                keep = y != other
+                # Reference: statsmodels GLM binomial on the rows without the other cause.
+                ref = sm.GLM((y[keep] == code).astype(float), X[keep], family=sm.families.Binomial()).fit(tol=1e-12)
+                np.testing.assert_allclose(res.params[cause], ref.params, rtol=1e-6)
+                np.testing.assert_allclose(res.bse[cause], ref.bse, rtol=1e-6)
+
+
+# --------------------------------------------------------------------------- non-parametric anchors
+
+
+def _times(con):
+    last = con.sql("SELECT loan_id, max(age) AS t, arg_max(outcome, age) AS status FROM loan_months GROUP BY loan_id ORDER BY loan_id").df()
+    return last["t"].to_numpy(dtype=float), last["status"].to_numpy(dtype=int)
+
+
+def test_age_indicators_reproduce_kaplan_meier():
+    con = connect(simulate_book(n_loans=3000, seed=2, max_age=18, prepay=False, hazard_scale=2.0, min_censor=10))
+    spec = _spec(con, baseline=Baseline(kind="age_indicators"))
+    res = fit_hazard(con, spec, causes=("default",), collapse=False)
+    ages = np.arange(1, 19)
+    h_def, h_pre = res.predict_hazards({"age": ages})
+    assert not h_pre.any()
+    surv = np.cumprod(1 - h_def)
+    t, status = _times(con)
+    # Reference: statsmodels Kaplan-Meier; its grid is the distinct event times.
+    km = SurvfuncRight(t, status)
+    np.testing.assert_allclose(surv[km.surv_times.astype(int) - 1], km.surv_prob, rtol=0, atol=1e-8)
+    assert len(km.surv_times) == 18
+
+
+def test_age_indicators_reproduce_aalen_johansen():
+    con = connect(simulate_book(n_loans=3000, seed=2, max_age=18, hazard_scale=2.0, min_censor=10))
+    spec = _spec(con, baseline=Baseline(kind="age_indicators"))
+    t, status = _times(con)
+    # Reference: statsmodels Aalen-Johansen; its grid is every distinct observed time (events and
+    # censorings), and a loan censored at t is at risk at t, as a loan-month with outcome 0 is.
+    aj = CumIncidenceRight(t, status)
+    km_all = SurvfuncRight(t, (status > 0).astype(int))
+    for collapse in (True, False):
+        res = fit_hazard(con, spec, kind="multinomial", collapse=collapse)
+        h1, h2 = res.predict_hazards({"age": aj.times})
+        surv = np.cumprod(1 - h1 - h2)
+        before = np.r_[1.0, surv[:-1]]
+        np.testing.assert_allclose(np.cumsum(before * h1), aj.cinc[0], rtol=0, atol=1e-8)
+        np.testing.assert_allclose(np.cumsum(before * h2), aj.cinc[1], rtol=0, atol=1e-8)
+        np.testing.assert_allclose(surv[km_all.surv_times.astype(int) - 1], km_all.surv_prob, rtol=0, atol=1e-8)
+        # Invariant: survival plus the cumulative incidence of every cause is 1.
+        np.testing.assert_allclose(surv + np.cumsum(before * h1) + np.cumsum(before * h2), 1.0, atol=1e-12)
+
+
+# --------------------------------------------------------------------------- ridge
+
+
+def test_ridge_matches_direct_minimisation(small_con):
+    spec = _spec(small_con, Covariate(name="score", column="credit_score", transform="standardise"),
+                 Covariate(name="region", column="region", kind="categorical"), baseline=_spline())
+    lam = 25.0
+    res = fit_hazard(small_con, spec, ridge=lam)
+    X, names, y = _design(small_con, spec)
+    p = X.shape[1]
+    Y = np.column_stack([y == 1, y == 2]).astype(float)
+    pen = np.r_[0.0, np.ones(p - 1)]
+
+    # Reference: the penalised multinomial negative log-likelihood written out and minimised by scipy.
+    def objective(b):
+        B = b.reshape(2, p)
+        eta = X @ B.T
+        lse = np.logaddexp(0.0, np.logaddexp(eta[:, 0], eta[:, 1]))
+        P = np.exp(eta - lse[:, None])
+        f = -np.sum((eta * Y).sum(axis=1) - lse) + 0.5 * lam * np.sum(pen * B**2)
+        grad = -((Y - P).T @ X) + lam * pen * B
+        return f, grad.ravel()
+
+    ref = optimize.minimize(objective, np.zeros(2 * p), jac=True, method="BFGS", options={"gtol": 1e-9, "maxiter": 5000})
+    np.testing.assert_allclose(res.params.to_numpy().T.ravel(), ref.x, rtol=1e-5, atol=1e-7)
+    assert res.ridge == lam
+    # Shrinkage: penalised slopes are smaller than unpenalised ones in norm.
+    plain = fit_hazard(small_con, spec)
+    assert np.linalg.norm(res.params.iloc[1:]) < np.linalg.norm(plain.params.iloc[1:])
+
+
+# --------------------------------------------------------------------------- invariants
+
+
+def test_refit_is_identical_and_inputs_untouched(small_con):
+    before = small_con.execute("SELECT count(*), sum(hash(loan_id, month_idx, outcome)) FROM loan_months").fetchone()
+    spec = _spec(small_con, *MIXED, baseline=_spline())
+    spec_dict = json.dumps(spec.to_dict(), sort_keys=True)
+    a = fit_hazard(small_con, spec, batch_size=300)
+    b = fit_hazard(small_con, spec, batch_size=300)
+    assert a.params.equals(b.params) and a.bse.equals(b.bse) and a.loglik == b.loglik
+    assert a.data_fingerprint == b.data_fingerprint
+    c = fit_hazard(small_con, spec, batch_size=77)
+    assert c.data_fingerprint == a.data_fingerprint  # the fingerprint does not depend on batching
+    np.testing.assert_allclose(c.params, a.params, rtol=1e-10)
+    assert json.dumps(spec.to_dict(), sort_keys=True) == spec_dict
+    assert small_con.execute("SELECT count(*), sum(hash(loan_id, month_idx, outcome)) FROM loan_months").fetchone() == before
+
+
+def test_repeated_rows_equal_doubled_counts(small_con, tmp_path):
+    spec = _spec(small_con, Covariate(name="region", column="region", kind="categorical"),
+                 Covariate(name="score_band", column="credit_score", kind="bins", bins=(640.0, 720.0)),
+                 baseline=Baseline(kind="age_bands", edges=(6, 12)))
+    rows = fit_hazard(small_con, spec, collapse=False)
+    patterns = fit_hazard(small_con, spec)  # fully discrete: collapsed to pattern counts
+    assert patterns.collapsed and patterns.n_stored_rows < rows.n_stored_rows
+    assert patterns.n_rows == rows.n_rows and patterns.events == rows.events
+    np.testing.assert_allclose(patterns.params, rows.params, rtol=1e-9)
+    np.testing.assert_allclose(patterns.bse, rows.bse, rtol=1e-9)
+    assert patterns.loglik == pytest.approx(rows.loglik, rel=1e-12)
+    # Every row twice (row path) equals doubled counts: same estimates, loglik x2, se / sqrt(2).
+    dup = duckdb.connect()
+    for t in ("panel", "loans", "macro"):
+        dup.register(f"_{t}", small_con.sql(f"SELECT * FROM {t}").df())
+        dup.execute(f"CREATE TABLE {t} AS SELECT * FROM _{t}")
+    dup.register("_lm", small_con.sql("SELECT * FROM loan_months").df())
+    dup.execute("CREATE TABLE loan_months AS SELECT * FROM _lm UNION ALL SELECT * FROM _lm")
+    twice = fit_hazard(dup, spec, collapse=False)
+    assert twice.n_rows == 2 * rows.n_rows
+    np.testing.assert_allclose(twice.params, rows.params, rtol=1e-9)
+    np.testing.assert_allclose(twice.bse * np.sqrt(2), rows.bse, rtol=1e-9)
+    assert twice.loglik == pytest.approx(2 * rows.loglik, rel=1e-12)
+
+
+def test_save_load_round_trip(small_con, tmp_path):
+    spec = _spec(small_con, *MIXED, baseline=_spline(), interactions=(("score", "region"),))
+    res = fit_hazard(small_con, spec)
+    path = res.save(tmp_path / "model.json")
+    text = path.read_text()
+    data = json.loads(text)
+    assert text == json.dumps(data, indent=2, sort_keys=True) + "\n"
+    assert data["format"] == "creditsurv.hazard_model" and data["kind"] == "multinomial"
+    assert set(data) >= {"terms", "coefficients", "std_errors", "covariance", "fit", "features", "creditsurv_version"}
+    back = load_model(path)
+    raw = small_con.sql(spec.raw_query(small_con)).df()
+    for a, b in zip(res.predict_hazards(raw), back.predict_hazards(raw)):
+        assert np.array_equal(a, b)
+    assert back.to_dict() == res.to_dict()
+    assert back.required_inputs == ["age", "credit_score", "macro:unemployment_rate:3", "region", "current_ltv"]
+    assert all(np.array_equal(a, b) for a, b in zip(back.hazards(raw), res.predict_hazards(raw)))
+    assert back.params.equals(res.params) and np.array_equal(back.cov, res.cov)
+
+
+def test_summary_table(small_con):
+    res = fit_hazard(small_con, _spec(small_con, MIXED[0], baseline=_spline()))
+    s = res.summary()
+    assert list(s.columns) == ["cause", "term", "estimate", "std_error", "z", "p_value", "ci_lo", "ci_hi"]
+    assert len(s) == 2 * len(res.params)
+    row = s[(s.cause == "default") & (s.term == "score")].iloc[0]
+    assert row.z == pytest.approx(row.estimate / row.std_error)
+    assert row.ci_lo == pytest.approx(row.estimate - 1.959963984540054 * row.std_error)
+    assert res.events["default"] + res.events["prepay"] <= res.n_rows
+
+
+# --------------------------------------------------------------------------- diagnostics
+
+
+def test_separation_names_the_level(small_con):
+    # Loans of one channel never default: the level has no default events.
+    con = duckdb.connect()
+    for t in ("panel", "macro"):
+        con.register(f"_{t}", small_con.sql(f"SELECT * FROM {t}").df())
+        con.execute(f"CREATE TABLE {t} AS SELECT * FROM _{t}")
+    loans = small_con.sql("SELECT * FROM loans").df()
+    lm = small_con.sql("SELECT * FROM loan_months").df()
+    lm["outcome"] = lm["outcome"].astype(int)
+    loans.loc[loans.index[:40], "channel"] = "online"
+    online = set(loans.loc[loans.index[:40], "loan_id"])
+    lm.loc[lm.loan_id.isin(online) & (lm.outcome == 1), "outcome"] = 0
+    lm["outcome"] = lm["outcome"].astype(np.int8)
+    con.register("_loans", loans)
+    con.execute("CREATE TABLE loans AS SELECT * FROM _loans")
+    con.register("_lm", lm)
+    con.execute("CREATE TABLE loan_months AS SELECT * FROM _lm")
+    spec = _spec(con, Covariate(name="channel", column="channel", kind="categorical"), baseline=Baseline(kind="none"))
+    with pytest.raises(SeparationError, match=r"column 'channel\[online\]' has no default events \([\d,]+ loan-months\).*ridge > 0"):
+        fit_hazard(con, spec)
+    # A ridge penalty keeps the estimate finite: no error.
+    assert fit_hazard(con, spec, ridge=1.0).converged
+
+
+def test_singular_design_names_columns(small_con):
+    spec = _spec(small_con, Covariate(name="score", column="credit_score"),
+                 Covariate(name="score_again", column="credit_score", transform="none", floor=0.0), baseline=_spline())
+    with pytest.raises(SingularDesignError, match=r"columns 'score(_again)?', 'score(_again)?' are collinear"):
+        fit_hazard(small_con, spec)
+
+
+def test_non_convergence_reports_the_iterations(small_con):
+    spec = _spec(small_con, *MIXED, baseline=_spline())
+    with pytest.raises(ConvergenceError) as info:
+        fit_hazard(small_con, spec, max_iter=2)
+    text = str(info.value)
+    assert "no convergence in 2 iterations" in text and "max|step|" in text and "ridge" in text and "max_iter" in text
+    assert len(info.value.iteration_log) == 3
+
+
+def test_few_events_warning(small_con):
+    con = small_con
+    spec = _spec(con, *MIXED, baseline=_spline())
+    n_def = con.execute("SELECT count(*) FROM loan_months WHERE outcome = 1 AND month_idx < 24190").fetchone()[0]
+    with pytest.warns(FewEventsWarning, match=r"events for 10 parameters") as rec:
+        fit_hazard(con, spec, where_sql="month_idx < ?", params=[24190])
+    texts = [str(r.message) for r in rec]
+    assert any(t.startswith(f"default: {n_def:,} events for 10 parameters") and "fewer than 10" in t for t in texts)
+    assert all(r.filename == __file__ for r in rec)  # stacklevel points at the caller
+    assert n_def < 100
+
+
+def test_fit_model_from_config_section(small_con):
+    model = ModelSpec(kind="cause_specific", baseline=_spline(), covariates=MIXED[:1], ridge=0.5)
+    res = fit_model(small_con, model, Collateral())
+    assert isinstance(res, HazardResults) and res.kind == "cause_specific" and res.ridge == 0.5
+    direct = fit_hazard(small_con, _spec(small_con, MIXED[0], baseline=_spline()), kind="cause_specific", ridge=0.5)
+    assert res.params.equals(direct.params)
