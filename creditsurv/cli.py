@@ -38,7 +38,7 @@ def _cmd_check(args) -> int:
 def _cmd_fit(args) -> int:
     from .pipeline import fit_model_command
 
-    outcome = fit_model_command(args.config, out_dir=args.out)
+    outcome = fit_model_command(args.config, out_dir=args.out, argv=sys.argv)
     print(outcome.text)
     return 0
 
