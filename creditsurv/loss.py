@@ -1,0 +1,468 @@
+"""Expected credit loss: EAD, LGD, discounting, scenario weighting and stages.
+
+For scenario s and horizon H (months ahead)::
+
+    ECL_s(H) = sum_{u=1..H} S_s(u-1) hD_s(u) * LGD_s(u) * EAD(u) * DF(u)
+
+- EAD(u): scheduled level-payment balance at the start of month u (the
+  balance a default in month u leaves outstanding), plus one month's accrued
+  interest B r / 12 when ``loss.accrued_interest``.
+- DF(u) = (1 + r/12)^(-u), r the loan's effective interest rate (its note
+  rate), IFRS 9 5.5.17 and B5.5.44; 1 when ``loss.discount`` is ``none``.
+- LGD: ``constant`` (per segment from ``loss.lgd.by_segment``, else
+  ``loss.lgd.constant``) or ``collateral``: the property, worth its
+  origination value moved by the scenario's regional house-price index, is
+  sold ``months_to_recovery`` months after the default month for
+  value x (1 - forced_sale_haircut - sale_costs); the proceeds are discounted
+  back to the default month at r, and LGD = clip(1 - PV / EAD, floor, 1).
+- 12-month ECL: H = min(12, remaining term); lifetime: H = remaining term.
+- Probability weighting (IFRS 9 5.5.17): ECL = sum_s w_s ECL_s.
+
+Stages (:func:`allocate_stages`):
+stage 3 when in default at the reporting month (credit-impaired; IFRS 9
+B5.5.37, the 90 days past due presumption enters through the default
+definition): ECL = LGD x EAD on the as-of balance, PD = 1;
+stage 2 at or above ``staging.dpd_backstop`` days past due (IFRS 9 5.5.11) or on
+a significant increase in credit risk (lifetime PD now against lifetime PD at
+origination); stage 1 otherwise.  Reported ECL: 12-month for stage 1
+(IFRS 9 5.5.5), lifetime for stages 2 and 3 (IFRS 9 5.5.3).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+
+from .config import Loss, Staging
+from .errors import ProjectionError
+from .projection import (
+    WEIGHTED,
+    ChunkProjection,
+    MacroLookup,
+    ProjectionResult,
+    _check_coverage,
+    _ids,
+    _repeat_ids,
+    _scenario_column,
+    _weights,
+    origination_pd,
+    project_loans,
+)
+
+__all__ = [
+    "discount_factors",
+    "collateral_lgd",
+    "allocate_stages",
+    "expected_credit_loss",
+    "segment_summary",
+    "EclResult",
+]
+
+
+def discount_factors(note_rate, months_ahead, kind: str = "effective_interest_rate") -> np.ndarray:
+    """DF(u) = (1 + r/12)^(-u) (IFRS 9 B5.5.44), or ones when ``kind`` is ``none``.
+
+    ``note_rate`` (decimal a year) and ``months_ahead`` broadcast.
+    """
+    r = np.asarray(note_rate, dtype=float) / 12.0
+    u = np.asarray(months_ahead, dtype=float)
+    if kind == "none":
+        return np.ones(np.broadcast_shapes(r.shape, u.shape))
+    if kind != "effective_interest_rate":
+        raise ProjectionError(f"loss.discount: unknown kind {kind!r}; use effective_interest_rate or none")
+    return (1.0 + r) ** (-u)
+
+
+def collateral_lgd(
+    ead,
+    property_value,
+    hpi_origination,
+    hpi_sale,
+    note_rate,
+    *,
+    months_to_recovery: int,
+    forced_sale_haircut: float,
+    sale_costs: float,
+    floor: float,
+) -> np.ndarray:
+    """LGD of a secured exposure: clip(1 - PV(recovery) / EAD, floor, 1).
+
+    recovery = property_value x hpi_sale / hpi_origination x
+    (1 - forced_sale_haircut - sale_costs), received ``months_to_recovery``
+    months after default and discounted to the default month at r/12 a month.
+    LGD is 1 where EAD <= 0 would make the ratio undefined (no exposure).
+    """
+    ead = np.asarray(ead, dtype=float)
+    r = np.asarray(note_rate, dtype=float) / 12.0
+    net = max(1.0 - forced_sale_haircut - sale_costs, 0.0)
+    recovery = np.asarray(property_value, float) * np.asarray(hpi_sale, float) / np.asarray(hpi_origination, float) * net
+    pv = recovery * (1.0 + r) ** (-float(months_to_recovery))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        lgd = np.where(ead > 0, 1.0 - pv / np.where(ead > 0, ead, 1.0), 1.0)
+    return np.clip(lgd, floor, 1.0)
+
+
+def allocate_stages(
+    pd_lifetime,
+    pd_lifetime_origination,
+    days_past_due,
+    in_default,
+    staging: Staging = Staging(),
+) -> tuple[np.ndarray, np.ndarray]:
+    """Stage of each loan and the reason.
+
+    Parameters
+    ----------
+    pd_lifetime, pd_lifetime_origination : array of float
+        Probability-weighted lifetime PD now, and lifetime PD at origination.
+    days_past_due : array of int
+    in_default : array of bool
+        Default definition met at the reporting month.
+    staging : config ``Staging``
+        ``dpd_backstop``, ``sicr_relative`` (PD now / PD at origination >=),
+        ``sicr_absolute`` (PD now - PD at origination >=), ``sicr_rule``
+        (``both``: both thresholds; ``either``: one is enough).
+
+    Returns
+    -------
+    stage : array of int8 (1, 2, 3)
+    reason : array of str: ``in_default``, ``dpd_backstop``, ``sicr``,
+        ``dpd_backstop+sicr`` or ``""`` for stage 1.
+    """
+    now = np.asarray(pd_lifetime, dtype=float)
+    orig = np.asarray(pd_lifetime_origination, dtype=float)
+    dpd = np.asarray(days_past_due)
+    dflt = np.asarray(in_default, dtype=bool)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.where(orig > 0, now / np.where(orig > 0, orig, 1.0), np.where(now > 0, np.inf, 1.0))
+    rel = ratio >= staging.sicr_relative
+    absolute = (now - orig) >= staging.sicr_absolute
+    sicr = (rel & absolute) if staging.sicr_rule == "both" else (rel | absolute)
+    backstop = dpd >= staging.dpd_backstop
+    stage = np.where(dflt, 3, np.where(backstop | sicr, 2, 1)).astype(np.int8)
+    reason = np.full(len(stage), "", dtype=object)
+    reason[sicr] = "sicr"
+    reason[backstop] = "dpd_backstop"
+    reason[backstop & sicr] = "dpd_backstop+sicr"
+    reason[dflt] = "in_default"
+    return stage, reason
+
+
+@dataclass
+class EclResult:
+    """Loan-level ECL, segment summary and the projection behind them.
+
+    Attributes
+    ----------
+    loans : DataFrame
+        One row per loan, sorted by loan_id: ``loan_id``, ``segment``,
+        ``stage``, ``stage_reason``, ``days_past_due``, ``pd_12m``,
+        ``pd_lifetime``, ``pd_lifetime_origination``, ``ead``, ``lgd``,
+        ``ecl_12m``, ``ecl_lifetime``, ``ecl_reported``, then per scenario s:
+        ``pd_12m_<s>``, ``pd_lifetime_<s>``, ``ecl_12m_<s>``, ``ecl_lifetime_<s>``.
+        Unsuffixed PD and ECL columns are probability weighted.  ``ead`` is the
+        as-of exposure and ``lgd`` the weighted LGD of a default in the
+        reporting month (the stage 3 LGD).  Stage 3 rows carry PD = 1 and
+        ECL = LGD x EAD in every scenario column.
+    segments : DataFrame
+        See :func:`segment_summary`.
+    projection : ProjectionResult
+        Of the loans not in default.
+    """
+
+    loans: pd.DataFrame
+    segments: pd.DataFrame
+    projection: ProjectionResult
+    scenarios: tuple[str, ...]
+    weights: dict[str, float]
+
+
+def segment_summary(loans: pd.DataFrame) -> pd.DataFrame:
+    """By ``segment`` and ``stage``: ``n_loans``, ``balance``, ``ead``, ``ecl``
+    (reported), ``coverage_ratio`` = ecl / balance (NaN for zero balance)."""
+    g = loans.groupby(["segment", "stage"], sort=True, observed=True)
+    out = g.agg(
+        n_loans=("loan_id", "size"), balance=("balance", "sum"), ead=("ead", "sum"), ecl=("ecl_reported", "sum")
+    ).reset_index()
+    out["coverage_ratio"] = np.where(out["balance"] > 0, out["ecl"] / out["balance"].where(out["balance"] > 0, 1.0), np.nan)
+    return out
+
+
+class _EclAccumulator:
+    """Consumes projection chunks: per-loan ECL by scenario, ECL schedule rows."""
+
+    def __init__(self, n, scenarios, weights, loss: Loss, lookups, region_column, hpi_names, as_of_idx, writer):
+        self.scenarios = scenarios
+        self.weights = weights
+        self.loss = loss
+        self.lookups = lookups
+        self.region_column = region_column
+        self.hpi_names = hpi_names
+        self.as_of_idx = as_of_idx
+        self.writer = writer
+        self.ecl_12m = {s: np.zeros(n) for s in (*scenarios, WEIGHTED)}
+        self.ecl_life = {s: np.zeros(n) for s in (*scenarios, WEIGHTED)}
+
+    def _lgd(self, s, ch: ChunkProjection, ead):
+        lgd = self.loss.lgd
+        n, H = ead.shape
+        if lgd.kind == "constant":
+            seg = ch.loans["segment"].astype(str).to_numpy()
+            per = np.array([lgd.by_segment.get(x, lgd.constant) for x in seg], dtype=float)
+            return np.broadcast_to(per[:, None], (n, H))
+        lk = self.lookups[s]
+        regions = ch.loans[self.region_column].to_numpy()
+        orig = ch.loans["origination_idx"].to_numpy(dtype=np.int64)
+        sale = ch.calendar_month + lgd.months_to_recovery
+        hpi_sale = np.empty((n, H))
+        hpi_orig = np.empty(n)
+        for region in pd.unique(regions):
+            rows = regions == region
+            name = self.hpi_names[region]
+            hpi_sale[rows] = lk.get(name, sale[rows])
+            hpi_orig[rows] = lk.get(name, orig[rows])
+        return collateral_lgd(
+            ead, ch.loans["property_value"].to_numpy(float)[:, None], hpi_orig[:, None], hpi_sale,
+            ch.note_rate[:, None], months_to_recovery=lgd.months_to_recovery,
+            forced_sale_haircut=lgd.forced_sale_haircut, sale_costs=lgd.sale_costs, floor=lgd.floor,
+        )
+
+    def __call__(self, ch: ChunkProjection) -> None:
+        n, H = ch.mask.shape
+        u = np.arange(1, H + 1)
+        r = ch.note_rate[:, None]
+        ead = ch.balance_start * (1.0 + r / 12.0) if self.loss.accrued_interest else ch.balance_start
+        df = discount_factors(r, u[None, :], self.loss.discount)
+        df = np.broadcast_to(df, (n, H))
+        h12 = min(12, H)
+        el, lgds = {}, {}
+        for s in self.scenarios:
+            lgds[s] = self._lgd(s, ch, ead)
+            el[s] = ch.marginal_pd[s] * lgds[s] * ead * df
+        el[WEIGHTED] = sum(self.weights[s] * el[s] for s in self.scenarios)
+        mpd_w = ch.marginal_pd[WEIGHTED]
+        num = sum(self.weights[s] * ch.marginal_pd[s] * lgds[s] for s in self.scenarios)
+        plain = sum(self.weights[s] * lgds[s] for s in self.scenarios)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            lgds[WEIGHTED] = np.where(mpd_w > 0, num / np.where(mpd_w > 0, mpd_w, 1.0), plain)
+        for s, e in el.items():
+            self.ecl_12m[s][ch.rows] = e[:, :h12].sum(axis=1)
+            self.ecl_life[s][ch.rows] = e.sum(axis=1)
+        if self.writer is not None:
+            names = (*self.scenarios, WEIGHTED)
+            K = len(names)
+            m3 = np.broadcast_to(ch.mask[:, None, :], (n, K, H))
+            counts = ch.mask.sum(axis=1)
+
+            def stack(d):
+                return np.stack([np.broadcast_to(d[s], (n, H)) for s in names], axis=1)[m3]
+
+            self.writer(
+                pa.table(
+                    {
+                        "loan_id": _repeat_ids(ch.loans["loan_id"].to_numpy(), counts * K),
+                        "scenario": _scenario_column(
+                            names, np.broadcast_to(np.arange(K, dtype=np.int32)[None, :, None], (n, K, H))[m3]
+                        ),
+                        "month_ahead": np.broadcast_to(u.astype(np.int32)[None, None, :], (n, K, H))[m3],
+                        "ead": stack({s: ead for s in names}),
+                        "lgd": stack(lgds),
+                        "marginal_pd": stack(ch.marginal_pd),
+                        "discount_factor": stack({s: df for s in names}),
+                        "expected_loss": stack(el),
+                    }
+                )
+            )
+
+
+def expected_credit_loss(
+    loans: pd.DataFrame,
+    source,
+    paths: Mapping[str, pd.DataFrame],
+    *,
+    as_of_idx: int,
+    weights: Mapping[str, float] | None = None,
+    loss: Loss = Loss(),
+    staging: Staging = Staging(),
+    default_days_past_due: int | None = 90,
+    chunk_size: int = 2000,
+    hpi_series: str = "hpi_{region}",
+    region_column: str = "region",
+    market_rate_series: str = "mortgage_rate",
+    segment_column: str = "segment",
+    band_column: str | None = None,
+    band_edges: Sequence[float] = (),
+    schedule_writer: Callable[[pa.Table], None] | None = None,
+    curve_writer: Callable[[pa.Table], None] | None = None,
+    term_writer: Callable[[pa.Table], None] | None = None,
+) -> EclResult:
+    """Stage every loan and compute its 12-month, lifetime and reported ECL.
+
+    Parameters
+    ----------
+    loans : DataFrame
+        As for :func:`creditsurv.projection.project_loans`, plus
+        ``days_past_due`` and optionally ``in_default`` (bool; else in default
+        when days_past_due >= ``default_days_past_due``); ``original_balance``
+        and ``origination_idx`` when the PD at origination is projected;
+        ``property_value``, ``origination_idx`` and the region column for the
+        collateral LGD.  Loans in default are not projected (stage 3).
+    source, paths, as_of_idx, weights, chunk_size, hpi_series, region_column,
+    market_rate_series, segment_column, band_column, band_edges, curve_writer,
+    term_writer
+        Passed to :func:`~creditsurv.projection.project_loans`.  For the
+        collateral LGD the paths must reach ``months_to_recovery`` months past
+        the last maturity.
+    loss, staging : config ``Loss`` and ``Staging``
+    default_days_past_due : int or None
+        Default definition when there is no ``in_default`` column.
+    schedule_writer : callable(pyarrow.Table), optional
+        ECL schedule, chunk by chunk: ``loan_id``, ``scenario``,
+        ``month_ahead``, ``ead``, ``lgd``, ``marginal_pd``,
+        ``discount_factor``, ``expected_loss`` (sorted like the curves; the
+        ``weighted`` row's lgd is the marginal-PD-weighted mean LGD, so that
+        expected_loss = marginal_pd x lgd x ead x discount_factor holds there too).
+
+    Returns
+    -------
+    EclResult
+    """
+    scenarios = tuple(paths)
+    if segment_column not in loans.columns:
+        raise ProjectionError(f"loans: no segment column {segment_column!r}; have {list(loans.columns)}")
+    if "days_past_due" not in loans.columns:
+        raise ProjectionError(f"loans: no days_past_due column (needed for staging); have {list(loans.columns)}")
+    frame = loans.sort_values("loan_id", kind="stable").reset_index(drop=True)
+    if segment_column != "segment":
+        frame = frame.assign(segment=frame[segment_column])
+    dpd = frame["days_past_due"].to_numpy()
+    if "in_default" in frame.columns:
+        in_default = frame["in_default"].to_numpy(dtype=bool)
+    elif default_days_past_due is not None:
+        in_default = dpd >= default_days_past_due
+    else:
+        raise ProjectionError("loans: no in_default column and no days-past-due default threshold")
+    lgd_cfg = loss.lgd
+    lookups = {s: MacroLookup(p) for s, p in paths.items()}
+    hpi_names = {}
+    if lgd_cfg.kind == "collateral":
+        need = ["property_value", "origination_idx", region_column]
+        missing = [c for c in need if c not in frame.columns]
+        if missing:
+            raise ProjectionError(f"loans: collateral LGD needs column(s) {missing}")
+        hpi_names = {r: hpi_series.format(region=str(r).lower()) for r in pd.unique(frame[region_column])}
+        live = ~in_default
+        needs = {}
+        ends = (as_of_idx + frame["term"].to_numpy() - frame["age"].to_numpy() + lgd_cfg.months_to_recovery)
+        for region, name in hpi_names.items():
+            rows = frame[region_column].to_numpy() == region
+            months = [np.unique(frame["origination_idx"].to_numpy()[rows]), [as_of_idx + lgd_cfg.months_to_recovery]]
+            if (rows & live).any():
+                months.append(np.arange(as_of_idx + 1, int(ends[rows & live].max()) + 1))
+            needs.setdefault(name, []).extend(months)
+        _check_coverage(lookups, {k: np.unique(np.concatenate([np.asarray(m) for m in v])) for k, v in needs.items()})
+
+    live_rows = np.flatnonzero(~in_default)
+    live = frame.iloc[live_rows]
+    w = _weights(scenarios, weights)
+    acc = _EclAccumulator(len(live), scenarios, w, loss, lookups, region_column, hpi_names, as_of_idx, schedule_writer)
+    proj = project_loans(
+        live, source, paths, as_of_idx=as_of_idx, weights=w, chunk_size=chunk_size, hpi_series=hpi_series,
+        region_column=region_column, market_rate_series=market_rate_series, segment_column="segment",
+        band_column=band_column, band_edges=band_edges, curve_writer=curve_writer, term_writer=term_writer,
+        on_chunk=acc,
+    )
+
+    n = len(frame)
+    names = (*scenarios, WEIGHTED)
+    out = {"loan_id": frame["loan_id"].to_numpy(), "segment": frame["segment"].to_numpy()}
+    pl = proj.loans  # sorted by loan_id like live
+    cols = {}
+    for s in names:
+        for m in ("pd_12m", "pd_lifetime", "ecl_12m", "ecl_lifetime"):
+            cols[f"{m}_{s}"] = np.ones(n) if m.startswith("pd") else np.zeros(n)
+        cols[f"pd_12m_{s}"][live_rows] = pl[f"pd_12m_{s}"].to_numpy()
+        cols[f"pd_lifetime_{s}"][live_rows] = pl[f"pd_lifetime_{s}"].to_numpy()
+        cols[f"ecl_12m_{s}"][live_rows] = acc.ecl_12m[s]
+        cols[f"ecl_lifetime_{s}"][live_rows] = acc.ecl_life[s]
+
+    # PD at origination: given, or projected with the origination month's information
+    if staging.pd_at_origination_column:
+        col = staging.pd_at_origination_column
+        if col not in frame.columns:
+            raise ProjectionError(f"staging.pd_at_origination_column: loans have no column {col!r}")
+        pd_orig = frame[col].to_numpy(dtype=float)
+        bad = ~((pd_orig >= 0) & (pd_orig <= 1))
+        if (bad & ~in_default).any():
+            raise ProjectionError(f"loans: {col!r} is not a probability in [0, 1] for {_ids(frame['loan_id'][bad & ~in_default])}")
+    else:
+        pd_orig = np.full(n, np.nan)
+        if len(live):
+            first = paths[scenarios[0]]
+            po = origination_pd(
+                live, source, first, chunk_size=chunk_size, hpi_series=hpi_series,
+                region_column=region_column, market_rate_series=market_rate_series,
+            )
+            pd_orig[live_rows] = po.to_numpy()
+
+    stage, reason = allocate_stages(cols[f"pd_lifetime_{WEIGHTED}"], pd_orig, dpd, in_default, staging)
+
+    # stage 3: ECL = LGD x EAD at the reporting month, per scenario
+    balance = frame["balance"].to_numpy(dtype=float)
+    rate = frame["note_rate"].to_numpy(dtype=float)
+    ead0 = balance * (1.0 + rate / 12.0) if loss.accrued_interest else balance
+    lgd0 = {}
+    for s in scenarios:
+        if lgd_cfg.kind == "constant":
+            lgd0[s] = np.array([lgd_cfg.by_segment.get(str(x), lgd_cfg.constant) for x in frame["segment"]], dtype=float)
+        else:
+            lk = lookups[s]
+            hs, ho = np.empty(n), np.empty(n)
+            reg = frame[region_column].to_numpy()
+            orig = frame["origination_idx"].to_numpy(dtype=np.int64)
+            for region, name in hpi_names.items():
+                rows = reg == region
+                hs[rows] = lk.get(name, np.full(rows.sum(), as_of_idx + lgd_cfg.months_to_recovery))
+                ho[rows] = lk.get(name, orig[rows])
+            lgd0[s] = collateral_lgd(
+                ead0, frame["property_value"].to_numpy(float), ho, hs, rate,
+                months_to_recovery=lgd_cfg.months_to_recovery, forced_sale_haircut=lgd_cfg.forced_sale_haircut,
+                sale_costs=lgd_cfg.sale_costs, floor=lgd_cfg.floor,
+            )
+    lgd0[WEIGHTED] = sum(w[s] * lgd0[s] for s in scenarios)
+    d = in_default
+    for s in names:
+        loss3 = lgd0[s] * ead0
+        cols[f"ecl_12m_{s}"][d] = loss3[d]
+        cols[f"ecl_lifetime_{s}"][d] = loss3[d]
+    # weighted columns: sum_s w_s x (IFRS 9 5.5.17), recomputed to include stage 3 rows
+    for m in ("ecl_12m", "ecl_lifetime", "pd_12m", "pd_lifetime"):
+        cols[f"{m}_{WEIGHTED}"] = sum(w[s] * cols[f"{m}_{s}"] for s in scenarios)
+
+    ecl_12m, ecl_life = cols[f"ecl_12m_{WEIGHTED}"], cols[f"ecl_lifetime_{WEIGHTED}"]
+    table = pd.DataFrame(
+        {
+            **out,
+            "stage": stage,
+            "stage_reason": reason,
+            "days_past_due": dpd,
+            "pd_12m": cols[f"pd_12m_{WEIGHTED}"],
+            "pd_lifetime": cols[f"pd_lifetime_{WEIGHTED}"],
+            "pd_lifetime_origination": pd_orig,
+            "balance": balance,
+            "ead": ead0,
+            "lgd": lgd0[WEIGHTED],
+            "ecl_12m": ecl_12m,
+            "ecl_lifetime": ecl_life,
+            # IFRS 9 5.5.5 (stage 1: 12-month) and 5.5.3 (stages 2, 3: lifetime)
+            "ecl_reported": np.where(stage == 1, ecl_12m, ecl_life),
+        }
+    )
+    for s in scenarios:
+        for m in ("pd_12m", "pd_lifetime", "ecl_12m", "ecl_lifetime"):
+            table[f"{m}_{s}"] = cols[f"{m}_{s}"]
+    return EclResult(loans=table, segments=segment_summary(table), projection=proj, scenarios=scenarios, weights=w)

@@ -1,0 +1,1180 @@
+"""Project live loans forward: covariates, hazards, survival and cumulative incidence.
+
+For a loan alive at age ``a`` at the reporting (as-of) month, projection walks
+the future months ``u = 1 .. term - a`` (loan age ``a + u``, calendar month
+``as_of + u``), evolves the covariates of each month and asks a *hazard source*
+for the monthly default and prepayment probabilities.
+
+Hazard source protocol
+----------------------
+Any object with
+
+- ``required_inputs``: list of raw input names needed per loan-month:
+  ``age``, ``log_age``, ``current_ltv``, ``rate_incentive``, a static loan
+  column (``credit_score``, ``region`` ...), or a macro series at a lag,
+  ``macro:<series>:<lag>`` (value of ``<series>`` in calendar month
+  ``month - lag``);
+- ``hazards(raw: dict[str, ndarray]) -> (h_default, h_prepay)``: monthly
+  probabilities, flat arrays as long as the inputs.
+
+Covariates of future month u
+----------------------------
+- age ``a + u``; ``log_age = log(a + u)``;
+- scheduled balance: the actual as-of balance amortised as a level payment
+  over the remaining ``term - a`` months at the note rate;
+- ``current_ltv`` = scheduled balance at the start of month u /
+  (property value x HPI_region(month) / HPI_region(origination month));
+- ``rate_incentive`` = 100 x note rate - market rate(month), percentage points;
+- macro series from the scenario path at their lags; static columns held.
+
+Curves (DESIGN.md, Aalen-Johansen form in discrete time), conditional on S(0) = 1:
+S(u) = prod_{v<=u} (1 - hD(v) - hP(v)); F_D(u) = sum_{v<=u} S(v-1) hD(v);
+F_P likewise; marginal PD(u) = S(v-1) hD(u).  The probability-weighted
+scenario ``weighted`` is sum_s w_s x curve_s (linear in probabilities).
+
+Memory is bounded by a chunk of loans: long tables (loan x scenario x month)
+leave through writer callbacks chunk by chunk; only per-loan summaries and
+segment aggregates stay in memory.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ._months import format_month, parse_month
+from .errors import ProjectionError
+from .speeds import equivalent_psa, equivalent_sda, mdr_to_cdr, smm_to_cpr
+
+__all__ = [
+    "load_scenario_paths",
+    "extend_path",
+    "prepare_paths",
+    "scheduled_balance",
+    "project_loans",
+    "origination_pd",
+    "ProjectionResult",
+    "ChunkProjection",
+    "TableWriter",
+    "MacroLookup",
+    "WEIGHTED",
+]
+
+WEIGHTED = "weighted"
+"""Name of the probability-weighted scenario in every output table."""
+
+_DERIVED = ("age", "log_age", "current_ltv", "rate_incentive")
+
+
+# --------------------------------------------------------------------------- months
+
+
+def _month_ranges(months) -> str:
+    """``2025-01..2025-03, 2025-07`` for a set of month indices (at most 6 runs shown)."""
+    months = sorted({int(m) for m in months})
+    runs, start, prev = [], None, None
+    for m in months:
+        if start is None:
+            start = prev = m
+        elif m == prev + 1:
+            prev = m
+        else:
+            runs.append((start, prev))
+            start = prev = m
+    if start is not None:
+        runs.append((start, prev))
+    text = [format_month(a) if a == b else f"{format_month(a)}..{format_month(b)}" for a, b in runs[:6]]
+    if len(runs) > 6:
+        text.append(f"... ({len(runs) - 6} more runs)")
+    return ", ".join(text)
+
+
+def _month_index(values) -> tuple[np.ndarray, list]:
+    """Month indices of a column of YYYY-MM text or dates; also the unparseable values."""
+    s = pd.Series(values)
+    if pd.api.types.is_datetime64_any_dtype(s):
+        idx = (s.dt.year * 12 + s.dt.month - 1).to_numpy()
+        return idx.astype(np.int64), []
+    out, bad = np.zeros(len(s), dtype=np.int64), []
+    for i, v in enumerate(s.tolist()):
+        try:
+            out[i] = parse_month(v if not hasattr(v, "date") else v.date())
+        except (ValueError, TypeError):
+            bad.append(v)
+    return out, bad
+
+
+# --------------------------------------------------------------------------- scenario paths
+
+
+def _show(value) -> str:
+    return "a blank" if pd.isna(value) else repr(str(value))
+
+
+def _read_table(path: Path) -> pd.DataFrame:
+    suffix = path.suffix.lower()
+    if suffix in (".parquet", ".pq"):
+        return pd.read_parquet(path)
+    if suffix == ".csv":
+        return pd.read_csv(path, dtype={"month": str})
+    raise ProjectionError(f"{path}: cannot tell the format from the suffix {suffix!r}; use .csv or .parquet")
+
+
+def load_scenario_paths(
+    cfg_scenarios: Sequence,
+    history: pd.DataFrame,
+    *,
+    required_series: Sequence[str] = (),
+    month_column: str = "month",
+) -> dict[str, pd.DataFrame]:
+    """Read and check each scenario's monthly macro path.
+
+    Parameters
+    ----------
+    cfg_scenarios : sequence of config ``Scenario``
+        Each with ``name`` and ``path`` (CSV or Parquet with a month column,
+        ``YYYY-MM`` text or dates, and one column per series).
+    history : DataFrame
+        Macro history indexed by month index; every one of its series must be
+        in every scenario.
+    required_series : sequence of str
+        Further series the model needs (e.g. from ``macro:<series>:<lag>``).
+    month_column : str, default "month"
+
+    Returns
+    -------
+    dict of name -> DataFrame
+        In config order, each indexed by month index (``month_idx``), float columns.
+
+    Raises
+    ------
+    ProjectionError
+        Listing every problem in one message, each naming the scenario and file:
+        unreadable file, no month column, bad or duplicate months, missing
+        months inside the path, missing series, non-numeric or missing values.
+    """
+    needed = list(dict.fromkeys([*history.columns, *required_series]))
+    out, problems = {}, []
+    for sc in cfg_scenarios:
+        path = Path(sc.path)
+        where = f"scenario {sc.name!r} ({path})"
+        try:
+            raw = _read_table(path)
+        except ProjectionError as exc:
+            problems.append(f"{where}: {exc}")
+            continue
+        except (OSError, ValueError) as exc:
+            problems.append(f"{where}: cannot read the file ({exc})")
+            continue
+        if month_column not in raw.columns:
+            problems.append(f"{where}: no {month_column!r} column; columns are {list(raw.columns)}")
+            continue
+        idx, bad = _month_index(raw[month_column])
+        if bad:
+            problems.append(f"{where}: column {month_column!r} has values that are not months: {bad[:5]}")
+            continue
+        dupes = pd.Index(idx)[pd.Index(idx).duplicated()].unique()
+        if len(dupes):
+            problems.append(f"{where}: duplicate months {_month_ranges(dupes)}")
+        if len(idx):
+            gaps = sorted(set(range(int(idx.min()), int(idx.max()) + 1)) - set(idx.tolist()))
+            if gaps:
+                problems.append(f"{where}: missing months inside the path: {_month_ranges(gaps)}")
+        missing = [s for s in needed if s not in raw.columns]
+        if missing:
+            problems.append(f"{where}: missing series {missing} (needed by the model or present in the history)")
+        frame = {}
+        for col in raw.columns:
+            if col == month_column:
+                continue
+            values = pd.to_numeric(raw[col], errors="coerce")
+            bad_rows = np.flatnonzero(values.isna().to_numpy())
+            if len(bad_rows):
+                problems.append(
+                    f"{where}: series {col!r} has missing or non-numeric values in months "
+                    f"{_month_ranges(idx[bad_rows])} (e.g. {_show(raw[col].iloc[bad_rows[0]])})"
+                )
+            frame[col] = values.to_numpy(dtype=float)
+        if not dupes.size:
+            out[sc.name] = pd.DataFrame(frame, index=pd.Index(idx, name="month_idx")).sort_index()
+    if problems:
+        n = len(problems)
+        raise ProjectionError(f"{n} problem{'s' if n > 1 else ''} in the scenario paths:\n" + "\n".join(f"  - {p}" for p in problems))
+    return out
+
+
+def extend_path(
+    history: pd.DataFrame,
+    path: pd.DataFrame,
+    until_idx: int,
+    rule: str = "revert_to_mean",
+    months: int = 24,
+    long_run: Mapping[str, float] | None = None,
+    *,
+    as_of_idx: int | None = None,
+    name: str = "scenario",
+) -> pd.DataFrame:
+    """One continuous monthly series per column, from the history's start to ``until_idx``.
+
+    The result is, month by month:
+
+    1. the history up to and including the as-of month (``as_of_idx``, default
+       the last month of the history);
+    2. months after the as-of month and before the path's first month: the
+       history, when it has them (else ProjectionError);
+    3. the scenario path from the month after the as-of month to its last month T;
+    4. after T, by ``rule``:
+
+       - ``hold_last``: x(T + k) = x(T);
+       - ``revert_to_mean``: x(T + k) = x(T) + (L - x(T)) * min(k, months) / months,
+         a straight line reaching the long-run value L after ``months`` months,
+         flat at L after.  L is ``long_run[series]`` when given, else the mean
+         of the history up to the as-of month.  For a trending level series
+         (a house-price index) the history's mean is far below the last
+         value, so reverting to it is a price fall; give ``long_run`` for such
+         series or use ``hold_last``.
+
+    Parameters
+    ----------
+    history, path : DataFrame
+        Indexed by month index, one column per series.
+    until_idx : int
+        Last month index wanted.
+    rule : {"revert_to_mean", "hold_last"}
+    months : int, default 24
+    long_run : mapping of series -> float, optional
+    as_of_idx : int, optional
+    name : str
+        Scenario name used in error messages.
+
+    Returns
+    -------
+    DataFrame indexed by ``month_idx`` without gaps.
+    """
+    if rule not in ("revert_to_mean", "hold_last"):
+        raise ProjectionError(f"scenario {name!r}: unknown extension rule {rule!r}; use revert_to_mean or hold_last")
+    if months < 1:
+        raise ProjectionError(f"scenario {name!r}: revert_to_mean needs months >= 1, got {months}")
+    long_run = dict(long_run or {})
+    hist = history.sort_index()
+    h_idx = hist.index.to_numpy(dtype=np.int64)
+    as_of = int(h_idx.max()) if as_of_idx is None else int(as_of_idx)
+    start = int(h_idx.min())
+    if as_of < start:
+        raise ProjectionError(f"scenario {name!r}: as-of month {format_month(as_of)} is before the history starts")
+    gaps = sorted(set(range(start, int(h_idx.max()) + 1)) - set(h_idx.tolist()))
+    if gaps:
+        raise ProjectionError(f"macro history: missing months {_month_ranges(gaps)}")
+    if len(path) == 0:
+        raise ProjectionError(f"scenario {name!r}: the path has no months")
+    p_idx = path.index.to_numpy(dtype=np.int64)
+    p0, p1 = int(p_idx.min()), int(p_idx.max())
+    if p1 <= as_of:
+        raise ProjectionError(
+            f"scenario {name!r}: the path ends at {format_month(p1)}, not after the as-of month {format_month(as_of)}"
+        )
+    columns = list(dict.fromkeys([*hist.columns, *path.columns]))
+    end = max(int(until_idx), as_of)
+    index = np.arange(start, end + 1)
+    out = pd.DataFrame(np.nan, index=pd.Index(index, name="month_idx"), columns=columns)
+    hist_upto = hist.loc[hist.index <= as_of]
+    out.loc[hist_upto.index, hist.columns] = hist_upto.to_numpy(dtype=float)
+    if p0 > as_of + 1:
+        bridge = list(range(as_of + 1, p0))
+        have = hist.reindex(bridge)
+        missing = [c for c in path.columns if c in hist.columns and have[c].isna().any()]
+        missing += [c for c in path.columns if c not in hist.columns]
+        if missing:
+            raise ProjectionError(
+                f"scenario {name!r}: the path starts at {format_month(p0)} but the as-of month is "
+                f"{format_month(as_of)}; months {_month_ranges(bridge)} of series {missing} are not in the history"
+            )
+        out.loc[bridge, path.columns] = have[path.columns].to_numpy(dtype=float)
+    body = path.loc[(path.index > as_of) & (path.index <= end)]
+    out.loc[body.index, path.columns] = body.to_numpy(dtype=float)
+    if end > p1:
+        k = np.arange(1, end - p1 + 1, dtype=float)
+        after = np.arange(p1 + 1, end + 1)
+        for col in path.columns:
+            last = float(path[col].loc[p1])
+            if rule == "hold_last":
+                values = np.full(len(k), last)
+            else:
+                target = long_run.get(col)
+                if target is None:
+                    if col not in hist_upto.columns or hist_upto[col].isna().all():
+                        raise ProjectionError(
+                            f"scenario {name!r}: series {col!r} has no history to take a long-run mean from; "
+                            "give scenario_extension.long_run"
+                        )
+                    target = float(hist_upto[col].mean())
+                values = last + (target - last) * np.minimum(k, months) / months
+            out.loc[after, col] = values
+    return out.loc[: int(until_idx)] if until_idx >= start else out.iloc[:0]
+
+
+def prepare_paths(
+    cfg_scenarios: Sequence,
+    history: pd.DataFrame,
+    *,
+    as_of_idx: int,
+    until_idx: int,
+    extension=None,
+    required_series: Sequence[str] = (),
+) -> dict[str, pd.DataFrame]:
+    """Load every scenario path and extend it with the history (see :func:`extend_path`).
+
+    ``extension`` is a config ``ScenarioExtension`` (rule, months, long_run);
+    default revert to the history mean over 24 months.
+    """
+    paths = load_scenario_paths(cfg_scenarios, history, required_series=required_series)
+    rule = getattr(extension, "rule", "revert_to_mean")
+    months = getattr(extension, "months", 24)
+    long_run = getattr(extension, "long_run", {})
+    return {
+        name: extend_path(history, p, until_idx, rule, months, long_run, as_of_idx=as_of_idx, name=name)
+        for name, p in paths.items()
+    }
+
+
+# --------------------------------------------------------------------------- amortisation
+
+
+def scheduled_balance(balance, note_rate, n_remaining, k):
+    """Level-payment balance after ``k`` of ``n_remaining`` monthly payments.
+
+    B(k) = B0 ((1+r)^n - (1+r)^k) / ((1+r)^n - 1) with r = note_rate / 12, and
+    B0 (n - k) / n when r = 0; 0 for k >= n.  Arguments broadcast.
+    (Standard annuity closed form; checked against numpy_financial in tests.)
+    """
+    b0 = np.asarray(balance, dtype=float)
+    r = np.asarray(note_rate, dtype=float) / 12.0
+    n = np.asarray(n_remaining, dtype=float)
+    k = np.minimum(np.asarray(k, dtype=float), n)
+    lr = np.log1p(r)
+    gn = np.expm1(n * lr)  # (1+r)^n - 1, accurate for small r
+    gk = np.expm1(k * lr)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        annuity = b0 * (gn - gk) / gn
+    linear = b0 * (n - k) / np.where(n > 0, n, 1.0)
+    return np.where(r == 0.0, linear, annuity)
+
+
+# --------------------------------------------------------------------------- macro lookups
+
+
+class MacroLookup:
+    """Dense month-indexed arrays of one scenario's macro series (values NaN when absent)."""
+
+    def __init__(self, frame: pd.DataFrame):
+        idx = frame.index.to_numpy(dtype=np.int64)
+        self.start = int(idx.min()) if len(idx) else 0
+        self.stop = int(idx.max()) + 1 if len(idx) else 0
+        dense = frame.reindex(np.arange(self.start, self.stop))
+        self._values = {c: dense[c].to_numpy(dtype=float) for c in frame.columns}
+
+    def __contains__(self, series: str) -> bool:
+        return series in self._values
+
+    def missing(self, series: str, months) -> list[int]:
+        """Months (indices) in ``months`` where ``series`` has no value."""
+        months = np.unique(np.asarray(months, dtype=np.int64))
+        if series not in self._values:
+            return months.tolist()
+        inside = (months >= self.start) & (months < self.stop)
+        bad = months[~inside].tolist()
+        vals = self._values[series][months[inside] - self.start]
+        return sorted(bad + months[inside][np.isnan(vals)].tolist())
+
+    def get(self, series: str, months) -> np.ndarray:
+        """Values of ``series`` at month indices ``months`` (any shape; checked beforehand)."""
+        months = np.asarray(months, dtype=np.int64)
+        pos = np.clip(months - self.start, 0, max(self.stop - self.start - 1, 0))
+        return self._values[series][pos]
+
+
+# --------------------------------------------------------------------------- inputs
+
+
+@dataclass(frozen=True)
+class _Spec:
+    names: tuple[str, ...]
+    macro: tuple[tuple[str, str, int], ...]  # (input name, series, lag)
+    static: tuple[str, ...]
+    ltv: bool
+    incentive: bool
+
+
+def _parse_inputs(required, loan_columns) -> _Spec:
+    macro, static, problems = [], [], []
+    for name in required:
+        if name in _DERIVED:
+            continue
+        if isinstance(name, str) and name.startswith("macro:"):
+            parts = name.split(":")
+            if len(parts) != 3 or not parts[1] or not parts[2].lstrip("-").isdigit() or int(parts[2]) < 0:
+                problems.append(f"{name!r}: write a macro input as macro:<series>:<lag> with lag >= 0")
+            else:
+                macro.append((name, parts[1], int(parts[2])))
+        elif name in loan_columns:
+            static.append(name)
+        else:
+            problems.append(f"{name!r}: not a derived input {list(_DERIVED)}, a macro:<series>:<lag> or a loan column")
+    if problems:
+        raise ProjectionError("the hazard source needs inputs that cannot be built:\n" + "\n".join(f"  - {p}" for p in problems))
+    return _Spec(tuple(required), tuple(macro), tuple(static), "current_ltv" in required, "rate_incentive" in required)
+
+
+def _ids(values) -> str:
+    values = list(values)
+    head = ", ".join(map(str, values[:5]))
+    return f"{len(values)} loan{'s' if len(values) != 1 else ''} ({head}{', ...' if len(values) > 5 else ''})"
+
+
+def _check_loans(loans: pd.DataFrame, needed: Sequence[str], *, balance_col: str, age_col: str | None) -> None:
+    missing = [c for c in needed if c not in loans.columns]
+    if missing:
+        raise ProjectionError(f"loans: missing column(s) {missing}; have {list(loans.columns)}")
+    ids = loans["loan_id"]
+    if ids.duplicated().any():
+        raise ProjectionError(f"loans: loan_id repeated for {_ids(ids[ids.duplicated()].unique())}")
+    problems = []
+    for col in needed:
+        if col in ("loan_id", "segment") or not pd.api.types.is_numeric_dtype(loans[col]):
+            continue
+        bad = loans[col].isna().to_numpy()
+        if bad.any():
+            problems.append(f"column {col!r} is missing for {_ids(ids[bad])}")
+    if problems:
+        raise ProjectionError("loans: " + "; ".join(problems))
+    rate = loans["note_rate"].to_numpy(dtype=float)
+    if (rate < 0).any():
+        raise ProjectionError(f"loans: negative note rate for {_ids(ids[rate < 0])}")
+    term = loans["term"].to_numpy()
+    if age_col is not None:
+        age = loans[age_col].to_numpy()
+        if (age < 0).any():
+            raise ProjectionError(f"loans: negative age for {_ids(ids[age < 0])}")
+        past = age >= term
+        if past.any():
+            raise ProjectionError(f"loans: at or past maturity (age >= term) for {_ids(ids[past])}; nothing to project")
+    elif (term < 1).any():
+        raise ProjectionError(f"loans: term below 1 month for {_ids(ids[term < 1])}")
+    bal = loans[balance_col].to_numpy(dtype=float)
+    if (bal < 0).any():
+        raise ProjectionError(f"loans: negative {balance_col} for {_ids(ids[bal < 0])}")
+
+
+def _hpi_names(regions, hpi_series: str) -> list[str]:
+    return [hpi_series.format(region=str(r).lower()) for r in regions]
+
+
+def _check_coverage(lookups: Mapping[str, MacroLookup], needs: Mapping[str, np.ndarray]) -> None:
+    problems = []
+    for scen, lk in lookups.items():
+        for series, months in needs.items():
+            if series not in lk:
+                problems.append(f"scenario {scen!r}: series {series!r} is not in the path or history")
+                continue
+            bad = lk.missing(series, months)
+            if bad:
+                problems.append(f"scenario {scen!r}: series {series!r} has no value in months {_month_ranges(bad)}")
+    if problems:
+        raise ProjectionError("the macro paths do not cover the projection:\n" + "\n".join(f"  - {p}" for p in problems))
+
+
+# --------------------------------------------------------------------------- the chunk kernel
+
+
+@dataclass
+class _Book:
+    """Loans as numpy arrays, sorted by loan_id."""
+
+    frame: pd.DataFrame
+    loan_id: np.ndarray
+    age: np.ndarray
+    remaining: np.ndarray
+    rate: np.ndarray
+    balance: np.ndarray
+    start_idx: np.ndarray  # calendar month of month_ahead 0
+    orig_idx: np.ndarray | None
+    value: np.ndarray | None
+    region_code: np.ndarray | None
+    static: dict[str, np.ndarray]
+
+
+def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names, market_rate, hold: bool):
+    """Hazards (n, H) per scenario for the loans in ``sl``; also the chunk's geometry."""
+    rem = book.remaining[sl]
+    n = len(rem)
+    H = int(rem.max())
+    u = np.arange(1, H + 1)
+    mask = u[None, :] <= rem[:, None]
+    age0 = book.age[sl]
+    rate = book.rate[sl]
+    k = np.arange(0, H + 1)
+    bal = scheduled_balance(book.balance[sl][:, None], rate[:, None], rem[:, None], k[None, :])
+    bal_start, bal_end = bal[:, :-1], bal[:, 1:]
+    cal = book.start_idx[sl][:, None] + u[None, :]
+    counts = rem
+    raw_common = {}
+    if "age" in spec.names or "log_age" in spec.names:
+        ages = (age0[:, None] + u[None, :])[mask].astype(float)
+        if "age" in spec.names:
+            raw_common["age"] = ages
+        if "log_age" in spec.names:
+            raw_common["log_age"] = np.log(ages)
+    for col in spec.static:
+        raw_common[col] = np.repeat(book.static[col][sl], counts)
+    lookup_months = np.broadcast_to(book.start_idx[sl][:, None], (n, H)) if hold else cal
+    lookup_flat = lookup_months[mask]
+    out = {}
+    for scen, lk in lookups.items():
+        raw = dict(raw_common)
+        for name, series, lag in spec.macro:
+            raw[name] = lk.get(series, lookup_flat - lag)
+        if spec.ltv:
+            codes = book.region_code[sl]
+            hpi_now = np.empty((n, H))
+            hpi_orig = np.empty(n)
+            for c in np.unique(codes):
+                rows = codes == c
+                hpi_now[rows] = lk.get(hpi_names[c], lookup_months[rows])
+                hpi_orig[rows] = lk.get(hpi_names[c], book.orig_idx[sl][rows])
+            value_now = book.value[sl][:, None] * hpi_now / hpi_orig[:, None]
+            raw["current_ltv"] = (bal_start / value_now)[mask]
+        if spec.incentive:
+            raw["rate_incentive"] = (100.0 * rate[:, None] - lk.get(market_rate, lookup_months))[mask]
+        raw = {name: raw[name] for name in spec.names}
+        hd_flat, hp_flat = source.hazards(raw)
+        hd_flat = np.asarray(hd_flat, dtype=float)
+        hp_flat = np.asarray(hp_flat, dtype=float)
+        size = int(mask.sum())
+        if hd_flat.shape != (size,) or hp_flat.shape != (size,):
+            raise ProjectionError(
+                f"hazard source returned shapes {hd_flat.shape}, {hp_flat.shape}; expected ({size},) each"
+            )
+        ok = (hd_flat >= 0) & (hp_flat >= 0) & (hd_flat + hp_flat <= 1.0 + 1e-12)
+        if not ok.all():
+            bad_rows = np.repeat(np.arange(n), counts)[~ok]
+            raise ProjectionError(
+                f"scenario {scen!r}: the hazard source returned hazards outside [0, 1] or summing above 1 "
+                f"(or NaN) for {_ids(book.loan_id[sl][np.unique(bad_rows)])}"
+            )
+        hd = np.zeros((n, H))
+        hp = np.zeros((n, H))
+        hd[mask] = hd_flat
+        hp[mask] = hp_flat
+        out[scen] = (hd, hp)
+    return out, mask, bal_start, bal_end, cal
+
+
+def _curves(hd, hp):
+    """S(u-1), S(u), F_D(u), F_P(u), marginal PD (n, H) from hazards."""
+    s = np.cumprod(1.0 - hd - hp, axis=1)
+    s_prev = np.empty_like(s)
+    s_prev[:, 0] = 1.0
+    s_prev[:, 1:] = s[:, :-1]
+    marg_d = s_prev * hd
+    marg_p = s_prev * hp
+    return s_prev, s, np.cumsum(marg_d, axis=1), np.cumsum(marg_p, axis=1), marg_d, marg_p
+
+
+# --------------------------------------------------------------------------- results
+
+
+@dataclass
+class ChunkProjection:
+    """What one chunk of loans projects to; handed to ``on_chunk`` consumers.
+
+    Arrays are (n, H): n loans of the chunk (rows ``rows`` of ``ProjectionResult.loans``),
+    H the longest remaining term in the chunk; column j is month ahead j + 1.
+    Cells past a loan's maturity have zero hazards and zero balance.
+    """
+
+    rows: slice
+    loans: pd.DataFrame
+    mask: np.ndarray
+    calendar_month: np.ndarray
+    balance_start: np.ndarray
+    balance_end: np.ndarray
+    note_rate: np.ndarray
+    scenarios: tuple[str, ...]
+    weights: dict[str, float]
+    h_default: dict[str, np.ndarray]
+    h_prepay: dict[str, np.ndarray]
+    survival_prev: dict[str, np.ndarray]
+    survival: dict[str, np.ndarray]
+    cum_default: dict[str, np.ndarray]
+    cum_prepay: dict[str, np.ndarray]
+    marginal_pd: dict[str, np.ndarray]
+
+
+@dataclass
+class ProjectionResult:
+    """Per-loan summaries and segment aggregates of a projection.
+
+    Attributes
+    ----------
+    loans : DataFrame
+        One row per loan, sorted by loan_id: ``loan_id``, ``segment``, ``band``,
+        ``age``, ``remaining_term``, ``balance`` and, for each scenario s (config
+        order, then ``weighted``): ``pd_12m_<s>``, ``pd_lifetime_<s>``,
+        ``prepay_lifetime_<s>``.
+    term_structure : DataFrame
+        Segment curves by ``segment``, ``band``, ``scenario``, ``year_ahead``:
+        ``n_loans``, ``balance``, ``cum_pd_count``, ``cum_pd_balance``,
+        ``survival_count``, ``survival_balance``, ``cond_pd_count``,
+        ``cond_pd_balance`` (conditional PD of the year = (F(12y) - F(12(y-1))) /
+        S(12(y-1)) on the pooled sums, 0 when the survival is 0).  Past a loan's
+        maturity its cumulative PD and survival stay at their maturity values.
+    speeds : DataFrame
+        By ``segment``, ``band``, ``scenario``, ``loan_age``: expected balances
+        ``default_exposure`` (S(u-1) B(u-1)), ``defaulted`` (S(u-1) hD B(u-1)),
+        ``prepay_exposure`` (S(u-1)(1 - hD) B(u)), ``prepaid`` (S(u-1) hP B(u)),
+        and ``mdr``, ``cdr``, ``smm``, ``cpr``.
+    speed_multiples : DataFrame
+        By ``segment``, ``band``, ``scenario``: ``psa`` and ``sda``, the equivalent
+        multiples (weighted least squares in CPR / CDR units, exposure weights).
+    """
+
+    loans: pd.DataFrame
+    term_structure: pd.DataFrame
+    speeds: pd.DataFrame
+    speed_multiples: pd.DataFrame
+    scenarios: tuple[str, ...]
+    weights: dict[str, float]
+    as_of_idx: int
+
+
+class TableWriter:
+    """Append pyarrow tables to one Parquet file; usable as a writer callback.
+
+    >>> with TableWriter("curves.parquet") as w:  # doctest: +SKIP
+    ...     project_loans(..., curve_writer=w)
+    """
+
+    def __init__(self, path, **parquet_options):
+        self.path = Path(path)
+        self._options = {"compression": "snappy", **parquet_options}
+        self._writer = None
+        self.rows = 0
+
+    def __call__(self, table: pa.Table) -> None:
+        if self._writer is None:
+            self._writer = pq.ParquetWriter(self.path, table.schema, **self._options)
+        self._writer.write_table(table)
+        self.rows += table.num_rows
+
+    def close(self) -> None:
+        if self._writer is not None:
+            self._writer.close()
+            self._writer = None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+def _band_labels(edges) -> list[str]:
+    if not edges:
+        return ["all"]
+    e = [f"{x:g}" for x in edges]
+    return [f"<{e[0]}"] + [f"{a}-{b}" for a, b in zip(e, e[1:])] + [f">={e[-1]}"]
+
+
+def _weights(scenarios, weights) -> dict[str, float]:
+    if WEIGHTED in scenarios:
+        raise ProjectionError(f"scenario name {WEIGHTED!r} is reserved for the probability-weighted result")
+    if weights is None:
+        if len(scenarios) == 1:
+            return {scenarios[0]: 1.0}
+        raise ProjectionError(f"give the probability weights of the scenarios {list(scenarios)}")
+    w = {s: float(weights[s]) for s in scenarios if s in weights}
+    missing = [s for s in scenarios if s not in w]
+    extra = [s for s in weights if s not in scenarios]
+    if missing or extra:
+        raise ProjectionError(f"weights: no weight for {missing}; weights for unknown scenarios {extra}")
+    total = sum(w.values())
+    if abs(total - 1.0) > 1e-9 or any(v < 0 for v in w.values()):
+        raise ProjectionError(f"weights must be non-negative and sum to 1, got {w} (sum {total:.10g})")
+    return w
+
+
+def _prepare_book(loans, spec, *, as_of_idx, region_column, hpi_series, market_rate_series, origination: bool):
+    if spec.ltv and (hpi_series is None or region_column is None):
+        raise ProjectionError(
+            "the hazard source needs current_ltv: set collateral.hpi_series and collateral.region_column"
+        )
+    if spec.incentive and market_rate_series is None:
+        raise ProjectionError("the hazard source needs rate_incentive: set collateral.market_rate_series")
+    needed = ["loan_id", "term", "note_rate", *spec.static]
+    needed += ["original_balance", "origination_idx"] if origination else ["balance", "age"]
+    if spec.ltv:
+        needed += ["property_value", "origination_idx", region_column]
+    _check_loans(
+        loans,
+        list(dict.fromkeys(needed)),
+        balance_col="original_balance" if origination else "balance",
+        age_col=None if origination else "age",
+    )
+    frame = loans.sort_values("loan_id", kind="stable").reset_index(drop=True)
+    n = len(frame)
+    term = frame["term"].to_numpy(dtype=np.int64)
+    if origination:
+        age = np.zeros(n, dtype=np.int64)
+        balance = frame["original_balance"].to_numpy(dtype=float)
+        start = frame["origination_idx"].to_numpy(dtype=np.int64)
+    else:
+        age = frame["age"].to_numpy(dtype=np.int64)
+        balance = frame["balance"].to_numpy(dtype=float)
+        start = np.full(n, int(as_of_idx), dtype=np.int64)
+    region_code = hpi_names = None
+    if spec.ltv:
+        region_code, regions = pd.factorize(frame[region_column], sort=True)
+        hpi_names = _hpi_names(regions, hpi_series)
+    book = _Book(
+        frame=frame,
+        loan_id=frame["loan_id"].to_numpy(),
+        age=age,
+        remaining=term - age,
+        rate=frame["note_rate"].to_numpy(dtype=float),
+        balance=balance,
+        start_idx=start,
+        orig_idx=frame["origination_idx"].to_numpy(dtype=np.int64) if "origination_idx" in frame else None,
+        value=frame["property_value"].to_numpy(dtype=float) if spec.ltv else None,
+        region_code=region_code,
+        static={c: frame[c].to_numpy() for c in spec.static},
+    )
+    return book, hpi_names
+
+
+def _coverage_needs(book: _Book, spec: _Spec, hpi_names, market_rate, hold: bool) -> dict[str, np.ndarray]:
+    """Month indices each series must cover."""
+    needs: dict[str, list] = {}
+    if hold:
+        for _, series, lag in spec.macro:
+            needs.setdefault(series, []).append(np.unique(book.start_idx - lag))
+        if spec.incentive:
+            needs.setdefault(market_rate, []).append(np.unique(book.start_idx))
+        if spec.ltv:
+            for c, name in enumerate(hpi_names):
+                needs.setdefault(name, []).append(np.unique(book.start_idx[book.region_code == c]))
+    else:
+        lo, hi = int(book.start_idx.min()) + 1, int((book.start_idx + book.remaining).max())
+        span = np.arange(lo, hi + 1)
+        for _, series, lag in spec.macro:
+            needs.setdefault(series, []).append(span - lag)
+        if spec.incentive:
+            needs.setdefault(market_rate, []).append(span)
+        if spec.ltv:
+            for c, name in enumerate(hpi_names):
+                rows = book.region_code == c
+                last = int((book.start_idx[rows] + book.remaining[rows]).max())
+                needs.setdefault(name, []).append(np.arange(lo, last + 1))
+                needs[name].append(np.unique(book.orig_idx[rows]))
+    return {s: np.unique(np.concatenate(v)) for s, v in needs.items()}
+
+
+def _year_index(H: int, years: int) -> np.ndarray:
+    return np.minimum(12 * np.arange(1, years + 1), H) - 1
+
+
+def project_loans(
+    loans: pd.DataFrame,
+    source,
+    paths: Mapping[str, pd.DataFrame],
+    *,
+    as_of_idx: int,
+    weights: Mapping[str, float] | None = None,
+    chunk_size: int = 2000,
+    hpi_series: str = "hpi_{region}",
+    region_column: str = "region",
+    market_rate_series: str = "mortgage_rate",
+    segment_column: str = "segment",
+    band_column: str | None = None,
+    band_edges: Sequence[float] = (),
+    curve_writer: Callable[[pa.Table], None] | None = None,
+    term_writer: Callable[[pa.Table], None] | None = None,
+    on_chunk: Callable[[ChunkProjection], None] | None = None,
+) -> ProjectionResult:
+    """Project every live loan under every scenario, chunk by chunk.
+
+    Parameters
+    ----------
+    loans : DataFrame
+        One row per live loan at the as-of month: ``loan_id``, ``segment``
+        (``segment_column``), ``age`` (months at as-of), ``term`` (months),
+        ``note_rate`` (decimal a year), ``balance`` (actual at as-of); for
+        ``current_ltv`` also ``property_value`` (at origination),
+        ``origination_idx`` and the region column; plus the static columns the
+        source needs.  Not modified.
+    source : hazard source
+        See the module docstring.
+    paths : mapping of scenario name -> DataFrame
+        Macro series indexed by month index, covering history and future
+        (see :func:`prepare_paths`).  Order is the scenario order.
+    as_of_idx : int
+        Reporting month index; month ahead u is calendar month ``as_of_idx + u``.
+    weights : mapping of scenario -> float, optional
+        Probability weights summing to 1; optional with one scenario.
+    chunk_size : int, default 2000
+        Loans per chunk; memory grows with chunk_size x longest remaining term.
+    hpi_series, region_column, market_rate_series : str
+        How current LTV and rate incentive are built (config ``collateral``).
+    segment_column, band_column, band_edges
+        Groups of the segment tables; a band is ``band_column`` cut at the
+        inner ``band_edges``.
+    curve_writer : callable(pyarrow.Table), optional
+        Receives, chunk by chunk, the monthly curves: ``loan_id``, ``scenario``,
+        ``month_ahead``, ``loan_age``, ``h_default``, ``h_prepay``, ``survival``,
+        ``marginal_pd``, ``cumulative_pd``, ``cumulative_prepay``; rows up to each loan's
+        maturity, sorted by loan_id, scenario (given order, then ``weighted``),
+        month_ahead.  For ``weighted`` the hazards are the implied ones,
+        marginal_pd / S(u-1) (0 when S(u-1) = 0).
+    term_writer : callable(pyarrow.Table), optional
+        Per-loan annual term structure: ``loan_id``, ``scenario``,
+        ``year_ahead``, ``cumulative_pd``, ``survival``, ``conditional_pd``, for years 1 ..
+        ceil(remaining / 12).
+    on_chunk : callable(ChunkProjection), optional
+        Further consumer of each chunk (used by loss).
+
+    Returns
+    -------
+    ProjectionResult
+
+    Raises
+    ------
+    ProjectionError
+        Loans past maturity or with a negative note rate (naming the first five
+        loan ids and the count), missing columns, macro paths that do not cover
+        the months needed, bad hazards from the source.
+    """
+    scenarios = tuple(paths)
+    if not scenarios:
+        raise ProjectionError("no scenarios to project")
+    w = _weights(scenarios, weights)
+    if chunk_size < 1:
+        raise ProjectionError(f"chunk_size must be at least 1, got {chunk_size}")
+    if segment_column not in loans.columns:
+        raise ProjectionError(f"loans: no segment column {segment_column!r}; have {list(loans.columns)}")
+    if band_column is not None and band_column not in loans.columns:
+        raise ProjectionError(f"loans: no band column {band_column!r}; have {list(loans.columns)}")
+    spec = _parse_inputs(list(source.required_inputs), loans.columns)
+    book, hpi_names = _prepare_book(
+        loans, spec, as_of_idx=as_of_idx, region_column=region_column, hpi_series=hpi_series,
+        market_rate_series=market_rate_series, origination=False,
+    )
+    lookups = {s: MacroLookup(p) for s, p in paths.items()}
+    if len(book.loan_id):
+        _check_coverage(lookups, _coverage_needs(book, spec, hpi_names, market_rate_series, hold=False))
+
+    frame = book.frame
+    n_all = len(frame)
+    seg_code, seg_levels = pd.factorize(frame[segment_column].astype(str), sort=True)
+    labels = _band_labels(tuple(band_edges))
+    if band_column is not None and band_edges:
+        band_code = np.searchsorted(np.asarray(band_edges, float), frame[band_column].to_numpy(float), side="right")
+    else:
+        band_code = np.zeros(n_all, dtype=np.int64)
+    n_band = len(labels)
+    group = seg_code * n_band + band_code
+    G = max(len(seg_levels), 1) * n_band
+    names = (*scenarios, WEIGHTED)
+    K = len(names)
+    years = int(math.ceil(book.remaining.max() / 12)) if n_all else 0
+    max_age = int((book.age + book.remaining).max()) if n_all else 0
+    ts = {key: np.zeros((K, G, years)) for key in ("n", "bal", "F_n", "F_b", "S_n", "S_b", "Sp_n", "Sp_b")}
+    sp = {key: np.zeros((K, G, max_age + 1)) for key in ("dexp", "dflt", "pexp", "ppay")}
+    summary = {f"{m}_{s}": np.zeros(n_all) for s in names for m in ("pd_12m", "pd_lifetime", "prepay_lifetime")}
+    bal_all = book.balance
+
+    for start in range(0, n_all, chunk_size):
+        sl = slice(start, min(start + chunk_size, n_all))
+        haz, mask, bal_start, bal_end, cal = _hazards_chunk(
+            book, sl, spec, source, lookups, hpi_names, market_rate_series, hold=False
+        )
+        n, H = mask.shape
+        curves = {}
+        for s in scenarios:
+            curves[s] = _curves(*haz[s])
+        # probability weighting, linear in probabilities (IFRS 9 5.5.17)
+        wc = [sum(w[s] * curves[s][j] for s in scenarios) for j in range(6)]
+        curves[WEIGHTED] = tuple(wc)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            hd_w = np.where(wc[0] > 0, wc[4] / wc[0], 0.0)
+            hp_w = np.where(wc[0] > 0, wc[5] / wc[0], 0.0)
+        haz[WEIGHTED] = (hd_w, hp_w)
+
+        i12 = min(12, H) - 1
+        yidx = _year_index(H, years)
+        grp = group[sl]
+        onehot = np.zeros((G, n))
+        onehot[grp, np.arange(n)] = 1.0
+        bal0 = bal_all[sl]
+        onehot_b = onehot * bal0[None, :]
+        ages = book.age[sl][:, None] + np.arange(1, H + 1)[None, :]
+        key = (grp[:, None] * (max_age + 1) + ages)[mask]
+        for ki, s in enumerate(names):
+            s_prev, surv, F_d, F_p, marg_d, marg_p = curves[s]
+            summary[f"pd_12m_{s}"][sl] = F_d[:, i12]
+            summary[f"pd_lifetime_{s}"][sl] = F_d[:, -1]
+            summary[f"prepay_lifetime_{s}"][sl] = F_p[:, -1]
+            Fy, Sy = F_d[:, yidx], surv[:, yidx]
+            Sy_prev = np.concatenate([np.ones((n, 1)), Sy[:, :-1]], axis=1)
+            for tag, oh in (("n", onehot), ("b", onehot_b)):
+                ts["F_" + tag][ki] += oh @ Fy
+                ts["S_" + tag][ki] += oh @ Sy
+                ts["Sp_" + tag][ki] += oh @ Sy_prev
+            ts["n"][ki] += onehot.sum(axis=1)[:, None]
+            ts["bal"][ki] += onehot_b.sum(axis=1)[:, None]
+            if s != WEIGHTED:
+                hd, hp = haz[s]
+                size = G * (max_age + 1)
+                for name, vals in (
+                    ("dexp", s_prev * bal_start),
+                    ("dflt", marg_d * bal_start),
+                    ("pexp", s_prev * (1.0 - hd) * bal_end),
+                    ("ppay", marg_p * bal_end),
+                ):
+                    sp[name][ki] += np.bincount(key, weights=vals[mask], minlength=size).reshape(G, max_age + 1)
+
+        if curve_writer is not None:
+            curve_writer(_curve_table(book.loan_id[sl], names, curves, haz, mask, ages))
+        if term_writer is not None:
+            term_writer(_term_table(book.loan_id[sl], names, curves, book.remaining[sl]))
+        if on_chunk is not None:
+            on_chunk(
+                ChunkProjection(
+                    rows=sl, loans=frame.iloc[sl], mask=mask, calendar_month=cal,
+                    balance_start=bal_start, balance_end=bal_end, note_rate=book.rate[sl],
+                    scenarios=scenarios, weights=w,
+                    h_default={s: haz[s][0] for s in names}, h_prepay={s: haz[s][1] for s in names},
+                    survival_prev={s: curves[s][0] for s in names}, survival={s: curves[s][1] for s in names},
+                    cum_default={s: curves[s][2] for s in names}, cum_prepay={s: curves[s][3] for s in names},
+                    marginal_pd={s: curves[s][4] for s in names},
+                )
+            )
+
+    # weighted speeds: linear in the expected balances
+    for name in sp:
+        sp[name][K - 1] = sum(w[s] * sp[name][ki] for ki, s in enumerate(scenarios))
+
+    loans_out = pd.DataFrame(
+        {
+            "loan_id": book.loan_id,
+            "segment": frame[segment_column].to_numpy(),
+            "band": np.asarray(labels, dtype=object)[band_code],
+            "age": book.age,
+            "remaining_term": book.remaining,
+            "balance": book.balance,
+            **summary,
+        }
+    )
+    seg_names = [str(x) for x in seg_levels]
+    term_structure = _term_structure_frame(ts, names, seg_names, labels, years)
+    speeds, multiples = _speeds_frames(sp, names, seg_names, labels, max_age)
+    return ProjectionResult(
+        loans=loans_out, term_structure=term_structure, speeds=speeds, speed_multiples=multiples,
+        scenarios=scenarios, weights=w, as_of_idx=int(as_of_idx),
+    )
+
+
+def _repeat_ids(loan_id, counts) -> pa.Array:
+    """``loan_id[i]`` repeated ``counts[i]`` times, built by Arrow (no Python strings per row)."""
+    return pa.array(loan_id).take(pa.array(np.repeat(np.arange(len(loan_id), dtype=np.int32), counts)))
+
+
+def _scenario_column(names, codes) -> pa.DictionaryArray:
+    return pa.DictionaryArray.from_arrays(pa.array(codes, type=pa.int32()), pa.array(list(names), type=pa.string()))
+
+
+def _curve_table(loan_id, names, curves, haz, mask, ages) -> pa.Table:
+    n, H = mask.shape
+    K = len(names)
+    m3 = np.broadcast_to(mask[:, None, :], (n, K, H))
+
+    def stack(fn):
+        return np.stack([fn(s) for s in names], axis=1)[m3]
+
+    counts = mask.sum(axis=1)
+    return pa.table(
+        {
+            "loan_id": _repeat_ids(loan_id, counts * K),
+            "scenario": _scenario_column(names, np.broadcast_to(np.arange(K, dtype=np.int32)[None, :, None], (n, K, H))[m3]),
+            "month_ahead": np.broadcast_to(np.arange(1, H + 1, dtype=np.int32)[None, None, :], (n, K, H))[m3],
+            "loan_age": np.broadcast_to(ages.astype(np.int32)[:, None, :], (n, K, H))[m3],
+            "h_default": stack(lambda s: haz[s][0]),
+            "h_prepay": stack(lambda s: haz[s][1]),
+            "survival": stack(lambda s: curves[s][1]),
+            "marginal_pd": stack(lambda s: curves[s][4]),
+            "cumulative_pd": stack(lambda s: curves[s][2]),
+            "cumulative_prepay": stack(lambda s: curves[s][3]),
+        }
+    )
+
+
+def _term_table(loan_id, names, curves, remaining) -> pa.Table:
+    n = len(loan_id)
+    H = curves[names[0]][0].shape[1]
+    years = int(math.ceil(H / 12))
+    yidx = _year_index(H, years)
+    ny = np.ceil(remaining / 12).astype(np.int64)
+    ymask = np.arange(1, years + 1)[None, :] <= ny[:, None]
+    cols = {"cumulative_pd": [], "survival": [], "conditional_pd": []}
+    for s in names:
+        F = curves[s][2][:, yidx]
+        S = curves[s][1][:, yidx]
+        F_prev = np.concatenate([np.zeros((n, 1)), F[:, :-1]], axis=1)
+        S_prev = np.concatenate([np.ones((n, 1)), S[:, :-1]], axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            cond = np.where(S_prev > 0, (F - F_prev) / S_prev, 0.0)
+        cols["cumulative_pd"].append(F)
+        cols["survival"].append(S)
+        cols["conditional_pd"].append(cond)
+    K = len(names)
+    m3 = np.broadcast_to(ymask[:, None, :], (n, K, years))
+    counts = ymask.sum(axis=1)
+    return pa.table(
+        {
+            "loan_id": _repeat_ids(loan_id, counts * K),
+            "scenario": _scenario_column(names, np.broadcast_to(np.arange(K, dtype=np.int32)[None, :, None], (n, K, years))[m3]),
+            "year_ahead": np.broadcast_to(np.arange(1, years + 1, dtype=np.int32)[None, None, :], (n, K, years))[m3],
+            **{c: np.stack(v, axis=1)[m3] for c, v in cols.items()},
+        }
+    )
+
+
+def _term_structure_frame(ts, names, seg_names, labels, years) -> pd.DataFrame:
+    K, G = len(names), len(seg_names) * len(labels)
+    rows = []
+    nb = len(labels)
+    for ki, s in enumerate(names):
+        for g in range(G):
+            if not years or ts["n"][ki, g, 0] == 0:
+                continue
+            for y in range(years):
+                rows.append((seg_names[g // nb], labels[g % nb], s, y + 1, ki, g, y))
+    if not rows:
+        return pd.DataFrame(columns=["segment", "band", "scenario", "year_ahead"])
+    ki = np.array([r[4] for r in rows])
+    g = np.array([r[5] for r in rows])
+    y = np.array([r[6] for r in rows])
+    get = {k: v[ki, g, y] for k, v in ts.items()}
+    F_prev_n = np.where(y > 0, ts["F_n"][ki, g, np.maximum(y - 1, 0)], 0.0)
+    F_prev_b = np.where(y > 0, ts["F_b"][ki, g, np.maximum(y - 1, 0)], 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = pd.DataFrame(
+            {
+                "segment": [r[0] for r in rows],
+                "band": [r[1] for r in rows],
+                "scenario": [r[2] for r in rows],
+                "year_ahead": [r[3] for r in rows],
+                "n_loans": get["n"].astype(np.int64),
+                "balance": get["bal"],
+                "cum_pd_count": get["F_n"] / get["n"],
+                "cum_pd_balance": np.where(get["bal"] > 0, get["F_b"] / get["bal"], np.nan),
+                "survival_count": get["S_n"] / get["n"],
+                "survival_balance": np.where(get["bal"] > 0, get["S_b"] / get["bal"], np.nan),
+                "cond_pd_count": np.where(get["Sp_n"] > 0, (get["F_n"] - F_prev_n) / get["Sp_n"], 0.0),
+                "cond_pd_balance": np.where(get["Sp_b"] > 0, (get["F_b"] - F_prev_b) / get["Sp_b"], 0.0),
+            }
+        )
+    return out
+
+
+def _speeds_frames(sp, names, seg_names, labels, max_age):
+    nb = len(labels)
+    frames, multiples = [], []
+    ages = np.arange(max_age + 1)
+    for ki, s in enumerate(names):
+        for g in range(len(seg_names) * nb):
+            dexp, dflt, pexp, ppay = (sp[k][ki, g] for k in ("dexp", "dflt", "pexp", "ppay"))
+            keep = (dexp > 0) | (pexp > 0)
+            if not keep.any():
+                continue
+            with np.errstate(invalid="ignore", divide="ignore"):
+                mdr = np.where(dexp > 0, dflt / dexp, np.nan)
+                smm = np.where(pexp > 0, ppay / pexp, np.nan)
+            cdr, cpr = mdr_to_cdr(mdr), smm_to_cpr(smm)
+            seg, band = seg_names[g // nb], labels[g % nb]
+            frames.append(
+                pd.DataFrame(
+                    {
+                        "segment": seg, "band": band, "scenario": s, "loan_age": ages[keep],
+                        "default_exposure": dexp[keep], "defaulted": dflt[keep],
+                        "prepay_exposure": pexp[keep], "prepaid": ppay[keep],
+                        "mdr": mdr[keep], "cdr": cdr[keep], "smm": smm[keep], "cpr": cpr[keep],
+                    }
+                )
+            )
+            ok_p, ok_d = keep & (pexp > 0), keep & (dexp > 0)
+            multiples.append(
+                {
+                    "segment": seg, "band": band, "scenario": s,
+                    "psa": equivalent_psa(ages[ok_p], cpr[ok_p], pexp[ok_p]),
+                    "sda": equivalent_sda(ages[ok_d], cdr[ok_d], dexp[ok_d]),
+                }
+            )
+    speeds = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
+    return speeds, pd.DataFrame(multiples)
+
+
+# --------------------------------------------------------------------------- origination
+
+
+def origination_pd(
+    loans: pd.DataFrame,
+    source,
+    macro: pd.DataFrame,
+    *,
+    chunk_size: int = 2000,
+    hpi_series: str = "hpi_{region}",
+    region_column: str = "region",
+    market_rate_series: str = "mortgage_rate",
+) -> pd.Series:
+    """Lifetime PD of each loan as it could be projected at its origination month.
+
+    The same machinery as :func:`project_loans`, from age 0 with the original
+    balance amortised over the full term, and every macro series *held at its
+    value in the origination month* (at its lag): the information available
+    when the loan was granted, with no forecast.  The house-price index is
+    held too, so current LTV is the scheduled balance over the original
+    property value.
+
+    Parameters
+    ----------
+    loans : DataFrame
+        ``loan_id``, ``origination_idx``, ``term``, ``note_rate``,
+        ``original_balance`` and what the source needs.
+    macro : DataFrame
+        Macro history indexed by month index, covering the origination months.
+
+    Returns
+    -------
+    Series of lifetime PD indexed by loan_id (sorted).
+    """
+    spec = _parse_inputs(list(source.required_inputs), loans.columns)
+    book, hpi_names = _prepare_book(
+        loans, spec, as_of_idx=0, region_column=region_column, hpi_series=hpi_series,
+        market_rate_series=market_rate_series, origination=True,
+    )
+    lookups = {"origination": MacroLookup(macro)}
+    n_all = len(book.loan_id)
+    if n_all:
+        _check_coverage(lookups, _coverage_needs(book, spec, hpi_names, market_rate_series, hold=True))
+    out = np.zeros(n_all)
+    for start in range(0, n_all, chunk_size):
+        sl = slice(start, min(start + chunk_size, n_all))
+        haz, *_ = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, market_rate_series, hold=True)
+        out[sl] = _curves(*haz["origination"])[2][:, -1]
+    return pd.Series(out, index=pd.Index(book.loan_id, name="loan_id"), name="pd_lifetime_origination")
