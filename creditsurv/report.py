@@ -1,0 +1,1137 @@
+"""The run report: one self-contained HTML file.
+
+:func:`render_report` turns the tables of a run (plain DataFrames, keyed by
+table name) and the run's metadata into one HTML document: inline CSS, plots
+drawn with matplotlib's Agg canvas and embedded as base64 PNG, no scripts and
+no external fetches. The same inputs give the same bytes.
+
+Every section is optional. A section whose tables are absent says "not
+produced in this run" instead of failing; a table that is present but lacks a
+column the section needs is an error (all such problems are raised at once).
+
+Sections, in order, each an HTML ``<section>`` with the ``id`` given:
+
+==========================  ====================================================
+``summary``                 ``meta`` run fields; headline numbers from ``loan_ecl``
+``cautions``                fixed text (plus a line when ``meta["synthetic"]``)
+``data-checks``             ``data_checks``
+``events``                  ``event_counts``
+``model``                   ``coefficients``, ``meta["model"]``
+``hazard-curves``           ``hazard_by_age``
+``cumulative-incidence``    ``incidence_by_vintage``
+``pd-term-structure``       ``segment_pd_table``
+``ecl``                     ``loan_ecl``, ``segment_summary``
+``speeds``                  ``segment_speeds``, ``equivalent_speeds``
+``validation``              ``backtest``, ``discrimination``, ``calibration``,
+                            ``stability``, ``coefficient_changes``;
+                            ``meta["calibration"]``
+``movement``                ``movement_walk``, ``stage_migration``
+``run-record``              ``meta["inputs"]``, ``meta["versions"]``, config hash
+==========================  ====================================================
+
+The columns each table needs are in :data:`REQUIRED_COLUMNS`; other columns
+are ignored unless a section says otherwise. Money is in the run's currency.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import math
+import re
+from collections.abc import Callable, Mapping
+from pathlib import Path
+
+import matplotlib
+import numpy as np
+import pandas as pd
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+from matplotlib.ticker import FuncFormatter, MaxNLocator, PercentFormatter
+
+from .errors import DataError
+
+__all__ = ["REQUIRED_COLUMNS", "SECTIONS", "render_report", "write_report"]
+
+NOT_PRODUCED = "not produced in this run"
+MAX_ROWS = 60  # longer tables are cut in the report; the run folder has them whole
+WEIGHTED = "weighted"  # the probability-weighted scenario in PD tables and ECL columns
+
+REQUIRED_COLUMNS: dict[str, tuple[str, ...]] = {
+    "loan_ecl": ("loan_id", "stage", "ead", "ecl_reported"),
+    "data_checks": ("check", "severity", "count"),
+    "event_counts": ("event", "loans"),
+    "coefficients": ("cause", "term", "estimate"),
+    "hazard_by_age": ("age", "cause", "observed", "model"),
+    "incidence_by_vintage": ("vintage", "age", "cause", "model"),
+    "segment_pd_table": ("segment", "scenario", "year", "cumulative_pd"),
+    "segment_summary": ("segment", "stage", "loans", "ecl"),
+    "segment_speeds": ("segment", "age", "cpr", "cdr"),
+    "equivalent_speeds": ("segment", "psa", "sda"),
+    "backtest": ("cause", "n", "expected", "actual", "predicted_rate", "observed_rate"),
+    "discrimination": ("auc",),
+    "calibration": ("n", "pd_mean", "observed_rate"),
+    "stability": ("variable", "psi"),
+    "movement_walk": ("step", "ecl_change"),
+    "stage_migration": (),
+    "coefficient_changes": (),
+}
+
+# Other names in use for the same column (the first name is the one the report uses).
+_ALIASES: dict[str, dict[str, str]] = {
+    "segment_summary": {"n_loans": "loans", "coverage_ratio": "coverage"},
+    "calibration": {"grade": "group"},
+}
+
+
+# --------------------------------------------------------------------------
+# Formatting: every number the report shows goes through one of these.
+# --------------------------------------------------------------------------
+
+
+def _is_missing(x) -> bool:
+    if x is None or x is pd.NA or x is pd.NaT:
+        return True
+    try:
+        return bool(isinstance(x, (float, np.floating)) and math.isnan(x))
+    except TypeError:  # pragma: no cover - exotic scalars
+        return False
+
+
+def _unsign_zero(text: str) -> str:
+    """``-0.00`` reads as a sign error; show ``0.00``."""
+    if text.startswith("-") and not any(c in "123456789" for c in text):
+        return text[1:]
+    return text
+
+
+def fmt_money(x) -> str:
+    """Amount with thousands separators and 2 decimals: ``1,234,567.89``."""
+    return "n/a" if _is_missing(x) else _unsign_zero(f"{float(x):,.2f}")
+
+
+def fmt_int(x) -> str:
+    """Count with thousands separators: ``12,345``."""
+    return "n/a" if _is_missing(x) else f"{int(round(float(x))):,d}"
+
+
+def fmt_pct(x, decimals: int = 2) -> str:
+    """A rate given as a fraction, shown in percent: ``0.01234`` -> ``1.23%``."""
+    return "n/a" if _is_missing(x) else _unsign_zero(f"{100.0 * float(x):,.{decimals}f}%")
+
+
+def fmt_pct3(x) -> str:
+    """Monthly rates are small; three decimals of a percent."""
+    return fmt_pct(x, 3)
+
+
+def fmt_num(x, decimals: int = 4) -> str:
+    """Plain number at fixed decimals (coefficients, test statistics)."""
+    return "n/a" if _is_missing(x) else _unsign_zero(f"{float(x):,.{decimals}f}")
+
+
+def fmt_stat(x) -> str:
+    """Likelihood-scale statistics (log-likelihood, AIC, BIC): 2 decimals."""
+    return fmt_num(x, 2)
+
+
+def fmt_score(x) -> str:
+    """AUC, Gini, KS: 3 decimals."""
+    return fmt_num(x, 3)
+
+
+def fmt_p(x) -> str:
+    """p-value: 4 decimals, ``<0.0001`` below that."""
+    if _is_missing(x):
+        return "n/a"
+    return "<0.0001" if float(x) < 1e-4 else f"{float(x):.4f}"
+
+
+def fmt_speed(x) -> str:
+    """A benchmark multiple in percent (``150`` -> ``150%``)."""
+    return "n/a" if _is_missing(x) else _unsign_zero(f"{float(x):,.0f}%")
+
+
+def fmt_text(x) -> str:
+    if _is_missing(x):
+        return "n/a"
+    if isinstance(x, (bool, np.bool_)):
+        return "yes" if x else "no"
+    if isinstance(x, (float, np.floating)):
+        return fmt_num(x)
+    if isinstance(x, (int, np.integer)):
+        return fmt_int(x)
+    if isinstance(x, Mapping):
+        return "; ".join(f"{k}: {fmt_text(v)}" for k, v in x.items())
+    if isinstance(x, (list, tuple)):
+        return " ".join(fmt_text(v) for v in x)
+    return str(x)
+
+
+def _default_format(series: pd.Series) -> Callable:
+    if pd.api.types.is_bool_dtype(series):
+        return fmt_text
+    if pd.api.types.is_integer_dtype(series):
+        return fmt_int
+    if pd.api.types.is_float_dtype(series):
+        return fmt_num
+    return fmt_text
+
+
+def _stage_label(x) -> str:
+    """Stages arrive as 1, 1.0, "1" or "stage 1"; show ``1``."""
+    if _is_missing(x):
+        return "n/a"
+    try:
+        f = float(x)
+        return str(int(f)) if f.is_integer() else str(x)
+    except (TypeError, ValueError):
+        return str(x)
+
+
+# --------------------------------------------------------------------------
+# HTML building blocks. All text from tables or meta passes through _e.
+# --------------------------------------------------------------------------
+
+
+def _e(x) -> str:
+    return html.escape(str(x), quote=True)
+
+
+_NUMERIC_FORMATS = {fmt_money, fmt_int, fmt_pct, fmt_pct3, fmt_num, fmt_stat, fmt_score, fmt_p, fmt_speed}
+
+
+def _table(
+    df: pd.DataFrame,
+    columns: list[tuple[str, str, Callable]] | None = None,
+    *,
+    caption: str | None = None,
+    name: str | None = None,
+    max_rows: int = MAX_ROWS,
+    flag: pd.Series | None = None,
+) -> str:
+    """One HTML table.
+
+    ``columns`` lists ``(column, header, formatter)``; columns absent from
+    ``df`` are skipped, and ``None`` shows every column with a formatter chosen
+    by dtype. ``flag`` (boolean, aligned with ``df``) marks rows to draw the
+    eye to. Tables longer than ``max_rows`` are cut with a note naming the full
+    table ``name``.
+    """
+    if columns is None:
+        columns = [(c, str(c), _default_format(df[c])) for c in df.columns]
+    columns = [c for c in columns if c[0] in df.columns]
+    n = len(df)
+    shown = df.iloc[:max_rows]
+    align = [' class="num"' if fmt in _NUMERIC_FORMATS else "" for _, _, fmt in columns]
+    head = "".join(f'<th scope="col"{a}>{_e(h)}</th>' for (_, h, _), a in zip(columns, align))
+    flags = (
+        np.zeros(len(shown), dtype=bool) if flag is None else np.asarray(flag.iloc[:max_rows].fillna(False), dtype=bool)
+    )
+    rows = []
+    for i, (_, row) in enumerate(shown.iterrows()):
+        cells = "".join(f"<td{a}>{_e(fmt(row[col]))}</td>" for (col, _, fmt), a in zip(columns, align))
+        rows.append(f'<tr class="flag">{cells}</tr>' if flags[i] else f"<tr>{cells}</tr>")
+    if not rows:
+        rows.append(f'<tr><td colspan="{max(len(columns), 1)}">no rows</td></tr>')
+    cap = f"<caption>{_e(caption)}</caption>" if caption else ""
+    note = ""
+    if n > max_rows:
+        where = f" (full table: <code>{_e(name)}</code> in the run folder)" if name else ""
+        note = f'<p class="note">First {max_rows:,d} of {n:,d} rows shown{where}.</p>'
+    return (
+        f'<div class="table-wrap"><table>{cap}<thead><tr>{head}</tr></thead>'
+        f"<tbody>{''.join(rows)}</tbody></table></div>{note}"
+    )
+
+
+def _pairs(items: list[tuple[str, str]], caption: str | None = None) -> str:
+    """Two-column table of label and already-formatted value."""
+    cap = f"<caption>{_e(caption)}</caption>" if caption else ""
+    body = "".join(f'<tr><th scope="row">{_e(k)}</th><td>{_e(v)}</td></tr>' for k, v in items)
+    return f'<div class="table-wrap"><table class="pairs">{cap}<tbody>{body}</tbody></table></div>'
+
+
+def _absent(*names: str) -> str:
+    what = ", ".join(f"<code>{_e(n)}</code>" for n in names)
+    return f'<p class="absent">{what}: {NOT_PRODUCED}.</p>'
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n:,d} {word}" + ("" if n == 1 else "s")
+
+
+def _h3(text: str) -> str:
+    return f"<h3>{_e(text)}</h3>"
+
+
+def _p(text: str, cls: str | None = None) -> str:
+    return f'<p class="{cls}">{_e(text)}</p>' if cls else f"<p>{_e(text)}</p>"
+
+
+# --------------------------------------------------------------------------
+# Plots: matplotlib Figure on an Agg canvas, never pyplot, so global state
+# and the user's backend are left alone.
+# --------------------------------------------------------------------------
+
+_INK = "#262626"
+_GRID = "#d9d9d9"
+# Muted, distinguishable in grey print too (line styles change with colour).
+_COLORS = ["#2b4c6f", "#b5651d", "#4f7942", "#7a3b69", "#6e6e6e", "#a08a2a", "#3f8f8f", "#9c4a3c"]
+_STYLES = ["-", "--", "-.", ":", "-", "--", "-.", ":"]
+_BAND = "#c8d3df"
+
+_RC = {
+    "font.family": "DejaVu Sans",
+    "font.size": 8.5,
+    "axes.titlesize": 9.5,
+    "axes.labelsize": 8.5,
+    "axes.edgecolor": _INK,
+    "axes.labelcolor": _INK,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "axes.grid": True,
+    "axes.axisbelow": True,
+    "grid.color": _GRID,
+    "grid.linewidth": 0.6,
+    "axes.prop_cycle": matplotlib.cycler(color=_COLORS, linestyle=_STYLES),
+    "xtick.color": _INK,
+    "ytick.color": _INK,
+    "legend.frameon": False,
+    "legend.fontsize": 7.5,
+    "lines.linewidth": 1.4,
+    "svg.hashsalt": "creditsurv",
+    "figure.dpi": 100,
+}
+_WIDTH = 7.2  # inches: fits a portrait A4 or Letter page inside 15 mm margins
+_DPI = 130
+
+
+def _figure(nplots: int, *, ncols: int = 2, height: float = 2.8, sharey: bool = False, width: float = _WIDTH):
+    ncols = max(1, min(ncols, nplots))
+    nrows = math.ceil(nplots / ncols)
+    fig = Figure(figsize=(width, height * nrows), layout="constrained")
+    FigureCanvasAgg(fig)
+    axes = fig.subplots(nrows, ncols, squeeze=False, sharey=sharey).ravel()
+    for ax in axes[nplots:]:
+        ax.set_visible(False)
+    return fig, list(axes[:nplots])
+
+
+def _img(fig: Figure, alt: str) -> str:
+    buf = io.BytesIO()
+    # No "Software" text chunk: the PNG bytes depend only on the drawing.
+    fig.canvas.print_figure(buf, format="png", dpi=_DPI, metadata={"Software": None})
+    data = base64.b64encode(buf.getvalue()).decode("ascii")
+    return f'<figure><img src="data:image/png;base64,{data}" alt="{_e(alt)}"></figure>'
+
+
+def _style_axes(
+    ax, *, xlabel: str, ylabel: str, title: str | None = None, pct_y: bool = False, legend: bool = True
+) -> None:
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
+    if title:
+        ax.set_title(title)
+    if pct_y:
+        ax.yaxis.set_major_formatter(PercentFormatter(xmax=1.0, decimals=None))
+    if legend and ax.get_legend_handles_labels()[0]:
+        ax.legend(loc="best")
+
+
+def _figure_legend(fig: Figure, axes) -> None:
+    """One legend above all panels, for series shared by every panel; kept off the data."""
+    handles, labels = {}, []
+    for ax in axes:
+        for h, label in zip(*ax.get_legend_handles_labels()):
+            if label not in handles:
+                handles[label] = h
+                labels.append(label)
+    if labels:
+        fig.legend([handles[k] for k in labels], labels, loc="outside upper center", ncols=min(len(labels), 5))
+
+
+def _thousands() -> FuncFormatter:
+    return FuncFormatter(lambda v, _: f"{v:,.0f}")
+
+
+def _style(i: int) -> dict:
+    return {"color": _COLORS[i % len(_COLORS)], "linestyle": _STYLES[i % len(_STYLES)]}
+
+
+def _ordered(values) -> list:
+    """Distinct values in first-seen order."""
+    return list(dict.fromkeys(values))
+
+
+# --------------------------------------------------------------------------
+# Sections: each takes (tables, meta) and returns its body HTML.
+# --------------------------------------------------------------------------
+
+
+def _summary(tables, meta) -> str:
+    model = meta.get("model") or {}
+    version = meta.get("version") or (meta.get("versions") or {}).get("creditsurv")
+    items = [
+        ("Run id", meta.get("run_id")),
+        ("Reporting month", meta.get("reporting_month", meta.get("as_of"))),
+        ("Config", meta.get("config_name", meta.get("config"))),
+        ("Created", meta.get("created")),
+        ("creditsurv version", version),
+        ("Model", model.get("kind")),
+    ]
+    out = [_pairs([(k, fmt_text(v)) for k, v in items], caption="Run")]
+    loans = tables.get("loan_ecl")
+    if loans is None:
+        out.append(_absent("loan_ecl"))
+        return "".join(out)
+    ead, ecl = loans["ead"].sum(), loans["ecl_reported"].sum()
+    out.append(
+        _pairs(
+            [
+                ("Loans", fmt_int(len(loans))),
+                ("Total EAD", fmt_money(ead)),
+                ("Total reported ECL", fmt_money(ecl)),
+                ("Coverage (reported ECL / EAD)", fmt_pct(ecl / ead) if ead else "n/a"),
+            ],
+            caption="Headline numbers",
+        )
+    )
+    out.append(_table(_by_stage(loans), _STAGE_COLUMNS, caption="Reported ECL by stage"))
+    return "".join(out)
+
+
+_STAGE_COLUMNS = [
+    ("stage", "Stage", fmt_text),
+    ("loans", "Loans", fmt_int),
+    ("ead", "EAD", fmt_money),
+    ("ecl", "Reported ECL", fmt_money),
+    ("coverage", "Coverage (ECL / EAD)", fmt_pct),
+]
+
+
+def _by_stage(loans: pd.DataFrame) -> pd.DataFrame:
+    stage = loans["stage"].map(_stage_label)
+    g = pd.DataFrame({"stage": stage, "ead": loans["ead"], "ecl": loans["ecl_reported"]}).groupby("stage", sort=True)
+    out = g.agg(loans=("ead", "size"), ead=("ead", "sum"), ecl=("ecl", "sum")).reset_index()
+    total = pd.DataFrame(
+        {"stage": ["all"], "loans": [len(loans)], "ead": [loans["ead"].sum()], "ecl": [loans["ecl_reported"].sum()]}
+    )
+    out = pd.concat([out, total], ignore_index=True)
+    out["coverage"] = out["ecl"] / out["ead"].where(out["ead"] != 0)
+    return out
+
+
+def _cautions(tables, meta) -> str:
+    lines = [
+        "The figures in this report are model estimates. Before they are relied on, the model must be "
+        "validated independently under the institution's model risk policy.",
+        "Accounting judgement and local supervisory rules prevail over anything in this report, "
+        "including stage allocation, scenario weights and overlays.",
+    ]
+    if meta.get("synthetic"):
+        lines.append(
+            "This run uses synthetic demonstration data. The loans, borrowers and amounts are generated "
+            "and describe no real lender or borrower."
+        )
+    return '<ul class="cautions">' + "".join(f"<li>{_e(t)}</li>" for t in lines) + "</ul>"
+
+
+def _check_status(row) -> str:
+    if row["severity"] == "off":
+        return "not run"
+    if row["count"] == 0:
+        return "passed"
+    return "failed" if row["severity"] == "error" else "warning"
+
+
+def _data_checks(tables, meta) -> str:
+    checks = tables.get("data_checks")
+    if checks is None:
+        return _absent("data_checks")
+    df = checks.copy()
+    df["status"] = [_check_status(r) for _, r in df.iterrows()] if len(df) else pd.Series(dtype=object)
+    fired = df["status"].isin(["failed", "warning"])
+    counts = df["status"].value_counts()
+    tally = ", ".join(f"{counts.get(s, 0):,d} {s}" for s in ("passed", "warning", "failed", "not run"))
+    head = _p(f"{_plural(len(df), 'check')}: {tally}.")
+    cols = [
+        ("check", "Check", fmt_text),
+        ("status", "Status", fmt_text),
+        ("severity", "Severity", fmt_text),
+        ("count", "Rows flagged", fmt_int),
+        ("description", "What it checks", fmt_text),
+    ]
+    return head + _table(df, cols, name="data_checks", max_rows=max(MAX_ROWS, len(df)), flag=fired)
+
+
+def _events(tables, meta) -> str:
+    ev = tables.get("event_counts")
+    if ev is None:
+        return _absent("event_counts")
+    cols = [
+        ("event", "Outcome", fmt_text),
+        ("censor_reason", "Censoring reason", fmt_text),
+        ("loans", "Loans", fmt_int),
+    ]
+    total = ev["loans"].sum()
+    return _table(ev, cols, name="event_counts") + _p(f"Loans in total: {fmt_int(total)}.")
+
+
+def _model(tables, meta) -> str:
+    out = []
+    model = meta.get("model")
+    if model:
+        labels = [
+            ("kind", "Model kind", fmt_text),
+            ("loglik", "Log-likelihood", fmt_stat),
+            ("aic", "AIC", fmt_stat),
+            ("bic", "BIC", fmt_stat),
+            ("n_rows", "Loan-months fitted", fmt_int),
+            ("events", "Events", fmt_text),
+            ("iterations", "Iterations", fmt_int),
+            ("converged", "Converged", fmt_text),
+        ]
+        out.append(_pairs([(h, f(model[k])) for k, h, f in labels if k in model], caption="Fit"))
+    else:
+        out.append(_absent('meta["model"]'))
+    coef = tables.get("coefficients")
+    if coef is None:
+        out.append(_absent("coefficients"))
+        return "".join(out)
+    cols = [
+        ("cause", "Cause", fmt_text),
+        ("term", "Term", fmt_text),
+        ("estimate", "Estimate", fmt_num),
+        ("std_error", "Std. error", fmt_num),
+        ("z", "z", fmt_stat),
+        ("p_value", "p-value", fmt_p),
+        ("ci_lo", "CI low", fmt_num),
+        ("ci_hi", "CI high", fmt_num),
+    ]
+    out.append(_table(coef, cols, caption="Coefficients (log-odds scale)", name="coefficients", max_rows=150))
+    return "".join(out)
+
+
+def _hazard_curves(tables, meta) -> str:
+    hz = tables.get("hazard_by_age")
+    if hz is None:
+        return _absent("hazard_by_age")
+    causes = _ordered(hz["cause"])
+    if not causes:
+        return _p("The table has no rows.")
+    fig, axes = _figure(len(causes))
+    for ax, cause in zip(axes, causes):
+        d = hz[hz["cause"] == cause].sort_values("age", kind="stable")
+        ax.plot(
+            d["age"], d["observed"], linestyle="none", marker="o", markersize=2.5, color=_COLORS[4], label="observed"
+        )
+        ax.plot(d["age"], d["model"], color=_COLORS[0], linestyle="-", label="model")
+        _style_axes(
+            ax, xlabel="Loan age (months)", ylabel="Monthly hazard (% of loans at risk)", title=str(cause), pct_y=True
+        )
+    return _img(fig, "Observed and model monthly hazard by loan age") + _p(
+        "Monthly hazard: events in the month divided by loans at risk at the start of the month.", "note"
+    )
+
+
+_MAX_VINTAGES = 8
+
+
+def _cumulative_incidence(tables, meta) -> str:
+    inc = tables.get("incidence_by_vintage")
+    if inc is None:
+        return _absent("incidence_by_vintage")
+    causes = _ordered(inc["cause"])
+    if not causes:
+        return _p("The table has no rows.")
+    vintages = sorted(_ordered(inc["vintage"]), key=str)
+    note = ""
+    if len(vintages) > _MAX_VINTAGES:
+        keep = np.unique(np.linspace(0, len(vintages) - 1, _MAX_VINTAGES).round().astype(int))
+        vintages = [vintages[i] for i in keep]
+        note = _p(f"{len(vintages)} of {inc['vintage'].nunique():,d} vintages shown, evenly spaced.", "note")
+    has_obs = "observed" in inc.columns
+    has_band = has_obs and {"observed_lo", "observed_hi"} <= set(inc.columns)
+    fig, axes = _figure(len(causes))
+    for ax, cause in zip(axes, causes):
+        for i, v in enumerate(vintages):
+            d = inc[(inc["cause"] == cause) & (inc["vintage"] == v)].sort_values("age", kind="stable")
+            if d.empty:
+                continue
+            st = _style(i)
+            if has_band:
+                ax.fill_between(
+                    d["age"], d["observed_lo"], d["observed_hi"], color=st["color"], alpha=0.12, linewidth=0
+                )
+            if has_obs:
+                ax.plot(d["age"], d["observed"], linestyle="none", marker="o", markersize=2, color=st["color"])
+            ax.plot(d["age"], d["model"], label=str(v), **st)
+        _style_axes(
+            ax,
+            xlabel="Loan age (months)",
+            ylabel="Cumulative incidence (% of vintage)",
+            title=str(cause),
+            pct_y=True,
+            legend=False,
+        )
+    _figure_legend(fig, axes)
+    text = "Lines: model; points: observed (Aalen-Johansen)"
+    text += ", shaded: its interval." if has_band else "."
+    return _img(fig, "Cumulative incidence by vintage") + _p(text, "note") + note
+
+
+def _pick_weighting(pdt: pd.DataFrame) -> tuple[pd.DataFrame, str | None]:
+    if "weighting" not in pdt.columns:
+        return pdt, None
+    for w in ("balance", "count"):
+        if (pdt["weighting"] == w).any():
+            return pdt[pdt["weighting"] == w], w
+    first = pdt["weighting"].iloc[0] if len(pdt) else None
+    return pdt[pdt["weighting"] == first], first
+
+
+_MAX_SEGMENT_PANELS = 6
+
+
+def _pd_term_structure(tables, meta) -> str:
+    pdt = tables.get("segment_pd_table")
+    if pdt is None:
+        return _absent("segment_pd_table")
+    pdt, weighting = _pick_weighting(pdt)
+    if pdt.empty:
+        return _p("The table has no rows.")
+    out = []
+    if weighting:
+        out.append(_p(f"Segment PDs are means over loans weighted by {weighting}.", "note"))
+    segments = _ordered(pdt["segment"])
+    scenarios = _ordered(pdt["scenario"])
+    w = pdt[pdt["scenario"] == WEIGHTED]
+    if not w.empty:
+        fig, (ax,) = _figure(1, height=3.2)
+        for i, seg in enumerate(segments):
+            d = w[w["segment"] == seg].sort_values("year", kind="stable")
+            ax.plot(d["year"], d["cumulative_pd"], marker="o", markersize=3, label=str(seg), **_style(i))
+        ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+        _style_axes(
+            ax,
+            xlabel="Years after the reporting month",
+            ylabel="Cumulative PD (%)",
+            title="Probability-weighted scenarios",
+            pct_y=True,
+        )
+        out.append(_img(fig, "Cumulative PD by year per segment, probability-weighted"))
+        wide = w.pivot_table(index="segment", columns="year", values="cumulative_pd", sort=False).reset_index()
+        cols = [("segment", "Segment", fmt_text)] + [(y, f"Year {y}", fmt_pct) for y in wide.columns[1:]]
+        out.append(_table(wide, cols, caption="Cumulative PD, probability-weighted", name="segment_pd_table"))
+    per = [s for s in scenarios if s != WEIGHTED]
+    if per:
+        shown = segments[:_MAX_SEGMENT_PANELS]
+        fig, axes = _figure(len(shown), ncols=3 if len(shown) > 4 else 2, height=2.5, sharey=True)
+        for ax, seg in zip(axes, shown):
+            for i, s in enumerate(per):
+                d = pdt[(pdt["segment"] == seg) & (pdt["scenario"] == s)].sort_values("year", kind="stable")
+                ax.plot(d["year"], d["cumulative_pd"], label=str(s), **_style(i))
+            ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+            _style_axes(
+                ax,
+                xlabel="Years after the reporting month",
+                ylabel="Cumulative PD (%)",
+                title=str(seg),
+                pct_y=True,
+                legend=False,
+            )
+        _figure_legend(fig, axes)
+        out.append(_img(fig, "Cumulative PD by year per segment and scenario"))
+        if len(segments) > len(shown):
+            out.append(_p(f"First {len(shown)} of {len(segments)} segments shown by scenario.", "note"))
+    return "".join(out)
+
+
+def _scenarios(loans: pd.DataFrame) -> list[str]:
+    found = [m.group(1) for c in loans.columns if (m := re.fullmatch(r"ecl_lifetime_(.+)", str(c)))]
+    return [s for s in found if s != WEIGHTED and f"ecl_12m_{s}" in loans.columns]
+
+
+def _ecl_by_scenario(loans: pd.DataFrame, scenarios: list[str], weights: Mapping) -> pd.DataFrame:
+    """ECL at each loan's stage horizon: 12 months in stage 1, lifetime otherwise."""
+    stage1 = (loans["stage"].map(_stage_label) == "1").to_numpy()
+    rows = []
+    for s in scenarios:
+        at = np.where(stage1, loans[f"ecl_12m_{s}"], loans[f"ecl_lifetime_{s}"])
+        rows.append(
+            {
+                "scenario": s,
+                "weight": weights.get(s, np.nan),
+                "ecl_12m": loans[f"ecl_12m_{s}"].sum(),
+                "ecl_lifetime": loans[f"ecl_lifetime_{s}"].sum(),
+                "ecl_stage": float(np.sum(at)),
+            }
+        )
+    rows.append(
+        {
+            "scenario": WEIGHTED,
+            "weight": np.nan,
+            "ecl_12m": loans["ecl_12m"].sum() if "ecl_12m" in loans.columns else np.nan,
+            "ecl_lifetime": loans["ecl_lifetime"].sum() if "ecl_lifetime" in loans.columns else np.nan,
+            "ecl_stage": loans["ecl_reported"].sum(),
+        }
+    )
+    return pd.DataFrame(rows)
+
+
+def _ecl_plot(stages: pd.DataFrame, scen: pd.DataFrame) -> str:
+    fig, (ax1, ax2) = _figure(2, height=3.0)
+    ax1.bar(stages["stage"].astype(str), stages["ecl"], color=_COLORS[0], width=0.6)
+    _style_axes(ax1, xlabel="Stage", ylabel="Reported ECL (currency)", title="By stage")
+    colors = [_COLORS[4] if s == WEIGHTED else _COLORS[1] for s in scen["scenario"]]
+    ax2.bar([str(s) for s in scen["scenario"]], scen["ecl_stage"], color=colors, width=0.6)
+    ax2.tick_params(axis="x", labelrotation=30)
+    _style_axes(ax2, xlabel="Scenario", ylabel="ECL at stage horizon (currency)", title="By scenario")
+    for ax in (ax1, ax2):
+        ax.yaxis.set_major_formatter(_thousands())
+    return _img(fig, "ECL by stage and by scenario")
+
+
+def _ecl(tables, meta) -> str:
+    loans = tables.get("loan_ecl")
+    out = []
+    if loans is None:
+        out.append(_absent("loan_ecl"))
+    else:
+        stages = _by_stage(loans)
+        stages = stages[stages["stage"] != "all"]
+        weights = {str(k): v for k, v in (meta.get("scenario_weights") or {}).items()}
+        scen = _ecl_by_scenario(loans, _scenarios(loans), weights)
+        if not loans.empty:
+            out.append(_ecl_plot(stages, scen))
+        out.append(_table(stages, _STAGE_COLUMNS, caption="Reported ECL by stage"))
+        cols = [
+            ("scenario", "Scenario", fmt_text),
+            ("weight", "Weight", fmt_pct),
+            ("ecl_12m", "12-month ECL, all loans", fmt_money),
+            ("ecl_lifetime", "Lifetime ECL, all loans", fmt_money),
+            ("ecl_stage", "ECL at stage horizon", fmt_money),
+        ]
+        if not weights:
+            cols = [c for c in cols if c[0] != "weight"]
+        out.append(_table(scen, cols, caption="ECL by scenario"))
+        out.append(
+            _p(
+                "Stage horizon: 12 months for stage 1, lifetime for stages 2 and 3. "
+                "The weighted row is the reported ECL.",
+                "note",
+            )
+        )
+    seg = tables.get("segment_summary")
+    if seg is None:
+        out.append(_absent("segment_summary"))
+    else:
+        cols = [
+            ("segment", "Segment", fmt_text),
+            ("stage", "Stage", _stage_label),
+            ("loans", "Loans", fmt_int),
+            ("balance", "Balance", fmt_money),
+            ("ead", "EAD", fmt_money),
+            ("ecl", "Reported ECL", fmt_money),
+            ("coverage", "Coverage", fmt_pct),
+        ]
+        out.append(_table(seg, cols, caption="By segment and stage", name="segment_summary"))
+        if "coverage" in seg.columns:
+            out.append(_p("Coverage: reported ECL divided by balance.", "note"))
+    return "".join(out)
+
+
+def _speeds(tables, meta) -> str:
+    out = []
+    sp = tables.get("segment_speeds")
+    if sp is None:
+        out.append(_absent("segment_speeds"))
+    elif not sp.empty:
+        fig, (ax1, ax2) = _figure(2, height=3.0)
+        for i, seg in enumerate(_ordered(sp["segment"])):
+            d = sp[sp["segment"] == seg].sort_values("age", kind="stable")
+            ax1.plot(d["age"], d["cpr"], label=str(seg), **_style(i))
+            ax2.plot(d["age"], d["cdr"], label=str(seg), **_style(i))
+        _style_axes(
+            ax1, xlabel="Loan age (months)", ylabel="CPR (% a year)", title="Prepayment", pct_y=True, legend=False
+        )
+        _style_axes(ax2, xlabel="Loan age (months)", ylabel="CDR (% a year)", title="Default", pct_y=True, legend=False)
+        _figure_legend(fig, [ax1])
+        out.append(_img(fig, "CPR and CDR by loan age per segment"))
+        out.append(_p("CPR = 1 - (1 - SMM)^12 and CDR = 1 - (1 - MDR)^12, annualised from the monthly rates.", "note"))
+    eq = tables.get("equivalent_speeds")
+    if eq is None:
+        out.append(_absent("equivalent_speeds"))
+    else:
+        cols = [
+            ("segment", "Segment", fmt_text),
+            ("psa", "Equivalent PSA", fmt_speed),
+            ("sda", "Equivalent SDA", fmt_speed),
+        ]
+        out.append(_table(eq, cols, caption="Equivalent benchmark speeds", name="equivalent_speeds"))
+    return "".join(out)
+
+
+_BACKTEST_KNOWN = {
+    "cause",
+    "n",
+    "expected",
+    "actual",
+    "predicted_rate",
+    "observed_rate",
+    "observed_lo",
+    "observed_hi",
+    "outside",
+    "z",
+}
+
+
+def _backtest_plot(bt: pd.DataFrame, group: str) -> str:
+    causes = _ordered(bt["cause"])
+    fig, axes = _figure(len(causes), ncols=1, height=2.6)
+    for ax, cause in zip(axes, causes):
+        d = bt[bt["cause"] == cause]
+        x = np.arange(len(d))
+        if {"observed_lo", "observed_hi"} <= set(d.columns):
+            ax.fill_between(x, d["observed_lo"], d["observed_hi"], color=_BAND, linewidth=0, label="observed interval")
+        ax.plot(x, d["observed_rate"], linestyle="none", marker="o", markersize=3, color=_INK, label="observed")
+        ax.plot(x, d["predicted_rate"], color=_COLORS[1], linestyle="-", label="predicted")
+        labels = [str(v) for v in d[group]]
+        step = max(1, math.ceil(len(labels) / 12))
+        ax.set_xticks(x[::step], labels[::step], rotation=30, ha="right")
+        xlabel = str(group).replace("_", " ").capitalize()
+        _style_axes(
+            ax, xlabel=xlabel, ylabel="Monthly rate (% of loans at risk)", title=str(cause), pct_y=True, legend=False
+        )
+    _figure_legend(fig, axes)
+    return _img(fig, f"Predicted and observed rate by {group}")
+
+
+def _discrimination_part(tables, meta) -> str:
+    disc = tables.get("discrimination")
+    if disc is None or disc.empty:
+        return _absent("discrimination")
+    r = disc.iloc[0]
+    auc = fmt_score(r["auc"])
+    if "auc_lo" in disc.columns and "auc_hi" in disc.columns:
+        auc += f" (interval {fmt_score(r['auc_lo'])} to {fmt_score(r['auc_hi'])})"
+    items = [
+        ("Loans", fmt_int(r.get("n"))),
+        ("Defaults", fmt_int(r.get("defaults"))),
+        ("AUC", auc),
+        ("Gini", fmt_score(r.get("gini"))),
+        ("KS", fmt_score(r.get("ks"))),
+    ]
+    return _pairs([(k, v) for k, v in items if v != "n/a"], caption="12-month PD against 12-month default")
+
+
+def _calibration_plot(cal: pd.DataFrame) -> str:
+    fig, (ax,) = _figure(1, height=3.6, width=4.6)
+    x, y = cal["pd_mean"].to_numpy(float), cal["observed_rate"].to_numpy(float)
+    yerr = None
+    if {"observed_lo", "observed_hi"} <= set(cal.columns):
+        lo, hi = cal["observed_lo"].to_numpy(float), cal["observed_hi"].to_numpy(float)
+        yerr = np.clip(np.vstack([y - lo, hi - y]), 0, None)
+    top = float(np.nanmax(np.r_[x, y if yerr is None else y + yerr[1], 0.0])) * 1.05
+    top = top if np.isfinite(top) and top > 0 else 1.0
+    ax.plot([0, top], [0, top], color=_COLORS[4], linestyle="--", linewidth=1, label="predicted = observed")
+    ax.errorbar(x, y, yerr=yerr, fmt="o", markersize=3.5, color=_COLORS[0], capsize=2, label="group")
+    ax.set_xlim(0, top)
+    ax.set_ylim(0, top)
+    ax.xaxis.set_major_formatter(PercentFormatter(xmax=1.0, decimals=None))
+    _style_axes(ax, xlabel="Mean predicted 12-month PD (%)", ylabel="Observed default rate (%)", pct_y=True)
+    return _img(fig, "Calibration: observed default rate against mean predicted PD")
+
+
+def _calibration_part(tables, meta) -> str:
+    cal = tables.get("calibration")
+    if cal is None:
+        return _absent("calibration")
+    out = []
+    hl = meta.get("calibration") or {}
+    if hl:
+        out.append(
+            _p(
+                f"Hosmer-Lemeshow statistic {fmt_stat(hl.get('hl_statistic'))} on {fmt_text(hl.get('hl_df'))} "
+                f"degrees of freedom, p-value {fmt_p(hl.get('hl_p_value'))}."
+            )
+        )
+    if not cal.empty:
+        out.append(_calibration_plot(cal))
+    cols = [
+        ("group", "Group", fmt_text),
+        ("n", "Loans", fmt_int),
+        ("pd_mean", "Mean PD", fmt_pct),
+        ("expected", "Expected defaults", fmt_num),
+        ("actual", "Defaults", fmt_int),
+        ("observed_rate", "Default rate", fmt_pct),
+        ("observed_lo", "Rate low", fmt_pct),
+        ("observed_hi", "Rate high", fmt_pct),
+        ("p_value", "p-value", fmt_p),
+    ]
+    out.append(_table(cal, cols, name="calibration"))
+    return "".join(out)
+
+
+def _backtest_part(tables, meta) -> str:
+    bt = tables.get("backtest")
+    if bt is None:
+        return _absent("backtest")
+    out = []
+    groups = [c for c in bt.columns if c not in _BACKTEST_KNOWN]
+    if len(groups) == 1 and not bt.empty:
+        out.append(_backtest_plot(bt, groups[0]))
+    elif not bt.empty:
+        out.append(_p("The plot is drawn when the backtest is grouped by one column.", "note"))
+    cols = [(g, str(g).replace("_", " ").capitalize(), fmt_text) for g in groups] + [
+        ("cause", "Cause", fmt_text),
+        ("n", "Loan-months", fmt_int),
+        ("expected", "Expected", fmt_num),
+        ("actual", "Actual", fmt_int),
+        ("predicted_rate", "Predicted rate", fmt_pct3),
+        ("observed_rate", "Observed rate", fmt_pct3),
+        ("observed_lo", "Observed low", fmt_pct3),
+        ("observed_hi", "Observed high", fmt_pct3),
+        ("outside", "Outside interval", fmt_text),
+        ("z", "z", fmt_stat),
+    ]
+    flag = bt["outside"].eq(True) if "outside" in bt.columns else None
+    out.append(_table(bt, cols, name="backtest", flag=flag))
+    return "".join(out)
+
+
+def _stability_part(tables, meta) -> str:
+    st = tables.get("stability")
+    if st is None:
+        return _absent("stability")
+    cols = [("variable", "Variable", fmt_text), ("psi", "PSI", fmt_num), ("flag", "Flag", fmt_text)]
+    return _table(st, cols, name="stability")
+
+
+def _validation(tables, meta) -> str:
+    out = [
+        _h3("Discrimination"),
+        _discrimination_part(tables, meta),
+        _h3("Calibration"),
+        _calibration_part(tables, meta),
+        _h3("Backtest"),
+        _backtest_part(tables, meta),
+        _h3("Stability"),
+        _stability_part(tables, meta),
+    ]
+    changes = tables.get("coefficient_changes")
+    if changes is not None:
+        out += [_h3("Coefficient changes"), _table(changes, name="coefficient_changes")]
+    return "".join(out)
+
+
+def _movement(tables, meta) -> str:
+    out = []
+    walk = tables.get("movement_walk")
+    if walk is None:
+        out.append(_absent("movement_walk"))
+    else:
+        steps = walk[walk["ecl_change"].notna()]
+        if not steps.empty:
+            fig, (ax,) = _figure(1, height=0.3 * len(steps) + 1.0)
+            y = np.arange(len(steps))[::-1]
+            v = steps["ecl_change"].to_numpy(float)
+            ax.barh(y, v, color=np.where(v >= 0, _COLORS[1], _COLORS[0]), height=0.6)
+            ax.set_yticks(y, [str(s).replace("_", " ") for s in steps["step"]])
+            ax.axvline(0, color=_INK, linewidth=0.8)
+            ax.xaxis.set_major_formatter(_thousands())
+            _style_axes(ax, xlabel="Change in reported ECL (currency)", ylabel="")
+            out.append(_img(fig, "ECL movement by step"))
+        cols = [
+            ("step", "Step", fmt_text),
+            ("loans", "Loans", fmt_int),
+            ("ecl_change", "ECL change", fmt_money),
+            ("ecl_balance", "ECL after step", fmt_money),
+        ]
+        out.append(_table(walk, cols, caption="ECL walk from the previous run", name="movement_walk"))
+    mig = tables.get("stage_migration")
+    if mig is None:
+        out.append(_absent("stage_migration"))
+    elif {"stage_from", "stage_to", "loans"} <= set(mig.columns):
+        wide = mig.pivot_table(
+            index="stage_from", columns="stage_to", values="loans", aggfunc="sum", fill_value=0, sort=False
+        )
+        wide = wide.reset_index()
+        cols = [("stage_from", "From \\ to", fmt_text)] + [(c, str(c), fmt_int) for c in wide.columns[1:]]
+        out.append(_table(wide, cols, caption="Stage migration (loans)", name="stage_migration"))
+    else:
+        out.append(_table(mig, caption="Stage migration", name="stage_migration"))
+    return "".join(out)
+
+
+def _run_record(tables, meta) -> str:
+    out = []
+    inputs = meta.get("inputs")
+    if inputs:
+        df = pd.DataFrame(list(inputs))
+        cols = [
+            ("input", "Input", fmt_text),
+            ("path", "Path", fmt_text),
+            ("rows", "Rows", fmt_int),
+            ("bytes", "Bytes", fmt_int),
+            ("sha256", "SHA-256", fmt_text),
+        ]
+        out.append(_table(df, cols, caption="Inputs", max_rows=max(MAX_ROWS, len(df))))
+    else:
+        out.append(_absent('meta["inputs"]'))
+    config_hash = meta.get("config_sha256", meta.get("config_hash"))
+    items = [("Config SHA-256", config_hash), ("Seed", meta.get("seed"))]
+    out.append(_pairs([(k, fmt_text(v)) for k, v in items if v is not None], caption="Config"))
+    versions = meta.get("versions")
+    if versions:
+        out.append(_pairs([(str(k), str(v)) for k, v in versions.items()], caption="Versions"))
+    else:
+        out.append(_absent('meta["versions"]'))
+    return "".join(out)
+
+
+SECTIONS: tuple[tuple[str, str, Callable[[dict, dict], str]], ...] = (
+    ("summary", "Summary", _summary),
+    ("cautions", "Cautions", _cautions),
+    ("data-checks", "Data checks", _data_checks),
+    ("events", "Outcomes", _events),
+    ("model", "Hazard model", _model),
+    ("hazard-curves", "Hazard by loan age", _hazard_curves),
+    ("cumulative-incidence", "Cumulative incidence by vintage", _cumulative_incidence),
+    ("pd-term-structure", "PD term structure", _pd_term_structure),
+    ("ecl", "Expected credit loss", _ecl),
+    ("speeds", "Prepayment and default speeds", _speeds),
+    ("validation", "Validation", _validation),
+    ("movement", "Movement since the previous run", _movement),
+    ("run-record", "Run record", _run_record),
+)
+"""Sections in report order: ``(id, title, function(tables, meta) -> body HTML)``."""
+
+
+# --------------------------------------------------------------------------
+# Document
+# --------------------------------------------------------------------------
+
+_CSS = """
+:root { --ink: #262626; --muted: #5f5f5f; --rule: #c9c9c9; --shade: #f3f3f1; --mark: #fbf3df; }
+* { box-sizing: border-box; }
+body { font-family: "Helvetica Neue", Arial, "DejaVu Sans", sans-serif; color: var(--ink);
+       font-size: 14px; line-height: 1.45; max-width: 62rem; margin: 0 auto; padding: 1.5rem 1.25rem 3rem; }
+header { border-bottom: 2px solid var(--ink); margin-bottom: 1rem; }
+h1 { font-size: 1.5rem; margin: 0 0 .25rem; }
+h2 { font-size: 1.2rem; border-bottom: 1px solid var(--rule); padding-bottom: .2rem; margin: 2.2rem 0 .8rem; }
+h3 { font-size: 1rem; margin: 1.4rem 0 .5rem; }
+nav ol { columns: 2; margin: .5rem 0 0; padding-left: 1.4rem; }
+nav a { color: var(--ink); }
+.sub, .note { color: var(--muted); font-size: .88rem; }
+.absent { color: var(--muted); font-style: italic; }
+.table-wrap { overflow-x: auto; margin: .6rem 0; }
+table { border-collapse: collapse; font-size: .85rem; max-width: 100%; }
+caption { text-align: left; font-weight: bold; padding: .2rem 0; }
+th, td { padding: .22rem .55rem; border-bottom: 1px solid var(--rule); text-align: left; vertical-align: top;
+         overflow-wrap: anywhere; }
+thead th { border-bottom: 1.5px solid var(--ink); background: var(--shade); }
+table.pairs th { font-weight: normal; color: var(--muted); }
+.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+tr.flag td { background: var(--mark); font-weight: bold; }
+figure { margin: .8rem 0; }
+figure img { max-width: 100%; height: auto; display: block; }
+ul.cautions li { margin-bottom: .35rem; }
+code { font-size: .9em; }
+@page { margin: 15mm; }
+@media print {
+  body { font-size: 10pt; max-width: none; padding: 0; }
+  nav { display: none; }
+  section { break-before: page; }
+  section#summary, section#cautions { break-before: auto; }
+  h2, h3, caption { break-after: avoid; }
+  figure, tr { break-inside: avoid; }
+  thead { display: table-header-group; }
+  .table-wrap { overflow: visible; }
+  table { font-size: 8pt; width: 100%; }
+  .num { white-space: normal; }
+  th, td { padding: .1rem .3rem; }
+  thead th, tr.flag td { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
+}
+"""
+
+
+def _validate(tables: Mapping[str, pd.DataFrame]) -> dict[str, pd.DataFrame]:
+    """Rename known aliases and collect every missing column in one pass."""
+    out, problems = {}, []
+    for name, df in tables.items():
+        if df is None:
+            continue
+        if not isinstance(df, pd.DataFrame):
+            problems.append(f"{name}: expected a DataFrame, got {type(df).__name__}")
+            continue
+        rename = {a: c for a, c in _ALIASES.get(name, {}).items() if a in df.columns and c not in df.columns}
+        df = df.rename(columns=rename) if rename else df
+        missing = [c for c in REQUIRED_COLUMNS.get(name, ()) if c not in df.columns]
+        if missing:
+            problems.append(f"{name}: lacks columns {missing}; it has {[str(c) for c in df.columns]}")
+        out[name] = df
+    if problems:
+        raise DataError("report: tables cannot be shown:\n  " + "\n  ".join(problems))
+    return out
+
+
+def render_report(tables: Mapping[str, pd.DataFrame], meta: Mapping) -> str:
+    """Render a run's report as one self-contained HTML document.
+
+    Parameters
+    ----------
+    tables : mapping of str to DataFrame
+        Run tables by name (see the module docstring and
+        :data:`REQUIRED_COLUMNS`). Absent tables, or ``None`` values, leave
+        their section saying "not produced in this run". Not modified.
+    meta : mapping
+        Run metadata. Keys read: ``run_id``, ``reporting_month`` (or
+        ``as_of``), ``config_name`` (or ``config``), ``created``, ``version``
+        (or ``versions["creditsurv"]``), ``synthetic`` (bool), ``model``
+        (``kind``, ``loglik``, ``aic``, ``bic``, ``n_rows``, ``events``,
+        ``iterations``, ``converged``), ``calibration`` (``hl_statistic``,
+        ``hl_df``, ``hl_p_value``), ``scenario_weights`` (scenario -> weight),
+        ``inputs`` (list of dicts with ``input``, ``path``, ``rows``,
+        ``bytes``, ``sha256``), ``versions`` (package -> version),
+        ``config_sha256`` (or ``config_hash``), ``seed``. All optional.
+
+    Returns
+    -------
+    str
+        The HTML document. The same inputs give the same string.
+
+    Raises
+    ------
+    DataError
+        A table that is present lacks a column its section needs; every such
+        table is named in one message.
+    """
+    tables = _validate(tables)
+    meta = dict(meta or {})
+    run_id = meta.get("run_id")
+    title = "creditsurv run report" + (f": {run_id}" if run_id else "")
+    month = meta.get("reporting_month", meta.get("as_of"))
+    nav = "".join(f'<li><a href="#{sid}">{_e(t)}</a></li>' for sid, t, _ in SECTIONS)
+    body = []
+    with matplotlib.rc_context(_RC):  # plot style for this call only; global rcParams untouched
+        for i, (sid, heading, fn) in enumerate(SECTIONS, start=1):
+            body.append(f'<section id="{sid}">\n<h2>{i}. {_e(heading)}</h2>\n{fn(tables, meta)}\n</section>')
+    sub = f'<p class="sub">Reporting month {_e(month)}</p>' if month else ""
+    return (
+        "<!DOCTYPE html>\n"
+        '<html lang="en">\n<head>\n<meta charset="utf-8">\n'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
+        f"<title>{_e(title)}</title>\n<style>{_CSS}</style>\n</head>\n<body>\n"
+        f"<header><h1>{_e(title)}</h1>{sub}</header>\n"
+        f'<nav aria-label="Contents"><ol>{nav}</ol></nav>\n' + "\n".join(body) + "\n</body>\n</html>\n"
+    )
+
+
+def write_report(path, tables: Mapping[str, pd.DataFrame], meta: Mapping) -> Path:
+    """Render the report and write it to ``path`` as UTF-8; returns the path."""
+    path = Path(path)
+    path.write_text(render_report(tables, meta), encoding="utf-8", newline="\n")
+    return path
