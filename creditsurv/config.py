@@ -319,6 +319,10 @@ class ScenarioExtension:
     long_run: dict[str, float] = field(
         default_factory=dict, metadata=_doc("long-run value per series; default the history's mean")
     )
+    hold_last_series: tuple[str, ...] = field(
+        default=("hpi_*",),
+        metadata=_doc("series (shell patterns) that hold their last value whatever the rule, e.g. trending indices"),
+    )
 
 
 @dataclass(frozen=True)

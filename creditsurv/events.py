@@ -33,7 +33,7 @@ import pandas as pd
 from .errors import DataError
 from .panel import Panel
 
-__all__ = ["EVENTS", "event_counts", "label_events"]
+__all__ = ["EVENTS", "book_at_as_of", "event_counts", "label_events"]
 
 EVENTS = ("default", "prepay", "maturity", "censored")
 """Event labels of ``loan_outcomes.event``, in report order."""
@@ -191,3 +191,44 @@ def event_counts(panel: Panel) -> pd.DataFrame:
     reason = frame["censor_reason"].astype(object)
     frame["censor_reason"] = reason.where(reason.notna(), None)
     return frame.astype({"loans": "int64", "share": "float64"})
+
+
+def book_at_as_of(panel: Panel, segment_column: str | None = None) -> pd.DataFrame:
+    """The book at the reporting month: every loan still on it, one row each.
+
+    A loan is on the book when it has a panel row at the reporting month with a
+    balance above ``events.paid_off_balance`` and was neither prepaid nor
+    matured; loans in default (in workout) are on the book and flagged.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Sorted by ``loan_id``: every ``loans`` column, then ``age`` (at the
+        reporting month), ``balance``, ``days_past_due``, ``in_default`` and
+        ``segment`` (the value of ``segment_column``, or ``"all"``).
+    """
+    if not _has_table(panel, "loan_outcomes"):
+        label_events(panel)
+    from .panel import quote_ident
+
+    segment = f"CAST(l.{quote_ident(segment_column)} AS VARCHAR)" if segment_column else "'all'"
+    sql = f"""
+        SELECT l.*,
+               o.last_age AS age,
+               o.balance_at_as_of AS balance,
+               o.days_past_due_at_as_of AS days_past_due,
+               o.in_default_at_as_of AS in_default,
+               {segment} AS segment
+        FROM loan_outcomes AS o
+        JOIN loans AS l USING (loan_id)
+        WHERE o.last_month_idx = $as_of
+          AND o.event IN ('default', 'censored')
+          AND o.balance_at_as_of > $paid_off
+        ORDER BY loan_id
+    """
+    cfg = panel.cfg
+    params = {"as_of": int(cfg.as_of), "paid_off": float(cfg.events.paid_off_balance)}
+    try:
+        return panel.con.execute(sql, params).df()
+    except duckdb.Error as exc:
+        raise DataError(f"cannot build the book at {cfg.as_of}: {exc}") from None

@@ -173,3 +173,138 @@ def fit_model_command(config_path, out_dir: Path | None = None, argv=None) -> Ou
         f"wrote {final}"
     )
     return Outcome(text, path=final)
+
+
+# --------------------------------------------------------------------------- the monthly run
+
+
+def _load_for_run(config_path, as_of: str | None):
+    """Load the config, with the reporting month replaced when ``as_of`` is given."""
+    from .config import _read_yaml, config_from_dict
+
+    path = Path(config_path)
+    if as_of is None:
+        return load_config(path)
+    data = _read_yaml(path)
+    data["as_of"] = as_of
+    return config_from_dict(data, path.resolve().parent, source=path)
+
+
+def _macro_history(panel) -> "pd.DataFrame":
+    frame = panel.con.execute("SELECT * EXCLUDE (month) FROM macro ORDER BY month_idx").df()
+    return frame.set_index("month_idx")
+
+
+def _macro_series_needed(model, cfg) -> list[str]:
+    needed = [name.split(":")[1] for name in model.required_inputs if name.startswith("macro:")]
+    if "rate_incentive" in model.required_inputs and cfg.collateral.market_rate_series:
+        needed.append(cfg.collateral.market_rate_series)
+    return sorted(set(needed))
+
+
+def project_book(cfg, panel, model, run, *, progress=None):
+    """Projection, ECL and the exported tables of one run, written into ``run``."""
+    import numpy as np
+
+    from .events import book_at_as_of
+    from .loss import expected_credit_loss
+    from .projection import TableWriter, prepare_paths, segment_pd_tables
+
+    book = book_at_as_of(panel, cfg.segments.column)
+    history = _macro_history(panel)
+    remaining = (book["term"] - book["age"]).clip(lower=0)
+    until = int(cfg.as_of) + int(remaining.max() if len(book) else 0) + cfg.loss.lgd.months_to_recovery + 1
+    paths = prepare_paths(
+        cfg.scenarios,
+        history,
+        as_of_idx=int(cfg.as_of),
+        until_idx=until,
+        extension=cfg.scenario_extension,
+        required_series=_macro_series_needed(model, cfg),
+    )
+    weights = {s.name: s.weight for s in cfg.scenarios}
+    options = {"compression": "zstd"}
+    with (
+        TableWriter(run.add_file("pd_term_structure.parquet"), **options) as curves,
+        TableWriter(run.add_file("pd_annual_by_loan.parquet"), **options) as annual,
+        TableWriter(run.add_file("ecl_schedule.parquet"), **options) as schedule,
+    ):
+        result = expected_credit_loss(
+            book,
+            model,
+            paths,
+            as_of_idx=int(cfg.as_of),
+            weights=weights,
+            loss=cfg.loss,
+            staging=cfg.staging,
+            default_days_past_due=cfg.default_definition.days_past_due,
+            hpi_series=cfg.collateral.hpi_series,
+            region_column=cfg.collateral.region_column,
+            market_rate_series=cfg.collateral.market_rate_series,
+            band_column=cfg.segments.band_column,
+            band_edges=cfg.segments.band_edges,
+            schedule_writer=schedule,
+            curve_writer=curves,
+            term_writer=annual,
+        )
+    run.outputs["pd_term_structure.parquet"]["rows"] = curves.rows
+    run.outputs["pd_annual_by_loan.parquet"]["rows"] = annual.rows
+    run.outputs["ecl_schedule.parquet"]["rows"] = schedule.rows
+    csv = cfg.outputs.csv_copies
+    run.add_table(result.loans, "loan_ecl.parquet", csv=csv)
+    run.add_table(result.segments, "segment_summary.csv")
+    tidy, wide = segment_pd_tables(result.projection.term_structure)
+    run.add_table(tidy, "segment_pd_table.csv")
+    run.add_table(wide, "segment_pd_matrix.csv")
+    run.add_table(result.projection.speeds, "segment_speeds.csv")
+    run.add_table(result.projection.speed_multiples, "equivalent_speeds.csv")
+    totals = {
+        "loans": int(len(result.loans)),
+        "ead": float(np.sum(result.loans["ead"])),
+        "ecl_reported": float(np.sum(result.loans["ecl_reported"])),
+        "by_stage": {
+            int(k): float(v) for k, v in result.loans.groupby("stage")["ecl_reported"].sum().items()
+        },
+    }
+    return result, tidy, totals
+
+
+def run_command(config_path, as_of: str | None = None, out=None, argv=None) -> Outcome:
+    """``creditsurv run``: the monthly job, written as one run folder."""
+    import shutil
+
+    from .events import event_counts
+    from .runs import RunFolder
+
+    cfg = _load_for_run(config_path, as_of)
+    if not cfg.scenarios:
+        from .errors import ConfigError
+
+        raise ConfigError("scenarios: a run needs at least one scenario (name, weight, path)")
+    panel, checks = _open_checked(cfg)
+    with panel:
+        manifest = _manifest_start(cfg, panel, argv, "run")
+        parent = _output_parent(cfg, out)
+        with RunFolder(parent, manifest["run_id"].removeprefix("run_")) as run:
+            work = run.path / "_work"
+            work.mkdir()
+            model = _hazard_model(cfg, panel, temp_dir=work)
+            shutil.rmtree(work)
+            model.save(run.add_file("hazard_model.json"))
+            run.add_table(model.summary(), "coefficients.csv")
+            run.add_table(checks, "data_checks.csv")
+            run.add_table(event_counts(panel), "event_counts.csv")
+            result, segment_pd, totals = project_book(cfg, panel, model, run)
+            manifest["model"] = _model_summary(model)
+            manifest["data_check_warnings"] = _fired_warnings(checks)
+            manifest["scenario_weights"] = {s.name: s.weight for s in cfg.scenarios}
+            manifest["totals"] = totals
+            final = run.commit(manifest)
+    stage = ", ".join(f"stage {k}: {v:,.2f}" for k, v in totals["by_stage"].items())
+    text = (
+        f"reporting month {manifest['as_of']}: {totals['loans']:,} loans, EAD {totals['ead']:,.2f}, "
+        f"reported ECL {totals['ecl_reported']:,.2f} ({stage})\n"
+        f"model: {model.kind}, {len(model.params.index)} terms per cause, {model.n_rows:,} loan-months\n"
+        f"wrote {final}"
+    )
+    return Outcome(text, path=final)

@@ -39,6 +39,8 @@ segment aggregates stay in memory.
 
 from __future__ import annotations
 
+import fnmatch
+
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
@@ -220,6 +222,7 @@ def extend_path(
     *,
     as_of_idx: int | None = None,
     name: str = "scenario",
+    hold_last_series: Sequence[str] = (),
 ) -> pd.DataFrame:
     """One continuous monthly series per column, from the history's start to ``until_idx``.
 
@@ -239,7 +242,10 @@ def extend_path(
          of the history up to the as-of month.  For a trending level series
          (a house-price index) the history's mean is far below the last
          value, so reverting to it is a price fall; give ``long_run`` for such
-         series or use ``hold_last``.
+         series, list it in ``hold_last_series`` or use ``hold_last``.
+
+       Series matching a shell pattern of ``hold_last_series`` (e.g. ``hpi_*``)
+       hold their last value whatever ``rule`` says.
 
     Parameters
     ----------
@@ -304,7 +310,7 @@ def extend_path(
         after = np.arange(p1 + 1, end + 1)
         for col in path.columns:
             last = float(path[col].loc[p1])
-            if rule == "hold_last":
+            if rule == "hold_last" or any(fnmatch.fnmatchcase(col, pat) for pat in hold_last_series):
                 values = np.full(len(k), last)
             else:
                 target = long_run.get(col)
@@ -338,8 +344,11 @@ def prepare_paths(
     rule = getattr(extension, "rule", "revert_to_mean")
     months = getattr(extension, "months", 24)
     long_run = getattr(extension, "long_run", {})
+    hold = getattr(extension, "hold_last_series", ())
     return {
-        name: extend_path(history, p, until_idx, rule, months, long_run, as_of_idx=as_of_idx, name=name)
+        name: extend_path(
+            history, p, until_idx, rule, months, long_run, as_of_idx=as_of_idx, name=name, hold_last_series=hold
+        )
         for name, p in paths.items()
     }
 
@@ -630,9 +639,9 @@ class ProjectionResult:
         ``prepay_lifetime_<s>``.
     term_structure : DataFrame
         Segment curves by ``segment``, ``band``, ``scenario``, ``year_ahead``:
-        ``n_loans``, ``balance``, ``cum_pd_count``, ``cum_pd_balance``,
-        ``survival_count``, ``survival_balance``, ``cond_pd_count``,
-        ``cond_pd_balance`` (conditional PD of the year = (F(12y) - F(12(y-1))) /
+        ``n_loans``, ``balance``, ``cumulative_pd_count``, ``cumulative_pd_balance``,
+        ``survival_count``, ``survival_balance``, ``conditional_pd_count``,
+        ``conditional_pd_balance`` (conditional PD of the year = (F(12y) - F(12(y-1))) /
         S(12(y-1)) on the pooled sums, 0 when the survival is 0).  Past a loan's
         maturity its cumulative PD and survival stay at their maturity values.
     speeds : DataFrame
@@ -1081,12 +1090,12 @@ def _term_structure_frame(ts, names, seg_names, labels, years) -> pd.DataFrame:
                 "year_ahead": [r[3] for r in rows],
                 "n_loans": get["n"].astype(np.int64),
                 "balance": get["bal"],
-                "cum_pd_count": get["F_n"] / get["n"],
-                "cum_pd_balance": np.where(get["bal"] > 0, get["F_b"] / get["bal"], np.nan),
+                "cumulative_pd_count": get["F_n"] / get["n"],
+                "cumulative_pd_balance": np.where(get["bal"] > 0, get["F_b"] / get["bal"], np.nan),
                 "survival_count": get["S_n"] / get["n"],
                 "survival_balance": np.where(get["bal"] > 0, get["S_b"] / get["bal"], np.nan),
-                "cond_pd_count": np.where(get["Sp_n"] > 0, (get["F_n"] - F_prev_n) / get["Sp_n"], 0.0),
-                "cond_pd_balance": np.where(get["Sp_b"] > 0, (get["F_b"] - F_prev_b) / get["Sp_b"], 0.0),
+                "conditional_pd_count": np.where(get["Sp_n"] > 0, (get["F_n"] - F_prev_n) / get["Sp_n"], 0.0),
+                "conditional_pd_balance": np.where(get["Sp_b"] > 0, (get["F_b"] - F_prev_b) / get["Sp_b"], 0.0),
             }
         )
     return out
@@ -1151,6 +1160,14 @@ def origination_pd(
     held too, so current LTV is the scheduled balance over the original
     property value.
 
+    When ``loans`` has an ``age`` column (the age at the reporting month ``a``),
+    the PD returned covers the same remaining life as today's lifetime PD:
+    the origination view of default after age ``a`` given survival to it,
+    ``(F_D(T) - F_D(a)) / S(a)``. Comparing it with today's lifetime PD
+    compares like with like (IFRS 9 B5.5.11 asks for the change in the risk of
+    default over the expected life); comparing today's remaining-life PD with
+    a full-life PD at origination would understate every increase.
+
     Parameters
     ----------
     loans : DataFrame
@@ -1173,8 +1190,53 @@ def origination_pd(
     if n_all:
         _check_coverage(lookups, _coverage_needs(book, spec, hpi_names, market_rate_series, hold=True))
     out = np.zeros(n_all)
+    if "age" in loans.columns:
+        ages = loans.set_index("loan_id")["age"].reindex(book.loan_id).to_numpy(dtype=np.int64)
+    else:
+        ages = np.zeros(n_all, dtype=np.int64)
     for start in range(0, n_all, chunk_size):
         sl = slice(start, min(start + chunk_size, n_all))
         haz, *_ = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, market_rate_series, hold=True)
-        out[sl] = _curves(*haz["origination"])[2][:, -1]
+        _, s, f_d, *_ = _curves(*haz["origination"])
+        a = np.clip(ages[sl], 0, f_d.shape[1])
+        rows = np.arange(len(a))
+        f_a = np.where(a > 0, f_d[rows, np.maximum(a - 1, 0)], 0.0)
+        s_a = np.where(a > 0, s[rows, np.maximum(a - 1, 0)], 1.0)
+        out[sl] = np.where(s_a > 0, (f_d[:, -1] - f_a) / np.where(s_a > 0, s_a, 1.0), 0.0)
     return pd.Series(out, index=pd.Index(book.loan_id, name="loan_id"), name="pd_lifetime_origination")
+
+
+def segment_pd_tables(term_structure: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The lifetime PD table by segment (and band), scenario and year ahead.
+
+    Parameters
+    ----------
+    term_structure : DataFrame
+        :attr:`ProjectionResult.term_structure`.
+
+    Returns
+    -------
+    tidy : DataFrame
+        One row per segment, band, scenario, weighting (``count`` or
+        ``balance``) and year ahead: ``cumulative_pd``, ``conditional_pd``
+        (PD of the year given survival to its start), ``survival``, ``n_loans``,
+        ``balance``.
+    wide : DataFrame
+        The cumulative PD with one column per year ahead (``year_1``, ...).
+    """
+    keys = ["segment", "band", "scenario"]
+    parts = []
+    for weighting in ("count", "balance"):
+        part = term_structure[keys + ["year_ahead", "n_loans", "balance"]].copy()
+        part.insert(3, "weighting", weighting)
+        part["cumulative_pd"] = term_structure[f"cumulative_pd_{weighting}"].to_numpy()
+        part["conditional_pd"] = term_structure[f"conditional_pd_{weighting}"].to_numpy()
+        part["survival"] = term_structure[f"survival_{weighting}"].to_numpy()
+        parts.append(part)
+    tidy = pd.concat(parts, ignore_index=True).rename(columns={"year_ahead": "year"})
+    tidy = tidy.sort_values(keys + ["weighting", "year"], kind="stable", ignore_index=True)
+    wide = tidy.pivot_table(
+        index=keys + ["weighting"], columns="year", values="cumulative_pd", sort=False, observed=True
+    )
+    wide.columns = [f"year_{int(y)}" for y in wide.columns]
+    return tidy, wide.reset_index()

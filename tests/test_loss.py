@@ -250,10 +250,26 @@ def test_pd_at_origination_is_projected_when_no_column_is_given():
     )
     po = origination_pd(book, _MacroSource(), _flat_macro())
     np.testing.assert_allclose(res.loans.set_index("loan_id")["pd_lifetime_origination"], po.loc[["A", "B", "C"]], rtol=1e-15)
-    # a loan projected at origination over its full term has a higher lifetime PD than over its remainder
-    t = res.loans.set_index("loan_id")
-    assert t.loc["A", "pd_lifetime_origination"] > t.loc["A", "pd_lifetime"]
-    assert (t["stage"] == 1).all()
+    assert (res.loans["stage"] == 1).all()
+
+
+def test_pd_at_origination_covers_the_same_remaining_life_as_today():
+    # Constant hazards hD, hP: the origination view of default after age a, given
+    # survival to a, is the closed form hD / (hD + hP) * (1 - (1 - hD - hP)^(T - a)),
+    # the same as today's lifetime PD over the remaining T - a months (IFRS 9
+    # B5.5.11 compares the risk of default over the same expected life).
+    from creditsurv.speeds import HazardTable
+
+    hd, hp = 0.003, 0.02
+    source = HazardTable(pd.DataFrame({"age": [1], "default": [hd], "prepay": [hp]}))
+    book = _small_book()
+    po = origination_pd(book, source, _flat_macro())
+    remaining = (book["term"] - book["age"]).to_numpy()
+    expected = hd / (hd + hp) * (1 - (1 - hd - hp) ** remaining)
+    np.testing.assert_allclose(po.loc[["A", "B", "C"]].to_numpy(), expected, rtol=1e-12)
+    # Without an age column the whole term from origination is covered.
+    full = origination_pd(book.drop(columns=["age"]), source, _flat_macro())
+    np.testing.assert_allclose(full.loc[["A", "B", "C"]].to_numpy(), hd / (hd + hp) * (1 - (1 - hd - hp) ** book["term"].to_numpy()), rtol=1e-12)
 
 
 def test_staging_errors_are_clear():

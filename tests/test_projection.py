@@ -284,10 +284,10 @@ def test_term_structure_matches_per_loan_annual_rows_with_carry_past_maturity():
             F[i, y], S[i, y] = src["cumulative_pd"], src["survival"]
     w = seg_b["balance"].to_numpy()
     for y in (1, 2, 5, years):
-        assert row.loc[y, "cum_pd_count"] == pytest.approx(F[:, y].mean(), rel=1e-12)
-        assert row.loc[y, "cum_pd_balance"] == pytest.approx((w * F[:, y]).sum() / w.sum(), rel=1e-12)
+        assert row.loc[y, "cumulative_pd_count"] == pytest.approx(F[:, y].mean(), rel=1e-12)
+        assert row.loc[y, "cumulative_pd_balance"] == pytest.approx((w * F[:, y]).sum() / w.sum(), rel=1e-12)
         cond = (F[:, y].sum() - F[:, y - 1].sum()) / S[:, y - 1].sum()
-        assert row.loc[y, "cond_pd_count"] == pytest.approx(cond, rel=1e-10, abs=1e-15)
+        assert row.loc[y, "conditional_pd_count"] == pytest.approx(cond, rel=1e-10, abs=1e-15)
     # per-loan conditional PD: (F(12y) - F(12(y-1))) / S(12(y-1))
     g = t[(t.loan_id == "L02") & (t.scenario == "base")].set_index("year_ahead")
     assert g.loc[3, "conditional_pd"] == pytest.approx((g.loc[3, "cumulative_pd"] - g.loc[2, "cumulative_pd"]) / g.loc[2, "survival"], rel=1e-12)
@@ -401,6 +401,18 @@ def test_extend_path_hold_last_and_revert_to_mean_at_known_months():
     assert rev.loc[AS_OF + 1, "hpi_south"] == path.loc[AS_OF + 1, "hpi_south"]
     assert not rev.isna().any().any()
     assert list(rev.index) == list(range(MONTHS[0], last + 41))
+
+
+def test_extend_path_holds_listed_series_whatever_the_rule():
+    # A trending index reverted to its history mean would be a price fall: listed
+    # series (shell patterns) hold their last value; the rest revert.
+    hist = _history()
+    path = _scenario_frame(months_ahead=12)
+    last = AS_OF + 12
+    out = extend_path(hist, path, last + 30, "revert_to_mean", months=10, as_of_idx=AS_OF, hold_last_series=["hpi_*"])
+    assert out.loc[last + 30, "hpi_north"] == path.loc[last, "hpi_north"]
+    assert out.loc[last + 30, "hpi_south"] == path.loc[last, "hpi_south"]
+    assert out.loc[last + 30, "mortgage_rate"] == pytest.approx(hist["mortgage_rate"].mean(), rel=1e-13)
 
 
 def test_extend_path_bridges_from_history_or_says_which_months_are_missing():
