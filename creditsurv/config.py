@@ -276,10 +276,23 @@ class ModelSpec:
     path: FilePath | None = field(
         default=None, metadata=_doc("use this saved model JSON instead of fitting")
     )
+    source: Literal["fitted", "benchmark", "table"] = field(
+        default="fitted",
+        metadata=_doc("hazards from the fitted model, from % PSA / % SDA curves, or from a table of monthly rates"),
+    )
+    psa: float = field(default=100.0, metadata=_doc("benchmark: prepayment speed in % PSA", min=0.0))
+    sda: float = field(default=100.0, metadata=_doc("benchmark: default speed in % SDA", min=0.0))
+    table: FilePath | None = field(
+        default=None, metadata=_doc("table: CSV of monthly hazards by loan age (columns age, default, prepay)")
+    )
 
     def _validate(self) -> list[str]:
         names = [c.name for c in self.covariates]
         problems = [f"covariates: {t}" for t in [_unique(names)] if t]
+        if self.source == "table" and self.table is None:
+            problems.append("table: required when source is table (a CSV with columns age, default, prepay)")
+        if self.source != "table" and self.table is not None:
+            problems.append(f"table: only used when source is table, but source is {self.source}")
         for i, pair in enumerate(self.interactions):
             if len(pair) != 2:
                 problems.append(f"interactions[{i}]: give two term names, got {list(pair)}")

@@ -80,9 +80,25 @@ def _development_filter(cfg) -> tuple[str, tuple[int, int]]:
 
 
 def _hazard_model(cfg, panel, temp_dir):
-    """The config's saved model when ``model.path`` is set, else a fit on the development window."""
-    from .hazard import fit_model, load_model
+    """The hazard source of a run.
 
+    ``model.source`` fitted: the saved model when ``model.path`` is set, else a
+    fit on the development window; benchmark: % PSA and % SDA curves; table:
+    monthly hazards by loan age from a CSV file.
+    """
+    from .hazard import fit_model, load_model
+    from .speeds import BenchmarkCurves, HazardTable
+
+    if cfg.model.source == "benchmark":
+        return BenchmarkCurves(psa=cfg.model.psa, sda=cfg.model.sda)
+    if cfg.model.source == "table":
+        import pandas as pd
+
+        try:
+            table = pd.read_csv(cfg.model.table)
+        except (OSError, ValueError) as exc:
+            raise DataError(f"model.table: cannot read {cfg.model.table}: {exc}") from None
+        return HazardTable(table)
     if cfg.model.path is not None:
         return load_model(cfg.model.path)
     where, params = _development_filter(cfg)
@@ -124,6 +140,8 @@ def _output_parent(cfg, out) -> Path:
 
 
 def _model_summary(model) -> dict:
+    if not hasattr(model, "params"):
+        return {"source": type(model).__name__, **{k: getattr(model, k) for k in ("psa", "sda") if hasattr(model, k)}}
     return {
         "kind": model.kind,
         "causes": list(model.causes),
@@ -269,6 +287,14 @@ def project_book(cfg, panel, model, run, *, progress=None):
     return result, tidy, totals
 
 
+def _describe_source(model) -> str:
+    if hasattr(model, "params"):
+        return f"{model.kind} model, {len(model.params.index)} terms per cause, {model.n_rows:,} loan-months"
+    if hasattr(model, "psa"):
+        return f"benchmark curves, {model.psa:g}% PSA and {model.sda:g}% SDA"
+    return "a table of monthly hazards by loan age"
+
+
 def run_command(config_path, as_of: str | None = None, out=None, argv=None) -> Outcome:
     """``creditsurv run``: the monthly job, written as one run folder."""
     import shutil
@@ -290,8 +316,9 @@ def run_command(config_path, as_of: str | None = None, out=None, argv=None) -> O
             work.mkdir()
             model = _hazard_model(cfg, panel, temp_dir=work)
             shutil.rmtree(work)
-            model.save(run.add_file("hazard_model.json"))
-            run.add_table(model.summary(), "coefficients.csv")
+            if hasattr(model, "save"):
+                model.save(run.add_file("hazard_model.json"))
+                run.add_table(model.summary(), "coefficients.csv")
             run.add_table(checks, "data_checks.csv")
             run.add_table(event_counts(panel), "event_counts.csv")
             result, segment_pd, totals = project_book(cfg, panel, model, run)
@@ -304,7 +331,7 @@ def run_command(config_path, as_of: str | None = None, out=None, argv=None) -> O
     text = (
         f"reporting month {manifest['as_of']}: {totals['loans']:,} loans, EAD {totals['ead']:,.2f}, "
         f"reported ECL {totals['ecl_reported']:,.2f} ({stage})\n"
-        f"model: {model.kind}, {len(model.params.index)} terms per cause, {model.n_rows:,} loan-months\n"
+        f"hazards: {_describe_source(model)}\n"
         f"wrote {final}"
     )
     return Outcome(text, path=final)
