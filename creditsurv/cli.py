@@ -43,10 +43,53 @@ def _cmd_fit(args) -> int:
     return 0
 
 
+class _TerminalProgress:
+    """Progress on stderr when it is a terminal; silent otherwise (logs, CI, pipes)."""
+
+    def __init__(self, stream=None):
+        self.stream = stream or sys.stderr
+        self.active = self.stream.isatty()
+        self._label = None
+
+    def __call__(self, label: str, done: int | None, total: int | None) -> None:
+        if not self.active:
+            return
+        if done is None or not total:
+            if self._label is not None:
+                self.stream.write("\n")
+            self.stream.write(f"{label} ...")
+            self._label = None if done is None else label
+            self.stream.write("\n")
+            self.stream.flush()
+            return
+        width = 30
+        filled = int(width * done / total)
+        self.stream.write(f"\r  [{'#' * filled}{'.' * (width - filled)}] {done:,}/{total:,} loans")
+        if done >= total:
+            self.stream.write("\n")
+        self.stream.flush()
+
+
 def _cmd_run(args) -> int:
     from .pipeline import run_command
 
-    outcome = run_command(args.config, as_of=args.as_of, out=args.out, argv=sys.argv)
+    outcome = run_command(args.config, as_of=args.as_of, out=args.out, argv=sys.argv, progress=_TerminalProgress())
+    print(outcome.text)
+    return 0
+
+
+def _cmd_reproduce(args) -> int:
+    from .pipeline import reproduce_command
+
+    outcome = reproduce_command(args.run_dir, out=args.out, progress=_TerminalProgress())
+    print(outcome.text)
+    return 0
+
+
+def _cmd_compare(args) -> int:
+    from .pipeline import compare_command
+
+    outcome = compare_command(args.run_a, args.run_b, out=args.out)
     print(outcome.text)
     return 0
 
@@ -93,6 +136,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--as-of", default=None, metavar="YYYY-MM", help="reporting month (overrides the config)")
     p.add_argument("--out", type=Path, default=None, help="folder that holds run folders")
     p.set_defaults(func=_cmd_run)
+
+    p = sub.add_parser("reproduce", help="re-run a past run from its manifest and compare every output")
+    p.add_argument("run_dir", type=Path, metavar="RUN_DIR")
+    p.add_argument("--out", type=Path, default=None, help="folder for the fresh run (default: reproductions/ beside it)")
+    p.set_defaults(func=_cmd_reproduce)
+
+    p = sub.add_parser("compare", help="ECL movement from run A to run B: walk, stage migration, PD change")
+    p.add_argument("run_a", type=Path, metavar="RUN_A")
+    p.add_argument("run_b", type=Path, metavar="RUN_B")
+    p.add_argument("--out", type=Path, default=None, help="folder for the movement tables (default: beside RUN_B)")
+    p.set_defaults(func=_cmd_compare)
     return parser
 
 

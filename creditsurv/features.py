@@ -406,7 +406,14 @@ class FeatureSpec:
             elif c.get("transform") == "log":
                 numeric.append((c, "log"))
                 aggs.append(f"count(*) FILTER (WHERE {x} <= 0)")
-        row = con.execute(f"WITH data AS (\n{body}\n)\nSELECT {', '.join(aggs)} FROM data", list(params)).fetchall()[0]
+        # One thread: a parallel sum of doubles depends on how rows fall to
+        # threads, and the stored constants must be the same bits every run.
+        threads = con.execute("SELECT current_setting('threads')").fetchall()[0][0]
+        con.execute("SET threads = 1")
+        try:
+            row = con.execute(f"WITH data AS (\n{body}\n)\nSELECT {', '.join(aggs)} FROM data", list(params)).fetchall()[0]
+        finally:
+            con.execute(f"SET threads = {int(threads)}")
         n, age_min, age_max, month_min = row[:4]
         problems = []
         if not n:

@@ -299,6 +299,7 @@ def expected_credit_loss(
     schedule_writer: Callable[[pa.Table], None] | None = None,
     curve_writer: Callable[[pa.Table], None] | None = None,
     term_writer: Callable[[pa.Table], None] | None = None,
+    progress: Callable[[int, int], None] | None = None,
 ) -> EclResult:
     """Stage every loan and compute its 12-month, lifetime and reported ECL.
 
@@ -326,6 +327,8 @@ def expected_credit_loss(
         ``discount_factor``, ``expected_loss`` (sorted like the curves; the
         ``weighted`` row's lgd is the marginal-PD-weighted mean LGD, so that
         expected_loss = marginal_pd x lgd x ead x discount_factor holds there too).
+    progress : callable(done, total), optional
+        Called after each chunk with the loans projected so far.
 
     Returns
     -------
@@ -370,11 +373,18 @@ def expected_credit_loss(
     live = frame.iloc[live_rows]
     w = _weights(scenarios, weights)
     acc = _EclAccumulator(len(live), scenarios, w, loss, lookups, region_column, hpi_names, as_of_idx, schedule_writer)
+    on_chunk = acc
+    if progress is not None:
+
+        def on_chunk(ch):
+            acc(ch)
+            progress(ch.rows.stop, len(live))
+
     proj = project_loans(
         live, source, paths, as_of_idx=as_of_idx, weights=w, chunk_size=chunk_size, hpi_series=hpi_series,
         region_column=region_column, market_rate_series=market_rate_series, segment_column="segment",
         band_column=band_column, band_edges=band_edges, curve_writer=curve_writer, term_writer=term_writer,
-        on_chunk=acc,
+        on_chunk=on_chunk,
     )
 
     n = len(frame)

@@ -264,6 +264,7 @@ def project_book(cfg, panel, model, run, *, progress=None):
             schedule_writer=schedule,
             curve_writer=curves,
             term_writer=annual,
+            progress=progress,
         )
     run.outputs["pd_term_structure.parquet"]["rows"] = curves.rows
     run.outputs["pd_annual_by_loan.parquet"]["rows"] = annual.rows
@@ -295,25 +296,44 @@ def _describe_source(model) -> str:
     return "a table of monthly hazards by loan age"
 
 
-def run_command(config_path, as_of: str | None = None, out=None, argv=None) -> Outcome:
+def run_command(config_path, as_of: str | None = None, out=None, argv=None, progress=None) -> Outcome:
     """``creditsurv run``: the monthly job, written as one run folder."""
+    cfg = _load_for_run(config_path, as_of)
+    return execute_run(cfg, _output_parent(cfg, out), argv=argv, progress=progress)
+
+
+def _say(progress, text: str) -> None:
+    if progress is not None:
+        progress(text, None, None)
+
+
+def execute_run(cfg, parent: Path, *, argv=None, name: str | None = None, config_text: str | None = None, progress=None) -> Outcome:
+    """Run the monthly job of ``cfg`` into a new folder under ``parent``.
+
+    ``name`` overrides the folder name (``YYYY-MM_<hash of config and inputs>``);
+    ``config_text`` the config text recorded as given (default: the config file's).
+    """
     import shutil
 
     from .events import event_counts
     from .runs import RunFolder
 
-    cfg = _load_for_run(config_path, as_of)
     if not cfg.scenarios:
         from .errors import ConfigError
 
         raise ConfigError("scenarios: a run needs at least one scenario (name, weight, path)")
+    _say(progress, "data checks and events")
     panel, checks = _open_checked(cfg)
     with panel:
         manifest = _manifest_start(cfg, panel, argv, "run")
-        parent = _output_parent(cfg, out)
-        with RunFolder(parent, manifest["run_id"].removeprefix("run_")) as run:
+        if config_text is not None:
+            manifest["config_as_given"] = config_text
+        folder = name or manifest["run_id"].removeprefix("run_")
+        manifest["run_id"] = folder
+        with RunFolder(parent, folder) as run:
             work = run.path / "_work"
             work.mkdir()
+            _say(progress, "hazard model")
             model = _hazard_model(cfg, panel, temp_dir=work)
             shutil.rmtree(work)
             if hasattr(model, "save"):
@@ -321,11 +341,19 @@ def run_command(config_path, as_of: str | None = None, out=None, argv=None) -> O
                 run.add_table(model.summary(), "coefficients.csv")
             run.add_table(checks, "data_checks.csv")
             run.add_table(event_counts(panel), "event_counts.csv")
-            result, segment_pd, totals = project_book(cfg, panel, model, run)
+            _say(progress, "projection and ECL")
+            chunk_progress = (lambda done, total: progress("projection and ECL", done, total)) if progress else None
+            result, segment_pd, totals = project_book(cfg, panel, model, run, progress=chunk_progress)
             manifest["model"] = _model_summary(model)
             manifest["data_check_warnings"] = _fired_warnings(checks)
             manifest["scenario_weights"] = {s.name: s.weight for s in cfg.scenarios}
             manifest["totals"] = totals
+            if cfg.outputs.prior_run is not None:
+                _say(progress, "movement against the prior run")
+                movement = _movement_against(cfg.outputs.prior_run, result.loans, manifest["scenario_weights"])
+                for file, table in movement.to_tables().items():
+                    run.add_table(table, file)
+                manifest["prior_run"] = str(cfg.outputs.prior_run)
             final = run.commit(manifest)
     stage = ", ".join(f"stage {k}: {v:,.2f}" for k, v in totals["by_stage"].items())
     text = (
@@ -335,3 +363,105 @@ def run_command(config_path, as_of: str | None = None, out=None, argv=None) -> O
         f"wrote {final}"
     )
     return Outcome(text, path=final)
+
+
+def _movement_against(prior_run: Path, loans_b, weights_b):
+    import json
+
+    import pandas as pd
+
+    from ._movement import movement
+    from .runs import MANIFEST, read_manifest
+
+    prior = read_manifest(prior_run)
+    loans_a = pd.read_parquet(Path(prior_run) / "loan_ecl.parquet")
+    weights_a = prior.get("scenario_weights") or {s["name"]: s["weight"] for s in prior["config_resolved"]["scenarios"]}
+    return movement(loans_a, loans_b, weights_a, weights_b)
+
+
+# --------------------------------------------------------------------------- reproduce and compare
+
+
+def reproduce_command(run_dir, out=None, progress=None) -> Outcome:
+    """``creditsurv reproduce``: re-run a past run from its manifest and compare outputs.
+
+    Every input's SHA-256 is verified first (a changed or missing input is a
+    ``RunError`` naming the file). The fresh run goes to ``out`` (default
+    ``<run_dir>/../reproductions``). With the same package versions every
+    output hash must match (else ``ReproduceMismatch``, exit 3); with other
+    versions the largest numeric difference per table and column is reported.
+    """
+    from .config import config_from_dict
+    from .errors import ReproduceMismatch, RunError
+    from .runs import compare_outputs, read_manifest, sha256_file
+
+    run_dir = Path(run_dir)
+    manifest = read_manifest(run_dir)
+    if manifest.get("kind") != "run":
+        raise RunError(f"{run_dir}: not a run folder made by creditsurv run (kind {manifest.get('kind')!r})")
+    changed = []
+    for item in manifest["inputs"]:
+        path = Path(item["path"])
+        if not path.exists():
+            changed.append(f"{path}: missing")
+        elif sha256_file(path) != item["sha256"]:
+            changed.append(f"{path}: SHA-256 differs from the run's record ({item['sha256'][:12]}...)")
+    if changed:
+        raise RunError(
+            f"cannot reproduce {run_dir.name}: {len(changed)} input{'s' if len(changed) > 1 else ''} changed since the run:\n"
+            + "\n".join(f"  - {c}" for c in changed)
+        )
+    cfg = config_from_dict(manifest["config_resolved"], run_dir)
+    parent = Path(out) if out is not None else run_dir.parent / "reproductions"
+    name = _free_name(parent, run_dir.name)
+    fresh = execute_run(
+        cfg, parent, argv=["creditsurv", "reproduce", str(run_dir)], name=name,
+        config_text=manifest.get("config_as_given"), progress=progress,
+    ).path
+    new_manifest = read_manifest(fresh)
+    report = compare_outputs(run_dir, fresh, manifest, new_manifest)
+    same_versions = manifest["versions"] == new_manifest["versions"]
+    lines = [f"reproduced {run_dir.name} into {fresh}"]
+    if report.all_match:
+        lines.append(f"all {report.n_outputs} outputs match byte for byte")
+        return Outcome("\n".join(lines), path=fresh)
+    lines.append(f"{len(report.mismatched)} of {report.n_outputs} outputs differ: {', '.join(report.mismatched)}")
+    if not same_versions:
+        diff = {k: (manifest["versions"].get(k), v) for k, v in new_manifest["versions"].items() if manifest["versions"].get(k) != v}
+        lines.append("package versions differ: " + ", ".join(f"{k} {a} -> {b}" for k, (a, b) in diff.items()))
+        lines.append(report.differences_text())
+        if report.max_relative_difference <= 1e-8:
+            lines.append("largest relative difference is within 1e-8: numerically the same")
+            return Outcome("\n".join(lines), path=fresh)
+    elif report.differences is not None:
+        lines.append(report.differences_text())
+    raise ReproduceMismatch("\n".join(lines))
+
+
+def _free_name(parent: Path, name: str) -> str:
+    for i in range(1, 10_000):
+        candidate = f"{name}_repro{i}"
+        if not (parent / candidate).exists():
+            return candidate
+    raise RuntimeError("no free folder name")  # pragma: no cover
+
+
+def compare_command(run_a, run_b, out=None) -> Outcome:
+    """``creditsurv compare``: the ECL walk, stage migration and PD change from run A to run B."""
+    from ._movement import compare_run_folders
+    from .runs import RunFolder, read_manifest
+
+    result = compare_run_folders(run_a, run_b)
+    a, b = read_manifest(run_a), read_manifest(run_b)
+    parent = Path(out) if out is not None else Path(run_b).parent
+    with RunFolder(parent, f"movement_{Path(run_a).name}_to_{Path(run_b).name}") as folder:
+        for file, table in result.to_tables().items():
+            folder.add_table(table, file)
+        final = folder.commit({"kind": "movement", "run_a": str(run_a), "run_b": str(run_b), "as_of_a": a["as_of"], "as_of_b": b["as_of"]})
+    walk = result.walk
+    lines = [f"ECL movement {a['as_of']} -> {b['as_of']}"]
+    for row in walk.itertuples():
+        value = row.ecl_balance if row.step in ("opening", "closing") else row.ecl_change
+        lines.append(f"  {row.step:<24} {int(row.loans):>8,} loans  {value:>18,.2f}")
+    lines.append(f"wrote {final}")
+    return Outcome("\n".join(lines), path=final)

@@ -98,7 +98,7 @@ class RunFolder:
         if name.endswith(".parquet"):
             write_table(df, target)
         elif name.endswith(".csv"):
-            df.to_csv(target, index=False, lineterminator="\n", float_format="%.10g")
+            df.to_csv(target, index=False, lineterminator="\n")
         else:  # pragma: no cover - programming error
             raise ValueError(name)
         self.outputs[name] = {"rows": int(len(df))}
@@ -158,3 +158,84 @@ def run_name(as_of: int, config_sha: str, input_hashes: list[str]) -> str:
     """``YYYY-MM_<10 hex>``: the reporting month and a short hash of config and inputs."""
     h = hashlib.sha256((config_sha + "".join(input_hashes)).encode()).hexdigest()[:10]
     return f"{format_month(as_of)}_{h}"
+
+
+def read_manifest(run_dir) -> dict:
+    """The manifest of a complete run folder (``RunError`` when there is none)."""
+    run_dir = Path(run_dir)
+    path = run_dir / MANIFEST
+    if not run_dir.is_dir():
+        raise RunError(f"{run_dir}: no such run folder")
+    if not path.exists():
+        raise RunError(f"{run_dir}: not a complete run folder (no {MANIFEST}); it may be an interrupted run")
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
+        raise RunError(f"{path}: cannot read the manifest ({exc})") from None
+
+
+@dataclass
+class OutputComparison:
+    """How the outputs of two runs compare, file by file."""
+
+    n_outputs: int
+    mismatched: list[str]
+    differences: pd.DataFrame | None = None
+
+    @property
+    def all_match(self) -> bool:
+        return not self.mismatched
+
+    @property
+    def max_relative_difference(self) -> float:
+        if self.differences is None or self.differences.empty:
+            return 0.0 if self.all_match else float("inf")
+        return float(self.differences["max_relative_difference"].max())
+
+    def differences_text(self) -> str:
+        if self.differences is None or self.differences.empty:
+            return "no numeric column differences found (the differences are in text, order or layout)"
+        lines = ["largest differences per table and column:"]
+        for r in self.differences.itertuples():
+            lines.append(f"  {r.file} {r.column}: abs {r.max_abs_difference:.3g}, rel {r.max_relative_difference:.3g}")
+        return "\n".join(lines)
+
+
+def _read_any(path: Path) -> pd.DataFrame | None:
+    if path.suffix == ".parquet":
+        return pd.read_parquet(path)
+    if path.suffix == ".csv":
+        return pd.read_csv(path)
+    return None
+
+
+def compare_outputs(dir_a: Path, dir_b: Path, manifest_a: dict, manifest_b: dict) -> OutputComparison:
+    """Compare two runs' outputs by hash; for differing tables, the largest numeric differences."""
+    a = {o["file"]: o["sha256"] for o in manifest_a["outputs"]}
+    b = {o["file"]: o["sha256"] for o in manifest_b["outputs"]}
+    names = sorted(set(a) | set(b))
+    mismatched = [n for n in names if a.get(n) != b.get(n)]
+    rows = []
+    for name in mismatched:
+        if name not in a or name not in b:
+            continue
+        ta, tb = _read_any(Path(dir_a) / name), _read_any(Path(dir_b) / name)
+        if ta is None or tb is None or len(ta) != len(tb):
+            continue
+        for col in ta.columns:
+            if col in tb.columns and pd.api.types.is_numeric_dtype(ta[col]) and pd.api.types.is_numeric_dtype(tb[col]):
+                x, y = ta[col].to_numpy(dtype=float), tb[col].to_numpy(dtype=float)
+                diff = abs(x - y)
+                diff = diff[~(pd.isna(x) & pd.isna(y))]
+                if diff.size and float(pd.Series(diff).max()) > 0:
+                    scale = pd.Series(abs(x)).clip(lower=1e-300).to_numpy()[: diff.size]
+                    rows.append(
+                        {
+                            "file": name,
+                            "column": col,
+                            "max_abs_difference": float(diff.max()),
+                            "max_relative_difference": float((diff / scale).max()),
+                        }
+                    )
+    differences = pd.DataFrame(rows, columns=["file", "column", "max_abs_difference", "max_relative_difference"])
+    return OutputComparison(len(names), mismatched, differences)

@@ -24,7 +24,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from creditsurv.config import config_from_dict
+from creditsurv.config import Config, config_from_dict
 from creditsurv.events import label_events
 from creditsurv.features import feature_spec
 from creditsurv.hazard import fit_hazard, fit_model
@@ -43,7 +43,7 @@ Z_LIMIT = 4.0
 # --------------------------------------------------------------------------- books and fits
 
 
-def _book_config(folder: Path, model: dict, *, macro: bool = True) -> object:
+def _book_config(folder: Path, model: dict, *, macro: bool = True) -> Config:
     """A config dict over a simulated book, with the column mapping of configs/demo.yaml."""
     inputs = {
         "panel": {
@@ -165,7 +165,7 @@ def test_design_is_the_true_models_terms(demo_fit, truth):
     assert results.kind == "multinomial" and results.converged
 
 
-def test_no_defaults_before_the_minimum_default_age(demo_fit, truth):
+def test_no_defaults_before_the_minimum_default_age(demo_fit):
     # Reference: truth record, mechanics.default_min_age. Dropping younger ages loses no default.
     _, early_defaults = demo_fit
     assert early_defaults == 0
@@ -202,7 +202,8 @@ def growing_fits(tmp_path_factory, demo_fit, truth):
     for n_loans, seed in GROWING_BOOKS.items():
         folder = tmp_path_factory.mktemp(f"book_{n_loans}")
         written = write_demo_book(folder, n_loans, seed)
-        assert written["loans"] == n_loans
+        own_truth = json.loads((folder / "true_parameters.json").read_text())
+        assert written["loans"] == n_loans and own_truth["hazard"] == truth["hazard"]
         fits[n_loans] = _fit_true_design(folder, min_age)[0]
     return dict(sorted(fits.items()))
 
@@ -245,30 +246,42 @@ def _convergence_problems(fits: dict, coefficients: dict) -> list[str]:
 
 
 def test_standard_errors_shrink_like_one_over_root_n(growing_fits):
-    # Reference: for i.i.d. loans the information grows like n, so SE * sqrt(n) is constant.
+    # Reference: loans are drawn independently, so the information grows like n and SE * sqrt(n) stays put.
     sizes = sorted(growing_fits)
     terms = list(growing_fits[sizes[-1]].params.index)
     scaled = pd.DataFrame({n: _stacked(growing_fits[n].bse, terms) * np.sqrt(n) for n in sizes})
     ratio = scaled.div(scaled[sizes[-1]], axis=0)
-    # Observed ratios stay within about 20% (the covariate mix of a small book varies).
-    assert ((ratio > 1 / 1.3) & (ratio < 1.3)).all().all(), ratio.round(3).to_string()
+    # Seen within 0.85..1.30 over eight seed pairs: a 5,000-loan book has only about 130
+    # defaults, so its default SEs vary with the realised count. Without the 1/sqrt(n)
+    # shrinkage the ratio would be sqrt(12) = 3.5 at 5,000 loans.
+    assert ((ratio > 1 / 1.5) & (ratio < 1.5)).all().all(), ratio.round(3).to_string()
     se_ratio = _stacked(growing_fits[sizes[0]].bse, terms) / _stacked(growing_fits[sizes[-1]].bse, terms)
     exponent = np.log(se_ratio) / np.log(sizes[-1] / sizes[0])
     assert 0.45 < np.median(exponent) < 0.55, exponent
 
 
-def test_estimates_converge_to_the_truth(growing_fits):
-    # Reference: simulate.TRUE_COEFFICIENTS as written to each book's truth record.
-    coefficients = json.loads((DEMO / "true_parameters.json").read_text())["hazard"]["coefficients"]
-    problems = _convergence_problems(growing_fits, coefficients)
+def test_estimates_converge_to_the_truth(growing_fits, truth):
+    # Reference: the truth record, the same for every book (checked in growing_fits).
+    problems = _convergence_problems(growing_fits, truth["hazard"]["coefficients"])
     assert problems == [], "\n".join(problems)
+
+
+def test_standard_errors_are_calibrated_across_books(growing_fits, truth):
+    # Reference: the three books are independent, so their Wald statistics at the truth sum
+    # to a chi-square with 3 * 16 degrees of freedom. Two-sided: standard errors that are
+    # too large (a small sum) fail as well as ones that are too small.
+    walds = [_wald(fit, truth["hazard"]["coefficients"]) for fit in growing_fits.values()]
+    dof = sum(fit.cov.shape[0] for fit in growing_fits.values())
+    assert stats.chi2.ppf(CHI2_LEVEL, dof) < sum(walds) < stats.chi2.isf(CHI2_LEVEL, dof), walds
 
 
 @pytest.mark.parametrize(
     ("cause", "term", "wrong"),
     [
         ("prepay", "rate_incentive", 0.55),  # truth 0.5: about 2 SE at 5,000 loans, 8 at 60,000
-        ("default", "credit_score", -0.009),  # truth -0.012: about 1.5 SE at 5,000 loans, 5 at 60,000
+        # truth -0.012: 1.5 SE at 5,000 loans, 5 at 60,000; the Wald statistic flags it on every
+        # book, since with a fixed intercept a score shift moves every loan's hazard.
+        ("default", "credit_score", -0.009),
     ],
 )
 def test_convergence_check_rejects_a_wrong_true_value(growing_fits, truth, cause, term, wrong):
@@ -339,6 +352,26 @@ def _psa_discrepancy(table: pd.DataFrame, multiple: float) -> pd.DataFrame:
     return out[out["expected"] >= 10]
 
 
+def _psa_problems(table: pd.DataFrame, multiple: float) -> list[str]:
+    """Everything that contradicts prepayment at ``multiple`` times PSA, as text lines.
+
+    Per age: |z| below Z_LIMIT. Over ages: the sum of z^2 below its chi-square critical
+    value (one degree of freedom per age), and the total of prepayments within Z_LIMIT
+    standard errors of the total the standard expects (the sum of z^2 has little power
+    against a speed that is off by the same factor at every age; the total has much more).
+    """
+    cmp = _psa_discrepancy(table, multiple)
+    problems = [f"age {age}: z = {z:+.2f}" for age, z in cmp["z"].items() if abs(z) >= Z_LIMIT]
+    chi2, critical = float((cmp["z"] ** 2).sum()), stats.chi2.isf(CHI2_LEVEL, len(cmp))
+    if chi2 >= critical:
+        problems.append(f"sum of z^2 over {len(cmp)} ages is {chi2:.1f} >= {critical:.1f}")
+    variance = (cmp["expected"] * (1 - cmp["standard_smm"])).sum()
+    total_z = (cmp["prepaid"].sum() - cmp["expected"].sum()) / np.sqrt(variance)
+    if abs(total_z) >= Z_LIMIT:
+        problems.append(f"total prepayments {cmp['prepaid'].sum()} against {cmp['expected'].sum():.1f} expected: z = {total_z:+.2f}")
+    return problems
+
+
 def test_psa_fit_reproduces_the_observed_rates(psa_fit):
     # Reference: a saturated binary model's MLE is the observed proportion at each age,
     # counted here from the simulated frames, not from the events stage.
@@ -354,19 +387,20 @@ def test_fitted_smm_by_age_matches_150_psa(psa_fit):
     _, table = psa_fit
     cmp = _psa_discrepancy(table, PSA_MULTIPLE)
     assert len(cmp) >= 50 and cmp.index.max() == MAX_AGE
-    assert (cmp["z"].abs() < Z_LIMIT).all(), cmp.round(5).to_string()
-    # Aggregate over ages: sum of z^2 is chi-square with one degree of freedom per age.
+    problems = _psa_problems(table, PSA_MULTIPLE)
+    assert problems == [], "\n".join(problems) + "\n" + cmp.round(5).to_string()
+
+
+def test_100_psa_is_rejected_by_the_sum_over_ages(psa_fit):
+    # Negative control: the per-age chi-square alone rejects the 100% PSA curve, far past chance.
+    _, table = psa_fit
+    cmp = _psa_discrepancy(table, 1.0)
     chi2 = float((cmp["z"] ** 2).sum())
-    assert chi2 < stats.chi2.isf(CHI2_LEVEL, len(cmp)), chi2
-    # Total prepayments against the total the standard expects (power against a level shift).
-    total_z = (cmp["prepaid"].sum() - cmp["expected"].sum()) / np.sqrt((cmp["expected"] * (1 - cmp["standard_smm"])).sum())
-    assert abs(total_z) < Z_LIMIT, total_z
+    assert chi2 > stats.chi2.isf(1e-6, len(cmp)), chi2
 
 
 @pytest.mark.parametrize("multiple", [1.0, 1.3, 1.7])
 def test_other_psa_speeds_are_rejected(psa_fit, multiple):
-    # Negative control: the same comparison against 100% PSA (and 130% / 170%) must fail.
+    # Negative control: the full comparison against 100%, 130% or 170% PSA must fail.
     _, table = psa_fit
-    cmp = _psa_discrepancy(table, multiple)
-    chi2 = float((cmp["z"] ** 2).sum())
-    assert chi2 > stats.chi2.isf(1e-6, len(cmp)), chi2
+    assert _psa_problems(table, multiple) != []

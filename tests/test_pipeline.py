@@ -135,3 +135,71 @@ def test_failure_mid_run_leaves_no_folder(small_book, tmp_path, monkeypatch):
     with pytest.raises(RuntimeError, match="injected"):
         pipeline.run_command(cfg, out=tmp_path / "runs")
     assert list((tmp_path / "runs").iterdir()) == []
+
+
+# --------------------------------------------------------------------------- reproduce and compare
+
+
+@pytest.fixture(scope="module")
+def own_book(small_book, tmp_path_factory):
+    """A private copy of the book, so a test may change an input file."""
+    folder = tmp_path_factory.mktemp("own") / "book"
+    shutil.copytree(small_book, folder)
+    return folder
+
+
+def test_two_runs_are_byte_identical_and_reproduce_exits_0(own_book, tmp_path, capsys):
+    cfg = _config(own_book, tmp_path)
+    a = pipeline.run_command(cfg, out=tmp_path / "a").path
+    b = pipeline.run_command(cfg, out=tmp_path / "b").path
+    hashes = [{o["file"]: o["sha256"] for o in json.loads((d / MANIFEST).read_text())["outputs"]} for d in (a, b)]
+    assert hashes[0] == hashes[1]
+    assert main(["reproduce", str(a), "--out", str(tmp_path / "again")]) == 0
+    assert "outputs match byte for byte" in capsys.readouterr().out
+
+    # One byte of one input changed: reproduce refuses and names the file.
+    macro = own_book / "macro_history.csv"
+    text = macro.read_bytes()
+    macro.write_bytes(text[:-2] + (b"1" if text[-2:-1] != b"1" else b"2") + text[-1:])
+    try:
+        assert main(["reproduce", str(a), "--out", str(tmp_path / "again2")]) == 1
+        err = capsys.readouterr().err
+        assert err.startswith("RunError: cannot reproduce")
+        assert f"{macro}: SHA-256 differs" in err
+        assert not (tmp_path / "again2").exists()
+    finally:
+        macro.write_bytes(text)
+
+
+def test_reproduce_reports_a_changed_output_as_a_mismatch(demo_run, tmp_path, capsys):
+    # A tampered output (row order changed) no longer matches its record: exit 3.
+    copy = tmp_path / demo_run.name
+    shutil.copytree(demo_run, copy)
+    seg = copy / "segment_summary.csv"
+    lines = seg.read_text().splitlines()
+    seg.write_text("\n".join([lines[0], *reversed(lines[1:])]) + "\n")
+    manifest = json.loads((copy / MANIFEST).read_text())
+    for o in manifest["outputs"]:
+        if o["file"] == "segment_summary.csv":
+            o["sha256"] = sha256_file(seg)
+    (copy / MANIFEST).write_text(json.dumps(manifest))
+    assert main(["reproduce", str(copy), "--out", str(tmp_path / "r")]) == 3
+    assert "segment_summary.csv" in capsys.readouterr().err
+
+
+def test_two_month_refresh_walk_reconciles_exactly(small_book, tmp_path):
+    # The month-on-month ECL walk: its parts sum to the change in total ECL.
+    cfg = _config(small_book, tmp_path)
+    with pytest.warns(DataCheckWarning):
+        prev = pipeline.run_command(cfg, as_of="2024-11", out=tmp_path / "runs").path
+    this = pipeline.run_command(cfg, out=tmp_path / "runs").path
+    outcome = pipeline.compare_command(prev, this)
+    walk = pd.read_csv(outcome.path / "movement_walk.csv")
+    a = pd.read_parquet(prev / "loan_ecl.parquet")["ecl_reported"].sum()
+    b = pd.read_parquet(this / "loan_ecl.parquet")["ecl_reported"].sum()
+    steps = walk[~walk["step"].isin(["opening", "closing"])]
+    assert steps["ecl_change"].sum() == pytest.approx(b - a, rel=1e-9, abs=1e-6)
+    assert walk.loc[walk["step"] == "closing", "ecl_balance"].item() == pytest.approx(b, rel=1e-12)
+    assert (walk.loc[walk["step"] == "closed_or_repaid", "loans"] > 0).all()
+    for name in ("stage_migration.csv", "pd_change_by_segment.csv"):
+        assert (outcome.path / name).exists()
