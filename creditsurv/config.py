@@ -390,6 +390,10 @@ class Outputs:
         default=None, metadata=_doc("folder that holds run folders; default reports/ beside the config")
     )
     csv_copies: bool = field(default=False, metadata=_doc("also write CSV copies of Parquet tables"))
+    monthly_tables: bool = field(
+        default=True,
+        metadata=_doc("write the loan-by-month tables (pd_term_structure, ecl_schedule); they are most of a run's size"),
+    )
     prior_run: FilePath | None = field(default=None, metadata=_doc("previous run folder for the movement"))
 
 

@@ -578,7 +578,7 @@ def _newton(store, names, causes, codes, kind, totals, ridge, batch_size, max_it
     K, p = len(causes), len(names)
     beta = np.zeros((K, p))
     for a, code in enumerate(codes):
-        base = totals[0] if kind == "multinomial" else totals[0]
+        base = totals[0]
         beta[a, 0] = math.log(totals[code] / base) if base > 0 else 0.0
     pen = np.tile(np.r_[0.0, np.full(p - 1, ridge)], K)
 

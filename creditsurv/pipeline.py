@@ -220,6 +220,18 @@ def _macro_series_needed(model, cfg) -> list[str]:
     return sorted(set(needed))
 
 
+class _NoWriter:
+    """Stands in for a table writer when a table is switched off."""
+
+    rows = 0
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        return None
+
+
 def project_book(cfg, panel, model, run, *, progress=None):
     """Projection, ECL and the exported tables of one run, written into ``run``."""
     import numpy as np
@@ -242,10 +254,11 @@ def project_book(cfg, panel, model, run, *, progress=None):
     )
     weights = {s.name: s.weight for s in cfg.scenarios}
     options = {"compression": "zstd"}
+    monthly = cfg.outputs.monthly_tables
     with (
-        TableWriter(run.add_file("pd_term_structure.parquet"), **options) as curves,
+        TableWriter(run.add_file("pd_term_structure.parquet"), **options) if monthly else _NoWriter() as curves,
         TableWriter(run.add_file("pd_annual_by_loan.parquet"), **options) as annual,
-        TableWriter(run.add_file("ecl_schedule.parquet"), **options) as schedule,
+        TableWriter(run.add_file("ecl_schedule.parquet"), **options) if monthly else _NoWriter() as schedule,
     ):
         result = expected_credit_loss(
             book,
@@ -261,14 +274,15 @@ def project_book(cfg, panel, model, run, *, progress=None):
             market_rate_series=cfg.collateral.market_rate_series,
             band_column=cfg.segments.band_column,
             band_edges=cfg.segments.band_edges,
-            schedule_writer=schedule,
-            curve_writer=curves,
+            schedule_writer=schedule if monthly else None,
+            curve_writer=curves if monthly else None,
             term_writer=annual,
             progress=progress,
         )
-    run.outputs["pd_term_structure.parquet"]["rows"] = curves.rows
     run.outputs["pd_annual_by_loan.parquet"]["rows"] = annual.rows
-    run.outputs["ecl_schedule.parquet"]["rows"] = schedule.rows
+    if monthly:
+        run.outputs["pd_term_structure.parquet"]["rows"] = curves.rows
+        run.outputs["ecl_schedule.parquet"]["rows"] = schedule.rows
     csv = cfg.outputs.csv_copies
     run.add_table(result.loans, "loan_ecl.parquet", csv=csv)
     run.add_table(result.segments, "segment_summary.csv")

@@ -796,8 +796,12 @@ def write_demo_book(
     cutoff: str = "2024-12",
     first_origination: str = "2016-01",
     last_origination: str = "2024-09",
+    hazard=None,
 ) -> dict:
     """Write a simulated book to ``out_dir``, chunk by chunk.
+
+    ``hazard`` replaces the true multinomial-logit hazard (see
+    :func:`simulate_book`), e.g. ``psa_hazard(1.5)``.
 
     Parquet files get one row group per chunk (zstd); memory stays bounded by
     one chunk. Files are written under temporary names and renamed into place
@@ -830,7 +834,7 @@ def write_demo_book(
             "Choose an empty folder or remove them first"
         )
     book_kw = dict(cutoff=cutoff, first_origination=first_origination, last_origination=last_origination)
-    chunks = simulate_book(n_loans, seed, chunk_size=chunk_size, **book_kw)
+    chunks = simulate_book(n_loans, seed, chunk_size=chunk_size, hazard=hazard, **book_kw)
     (out / "scenarios").mkdir(parents=True, exist_ok=True)
     temp = {f: out / f"{f}.tmp-{os.getpid()}" for f in OUTPUT_FILES}
     events = dict.fromkeys(["default", "prepay", "matured", "censored"], 0)
@@ -861,7 +865,7 @@ def write_demo_book(
                 }
             )
         )
-        truth = book_truth(n_loans, seed, chunk_size=chunk_size, **book_kw)
+        truth = book_truth(n_loans, seed, chunk_size=chunk_size, hazard=hazard, **book_kw)
         texts["true_parameters.json"] = json.dumps(truth, sort_keys=True, indent=2) + "\n"
         for name, text in texts.items():
             temp[name].write_bytes(text.encode("utf-8"))

@@ -27,13 +27,14 @@ def small_book(tmp_path_factory):
     return folder
 
 
-def _config(book: Path, tmp: Path, **model) -> Path:
+def _config(book: Path, tmp: Path, outputs=None, **model) -> Path:
     data = yaml.safe_load((ROOT / "configs" / "demo.yaml").read_text())
     for key in ("panel", "loans", "macro"):
         data["inputs"][key]["path"] = str(book / Path(data["inputs"][key]["path"]).name)
     for s in data["scenarios"]:
         s["path"] = str(book / "scenarios" / Path(s["path"]).name)
     data["outputs"]["dir"] = str(tmp / "reports")
+    data["outputs"].update(outputs or {})
     data["model"].update(model)
     path = tmp / "config.yaml"
     path.write_text(yaml.safe_dump(data, sort_keys=False))
@@ -104,12 +105,16 @@ def test_benchmark_curves_run_reports_their_own_speeds(small_book, tmp_path):
     # A run on the PSA / SDA standard's own assumptions reports those speeds back:
     # SMM = prepaid / exposure recovers the standard's SMM exactly, so the
     # equivalent multiple is the one configured.
-    cfg = _config(small_book, tmp_path, source="benchmark", psa=150.0, sda=200.0)
+    cfg = _config(small_book, tmp_path, outputs={"monthly_tables": False}, source="benchmark", psa=150.0, sda=200.0)
     outcome = pipeline.run_command(cfg)
     speeds = pd.read_csv(outcome.path / "equivalent_speeds.csv")
     np.testing.assert_allclose(speeds["psa"], 150.0, rtol=1e-9)
     np.testing.assert_allclose(speeds["sda"], 200.0, rtol=1e-9)
     assert not (outcome.path / "coefficients.csv").exists()
+    # outputs.monthly_tables: false leaves out the two loan-by-month tables.
+    assert not (outcome.path / "pd_term_structure.parquet").exists()
+    assert not (outcome.path / "ecl_schedule.parquet").exists()
+    assert (outcome.path / "loan_ecl.parquet").exists()
 
 
 def test_as_of_override_and_never_overwriting(small_book, tmp_path, capsys):
