@@ -404,6 +404,14 @@ class DuckdbSettings:
 
 
 @dataclass(frozen=True)
+class SparkSettings:
+    master: str = field(default="local[2]", metadata=_doc("Spark master URL, e.g. local[2] or spark://host:7077"))
+    app_name: str = field(default="creditsurv", metadata=_doc("Spark application name"))
+    partitions: int = field(default=8, metadata=_doc("partitions for the loan-month and loan tables", min=1))
+    settings: dict[str, str] = field(default_factory=dict, metadata=_doc("extra Spark settings (spark.* keys)"))
+
+
+@dataclass(frozen=True)
 class Checks:
     severity: dict[str, Literal["error", "warning", "off"]] = field(
         default_factory=dict, metadata=_doc("override a data check's severity by its name")
@@ -432,7 +440,11 @@ class Config:
     segments: Segments = field(default_factory=Segments, metadata=_doc("segment and grade definitions"))
     validation: ValidationSettings = field(default_factory=ValidationSettings, metadata=_doc("validation settings"))
     outputs: Outputs = field(default_factory=Outputs, metadata=_doc("where runs are written"))
+    engine: Literal["duckdb", "spark"] = field(
+        default="duckdb", metadata=_doc("where the panel, checks, events and fit run: DuckDB on one machine, or Spark")
+    )
     duckdb: DuckdbSettings = field(default_factory=DuckdbSettings, metadata=_doc("DuckDB settings"))
+    spark: SparkSettings = field(default_factory=SparkSettings, metadata=_doc("Spark settings (engine: spark)"))
     checks: Checks = field(default_factory=Checks, metadata=_doc("data-check settings"))
     seed: int = field(default=20240101, metadata=_doc("seed for every random step (bootstrap)", min=0))
     source: FilePath | None = field(default=None, init=False, compare=False, repr=False)
