@@ -34,8 +34,8 @@ def _problems(change, tmp_path) -> list[str]:
         pytest.param(
             lambda d: d.update(as_f="2021-01"),
             "as_f: unknown key (valid keys: as_of, inputs, windows, name, default_definition, events, model, "
-            "collateral, scenarios, scenario_extension, loss, staging, segments, validation, outputs, duckdb, "
-            "checks, seed); did you mean 'as_of'?",
+            "collateral, scenarios, scenario_extension, loss, staging, segments, validation, outputs, engine, "
+            "duckdb, spark, checks, seed); did you mean 'as_of'?",
             id="unknown-top-level",
         ),
         pytest.param(
