@@ -447,6 +447,9 @@ class Config:
     spark: SparkSettings = field(default_factory=SparkSettings, metadata=_doc("Spark settings (engine: spark)"))
     checks: Checks = field(default_factory=Checks, metadata=_doc("data-check settings"))
     seed: int = field(default=20240101, metadata=_doc("seed for every random step (bootstrap)", min=0))
+    synthetic_data: bool = field(
+        default=False, metadata=_doc("the inputs are synthetic (the report then says so among its cautions)")
+    )
     source: FilePath | None = field(default=None, init=False, compare=False, repr=False)
 
     def _validate(self) -> list[str]:

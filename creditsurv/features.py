@@ -48,6 +48,7 @@ term with every column of the other (``a:b``).
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import difflib
 import json
@@ -158,6 +159,28 @@ def _columns_of(con, table: str) -> list[str] | None:
         return names
     except Exception:  # noqa: BLE001 - a missing table shows up as "no columns"
         return None
+
+
+@contextlib.contextmanager
+def _one_thread(con):
+    """Run DuckDB on one thread inside the block.
+
+    A parallel sum of doubles depends on how rows fall to threads, and the
+    stored constants must be the same bits every run. Other engines (the Spark
+    connection adapter) are left as they are: their sums are reproducible for
+    a fixed partitioning and agree with DuckDB's to rounding.
+    """
+    import duckdb
+
+    if not isinstance(con, duckdb.DuckDBPyConnection):
+        yield
+        return
+    threads = con.execute("SELECT current_setting('threads')").fetchall()[0][0]
+    con.execute("SET threads = 1")
+    try:
+        yield
+    finally:
+        con.execute(f"SET threads = {int(threads)}")
 
 
 # --------------------------------------------------------------------------- the spec
@@ -406,14 +429,8 @@ class FeatureSpec:
             elif c.get("transform") == "log":
                 numeric.append((c, "log"))
                 aggs.append(f"count(*) FILTER (WHERE {x} <= 0)")
-        # One thread: a parallel sum of doubles depends on how rows fall to
-        # threads, and the stored constants must be the same bits every run.
-        threads = con.execute("SELECT current_setting('threads')").fetchall()[0][0]
-        con.execute("SET threads = 1")
-        try:
+        with _one_thread(con):
             row = con.execute(f"WITH data AS (\n{body}\n)\nSELECT {', '.join(aggs)} FROM data", list(params)).fetchall()[0]
-        finally:
-            con.execute(f"SET threads = {int(threads)}")
         n, age_min, age_max, month_min = row[:4]
         problems = []
         if not n:

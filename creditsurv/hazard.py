@@ -289,44 +289,67 @@ class _DesignStore:
 # --------------------------------------------------------------------------- the likelihood
 
 
-def _evaluate(store, beta, codes, kind, batch_size, need_hess):
-    """Log-likelihood, score (K, p) and observed information (K*p, K*p) at ``beta`` (K, p).
+def _batch_sums(X, y, w, beta, codes, kind, need_hess):
+    """Log-likelihood, score (K, p) and the upper blocks of the information of one batch.
 
-    Per-cause quantities are held as (K, n) rows so that every elementwise
-    step runs over contiguous memory; the information blocks are
-    ``X' diag(v) X`` products done by BLAS.
+    The kernel both engines share: the DuckDB engine sums it over the batches
+    of its design file, the Spark engine over the batches of each partition
+    and then over partitions. Per-cause quantities are held as (K, n) rows so
+    that every elementwise step runs over contiguous memory; the information
+    blocks are ``X' diag(v) X`` products done by BLAS. Only the blocks on and
+    above the diagonal (cause a <= cause b) are filled; :func:`_symmetric`
+    completes the matrix once all batches are summed.
     """
     K, p = beta.shape
     ll = 0.0
     g = np.zeros((K, p))
     H = np.zeros((K * p, K * p)) if need_hess else None
-    for X, y, w in store.batches(batch_size):
-        E = beta @ X.T  # (K, n)
-        Y = y[None, :] == codes[:, None]  # (K, n)
-        if kind == "multinomial":
-            m = np.maximum(E.max(axis=0), 0.0)
-            P = np.exp(E - m)
-            den = np.exp(-m) + P.sum(axis=0)
-            P /= den
-            ll += float(w @ (np.where(Y, E, 0.0).sum(axis=0) - m - np.log(den)))
-            g += ((Y - P) * w) @ X
+    E = beta @ X.T  # (K, n)
+    Y = y[None, :] == codes[:, None]  # (K, n)
+    if kind == "multinomial":
+        m = np.maximum(E.max(axis=0), 0.0)
+        P = np.exp(E - m)
+        den = np.exp(-m) + P.sum(axis=0)
+        P /= den
+        ll += float(w @ (np.where(Y, E, 0.0).sum(axis=0) - m - np.log(den)))
+        g += ((Y - P) * w) @ X
+        if need_hess:
+            for a in range(K):
+                for b in range(a, K):
+                    v = w * P[a] * ((1.0 - P[b]) if a == b else -P[b])
+                    H[a * p:(a + 1) * p, b * p:(b + 1) * p] += X.T @ (X * v[:, None])
+    else:
+        for a, code in enumerate(codes):
+            wa = w * ((y == 0) | (y == code))
+            ea = E[a]
+            P = 0.5 * (1.0 + np.tanh(0.5 * ea))  # logistic, stable for large |eta|
+            ll += float(wa @ (np.where(Y[a], ea, 0.0) - np.logaddexp(0.0, ea)))
+            g[a] += (wa * (Y[a] - P)) @ X
             if need_hess:
-                for a in range(K):
-                    for b in range(a, K):
-                        v = w * P[a] * ((1.0 - P[b]) if a == b else -P[b])
-                        H[a * p:(a + 1) * p, b * p:(b + 1) * p] += X.T @ (X * v[:, None])
-        else:
-            for a, code in enumerate(codes):
-                wa = w * ((y == 0) | (y == code))
-                ea = E[a]
-                P = 0.5 * (1.0 + np.tanh(0.5 * ea))  # logistic, stable for large |eta|
-                ll += float(wa @ (np.where(Y[a], ea, 0.0) - np.logaddexp(0.0, ea)))
-                g[a] += (wa * (Y[a] - P)) @ X
-                if need_hess:
-                    v = wa * P * (1.0 - P)
-                    H[a * p:(a + 1) * p, a * p:(a + 1) * p] += X.T @ (X * v[:, None])
+                v = wa * P * (1.0 - P)
+                H[a * p:(a + 1) * p, a * p:(a + 1) * p] += X.T @ (X * v[:, None])
+    return ll, g, H
+
+
+def _symmetric(H):
+    """The full information matrix from its summed upper blocks."""
+    return np.triu(H) + np.triu(H, 1).T
+
+
+def _evaluate(store, beta, codes, kind, batch_size, need_hess):
+    """Log-likelihood, score (K, p) and observed information (K*p, K*p) at ``beta`` (K, p)."""
+    K, p = beta.shape
+    ll = 0.0
+    g = np.zeros((K, p))
+    H = np.zeros((K * p, K * p)) if need_hess else None
+    for X, y, w in store.batches(batch_size):
+        ll_b, g_b, H_b = _batch_sums(X, y, w, beta, codes, kind, need_hess)
+        ll += ll_b
+        g += g_b
+        if need_hess:
+            H += H_b
     if need_hess:
-        H = np.triu(H) + np.triu(H, 1).T
+        H = _symmetric(H)
     return ll, g, H
 
 
@@ -445,6 +468,43 @@ def fit_hazard(
     ------
     SeparationError, SingularDesignError, ConvergenceError, ModelError
     """
+    causes, codes, dropped = _check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol)
+    if spec.learned is None:
+        spec = spec.learn(con, where_sql, params)
+    p = len(spec.columns)
+    collapse = _resolve_collapse(spec, collapse)
+    sql = _raw_sql(con, spec, where_sql, collapse)
+
+    store = _DesignStore(p, temp_dir)
+    try:
+        first = _FirstPass(p)
+        rel = con.sql(sql, params=list(params)) if params else con.sql(sql)
+        with rel.to_arrow_reader(batch_size=batch_size) as reader:
+            for batch in reader:
+                raw = {nm: batch.column(i).to_numpy(zero_copy_only=False) for i, nm in enumerate(batch.schema.names)}
+                design = _batch_design(raw, spec, collapse, dropped)
+                if design is None:
+                    continue
+                store.append(*design)
+                first.add(*design)
+        store.finish()
+
+        def evaluate(b, need_hess):
+            return _evaluate(store, b, codes, kind, batch_size, need_hess)
+
+        return _fit_from_sums(
+            evaluate, first, spec, kind=kind, causes=causes, codes=codes, ridge=ridge, max_iter=max_iter, tol=tol,
+            collapse=collapse, where_sql=where_sql, fingerprint=first.fingerprint(spec.columns),
+        )
+    finally:
+        store.close()
+
+
+# --------------------------------------------------------------------------- steps of a fit (shared by the engines)
+
+
+def _check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol):
+    """Validate the fit settings; return the causes in canonical order, their codes and the dropped codes."""
     if kind not in ("multinomial", "cause_specific"):
         raise ModelError(f"kind must be 'multinomial' or 'cause_specific', got {kind!r}")
     causes = tuple(causes)
@@ -457,125 +517,158 @@ def fit_hazard(
         raise ModelError(f"ridge must be a finite number >= 0, got {ridge}")
     if batch_size < 1 or max_iter < 1 or not tol > 0:
         raise ModelError("batch_size and max_iter must be >= 1 and tol > 0")
-    if spec.learned is None:
-        spec = spec.learn(con, where_sql, params)
-    names = spec.columns
-    p = len(names)
-    K = len(causes)
-    if collapse == "auto":
-        collapse = _is_discrete(spec)
-    elif collapse and not _is_discrete(spec):
-        raise ModelError("collapse=True needs a fully discrete design (age bands or indicators, bins, categoricals)")
+    return causes, codes, dropped
 
+
+def _resolve_collapse(spec: FeatureSpec, collapse) -> bool:
+    if collapse == "auto":
+        return _is_discrete(spec)
+    if collapse and not _is_discrete(spec):
+        raise ModelError("collapse=True needs a fully discrete design (age bands or indicators, bins, categoricals)")
+    return bool(collapse)
+
+
+def _raw_sql(con, spec: FeatureSpec, where_sql: str, collapse: bool) -> str:
+    """The raw-input query of the fit; with ``collapse``, grouped to covariate-pattern counts."""
     sql = spec.raw_query(con, where_sql, order=not collapse)
     if collapse:
         keys = [i.key for i in spec.inputs() if i.key != "log_age"]
         group = ", ".join(quote_ident(k) for k in ["age", "outcome", *keys])
         sql = f"WITH data AS (\n{sql}\n)\nSELECT {group}, count(*) AS \"_cs_weight\"\nFROM data\nGROUP BY ALL\nORDER BY ALL"
+    return sql
 
-    store = _DesignStore(p, temp_dir)
-    try:
+
+def _batch_design(raw: dict, spec: FeatureSpec, collapse: bool, dropped):
+    """Design ``X``, outcomes ``y`` (int8) and weights ``w`` of one batch of raw rows, or None if empty."""
+    y = np.asarray(raw["outcome"])
+    if y.dtype.kind == "f" and np.isnan(y).any() or not np.isin(y, (0, 1, 2)).all():
+        bad = sorted(set(np.unique(y[~np.isin(y, (0, 1, 2))]).tolist()))[:5]
+        raise DataError(f"loan_months.outcome must be 0, 1 or 2; found {bad}")
+    y = y.astype(np.int8)
+    w = np.asarray(raw["_cs_weight"], dtype=np.float64) if collapse else np.ones(y.shape[0])
+    if dropped:
+        keep = ~np.isin(y, dropped)
+        raw = {k: v[keep] for k, v in raw.items()}
+        y, w = y[keep], w[keep]
+    if y.shape[0] == 0:
+        return None
+    X, _ = spec.design(raw)
+    return X, y, w
+
+
+class _FirstPass:
+    """Sums of the first pass over the design: events by column, X'WX, 0/1 columns, fingerprint."""
+
+    def __init__(self, p: int):
         # One hash per stream so that the fingerprint does not depend on batch boundaries.
-        digests = {k: hashlib.sha256() for k in ("X", "y", "w")}
-        S = np.zeros((p, 3))
-        xtx = np.zeros((p, p))
-        is01 = np.ones(p, dtype=bool)
-        rel = con.sql(sql, params=list(params)) if params else con.sql(sql)
-        with rel.to_arrow_reader(batch_size=batch_size) as reader:
-            for batch in reader:
-                raw = {nm: batch.column(i).to_numpy(zero_copy_only=False) for i, nm in enumerate(batch.schema.names)}
-                y = np.asarray(raw["outcome"])
-                if y.dtype.kind == "f" and np.isnan(y).any() or not np.isin(y, (0, 1, 2)).all():
-                    bad = sorted(set(np.unique(y[~np.isin(y, (0, 1, 2))]).tolist()))[:5]
-                    raise DataError(f"loan_months.outcome must be 0, 1 or 2; found {bad}")
-                y = y.astype(np.int8)
-                w = np.asarray(raw["_cs_weight"], dtype=np.float64) if collapse else np.ones(y.shape[0])
-                if dropped:
-                    keep = ~np.isin(y, dropped)
-                    raw = {k: v[keep] for k, v in raw.items()}
-                    y, w = y[keep], w[keep]
-                if y.shape[0] == 0:
-                    continue
-                X, _ = spec.design(raw)
-                store.append(X, y, w)
-                digests["X"].update(np.ascontiguousarray(X).tobytes())
-                digests["y"].update(y.tobytes())
-                digests["w"].update(w.tobytes())
-                onehot = (y[:, None] == np.arange(3)[None, :]) * w[:, None]
-                S += X.T @ onehot
-                xtx += (X * w[:, None]).T @ X
-                is01 &= ((X == 0) | (X == 1)).all(axis=0)
-        store.finish()
-        if store.n == 0:
-            raise ModelError(f"no loan-months to fit (filter: {where_sql})")
-        totals = S[0]
-        n_rows = int(round(totals.sum()))
-        events = {c: int(round(totals[code])) for c, code in zip(causes, codes)}
+        self.digests = {k: hashlib.sha256() for k in ("X", "y", "w")}
+        self.S = np.zeros((p, 3))
+        self.xtx = np.zeros((p, p))
+        self.is01 = np.ones(p, dtype=bool)
+        self.n = 0
 
-        groups = _singular_columns(xtx, names)
-        if groups:
-            text = "; ".join(
-                f"column {g[0]!r} is zero in every row" if len(g) == 1 else "columns " + ", ".join(repr(x) for x in g) + " are collinear"
-                for g in groups
-            )
-            raise SingularDesignError(
-                f"the design is singular: {text}. Drop one of the collinear terms, merge levels or bands, or change the reference level"
-            )
-        missing = [c for c in causes if events[c] == 0]
-        if missing:
-            raise SeparationError(f"no {', '.join(missing)} events in the {n_rows:,} loan-months; remove the cause from causes or widen the data")
-        if ridge == 0:
-            problems = _separation_problems(S, is01, names, spec.indicator_groups(), causes, codes, kind)
-            if problems:
-                raise SeparationError("quasi-complete separation:\n" + "\n".join(f"  - {t}" for t in problems))
-        for c in causes:
-            if events[c] < _MIN_EVENTS_PER_PARAMETER * p:
-                warnings.warn(
-                    FewEventsWarning(
-                        f"{c}: {events[c]:,} events for {p} parameters ({events[c] / p:.1f} per parameter, "
-                        f"fewer than {_MIN_EVENTS_PER_PARAMETER}); estimates may be unstable"
-                    ),
-                    stacklevel=2,
-                )
+    def add(self, X, y, w) -> None:
+        self.digests["X"].update(np.ascontiguousarray(X).tobytes())
+        self.digests["y"].update(y.tobytes())
+        self.digests["w"].update(w.tobytes())
+        onehot = (y[:, None] == np.arange(3)[None, :]) * w[:, None]
+        self.S += X.T @ onehot
+        self.xtx += (X * w[:, None]).T @ X
+        self.is01 &= ((X == 0) | (X == 1)).all(axis=0)
+        self.n += X.shape[0]
 
-        beta, ll, H, log, converged = _newton(store, names, causes, codes, kind, totals, ridge, batch_size, max_iter, tol)
-        pen = np.tile(np.r_[0.0, np.full(p - 1, ridge)], K)
-        try:
-            cov = linalg.inv(H + np.diag(pen))
-        except linalg.LinAlgError:
-            raise SingularDesignError("the information matrix at the estimates is singular; fit with ridge > 0 or drop terms") from None
-        cov = 0.5 * (cov + cov.T)
-        se = np.sqrt(np.clip(np.diag(cov), 0.0, None)).reshape(K, p)
-        k_par = K * p
-        return HazardResults(
-            params=pd.DataFrame(beta.T, index=names, columns=list(causes)),
-            bse=pd.DataFrame(se.T, index=names, columns=list(causes)),
-            cov=cov,
-            loglik=ll,
-            aic=-2 * ll + 2 * k_par,
-            bic=-2 * ll + k_par * math.log(n_rows),
-            n_rows=n_rows,
-            events=events,
-            iterations=len(log) - 1,
-            converged=converged,
-            kind=kind,
-            ridge=float(ridge),
-            causes=causes,
-            spec=spec,
-            data_fingerprint=hashlib.sha256(
-                f"creditsurv-design|{store.n}|{'|'.join(names)}|".encode()
-                + "|".join(d.hexdigest() for d in digests.values()).encode()
-            ).hexdigest(),
-            iteration_log=log,
-            collapsed=bool(collapse),
-            n_stored_rows=store.n,
+    def stream_digests(self) -> list[str]:
+        return [d.hexdigest() for d in self.digests.values()]
+
+    def fingerprint(self, names) -> str:
+        return _fingerprint(self.n, names, self.stream_digests())
+
+
+def _fingerprint(n: int, names, digests) -> str:
+    return hashlib.sha256(f"creditsurv-design|{n}|{'|'.join(names)}|".encode() + "|".join(digests).encode()).hexdigest()
+
+
+def _fit_from_sums(evaluate, first, spec, *, kind, causes, codes, ridge, max_iter, tol, collapse, where_sql, fingerprint):
+    """Checks on the first-pass sums, the Newton iterations and the results object.
+
+    ``first`` holds ``S``, ``xtx``, ``is01`` and ``n`` summed over all the data;
+    ``evaluate`` is the engine's likelihood pass (see :func:`_newton`).
+    """
+    names = spec.columns
+    p, K = len(names), len(causes)
+    if first.n == 0:
+        raise ModelError(f"no loan-months to fit (filter: {where_sql})")
+    S = first.S
+    totals = S[0]
+    n_rows = int(round(totals.sum()))
+    events = {c: int(round(totals[code])) for c, code in zip(causes, codes)}
+
+    groups = _singular_columns(first.xtx, names)
+    if groups:
+        text = "; ".join(
+            f"column {g[0]!r} is zero in every row" if len(g) == 1 else "columns " + ", ".join(repr(x) for x in g) + " are collinear"
+            for g in groups
         )
-    finally:
-        store.close()
+        raise SingularDesignError(
+            f"the design is singular: {text}. Drop one of the collinear terms, merge levels or bands, or change the reference level"
+        )
+    missing = [c for c in causes if events[c] == 0]
+    if missing:
+        raise SeparationError(f"no {', '.join(missing)} events in the {n_rows:,} loan-months; remove the cause from causes or widen the data")
+    if ridge == 0:
+        problems = _separation_problems(S, first.is01, names, spec.indicator_groups(), causes, codes, kind)
+        if problems:
+            raise SeparationError("quasi-complete separation:\n" + "\n".join(f"  - {t}" for t in problems))
+    for c in causes:
+        if events[c] < _MIN_EVENTS_PER_PARAMETER * p:
+            warnings.warn(
+                FewEventsWarning(
+                    f"{c}: {events[c]:,} events for {p} parameters ({events[c] / p:.1f} per parameter, "
+                    f"fewer than {_MIN_EVENTS_PER_PARAMETER}); estimates may be unstable"
+                ),
+                stacklevel=3,
+            )
+
+    beta, ll, H, log, converged = _newton(evaluate, p, codes, totals, ridge, max_iter, tol)
+    pen = np.tile(np.r_[0.0, np.full(p - 1, ridge)], K)
+    try:
+        cov = linalg.inv(H + np.diag(pen))
+    except linalg.LinAlgError:
+        raise SingularDesignError("the information matrix at the estimates is singular; fit with ridge > 0 or drop terms") from None
+    cov = 0.5 * (cov + cov.T)
+    se = np.sqrt(np.clip(np.diag(cov), 0.0, None)).reshape(K, p)
+    k_par = K * p
+    return HazardResults(
+        params=pd.DataFrame(beta.T, index=names, columns=list(causes)),
+        bse=pd.DataFrame(se.T, index=names, columns=list(causes)),
+        cov=cov,
+        loglik=ll,
+        aic=-2 * ll + 2 * k_par,
+        bic=-2 * ll + k_par * math.log(n_rows),
+        n_rows=n_rows,
+        events=events,
+        iterations=len(log) - 1,
+        converged=converged,
+        kind=kind,
+        ridge=float(ridge),
+        causes=causes,
+        spec=spec,
+        data_fingerprint=fingerprint,
+        iteration_log=log,
+        collapsed=bool(collapse),
+        n_stored_rows=first.n,
+    )
 
 
-def _newton(store, names, causes, codes, kind, totals, ridge, batch_size, max_iter, tol):
-    K, p = len(causes), len(names)
+def _newton(evaluate, p, codes, totals, ridge, max_iter, tol):
+    """Newton-Raphson with step halving on the penalised log-likelihood.
+
+    ``evaluate(beta, need_hess)`` returns the log-likelihood, score and
+    information at ``beta`` (K, p); it is the only part that touches the data,
+    so each engine passes its own (a loop over batches, or a Spark job over
+    partitions) and the iteration itself is shared.
+    """
+    K = len(codes)
     beta = np.zeros((K, p))
     for a, code in enumerate(codes):
         base = totals[0]
@@ -585,7 +678,7 @@ def _newton(store, names, causes, codes, kind, totals, ridge, batch_size, max_it
     def objective(ll, b):
         return ll - 0.5 * float(pen @ (b.ravel() ** 2))
 
-    ll, g, H = _evaluate(store, beta, codes, kind, batch_size, True)
+    ll, g, H = evaluate(beta, True)
     obj = objective(ll, beta)
     log = [{"iteration": 0, "loglik": ll, "max_step": None, "step_fraction": None}]
     for it in range(1, max_iter + 1):
@@ -601,7 +694,7 @@ def _newton(store, names, causes, codes, kind, totals, ridge, batch_size, max_it
         step = step.reshape(K, p)
         t = 1.0
         new = beta + step
-        ll_new, g_new, H_new = _evaluate(store, new, codes, kind, batch_size, True)
+        ll_new, g_new, H_new = evaluate(new, True)
         obj_new = objective(ll_new, new)
         slack = 1e-12 * max(1.0, abs(obj))
         while not (obj_new >= obj - slack):
@@ -609,7 +702,7 @@ def _newton(store, names, causes, codes, kind, totals, ridge, batch_size, max_it
             if t < 1e-10:
                 break
             new = beta + t * step
-            ll_new, _, _ = _evaluate(store, new, codes, kind, batch_size, False)
+            ll_new, _, _ = evaluate(new, False)
             obj_new = objective(ll_new, new)
             H_new = None
         max_step = float(np.max(np.abs(t * step)))
@@ -619,7 +712,7 @@ def _newton(store, names, causes, codes, kind, totals, ridge, batch_size, max_it
                 return beta, ll, H, log, True
             raise _convergence_error("the line search could not increase the log-likelihood", log)
         if H_new is None:
-            ll_new, g_new, H_new = _evaluate(store, new, codes, kind, batch_size, True)
+            ll_new, g_new, H_new = evaluate(new, True)
         log.append({"iteration": it, "loglik": ll_new, "max_step": max_step, "step_fraction": t})
         change = abs(obj_new - obj)
         beta, ll, g, H, obj = new, ll_new, g_new, H_new, obj_new

@@ -719,21 +719,24 @@ SELECT (SELECT count(*) FROM offending) AS n,
              FROM (SELECT * FROM offending ORDER BY {order} LIMIT 5) AS e) AS VARCHAR) AS examples"""
 
 
-def run_checks(panel: Panel) -> pd.DataFrame:
-    """Run every data check on ``panel``.
+@dataclasses.dataclass(frozen=True)
+class _PlannedCheck:
+    """One check as it runs on a given config and set of sources (engine-neutral)."""
 
-    Returns
-    -------
-    pandas.DataFrame
-        One row per check in a stable order with columns ``check``,
-        ``severity`` ('error', 'warning' or 'off'), ``count`` (offending rows,
-        loan-months, loans or months; 0 when off), ``examples`` (JSON text of up
-        to five offending rows ordered by loan id and month), ``source`` (input
-        path), ``columns`` (internal and source names involved) and
-        ``description``. The same table is stored in DuckDB as ``data_checks``.
+    check: Check
+    severity: Severity
+    source: str
+    columns: str
+    sql: str  # the CTE list after WITH, placeholders filled
+    params: dict  # the $-parameters the SQL uses
+    order: str  # ORDER BY of the examples
+
+
+def _plan_checks(cfg: Config, srcs: dict) -> list[_PlannedCheck]:
+    """The checks that apply to ``srcs``, with severity, labels, SQL and parameters.
+
+    Shared by the engines: each runs ``WITH {sql} ...`` in its own dialect.
     """
-    cfg = panel.cfg
-    srcs = panel._sources
     used = _macro_series_used(cfg)
     max_lag = max((lag for _k, _s, lag in used), default=0)
     params = {
@@ -742,7 +745,7 @@ def run_checks(panel: Panel) -> pd.DataFrame:
         "first_macro": int(cfg.windows.development.start) - max_lag,
     }
     series = sorted({s for _k, s, _l in used})
-    rows = []
+    plans = []
     for check in CHECKS:
         if check.table not in srcs:
             continue
@@ -759,18 +762,47 @@ def run_checks(panel: Panel) -> pd.DataFrame:
             columns = ", ".join(series)
             sql = sql.replace("{series_columns}", ", ".join(quote_ident(s) for s in series))
             sql = sql.replace("{series_null}", " OR ".join(f"{quote_ident(s)} IS NULL" for s in series))
+        wanted = {k: v for k, v in params.items() if f"${k}" in sql}
+        order = "ALL" if check.table != "macro" else "month"
+        plans.append(_PlannedCheck(check, severity, source, columns, sql, wanted, order))
+    return plans
+
+
+def _check_frame(plans: list[_PlannedCheck], results: list[tuple[int, str]]) -> pd.DataFrame:
+    """The check table from the plans and each check's ``(count, examples)``."""
+    rows = [
+        [pl.check.name, pl.severity, int(count), examples, pl.source, pl.columns, pl.check.description]
+        for pl, (count, examples) in zip(plans, results)
+    ]
+    return pd.DataFrame(rows, columns=_CHECK_COLUMNS).astype({"count": "int64"})
+
+
+def run_checks(panel: Panel) -> pd.DataFrame:
+    """Run every data check on ``panel``.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per check in a stable order with columns ``check``,
+        ``severity`` ('error', 'warning' or 'off'), ``count`` (offending rows,
+        loan-months, loans or months; 0 when off), ``examples`` (JSON text of up
+        to five offending rows ordered by loan id and month), ``source`` (input
+        path), ``columns`` (internal and source names involved) and
+        ``description``. The same table is stored in DuckDB as ``data_checks``.
+    """
+    plans = _plan_checks(panel.cfg, panel._sources)
+    results = []
+    for pl in plans:
         count, examples = 0, "[]"
-        if severity != "off":
-            wanted = {k: v for k, v in params.items() if f"${k}" in sql}
-            order = "ALL" if check.table != "macro" else "month"
+        if pl.severity != "off":
             try:
                 ((count, examples),) = panel.con.execute(
-                    _check_sql(dataclasses.replace(check, sql=sql), order), wanted
+                    _check_sql(dataclasses.replace(pl.check, sql=pl.sql), pl.order), pl.params
                 ).fetchall()
             except duckdb.Error as exc:
-                raise DataError(f"data check {check.name} on {source} failed: {_duck_message(exc)}") from None
-        rows.append([check.name, severity, int(count), examples, source, columns, check.description])
-    result = pd.DataFrame(rows, columns=_CHECK_COLUMNS).astype({"count": "int64"})
+                raise DataError(f"data check {pl.check.name} on {pl.source} failed: {_duck_message(exc)}") from None
+        results.append((count, examples))
+    result = _check_frame(plans, results)
     _store_checks(panel, result)
     return result
 

@@ -238,7 +238,7 @@ def project_book(cfg, panel, model, run, *, progress=None):
 
     from .events import book_at_as_of
     from .loss import expected_credit_loss
-    from .projection import TableWriter, prepare_paths, segment_pd_tables
+    from .projection import TableWriter, prepare_paths, segment_level, segment_pd_tables, segment_speeds
 
     book = book_at_as_of(panel, cfg.segments.column)
     history = _macro_history(panel)
@@ -291,6 +291,12 @@ def project_book(cfg, panel, model, run, *, progress=None):
     run.add_table(wide, "segment_pd_matrix.csv")
     run.add_table(result.projection.speeds, "segment_speeds.csv")
     run.add_table(result.projection.speed_multiples, "equivalent_speeds.csv")
+    report_tables = {
+        "loan_ecl": result.loans,
+        "segment_summary": result.segments,
+        "segment_pd_table": segment_level(tidy),
+    }
+    report_tables["segment_speeds"], report_tables["equivalent_speeds"] = segment_speeds(result.projection.speeds)
     totals = {
         "loans": int(len(result.loans)),
         "ead": float(np.sum(result.loans["ead"])),
@@ -299,7 +305,7 @@ def project_book(cfg, panel, model, run, *, progress=None):
             int(k): float(v) for k, v in result.loans.groupby("stage")["ecl_reported"].sum().items()
         },
     }
-    return result, tidy, totals
+    return result, report_tables, totals
 
 
 def _describe_source(model) -> str:
@@ -321,11 +327,15 @@ def _say(progress, text: str) -> None:
         progress(text, None, None)
 
 
-def execute_run(cfg, parent: Path, *, argv=None, name: str | None = None, config_text: str | None = None, progress=None) -> Outcome:
+def execute_run(
+    cfg, parent: Path, *, argv=None, name: str | None = None, config_text: str | None = None, progress=None
+) -> Outcome:
     """Run the monthly job of ``cfg`` into a new folder under ``parent``.
 
-    ``name`` overrides the folder name (``YYYY-MM_<hash of config and inputs>``);
-    ``config_text`` the config text recorded as given (default: the config file's).
+    ``name`` overrides the folder name; the run id stays ``YYYY-MM_<hash of
+    config and inputs>``, so a reproduction carries the id of the run it
+    reproduces. ``config_text`` is the config text recorded as given (default:
+    the config file's).
     """
     import shutil
 
@@ -342,8 +352,8 @@ def execute_run(cfg, parent: Path, *, argv=None, name: str | None = None, config
         manifest = _manifest_start(cfg, panel, argv, "run")
         if config_text is not None:
             manifest["config_as_given"] = config_text
-        folder = name or manifest["run_id"].removeprefix("run_")
-        manifest["run_id"] = folder
+        manifest["run_id"] = manifest["run_id"].removeprefix("run_")
+        folder = name or manifest["run_id"]
         with RunFolder(parent, folder) as run:
             work = run.path / "_work"
             work.mkdir()
@@ -357,17 +367,26 @@ def execute_run(cfg, parent: Path, *, argv=None, name: str | None = None, config
             run.add_table(event_counts(panel), "event_counts.csv")
             _say(progress, "projection and ECL")
             chunk_progress = (lambda done, total: progress("projection and ECL", done, total)) if progress else None
-            result, segment_pd, totals = project_book(cfg, panel, model, run, progress=chunk_progress)
+            result, report_tables, totals = project_book(cfg, panel, model, run, progress=chunk_progress)
+            report_tables["data_checks"] = checks
+            report_tables["event_counts"] = event_counts(panel)
+            if hasattr(model, "summary"):
+                report_tables["coefficients"] = model.summary()
             manifest["model"] = _model_summary(model)
             manifest["data_check_warnings"] = _fired_warnings(checks)
             manifest["scenario_weights"] = {s.name: s.weight for s in cfg.scenarios}
             manifest["totals"] = totals
+            _validate_run(cfg, panel, model, result, run, manifest, report_tables, progress)
             if cfg.outputs.prior_run is not None:
                 _say(progress, "movement against the prior run")
                 movement = _movement_against(cfg.outputs.prior_run, result.loans, manifest["scenario_weights"])
                 for file, table in movement.to_tables().items():
                     run.add_table(table, file)
+                report_tables["movement_walk"] = movement.walk
+                report_tables["stage_migration"] = movement.migration_matrix("loans").reset_index()
                 manifest["prior_run"] = str(cfg.outputs.prior_run)
+            _say(progress, "report")
+            _write_report(run, cfg, manifest, report_tables)
             final = run.commit(manifest)
     stage = ", ".join(f"stage {k}: {v:,.2f}" for k, v in totals["by_stage"].items())
     text = (
@@ -377,6 +396,51 @@ def execute_run(cfg, parent: Path, *, argv=None, name: str | None = None, config
         f"wrote {final}"
     )
     return Outcome(text, path=final)
+
+
+_REPORTED_VALIDATION = ("discrimination", "calibration", "stability", "coefficient_changes", "incidence_by_vintage", "hazard_by_age")
+
+
+def _validate_run(cfg, panel, model, result, run, manifest: dict, report_tables: dict, progress) -> None:
+    """The validation pack: tables under ``validation/``, summary in the manifest and report."""
+    from .validation import validation_pack
+
+    _say(progress, "validation")
+    live = (result.loans["stage"] != 3).to_numpy()
+    pack = validation_pack(cfg, panel, model, current_pd_12m=result.loans.loc[live, "pd_12m"].to_numpy())
+    for name, table in pack.tables.items():
+        suffix = ".parquet" if name == "development_cohort" else ".csv"
+        run.add_table(table, f"validation/{name}{suffix}")
+    manifest["validation"] = pack.summary
+    if "calibration" in pack.summary:
+        manifest["calibration"] = pack.summary["calibration"]
+    report_tables.update({k: v for k, v in pack.tables.items() if k in _REPORTED_VALIDATION})
+    if "backtest_by_month" in pack.tables:
+        report_tables["backtest"] = pack.tables["backtest_by_month"]
+
+
+def _write_report(run, cfg, manifest: dict, tables: dict) -> None:
+    """``report.html``: the run's tables and record in one self-contained page.
+
+    The creation time is left out of the page (it is in the manifest) so that
+    the same inputs give the same bytes.
+    """
+    from .report import write_report
+
+    meta = {
+        "run_id": manifest["run_id"],
+        "as_of": manifest["as_of"],
+        "config_name": cfg.name,
+        "versions": manifest["versions"],
+        "model": manifest.get("model"),
+        "scenario_weights": manifest.get("scenario_weights"),
+        "inputs": manifest.get("inputs"),
+        "config_sha256": manifest["config_sha256"],
+        "seed": manifest["seed"],
+        "synthetic": cfg.synthetic_data,
+        **{k: v for k, v in manifest.items() if k in ("calibration",)},
+    }
+    write_report(run.add_file("report.html"), tables, meta)
 
 
 def _movement_against(prior_run: Path, loans_b, weights_b):

@@ -1240,3 +1240,51 @@ def segment_pd_tables(term_structure: pd.DataFrame) -> tuple[pd.DataFrame, pd.Da
     )
     wide.columns = [f"year_{int(y)}" for y in wide.columns]
     return tidy, wide.reset_index()
+
+
+def segment_level(tidy: pd.DataFrame) -> pd.DataFrame:
+    """The tidy PD table of :func:`segment_pd_tables` pooled over bands, by segment.
+
+    Cumulative PD and survival are pooled with each band's weight (loans for
+    ``count``, balance for ``balance``); the conditional PD of a year is then
+    recomputed from the pooled curves, (F(y) - F(y-1)) / S(y-1).
+    """
+    keys = ["segment", "scenario", "weighting", "year"]
+    w = np.where(tidy["weighting"] == "count", tidy["n_loans"], tidy["balance"]).astype(float)
+    frame = tidy.assign(_w=w, _f=w * tidy["cumulative_pd"], _s=w * tidy["survival"])
+    g = frame.groupby(keys, sort=True, observed=True)[["_w", "_f", "_s", "n_loans", "balance"]].sum().reset_index()
+    g["cumulative_pd"] = np.where(g["_w"] > 0, g["_f"] / g["_w"].where(g["_w"] > 0, 1.0), 0.0)
+    g["survival"] = np.where(g["_w"] > 0, g["_s"] / g["_w"].where(g["_w"] > 0, 1.0), 0.0)
+    prev = g.groupby(keys[:3], sort=False)[["cumulative_pd", "survival"]].shift(1)
+    f_prev = prev["cumulative_pd"].fillna(0.0)
+    s_prev = prev["survival"].fillna(1.0)
+    g["conditional_pd"] = np.where(s_prev > 0, (g["cumulative_pd"] - f_prev) / s_prev.where(s_prev > 0, 1.0), 0.0)
+    return g[keys + ["n_loans", "balance", "cumulative_pd", "conditional_pd", "survival"]]
+
+
+def segment_speeds(speeds: pd.DataFrame, scenario: str = WEIGHTED) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Model-implied speeds of each segment (bands pooled) for one scenario.
+
+    Returns the speeds by segment and loan age (``smm``, ``cpr``, ``mdr``,
+    ``cdr`` from the pooled expected balances) and the equivalent % PSA and %
+    SDA of each segment (exposure-weighted least squares in CPR / CDR units).
+    """
+    from .speeds import equivalent_psa, equivalent_sda, mdr_to_cdr, smm_to_cpr
+
+    sub = speeds[speeds["scenario"] == scenario]
+    cols = ["default_exposure", "defaulted", "prepay_exposure", "prepaid"]
+    g = sub.groupby(["segment", "loan_age"], sort=True, observed=True)[cols].sum().reset_index()
+    g["mdr"] = np.where(g["default_exposure"] > 0, g["defaulted"] / g["default_exposure"].where(g["default_exposure"] > 0, 1.0), 0.0)
+    g["smm"] = np.where(g["prepay_exposure"] > 0, g["prepaid"] / g["prepay_exposure"].where(g["prepay_exposure"] > 0, 1.0), 0.0)
+    g["cdr"] = mdr_to_cdr(g["mdr"].to_numpy())
+    g["cpr"] = smm_to_cpr(g["smm"].to_numpy())
+    rows = []
+    for seg, d in g.groupby("segment", sort=True, observed=True):
+        rows.append(
+            {
+                "segment": seg,
+                "psa": equivalent_psa(d["loan_age"].to_numpy(), d["cpr"].to_numpy(), d["prepay_exposure"].to_numpy()),
+                "sda": equivalent_sda(d["loan_age"].to_numpy(), d["cdr"].to_numpy(), d["default_exposure"].to_numpy()),
+            }
+        )
+    return g.rename(columns={"loan_age": "age"}), pd.DataFrame(rows, columns=["segment", "psa", "sda"])

@@ -1,8 +1,10 @@
 """Validation statistics: backtest, discrimination, calibration, stability, curves.
 
-Every function here is pure and works on plain arrays or DataFrames that the
-pipeline has already read from DuckDB; nothing here touches the panel, the
-config or the model artifact.  Tables are tidy frames with stable column
+The statistics are pure and work on plain arrays or DataFrames that the
+pipeline has already read from DuckDB; they never touch the panel, the config
+or the model artifact. The last section, the validation pack
+(:func:`validation_pack`), is the one place that reads the labelled panel and
+projects with the model, then hands plain arrays to those statistics.  Tables are tidy frames with stable column
 names; interval bounds carry the suffixes ``_lo`` and ``_hi`` and standard
 errors ``_se``.
 
@@ -44,6 +46,10 @@ __all__ = [
     "coefficient_changes",
     "aalen_johansen",
     "model_vs_nonparametric",
+    "PACK_COLUMNS",
+    "ValidationPack",
+    "input_stability",
+    "validation_pack",
 ]
 
 CAUSES = {1: "default", 2: "prepay"}
@@ -1073,7 +1079,8 @@ def _realised_path(panel, as_of_idx: int, until_idx: int) -> pd.DataFrame:
 
 def _has_view(panel, name: str) -> bool:
     rows = panel.con.execute(
-        "SELECT 1 FROM duckdb_views() WHERE view_name = $n UNION ALL SELECT 1 FROM duckdb_tables() WHERE table_name = $n",
+        "SELECT 1 FROM duckdb_views() WHERE view_name = $n\n"
+        "UNION ALL SELECT 1 FROM duckdb_tables() WHERE table_name = $n",
         {"n": name},
     ).fetchall()
     return bool(rows)
@@ -1113,7 +1120,7 @@ def _cohort(cfg, panel, month: int, notes: list) -> pd.DataFrame:
         f"WITH {_ALIVE_AT}\nSELECT {_loan_columns(panel)}, a.age, a.balance, 'all' AS segment\n"
         "FROM alive AS a JOIN loans AS l USING (loan_id)\nORDER BY loan_id",
         params,
-    )
+    ).sort_values("loan_id", kind="stable", ignore_index=True)  # the order project_loans uses
     past = (frame["age"] >= frame["term"]).to_numpy()
     if past.any():
         notes.append(f"{int(past.sum())} loans alive at {_fmt_month(month)} at or past their term were left out")
@@ -1128,34 +1135,56 @@ def _fmt_month(idx: int) -> str:
 
 
 def _project_cohort(cfg, model, cohort, path, month: int, window, chunk_size: int):
-    """12-month PD of every cohort loan, and the hazards of the months ahead in ``window``."""
+    """12-month PD of every cohort loan, and the hazards of the months ahead in ``window``.
+
+    Only the first ``max(12, window end)`` months ahead are read, so the loans
+    are projected in groups of similar age with the model cut off (hazards 0)
+    past the oldest age of the group that is needed: the curves up to that
+    horizon are exact and nothing past it is evaluated.
+    """
     from .projection import project_loans
 
     a0, a1 = window if window is not None else (1, 0)
     width = max(a1 - a0 + 1, 0)
+    horizon = max(12, a1)
     n = len(cohort)
     hd_grid = np.full((n, width), np.nan)
     hp_grid = np.full((n, width), np.nan)
-
-    def keep(chunk):
-        if width == 0:
-            return
-        H = chunk.mask.shape[1]
-        hi = min(a1, H)
-        if hi < a0:
-            return
-        cols = slice(a0 - 1, hi)
-        m = chunk.mask[:, cols]
-        hd_grid[chunk.rows, : hi - a0 + 1] = np.where(m, chunk.h_default[REALISED][:, cols], np.nan)
-        hp_grid[chunk.rows, : hi - a0 + 1] = np.where(m, chunk.h_prepay[REALISED][:, cols], np.nan)
-
     band_column = cfg.segments.band_column if cfg.segments.band_column in cohort.columns else None
-    result = project_loans(
-        cohort, model, {REALISED: path}, as_of_idx=int(month), weights={REALISED: 1.0}, chunk_size=chunk_size,
-        band_column=band_column, band_edges=cfg.segments.band_edges if band_column else (),
-        on_chunk=keep, **_projection_options(cfg),
-    )
-    return result.loans, hd_grid, hp_grid
+    age = cohort["age"].to_numpy(dtype=np.int64)
+    parts = []
+    for _, rows in pd.Series(age // 12).groupby(age // 12, sort=True).indices.items():
+        group = cohort.iloc[rows]
+        where = np.asarray(rows)  # the group keeps the cohort's loan_id order
+
+        def keep(chunk, where=where):
+            if width == 0:
+                return
+            H = chunk.mask.shape[1]
+            hi = min(a1, H)
+            if hi < a0:
+                return
+            cols = slice(a0 - 1, hi)
+            m = chunk.mask[:, cols]
+            at = where[chunk.rows]
+            hd_grid[at, : hi - a0 + 1] = np.where(m, chunk.h_default[REALISED][:, cols], np.nan)
+            hp_grid[at, : hi - a0 + 1] = np.where(m, chunk.h_prepay[REALISED][:, cols], np.nan)
+
+        result = project_loans(
+            group, _UpToAge(model, int(group["age"].max()) + horizon), {REALISED: path}, as_of_idx=int(month),
+            weights={REALISED: 1.0}, chunk_size=chunk_size, band_column=band_column,
+            band_edges=cfg.segments.band_edges if band_column else (), on_chunk=keep, **_projection_options(cfg),
+        )
+        parts.append(result.loans[["loan_id", "age", "band", f"pd_12m_{REALISED}"]])
+    loans = pd.concat(parts, ignore_index=True).sort_values("loan_id", kind="stable", ignore_index=True)
+    return loans, hd_grid, hp_grid
+
+
+def _month_labels(idx) -> np.ndarray:
+    """``YYYY-MM`` text of an array of month indices."""
+    idx = np.asarray(idx, dtype=np.int64)
+    uniq, inv = np.unique(idx, return_inverse=True)
+    return np.asarray([_fmt_month(m) for m in uniq], dtype=object)[inv.reshape(-1)]
 
 
 def _backtest_tables(cfg, panel, cohort, hd_grid, hp_grid, month: int, notes: list) -> tuple[dict, dict]:
@@ -1178,10 +1207,12 @@ def _backtest_tables(cfg, panel, cohort, hd_grid, hp_grid, month: int, notes: li
     hd[ok], hp[ok] = hd_grid[pos[ok], col[ok]], hp_grid[pos[ok], col[ok]]
     found = np.isfinite(hd) & np.isfinite(hp)
     if (~found).any():
-        notes.append(f"backtest: {int((~found).sum())} out-of-time loan-months had no projected hazard and were left out")
+        notes.append(
+            f"backtest: {int((~found).sum())} out-of-time loan-months had no projected hazard and were left out"
+        )
     frame = pd.DataFrame(
         {
-            "month": [_fmt_month(m) for m in rows["month_idx"].to_numpy()[found]],
+            "month": _month_labels(rows["month_idx"].to_numpy()[found]),
             "age_band": np.asarray(age_band(rows["age"].to_numpy()[found], PACK_AGE_BAND_EDGES)),
             "vintage": rows["origination_idx"].to_numpy(dtype=np.int64)[found] // 12,
             "h_default": hd[found],
@@ -1193,7 +1224,8 @@ def _backtest_tables(cfg, panel, cohort, hd_grid, hp_grid, month: int, notes: li
         frame["age_band"], categories=list(age_band([1], PACK_AGE_BAND_EDGES).categories), ordered=True
     )
     tables = {}
-    for name, by in (("backtest_by_month", "month"), ("backtest_by_age_band", "age_band"), ("backtest_by_vintage", "vintage")):
+    for by in ("month", "age_band", "vintage"):
+        name = f"backtest_by_{by}"
         t = backtest(frame, by=by)
         if by == "age_band":
             t["age_band"] = t["age_band"].astype(str)
@@ -1241,6 +1273,8 @@ def _read_inputs(panel, model, start: int, end: int, max_rows: int):
     else:
         readable = [n for n in names if n == "age"]
     skipped = [n for n in names if n not in readable]
+    if not readable:
+        return pd.DataFrame(), 1, skipped
     n_rows = _sql(panel, "SELECT count(*) AS n FROM loan_months WHERE month_idx BETWEEN $s AND $e",
                   {"s": int(start), "e": int(end)})["n"].iloc[0]
     k = max(1, int(np.ceil(int(n_rows) / max_rows)))
@@ -1250,17 +1284,22 @@ def _read_inputs(panel, model, start: int, end: int, max_rows: int):
         body = model.spec.raw_query(panel.con, where, order=False)
     else:
         body = f"SELECT loan_id, month_idx, age FROM loan_months WHERE {where}"
+    import duckdb
+
     from .panel import quote_ident
 
     cols = ", ".join(quote_ident(n) for n in readable)
     try:
         frame = panel.con.execute(f"WITH data AS (\n{body}\n)\nSELECT {cols} FROM data", params).df()
-    except Exception as exc:  # duckdb and feature errors alike: name the window
-        raise DataError(f"cannot read the model inputs of {_fmt_month(start)}..{_fmt_month(end)}: {exc}") from None
+    except duckdb.Error as exc:
+        first = str(exc).strip().splitlines()[0]
+        raise DataError(f"cannot read the model inputs of {_fmt_month(start)}..{_fmt_month(end)}: {first}") from None
     return frame, k, skipped
 
 
-def input_stability(panel, model, development, current, *, bins: int = 10, max_rows: int = PACK_SAMPLE_ROWS) -> pd.DataFrame:
+def input_stability(
+    panel, model, development, current, *, bins: int = 10, max_rows: int = PACK_SAMPLE_ROWS
+) -> pd.DataFrame:
     """PSI of every raw model input: the risk-set rows of one window against another.
 
     Parameters
@@ -1296,6 +1335,8 @@ def _input_stability(panel, model, development, current, *, bins, max_rows):
     cur, k_cur, _ = _read_inputs(panel, model, int(current[0]), int(current[1]), max_rows)
     rows = []
     for name in dev.columns:
+        if name not in cur.columns:
+            continue
         e, a = dev[name], cur[name]
         categorical = not (pd.api.types.is_numeric_dtype(e) and pd.api.types.is_numeric_dtype(a))
         if len(a) == 0 or e.notna().sum() == 0:
@@ -1313,6 +1354,14 @@ def _input_stability(panel, model, development, current, *, bins, max_rows):
 # --------------------------------------------------------------------------- in-sample fit by age
 
 
+_FIXED_ONE = float(2**32)
+
+
+def _fixed(x) -> np.ndarray:
+    """``x`` in fixed point, units of 2**-32, as int64 (exact, order-free sums)."""
+    return np.round(np.asarray(x, dtype=np.float64) * _FIXED_ONE).astype(np.int64)
+
+
 def _hazard_by_age(panel, model, start: int, end: int, batch_size: int) -> pd.DataFrame | None:
     """Observed and mean model hazard of each cause by loan age over months ``start..end``."""
     sums: dict[str, np.ndarray] = {}
@@ -1320,11 +1369,15 @@ def _hazard_by_age(panel, model, start: int, end: int, batch_size: int) -> pd.Da
     def add(age, weights: dict):
         top = int(age.max()) + 1
         for key, w in weights.items():
-            cur = sums.get(key, np.zeros(0))
+            cur = sums.get(key, np.zeros(0, dtype=np.int64))
             if len(cur) < top:
-                cur = np.r_[cur, np.zeros(top - len(cur))]
-            cur += np.bincount(age, weights=w, minlength=len(cur))
-            sums[key] = cur
+                cur = np.r_[cur, np.zeros(top - len(cur), dtype=np.int64)]
+            if w.dtype == np.int64:
+                part = np.zeros(len(cur), dtype=np.int64)
+                np.add.at(part, age, w)
+            else:
+                part = np.round(np.bincount(age, weights=w, minlength=len(cur))).astype(np.int64)
+            sums[key] = cur + part
 
     if hasattr(model, "spec"):
         sql = model.spec.raw_query(panel.con, "month_idx BETWEEN ? AND ?", order=False)
@@ -1338,7 +1391,10 @@ def _hazard_by_age(panel, model, start: int, end: int, batch_size: int) -> pd.Da
                 hd, hp = model.hazards(raw)
                 age = np.asarray(raw["age"], dtype=np.int64)
                 y = np.asarray(raw["outcome"])
-                add(age, {"n": np.ones(len(age)), "d1": (y == 1) * 1.0, "d2": (y == 2) * 1.0, "h1": hd, "h2": hp})
+                # Hazards are summed in fixed point (units of 2**-32): integer sums do
+                # not depend on the order DuckDB streams the rows in, so neither does the table.
+                add(age, {"n": np.ones(len(age)), "d1": (y == 1) * 1.0, "d2": (y == 2) * 1.0,
+                          "h1": _fixed(hd), "h2": _fixed(hp)})  # fmt: skip
     elif set(model.required_inputs) <= {"age", "log_age"}:
         grouped = _sql(
             panel,
@@ -1353,7 +1409,7 @@ def _hazard_by_age(panel, model, start: int, end: int, batch_size: int) -> pd.Da
             hd, hp = model.hazards({k: raw[k] for k in model.required_inputs})
             n = grouped["n"].to_numpy(dtype=float)
             add(age, {"n": n, "d1": grouped["d1"].to_numpy(float), "d2": grouped["d2"].to_numpy(float),
-                      "h1": n * np.asarray(hd), "h2": n * np.asarray(hp)})  # fmt: skip
+                      "h1": _fixed(n * np.asarray(hd)), "h2": _fixed(n * np.asarray(hp))})  # fmt: skip
     else:
         return None
     if not sums:
@@ -1374,7 +1430,7 @@ def _hazard_by_age(panel, model, start: int, end: int, batch_size: int) -> pd.Da
                     "observed": d / n,
                     "observed_lo": lo,
                     "observed_hi": hi,
-                    "model": sums[f"h{k}"][ages] / n,
+                    "model": sums[f"h{k}"][ages] / _FIXED_ONE / n,
                 }
             )
         )
@@ -1542,7 +1598,9 @@ def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int =
     summary["cohort_loans"] = int(len(cohort))
     cohort_pd = None
     if cohort.empty:
-        notes.append(f"no loan is alive and out of default at {_fmt_month(month)}: no backtest, discrimination or calibration")
+        notes.append(
+            f"no loan is alive and out of default at {_fmt_month(month)}: no backtest, discrimination or calibration"
+        )
     else:
         window = None if oot is None else (int(oot.start) - month, int(oot.end) - month)
         proj, hd_grid, hp_grid = _project_cohort(cfg, model, cohort, path, month, window, chunk_size)
@@ -1563,13 +1621,14 @@ def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int =
 
     # 3. Stability of the inputs and of the 12-month PD.
     stab, info = _input_stability(
-        panel, model, (int(dev.start), int(dev.end)), (as_of, as_of), bins=cfg.validation.psi_bins, max_rows=PACK_SAMPLE_ROWS
+        panel, model, (int(dev.start), int(dev.end)), (as_of, as_of),
+        bins=cfg.validation.psi_bins, max_rows=PACK_SAMPLE_ROWS,
     )
     k_dev = info["sampled_every"]["development"]
     if k_dev > 1:
         notes.append(
-            f"stability: the development rows were sampled, every {k_dev}th loan-month by a hash of loan and month "
-            f"(at most {PACK_SAMPLE_ROWS:,} rows)"
+            f"stability: the development rows were sampled, one loan-month in {k_dev} chosen by a hash of loan "
+            f"and month (at most {PACK_SAMPLE_ROWS:,} rows; the same rows on every run with this DuckDB version)"
         )
     if info["skipped"]:
         notes.append(f"stability: inputs {info['skipped']} cannot be read for this hazard source")
@@ -1583,9 +1642,11 @@ def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int =
         stab = pd.concat([stab, pd.DataFrame([row])], ignore_index=True) if len(stab) else pd.DataFrame([row])
     elif current_pd_12m is None:
         notes.append("stability: no current 12-month PD was given, so its PSI is not reported")
+    else:
+        notes.append("stability: the development cohort has no 12-month PD, so the PSI of pd_12m is not reported")
     tables["stability"] = stab[list(PACK_COLUMNS["stability"])]
     summary["stability"] = {
-        flag: tables["stability"].loc[tables["stability"]["flag"] == flag, "variable"].tolist() for flag in ("watch", "shift")
+        flag: stab.loc[stab["flag"] == flag, "variable"].tolist() for flag in ("watch", "shift")
     }
 
     # 4. Coefficient changes against a prior model.
@@ -1603,6 +1664,12 @@ def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int =
         notes.append("incidence_by_vintage: no loan observed from origination")
     else:
         tables["incidence_by_vintage"] = inc
+        degenerate = int((inc["outside"] & (inc["observed_se"] == 0)).sum())
+        if degenerate:
+            notes.append(
+                f"incidence_by_vintage: {degenerate} ages are flagged outside only because the vintage has had no "
+                "event of the cause yet, where the normal interval of the Aalen-Johansen estimate has zero width"
+            )
         summary["incidence"] = {
             "vintages": int(inc["vintage"].nunique()),
             **{
@@ -1647,7 +1714,10 @@ def _score_tables(cfg, panel, cohort, proj, month: int, summary: dict, notes: li
     known = frame[frame["default_12m"].notna()]
     left = len(frame) - len(known)
     if left:
-        notes.append(f"discrimination and calibration: {left} cohort loans censored within 12 months without an event were left out")
+        notes.append(
+            f"discrimination and calibration: {left} cohort loans censored within 12 months without an event "
+            "were left out"
+        )
     y = known["default_12m"].to_numpy(dtype=np.int64)
     p = known["pd_12m"].to_numpy(dtype=float)
     try:
@@ -1655,14 +1725,16 @@ def _score_tables(cfg, panel, cohort, proj, month: int, summary: dict, notes: li
     except DataError as exc:
         notes.append(f"discrimination not produced: {exc}")
     else:
-        out["discrimination"] = pd.DataFrame([{"cohort_month": _fmt_month(month), **d}])[list(PACK_COLUMNS["discrimination"])]
+        row = pd.DataFrame([{"cohort_month": _fmt_month(month), **d}])
+        out["discrimination"] = row[list(PACK_COLUMNS["discrimination"])]
         summary["discrimination"] = d
     if len(known):
         seg = cfg.segments
-        grade = known["band"].to_numpy() if seg.band_column and seg.band_edges and seg.band_column in cohort.columns else None
+        graded = bool(seg.band_column and seg.band_edges and seg.band_column in cohort.columns)
+        grade = known["band"].to_numpy() if graded else None
         table, cal = calibration(p, y, groups=cfg.validation.pd_groups, grade=grade)
         table = table.reset_index().rename(columns={"grade": "group"})
         out["calibration"] = table[list(PACK_COLUMNS["calibration"])]
         summary["calibration"] = cal
-        summary["calibration"]["grouping"] = f"grades of {seg.band_column}" if grade is not None else "pd quantile groups"
+        summary["calibration"]["grouping"] = f"grades of {seg.band_column}" if graded else "pd quantile groups"
     return out

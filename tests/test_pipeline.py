@@ -208,3 +208,35 @@ def test_two_month_refresh_walk_reconciles_exactly(small_book, tmp_path):
     assert (walk.loc[walk["step"] == "closed_or_repaid", "loans"] > 0).all()
     for name in ("stage_migration.csv", "pd_change_by_segment.csv"):
         assert (outcome.path / name).exists()
+
+
+def test_report_is_self_contained_and_shows_the_runs_numbers(demo_run):
+    from html.parser import HTMLParser
+
+    from creditsurv.report import fmt_money
+
+    text = (demo_run / "report.html").read_text(encoding="utf-8")
+
+    class Collect(HTMLParser):
+        def __init__(self):
+            super().__init__()
+            self.ids, self.imgs = set(), []
+
+        def handle_starttag(self, tag, attrs):
+            attrs = dict(attrs)
+            if "id" in attrs:
+                self.ids.add(attrs["id"])
+            if tag == "img":
+                self.imgs.append(attrs.get("src", ""))
+
+    parser = Collect()
+    parser.feed(text)
+    for section in ("summary", "cautions", "data-checks", "events", "model", "pd-term-structure", "ecl", "speeds", "run-record"):
+        assert section in parser.ids, section
+    assert parser.imgs and all(src.startswith("data:image/png;base64,") for src in parser.imgs)
+    assert "<script" not in text and 'src="http' not in text
+    loans = pd.read_parquet(demo_run / "loan_ecl.parquet")
+    assert fmt_money(loans["ecl_reported"].sum()) in text
+    assert fmt_money(loans["ead"].sum()) in text
+    assert "validated independently under the institution&#x27;s model risk policy" in text
+    assert "Accounting judgement and local supervisory rules prevail" in text

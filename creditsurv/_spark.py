@@ -1,0 +1,1036 @@
+"""The Spark engine: the same stages as the DuckDB engine, run on Apache Spark.
+
+``engine: spark`` in the config sends the panel, the data checks, the event
+labelling, the fit's likelihood passes and the projection with ECL to Spark.
+The statistics are not written twice: the design (:meth:`FeatureSpec.design`),
+the per-batch likelihood kernel (``hazard._batch_sums``), the Newton
+iterations (``hazard._newton``), the checks on the design and the results
+object, the projection and the ECL arithmetic (``loss.expected_credit_loss``)
+are the same functions the DuckDB engine calls. What is Spark's own:
+
+- reading the inputs (Parquet or CSV) and the typed views ``panel``,
+  ``panel_all``, ``loans`` and ``macro`` (Spark SQL, same names and types);
+- rendering the DuckDB SQL of the checks, events and features for Spark SQL
+  (:func:`spark_sql`): the same query text with a short, closed list of
+  dialect rewrites; identifiers stay double-quoted, which Spark reads as
+  identifiers with ``spark.sql.ansi.doubleQuotedIdentifiers``;
+- where the sums of the fit are taken: per partition on the executors, then
+  added on the driver in partition order, so the driver holds only
+  parameter-sized arrays;
+- splitting the book into loan partitions for projection and ECL, and
+  combining the partitions' segment tables exactly from their pooled sums.
+
+Entry points for the pipeline: :func:`open_checked`, :func:`hazard_model`,
+:func:`event_counts`, :func:`book_at_as_of`, :func:`macro_history` and
+:func:`expected_credit_loss`. See docs/scaling.md.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import glob
+import hashlib
+import io
+import math
+import re
+from pathlib import Path
+
+import duckdb
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+
+from . import events as _events
+from . import hazard as _hazard
+from . import panel as _panel
+from .errors import ConfigError, DataError
+from .features import feature_spec, quote_literal
+
+__all__ = [
+    "SparkPanel",
+    "book_at_as_of",
+    "event_counts",
+    "expected_credit_loss",
+    "fit_hazard",
+    "hazard_model",
+    "macro_history",
+    "open_checked",
+    "open_panel",
+    "run_checks",
+    "spark_session",
+    "spark_sql",
+]
+
+# Settings every creditsurv session needs: ANSI SQL with double-quoted identifiers
+# (so the shared SQL text parses), month arithmetic in UTC.
+_SQL_SETTINGS = {
+    "spark.sql.ansi.enabled": "true",
+    "spark.sql.ansi.doubleQuotedIdentifiers": "true",
+    "spark.sql.session.timeZone": "UTC",
+}
+
+
+# --------------------------------------------------------------------------- the session
+
+
+def spark_session(settings):
+    """Get or create the SparkSession of a config's ``spark`` section.
+
+    Parameters
+    ----------
+    settings : config ``SparkSettings``
+        ``master``, ``app_name``, ``partitions`` (also the shuffle partitions)
+        and extra ``settings`` (``spark.*`` keys).
+
+    Returns
+    -------
+    (SparkSession, bool)
+        The session, and whether this call created it (then the caller stops it).
+    """
+    from pyspark.sql import SparkSession
+
+    active = SparkSession.getActiveSession()
+    builder = SparkSession.builder.master(settings.master).appName(settings.app_name)
+    conf = {
+        "spark.ui.showConsoleProgress": "false",
+        "spark.sql.shuffle.partitions": str(settings.partitions),
+        **_SQL_SETTINGS,
+        **dict(settings.settings),
+    }
+    for key, value in conf.items():
+        builder = builder.config(key, str(value))
+    try:
+        spark = builder.getOrCreate()
+    except Exception as exc:  # noqa: BLE001 - py4j and JVM start-up errors have no common base
+        raise ConfigError(f"spark: cannot start a Spark session on {settings.master!r}: {_first_line(exc)}") from None
+    for key, value in {**_SQL_SETTINGS, "spark.sql.shuffle.partitions": str(settings.partitions)}.items():
+        spark.conf.set(key, value)
+    return spark, active is None
+
+
+def _first_line(exc: Exception) -> str:
+    text = str(exc).strip()
+    for line in text.splitlines():
+        line = line.strip()
+        if line and not line.startswith(("An error occurred", "py4j", ": ")):
+            return line
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
+# --------------------------------------------------------------------------- one SQL text, two dialects
+
+_REWRITES = (
+    # DuckDB's $name parameters are Spark's :name parameter markers.
+    (re.compile(r"\$([A-Za-z_]\w*)"), r":\1"),
+    (re.compile(r"\barg_min\("), "min_by("),
+    (re.compile(r"\barg_max\("), "max_by("),
+    (re.compile(r" // "), " div "),
+    (re.compile(r"\bAS VARCHAR\b(?!\s*\()"), "AS STRING"),
+)
+_DUCKDB_ONLY = ("list_contains", "list_position", "to_json(list", "EXCLUDE (", "::", "$")
+
+
+def spark_sql(sql: str, codes=None) -> str:
+    """Render creditsurv's DuckDB SQL text for Spark SQL.
+
+    The rewrites are a closed list (parameters ``$x`` to ``:x``, ``arg_min``/
+    ``arg_max`` to ``min_by``/``max_by``, ``//`` to ``div``, ``VARCHAR`` to
+    ``STRING`` and the default status-code list); any DuckDB-only construct
+    left over is an error rather than a silent difference.
+
+    Parameters
+    ----------
+    sql : str
+        DuckDB SQL as the checks, events and features write it.
+    codes : sequence of str, optional
+        Values of the ``$codes`` list parameter, inlined as quoted literals.
+    """
+    if "list_contains(CAST($codes AS VARCHAR[]), status)" in sql:
+        items = ", ".join(quote_literal(c) for c in (codes or ()))
+        sql = sql.replace(
+            "list_contains(CAST($codes AS VARCHAR[]), status)", f"array_contains(CAST(array({items}) AS ARRAY<STRING>), status)"
+        )
+    for pattern, repl in _REWRITES:
+        sql = pattern.sub(repl, sql)
+    left = [t for t in _DUCKDB_ONLY if t in sql]
+    if left:
+        raise DataError(f"internal: no Spark rendering for {left} in:\n{sql}")  # pragma: no cover
+    return sql
+
+
+class _Cursor:
+    """The part of a DuckDB cursor that the features code reads: ``description`` and ``fetchall``."""
+
+    def __init__(self, frame):
+        self._frame = frame
+        self.description = [(name, None, None, None, None, None, None) for name in frame.columns]
+
+    def fetchall(self) -> list[tuple]:
+        return [tuple(row) for row in self._frame.collect()]
+
+
+class SparkConnection:
+    """A DuckDB-connection look-alike over a SparkSession, for the shared SQL builders.
+
+    ``execute(sql, params)`` renders ``sql`` with :func:`spark_sql` and runs it
+    with Spark's parameter markers (``?`` positional, ``:name`` named).
+    """
+
+    def __init__(self, spark):
+        self.spark = spark
+
+    def frame(self, sql: str, params=None):
+        args = None
+        if params:
+            args = dict(params) if isinstance(params, dict) else list(params)
+        return self.spark.sql(spark_sql(sql), args=args)
+
+    def execute(self, sql: str, params=None) -> _Cursor:
+        return _Cursor(self.frame(sql, params))
+
+
+# --------------------------------------------------------------------------- the sources and views
+
+_SPARK_NUMERIC = ("tinyint", "smallint", "int", "bigint", "float", "double", "decimal")
+_SPARK_DATES = ("date", "timestamp", "timestamp_ntz")
+
+
+def _is_numeric(spark_type: str) -> bool:
+    return spark_type.split("(")[0] in _SPARK_NUMERIC
+
+
+def _register(spark, name: str, key: str, source) -> _panel._Source:
+    """Read ``source`` into the temp view ``_src_<name>`` and describe it."""
+    path = Path(source.path)
+    fmt = _panel._file_format(source)
+    if fmt == "duckdb":
+        raise DataError(
+            f"{key}.path: the Spark engine reads Parquet or CSV files, not DuckDB database files; "
+            f"export table {source.table!r} of {path} to Parquet, or use engine: duckdb"
+        )
+    has_glob = any(ch in str(path) for ch in "*?[")
+    found = glob.glob(str(path)) if has_glob else ([str(path)] if path.is_file() or path.is_dir() else [])
+    if not found and "://" not in str(source.path):
+        what = "no file matches" if has_glob else "file not found"
+        raise DataError(f"{key}.path: {what}: {path}")
+    raw_view = f"_src_{name}"
+    try:
+        if fmt == "parquet":
+            frame = spark.read.parquet(str(path))
+        else:
+            frame = spark.read.csv(str(path), header=True, inferSchema=True, enforceSchema=False)
+            # DuckDB's sniffer reads whole numbers as BIGINT; keep the pass-through types alike.
+            from pyspark.sql import functions as F
+
+            frame = frame.select(
+                *[
+                    F.col(f"`{f.name}`").cast("bigint").alias(f.name) if f.dataType.simpleString() == "int" else F.col(f"`{f.name}`")
+                    for f in frame.schema.fields
+                ]
+            )
+        frame.createOrReplaceTempView(raw_view)
+    except Exception as exc:  # noqa: BLE001 - Spark's analysis and IO errors
+        raise DataError(f"{key}.path: cannot read {path} as {fmt}: {_first_line(exc)}") from None
+    types = {f.name: f.dataType.simpleString() for f in frame.schema.fields}
+    return _panel._Source(name, key, path, raw_view, types, {})
+
+
+def _offending_value(spark, src, column: str, test: str) -> str | None:
+    q = _panel.quote_ident
+    rows = spark.sql(
+        f"SELECT CAST(v AS STRING) FROM (SELECT {q(column)} AS v FROM {q(src.raw_view)}) "
+        f"WHERE v IS NOT NULL AND ({test}) LIMIT 1"
+    ).collect()
+    return rows[0][0] if rows else None
+
+
+def _numeric_expr(spark, src, column: str, problems: list[str], key: str) -> str:
+    """Spark SQL for ``column`` as DOUBLE (NaN read as NULL), or record a type problem."""
+    q = _panel.quote_ident(column)
+    spark_type = src.types[column]
+    if not _is_numeric(spark_type):
+        if spark_type != "string":
+            problems.append(f"{src.path}: column {column!r} ({key}) has type {spark_type.upper()}; expected numbers")
+            return "NULL"
+        bad = _offending_value(spark, src, column, "try_cast(trim(v) AS DOUBLE) IS NULL AND trim(v) <> ''")
+        if bad is not None:
+            problems.append(f"{src.path}: column {column!r} ({key}) holds text such as {bad!r}; expected numbers")
+            return "NULL"
+        q = f"try_cast(NULLIF(trim({q}), '') AS DOUBLE)"
+    else:
+        q = f"CAST({q} AS DOUBLE)"
+    return f"CASE WHEN isnan({q}) THEN NULL ELSE {q} END"
+
+
+def _month_expr(src, column: str, problems: list[str], key: str) -> str:
+    """Spark SQL for ``column`` as the DATE of the first of its month (NULL if unreadable)."""
+    q = _panel.quote_ident(column)
+    spark_type = src.types[column]
+    if spark_type in _SPARK_DATES:
+        return f"trunc(CAST({q} AS DATE), 'MM')"
+    if spark_type == "string":
+        t = f"trim({q})"
+        return (
+            f"trunc(CASE WHEN {t} RLIKE '^[0-9]{{4}}-[0-9]{{2}}$' THEN try_to_date({t} || '-01', 'yyyy-MM-dd') "
+            f"ELSE try_to_date({t}, 'yyyy-MM-dd') END, 'MM')"
+        )
+    problems.append(f"{src.path}: column {column!r} ({key}) has type {spark_type.upper()}; expected a date or YYYY-MM text")
+    return "NULL"
+
+
+def _month_idx(col: str) -> str:
+    return f"CAST({_panel._month_idx(col)} AS INT)"
+
+
+def _panel_view_sql(spark, src, cfg, problems) -> str:
+    q = _panel.quote_ident
+    m, key = src.mapping, f"{src.key}.columns"
+    num = {c: _numeric_expr(spark, src, m[c], problems, f"{key}.{c}") for c in ("age", "balance", "days_past_due") if m.get(c)}
+    month = _month_expr(src, m["month"], problems, f"{key}.month") if m.get("month") else "NULL"
+    status = f"CAST({q(m['status'])} AS STRING)" if m.get("status") else "CAST(NULL AS STRING)"
+    extra = "".join(f",\n       {c}" for c in _panel._passthrough(src, _panel._PANEL_INTERNAL, problems))
+    return f"""
+WITH typed AS (
+    SELECT CAST({q(m['loan_id'])} AS STRING) AS loan_id,
+           {month} AS month,
+           {num.get('age', 'NULL')} AS _age,
+           CAST({num.get('balance', 'NULL')} AS DOUBLE) AS balance,
+           {num.get('days_past_due', 'NULL')} AS _dpd,
+           {status} AS status{extra}
+    FROM {q(src.raw_view)}
+)
+SELECT loan_id,
+       month,
+       {_month_idx('month')} AS month_idx,
+       try_cast(round(_age) AS INT) AS age,
+       balance,
+       try_cast(round(_dpd) AS INT) AS days_past_due,
+       status{extra}
+FROM typed"""
+
+
+def _loans_view_sql(spark, src, cfg, problems) -> str:
+    q = _panel.quote_ident
+    m, key = src.mapping, f"{src.key}.columns"
+    num = {
+        c: _numeric_expr(spark, src, m[c], problems, f"{key}.{c}")
+        for c in ("original_balance", "note_rate", "term", "property_value")
+        if m.get(c)
+    }
+    orig = _month_expr(src, m["origination_month"], problems, f"{key}.origination_month")
+    rate = num.get("note_rate", "NULL")
+    if cfg.inputs.loans.rate_unit == "percent":
+        rate = f"({rate}) / 100.0"
+    extra = "".join(f",\n       {c}" for c in _panel._passthrough(src, _panel._LOAN_INTERNAL, problems))
+    return f"""
+WITH typed AS (
+    SELECT CAST({q(m['loan_id'])} AS STRING) AS loan_id,
+           {orig} AS origination_month,
+           CAST({num.get('original_balance', 'NULL')} AS DOUBLE) AS original_balance,
+           CAST({rate} AS DOUBLE) AS note_rate,
+           {num.get('term', 'NULL')} AS _term,
+           CAST({num.get('property_value', 'NULL')} AS DOUBLE) AS property_value{extra}
+    FROM {q(src.raw_view)}
+)
+SELECT loan_id,
+       origination_month,
+       {_month_idx('origination_month')} AS origination_idx,
+       original_balance,
+       note_rate,
+       try_cast(round(_term) AS INT) AS term,
+       property_value{extra}
+FROM typed"""
+
+
+def _macro_view_sql(spark, src, cfg, problems) -> str:
+    q = _panel.quote_ident
+    month_col = src.mapping["month"]
+    month = _month_expr(src, month_col, problems, f"{src.key}.columns.month")
+    series, names = [], []
+    for column in src.types:
+        if column == month_col:
+            continue
+        if column.lower() in _panel._MACRO_INTERNAL:
+            problems.append(f"{src.path}: series column {column!r} has the name of an internal macro column; rename it")
+            continue
+        expr = _numeric_expr(spark, src, column, problems, f"series {column!r}")
+        series.append(f"CAST({expr} AS DOUBLE) AS {q(column)}")
+        names.append(q(column))
+    extra = "".join(f",\n           {s}" for s in series)
+    cols = "".join(f",\n       {c}" for c in names)
+    return f"""
+WITH typed AS (
+    SELECT {month} AS month{extra}
+    FROM {q(src.raw_view)}
+)
+SELECT month,
+       {_month_idx('month')} AS month_idx{cols}
+FROM typed"""
+
+
+class SparkPanel:
+    """The inputs as Spark temp views under internal names; the Spark engine's ``Panel``.
+
+    Attributes
+    ----------
+    spark : SparkSession
+    con : SparkConnection
+        Runs the shared (DuckDB-flavoured) SQL of the features stage on Spark.
+    cfg : Config
+    sources : dict of str to pathlib.Path
+        Internal table name to input path.
+    partitions : int
+        Partitions of the loan-month and loan work (``spark.partitions``).
+    """
+
+    def __init__(self, cfg, spark, owns_session: bool):
+        self.cfg = cfg
+        self.spark = spark
+        self.con = SparkConnection(spark)
+        self.partitions = int(cfg.spark.partitions)
+        self._owns_session = owns_session
+        self._sources: dict = {}
+        self._cached: list = []
+        self._views: list[str] = []
+        self.sources: dict = {}
+
+    def view(self, name: str, frame, cache: bool = False):
+        if cache:
+            from pyspark import StorageLevel
+
+            frame = frame.persist(StorageLevel.MEMORY_AND_DISK)
+            self._cached.append(frame)
+        frame.createOrReplaceTempView(name)
+        self._views.append(name)
+        return frame
+
+    def has_view(self, name: str) -> bool:
+        return name in self._views
+
+    def sql(self, sql: str, params=None):
+        """Run creditsurv's DuckDB SQL text on Spark (see :func:`spark_sql`)."""
+        return self.con.frame(sql, params)
+
+    def close(self) -> None:
+        """Release cached data and views; stop the session when this panel started it."""
+        if self.spark is None:
+            return
+        for frame in self._cached:
+            frame.unpersist()
+        for name in dict.fromkeys(self._views + [s.raw_view for s in self._sources.values()]):
+            self.spark.catalog.dropTempView(name)
+        if self._owns_session:
+            self.spark.stop()
+        self._cached, self._views, self.spark = [], [], None
+
+    def __enter__(self) -> "SparkPanel":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        state = "closed" if self.spark is None else "open"
+        return f"<SparkPanel {state}: {', '.join(f'{k}={v}' for k, v in self.sources.items())}>"
+
+
+def open_panel(cfg) -> SparkPanel:
+    """Read the configured inputs into Spark and build the views ``panel``, ``panel_all``, ``loans``, ``macro``.
+
+    Same contract and errors as :func:`creditsurv.panel.open_panel`; DuckDB
+    database files are not readable here.
+    """
+    _panel._check_severity_names(cfg)
+    spark, owns = spark_session(cfg.spark)
+    panel = SparkPanel(cfg, spark, owns)
+    try:
+        _build_views(panel)
+    except BaseException:
+        panel.close()
+        raise
+    return panel
+
+
+def _build_views(panel: SparkPanel) -> None:
+    cfg, spark = panel.cfg, panel.spark
+    inputs = [("panel", "inputs.panel", cfg.inputs.panel), ("loans", "inputs.loans", cfg.inputs.loans)]
+    if cfg.inputs.macro is not None:
+        inputs.append(("macro", "inputs.macro", cfg.inputs.macro))
+    sources = {name: _register(spark, name, key, source) for name, key, source in inputs}
+    panel._sources = sources
+    problems: list[str] = []
+    for name, _key, source in inputs:
+        wanted = {f.name: getattr(source.columns, f.name) for f in dataclasses.fields(source.columns)}
+        _panel._resolve_columns(sources[name], wanted, problems)
+    if "macro" in sources:
+        series = set(sources["macro"].types) - {sources["macro"].mapping.get("month")}
+        for key, name, _lag in _panel._macro_series_used(cfg):
+            if name not in series:
+                problems.append(
+                    f"{sources['macro'].path}: {key}: macro series {name!r} not found"
+                    f"{_panel._closest(name, sorted(series))} (series: {', '.join(sorted(series))})"
+                )
+    if problems:
+        raise DataError(_panel._problem_text(problems))
+    builders = {"panel": _panel_view_sql, "loans": _loans_view_sql, "macro": _macro_view_sql}
+    view_sql = {name: builders[name](spark, src, cfg, problems) for name, src in sources.items()}
+    if problems:
+        raise DataError(_panel._problem_text(problems))
+    try:
+        # Cached (memory, spilling to executor disk): every check, the events and
+        # the fit read these views, and the typing work is done once.
+        panel_all = panel.view("panel_all", spark.sql(view_sql["panel"]), cache=True)
+        panel.view("panel", panel_all.where(f"month_idx <= {int(cfg.as_of)}"))
+        panel.view("loans", spark.sql(view_sql["loans"]), cache=True)
+        if "macro" in view_sql:
+            panel.view("macro", spark.sql(view_sql["macro"]), cache=True)
+    except Exception as exc:  # noqa: BLE001 - pragma: no cover, the checks above should prevent it
+        raise DataError(f"cannot build the internal views: {_first_line(exc)}") from None
+    panel.sources = {name: s.path for name, s in sources.items()}
+
+
+# --------------------------------------------------------------------------- checks and events
+
+
+def _arrow(frame) -> pa.Table:
+    """A Spark DataFrame as an Arrow table (types kept: int32, date32, string, double)."""
+    return frame.toArrow()
+
+
+def _as_duckdb_frame(table: pa.Table, sql: str = "SELECT * FROM t") -> pd.DataFrame:
+    """Turn Arrow into pandas the way DuckDB's ``.df()`` does, so both engines give the same dtypes."""
+    with duckdb.connect() as con:
+        con.register("t", table)
+        return con.execute(sql).df()
+
+
+def _examples(table: pa.Table, order: str) -> str:
+    """JSON text of the example rows, formatted by DuckDB exactly as the DuckDB engine does."""
+    with duckdb.connect() as con:
+        con.register("offending_rows", table)
+        return con.execute(
+            f"SELECT CAST(coalesce(to_json(list(e)), '[]') AS VARCHAR) "
+            f"FROM (SELECT * FROM offending_rows ORDER BY {order}) AS e"
+        ).fetchall()[0][0]
+
+
+def run_checks(panel: SparkPanel) -> pd.DataFrame:
+    """Run every data check on Spark; the same table as :func:`creditsurv.panel.run_checks`."""
+    from pyspark.sql import functions as F
+
+    plans = _panel._plan_checks(panel.cfg, panel._sources)
+    results = []
+    for pl in plans:
+        count, examples = 0, "[]"
+        if pl.severity != "off":
+            try:
+                offending = panel.sql(f"WITH {pl.sql}\nSELECT * FROM offending", pl.params)
+                count = offending.count()
+                if count:
+                    top = offending.orderBy(*[F.col(f"`{c}`").asc_nulls_last() for c in offending.columns]).limit(5)
+                    examples = _examples(_arrow(top), pl.order)
+            except DataError:
+                raise
+            except Exception as exc:  # noqa: BLE001 - Spark's analysis and execution errors
+                raise DataError(f"data check {pl.check.name} on {pl.source} failed: {_first_line(exc)}") from None
+        results.append((count, examples))
+    return _panel._check_frame(plans, results)
+
+
+def _strip_create(sql: str) -> tuple[str, str]:
+    match = re.match(r"\s*CREATE OR REPLACE TABLE (\w+) AS\s*", sql)
+    return match.group(1), sql[match.end():]
+
+
+def label_events(panel: SparkPanel) -> None:
+    """The views ``loan_outcomes`` and ``loan_months`` (cached), from the events stage's SQL."""
+    cfg = panel.cfg
+    for text in (_events._LOAN_OUTCOMES, _events._LOAN_MONTHS):
+        name, body = _strip_create(text)
+        if name == "loan_months":
+            # The fit sorts its own read; a global sort here would be a wasted shuffle.
+            body = re.sub(r"\nORDER BY loan_id, month_idx\s*$", "\n", body)
+        params = {
+            "dpd": cfg.default_definition.days_past_due,
+            "paid_off": float(cfg.events.paid_off_balance),
+            "as_of": int(cfg.as_of),
+        }
+        params = {k: v for k, v in params.items() if f"${k}" in body}
+        try:
+            frame = panel.spark.sql(spark_sql(body, codes=cfg.default_definition.status_codes), args=params or None)
+            panel.view(name, frame, cache=True)
+        except Exception as exc:  # noqa: BLE001
+            raise DataError(f"event labelling failed on {panel.sources.get('panel')}: {_first_line(exc)}") from None
+
+
+def open_checked(cfg):
+    """Open the panel on Spark, run the data checks (raise on errors), label events.
+
+    Returns
+    -------
+    (SparkPanel, pandas.DataFrame)
+        The open panel (close it, or use ``with``) and the check table.
+    """
+    panel = open_panel(cfg)
+    try:
+        checks = run_checks(panel)
+        _panel.raise_for_errors(checks)
+        label_events(panel)
+    except BaseException:
+        panel.close()
+        raise
+    return panel, checks
+
+
+def event_counts(panel: SparkPanel) -> pd.DataFrame:
+    """Loans by event and censor reason; the same table as :func:`creditsurv.events.event_counts`."""
+    if not panel.has_view("loan_outcomes"):
+        label_events(panel)
+    counts = _arrow(panel.spark.sql("SELECT event, censor_reason, count(*) AS loans FROM loan_outcomes GROUP BY event, censor_reason"))
+    frame = _as_duckdb_frame(
+        counts,
+        """
+        SELECT event, censor_reason, loans, loans / sum(loans) OVER () AS share
+        FROM t
+        ORDER BY list_position(['default', 'prepay', 'maturity', 'censored'], event),
+                 censor_reason NULLS FIRST
+        """,
+    )
+    reason = frame["censor_reason"].astype(object)
+    frame["censor_reason"] = reason.where(reason.notna(), None)
+    return frame.astype({"loans": "int64", "share": "float64"})
+
+
+def book_at_as_of(panel: SparkPanel, segment_column: str | None = None) -> pd.DataFrame:
+    """The book at the reporting month; same rows, columns and dtypes as :func:`creditsurv.events.book_at_as_of`.
+
+    One row per loan on the book passes through the driver (the panel does not).
+    """
+    if not panel.has_view("loan_outcomes"):
+        label_events(panel)
+    q = _panel.quote_ident
+    segment = f"CAST(l.{q(segment_column)} AS STRING)" if segment_column else "'all'"
+    sql = f"""
+        SELECT l.*,
+               o.last_age AS age,
+               o.balance_at_as_of AS balance,
+               o.days_past_due_at_as_of AS days_past_due,
+               o.in_default_at_as_of AS in_default,
+               {segment} AS segment
+        FROM loan_outcomes AS o
+        JOIN loans AS l USING (loan_id)
+        WHERE o.last_month_idx = :as_of
+          AND o.event IN ('default', 'censored')
+          AND o.balance_at_as_of > :paid_off
+    """
+    cfg = panel.cfg
+    params = {"as_of": int(cfg.as_of), "paid_off": float(cfg.events.paid_off_balance)}
+    try:
+        table = _arrow(panel.spark.sql(sql, args=params))
+    except Exception as exc:  # noqa: BLE001
+        raise DataError(f"cannot build the book at {cfg.as_of}: {_first_line(exc)}") from None
+    return _as_duckdb_frame(table, "SELECT * FROM t ORDER BY loan_id")
+
+
+def macro_history(panel: SparkPanel) -> pd.DataFrame:
+    """Macro history indexed by month index, every series a column (as ``pipeline._macro_history``)."""
+    table = _arrow(panel.spark.sql("SELECT * FROM macro"))
+    frame = _as_duckdb_frame(table, "SELECT * EXCLUDE (month) FROM t ORDER BY month_idx")
+    return frame.set_index("month_idx")
+
+
+# --------------------------------------------------------------------------- the fit
+
+
+def _design_blocks(spec, collapse, dropped, batches):
+    """Executor side, once: evaluate the design of each Arrow batch of raw rows."""
+    for batch in batches:
+        raw = {nm: batch.column(i).to_numpy(zero_copy_only=False) for i, nm in enumerate(batch.schema.names)}
+        design = _hazard._batch_design(raw, spec, collapse, dropped)
+        if design is None:
+            continue
+        X, y, w = design
+        yield pa.RecordBatch.from_pydict(
+            {"X": [np.ascontiguousarray(X).tobytes()], "y": [y.tobytes()], "w": [w.tobytes()]},
+            schema=pa.schema([("X", pa.binary()), ("y", pa.binary()), ("w", pa.binary())]),
+        )
+
+
+def _decode_block(p, row):
+    X = np.frombuffer(row["X"], dtype=np.float64).reshape(-1, p)
+    return X, np.frombuffer(row["y"], dtype=np.int8), np.frombuffer(row["w"], dtype=np.float64)
+
+
+def _first_pass_partition(p, index, blocks):
+    first = _hazard._FirstPass(p)
+    for X, y, w in blocks:
+        first.add(X, y, w)
+    yield index, first.S, first.xtx, first.is01, first.n, first.stream_digests()
+
+
+def _sums_partition(beta_bc, codes, kind, need_hess, index, blocks):
+    """Executor side, per Newton evaluation: this partition's log-likelihood, score and information.
+
+    The information comes back as the packed upper triangle (P(P+1)/2 doubles).
+    """
+    beta = beta_bc.value
+    K, p = beta.shape
+    P = K * p
+    ll, g = 0.0, np.zeros((K, p))
+    H = np.zeros((P, P)) if need_hess else None
+    for X, y, w in blocks:
+        ll_b, g_b, H_b = _hazard._batch_sums(X, y, w, beta, codes, kind, need_hess)
+        ll += ll_b
+        g += g_b
+        if need_hess:
+            H += H_b
+    packed = H[np.triu_indices(P)] if need_hess else None
+    yield index, ll, g, packed
+
+
+def fit_hazard(
+    panel: SparkPanel,
+    spec,
+    *,
+    where_sql: str = "TRUE",
+    params=(),
+    kind: str = "multinomial",
+    causes=("default", "prepay"),
+    ridge: float = 0.0,
+    batch_size: int = 250_000,
+    max_iter: int = 50,
+    tol: float = 1e-8,
+    collapse="auto",
+) -> _hazard.HazardResults:
+    """:func:`creditsurv.hazard.fit_hazard` on Spark: the same model, likelihood and results.
+
+    The design is evaluated once per partition and cached on the executors;
+    each Newton evaluation runs one Spark job whose tasks return the
+    partition's log-likelihood, score and information (packed upper
+    triangle), added on the driver in partition order. ``batch_size`` is not
+    used for the reads (Spark's Arrow batches, ``spark.sql.execution.arrow.maxRecordsPerBatch``,
+    bound a task's memory instead).
+
+    ``data_fingerprint`` hashes the partitions' stream digests in order; it
+    is reproducible for the same data, spec and partitioning but is not the
+    DuckDB engine's fingerprint.
+    """
+    from pyspark import StorageLevel
+
+    causes, codes, dropped = _hazard._check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol)
+    con = panel.con
+    if spec.learned is None:
+        spec = spec.learn(con, where_sql, params)
+    names = spec.columns
+    p = len(names)
+    collapse = _hazard._resolve_collapse(spec, collapse)
+    sql = _hazard._raw_sql(con, spec, where_sql, collapse)
+    try:
+        raw = con.frame(sql, list(params) if params else None)
+        if not collapse:
+            # Whole loans per partition, rows in (loan, month) order within each.
+            raw = raw.repartitionByRange(panel.partitions, "loan_id").sortWithinPartitions("loan_id", "month_idx")
+        schema = "X binary, y binary, w binary"
+        blocks = (
+            raw.mapInArrow(functools.partial(_design_blocks, spec, collapse, dropped), schema)
+            .rdd.map(functools.partial(_decode_block, p))
+            .persist(StorageLevel.MEMORY_AND_DISK)
+        )
+    except Exception as exc:  # noqa: BLE001
+        raise DataError(f"cannot read the risk set for the fit: {_first_line(exc)}") from None
+    sc = panel.spark.sparkContext
+    try:
+        parts = sorted(_collect(blocks.mapPartitionsWithIndex(functools.partial(_first_pass_partition, p))), key=lambda r: r[0])
+        first = _hazard._FirstPass(p)
+        for _i, S, xtx, is01, n, _d in parts:
+            first.S += S
+            first.xtx += xtx
+            first.is01 &= is01
+            first.n += n
+        digests = [
+            hashlib.sha256("|".join(part[5][k] for part in parts if part[4]).encode()).hexdigest() for k in range(3)
+        ]
+        P = len(codes) * p
+        upper = np.triu_indices(P)
+
+        def evaluate(beta, need_hess):
+            bc = sc.broadcast(np.asarray(beta, dtype=np.float64))
+            try:
+                fn = functools.partial(_sums_partition, bc, codes, kind, need_hess)
+                results = sorted(_collect(blocks.mapPartitionsWithIndex(fn)), key=lambda r: r[0])
+            finally:
+                bc.destroy()
+            ll, g = 0.0, np.zeros(beta.shape)
+            H = np.zeros((P, P)) if need_hess else None
+            packed = np.zeros(len(upper[0])) if need_hess else None
+            for _i, ll_k, g_k, h_k in results:
+                ll += ll_k
+                g += g_k
+                if need_hess:
+                    packed += h_k
+            if need_hess:
+                H[upper] = packed
+                H = _hazard._symmetric(H)
+            return ll, g, H
+
+        return _hazard._fit_from_sums(
+            evaluate, first, spec, kind=kind, causes=causes, codes=codes, ridge=ridge, max_iter=max_iter, tol=tol,
+            collapse=collapse, where_sql=where_sql, fingerprint=_hazard._fingerprint(first.n, names, digests),
+        )
+    finally:
+        blocks.unpersist()
+
+
+def _collect(rdd):
+    """``rdd.collect()`` with creditsurv's own errors raised from a task shown as themselves."""
+    from .errors import CreditsurvError
+
+    try:
+        return rdd.collect()
+    except Exception as exc:  # noqa: BLE001
+        text = str(exc)
+        for cls in _error_classes(CreditsurvError):
+            marker = f"{cls.__module__}.{cls.__name__}: "
+            if marker in text:
+                message = text.split(marker, 1)[1].split("\n\n")[0].split("\n\tat ")[0].strip()
+                raise cls(message) from None
+        raise
+
+
+def _error_classes(root):
+    out = [root]
+    for sub in root.__subclasses__():
+        out = _error_classes(sub) + out
+    return out
+
+
+def hazard_model(cfg, panel: SparkPanel, temp_dir=None):
+    """The hazard source of a run on Spark, as ``pipeline._hazard_model``.
+
+    Fitted on the development window on Spark, or the saved ``model.path``,
+    or benchmark curves, or a table of hazards (these three do not read the panel).
+    """
+    from .pipeline import _development_filter, _hazard_model
+
+    if cfg.model.source != "fitted" or cfg.model.path is not None:
+        return _hazard_model(cfg, panel, temp_dir)
+    where, params = _development_filter(cfg)
+    model = cfg.model
+    spec = feature_spec(model, cfg.collateral).learn(panel.con, where, params)
+    return fit_hazard(
+        panel, spec, where_sql=where, params=params, kind=model.kind, ridge=model.ridge,
+        batch_size=model.fit.batch_size, max_iter=model.fit.max_iter, tol=model.fit.tol,
+    )
+
+
+# --------------------------------------------------------------------------- projection and ECL per partition of loans
+
+
+def _ipc(table: pa.Table) -> bytes:
+    sink = io.BytesIO()
+    with pa.ipc.new_stream(sink, table.schema, options=pa.ipc.IpcWriteOptions(compression="zstd")) as writer:
+        writer.write_table(table)
+    return sink.getvalue()
+
+
+def _from_ipc(data: bytes) -> pa.Table:
+    return pa.ipc.open_stream(data).read_all()
+
+
+def _ecl_partition(model, paths, kwargs, wanted, index, slices):
+    """Executor side: ECL of one partition's loans with the shared loss function."""
+    from .loss import expected_credit_loss as ecl
+
+    for book in slices:
+        tables = {name: [] for name in wanted}
+        writers = {f"{name}_writer": tables[name].append for name in wanted}
+        result = ecl(book, model, paths, **kwargs, **{k: (lambda t, f=f: f(_ipc(t))) for k, f in writers.items()})
+        proj = result.projection
+        yield {
+            "index": index,
+            "n": len(book),
+            "loans": result.loans,
+            "projection_loans": proj.loans,
+            "term_structure": proj.term_structure,
+            "speeds": proj.speeds,
+            "tables": tables,
+        }
+
+
+def _term_sums(parts, names, seg_names, labels):
+    """Pooled sums of the segment term structure, rebuilt from each partition's table and added.
+
+    A partition's table holds ratios of its sums (``cumulative_pd_count`` = F_n / n
+    and so on), so multiplying back by ``n_loans`` or ``balance`` gives its sums.
+    Past a partition's last year its loans have matured: their sums stay at the
+    last year's values. ``Sp`` (survival at the start of the year) is S one year
+    earlier, and n or balance in the first year.
+    """
+    K, nb = len(names), len(labels)
+    G = max(len(seg_names), 1) * nb
+    years = max((int(t["year_ahead"].max()) for t in parts if len(t)), default=0)
+    ts = {key: np.zeros((K, G, years)) for key in ("n", "bal", "F_n", "F_b", "S_n", "S_b")}
+    seg_at = {s: i for i, s in enumerate(seg_names)}
+    band_at = {b: i for i, b in enumerate(labels)}
+    name_at = {s: i for i, s in enumerate(names)}
+    for t in parts:
+        if not len(t):
+            continue
+        ki = t["scenario"].map(name_at).to_numpy()
+        g = t["segment"].astype(str).map(seg_at).to_numpy() * nb + t["band"].map(band_at).to_numpy()
+        y = t["year_ahead"].to_numpy() - 1
+        n = t["n_loans"].to_numpy(dtype=float)
+        bal = t["balance"].to_numpy(dtype=float)
+        values = {
+            "n": n,
+            "bal": bal,
+            "F_n": t["cumulative_pd_count"].to_numpy() * n,
+            "F_b": np.where(bal > 0, t["cumulative_pd_balance"].to_numpy() * bal, 0.0),
+            "S_n": t["survival_count"].to_numpy() * n,
+            "S_b": np.where(bal > 0, t["survival_balance"].to_numpy() * bal, 0.0),
+        }
+        last = int(y.max())
+        part = {k: np.zeros((K, G, years)) for k in ts}
+        for k, v in values.items():
+            part[k][ki, g, y] = v
+            part[k][:, :, last + 1:] = part[k][:, :, last: last + 1]
+            ts[k] += part[k]
+    ts["Sp_n"] = np.concatenate([ts["n"][:, :, :1], ts["S_n"][:, :, :-1]], axis=2)
+    ts["Sp_b"] = np.concatenate([ts["bal"][:, :, :1], ts["S_b"][:, :, :-1]], axis=2)
+    return ts, years
+
+
+def _speed_sums(parts, names, seg_names, labels, weights):
+    """Pooled expected balances of the segment speeds, added over partitions; ``weighted`` recomputed."""
+    K, nb = len(names), len(labels)
+    G = max(len(seg_names), 1) * nb
+    max_age = max((int(t["loan_age"].max()) for t in parts if len(t)), default=0)
+    sp = {key: np.zeros((K, G, max_age + 1)) for key in ("dexp", "dflt", "pexp", "ppay")}
+    columns = {"dexp": "default_exposure", "dflt": "defaulted", "pexp": "prepay_exposure", "ppay": "prepaid"}
+    seg_at = {s: i for i, s in enumerate(seg_names)}
+    band_at = {b: i for i, b in enumerate(labels)}
+    for t in parts:
+        if not len(t):
+            continue
+        t = t[t["scenario"] != names[-1]]
+        ki = t["scenario"].map({s: i for i, s in enumerate(names)}).to_numpy()
+        g = t["segment"].astype(str).map(seg_at).to_numpy() * nb + t["band"].map(band_at).to_numpy()
+        age = t["loan_age"].to_numpy()
+        for key, col in columns.items():
+            np.add.at(sp[key], (ki, g, age), t[col].to_numpy(dtype=float))
+    for key in sp:
+        sp[key][K - 1] = sum(weights[s] * sp[key][ki] for ki, s in enumerate(names[:-1]))
+    return sp, max_age
+
+
+def combine_partitions(bundles, scenarios, weights, as_of_idx, band_edges=()):
+    """One :class:`~creditsurv.loss.EclResult` from the partitions' results, in loan order.
+
+    Loan-level tables are concatenated (each partition is a contiguous range of
+    loan ids); the segment summary is recomputed from them with the shared
+    :func:`creditsurv.loss.segment_summary`; the segment term structure and
+    speeds are rebuilt from the pooled sums of every partition and finished
+    with the projection stage's own table builders.
+    """
+    from .loss import EclResult, segment_summary
+    from .projection import WEIGHTED, ProjectionResult, _band_labels, _speeds_frames, _term_structure_frame
+
+    names = (*scenarios, WEIGHTED)
+    labels = _band_labels(tuple(band_edges))
+    loans = pd.concat([b["loans"] for b in bundles], ignore_index=True)
+    proj_loans = pd.concat([b["projection_loans"] for b in bundles], ignore_index=True)
+    seg_names = sorted({str(s) for s in proj_loans["segment"]})
+    ts, years = _term_sums([b["term_structure"] for b in bundles], names, seg_names, labels)
+    sp, max_age = _speed_sums([b["speeds"] for b in bundles], names, seg_names, labels, weights)
+    term_structure = _term_structure_frame(ts, names, seg_names, labels, years)
+    speeds, multiples = _speeds_frames(sp, names, seg_names, labels, max_age)
+    projection = ProjectionResult(
+        loans=proj_loans, term_structure=term_structure, speeds=speeds, speed_multiples=multiples,
+        scenarios=tuple(scenarios), weights=dict(weights), as_of_idx=int(as_of_idx),
+    )
+    return EclResult(loans=loans, segments=segment_summary(loans), projection=projection,
+                     scenarios=tuple(scenarios), weights=dict(weights))
+
+
+def _split_book(book: pd.DataFrame, partitions: int) -> list[pd.DataFrame]:
+    """Contiguous ranges of loans in loan-id order, about equal in size, none empty."""
+    frame = book.sort_values("loan_id", kind="stable").reset_index(drop=True)
+    k = max(1, min(int(partitions), len(frame)))
+    bounds = np.linspace(0, len(frame), k + 1).round().astype(int)
+    return [frame.iloc[a:b] for a, b in zip(bounds, bounds[1:]) if b > a]
+
+
+def expected_credit_loss(
+    loans: pd.DataFrame,
+    source,
+    paths,
+    *,
+    spark=None,
+    partitions: int | None = None,
+    schedule_writer=None,
+    curve_writer=None,
+    term_writer=None,
+    progress=None,
+    **kwargs,
+):
+    """:func:`creditsurv.loss.expected_credit_loss` run per partition of loans on Spark.
+
+    Parameters
+    ----------
+    loans, source, paths, **kwargs
+        As for :func:`creditsurv.loss.expected_credit_loss` (``as_of_idx``,
+        ``weights``, ``loss``, ``staging``, ...).
+    spark : SparkSession, optional
+        Default the active session.
+    partitions : int, optional
+        Loan partitions (default Spark's default parallelism); each is a
+        contiguous range of loan ids.
+    schedule_writer, curve_writer, term_writer : callable(pyarrow.Table), optional
+        As for the loss function. The long tables are computed on the
+        executors and pass through the driver one partition at a time, in
+        loan order, so the files are the same as the DuckDB engine's.
+    progress : callable(done, total), optional
+        Called after each partition with the loans done so far.
+
+    Returns
+    -------
+    EclResult
+        Equal to the DuckDB engine's: per-loan values do not depend on the
+        partitioning and the segment tables are combined from pooled sums.
+    """
+    from pyspark import StorageLevel
+    from pyspark.sql import SparkSession
+
+    from .loss import expected_credit_loss as ecl
+    from .projection import _weights
+
+    spark = spark or SparkSession.getActiveSession()
+    if spark is None:
+        raise ConfigError("spark: no active Spark session; open the panel with engine: spark first")
+    sc = spark.sparkContext
+    writers = {"schedule": schedule_writer, "curve": curve_writer, "term": term_writer}
+    wanted = tuple(k for k, v in writers.items() if v is not None)
+    if len(loans) == 0:
+        return ecl(loans, source, paths, progress=progress, **{f"{k}_writer": v for k, v in writers.items()}, **kwargs)
+    slices = _split_book(loans, partitions or sc.defaultParallelism)
+    fn = functools.partial(_ecl_partition, source, dict(paths), kwargs, wanted)
+    rdd = sc.parallelize(slices, len(slices)).mapPartitionsWithIndex(fn).persist(StorageLevel.MEMORY_AND_DISK)
+    bundles = []
+    try:
+        _collect(rdd.map(lambda b: b["n"]))  # every partition in parallel; results stay cached on the executors
+        done, total = 0, len(loans)
+        for bundle in rdd.toLocalIterator():
+            for name in wanted:
+                for data in bundle["tables"][name]:
+                    writers[name](_from_ipc(data))
+            bundle["tables"] = None
+            bundles.append(bundle)
+            done += bundle["n"]
+            if progress is not None:
+                progress(done, total)
+    finally:
+        rdd.unpersist()
+    scenarios = tuple(paths)
+    weights = _weights(scenarios, kwargs.get("weights"))
+    return combine_partitions(bundles, scenarios, weights, kwargs["as_of_idx"], kwargs.get("band_edges", ()))
