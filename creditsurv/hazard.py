@@ -45,6 +45,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from scipy import linalg, stats
+from scipy.linalg import blas
 
 from .errors import ConvergenceError, DataError, FewEventsWarning, ModelError, SeparationError, SingularDesignError
 from .features import FeatureSpec, quote_ident
@@ -276,7 +277,8 @@ class _DesignStore:
     def batches(self, size: int):
         for start in range(0, self.n, size):
             stop = min(start + size, self.n)
-            yield np.array(self.X[start:stop]), np.array(self.y[start:stop]), np.array(self.w[start:stop])
+            # Views of the memory map: the page cache is read in place, not copied.
+            yield np.asarray(self.X[start:stop]), np.asarray(self.y[start:stop]), np.asarray(self.w[start:stop])
 
     def close(self) -> None:
         for f in self._files.values():
@@ -317,7 +319,10 @@ def _batch_sums(X, y, w, beta, codes, kind, need_hess):
             for a in range(K):
                 for b in range(a, K):
                     v = w * P[a] * ((1.0 - P[b]) if a == b else -P[b])
-                    H[a * p:(a + 1) * p, b * p:(b + 1) * p] += X.T @ (X * v[:, None])
+                    block = _xtvx(X, v, sign=1.0 if a == b else -1.0)
+                    if a != b:  # above the diagonal of H: the whole (symmetric) block
+                        block = block + np.triu(block, 1).T
+                    H[a * p:(a + 1) * p, b * p:(b + 1) * p] += block
     else:
         for a, code in enumerate(codes):
             wa = w * ((y == 0) | (y == code))
@@ -327,8 +332,19 @@ def _batch_sums(X, y, w, beta, codes, kind, need_hess):
             g[a] += (wa * (Y[a] - P)) @ X
             if need_hess:
                 v = wa * P * (1.0 - P)
-                H[a * p:(a + 1) * p, a * p:(a + 1) * p] += X.T @ (X * v[:, None])
+                H[a * p:(a + 1) * p, a * p:(a + 1) * p] += _xtvx(X, v, sign=1.0)
     return ll, g, H
+
+
+def _xtvx(X, v, sign):
+    """Upper triangle of ``X' diag(v) X`` for ``v`` of one sign (``sign * v >= 0``).
+
+    ``X' diag(v) X = sign * Z'Z`` with ``Z = sqrt(sign * v) X``: a symmetric
+    rank-k update (BLAS ``dsyrk``) does half the work of a general product.
+    ``Z.T`` of a C-ordered ``Z`` is Fortran-ordered, so BLAS reads it in place.
+    """
+    Z = X * np.sqrt(np.maximum(sign * v, 0.0))[:, None]
+    return sign * blas.dsyrk(1.0, Z.T, trans=0)
 
 
 def _symmetric(H):
@@ -376,7 +392,7 @@ def _singular_columns(xtx: np.ndarray, names: list[str]) -> list[list[str]]:
 def _separation_problems(S, is01, names, groups, causes, codes, kind) -> list[str]:
     """Indicator columns (and reference levels) with no events of a cause, or only events."""
     problems = []
-    totals = S.sum(axis=0)  # by outcome 0, 1, 2
+    totals = S[0]  # the intercept column: rows by outcome 0, 1, 2
 
     def check(label, counts):
         n_rows = counts.sum()

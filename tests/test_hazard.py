@@ -374,6 +374,25 @@ def test_separation_names_the_level(small_con):
     assert fit_hazard(con, spec, ridge=1.0).converged
 
 
+def test_separation_of_a_reference_level_is_named(small_con):
+    # No default before age 3 (the first payment falls due at age 1): the
+    # reference age band [1-2] has no default events, so the intercept would run
+    # to minus infinity. The check must name the reference level, not only
+    # indicator columns.
+    con = duckdb.connect()
+    for t in ("panel", "macro", "loans"):
+        con.register(f"_{t}", small_con.sql(f"SELECT * FROM {t}").df())
+        con.execute(f"CREATE TABLE {t} AS SELECT * FROM _{t}")
+    lm = small_con.sql("SELECT * FROM loan_months").df()
+    lm.loc[(lm.age < 3) & (lm.outcome == 1), "outcome"] = 0
+    lm["outcome"] = lm["outcome"].astype(np.int8)
+    con.register("_lm", lm)
+    con.execute("CREATE TABLE loan_months AS SELECT * FROM _lm")
+    spec = _spec(con, baseline=Baseline(kind="age_bands", edges=(3, 12, 24)))
+    with pytest.raises(SeparationError, match=r"reference level 'age_band\[1-2\]' of 'age_band' has no default events"):
+        fit_hazard(con, spec)
+
+
 def test_singular_design_names_columns(small_con):
     spec = _spec(small_con, Covariate(name="score", column="credit_score"),
                  Covariate(name="score_again", column="credit_score", transform="none", floor=0.0), baseline=_spline())
