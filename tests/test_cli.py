@@ -56,3 +56,43 @@ def test_make_demo_data_refuses_to_overwrite(tmp_path, capsys):
     assert main(args) == 0
     assert main(args) == 2
     assert capsys.readouterr().err.startswith("SimulationError: ")
+
+
+def test_progress_is_silent_unless_stderr_is_a_terminal():
+    import io
+
+    from creditsurv.cli import _TerminalProgress
+
+    class Tty(io.StringIO):
+        def isatty(self):
+            return True
+
+    quiet = io.StringIO()
+    _TerminalProgress(quiet)("projection and ECL", 5, 10)
+    assert quiet.getvalue() == ""
+    tty = Tty()
+    bar = _TerminalProgress(tty)
+    bar("projection and ECL", None, None)
+    bar("projection and ECL", 5, 10)
+    bar("projection and ECL", 10, 10)
+    out = tty.getvalue()
+    assert "projection and ECL ..." in out
+    assert "5/10 loans" in out and "10/10 loans" in out and "#" * 30 in out
+
+
+def test_starter_config_follows_the_demo_config():
+    # The starter is the demo config with the demo's paths and name replaced.
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    demo = (root / "configs" / "demo.yaml").read_text()
+    starter = (root / "creditsurv" / "starter.yaml").read_text()
+    expected = (
+        demo.replace("# creditsurv demo config — Quillfield Home Loans, a fictional lender.\n",
+                     "# creditsurv starter config: put your files under data/ and adapt the column names.\n")
+        .replace("name: quillfield-demo\n", "name: my-book\n")
+        .replace("synthetic_data: true                      # the demo book is simulated: the report says so\n", "")
+        .replace("../data_demo/", "data/")
+        .replace("dir: ../reports", "dir: reports")
+    )
+    assert starter == expected
