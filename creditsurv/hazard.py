@@ -258,7 +258,6 @@ class _DesignStore:
         self.dir = Path(tempfile.mkdtemp(prefix="creditsurv-fit-", dir=temp_dir))
         self._files = {k: open(self.dir / f"{k}.bin", "wb") for k in ("X", "y", "w")}
         self.n = 0
-        self.X = self.y = self.w = None
 
     def append(self, X: np.ndarray, y: np.ndarray, w: np.ndarray) -> None:
         self._files["X"].write(np.ascontiguousarray(X, dtype=np.float64).tobytes())
@@ -269,22 +268,27 @@ class _DesignStore:
     def finish(self) -> None:
         for f in self._files.values():
             f.close()
-        if self.n:
-            self.X = np.memmap(self.dir / "X.bin", dtype=np.float64, mode="r", shape=(self.n, self.p))
-            self.y = np.memmap(self.dir / "y.bin", dtype=np.int8, mode="r", shape=(self.n,))
-            self.w = np.memmap(self.dir / "w.bin", dtype=np.float64, mode="r", shape=(self.n,))
 
     def batches(self, size: int):
-        for start in range(0, self.n, size):
-            stop = min(start + size, self.n)
-            # Views of the memory map: the page cache is read in place, not copied.
-            yield np.asarray(self.X[start:stop]), np.asarray(self.y[start:stop]), np.asarray(self.w[start:stop])
+        """The stored rows in batches of ``size``, read into fresh arrays.
+
+        Plain reads rather than a memory map: a map's pages count as the
+        process's resident memory once touched, so memory would grow with the
+        number of loan-months; here it is bounded by one batch.
+        """
+        p = self.p
+        with open(self.dir / "X.bin", "rb") as fx, open(self.dir / "y.bin", "rb") as fy, open(self.dir / "w.bin", "rb") as fw:
+            for start in range(0, self.n, size):
+                m = min(size, self.n - start)
+                X = np.fromfile(fx, dtype=np.float64, count=m * p).reshape(m, p)
+                y = np.fromfile(fy, dtype=np.int8, count=m)
+                w = np.fromfile(fw, dtype=np.float64, count=m)
+                yield X, y, w
 
     def close(self) -> None:
         for f in self._files.values():
             if not f.closed:
                 f.close()
-        self.X = self.y = self.w = None
         shutil.rmtree(self.dir, ignore_errors=True)
 
 
