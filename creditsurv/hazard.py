@@ -38,6 +38,7 @@ import json
 import math
 import shutil
 import tempfile
+import threading
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -340,6 +341,23 @@ def _batch_sums(X, y, w, beta, codes, kind, need_hess):
     return ll, g, H
 
 
+_WORK = threading.local()
+
+
+def _work_buffer(shape) -> np.ndarray:
+    """A reusable scratch array of ``shape`` (one per thread).
+
+    Batches are tens of megabytes; allocating a fresh scratch array for every
+    block of every batch costs more in page faults than the arithmetic.
+    """
+    size = int(np.prod(shape))
+    buf = getattr(_WORK, "buf", None)
+    if buf is None or buf.size < size:
+        buf = np.empty(size)
+        _WORK.buf = buf
+    return buf[:size].reshape(shape)
+
+
 def _xtvx(X, v, sign):
     """Upper triangle of ``X' diag(v) X`` for ``v`` of one sign (``sign * v >= 0``).
 
@@ -347,7 +365,7 @@ def _xtvx(X, v, sign):
     rank-k update (BLAS ``dsyrk``) does half the work of a general product.
     ``Z.T`` of a C-ordered ``Z`` is Fortran-ordered, so BLAS reads it in place.
     """
-    Z = X * np.sqrt(np.maximum(sign * v, 0.0))[:, None]
+    Z = np.multiply(X, np.sqrt(np.maximum(sign * v, 0.0))[:, None], out=_work_buffer(X.shape))
     return sign * blas.dsyrk(1.0, Z.T, trans=0)
 
 
