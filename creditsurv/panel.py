@@ -543,6 +543,20 @@ class Check:
 
 
 # The one table of checks and their default severities, in report order.
+_SUSPECT_LOANS = """suspect AS (
+            -- A loan whose months are exactly min..max, once each, has as many rows as months
+            -- in its span and the sum and sum of squares of that run; only the other loans
+            -- are examined row by row (a cheap aggregate instead of a sort of the whole panel).
+            SELECT loan_id FROM panel GROUP BY loan_id
+            HAVING count(*) <> max(month_idx) - min(month_idx) + 1
+                OR sum(CAST(month_idx AS BIGINT)) * 2 <> (min(month_idx) + max(month_idx)) * count(*)
+                OR sum(CAST(month_idx AS BIGINT) * month_idx) <>
+                   CAST(max(month_idx) AS BIGINT) * (max(month_idx) + 1) * (2 * max(month_idx) + 1) / 6
+                   - CAST(min(month_idx) - 1 AS BIGINT) * min(month_idx) * (2 * min(month_idx) - 1) / 6),"""
+"""Loans whose rows are not one clean run of months: the only ones the duplicate
+and gap checks examine row by row."""
+
+
 CHECKS: tuple[Check, ...] = (
     Check(
         "panel_keys_missing", "error", "panel", "rows", ("loan_id", "month"),
@@ -554,16 +568,7 @@ CHECKS: tuple[Check, ...] = (
     Check(
         "duplicate_loan_months", "error", "panel", "loan-months", ("loan_id", "month"),
         "Loan-months that appear in more than one panel row.",
-        """suspect AS (
-            -- A loan whose months are exactly min..max, once each, has as many rows as months
-            -- in its span and the sum and sum of squares of that run; only the other loans
-            -- are examined row by row (a cheap aggregate instead of a sort of the whole panel).
-            SELECT loan_id FROM panel GROUP BY loan_id
-            HAVING count(*) <> max(month_idx) - min(month_idx) + 1
-                OR sum(CAST(month_idx AS BIGINT)) * 2 <> (min(month_idx) + max(month_idx)) * count(*)
-                OR sum(CAST(month_idx AS BIGINT) * month_idx) <>
-                   CAST(max(month_idx) AS BIGINT) * (max(month_idx) + 1) * (2 * max(month_idx) + 1) / 6
-                   - CAST(min(month_idx) - 1 AS BIGINT) * min(month_idx) * (2 * min(month_idx) - 1) / 6),
+        _SUSPECT_LOANS + """
         offending AS (
             SELECT loan_id, month, count(*) AS rows FROM panel
             WHERE loan_id IN (SELECT loan_id FROM suspect)
@@ -572,16 +577,7 @@ CHECKS: tuple[Check, ...] = (
     Check(
         "month_gaps", "error", "panel", "rows", ("loan_id", "month"),
         "Panel rows more than one month after the loan's previous row.",
-        """suspect AS (
-            -- A loan whose months are exactly min..max, once each, has as many rows as months
-            -- in its span and the sum and sum of squares of that run; only the other loans
-            -- are examined row by row (a cheap aggregate instead of a sort of the whole panel).
-            SELECT loan_id FROM panel GROUP BY loan_id
-            HAVING count(*) <> max(month_idx) - min(month_idx) + 1
-                OR sum(CAST(month_idx AS BIGINT)) * 2 <> (min(month_idx) + max(month_idx)) * count(*)
-                OR sum(CAST(month_idx AS BIGINT) * month_idx) <>
-                   CAST(max(month_idx) AS BIGINT) * (max(month_idx) + 1) * (2 * max(month_idx) + 1) / 6
-                   - CAST(min(month_idx) - 1 AS BIGINT) * min(month_idx) * (2 * min(month_idx) - 1) / 6),
+        _SUSPECT_LOANS + """
         ordered AS (
             SELECT loan_id, month, month_idx,
                    lag(month) OVER w AS previous_month,
