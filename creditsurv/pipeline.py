@@ -45,6 +45,8 @@ def check_data(config_path, out: Path | None = None) -> Outcome:
     from .panel import format_checks, open_panel, run_checks
 
     cfg = load_config(config_path)
+    if (spark := _engine(cfg)) is not None:
+        open_panel, run_checks = spark.open_panel, spark.run_checks
     if out is not None:
         _refuse_existing(Path(out), "the check table")
     with open_panel(cfg) as panel:
@@ -58,8 +60,19 @@ def check_data(config_path, out: Path | None = None) -> Outcome:
 # --------------------------------------------------------------------------- shared steps
 
 
+def _engine(cfg):
+    """The module that holds the engine-specific steps: DuckDB's stages or Spark's."""
+    if cfg.engine == "spark":
+        from . import _spark
+
+        return _spark
+    return None
+
+
 def _open_checked(cfg):
     """Open the panel, run the data checks (raise on errors), label events."""
+    if (spark := _engine(cfg)) is not None:
+        return spark.open_checked(cfg)
     from .events import label_events
     from .panel import open_panel, raise_for_errors, run_checks
 
@@ -72,6 +85,14 @@ def _open_checked(cfg):
         panel.close()
         raise
     return panel, checks
+
+
+def _event_counts(cfg, panel):
+    if (spark := _engine(cfg)) is not None:
+        return spark.event_counts(panel)
+    from .events import event_counts
+
+    return event_counts(panel)
 
 
 def _development_filter(cfg) -> tuple[str, tuple[int, int]]:
@@ -89,6 +110,8 @@ def _hazard_model(cfg, panel, temp_dir):
     from .hazard import fit_model, load_model
     from .speeds import BenchmarkCurves, HazardTable
 
+    if cfg.model.source == "fitted" and cfg.model.path is None and (spark := _engine(cfg)) is not None:
+        return spark.hazard_model(cfg, panel, temp_dir)
     if cfg.model.source == "benchmark":
         return BenchmarkCurves(psa=cfg.model.psa, sda=cfg.model.sda)
     if cfg.model.source == "table":
@@ -168,7 +191,6 @@ def fit_model_command(config_path, out_dir: Path | None = None, argv=None) -> Ou
     The folder ``fit_<YYYY-MM>_<hash>`` is created under ``out_dir`` (default the
     config's output folder) and never overwritten.
     """
-    from .events import event_counts
     from .runs import RunFolder
 
     cfg = load_config(config_path)
@@ -181,7 +203,7 @@ def fit_model_command(config_path, out_dir: Path | None = None, argv=None) -> Ou
             model.save(run.add_file("hazard_model.json"))
             run.add_table(model.summary(), "coefficients.csv")
             run.add_table(checks, "data_checks.csv")
-            run.add_table(event_counts(panel), "event_counts.csv")
+            run.add_table(_event_counts(cfg, panel), "event_counts.csv")
             manifest["model"] = _model_summary(model)
             manifest["data_check_warnings"] = _fired_warnings(checks)
             final = run.commit(manifest)
@@ -209,6 +231,8 @@ def _load_for_run(config_path, as_of: str | None):
 
 
 def _macro_history(panel) -> "pd.DataFrame":
+    if (spark := _engine(panel.cfg)) is not None:
+        return spark.macro_history(panel)
     frame = panel.con.execute("SELECT * EXCLUDE (month) FROM macro ORDER BY month_idx").df()
     return frame.set_index("month_idx")
 
@@ -240,6 +264,11 @@ def project_book(cfg, panel, model, run, *, progress=None):
     from .loss import expected_credit_loss
     from .projection import TableWriter, prepare_paths, segment_level, segment_pd_tables, segment_speeds
 
+    if (spark := _engine(cfg)) is not None:
+        import functools
+
+        book_at_as_of = spark.book_at_as_of
+        expected_credit_loss = functools.partial(spark.expected_credit_loss, partitions=cfg.spark.partitions)
     book = book_at_as_of(panel, cfg.segments.column)
     history = _macro_history(panel)
     remaining = (book["term"] - book["age"]).clip(lower=0)
@@ -339,7 +368,6 @@ def execute_run(
     """
     import shutil
 
-    from .events import event_counts
     from .runs import RunFolder
 
     if not cfg.scenarios:
@@ -364,12 +392,12 @@ def execute_run(
                 model.save(run.add_file("hazard_model.json"))
                 run.add_table(model.summary(), "coefficients.csv")
             run.add_table(checks, "data_checks.csv")
-            run.add_table(event_counts(panel), "event_counts.csv")
+            run.add_table(_event_counts(cfg, panel), "event_counts.csv")
             _say(progress, "projection and ECL")
             chunk_progress = (lambda done, total: progress("projection and ECL", done, total)) if progress else None
             result, report_tables, totals = project_book(cfg, panel, model, run, progress=chunk_progress)
             report_tables["data_checks"] = checks
-            report_tables["event_counts"] = event_counts(panel)
+            report_tables["event_counts"] = _event_counts(cfg, panel)
             if hasattr(model, "summary"):
                 report_tables["coefficients"] = model.summary()
             manifest["model"] = _model_summary(model)
@@ -405,6 +433,9 @@ def _validate_run(cfg, panel, model, result, run, manifest: dict, report_tables:
     """The validation pack: tables under ``validation/``, summary in the manifest and report."""
     from .validation import validation_pack
 
+    if cfg.engine != "duckdb":
+        manifest["validation"] = {"notes": [f"the validation pack runs on the DuckDB engine only; engine is {cfg.engine}"]}
+        return
     _say(progress, "validation")
     live = (result.loans["stage"] != 3).to_numpy()
     pack = validation_pack(cfg, panel, model, current_pd_12m=result.loans.loc[live, "pd_12m"].to_numpy())

@@ -1,0 +1,263 @@
+"""The Spark engine against the DuckDB engine: same checks, same fit, same loan-level PD and ECL.
+
+The reference for every number here is the DuckDB engine on the same files;
+tolerances are relative, 1e-9 (sums are added in another order on Spark).
+"""
+
+from __future__ import annotations
+
+import functools
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pytest
+import yaml
+
+pytest.importorskip("pyspark")
+if shutil.which("java") is None:
+    pytest.skip("no Java runtime on PATH: Spark needs one (.ci/run installs it)", allow_module_level=True)
+
+from test_panel import BAD_BOOKS, MACRO_COVARIATE  # noqa: E402 - the crafted bad books of the DuckDB tests
+
+from creditsurv import _spark, pipeline  # noqa: E402
+from creditsurv.config import SparkSettings, load_config  # noqa: E402
+from creditsurv.errors import DataCheckError, FewEventsWarning  # noqa: E402
+from creditsurv.events import book_at_as_of, event_counts  # noqa: E402
+from creditsurv.loss import expected_credit_loss  # noqa: E402
+from creditsurv.panel import open_panel, run_checks  # noqa: E402
+from creditsurv.projection import prepare_paths  # noqa: E402
+from creditsurv.simulate import write_demo_book  # noqa: E402
+
+# PySpark warns on import of its pandas helpers under pandas 3; nothing else is ignored.
+pytestmark = pytest.mark.filterwarnings("ignore:PySpark does not yet fully support pandas:FutureWarning")
+
+ROOT = Path(__file__).resolve().parents[1]
+RTOL = 1e-9
+
+
+@pytest.fixture(scope="session")
+def spark():
+    """One local Spark session for the module: two cores, two shuffle partitions, no UI."""
+    session, created = _spark.spark_session(
+        SparkSettings(master="local[2]", partitions=2, settings={"spark.ui.enabled": "false", "spark.driver.memory": "2g"})
+    )
+    session.sparkContext.setLogLevel("FATAL")
+    yield session
+    if created:
+        session.stop()
+
+
+@pytest.fixture(scope="session")
+def spark_book(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("spark_book")
+    write_demo_book(folder, 3000, 314)
+    data = yaml.safe_load((ROOT / "configs" / "demo.yaml").read_text())
+    for key in ("panel", "loans", "macro"):
+        data["inputs"][key]["path"] = str(folder / Path(data["inputs"][key]["path"]).name)
+    for s in data["scenarios"]:
+        s["path"] = str(folder / "scenarios" / Path(s["path"]).name)
+    data["outputs"]["dir"] = str(folder / "reports")
+    data["spark"] = {"master": "local[2]", "partitions": 3}
+    path = folder / "config.yaml"
+    path.write_text(yaml.safe_dump(data, sort_keys=False))
+    return load_config(path)
+
+
+def _ecl(cfg, book, history, model, ecl, **extra):
+    remaining = (book["term"] - book["age"]).clip(lower=0)
+    until = int(cfg.as_of) + int(remaining.max()) + cfg.loss.lgd.months_to_recovery + 1
+    paths = prepare_paths(
+        cfg.scenarios, history, as_of_idx=int(cfg.as_of), until_idx=until, extension=cfg.scenario_extension,
+        required_series=pipeline._macro_series_needed(model, cfg),
+    )
+    annual = []
+    result = ecl(
+        book, model, paths, as_of_idx=int(cfg.as_of), weights={s.name: s.weight for s in cfg.scenarios},
+        loss=cfg.loss, staging=cfg.staging, default_days_past_due=cfg.default_definition.days_past_due,
+        hpi_series=cfg.collateral.hpi_series, region_column=cfg.collateral.region_column,
+        market_rate_series=cfg.collateral.market_rate_series, band_column=cfg.segments.band_column,
+        band_edges=cfg.segments.band_edges, term_writer=annual.append, **extra,
+    )
+    return result, pa.concat_tables(annual)
+
+
+_EVENT_TABLES = (("loan_outcomes", "loan_id"), ("loan_months", "loan_id, month_idx"))
+
+
+def _run(cfg, tmp, engine, reference_model=None):
+    """Checks, events, fit, book and ECL of one engine, as the pipeline's run calls them.
+
+    With ``reference_model`` the Spark engine also projects that model, so that
+    the partitioned ECL can be compared with the DuckDB engine's on the very same
+    coefficients.
+    """
+    out = {}
+    if engine == "duckdb":
+        panel, checks = pipeline._open_checked(cfg)
+        with panel:
+            with pytest.warns(FewEventsWarning):  # 3,000 loans give few defaults for 10 terms
+                model = pipeline._hazard_model(cfg, panel, tmp)
+            book, history, counts = book_at_as_of(panel, cfg.segments.column), pipeline._macro_history(panel), event_counts(panel)
+            for name, key in _EVENT_TABLES:
+                out[name] = panel.con.execute(f"SELECT * FROM {name} ORDER BY {key}").df()
+        ecl = expected_credit_loss
+    else:
+        panel, checks = _spark.open_checked(cfg)
+        with panel:
+            with pytest.warns(FewEventsWarning):
+                model = _spark.hazard_model(cfg, panel, tmp)
+            book, history, counts = _spark.book_at_as_of(panel, cfg.segments.column), _spark.macro_history(panel), _spark.event_counts(panel)
+            for name, key in _EVENT_TABLES:
+                table = _spark._arrow(panel.spark.sql(f"SELECT * FROM {name}"))
+                out[name] = _spark._as_duckdb_frame(table, f"SELECT * FROM t ORDER BY {key}")
+        ecl = functools.partial(_spark.expected_credit_loss, partitions=cfg.spark.partitions)
+    out["ecl"], out["annual"] = _ecl(cfg, book, history, model, ecl)
+    if reference_model is not None:
+        out["ecl_reference"], out["annual_reference"] = _ecl(cfg, book, history, reference_model, ecl)
+    out.update(checks=checks, model=model, book=book, history=history, counts=counts)
+    return out
+
+
+@pytest.fixture(scope="session")
+def both_engines(spark, spark_book, tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("fit")
+    duck = _run(spark_book, tmp, "duckdb")
+    return duck, _run(spark_book, tmp, "spark", reference_model=duck["model"])
+
+
+def _close(a: pd.DataFrame, b: pd.DataFrame, atol: float = 0.0) -> None:
+    pd.testing.assert_frame_equal(a, b, check_exact=False, rtol=RTOL, atol=atol)
+
+
+# Conditional PDs of the far years are differences of nearly equal cumulative PDs
+# (values down to 1e-11): there a last-bit difference in the pooled sums shows at
+# ~1e-9 relative, so those tables are also allowed 1e-12 absolute on probabilities.
+PROB_ATOL = 1e-12
+
+
+# --------------------------------------------------------------------------- the book, end to end
+
+
+def test_checks_events_book_and_macro_history_are_the_same(both_engines):
+    duck, spark = both_engines
+    pd.testing.assert_frame_equal(duck["checks"], spark["checks"])
+    pd.testing.assert_frame_equal(duck["counts"], spark["counts"])
+    pd.testing.assert_frame_equal(duck["book"], spark["book"])  # same rows, columns, order and dtypes
+    pd.testing.assert_frame_equal(duck["history"], spark["history"])
+    for name, _key in _EVENT_TABLES:
+        pd.testing.assert_frame_equal(duck[name], spark[name])
+
+
+def test_fit_gives_the_same_coefficients_and_standard_errors(both_engines):
+    duck, spark = both_engines
+    a, b = duck["model"], spark["model"]
+    assert (a.n_rows, a.events, a.n_stored_rows, a.converged) == (b.n_rows, b.events, b.n_stored_rows, b.converged)
+    assert a.spec.columns == b.spec.columns
+    _close(a.params, b.params)
+    _close(a.bse, b.bse)
+    np.testing.assert_allclose(b.cov, a.cov, rtol=1e-8, atol=1e-14)
+    assert b.loglik == pytest.approx(a.loglik, rel=1e-12)
+
+
+def test_loan_level_pd_and_ecl_are_the_same(both_engines):
+    duck, spark = both_engines
+    a, b = duck["ecl"], spark["ecl"]  # each engine with its own fit
+    assert len(a.loans) == len(b.loans) > 1000
+    _close(a.loans, b.loans)
+    _close(a.projection.loans, b.projection.loans)
+
+
+def test_partitioned_ecl_equals_the_single_machine_one(both_engines):
+    """Same coefficients, so only the partitioning differs."""
+    duck, spark = both_engines
+    a, b = duck["ecl"], spark["ecl_reference"]
+    _close(a.loans, b.loans)
+    _close(a.segments, b.segments)
+    # segment tables combined from the partitions' pooled sums
+    _close(a.projection.term_structure, b.projection.term_structure, atol=PROB_ATOL)
+    _close(a.projection.speeds, b.projection.speeds)
+    _close(a.projection.speed_multiples, b.projection.speed_multiples)
+    # the long table arrives through the driver in loan order
+    pa_a, pa_b = duck["annual"], spark["annual_reference"]
+    assert pa_a.column_names == pa_b.column_names and pa_a.num_rows == pa_b.num_rows
+    _close(pa_a.to_pandas(), pa_b.to_pandas(), atol=PROB_ATOL)
+
+
+# --------------------------------------------------------------------------- the data checks on crafted bad books
+
+
+def _compose(mutations):
+    def mutate(p, lo, m):
+        for f in mutations:
+            p, lo, m = f(p, lo, m)
+        return p, lo, m
+
+    return mutate
+
+
+# Every crafted defect of the DuckDB tests in one book, then each group on its own
+# (a NULL month and a duplicate interact with the other checks' counts).
+CRAFTED = {
+    "every_defect": _compose([m for _n, m, *_ in BAD_BOOKS]),
+    "keys_and_gaps": _compose([m for n, m, *_ in BAD_BOOKS if n in ("panel_keys_missing", "month_gaps", "duplicate_loan_months")]),
+    "macro_only": _compose([m for n, m, *_ in BAD_BOOKS if n.startswith("macro_")]),
+}
+
+
+@pytest.mark.parametrize(
+    "case, fmt", [("every_defect", "parquet"), ("every_defect", "csv"), ("keys_and_gaps", "parquet"), ("macro_only", "parquet")]
+)
+def test_data_checks_fire_on_spark_exactly_as_on_duckdb(spark, panel_clean_book, panel_config_factory, case, fmt):
+    panel, loans, macro = CRAFTED[case](*panel_clean_book)
+    cfg = panel_config_factory(panel, loans, macro, fmt=fmt, model=MACRO_COVARIATE)
+    with open_panel(cfg) as p:
+        expected = run_checks(p)
+    with _spark.open_panel(cfg) as p:
+        got = _spark.run_checks(p)
+    assert (expected["count"] > 0).sum() >= 3
+    pd.testing.assert_frame_equal(got, expected)  # check, severity, count, examples, source, columns, description
+
+
+def test_open_checked_raises_the_same_error(spark, panel_clean_book, panel_config_factory):
+    panel, loans, macro = CRAFTED["keys_and_gaps"](*panel_clean_book)
+    cfg = panel_config_factory(panel, loans, macro, model=MACRO_COVARIATE)
+    with pytest.raises(DataCheckError) as duck:
+        pipeline._open_checked(cfg)
+    with pytest.raises(DataCheckError) as on_spark:
+        _spark.open_checked(cfg)
+    assert str(on_spark.value) == str(duck.value)
+    assert not spark.catalog.tableExists("panel_all")  # a failed open leaves no views behind
+
+
+# --------------------------------------------------------------------------- the dialect rendering
+
+
+def test_spark_rendering_of_the_shared_sql():
+    sql = "SELECT arg_min(age, month_idx) FILTER (WHERE x), CAST(a AS VARCHAR), m // 12 FROM t WHERE m = $as_of"
+    assert _spark.spark_sql(sql) == (
+        "SELECT min_by(age, month_idx) FILTER (WHERE x), CAST(a AS STRING), m div 12 FROM t WHERE m = :as_of"
+    )
+    codes = _spark.spark_sql("coalesce(list_contains(CAST($codes AS VARCHAR[]), status), FALSE)", codes=["a'b"])
+    assert codes == "coalesce(array_contains(CAST(array('a''b') AS ARRAY<STRING>), status), FALSE)"
+
+
+def test_a_whole_run_on_spark_writes_the_same_tables(spark, spark_book, tmp_path):
+    # `engine: spark` end to end through the run command: the loan-level ECL and
+    # the PD table equal the DuckDB engine's run of the same config.
+    import dataclasses
+
+    duck = dataclasses.replace(spark_book, engine="duckdb")
+    on_spark = dataclasses.replace(spark_book, engine="spark")
+    with pytest.warns(FewEventsWarning):
+        a = pipeline.execute_run(duck, tmp_path / "duckdb").path
+    with pytest.warns(FewEventsWarning):
+        b = pipeline.execute_run(on_spark, tmp_path / "spark").path
+    la, lb = pd.read_parquet(a / "loan_ecl.parquet"), pd.read_parquet(b / "loan_ecl.parquet")
+    assert list(la["loan_id"]) == list(lb["loan_id"]) and list(la["stage"]) == list(lb["stage"])
+    for col in ("pd_12m", "pd_lifetime", "ead", "lgd", "ecl_12m", "ecl_lifetime", "ecl_reported"):
+        np.testing.assert_allclose(lb[col], la[col], rtol=RTOL, atol=1e-12, err_msg=col)
+    ta, tb = pd.read_csv(a / "segment_pd_table.csv"), pd.read_csv(b / "segment_pd_table.csv")
+    np.testing.assert_allclose(tb["cumulative_pd"], ta["cumulative_pd"], rtol=RTOL, atol=1e-12)
