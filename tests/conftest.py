@@ -98,3 +98,18 @@ def panel_config_factory(tmp_path):
 
     factory.base_dir = Path(tmp_path)
     return factory
+
+
+def demo_config_data(book: Path, reports: Path) -> dict:
+    """``configs/demo.yaml`` as a dict, its inputs and scenarios pointed at ``book``
+    (a folder written by ``write_demo_book``) and its runs at ``reports``."""
+    import yaml
+
+    root = Path(__file__).resolve().parents[1]
+    data = yaml.safe_load((root / "configs" / "demo.yaml").read_text())
+    for key in ("panel", "loans", "macro"):
+        data["inputs"][key]["path"] = str(Path(book) / Path(data["inputs"][key]["path"]).name)
+    for scenario in data["scenarios"]:
+        scenario["path"] = str(Path(book) / "scenarios" / Path(scenario["path"]).name)
+    data["outputs"]["dir"] = str(reports)
+    return data

@@ -10,6 +10,7 @@ import pyarrow.parquet as pq
 import pytest
 import yaml
 
+from conftest import demo_config_data
 from creditsurv import pipeline
 from creditsurv.cli import main
 from creditsurv.errors import DataCheckWarning
@@ -28,12 +29,7 @@ def small_book(tmp_path_factory):
 
 
 def _config(book: Path, tmp: Path, outputs=None, **model) -> Path:
-    data = yaml.safe_load((ROOT / "configs" / "demo.yaml").read_text())
-    for key in ("panel", "loans", "macro"):
-        data["inputs"][key]["path"] = str(book / Path(data["inputs"][key]["path"]).name)
-    for s in data["scenarios"]:
-        s["path"] = str(book / "scenarios" / Path(s["path"]).name)
-    data["outputs"]["dir"] = str(tmp / "reports")
+    data = demo_config_data(book, tmp / "reports")
     data["outputs"].update(outputs or {})
     data["model"].update(model)
     path = tmp / "config.yaml"

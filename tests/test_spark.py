@@ -20,6 +20,7 @@ pytest.importorskip("pyspark")
 if shutil.which("java") is None:
     pytest.skip("no Java runtime on PATH: Spark needs one (.ci/run installs it)", allow_module_level=True)
 
+from conftest import demo_config_data  # noqa: E402
 from test_panel import BAD_BOOKS, MACRO_COVARIATE  # noqa: E402 - the crafted bad books of the DuckDB tests
 
 from creditsurv import _spark, pipeline  # noqa: E402
@@ -54,12 +55,7 @@ def spark():
 def spark_book(tmp_path_factory):
     folder = tmp_path_factory.mktemp("spark_book")
     write_demo_book(folder, 3000, 314)
-    data = yaml.safe_load((ROOT / "configs" / "demo.yaml").read_text())
-    for key in ("panel", "loans", "macro"):
-        data["inputs"][key]["path"] = str(folder / Path(data["inputs"][key]["path"]).name)
-    for s in data["scenarios"]:
-        s["path"] = str(folder / "scenarios" / Path(s["path"]).name)
-    data["outputs"]["dir"] = str(folder / "reports")
+    data = demo_config_data(folder, folder / "reports")
     data["spark"] = {"master": "local[2]", "partitions": 3}
     path = folder / "config.yaml"
     path.write_text(yaml.safe_dump(data, sort_keys=False))

@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
+from conftest import demo_config_data
 from scipy import stats
 from sklearn.metrics import roc_auc_score
 from statsmodels.duration.survfunc import CumIncidenceRight
@@ -64,12 +65,7 @@ class TrueHazard:
 
 def _config(book: Path, tmp: Path, *, model=None, **top):
     """configs/demo.yaml pointed at ``book`` (as tests/test_pipeline.py does), with overrides."""
-    data = yaml.safe_load((ROOT / "configs" / "demo.yaml").read_text())
-    for key in ("panel", "loans", "macro"):
-        data["inputs"][key]["path"] = str(book / Path(data["inputs"][key]["path"]).name)
-    for s in data["scenarios"]:
-        s["path"] = str(book / "scenarios" / Path(s["path"]).name)
-    data["outputs"]["dir"] = str(tmp / "reports")
+    data = demo_config_data(book, tmp / "reports")
     data["model"].update(model or {})
     data.update(top)
     path = tmp / f"config_{len(list(tmp.glob('config_*.yaml')))}.yaml"
