@@ -609,21 +609,10 @@ def book_at_as_of(panel: SparkPanel, segment_column: str | None = None) -> pd.Da
     """
     if not panel.has_view("loan_outcomes"):
         label_events(panel)
-    q = _panel.quote_ident
-    segment = f"CAST(l.{q(segment_column)} AS STRING)" if segment_column else "'all'"
-    sql = f"""
-        SELECT l.*,
-               o.last_age AS age,
-               o.balance_at_as_of AS balance,
-               o.days_past_due_at_as_of AS days_past_due,
-               o.in_default_at_as_of AS in_default,
-               {segment} AS segment
-        FROM loan_outcomes AS o
-        JOIN loans AS l USING (loan_id)
-        WHERE o.last_month_idx = :as_of
-          AND o.event IN ('default', 'censored')
-          AND o.balance_at_as_of > :paid_off
-    """
+    from .events import BOOK_SQL
+
+    segment = f"CAST(l.{_panel.quote_ident(segment_column)} AS VARCHAR)" if segment_column else "'all'"
+    sql = spark_sql(BOOK_SQL.format(segment=segment))
     cfg = panel.cfg
     params = {"as_of": int(cfg.as_of), "paid_off": float(cfg.events.paid_off_balance)}
     try:

@@ -193,6 +193,23 @@ def event_counts(panel: Panel) -> pd.DataFrame:
     return frame.astype({"loans": "int64", "share": "float64"})
 
 
+BOOK_SQL = """
+    SELECT l.*,
+           o.last_age AS age,
+           o.balance_at_as_of AS balance,
+           o.days_past_due_at_as_of AS days_past_due,
+           o.in_default_at_as_of AS in_default,
+           {segment} AS segment
+    FROM loan_outcomes AS o
+    JOIN loans AS l USING (loan_id)
+    WHERE o.last_month_idx = $as_of
+      AND o.event IN ('default', 'censored')
+      AND o.balance_at_as_of > $paid_off
+    ORDER BY loan_id
+"""
+"""The book at the reporting month (both engines): ``{segment}`` is the segment expression."""
+
+
 def book_at_as_of(panel: Panel, segment_column: str | None = None) -> pd.DataFrame:
     """The book at the reporting month: every loan still on it, one row each.
 
@@ -211,21 +228,7 @@ def book_at_as_of(panel: Panel, segment_column: str | None = None) -> pd.DataFra
         label_events(panel)
     from .panel import quote_ident
 
-    segment = f"CAST(l.{quote_ident(segment_column)} AS VARCHAR)" if segment_column else "'all'"
-    sql = f"""
-        SELECT l.*,
-               o.last_age AS age,
-               o.balance_at_as_of AS balance,
-               o.days_past_due_at_as_of AS days_past_due,
-               o.in_default_at_as_of AS in_default,
-               {segment} AS segment
-        FROM loan_outcomes AS o
-        JOIN loans AS l USING (loan_id)
-        WHERE o.last_month_idx = $as_of
-          AND o.event IN ('default', 'censored')
-          AND o.balance_at_as_of > $paid_off
-        ORDER BY loan_id
-    """
+    sql = BOOK_SQL.format(segment=f"CAST(l.{quote_ident(segment_column)} AS VARCHAR)" if segment_column else "'all'")
     cfg = panel.cfg
     params = {"as_of": int(cfg.as_of), "paid_off": float(cfg.events.paid_off_balance)}
     try:
