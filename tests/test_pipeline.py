@@ -236,3 +236,23 @@ def test_report_is_self_contained_and_shows_the_runs_numbers(demo_run):
     assert fmt_money(loans["ead"].sum()) in text
     assert "validated independently under the institution&#x27;s model risk policy" in text
     assert "Accounting judgement and local supervisory rules prevail" in text
+
+
+def test_fit_command_writes_a_model_that_loads_and_predicts_the_same(small_book, tmp_path, capsys):
+    from creditsurv.hazard import load_model
+
+    cfg = _config(small_book, tmp_path)
+    assert main(["fit", str(cfg), "--out", str(tmp_path / "fits")]) == 0
+    (folder,) = (tmp_path / "fits").iterdir()
+    assert folder.name.startswith("fit_2024-12_")
+    coefficients = pd.read_csv(folder / "coefficients.csv")
+    assert list(coefficients.columns) == ["cause", "term", "estimate", "std_error", "z", "p_value", "ci_lo", "ci_hi"]
+    model = load_model(folder / "hazard_model.json")
+    summary = model.summary()
+    np.testing.assert_allclose(summary["estimate"], coefficients["estimate"], rtol=1e-15)
+    # z and the 95% interval follow from the estimate and its standard error (normal approximation).
+    np.testing.assert_allclose(coefficients["z"], coefficients["estimate"] / coefficients["std_error"], rtol=1e-12)
+    np.testing.assert_allclose(coefficients["ci_hi"] - coefficients["estimate"], 1.959963984540054 * coefficients["std_error"], rtol=1e-9)
+    manifest = json.loads((folder / MANIFEST).read_text())
+    assert manifest["kind"] == "fit" and manifest["model"]["converged"]
+    assert "fitted a multinomial model" in capsys.readouterr().out
