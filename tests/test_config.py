@@ -35,7 +35,7 @@ def _problems(change, tmp_path) -> list[str]:
             lambda d: d.update(as_f="2021-01"),
             "as_f: unknown key (valid keys: as_of, inputs, windows, name, default_definition, events, model, "
             "collateral, scenarios, scenario_extension, loss, staging, segments, validation, outputs, engine, "
-            "duckdb, spark, checks, seed); did you mean 'as_of'?",
+            "duckdb, spark, checks, seed, synthetic_data); did you mean 'as_of'?",
             id="unknown-top-level",
         ),
         pytest.param(
