@@ -94,7 +94,9 @@ def test_manifest_records_inputs_config_and_every_output_hash(demo_run, small_bo
     assert inputs["panel.parquet"]["sha256"] == sha256_file(small_book / "panel.parquet")
     assert manifest["config_resolved"]["as_of"] == "2024-12"
     assert manifest["model"]["converged"] is True
-    assert sorted(p.name for p in demo_run.iterdir()) == sorted([MANIFEST, *[o["file"] for o in manifest["outputs"]]])
+    # Every file in the folder is recorded (and nothing else is there).
+    on_disk = sorted(str(p.relative_to(demo_run)) for p in demo_run.rglob("*") if p.is_file())
+    assert on_disk == sorted([MANIFEST, *[o["file"] for o in manifest["outputs"]]])
 
 
 def test_benchmark_curves_run_reports_their_own_speeds(small_book, tmp_path):
