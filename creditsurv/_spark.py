@@ -27,7 +27,6 @@ Entry points for the pipeline: :func:`open_checked`, :func:`hazard_model`,
 
 from __future__ import annotations
 
-import dataclasses
 import functools
 import glob
 import hashlib
@@ -454,25 +453,11 @@ def open_panel(cfg) -> SparkPanel:
 
 def _build_views(panel: SparkPanel) -> None:
     cfg, spark = panel.cfg, panel.spark
-    inputs = [("panel", "inputs.panel", cfg.inputs.panel), ("loans", "inputs.loans", cfg.inputs.loans)]
-    if cfg.inputs.macro is not None:
-        inputs.append(("macro", "inputs.macro", cfg.inputs.macro))
+    inputs = _panel._input_sources(cfg)
     sources = {name: _register(spark, name, key, source) for name, key, source in inputs}
     panel._sources = sources
+    _panel._resolve_inputs(cfg, inputs, sources)
     problems: list[str] = []
-    for name, _key, source in inputs:
-        wanted = {f.name: getattr(source.columns, f.name) for f in dataclasses.fields(source.columns)}
-        _panel._resolve_columns(sources[name], wanted, problems)
-    if "macro" in sources:
-        series = set(sources["macro"].types) - {sources["macro"].mapping.get("month")}
-        for key, name, _lag in _panel._macro_series_used(cfg):
-            if name not in series:
-                problems.append(
-                    f"{sources['macro'].path}: {key}: macro series {name!r} not found"
-                    f"{_panel._closest(name, sorted(series))} (series: {', '.join(sorted(series))})"
-                )
-    if problems:
-        raise DataError(_panel._problem_text(problems))
     builders = {"panel": _panel_view_sql, "loans": _loans_view_sql, "macro": _macro_view_sql}
     view_sql = {name: builders[name](spark, src, cfg, problems) for name, src in sources.items()}
     if problems:

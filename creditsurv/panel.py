@@ -476,13 +476,19 @@ def open_panel(cfg: Config) -> Panel:
     return panel
 
 
-def _build_views(panel: Panel) -> None:
-    cfg, con = panel.cfg, panel.con
+def _input_sources(cfg) -> list[tuple[str, str, object]]:
+    """``(view name, config key, source config)`` of every configured input."""
     inputs = [("panel", "inputs.panel", cfg.inputs.panel), ("loans", "inputs.loans", cfg.inputs.loans)]
     if cfg.inputs.macro is not None:
         inputs.append(("macro", "inputs.macro", cfg.inputs.macro))
-    sources = {name: _register(con, name, key, source) for name, key, source in inputs}
+    return inputs
 
+
+def _resolve_inputs(cfg, inputs, sources) -> None:
+    """Find every mapped column and every macro series the model uses; raise all problems at once.
+
+    Shared by both engines: only the registration of the files differs.
+    """
     problems: list[str] = []
     for name, _key, source in inputs:
         wanted = {f.name: getattr(source.columns, f.name) for f in dataclasses.fields(source.columns)}
@@ -498,6 +504,14 @@ def _build_views(panel: Panel) -> None:
     if problems:
         raise DataError(_problem_text(problems))
 
+
+def _build_views(panel: Panel) -> None:
+    cfg, con = panel.cfg, panel.con
+    inputs = _input_sources(cfg)
+    sources = {name: _register(con, name, key, source) for name, key, source in inputs}
+    _resolve_inputs(cfg, inputs, sources)
+
+    problems: list[str] = []
     builders = {"panel": _panel_view_sql, "loans": _loans_view_sql, "macro": _macro_view_sql}
     view_sql = {name: builders[name](con, src, cfg, problems) for name, src in sources.items()}
     if problems:
