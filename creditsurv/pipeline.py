@@ -388,18 +388,20 @@ def execute_run(
             _say(progress, "hazard model")
             model = _hazard_model(cfg, panel, temp_dir=work)
             shutil.rmtree(work)
-            if hasattr(model, "save"):
+            coefficients = model.summary() if hasattr(model, "summary") else None
+            if coefficients is not None:
                 model.save(run.add_file("hazard_model.json"))
-                run.add_table(model.summary(), "coefficients.csv")
+                run.add_table(coefficients, "coefficients.csv")
             run.add_table(checks, "data_checks.csv")
-            run.add_table(_event_counts(cfg, panel), "event_counts.csv")
+            events = _event_counts(cfg, panel)
+            run.add_table(events, "event_counts.csv")
             _say(progress, "projection and ECL")
             chunk_progress = (lambda done, total: progress("projection and ECL", done, total)) if progress else None
             result, report_tables, totals = project_book(cfg, panel, model, run, progress=chunk_progress)
             report_tables["data_checks"] = checks
-            report_tables["event_counts"] = _event_counts(cfg, panel)
-            if hasattr(model, "summary"):
-                report_tables["coefficients"] = model.summary()
+            report_tables["event_counts"] = events
+            if coefficients is not None:
+                report_tables["coefficients"] = coefficients
             manifest["model"] = _model_summary(model)
             manifest["data_check_warnings"] = _fired_warnings(checks)
             manifest["scenario_weights"] = {s.name: s.weight for s in cfg.scenarios}
