@@ -32,7 +32,11 @@ import glob
 import hashlib
 import io
 import math
+import os
 import re
+import sys
+import warnings
+from contextlib import contextmanager
 from pathlib import Path
 
 import duckdb
@@ -97,6 +101,11 @@ def spark_session(settings):
         **_SQL_SETTINGS,
         **dict(settings.settings),
     }
+    if settings.master.startswith("local") and not os.environ.get("PYSPARK_PYTHON"):
+        # Local workers are child processes of this machine: they must run this very
+        # interpreter (with creditsurv, numpy and duckdb installed), not whatever
+        # ``python3`` comes first on PATH. PySpark reads only the environment variable.
+        os.environ["PYSPARK_PYTHON"] = sys.executable
     for key, value in conf.items():
         builder = builder.config(key, str(value))
     try:
@@ -106,6 +115,20 @@ def spark_session(settings):
     for key, value in {**_SQL_SETTINGS, "spark.sql.shuffle.partitions": str(settings.partitions)}.items():
         spark.conf.set(key, value)
     return spark, active is None
+
+
+@contextmanager
+def _quiet_pandas_notice():
+    """Silence PySpark's notice that it does not yet fully support pandas 3.
+
+    PySpark repeats it on every Arrow conversion. creditsurv passes only Arrow
+    tables and NumPy arrays across the Spark boundary (no pandas-on-Spark API),
+    and the engine tests compare every result with the DuckDB engine, so the
+    notice tells a user nothing they can act on. Nothing else is silenced.
+    """
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas", category=FutureWarning)
+        yield
 
 
 def _first_line(exc: Exception) -> str:
@@ -480,7 +503,8 @@ def _build_views(panel: SparkPanel) -> None:
 
 def _arrow(frame) -> pa.Table:
     """A Spark DataFrame as an Arrow table (types kept: int32, date32, string, double)."""
-    return frame.toArrow()
+    with _quiet_pandas_notice():
+        return frame.toArrow()
 
 
 def _as_duckdb_frame(table: pa.Table, sql: str = "SELECT * FROM t") -> pd.DataFrame:
@@ -706,11 +730,12 @@ def fit_hazard(
             # Whole loans per partition, rows in (loan, month) order within each.
             raw = raw.repartitionByRange(panel.partitions, "loan_id").sortWithinPartitions("loan_id", "month_idx")
         schema = "X binary, y binary, w binary"
-        blocks = (
-            raw.mapInArrow(functools.partial(_design_blocks, spec, collapse, dropped), schema)
-            .rdd.map(functools.partial(_decode_block, p))
-            .persist(StorageLevel.MEMORY_AND_DISK)
-        )
+        with _quiet_pandas_notice():
+            blocks = (
+                raw.mapInArrow(functools.partial(_design_blocks, spec, collapse, dropped), schema)
+                .rdd.map(functools.partial(_decode_block, p))
+                .persist(StorageLevel.MEMORY_AND_DISK)
+            )
     except Exception as exc:  # noqa: BLE001
         raise DataError(f"cannot read the risk set for the fit: {_first_line(exc)}") from None
     sc = panel.spark.sparkContext

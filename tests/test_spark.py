@@ -32,9 +32,6 @@ from creditsurv.panel import open_panel, run_checks  # noqa: E402
 from creditsurv.projection import prepare_paths  # noqa: E402
 from creditsurv.simulate import write_demo_book  # noqa: E402
 
-# PySpark warns on import of its pandas helpers under pandas 3; nothing else is ignored.
-pytestmark = pytest.mark.filterwarnings("ignore:PySpark does not yet fully support pandas:FutureWarning")
-
 ROOT = Path(__file__).resolve().parents[1]
 RTOL = 1e-9
 
