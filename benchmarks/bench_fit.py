@@ -90,7 +90,7 @@ def config_dict(book: Path) -> dict:
 
 
 def ensure_book(rows: int) -> Path:
-    from creditsurv.simulate import write_demo_book
+    from creditsurv.demo import write_demo_book
 
     target = book_dir(rows)
     if not (target / "panel.parquet").exists():
@@ -106,9 +106,8 @@ def ensure_risk_set(book: Path) -> Path:
     if out.exists():
         return out
     from creditsurv.config import config_from_dict
-    from creditsurv.events import label_events
-    from creditsurv.features import feature_spec
-    from creditsurv.panel import open_panel
+    from creditsurv.engines import label_events, open_panel
+    from creditsurv.model import feature_spec
 
     cfg = config_from_dict(config_dict(book), ROOT)
     with open_panel(cfg) as panel:
@@ -125,12 +124,10 @@ def ensure_risk_set(book: Path) -> Path:
 def route_creditsurv(book: Path, kind: str) -> dict:
     import dataclasses
 
+    import creditsurv.model._hazard as hazard
     from creditsurv.config import config_from_dict
-    from creditsurv.events import label_events
-    from creditsurv.hazard import fit_model
-    from creditsurv.panel import open_panel
-
-    import creditsurv.hazard as hazard
+    from creditsurv.engines import label_events, open_panel
+    from creditsurv.model import fit_model
 
     # Time every pass of Newton over the stored design (one per iteration, plus
     # any step-halving passes) by wrapping the pass function.
@@ -175,13 +172,13 @@ def route_pandas(book: Path, kind: str) -> dict:
     import statsmodels.api as sm
 
     from creditsurv.config import config_from_dict
-    from creditsurv.features import feature_spec
-    from creditsurv.panel import open_panel
+    from creditsurv.engines import open_panel
+    from creditsurv.model import feature_spec
 
     # Learn the same spec constants (levels, standardisation) as the creditsurv route.
     cfg = config_from_dict(config_dict(book), ROOT)
     with open_panel(cfg) as panel:
-        from creditsurv.events import label_events
+        from creditsurv.engines import label_events
 
         label_events(panel)
         spec = feature_spec(cfg.model, cfg.collateral).learn(panel.con, "age >= ?", (3,))

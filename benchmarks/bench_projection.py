@@ -37,10 +37,15 @@ DATA = ROOT / "benchmarks" / "_data"
 def _demo():
     """The demo config, its book at the reporting month, the scenario paths and the fitted model."""
     from creditsurv.config import load_config
-    from creditsurv.events import book_at_as_of
-    from creditsurv.hazard import load_model
-    from creditsurv.pipeline import _hazard_model, _macro_history, _macro_series_needed, _open_checked
-    from creditsurv.projection import prepare_paths
+    from creditsurv.engines import book_at_as_of
+    from creditsurv.forecast import prepare_paths
+    from creditsurv.model import load_model
+    from creditsurv.pipeline import (
+        _hazard_model,
+        _macro_history,
+        _macro_series_needed,
+        _open_checked,
+    )
 
     cfg = load_config(ROOT / "configs" / "demo.yaml")
     DATA.mkdir(parents=True, exist_ok=True)
@@ -63,7 +68,6 @@ def _demo():
 
 
 def _replicate(book, n: int):
-    import numpy as np
     import pandas as pd
 
     reps = -(-n // len(book))
@@ -75,8 +79,8 @@ def _replicate(book, n: int):
 def route(name: str, n: int) -> dict:
     import numpy as np
 
+    from creditsurv.forecast import TableWriter
     from creditsurv.loss import expected_credit_loss
-    from creditsurv.projection import TableWriter
 
     cfg, book, paths, model = _demo()
     loans = _replicate(book, n)

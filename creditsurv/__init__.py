@@ -1,9 +1,15 @@
 """creditsurv: lifetime PD and ECL from loan-month panels with competing risks."""
 
 from .config import Config, config_from_dict, load_config
-from .errors import ConfigError, CreditsurvError, CreditsurvWarning, DataCheckError, DataError
+from .errors import (
+    ConfigError,
+    CreditsurvError,
+    CreditsurvWarning,
+    DataCheckError,
+    DataError,
+)
 
-__version__ = "0.1.0"
+from .version import __version__
 
 __all__ = [
     "Config",

@@ -16,7 +16,7 @@ from .errors import CreditsurvError
 
 
 def _cmd_make_demo_data(args) -> int:
-    from .simulate import write_demo_book
+    from .demo import write_demo_book
 
     summary = write_demo_book(args.out_dir, args.loans, args.seed)
     events = ", ".join(f"{n:,} {kind}" for kind, n in summary["events"].items())

@@ -26,6 +26,15 @@ The command line catches ``CreditsurvError`` and prints ``ClassName: message``.
 
 from __future__ import annotations
 
+import difflib
+
+__all__ = [
+    "ConfigError", "ConvergenceError", "ConvergenceWarning", "CreditsurvError", "CreditsurvWarning",
+    "DataCheckError", "DataCheckWarning", "DataError", "FeatureError", "FewEventsWarning", "ModelError",
+    "ProjectionError", "ReproduceMismatch", "RunError", "SeparationError", "SimulationError",
+    "SingularDesignError", "did_you_mean", "problem_list",
+]  # fmt: skip
+
 
 class CreditsurvError(Exception):
     """Root of every error raised on purpose by creditsurv."""
@@ -117,3 +126,29 @@ class FewEventsWarning(CreditsurvWarning):
 
 class DataCheckWarning(CreditsurvWarning):
     """A data check of severity ``warning`` fired."""
+
+
+# --------------------------------------------------------------------------- message parts every stage uses
+
+
+def did_you_mean(word, choices) -> str:
+    """``"; did you mean 'x'?"`` for the closest of ``choices``, or ``""`` when none is close.
+
+    The one suggestion rule of every error message: ``difflib`` similarity of at
+    least 0.5, tried as written and then without regard to case (SQL engines
+    resolve column names without regard to case).
+    """
+    choices = [str(c) for c in choices]
+    match = difflib.get_close_matches(str(word), choices, n=1, cutoff=0.5)
+    if not match:
+        lowered = {c.lower(): c for c in choices}
+        match = [lowered[m] for m in difflib.get_close_matches(str(word).lower(), list(lowered), n=1, cutoff=0.5)]
+    return f"; did you mean '{match[0]}'?" if match else ""
+
+
+def problem_list(problems, what: str) -> str:
+    """The one text of an error that lists several problems: ``"2 problems with <what>:\n  - ...\n  - ..."``."""
+    problems = list(problems)
+    n = len(problems)
+    lines = "\n".join(f"  - {p}" for p in problems)
+    return f"{n} problem{'s' if n != 1 else ''} with {what}:\n{lines}"

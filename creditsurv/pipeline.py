@@ -35,14 +35,15 @@ def init_project(folder) -> list[Path]:
     _refuse_existing(config, "a config")
     for sub in ("data", "data/scenarios", "reports"):
         (folder / sub).mkdir(parents=True, exist_ok=True)
-    text = resources.files("creditsurv").joinpath("starter.yaml").read_text(encoding="utf-8")
+    text = resources.files("creditsurv.config").joinpath("starter.yaml").read_text(encoding="utf-8")
     config.write_text(text, encoding="utf-8")
     return [config, folder / "data", folder / "reports"]
 
 
 def check_data(config_path, out: Path | None = None) -> Outcome:
     """Run the data checks of a config; optionally write the check table as CSV."""
-    from .panel import format_checks, open_panel, run_checks
+    from .data import format_checks
+    from .engines import open_panel, run_checks
 
     cfg = load_config(config_path)
     if (spark := _engine(cfg)) is not None:
@@ -63,7 +64,7 @@ def check_data(config_path, out: Path | None = None) -> Outcome:
 def _engine(cfg):
     """The module that holds the engine-specific steps: DuckDB's stages or Spark's."""
     if cfg.engine == "spark":
-        from . import _spark
+        from .engines import _spark
 
         return _spark
     return None
@@ -73,8 +74,8 @@ def _open_checked(cfg):
     """Open the panel, run the data checks (raise on errors), label events."""
     if (spark := _engine(cfg)) is not None:
         return spark.open_checked(cfg)
-    from .events import label_events
-    from .panel import open_panel, raise_for_errors, run_checks
+    from .data import raise_for_errors
+    from .engines import label_events, open_panel, run_checks
 
     panel = open_panel(cfg)
     try:
@@ -90,7 +91,7 @@ def _open_checked(cfg):
 def _event_counts(cfg, panel):
     if (spark := _engine(cfg)) is not None:
         return spark.event_counts(panel)
-    from .events import event_counts
+    from .engines import event_counts
 
     return event_counts(panel)
 
@@ -107,8 +108,7 @@ def _hazard_model(cfg, panel, temp_dir):
     fit on the development window; benchmark: % PSA and % SDA curves; table:
     monthly hazards by loan age from a CSV file.
     """
-    from .hazard import fit_model, load_model
-    from .speeds import BenchmarkCurves, HazardTable
+    from .model import BenchmarkCurves, HazardTable, fit_model, load_model
 
     if cfg.model.source == "fitted" and cfg.model.path is None and (spark := _engine(cfg)) is not None:
         return spark.hazard_model(cfg, panel, temp_dir)
@@ -220,12 +220,12 @@ def fit_model_command(config_path, out_dir: Path | None = None, argv=None) -> Ou
 
 def _load_for_run(config_path, as_of: str | None):
     """Load the config, with the reporting month replaced when ``as_of`` is given."""
-    from .config import _read_yaml, config_from_dict
+    from .config import config_from_dict, read_yaml
 
     path = Path(config_path)
     if as_of is None:
         return load_config(path)
-    data = _read_yaml(path)
+    data = read_yaml(path)
     data["as_of"] = as_of
     return config_from_dict(data, path.resolve().parent, source=path)
 
@@ -260,9 +260,15 @@ def project_book(cfg, panel, model, run, *, progress=None):
     """Projection, ECL and the exported tables of one run, written into ``run``."""
     import numpy as np
 
-    from .events import book_at_as_of
+    from .engines import book_at_as_of
+    from .forecast import (
+        TableWriter,
+        prepare_paths,
+        segment_level,
+        segment_pd_tables,
+        segment_speeds,
+    )
     from .loss import expected_credit_loss
-    from .projection import TableWriter, prepare_paths, segment_level, segment_pd_tables, segment_speeds
 
     if (spark := _engine(cfg)) is not None:
         import functools
@@ -477,12 +483,10 @@ def _write_report(run, cfg, manifest: dict, tables: dict) -> None:
 
 
 def _movement_against(prior_run: Path, loans_b, weights_b):
-    import json
 
     import pandas as pd
 
-    from ._movement import movement
-    from .runs import MANIFEST, read_manifest
+    from .runs import movement, read_manifest
 
     prior = read_manifest(prior_run)
     loans_a = pd.read_parquet(Path(prior_run) / "loan_ecl.parquet")
@@ -559,8 +563,7 @@ def _free_name(parent: Path, name: str) -> str:
 
 def compare_command(run_a, run_b, out=None) -> Outcome:
     """``creditsurv compare``: the ECL walk, stage migration and PD change from run A to run B."""
-    from ._movement import compare_run_folders
-    from .runs import RunFolder, read_manifest
+    from .runs import RunFolder, compare_run_folders, read_manifest
 
     result = compare_run_folders(run_a, run_b)
     a, b = read_manifest(run_a), read_manifest(run_b)

@@ -86,7 +86,7 @@ def test_starter_config_follows_the_demo_config():
 
     root = Path(__file__).resolve().parents[1]
     demo = (root / "configs" / "demo.yaml").read_text()
-    starter = (root / "creditsurv" / "starter.yaml").read_text()
+    starter = (root / "creditsurv" / "config" / "starter.yaml").read_text()
     expected = (
         demo.replace("# creditsurv demo config — Quillfield Home Loans, a fictional lender.\n",
                      "# creditsurv starter config: put your files under data/ and adapt the column names.\n")

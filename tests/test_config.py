@@ -7,7 +7,12 @@ from pathlib import Path
 
 import pytest
 
-from creditsurv.config import config_from_dict, config_sha256, config_to_dict, load_config
+from creditsurv.config import (
+    config_from_dict,
+    config_sha256,
+    config_to_dict,
+    load_config,
+)
 from creditsurv.errors import ConfigError
 
 MINIMAL = {

@@ -8,8 +8,8 @@ import pytest
 from statsmodels.duration.survfunc import SurvfuncRight
 
 from creditsurv.config import config_from_dict
-from creditsurv.events import event_counts, label_events
-from creditsurv.panel import open_panel, raise_for_errors, run_checks
+from creditsurv.data import raise_for_errors
+from creditsurv.engines import event_counts, label_events, open_panel, run_checks
 
 ORIG = 2020 * 12  # 2020-01
 AS_OF = ORIG + 12  # 2021-01

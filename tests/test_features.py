@@ -9,12 +9,12 @@ import duckdb
 import numpy as np
 import pandas as pd
 import pytest
+from test_hazard import connect, simulate_book
 
 from creditsurv.config import Baseline, Collateral, Covariate, ModelSpec
 from creditsurv.errors import ConfigError, FeatureError
-from creditsurv.features import FeatureSpec, feature_spec, natural_spline_basis, quote_ident, quote_literal
-
-from test_hazard import connect, simulate_book
+from creditsurv.model import FeatureSpec, feature_spec, natural_spline_basis
+from creditsurv.sql import quote_ident, quote_literal
 
 
 @pytest.fixture(scope="module")

@@ -18,9 +18,19 @@ from scipy import optimize
 from statsmodels.duration.survfunc import CumIncidenceRight, SurvfuncRight
 
 from creditsurv.config import Baseline, Collateral, Covariate, ModelSpec
-from creditsurv.errors import ConvergenceError, FewEventsWarning, SeparationError, SingularDesignError
-from creditsurv.features import feature_spec
-from creditsurv.hazard import HazardResults, fit_hazard, fit_model, load_model
+from creditsurv.errors import (
+    ConvergenceError,
+    FewEventsWarning,
+    SeparationError,
+    SingularDesignError,
+)
+from creditsurv.model import (
+    HazardResults,
+    feature_spec,
+    fit_hazard,
+    fit_model,
+    load_model,
+)
 
 # --------------------------------------------------------------------------- a small simulated book
 

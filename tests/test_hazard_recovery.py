@@ -25,11 +25,9 @@ import pytest
 from scipy import stats
 
 from creditsurv.config import Config, config_from_dict
-from creditsurv.events import label_events
-from creditsurv.features import feature_spec
-from creditsurv.hazard import fit_hazard, fit_model
-from creditsurv.panel import open_panel
-from creditsurv.simulate import psa_hazard, simulate_small_book, write_demo_book
+from creditsurv.demo import psa_hazard, simulate_small_book, write_demo_book
+from creditsurv.engines import label_events, open_panel
+from creditsurv.model import feature_spec, fit_hazard, fit_model
 
 DEMO = Path(__file__).resolve().parents[1] / "data_demo"
 CAUSES = ("default", "prepay")

@@ -15,12 +15,17 @@ import pandas as pd
 import pyarrow as pa
 import pytest
 
-from creditsurv._months import parse_month
 from creditsurv.config import Lgd, Loss, Staging
 from creditsurv.errors import ProjectionError
-from creditsurv.loss import allocate_stages, collateral_lgd, discount_factors, expected_credit_loss
-from creditsurv.projection import WEIGHTED, origination_pd
-from creditsurv.speeds import HazardTable
+from creditsurv.forecast import WEIGHTED, origination_pd
+from creditsurv.loss import (
+    allocate_stages,
+    collateral_lgd,
+    discount_factors,
+    expected_credit_loss,
+)
+from creditsurv.model import HazardTable
+from creditsurv.months import parse_month
 
 AS_OF = parse_month("2024-12")
 HD, HP = 0.01, 0.02
@@ -258,7 +263,7 @@ def test_pd_at_origination_covers_the_same_remaining_life_as_today():
     # survival to a, is the closed form hD / (hD + hP) * (1 - (1 - hD - hP)^(T - a)),
     # the same as today's lifetime PD over the remaining T - a months (IFRS 9
     # B5.5.11 compares the risk of default over the same expected life).
-    from creditsurv.speeds import HazardTable
+    from creditsurv.model import HazardTable
 
     hd, hp = 0.003, 0.02
     source = HazardTable(pd.DataFrame({"age": [1], "default": [hd], "prepay": [hp]}))

@@ -12,9 +12,14 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from creditsurv._movement import WALK_STEPS, compare_run_folders, movement
 from creditsurv.errors import RunError
-from creditsurv.runs import MANIFEST, RunFolder
+from creditsurv.runs import (
+    MANIFEST,
+    WALK_STEPS,
+    RunFolder,
+    compare_run_folders,
+    movement,
+)
 
 EVEN = {"base": 0.5, "down": 0.5}
 
@@ -137,7 +142,7 @@ def test_zero_exposure_in_run_a_puts_the_whole_change_in_exposure():
 
 
 def test_a_walk_that_does_not_reconcile_is_refused(monkeypatch):
-    import creditsurv._movement as mod
+    import creditsurv.runs._movement as mod
 
     real = mod._same_stage_steps
 

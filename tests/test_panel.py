@@ -11,8 +11,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from creditsurv.data import CHECKS, format_checks, raise_for_errors
+from creditsurv.engines import open_panel, run_checks
 from creditsurv.errors import ConfigError, DataCheckError, DataCheckWarning, DataError
-from creditsurv.panel import CHECKS, format_checks, open_panel, quote_ident, raise_for_errors, run_checks
+from creditsurv.sql import quote_ident
 
 MACRO_COVARIATE = {"covariates": [{"name": "unemployment", "macro": "unemployment_rate", "lag": 3}]}
 
@@ -404,7 +406,7 @@ def test_missing_column_names_file_key_and_closest_match(panel_clean_book, panel
     with pytest.raises(DataError) as info:
         open_panel(cfg)
     text = str(info.value)
-    assert "panel.parquet: inputs.panel.columns.balance: column 'balance' not found; closest match: 'balance_amt'" in text
+    assert "panel.parquet: inputs.panel.columns.balance: column 'balance' not found; did you mean 'balance_amt'?" in text
     assert "(available: loan_id, month, age, balance_amt, days_past_due, status)" in text
 
 
@@ -414,7 +416,7 @@ def test_every_missing_column_is_reported_at_once(panel_clean_book, panel_config
     with pytest.raises(DataError, match=r"^2 problems with the input data") as info:
         open_panel(cfg)
     assert "inputs.panel.columns.age: column 'loan_age'" in str(info.value)
-    assert "inputs.loans.columns.term: column 'term_months' not found; closest match: 'term'" in str(info.value)
+    assert "inputs.loans.columns.term: column 'term_months' not found; did you mean 'term'?" in str(info.value)
 
 
 def test_text_balance_is_a_data_error(panel_clean_book, panel_config_factory):
@@ -451,7 +453,7 @@ def test_missing_macro_series_of_the_model(panel_clean_book, panel_config_factor
     panel, loans, macro = panel_clean_book
     model = {"covariates": [{"name": "u", "macro": "unemployment"}]}
     with pytest.raises(DataError, match=r"model\.covariates\[0\]\.macro: macro series 'unemployment' not found; "
-                       r"closest match: 'unemployment_rate'"):
+                       r"did you mean 'unemployment_rate'"):
         open_panel(panel_config_factory(panel, loans, macro, model=model))
 
 
@@ -467,7 +469,7 @@ def test_missing_duckdb_table(panel_clean_book, tmp_path):
          "inputs": {"panel": {"path": "b.duckdb", "table": "perfomance"}, "loans": {"path": "b.duckdb", "table": "loans"}}},
         base_dir=tmp_path,
     )
-    with pytest.raises(DataError, match=r"inputs\.panel\.table: no table 'perfomance' in .*b\.duckdb .*closest match: 'performance'"):
+    with pytest.raises(DataError, match=r"inputs\.panel\.table: no table 'perfomance' in .*b\.duckdb .*did you mean 'performance'"):
         open_panel(cfg)
 
 

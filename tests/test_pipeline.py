@@ -9,13 +9,13 @@ import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 import yaml
-
 from conftest import demo_config_data
+
 from creditsurv import pipeline
 from creditsurv.cli import main
+from creditsurv.demo import write_demo_book
 from creditsurv.errors import DataCheckWarning
 from creditsurv.runs import MANIFEST, sha256_file
-from creditsurv.simulate import write_demo_book
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -241,7 +241,7 @@ def test_report_is_self_contained_and_shows_the_runs_numbers(demo_run):
 
 
 def test_fit_command_writes_a_model_that_loads_and_predicts_the_same(small_book, tmp_path, capsys):
-    from creditsurv.hazard import load_model
+    from creditsurv.model import load_model
 
     cfg = _config(small_book, tmp_path)
     assert main(["fit", str(cfg), "--out", str(tmp_path / "fits")]) == 0

@@ -13,10 +13,9 @@ import pandas as pd
 import pyarrow as pa
 import pytest
 
-from creditsurv._months import parse_month
 from creditsurv.config import Scenario, config_from_dict
 from creditsurv.errors import ConfigError, ProjectionError
-from creditsurv.projection import (
+from creditsurv.forecast import (
     WEIGHTED,
     TableWriter,
     extend_path,
@@ -26,7 +25,8 @@ from creditsurv.projection import (
     project_loans,
     scheduled_balance,
 )
-from creditsurv.speeds import BenchmarkCurves, HazardTable
+from creditsurv.model import BenchmarkCurves, HazardTable
+from creditsurv.months import parse_month
 
 AS_OF = parse_month("2024-12")
 MONTHS = np.arange(parse_month("1994-01"), AS_OF + 1)

@@ -11,7 +11,14 @@ import pandas as pd
 import pytest
 
 from creditsurv.errors import DataError
-from creditsurv.report import NOT_PRODUCED, SECTIONS, fmt_money, fmt_pct, render_report, write_report
+from creditsurv.report import (
+    NOT_PRODUCED,
+    SECTIONS,
+    fmt_money,
+    fmt_pct,
+    render_report,
+    write_report,
+)
 
 SECTION_IDS = [
     "summary",

@@ -10,8 +10,7 @@ import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
-from creditsurv.errors import SimulationError
-from creditsurv.simulate import (
+from creditsurv.demo import (
     OUTPUT_FILES,
     make_macro,
     psa_hazard,
@@ -20,6 +19,7 @@ from creditsurv.simulate import (
     simulate_small_book,
     write_demo_book,
 )
+from creditsurv.errors import SimulationError
 
 DEMO = Path(__file__).resolve().parents[1] / "data_demo"
 

@@ -23,14 +23,19 @@ if shutil.which("java") is None:
 from conftest import demo_config_data  # noqa: E402
 from test_panel import BAD_BOOKS, MACRO_COVARIATE  # noqa: E402 - the crafted bad books of the DuckDB tests
 
-from creditsurv import _spark, pipeline  # noqa: E402
+from creditsurv import pipeline  # noqa: E402
 from creditsurv.config import SparkSettings, load_config  # noqa: E402
+from creditsurv.demo import write_demo_book  # noqa: E402
+from creditsurv.engines import (  # noqa: E402  # noqa: E402
+    _spark,  # noqa: E402
+    book_at_as_of,
+    event_counts,
+    open_panel,
+    run_checks,
+)
 from creditsurv.errors import DataCheckError, FewEventsWarning  # noqa: E402
-from creditsurv.events import book_at_as_of, event_counts  # noqa: E402
+from creditsurv.forecast import prepare_paths  # noqa: E402
 from creditsurv.loss import expected_credit_loss  # noqa: E402
-from creditsurv.panel import open_panel, run_checks  # noqa: E402
-from creditsurv.projection import prepare_paths  # noqa: E402
-from creditsurv.simulate import write_demo_book  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 RTOL = 1e-9

@@ -14,9 +14,9 @@ import pytest
 
 from creditsurv.config import Lgd, Loss, Staging
 from creditsurv.errors import ProjectionError
+from creditsurv.forecast import project_loans
 from creditsurv.loss import expected_credit_loss
-from creditsurv.projection import project_loans
-from creditsurv.speeds import (
+from creditsurv.model import (
     BenchmarkCurves,
     HazardTable,
     cdr_to_mdr,

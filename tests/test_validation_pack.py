@@ -19,12 +19,18 @@ from sklearn.metrics import roc_auc_score
 from statsmodels.duration.survfunc import CumIncidenceRight
 
 from creditsurv import pipeline
-from creditsurv._months import parse_month
 from creditsurv.config import load_config
+from creditsurv.demo import DEFAULT_MIN_AGE, true_hazard, write_demo_book
 from creditsurv.errors import FewEventsWarning
-from creditsurv.simulate import DEFAULT_MIN_AGE, true_hazard, write_demo_book
-from creditsurv.speeds import BenchmarkCurves
-from creditsurv.validation import PACK_COLUMNS, ValidationPack, input_stability, psi, validation_pack
+from creditsurv.model import BenchmarkCurves
+from creditsurv.months import parse_month
+from creditsurv.validation import (
+    PACK_COLUMNS,
+    ValidationPack,
+    input_stability,
+    psi,
+    validation_pack,
+)
 
 ROOT = Path(__file__).resolve().parents[1]
 DOWNTURN = {"development": {"start": "2016-01", "end": "2019-12"}, "out_of_time": {"start": "2020-01", "end": "2021-12"}}

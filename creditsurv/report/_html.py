@@ -50,7 +50,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, MaxNLocator, PercentFormatter
 
-from .errors import DataError
+from ..errors import DataError
 
 __all__ = ["REQUIRED_COLUMNS", "SECTIONS", "render_report", "write_report"]
 

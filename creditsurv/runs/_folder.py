@@ -25,8 +25,8 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ._months import format_month
-from .errors import RunError
+from ..errors import RunError
+from ..months import format_month
 
 MANIFEST = "manifest.json"
 _PACKAGES = ("creditsurv", "numpy", "pandas", "pyarrow", "duckdb", "statsmodels", "scipy", "scikit-learn", "pyyaml")

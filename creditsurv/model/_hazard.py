@@ -48,8 +48,16 @@ import pandas as pd
 from scipy import linalg, stats
 from scipy.linalg import blas
 
-from .errors import ConvergenceError, DataError, FewEventsWarning, ModelError, SeparationError, SingularDesignError
-from .features import FeatureSpec, quote_ident
+from ..errors import (
+    ConvergenceError,
+    DataError,
+    FewEventsWarning,
+    ModelError,
+    SeparationError,
+    SingularDesignError,
+)
+from ..sql import quote_ident
+from ._features import FeatureSpec
 
 __all__ = ["CAUSES", "HazardResults", "fit_hazard", "fit_model", "load_model"]
 
@@ -163,7 +171,7 @@ class HazardResults:
 
     def to_dict(self) -> dict:
         """The model as JSON-safe plain data (the layout :meth:`save` writes)."""
-        from . import __version__
+        from ..version import __version__
 
         terms = self.params.index.to_list()
         order = [f"{c}:{t}" for c in self.causes for t in terms]
@@ -296,7 +304,7 @@ class _DesignStore:
 # --------------------------------------------------------------------------- the likelihood
 
 
-def _batch_sums(X, y, w, beta, codes, kind, need_hess):
+def batch_sums(X, y, w, beta, codes, kind, need_hess):
     """Log-likelihood, score (K, p) and the upper blocks of the information of one batch.
 
     The kernel both engines share: the DuckDB engine sums it over the batches
@@ -304,7 +312,7 @@ def _batch_sums(X, y, w, beta, codes, kind, need_hess):
     and then over partitions. Per-cause quantities are held as (K, n) rows so
     that every elementwise step runs over contiguous memory; the information
     blocks are ``X' diag(v) X`` products done by BLAS. Only the blocks on and
-    above the diagonal (cause a <= cause b) are filled; :func:`_symmetric`
+    above the diagonal (cause a <= cause b) are filled; :func:`symmetric`
     completes the matrix once all batches are summed.
     """
     K, p = beta.shape
@@ -369,7 +377,7 @@ def _xtvx(X, v, sign):
     return sign * blas.dsyrk(1.0, Z.T, trans=0)
 
 
-def _symmetric(H):
+def symmetric(H):
     """The full information matrix from its summed upper blocks."""
     return np.triu(H) + np.triu(H, 1).T
 
@@ -381,13 +389,13 @@ def _evaluate(store, beta, codes, kind, batch_size, need_hess):
     g = np.zeros((K, p))
     H = np.zeros((K * p, K * p)) if need_hess else None
     for X, y, w in store.batches(batch_size):
-        ll_b, g_b, H_b = _batch_sums(X, y, w, beta, codes, kind, need_hess)
+        ll_b, g_b, H_b = batch_sums(X, y, w, beta, codes, kind, need_hess)
         ll += ll_b
         g += g_b
         if need_hess:
             H += H_b
     if need_hess:
-        H = _symmetric(H)
+        H = symmetric(H)
     return ll, g, H
 
 
@@ -506,21 +514,21 @@ def fit_hazard(
     ------
     SeparationError, SingularDesignError, ConvergenceError, ModelError
     """
-    causes, codes, dropped = _check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol)
+    causes, codes, dropped = check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol)
     if spec.learned is None:
         spec = spec.learn(con, where_sql, params)
     p = len(spec.columns)
-    collapse = _resolve_collapse(spec, collapse)
-    sql = _raw_sql(con, spec, where_sql, collapse)
+    collapse = resolve_collapse(spec, collapse)
+    sql = raw_design_sql(con, spec, where_sql, collapse)
 
     store = _DesignStore(p, temp_dir)
     try:
-        first = _FirstPass(p)
+        first = FirstPass(p)
         rel = con.sql(sql, params=list(params)) if params else con.sql(sql)
         with rel.to_arrow_reader(batch_size=batch_size) as reader:
             for batch in reader:
                 raw = {nm: batch.column(i).to_numpy(zero_copy_only=False) for i, nm in enumerate(batch.schema.names)}
-                design = _batch_design(raw, spec, collapse, dropped)
+                design = batch_design(raw, spec, collapse, dropped)
                 if design is None:
                     continue
                 store.append(*design)
@@ -530,7 +538,7 @@ def fit_hazard(
         def evaluate(b, need_hess):
             return _evaluate(store, b, codes, kind, batch_size, need_hess)
 
-        return _fit_from_sums(
+        return fit_from_sums(
             evaluate, first, spec, kind=kind, causes=causes, codes=codes, ridge=ridge, max_iter=max_iter, tol=tol,
             collapse=collapse, where_sql=where_sql, fingerprint=first.fingerprint(spec.columns),
         )
@@ -541,7 +549,7 @@ def fit_hazard(
 # --------------------------------------------------------------------------- steps of a fit (shared by the engines)
 
 
-def _check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol):
+def check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol):
     """Validate the fit settings; return the causes in canonical order, their codes and the dropped codes."""
     if kind not in ("multinomial", "cause_specific"):
         raise ModelError(f"kind must be 'multinomial' or 'cause_specific', got {kind!r}")
@@ -558,7 +566,7 @@ def _check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol):
     return causes, codes, dropped
 
 
-def _resolve_collapse(spec: FeatureSpec, collapse) -> bool:
+def resolve_collapse(spec: FeatureSpec, collapse) -> bool:
     if collapse == "auto":
         return _is_discrete(spec)
     if collapse and not _is_discrete(spec):
@@ -566,7 +574,7 @@ def _resolve_collapse(spec: FeatureSpec, collapse) -> bool:
     return bool(collapse)
 
 
-def _raw_sql(con, spec: FeatureSpec, where_sql: str, collapse: bool) -> str:
+def raw_design_sql(con, spec: FeatureSpec, where_sql: str, collapse: bool) -> str:
     """The raw-input query of the fit; with ``collapse``, grouped to covariate-pattern counts."""
     sql = spec.raw_query(con, where_sql, order=not collapse)
     if collapse:
@@ -576,7 +584,7 @@ def _raw_sql(con, spec: FeatureSpec, where_sql: str, collapse: bool) -> str:
     return sql
 
 
-def _batch_design(raw: dict, spec: FeatureSpec, collapse: bool, dropped):
+def batch_design(raw: dict, spec: FeatureSpec, collapse: bool, dropped):
     """Design ``X``, outcomes ``y`` (int8) and weights ``w`` of one batch of raw rows, or None if empty."""
     y = np.asarray(raw["outcome"])
     if y.dtype.kind == "f" and np.isnan(y).any() or not np.isin(y, (0, 1, 2)).all():
@@ -594,7 +602,7 @@ def _batch_design(raw: dict, spec: FeatureSpec, collapse: bool, dropped):
     return X, y, w
 
 
-class _FirstPass:
+class FirstPass:
     """Sums of the first pass over the design: events by column, X'WX, 0/1 columns, fingerprint."""
 
     def __init__(self, p: int):
@@ -619,14 +627,14 @@ class _FirstPass:
         return [d.hexdigest() for d in self.digests.values()]
 
     def fingerprint(self, names) -> str:
-        return _fingerprint(self.n, names, self.stream_digests())
+        return fit_fingerprint(self.n, names, self.stream_digests())
 
 
-def _fingerprint(n: int, names, digests) -> str:
+def fit_fingerprint(n: int, names, digests) -> str:
     return hashlib.sha256(f"creditsurv-design|{n}|{'|'.join(names)}|".encode() + "|".join(digests).encode()).hexdigest()
 
 
-def _fit_from_sums(evaluate, first, spec, *, kind, causes, codes, ridge, max_iter, tol, collapse, where_sql, fingerprint):
+def fit_from_sums(evaluate, first, spec, *, kind, causes, codes, ridge, max_iter, tol, collapse, where_sql, fingerprint):
     """Checks on the first-pass sums, the Newton iterations and the results object.
 
     ``first`` holds ``S``, ``xtx``, ``is01`` and ``n`` summed over all the data;
@@ -784,7 +792,7 @@ def fit_model(con, model, collateral=None, *, where_sql: str = "TRUE", params=()
     rows ``where_sql`` selects and fits with ``model.kind``, ``model.ridge``
     and ``model.fit`` (batch size, iterations, tolerance).
     """
-    from .features import feature_spec
+    from ._features import feature_spec
 
     spec = feature_spec(model, collateral).learn(con, where_sql, params)
     return fit_hazard(

@@ -45,8 +45,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import RunError
-from .runs import MANIFEST
+from ..errors import RunError
+from ._folder import MANIFEST
 
 __all__ = ["MovementResult", "movement", "compare_run_folders"]
 

@@ -51,5 +51,22 @@ def month_to_date(index: int) -> _dt.date:
     return _dt.date(year, month0 + 1, 1)
 
 
-SQL_MONTH_INDEX = "(year({col}) * 12 + month({col}) - 1)"
-"""DuckDB expression template for the month index of a DATE/TIMESTAMP column."""
+
+def month_ranges(months) -> str:
+    """``2025-01..2025-03, 2025-07`` for a set of month indices (at most 6 runs shown)."""
+    months = sorted({int(m) for m in months})
+    runs, start, prev = [], None, None
+    for m in months:
+        if start is None:
+            start = prev = m
+        elif m == prev + 1:
+            prev = m
+        else:
+            runs.append((start, prev))
+            start = prev = m
+    if start is not None:
+        runs.append((start, prev))
+    text = [format_month(a) if a == b else f"{format_month(a)}..{format_month(b)}" for a, b in runs[:6]]
+    if len(runs) > 6:
+        text.append(f"... ({len(runs) - 6} more runs)")
+    return ", ".join(text)

@@ -35,7 +35,7 @@ cash-flow defaults exactly (see tests/test_speeds.py).
 Hazard sources
 --------------
 :class:`BenchmarkCurves` and :class:`HazardTable` implement the hazard source
-protocol used by :func:`creditsurv.projection.project_loans`: a
+protocol used by :func:`creditsurv.forecast.project_loans`: a
 ``required_inputs`` list and ``hazards(raw) -> (h_default, h_prepay)``.
 """
 
@@ -44,7 +44,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .errors import ProjectionError
+from ..errors import ProjectionError
 
 __all__ = [
     "psa_cpr",

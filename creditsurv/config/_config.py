@@ -22,9 +22,9 @@ from typing import Literal
 
 import yaml
 
-from ._months import format_month
+from ..errors import ConfigError
+from ..months import format_month
 from ._schema import FilePath, Month, build, describe
-from .errors import ConfigError
 
 __all__ = [
     "Config",
@@ -500,7 +500,7 @@ def _construct_mapping(loader, node, deep=False):
 _UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
 
 
-def _read_yaml(path: Path) -> dict:
+def read_yaml(path: Path) -> dict:
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
@@ -543,7 +543,7 @@ def config_from_dict(data: dict, base_dir: str | Path = ".", *, source: str | Pa
 def load_config(path: str | Path) -> Config:
     """Read, validate and resolve the YAML config at ``path``."""
     path = Path(path)
-    data = _read_yaml(path)
+    data = read_yaml(path)
     return config_from_dict(data, path.resolve().parent, source=path)
 
 

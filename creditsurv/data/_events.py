@@ -1,7 +1,8 @@
-"""Event labelling: default, prepayment, maturity and censoring of each loan.
+"""Event labelling: default, prepayment, maturity and censoring of each loan, as SQL text.
 
-``label_events(panel)`` reads the ``panel`` and ``loans`` views and creates two
-DuckDB tables on ``panel.con``, in SQL and out of core:
+An engine's ``label_events`` runs :data:`LOAN_OUTCOMES_SQL` and then
+:data:`LOAN_MONTHS_SQL` on the ``panel`` and ``loans`` views, in SQL and out of
+core, giving two tables:
 
 ``loan_outcomes``  one row per loan: ``loan_id``, ``entry_age``, ``entry_month_idx``,
                    ``last_age``, ``last_month_idx`` (the loan's first and last panel
@@ -27,18 +28,19 @@ when the rows stop earlier.
 
 from __future__ import annotations
 
-import duckdb
-import pandas as pd
-
-from .errors import DataError
-from .panel import Panel
-
-__all__ = ["EVENTS", "book_at_as_of", "event_counts", "label_events"]
+__all__ = [
+    "BOOK_SQL", "CAUSE_CODES", "EVENTS", "LOAN_MONTHS_SQL", "LOAN_OUTCOMES_SQL", "OUTCOME_CONTINUE",
+    "OUTCOME_DEFAULT", "OUTCOME_PREPAY", "event_params",
+]  # fmt: skip
 
 EVENTS = ("default", "prepay", "maturity", "censored")
 """Event labels of ``loan_outcomes.event``, in report order."""
 
 OUTCOME_CONTINUE, OUTCOME_DEFAULT, OUTCOME_PREPAY = 0, 1, 2
+"""Codes of ``loan_months.outcome``: the one definition every stage uses."""
+
+CAUSE_CODES = {"default": OUTCOME_DEFAULT, "prepay": OUTCOME_PREPAY}
+"""The competing causes of exit and their outcome codes."""
 
 # One CTE per step. Parameters: $dpd (threshold or NULL), $codes (status codes),
 # $paid_off (closure balance), $as_of (reporting month index). Everything a loan's
@@ -88,7 +90,7 @@ labelled AS (
 )"""
 
 # The risk set reads the (small) outcome table back instead of aggregating the panel again.
-_LOAN_MONTHS = f"""
+LOAN_MONTHS_SQL = f"""
 CREATE OR REPLACE TABLE loan_months AS
 WITH risk_set AS (
     SELECT p.loan_id, p.month_idx, p.age,
@@ -104,7 +106,7 @@ FROM risk_set
 ORDER BY loan_id, month_idx
 """
 
-_LOAN_OUTCOMES = f"""
+LOAN_OUTCOMES_SQL = f"""
 CREATE OR REPLACE TABLE loan_outcomes AS
 WITH {_FLAGS}
 SELECT loan_id,
@@ -127,72 +129,6 @@ ORDER BY loan_id
 """
 
 
-def _params(panel: Panel, sql: str) -> dict:
-    cfg = panel.cfg
-    dd = cfg.default_definition
-    params = {
-        "dpd": dd.days_past_due,
-        "codes": list(dd.status_codes),
-        "paid_off": float(cfg.events.paid_off_balance),
-        "as_of": int(cfg.as_of),
-    }
-    return {k: v for k, v in params.items() if f"${k}" in sql}
-
-
-def label_events(panel: Panel) -> None:
-    """Create the tables ``loan_outcomes`` and ``loan_months`` on ``panel.con``.
-
-    Parameters
-    ----------
-    panel : Panel
-        An open panel (see :func:`creditsurv.panel.open_panel`); its checks
-        should have passed, since duplicate or gapped loan-months make the risk
-        set meaningless.
-    """
-    for sql in (_LOAN_OUTCOMES, _LOAN_MONTHS):
-        try:
-            panel.con.execute(sql, _params(panel, sql))
-        except duckdb.Error as exc:
-            first = str(exc).strip().splitlines()[0]
-            raise DataError(f"event labelling failed on {panel.sources.get('panel')}: {first}") from None
-
-
-def _has_table(panel: Panel, name: str) -> bool:
-    rows = panel.con.execute(
-        "SELECT 1 FROM duckdb_tables() WHERE database_name = current_database() AND table_name = $name",
-        {"name": name},
-    ).fetchall()
-    return bool(rows)
-
-
-def event_counts(panel: Panel) -> pd.DataFrame:
-    """Loans by event and censor reason.
-
-    Labels the events first when ``loan_outcomes`` does not exist yet.
-
-    Returns
-    -------
-    pandas.DataFrame
-        Columns ``event``, ``censor_reason`` (None unless censored), ``loans``
-        and ``share`` (of all loans), in the order of :data:`EVENTS`.
-    """
-    if not _has_table(panel, "loan_outcomes"):
-        label_events(panel)
-    frame = panel.con.execute(
-        """
-        SELECT event, censor_reason, count(*) AS loans,
-               count(*) / sum(count(*)) OVER () AS share
-        FROM loan_outcomes
-        GROUP BY event, censor_reason
-        ORDER BY list_position(['default', 'prepay', 'maturity', 'censored'], event),
-                 censor_reason NULLS FIRST
-        """
-    ).df()
-    reason = frame["censor_reason"].astype(object)
-    frame["censor_reason"] = reason.where(reason.notna(), None)
-    return frame.astype({"loans": "int64", "share": "float64"})
-
-
 BOOK_SQL = """
     SELECT l.*,
            o.last_age AS age,
@@ -210,28 +146,13 @@ BOOK_SQL = """
 """The book at the reporting month (both engines): ``{segment}`` is the segment expression."""
 
 
-def book_at_as_of(panel: Panel, segment_column: str | None = None) -> pd.DataFrame:
-    """The book at the reporting month: every loan still on it, one row each.
-
-    A loan is on the book when it has a panel row at the reporting month with a
-    balance above ``events.paid_off_balance`` and was neither prepaid nor
-    matured; loans in default (in workout) are on the book and flagged.
-
-    Returns
-    -------
-    pandas.DataFrame
-        Sorted by ``loan_id``: every ``loans`` column, then ``age`` (at the
-        reporting month), ``balance``, ``days_past_due``, ``in_default`` and
-        ``segment`` (the value of ``segment_column``, or ``"all"``).
-    """
-    if not _has_table(panel, "loan_outcomes"):
-        label_events(panel)
-    from .panel import quote_ident
-
-    sql = BOOK_SQL.format(segment=f"CAST(l.{quote_ident(segment_column)} AS VARCHAR)" if segment_column else "'all'")
-    cfg = panel.cfg
-    params = {"as_of": int(cfg.as_of), "paid_off": float(cfg.events.paid_off_balance)}
-    try:
-        return panel.con.execute(sql, params).df()
-    except duckdb.Error as exc:
-        raise DataError(f"cannot build the book at {cfg.as_of}: {exc}") from None
+def event_params(cfg, sql: str) -> dict:
+    """The ``$``-parameters of the event and book SQL that ``sql`` uses, from the config."""
+    dd = cfg.default_definition
+    params = {
+        "dpd": dd.days_past_due,
+        "codes": list(dd.status_codes),
+        "paid_off": float(cfg.events.paid_off_balance),
+        "as_of": int(cfg.as_of),
+    }
+    return {k: v for k, v in params.items() if f"${k}" in sql}

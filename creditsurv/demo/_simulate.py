@@ -46,8 +46,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from creditsurv._months import format_month, parse_month
-from creditsurv.errors import SimulationError
+from ..errors import SimulationError
+from ..months import format_month, parse_month
 
 __all__ = [
     "BookChunk",

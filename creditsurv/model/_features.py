@@ -50,7 +50,6 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
-import difflib
 import json
 from dataclasses import dataclass, field
 from typing import Any, Mapping
@@ -58,15 +57,14 @@ from typing import Any, Mapping
 import numpy as np
 import pandas as pd
 
-from .errors import ConfigError, FeatureError
+from ..errors import ConfigError, FeatureError, did_you_mean
+from ..sql import quote_ident, quote_literal
 
 __all__ = [
     "FeatureSpec",
     "RawInput",
     "feature_spec",
     "natural_spline_basis",
-    "quote_ident",
-    "quote_literal",
 ]
 
 RISK_SET_COLUMNS = ("loan_id", "month_idx", "age", "outcome")
@@ -77,25 +75,8 @@ _LOAN_TERMS = ("origination_idx", "original_balance", "note_rate", "term", "prop
 # --------------------------------------------------------------------------- SQL text helpers
 
 
-def quote_ident(name: str) -> str:
-    """Quote ``name`` as a SQL identifier (double quotes, inner quotes doubled)."""
-    text = str(name)
-    if "\x00" in text:
-        raise FeatureError(f"identifier {text!r} contains a NUL character")
-    return '"' + text.replace('"', '""') + '"'
 
 
-def quote_literal(value: str) -> str:
-    """Quote ``value`` as a SQL text literal (single quotes, inner quotes doubled)."""
-    text = str(value)
-    if "\x00" in text:
-        raise FeatureError(f"text {text!r} contains a NUL character")
-    return "'" + text.replace("'", "''") + "'"
-
-
-def _closest(word: str, choices) -> str:
-    match = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.5)
-    return f"; did you mean '{match[0]}'?" if match else ""
 
 
 def _fmt(x: float) -> str:
@@ -278,7 +259,7 @@ class FeatureSpec:
                 s = c["macro"]
                 if s not in macro:
                     where = "no 'macro' view exists" if tables["macro"] is None else f"available: {', '.join(macro)}"
-                    problems.append(f"covariate {c['name']!r}: unknown macro series {s!r} ({where}){_closest(s, macro)}")
+                    problems.append(f"covariate {c['name']!r}: unknown macro series {s!r} ({where}){did_you_mean(s, macro)}")
                 continue
             col = c["column"]
             if col in lm:
@@ -293,7 +274,7 @@ class FeatureSpec:
                     continue
                 src = "derived"
             else:
-                problems.append(f"covariate {c['name']!r}: unknown column {col!r}{_closest(col, available)}")
+                problems.append(f"covariate {c['name']!r}: unknown column {col!r}{did_you_mean(col, available)}")
                 continue
             by_key[col] = src
         if problems:
@@ -469,7 +450,7 @@ class FeatureSpec:
             first = macro_first.get(c["macro"])
             need = month_min - lag
             if first is None or need < first:
-                from ._months import format_month
+                from ..months import format_month
 
                 have = "no values" if first is None else f"first available {format_month(first)}"
                 problems.append(
@@ -525,7 +506,7 @@ class FeatureSpec:
             elif str(ref) not in levels:
                 problems.append(
                     f"covariate {c['name']!r}: reference level {ref!r} is not a level (levels: {', '.join(levels)})"
-                    + _closest(ref, levels)
+                    + did_you_mean(ref, levels)
                 )
                 continue
             if len(levels) < 2:
@@ -819,14 +800,14 @@ def feature_spec(model, collateral=None) -> FeatureSpec:
         if d["kind"] == "bins" and d["reference"] is not None and d["reference"] not in _bin_labels(d["bins"]):
             problems.append(
                 f"model.covariates[{i}].reference: {d['reference']!r} is not a bin label "
-                f"(labels: {', '.join(_bin_labels(d['bins']))})" + _closest(d["reference"], _bin_labels(d["bins"]))
+                f"(labels: {', '.join(_bin_labels(d['bins']))})" + did_you_mean(d["reference"], _bin_labels(d["bins"]))
             )
         covs.append(d)
     names = [c["name"] for c in covs]
     for i, pair in enumerate(model.interactions):
         for nm in pair:
             if nm not in names:
-                problems.append(f"model.interactions[{i}]: {nm!r} is not a covariate name{_closest(nm, names)}")
+                problems.append(f"model.interactions[{i}]: {nm!r} is not a covariate name{did_you_mean(nm, names)}")
     if problems:
         raise ConfigError("model section:\n" + "\n".join(f"  - {p}" for p in problems), problems)
     b = model.baseline

@@ -31,7 +31,6 @@ import functools
 import glob
 import hashlib
 import io
-import math
 import os
 import re
 import sys
@@ -44,11 +43,39 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from . import events as _events
-from . import hazard as _hazard
-from . import panel as _panel
-from .errors import ConfigError, DataError
-from .features import feature_spec, quote_literal
+from ..data import (
+    BOOK_SQL,
+    LOAN_COLUMNS,
+    LOAN_MONTHS_SQL,
+    LOAN_OUTCOMES_SQL,
+    MACRO_COLUMNS,
+    PANEL_COLUMNS,
+    Source,
+    check_frame,
+    check_severity_names,
+    file_format,
+    input_sources,
+    passthrough_columns,
+    plan_checks,
+    problem_text,
+    raise_for_errors,
+    resolve_inputs,
+)
+from ..errors import ConfigError, DataError
+from ..model import (
+    FirstPass,
+    HazardResults,
+    batch_design,
+    batch_sums,
+    check_fit_arguments,
+    feature_spec,
+    fit_fingerprint,
+    fit_from_sums,
+    raw_design_sql,
+    resolve_collapse,
+    symmetric,
+)
+from ..sql import month_index_sql, quote_ident, quote_literal
 
 __all__ = [
     "SparkPanel",
@@ -222,10 +249,10 @@ def _is_numeric(spark_type: str) -> bool:
     return spark_type.split("(")[0] in _SPARK_NUMERIC
 
 
-def _register(spark, name: str, key: str, source) -> _panel._Source:
+def _register(spark, name: str, key: str, source) -> Source:
     """Read ``source`` into the temp view ``_src_<name>`` and describe it."""
     path = Path(source.path)
-    fmt = _panel._file_format(source)
+    fmt = file_format(source)
     if fmt == "duckdb":
         raise DataError(
             f"{key}.path: the Spark engine reads Parquet or CSV files, not DuckDB database files; "
@@ -255,11 +282,11 @@ def _register(spark, name: str, key: str, source) -> _panel._Source:
     except Exception as exc:  # noqa: BLE001 - Spark's analysis and IO errors
         raise DataError(f"{key}.path: cannot read {path} as {fmt}: {_first_line(exc)}") from None
     types = {f.name: f.dataType.simpleString() for f in frame.schema.fields}
-    return _panel._Source(name, key, path, raw_view, types, {})
+    return Source(name, key, path, raw_view, types, {})
 
 
 def _offending_value(spark, src, column: str, test: str) -> str | None:
-    q = _panel.quote_ident
+    q = quote_ident
     rows = spark.sql(
         f"SELECT CAST(v AS STRING) FROM (SELECT {q(column)} AS v FROM {q(src.raw_view)}) "
         f"WHERE v IS NOT NULL AND ({test}) LIMIT 1"
@@ -269,7 +296,7 @@ def _offending_value(spark, src, column: str, test: str) -> str | None:
 
 def _numeric_expr(spark, src, column: str, problems: list[str], key: str) -> str:
     """Spark SQL for ``column`` as DOUBLE (NaN read as NULL), or record a type problem."""
-    q = _panel.quote_ident(column)
+    q = quote_ident(column)
     spark_type = src.types[column]
     if not _is_numeric(spark_type):
         if spark_type != "string":
@@ -287,7 +314,7 @@ def _numeric_expr(spark, src, column: str, problems: list[str], key: str) -> str
 
 def _month_expr(src, column: str, problems: list[str], key: str) -> str:
     """Spark SQL for ``column`` as the DATE of the first of its month (NULL if unreadable)."""
-    q = _panel.quote_ident(column)
+    q = quote_ident(column)
     spark_type = src.types[column]
     if spark_type in _SPARK_DATES:
         return f"trunc(CAST({q} AS DATE), 'MM')"
@@ -302,16 +329,16 @@ def _month_expr(src, column: str, problems: list[str], key: str) -> str:
 
 
 def _month_idx(col: str) -> str:
-    return f"CAST({_panel._month_idx(col)} AS INT)"
+    return f"CAST({month_index_sql(col)} AS INT)"
 
 
 def _panel_view_sql(spark, src, cfg, problems) -> str:
-    q = _panel.quote_ident
+    q = quote_ident
     m, key = src.mapping, f"{src.key}.columns"
     num = {c: _numeric_expr(spark, src, m[c], problems, f"{key}.{c}") for c in ("age", "balance", "days_past_due") if m.get(c)}
     month = _month_expr(src, m["month"], problems, f"{key}.month") if m.get("month") else "NULL"
     status = f"CAST({q(m['status'])} AS STRING)" if m.get("status") else "CAST(NULL AS STRING)"
-    extra = "".join(f",\n       {c}" for c in _panel._passthrough(src, _panel._PANEL_INTERNAL, problems))
+    extra = "".join(f",\n       {c}" for c in passthrough_columns(src, PANEL_COLUMNS, problems))
     return f"""
 WITH typed AS (
     SELECT CAST({q(m['loan_id'])} AS STRING) AS loan_id,
@@ -333,7 +360,7 @@ FROM typed"""
 
 
 def _loans_view_sql(spark, src, cfg, problems) -> str:
-    q = _panel.quote_ident
+    q = quote_ident
     m, key = src.mapping, f"{src.key}.columns"
     num = {
         c: _numeric_expr(spark, src, m[c], problems, f"{key}.{c}")
@@ -344,7 +371,7 @@ def _loans_view_sql(spark, src, cfg, problems) -> str:
     rate = num.get("note_rate", "NULL")
     if cfg.inputs.loans.rate_unit == "percent":
         rate = f"({rate}) / 100.0"
-    extra = "".join(f",\n       {c}" for c in _panel._passthrough(src, _panel._LOAN_INTERNAL, problems))
+    extra = "".join(f",\n       {c}" for c in passthrough_columns(src, LOAN_COLUMNS, problems))
     return f"""
 WITH typed AS (
     SELECT CAST({q(m['loan_id'])} AS STRING) AS loan_id,
@@ -366,14 +393,14 @@ FROM typed"""
 
 
 def _macro_view_sql(spark, src, cfg, problems) -> str:
-    q = _panel.quote_ident
+    q = quote_ident
     month_col = src.mapping["month"]
     month = _month_expr(src, month_col, problems, f"{src.key}.columns.month")
     series, names = [], []
     for column in src.types:
         if column == month_col:
             continue
-        if column.lower() in _panel._MACRO_INTERNAL:
+        if column.lower() in MACRO_COLUMNS:
             problems.append(f"{src.path}: series column {column!r} has the name of an internal macro column; rename it")
             continue
         expr = _numeric_expr(spark, src, column, problems, f"series {column!r}")
@@ -460,10 +487,10 @@ class SparkPanel:
 def open_panel(cfg) -> SparkPanel:
     """Read the configured inputs into Spark and build the views ``panel``, ``panel_all``, ``loans``, ``macro``.
 
-    Same contract and errors as :func:`creditsurv.panel.open_panel`; DuckDB
+    Same contract and errors as :func:`creditsurv.engines.open_panel`; DuckDB
     database files are not readable here.
     """
-    _panel._check_severity_names(cfg)
+    check_severity_names(cfg)
     spark, owns = spark_session(cfg.spark)
     panel = SparkPanel(cfg, spark, owns)
     try:
@@ -476,15 +503,15 @@ def open_panel(cfg) -> SparkPanel:
 
 def _build_views(panel: SparkPanel) -> None:
     cfg, spark = panel.cfg, panel.spark
-    inputs = _panel._input_sources(cfg)
+    inputs = input_sources(cfg)
     sources = {name: _register(spark, name, key, source) for name, key, source in inputs}
     panel._sources = sources
-    _panel._resolve_inputs(cfg, inputs, sources)
+    resolve_inputs(cfg, inputs, sources)
     problems: list[str] = []
     builders = {"panel": _panel_view_sql, "loans": _loans_view_sql, "macro": _macro_view_sql}
     view_sql = {name: builders[name](spark, src, cfg, problems) for name, src in sources.items()}
     if problems:
-        raise DataError(_panel._problem_text(problems))
+        raise DataError(problem_text(problems))
     try:
         # Cached (memory, spilling to executor disk): every check, the events and
         # the fit read these views, and the typing work is done once.
@@ -525,10 +552,10 @@ def _examples(table: pa.Table, order: str) -> str:
 
 
 def run_checks(panel: SparkPanel) -> pd.DataFrame:
-    """Run every data check on Spark; the same table as :func:`creditsurv.panel.run_checks`."""
+    """Run every data check on Spark; the same table as :func:`creditsurv.engines.run_checks`."""
     from pyspark.sql import functions as F
 
-    plans = _panel._plan_checks(panel.cfg, panel._sources)
+    plans = plan_checks(panel.cfg, panel._sources)
     results = []
     for pl in plans:
         count, examples = 0, "[]"
@@ -544,7 +571,7 @@ def run_checks(panel: SparkPanel) -> pd.DataFrame:
             except Exception as exc:  # noqa: BLE001 - Spark's analysis and execution errors
                 raise DataError(f"data check {pl.check.name} on {pl.source} failed: {_first_line(exc)}") from None
         results.append((count, examples))
-    return _panel._check_frame(plans, results)
+    return check_frame(plans, results)
 
 
 def _strip_create(sql: str) -> tuple[str, str]:
@@ -555,7 +582,7 @@ def _strip_create(sql: str) -> tuple[str, str]:
 def label_events(panel: SparkPanel) -> None:
     """The views ``loan_outcomes`` and ``loan_months`` (cached), from the events stage's SQL."""
     cfg = panel.cfg
-    for text in (_events._LOAN_OUTCOMES, _events._LOAN_MONTHS):
+    for text in (LOAN_OUTCOMES_SQL, LOAN_MONTHS_SQL):
         name, body = _strip_create(text)
         if name == "loan_months":
             # The fit sorts its own read; a global sort here would be a wasted shuffle.
@@ -584,7 +611,7 @@ def open_checked(cfg):
     panel = open_panel(cfg)
     try:
         checks = run_checks(panel)
-        _panel.raise_for_errors(checks)
+        raise_for_errors(checks)
         label_events(panel)
     except BaseException:
         panel.close()
@@ -593,7 +620,7 @@ def open_checked(cfg):
 
 
 def event_counts(panel: SparkPanel) -> pd.DataFrame:
-    """Loans by event and censor reason; the same table as :func:`creditsurv.events.event_counts`."""
+    """Loans by event and censor reason; the same table as :func:`creditsurv.engines.event_counts`."""
     if not panel.has_view("loan_outcomes"):
         label_events(panel)
     counts = _arrow(panel.spark.sql("SELECT event, censor_reason, count(*) AS loans FROM loan_outcomes GROUP BY event, censor_reason"))
@@ -612,15 +639,14 @@ def event_counts(panel: SparkPanel) -> pd.DataFrame:
 
 
 def book_at_as_of(panel: SparkPanel, segment_column: str | None = None) -> pd.DataFrame:
-    """The book at the reporting month; same rows, columns and dtypes as :func:`creditsurv.events.book_at_as_of`.
+    """The book at the reporting month; same rows, columns and dtypes as :func:`creditsurv.engines.book_at_as_of`.
 
     One row per loan on the book passes through the driver (the panel does not).
     """
     if not panel.has_view("loan_outcomes"):
         label_events(panel)
-    from .events import BOOK_SQL
 
-    segment = f"CAST(l.{_panel.quote_ident(segment_column)} AS VARCHAR)" if segment_column else "'all'"
+    segment = f"CAST(l.{quote_ident(segment_column)} AS VARCHAR)" if segment_column else "'all'"
     sql = spark_sql(BOOK_SQL.format(segment=segment))
     cfg = panel.cfg
     params = {"as_of": int(cfg.as_of), "paid_off": float(cfg.events.paid_off_balance)}
@@ -645,7 +671,7 @@ def _design_blocks(spec, collapse, dropped, batches):
     """Executor side, once: evaluate the design of each Arrow batch of raw rows."""
     for batch in batches:
         raw = {nm: batch.column(i).to_numpy(zero_copy_only=False) for i, nm in enumerate(batch.schema.names)}
-        design = _hazard._batch_design(raw, spec, collapse, dropped)
+        design = batch_design(raw, spec, collapse, dropped)
         if design is None:
             continue
         X, y, w = design
@@ -661,7 +687,7 @@ def _decode_block(p, row):
 
 
 def _first_pass_partition(p, index, blocks):
-    first = _hazard._FirstPass(p)
+    first = FirstPass(p)
     for X, y, w in blocks:
         first.add(X, y, w)
     yield index, first.S, first.xtx, first.is01, first.n, first.stream_digests()
@@ -678,7 +704,7 @@ def _sums_partition(beta_bc, codes, kind, need_hess, index, blocks):
     ll, g = 0.0, np.zeros((K, p))
     H = np.zeros((P, P)) if need_hess else None
     for X, y, w in blocks:
-        ll_b, g_b, H_b = _hazard._batch_sums(X, y, w, beta, codes, kind, need_hess)
+        ll_b, g_b, H_b = batch_sums(X, y, w, beta, codes, kind, need_hess)
         ll += ll_b
         g += g_b
         if need_hess:
@@ -700,8 +726,8 @@ def fit_hazard(
     max_iter: int = 50,
     tol: float = 1e-8,
     collapse="auto",
-) -> _hazard.HazardResults:
-    """:func:`creditsurv.hazard.fit_hazard` on Spark: the same model, likelihood and results.
+) -> HazardResults:
+    """:func:`creditsurv.model.fit_hazard` on Spark: the same model, likelihood and results.
 
     The design is evaluated once per partition and cached on the executors;
     each Newton evaluation runs one Spark job whose tasks return the
@@ -716,14 +742,14 @@ def fit_hazard(
     """
     from pyspark import StorageLevel
 
-    causes, codes, dropped = _hazard._check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol)
+    causes, codes, dropped = check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol)
     con = panel.con
     if spec.learned is None:
         spec = spec.learn(con, where_sql, params)
     names = spec.columns
     p = len(names)
-    collapse = _hazard._resolve_collapse(spec, collapse)
-    sql = _hazard._raw_sql(con, spec, where_sql, collapse)
+    collapse = resolve_collapse(spec, collapse)
+    sql = raw_design_sql(con, spec, where_sql, collapse)
     try:
         raw = con.frame(sql, list(params) if params else None)
         if not collapse:
@@ -741,7 +767,7 @@ def fit_hazard(
     sc = panel.spark.sparkContext
     try:
         parts = sorted(_collect(blocks.mapPartitionsWithIndex(functools.partial(_first_pass_partition, p))), key=lambda r: r[0])
-        first = _hazard._FirstPass(p)
+        first = FirstPass(p)
         for _i, S, xtx, is01, n, _d in parts:
             first.S += S
             first.xtx += xtx
@@ -770,12 +796,12 @@ def fit_hazard(
                     packed += h_k
             if need_hess:
                 H[upper] = packed
-                H = _hazard._symmetric(H)
+                H = symmetric(H)
             return ll, g, H
 
-        return _hazard._fit_from_sums(
+        return fit_from_sums(
             evaluate, first, spec, kind=kind, causes=causes, codes=codes, ridge=ridge, max_iter=max_iter, tol=tol,
-            collapse=collapse, where_sql=where_sql, fingerprint=_hazard._fingerprint(first.n, names, digests),
+            collapse=collapse, where_sql=where_sql, fingerprint=fit_fingerprint(first.n, names, digests),
         )
     finally:
         blocks.unpersist()
@@ -783,7 +809,7 @@ def fit_hazard(
 
 def _collect(rdd):
     """``rdd.collect()`` with creditsurv's own errors raised from a task shown as themselves."""
-    from .errors import CreditsurvError
+    from ..errors import CreditsurvError
 
     try:
         return rdd.collect()
@@ -810,7 +836,7 @@ def hazard_model(cfg, panel: SparkPanel, temp_dir=None):
     Fitted on the development window on Spark, or the saved ``model.path``,
     or benchmark curves, or a table of hazards (these three do not read the panel).
     """
-    from .pipeline import _development_filter, _hazard_model
+    from ..pipeline import _development_filter, _hazard_model
 
     if cfg.model.source != "fitted" or cfg.model.path is not None:
         return _hazard_model(cfg, panel, temp_dir)
@@ -839,7 +865,7 @@ def _from_ipc(data: bytes) -> pa.Table:
 
 def _ecl_partition(model, paths, kwargs, wanted, index, slices):
     """Executor side: ECL of one partition's loans with the shared loss function."""
-    from .loss import expected_credit_loss as ecl
+    from ..loss import expected_credit_loss as ecl
 
     for book in slices:
         tables = {name: [] for name in wanted}
@@ -932,18 +958,23 @@ def combine_partitions(bundles, scenarios, weights, as_of_idx, band_edges=()):
     speeds are rebuilt from the pooled sums of every partition and finished
     with the projection stage's own table builders.
     """
-    from .loss import EclResult, segment_summary
-    from .projection import WEIGHTED, ProjectionResult, _band_labels, _speeds_frames, _term_structure_frame
+    from ..forecast import WEIGHTED, ProjectionResult
+    from ..forecast._projection import (
+        score_band_labels,
+        speeds_frames,
+        term_structure_frame,
+    )
+    from ..loss import EclResult, segment_summary
 
     names = (*scenarios, WEIGHTED)
-    labels = _band_labels(tuple(band_edges))
+    labels = score_band_labels(tuple(band_edges))
     loans = pd.concat([b["loans"] for b in bundles], ignore_index=True)
     proj_loans = pd.concat([b["projection_loans"] for b in bundles], ignore_index=True)
     seg_names = sorted({str(s) for s in proj_loans["segment"]})
     ts, years = _term_sums([b["term_structure"] for b in bundles], names, seg_names, labels)
     sp, max_age = _speed_sums([b["speeds"] for b in bundles], names, seg_names, labels, weights)
-    term_structure = _term_structure_frame(ts, names, seg_names, labels, years)
-    speeds, multiples = _speeds_frames(sp, names, seg_names, labels, max_age)
+    term_structure = term_structure_frame(ts, names, seg_names, labels, years)
+    speeds, multiples = speeds_frames(sp, names, seg_names, labels, max_age)
     projection = ProjectionResult(
         loans=proj_loans, term_structure=term_structure, speeds=speeds, speed_multiples=multiples,
         scenarios=tuple(scenarios), weights=dict(weights), as_of_idx=int(as_of_idx),
@@ -1001,8 +1032,8 @@ def expected_credit_loss(
     from pyspark import StorageLevel
     from pyspark.sql import SparkSession
 
-    from .loss import expected_credit_loss as ecl
-    from .projection import _weights
+    from ..forecast._projection import scenario_weights
+    from ..loss import expected_credit_loss as ecl
 
     spark = spark or SparkSession.getActiveSession()
     if spark is None:
@@ -1031,5 +1062,5 @@ def expected_credit_loss(
     finally:
         rdd.unpersist()
     scenarios = tuple(paths)
-    weights = _weights(scenarios, kwargs.get("weights"))
+    weights = scenario_weights(scenarios, kwargs.get("weights"))
     return combine_partitions(bundles, scenarios, weights, kwargs["as_of_idx"], kwargs.get("band_edges", ()))

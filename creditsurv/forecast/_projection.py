@@ -39,8 +39,6 @@ segment aggregates stay in memory.
 
 from __future__ import annotations
 
-import fnmatch
-
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
@@ -51,14 +49,11 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ._months import format_month, parse_month
-from .errors import ProjectionError
-from .speeds import equivalent_psa, equivalent_sda, mdr_to_cdr, smm_to_cpr
+from ..errors import ProjectionError
+from ..model import equivalent_psa, equivalent_sda, mdr_to_cdr, smm_to_cpr
+from ..months import month_ranges
 
 __all__ = [
-    "load_scenario_paths",
-    "extend_path",
-    "prepare_paths",
     "scheduled_balance",
     "project_loans",
     "origination_pd",
@@ -73,284 +68,6 @@ WEIGHTED = "weighted"
 """Name of the probability-weighted scenario in every output table."""
 
 _DERIVED = ("age", "log_age", "current_ltv", "rate_incentive")
-
-
-# --------------------------------------------------------------------------- months
-
-
-def _month_ranges(months) -> str:
-    """``2025-01..2025-03, 2025-07`` for a set of month indices (at most 6 runs shown)."""
-    months = sorted({int(m) for m in months})
-    runs, start, prev = [], None, None
-    for m in months:
-        if start is None:
-            start = prev = m
-        elif m == prev + 1:
-            prev = m
-        else:
-            runs.append((start, prev))
-            start = prev = m
-    if start is not None:
-        runs.append((start, prev))
-    text = [format_month(a) if a == b else f"{format_month(a)}..{format_month(b)}" for a, b in runs[:6]]
-    if len(runs) > 6:
-        text.append(f"... ({len(runs) - 6} more runs)")
-    return ", ".join(text)
-
-
-def _month_index(values) -> tuple[np.ndarray, list]:
-    """Month indices of a column of YYYY-MM text or dates; also the unparseable values."""
-    s = pd.Series(values)
-    if pd.api.types.is_datetime64_any_dtype(s):
-        idx = (s.dt.year * 12 + s.dt.month - 1).to_numpy()
-        return idx.astype(np.int64), []
-    out, bad = np.zeros(len(s), dtype=np.int64), []
-    for i, v in enumerate(s.tolist()):
-        try:
-            out[i] = parse_month(v if not hasattr(v, "date") else v.date())
-        except (ValueError, TypeError):
-            bad.append(v)
-    return out, bad
-
-
-# --------------------------------------------------------------------------- scenario paths
-
-
-def _show(value) -> str:
-    return "a blank" if pd.isna(value) else repr(str(value))
-
-
-def _read_table(path: Path) -> pd.DataFrame:
-    suffix = path.suffix.lower()
-    if suffix in (".parquet", ".pq"):
-        return pd.read_parquet(path)
-    if suffix == ".csv":
-        return pd.read_csv(path, dtype={"month": str})
-    raise ProjectionError(f"{path}: cannot tell the format from the suffix {suffix!r}; use .csv or .parquet")
-
-
-def load_scenario_paths(
-    cfg_scenarios: Sequence,
-    history: pd.DataFrame,
-    *,
-    required_series: Sequence[str] = (),
-    month_column: str = "month",
-) -> dict[str, pd.DataFrame]:
-    """Read and check each scenario's monthly macro path.
-
-    Parameters
-    ----------
-    cfg_scenarios : sequence of config ``Scenario``
-        Each with ``name`` and ``path`` (CSV or Parquet with a month column,
-        ``YYYY-MM`` text or dates, and one column per series).
-    history : DataFrame
-        Macro history indexed by month index; every one of its series must be
-        in every scenario.
-    required_series : sequence of str
-        Further series the model needs (e.g. from ``macro:<series>:<lag>``).
-    month_column : str, default "month"
-
-    Returns
-    -------
-    dict of name -> DataFrame
-        In config order, each indexed by month index (``month_idx``), float columns.
-
-    Raises
-    ------
-    ProjectionError
-        Listing every problem in one message, each naming the scenario and file:
-        unreadable file, no month column, bad or duplicate months, missing
-        months inside the path, missing series, non-numeric or missing values.
-    """
-    needed = list(dict.fromkeys([*history.columns, *required_series]))
-    out, problems = {}, []
-    for sc in cfg_scenarios:
-        path = Path(sc.path)
-        where = f"scenario {sc.name!r} ({path})"
-        try:
-            raw = _read_table(path)
-        except ProjectionError as exc:
-            problems.append(f"{where}: {exc}")
-            continue
-        except (OSError, ValueError) as exc:
-            problems.append(f"{where}: cannot read the file ({exc})")
-            continue
-        if month_column not in raw.columns:
-            problems.append(f"{where}: no {month_column!r} column; columns are {list(raw.columns)}")
-            continue
-        idx, bad = _month_index(raw[month_column])
-        if bad:
-            problems.append(f"{where}: column {month_column!r} has values that are not months: {bad[:5]}")
-            continue
-        dupes = pd.Index(idx)[pd.Index(idx).duplicated()].unique()
-        if len(dupes):
-            problems.append(f"{where}: duplicate months {_month_ranges(dupes)}")
-        if len(idx):
-            gaps = sorted(set(range(int(idx.min()), int(idx.max()) + 1)) - set(idx.tolist()))
-            if gaps:
-                problems.append(f"{where}: missing months inside the path: {_month_ranges(gaps)}")
-        missing = [s for s in needed if s not in raw.columns]
-        if missing:
-            problems.append(f"{where}: missing series {missing} (needed by the model or present in the history)")
-        frame = {}
-        for col in raw.columns:
-            if col == month_column:
-                continue
-            values = pd.to_numeric(raw[col], errors="coerce")
-            bad_rows = np.flatnonzero(values.isna().to_numpy())
-            if len(bad_rows):
-                problems.append(
-                    f"{where}: series {col!r} has missing or non-numeric values in months "
-                    f"{_month_ranges(idx[bad_rows])} (e.g. {_show(raw[col].iloc[bad_rows[0]])})"
-                )
-            frame[col] = values.to_numpy(dtype=float)
-        if not dupes.size:
-            out[sc.name] = pd.DataFrame(frame, index=pd.Index(idx, name="month_idx")).sort_index()
-    if problems:
-        n = len(problems)
-        raise ProjectionError(f"{n} problem{'s' if n > 1 else ''} in the scenario paths:\n" + "\n".join(f"  - {p}" for p in problems))
-    return out
-
-
-def extend_path(
-    history: pd.DataFrame,
-    path: pd.DataFrame,
-    until_idx: int,
-    rule: str = "revert_to_mean",
-    months: int = 24,
-    long_run: Mapping[str, float] | None = None,
-    *,
-    as_of_idx: int | None = None,
-    name: str = "scenario",
-    hold_last_series: Sequence[str] = (),
-) -> pd.DataFrame:
-    """One continuous monthly series per column, from the history's start to ``until_idx``.
-
-    The result is, month by month:
-
-    1. the history up to and including the as-of month (``as_of_idx``, default
-       the last month of the history);
-    2. months after the as-of month and before the path's first month: the
-       history, when it has them (else ProjectionError);
-    3. the scenario path from the month after the as-of month to its last month T;
-    4. after T, by ``rule``:
-
-       - ``hold_last``: x(T + k) = x(T);
-       - ``revert_to_mean``: x(T + k) = x(T) + (L - x(T)) * min(k, months) / months,
-         a straight line reaching the long-run value L after ``months`` months,
-         flat at L after.  L is ``long_run[series]`` when given, else the mean
-         of the history up to the as-of month.  For a trending level series
-         (a house-price index) the history's mean is far below the last
-         value, so reverting to it is a price fall; give ``long_run`` for such
-         series, list it in ``hold_last_series`` or use ``hold_last``.
-
-       Series matching a shell pattern of ``hold_last_series`` (e.g. ``hpi_*``)
-       hold their last value whatever ``rule`` says.
-
-    Parameters
-    ----------
-    history, path : DataFrame
-        Indexed by month index, one column per series.
-    until_idx : int
-        Last month index wanted.
-    rule : {"revert_to_mean", "hold_last"}
-    months : int, default 24
-    long_run : mapping of series -> float, optional
-    as_of_idx : int, optional
-    name : str
-        Scenario name used in error messages.
-
-    Returns
-    -------
-    DataFrame indexed by ``month_idx`` without gaps.
-    """
-    if rule not in ("revert_to_mean", "hold_last"):
-        raise ProjectionError(f"scenario {name!r}: unknown extension rule {rule!r}; use revert_to_mean or hold_last")
-    if months < 1:
-        raise ProjectionError(f"scenario {name!r}: revert_to_mean needs months >= 1, got {months}")
-    long_run = dict(long_run or {})
-    hist = history.sort_index()
-    h_idx = hist.index.to_numpy(dtype=np.int64)
-    as_of = int(h_idx.max()) if as_of_idx is None else int(as_of_idx)
-    start = int(h_idx.min())
-    if as_of < start:
-        raise ProjectionError(f"scenario {name!r}: as-of month {format_month(as_of)} is before the history starts")
-    gaps = sorted(set(range(start, int(h_idx.max()) + 1)) - set(h_idx.tolist()))
-    if gaps:
-        raise ProjectionError(f"macro history: missing months {_month_ranges(gaps)}")
-    if len(path) == 0:
-        raise ProjectionError(f"scenario {name!r}: the path has no months")
-    p_idx = path.index.to_numpy(dtype=np.int64)
-    p0, p1 = int(p_idx.min()), int(p_idx.max())
-    if p1 <= as_of:
-        raise ProjectionError(
-            f"scenario {name!r}: the path ends at {format_month(p1)}, not after the as-of month {format_month(as_of)}"
-        )
-    columns = list(dict.fromkeys([*hist.columns, *path.columns]))
-    end = max(int(until_idx), as_of)
-    index = np.arange(start, end + 1)
-    out = pd.DataFrame(np.nan, index=pd.Index(index, name="month_idx"), columns=columns)
-    hist_upto = hist.loc[hist.index <= as_of]
-    out.loc[hist_upto.index, hist.columns] = hist_upto.to_numpy(dtype=float)
-    if p0 > as_of + 1:
-        bridge = list(range(as_of + 1, p0))
-        have = hist.reindex(bridge)
-        missing = [c for c in path.columns if c in hist.columns and have[c].isna().any()]
-        missing += [c for c in path.columns if c not in hist.columns]
-        if missing:
-            raise ProjectionError(
-                f"scenario {name!r}: the path starts at {format_month(p0)} but the as-of month is "
-                f"{format_month(as_of)}; months {_month_ranges(bridge)} of series {missing} are not in the history"
-            )
-        out.loc[bridge, path.columns] = have[path.columns].to_numpy(dtype=float)
-    body = path.loc[(path.index > as_of) & (path.index <= end)]
-    out.loc[body.index, path.columns] = body.to_numpy(dtype=float)
-    if end > p1:
-        k = np.arange(1, end - p1 + 1, dtype=float)
-        after = np.arange(p1 + 1, end + 1)
-        for col in path.columns:
-            last = float(path[col].loc[p1])
-            if rule == "hold_last" or any(fnmatch.fnmatchcase(col, pat) for pat in hold_last_series):
-                values = np.full(len(k), last)
-            else:
-                target = long_run.get(col)
-                if target is None:
-                    if col not in hist_upto.columns or hist_upto[col].isna().all():
-                        raise ProjectionError(
-                            f"scenario {name!r}: series {col!r} has no history to take a long-run mean from; "
-                            "give scenario_extension.long_run"
-                        )
-                    target = float(hist_upto[col].mean())
-                values = last + (target - last) * np.minimum(k, months) / months
-            out.loc[after, col] = values
-    return out.loc[: int(until_idx)] if until_idx >= start else out.iloc[:0]
-
-
-def prepare_paths(
-    cfg_scenarios: Sequence,
-    history: pd.DataFrame,
-    *,
-    as_of_idx: int,
-    until_idx: int,
-    extension=None,
-    required_series: Sequence[str] = (),
-) -> dict[str, pd.DataFrame]:
-    """Load every scenario path and extend it with the history (see :func:`extend_path`).
-
-    ``extension`` is a config ``ScenarioExtension`` (rule, months, long_run);
-    default revert to the history mean over 24 months.
-    """
-    paths = load_scenario_paths(cfg_scenarios, history, required_series=required_series)
-    rule = getattr(extension, "rule", "revert_to_mean")
-    months = getattr(extension, "months", 24)
-    long_run = getattr(extension, "long_run", {})
-    hold = getattr(extension, "hold_last_series", ())
-    return {
-        name: extend_path(
-            history, p, until_idx, rule, months, long_run, as_of_idx=as_of_idx, name=name, hold_last_series=hold
-        )
-        for name, p in paths.items()
-    }
 
 
 # --------------------------------------------------------------------------- amortisation
@@ -441,7 +158,7 @@ def _parse_inputs(required, loan_columns) -> _Spec:
     return _Spec(tuple(required), tuple(macro), tuple(static), "current_ltv" in required, "rate_incentive" in required)
 
 
-def _ids(values) -> str:
+def loan_list_text(values) -> str:
     values = list(values)
     head = ", ".join(map(str, values[:5]))
     return f"{len(values)} loan{'s' if len(values) != 1 else ''} ({head}{', ...' if len(values) > 5 else ''})"
@@ -453,39 +170,39 @@ def _check_loans(loans: pd.DataFrame, needed: Sequence[str], *, balance_col: str
         raise ProjectionError(f"loans: missing column(s) {missing}; have {list(loans.columns)}")
     ids = loans["loan_id"]
     if ids.duplicated().any():
-        raise ProjectionError(f"loans: loan_id repeated for {_ids(ids[ids.duplicated()].unique())}")
+        raise ProjectionError(f"loans: loan_id repeated for {loan_list_text(ids[ids.duplicated()].unique())}")
     problems = []
     for col in needed:
         if col in ("loan_id", "segment") or not pd.api.types.is_numeric_dtype(loans[col]):
             continue
         bad = loans[col].isna().to_numpy()
         if bad.any():
-            problems.append(f"column {col!r} is missing for {_ids(ids[bad])}")
+            problems.append(f"column {col!r} is missing for {loan_list_text(ids[bad])}")
     if problems:
         raise ProjectionError("loans: " + "; ".join(problems))
     rate = loans["note_rate"].to_numpy(dtype=float)
     if (rate < 0).any():
-        raise ProjectionError(f"loans: negative note rate for {_ids(ids[rate < 0])}")
+        raise ProjectionError(f"loans: negative note rate for {loan_list_text(ids[rate < 0])}")
     term = loans["term"].to_numpy()
     if age_col is not None:
         age = loans[age_col].to_numpy()
         if (age < 0).any():
-            raise ProjectionError(f"loans: negative age for {_ids(ids[age < 0])}")
+            raise ProjectionError(f"loans: negative age for {loan_list_text(ids[age < 0])}")
         past = age >= term
         if past.any():
-            raise ProjectionError(f"loans: at or past maturity (age >= term) for {_ids(ids[past])}; nothing to project")
+            raise ProjectionError(f"loans: at or past maturity (age >= term) for {loan_list_text(ids[past])}; nothing to project")
     elif (term < 1).any():
-        raise ProjectionError(f"loans: term below 1 month for {_ids(ids[term < 1])}")
+        raise ProjectionError(f"loans: term below 1 month for {loan_list_text(ids[term < 1])}")
     bal = loans[balance_col].to_numpy(dtype=float)
     if (bal < 0).any():
-        raise ProjectionError(f"loans: negative {balance_col} for {_ids(ids[bal < 0])}")
+        raise ProjectionError(f"loans: negative {balance_col} for {loan_list_text(ids[bal < 0])}")
 
 
 def _hpi_names(regions, hpi_series: str) -> list[str]:
     return [hpi_series.format(region=str(r).lower()) for r in regions]
 
 
-def _check_coverage(lookups: Mapping[str, MacroLookup], needs: Mapping[str, np.ndarray]) -> None:
+def check_coverage(lookups: Mapping[str, MacroLookup], needs: Mapping[str, np.ndarray]) -> None:
     problems = []
     for scen, lk in lookups.items():
         for series, months in needs.items():
@@ -494,7 +211,7 @@ def _check_coverage(lookups: Mapping[str, MacroLookup], needs: Mapping[str, np.n
                 continue
             bad = lk.missing(series, months)
             if bad:
-                problems.append(f"scenario {scen!r}: series {series!r} has no value in months {_month_ranges(bad)}")
+                problems.append(f"scenario {scen!r}: series {series!r} has no value in months {month_ranges(bad)}")
     if problems:
         raise ProjectionError("the macro paths do not cover the projection:\n" + "\n".join(f"  - {p}" for p in problems))
 
@@ -575,7 +292,7 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
             bad_rows = np.repeat(np.arange(n), counts)[~ok]
             raise ProjectionError(
                 f"scenario {scen!r}: the hazard source returned hazards outside [0, 1] or summing above 1 "
-                f"(or NaN) for {_ids(book.loan_id[sl][np.unique(bad_rows)])}"
+                f"(or NaN) for {loan_list_text(book.loan_id[sl][np.unique(bad_rows)])}"
             )
         hd = np.zeros((n, H))
         hp = np.zeros((n, H))
@@ -694,14 +411,14 @@ class TableWriter:
         self.close()
 
 
-def _band_labels(edges) -> list[str]:
+def score_band_labels(edges) -> list[str]:
     if not edges:
         return ["all"]
     e = [f"{x:g}" for x in edges]
     return [f"<{e[0]}"] + [f"{a}-{b}" for a, b in zip(e, e[1:])] + [f">={e[-1]}"]
 
 
-def _weights(scenarios, weights) -> dict[str, float]:
+def scenario_weights(scenarios, weights) -> dict[str, float]:
     if WEIGHTED in scenarios:
         raise ProjectionError(f"scenario name {WEIGHTED!r} is reserved for the probability-weighted result")
     if weights is None:
@@ -871,7 +588,7 @@ def project_loans(
     scenarios = tuple(paths)
     if not scenarios:
         raise ProjectionError("no scenarios to project")
-    w = _weights(scenarios, weights)
+    w = scenario_weights(scenarios, weights)
     if chunk_size < 1:
         raise ProjectionError(f"chunk_size must be at least 1, got {chunk_size}")
     if segment_column not in loans.columns:
@@ -885,12 +602,12 @@ def project_loans(
     )
     lookups = {s: MacroLookup(p) for s, p in paths.items()}
     if len(book.loan_id):
-        _check_coverage(lookups, _coverage_needs(book, spec, hpi_names, market_rate_series, hold=False))
+        check_coverage(lookups, _coverage_needs(book, spec, hpi_names, market_rate_series, hold=False))
 
     frame = book.frame
     n_all = len(frame)
     seg_code, seg_levels = pd.factorize(frame[segment_column].astype(str), sort=True)
-    labels = _band_labels(tuple(band_edges))
+    labels = score_band_labels(tuple(band_edges))
     if band_column is not None and band_edges:
         band_code = np.searchsorted(np.asarray(band_edges, float), frame[band_column].to_numpy(float), side="right")
     else:
@@ -990,20 +707,20 @@ def project_loans(
         }
     )
     seg_names = [str(x) for x in seg_levels]
-    term_structure = _term_structure_frame(ts, names, seg_names, labels, years)
-    speeds, multiples = _speeds_frames(sp, names, seg_names, labels, max_age)
+    term_structure = term_structure_frame(ts, names, seg_names, labels, years)
+    speeds, multiples = speeds_frames(sp, names, seg_names, labels, max_age)
     return ProjectionResult(
         loans=loans_out, term_structure=term_structure, speeds=speeds, speed_multiples=multiples,
         scenarios=scenarios, weights=w, as_of_idx=int(as_of_idx),
     )
 
 
-def _repeat_ids(loan_id, counts) -> pa.Array:
+def repeat_ids(loan_id, counts) -> pa.Array:
     """``loan_id[i]`` repeated ``counts[i]`` times, built by Arrow (no Python strings per row)."""
     return pa.array(loan_id).take(pa.array(np.repeat(np.arange(len(loan_id), dtype=np.int32), counts)))
 
 
-def _scenario_column(names, codes) -> pa.DictionaryArray:
+def scenario_column(names, codes) -> pa.DictionaryArray:
     return pa.DictionaryArray.from_arrays(pa.array(codes, type=pa.int32()), pa.array(list(names), type=pa.string()))
 
 
@@ -1018,8 +735,8 @@ def _curve_table(loan_id, names, curves, haz, mask, ages) -> pa.Table:
     counts = mask.sum(axis=1)
     return pa.table(
         {
-            "loan_id": _repeat_ids(loan_id, counts * K),
-            "scenario": _scenario_column(names, np.broadcast_to(np.arange(K, dtype=np.int32)[None, :, None], (n, K, H))[m3]),
+            "loan_id": repeat_ids(loan_id, counts * K),
+            "scenario": scenario_column(names, np.broadcast_to(np.arange(K, dtype=np.int32)[None, :, None], (n, K, H))[m3]),
             "month_ahead": np.broadcast_to(np.arange(1, H + 1, dtype=np.int32)[None, None, :], (n, K, H))[m3],
             "loan_age": np.broadcast_to(ages.astype(np.int32)[:, None, :], (n, K, H))[m3],
             "h_default": stack(lambda s: haz[s][0]),
@@ -1055,15 +772,15 @@ def _term_table(loan_id, names, curves, remaining) -> pa.Table:
     counts = ymask.sum(axis=1)
     return pa.table(
         {
-            "loan_id": _repeat_ids(loan_id, counts * K),
-            "scenario": _scenario_column(names, np.broadcast_to(np.arange(K, dtype=np.int32)[None, :, None], (n, K, years))[m3]),
+            "loan_id": repeat_ids(loan_id, counts * K),
+            "scenario": scenario_column(names, np.broadcast_to(np.arange(K, dtype=np.int32)[None, :, None], (n, K, years))[m3]),
             "year_ahead": np.broadcast_to(np.arange(1, years + 1, dtype=np.int32)[None, None, :], (n, K, years))[m3],
             **{c: np.stack(v, axis=1)[m3] for c, v in cols.items()},
         }
     )
 
 
-def _term_structure_frame(ts, names, seg_names, labels, years) -> pd.DataFrame:
+def term_structure_frame(ts, names, seg_names, labels, years) -> pd.DataFrame:
     K, G = len(names), len(seg_names) * len(labels)
     rows = []
     nb = len(labels)
@@ -1101,7 +818,7 @@ def _term_structure_frame(ts, names, seg_names, labels, years) -> pd.DataFrame:
     return out
 
 
-def _speeds_frames(sp, names, seg_names, labels, max_age):
+def speeds_frames(sp, names, seg_names, labels, max_age):
     nb = len(labels)
     frames, multiples = [], []
     ages = np.arange(max_age + 1)
@@ -1188,7 +905,7 @@ def origination_pd(
     lookups = {"origination": MacroLookup(macro)}
     n_all = len(book.loan_id)
     if n_all:
-        _check_coverage(lookups, _coverage_needs(book, spec, hpi_names, market_rate_series, hold=True))
+        check_coverage(lookups, _coverage_needs(book, spec, hpi_names, market_rate_series, hold=True))
     out = np.zeros(n_all)
     if "age" in loans.columns:
         ages = loans.set_index("loan_id")["age"].reindex(book.loan_id).to_numpy(dtype=np.int64)
@@ -1269,7 +986,7 @@ def segment_speeds(speeds: pd.DataFrame, scenario: str = WEIGHTED) -> tuple[pd.D
     ``cdr`` from the pooled expected balances) and the equivalent % PSA and %
     SDA of each segment (exposure-weighted least squares in CPR / CDR units).
     """
-    from .speeds import equivalent_psa, equivalent_sda, mdr_to_cdr, smm_to_cpr
+    from ..model import equivalent_psa, equivalent_sda, mdr_to_cdr, smm_to_cpr
 
     sub = speeds[speeds["scenario"] == scenario]
     cols = ["default_exposure", "defaulted", "prepay_exposure", "prepaid"]

@@ -37,20 +37,20 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from .config import Loss, Staging
-from .errors import ProjectionError
-from .projection import (
+from ..config import Loss, Staging
+from ..errors import ProjectionError
+from ..forecast import (
     WEIGHTED,
     ChunkProjection,
     MacroLookup,
     ProjectionResult,
-    _check_coverage,
-    _ids,
-    _repeat_ids,
-    _scenario_column,
-    _weights,
+    check_coverage,
+    loan_list_text,
     origination_pd,
     project_loans,
+    repeat_ids,
+    scenario_column,
+    scenario_weights,
 )
 
 __all__ = [
@@ -264,8 +264,8 @@ class _EclAccumulator:
             self.writer(
                 pa.table(
                     {
-                        "loan_id": _repeat_ids(ch.loans["loan_id"].to_numpy(), counts * K),
-                        "scenario": _scenario_column(
+                        "loan_id": repeat_ids(ch.loans["loan_id"].to_numpy(), counts * K),
+                        "scenario": scenario_column(
                             names, np.broadcast_to(np.arange(K, dtype=np.int32)[None, :, None], (n, K, H))[m3]
                         ),
                         "month_ahead": np.broadcast_to(u.astype(np.int32)[None, None, :], (n, K, H))[m3],
@@ -306,7 +306,7 @@ def expected_credit_loss(
     Parameters
     ----------
     loans : DataFrame
-        As for :func:`creditsurv.projection.project_loans`, plus
+        As for :func:`creditsurv.forecast.project_loans`, plus
         ``days_past_due`` and optionally ``in_default`` (bool; else in default
         when days_past_due >= ``default_days_past_due``); ``original_balance``
         and ``origination_idx`` when the PD at origination is projected;
@@ -315,7 +315,7 @@ def expected_credit_loss(
     source, paths, as_of_idx, weights, chunk_size, hpi_series, region_column,
     market_rate_series, segment_column, band_column, band_edges, curve_writer,
     term_writer
-        Passed to :func:`~creditsurv.projection.project_loans`.  For the
+        Passed to :func:`~creditsurv.forecast.project_loans`.  For the
         collateral LGD the paths must reach ``months_to_recovery`` months past
         the last maturity.
     loss, staging : config ``Loss`` and ``Staging``
@@ -367,11 +367,11 @@ def expected_credit_loss(
             if (rows & live).any():
                 months.append(np.arange(as_of_idx + 1, int(ends[rows & live].max()) + 1))
             needs.setdefault(name, []).extend(months)
-        _check_coverage(lookups, {k: np.unique(np.concatenate([np.asarray(m) for m in v])) for k, v in needs.items()})
+        check_coverage(lookups, {k: np.unique(np.concatenate([np.asarray(m) for m in v])) for k, v in needs.items()})
 
     live_rows = np.flatnonzero(~in_default)
     live = frame.iloc[live_rows]
-    w = _weights(scenarios, weights)
+    w = scenario_weights(scenarios, weights)
     acc = _EclAccumulator(len(live), scenarios, w, loss, lookups, region_column, hpi_names, as_of_idx, schedule_writer)
     on_chunk = acc
     if progress is not None:
@@ -408,7 +408,7 @@ def expected_credit_loss(
         pd_orig = frame[col].to_numpy(dtype=float)
         bad = ~((pd_orig >= 0) & (pd_orig <= 1))
         if (bad & ~in_default).any():
-            raise ProjectionError(f"loans: {col!r} is not a probability in [0, 1] for {_ids(frame['loan_id'][bad & ~in_default])}")
+            raise ProjectionError(f"loans: {col!r} is not a probability in [0, 1] for {loan_list_text(frame['loan_id'][bad & ~in_default])}")
     else:
         pd_orig = np.full(n, np.nan)
         if len(live):

@@ -22,13 +22,13 @@ All problems are collected in one pass and raised together as one
 from __future__ import annotations
 
 import dataclasses
-import difflib
 import types
 import typing
 from pathlib import Path
 from typing import Any, Literal, get_args, get_origin
 
-from ._months import format_month, parse_month
+from ..errors import did_you_mean
+from ..months import format_month, parse_month
 
 
 class Month(int):
@@ -45,10 +45,6 @@ class FilePath(type(Path())):  # type: ignore[misc]
     """A path read from the config, resolved against the config file's folder."""
 
 
-def closest(word: str, choices) -> str:
-    """Return ``"; did you mean 'x'?"`` for the closest choice, or ``""``."""
-    match = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.6)
-    return f"; did you mean '{match[0]}'?" if match else ""
 
 
 def _join(path: str, key) -> str:
@@ -114,7 +110,7 @@ class _Builder:
                 self.problem(
                     path,
                     f"{value!r} is not one of {', '.join(map(str, choices))}"
-                    + closest(value, choices),
+                    + did_you_mean(value, choices),
                 )
                 return None
             return value
@@ -173,7 +169,7 @@ class _Builder:
             if key not in fields:
                 self.problem(
                     _join(path, key),
-                    f"unknown key (valid keys: {', '.join(fields)})" + closest(key, fields),
+                    f"unknown key (valid keys: {', '.join(fields)})" + did_you_mean(key, fields),
                 )
         kwargs = {}
         before = len(self.problems)

@@ -1,0 +1,50 @@
+"""Stage 1, the config: read the YAML once, check every key against one schema, hand frozen values inward.
+
+Every problem visible in the YAML is raised here (:class:`~creditsurv.errors.ConfigError`),
+all of them in one error, each with its key path and the closest valid choice.
+"""
+
+from ._config import (
+    Baseline,
+    Checks,
+    Collateral,
+    Config,
+    Covariate,
+    DefaultDefinition,
+    DuckdbSettings,
+    Events,
+    FitSettings,
+    Inputs,
+    Lgd,
+    LoanColumns,
+    LoanSource,
+    Loss,
+    MacroColumns,
+    MacroSource,
+    ModelSpec,
+    Outputs,
+    PanelColumns,
+    PanelSource,
+    Scenario,
+    ScenarioExtension,
+    Segments,
+    SparkSettings,
+    Staging,
+    ValidationSettings,
+    Window,
+    Windows,
+    config_from_dict,
+    config_sha256,
+    config_to_dict,
+    load_config,
+    read_yaml,
+    schema_reference,
+)
+
+__all__ = [
+    "Baseline", "Checks", "Collateral", "Config", "Covariate", "DefaultDefinition", "DuckdbSettings",
+    "Events", "FitSettings", "Inputs", "LoanColumns", "LoanSource", "Loss", "Lgd", "MacroColumns",
+    "MacroSource", "ModelSpec", "Outputs", "PanelColumns", "PanelSource", "Scenario", "ScenarioExtension",
+    "Segments", "SparkSettings", "Staging", "ValidationSettings", "Window", "Windows",
+    "config_from_dict", "config_sha256", "config_to_dict", "load_config", "read_yaml", "schema_reference",
+]  # fmt: skip

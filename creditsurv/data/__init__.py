@@ -1,0 +1,50 @@
+"""Stage 2, the data: what the inputs must hold, the data checks and the event rules.
+
+Written once as SQL text and plain Python that every engine runs (see
+:mod:`creditsurv.engines`): an engine registers the input files under the
+internal column names (:mod:`._inputs`), runs the checks (:mod:`._checks`) and
+labels what happened to each loan (:mod:`._events`).
+"""
+
+from ._checks import (
+    CHECK_COLUMNS,
+    CHECKS,
+    Check,
+    PlannedCheck,
+    check_frame,
+    check_severity_names,
+    format_checks,
+    plan_checks,
+    raise_for_errors,
+)
+from ._events import (
+    BOOK_SQL,
+    CAUSE_CODES,
+    EVENTS,
+    LOAN_MONTHS_SQL,
+    LOAN_OUTCOMES_SQL,
+    OUTCOME_CONTINUE,
+    OUTCOME_DEFAULT,
+    OUTCOME_PREPAY,
+    event_params,
+)
+from ._inputs import (
+    LOAN_COLUMNS,
+    MACRO_COLUMNS,
+    PANEL_COLUMNS,
+    Source,
+    file_format,
+    input_sources,
+    macro_series_used,
+    passthrough_columns,
+    problem_text,
+    resolve_inputs,
+)
+
+__all__ = [
+    "BOOK_SQL", "CAUSE_CODES", "CHECKS", "CHECK_COLUMNS", "Check", "EVENTS", "LOAN_COLUMNS", "LOAN_MONTHS_SQL",
+    "LOAN_OUTCOMES_SQL", "MACRO_COLUMNS", "OUTCOME_CONTINUE", "OUTCOME_DEFAULT", "OUTCOME_PREPAY",
+    "PANEL_COLUMNS", "PlannedCheck", "Source", "check_frame", "check_severity_names", "event_params",
+    "file_format", "format_checks", "input_sources", "macro_series_used", "passthrough_columns", "plan_checks",
+    "problem_text", "raise_for_errors", "resolve_inputs",
+]  # fmt: skip

@@ -1,0 +1,348 @@
+"""The data checks: one table of checks, each an SQL body whose last CTE ``offending`` lists the bad rows.
+
+The checks are written once as SQL text; each engine runs ``WITH {sql} ...`` in
+its own dialect (:func:`plan_checks` fills the parameters and placeholders).
+:func:`raise_for_errors` turns failed checks into a ``DataCheckError`` and
+warnings into ``DataCheckWarning``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import warnings
+
+import pandas as pd
+
+from ..config import Config
+from ..errors import ConfigError, DataCheckError, DataCheckWarning, did_you_mean
+from ..sql import quote_ident
+from ._inputs import macro_series_used
+
+__all__ = [
+    "CHECKS", "CHECK_COLUMNS", "Check", "PlannedCheck", "check_frame", "check_severity_names", "format_checks",
+    "plan_checks", "raise_for_errors",
+]  # fmt: skip
+
+Severity = str  # "error" | "warning" | "off"
+
+
+def check_severity_names(cfg: Config) -> None:
+    names = [c.name for c in CHECKS]
+    problems = [
+        f"checks.severity.{name}: unknown data check" + (did_you_mean(name, names) or f" (valid names: {', '.join(names)})")
+        for name in cfg.checks.severity
+        if name not in names
+    ]
+    if problems:
+        lines = "\n".join(f"  - {p}" for p in problems)
+        raise ConfigError(f"config: {len(problems)} problem(s) in the config:\n{lines}", problems)
+
+
+
+@dataclasses.dataclass(frozen=True)
+class Check:
+    """One data check: an SQL body whose last CTE ``offending`` lists the bad rows.
+
+    ``sql`` is the CTE list after ``WITH`` (without the word); it may refer to
+    ``$as_of``, ``$paid_off``, ``$first_macro`` and ``$macro_series`` via
+    parameters and to the ``{series_null}`` placeholder (macro checks).
+    """
+
+    name: str
+    severity: Severity
+    table: str  # the source the count refers to: panel, loans, macro
+    unit: str  # rows, loans, loan-months, months
+    columns: tuple[str, ...]  # internal columns involved
+    description: str
+    sql: str
+    needs: tuple[str, ...] = ()  # extra sources the check reads
+
+
+# The one table of checks and their default severities, in report order.
+_SUSPECT_LOANS = """suspect AS (
+            -- A loan whose months are exactly min..max, once each, has as many rows as months
+            -- in its span and the sum and sum of squares of that run; only the other loans
+            -- are examined row by row (a cheap aggregate instead of a sort of the whole panel).
+            SELECT loan_id FROM panel GROUP BY loan_id
+            HAVING count(*) <> max(month_idx) - min(month_idx) + 1
+                OR sum(CAST(month_idx AS BIGINT)) * 2 <> (min(month_idx) + max(month_idx)) * count(*)
+                OR sum(CAST(month_idx AS BIGINT) * month_idx) <>
+                   CAST(max(month_idx) AS BIGINT) * (max(month_idx) + 1) * (2 * max(month_idx) + 1) / 6
+                   - CAST(min(month_idx) - 1 AS BIGINT) * min(month_idx) * (2 * min(month_idx) - 1) / 6),"""
+"""Loans whose rows are not one clean run of months: the only ones the duplicate
+and gap checks examine row by row."""
+
+
+CHECKS: tuple[Check, ...] = (
+    Check(
+        "panel_keys_missing", "error", "panel", "rows", ("loan_id", "month"),
+        "Panel rows whose loan id is empty or whose month is missing or not a readable month.",
+        """offending AS (
+            SELECT loan_id, month, month_idx, age FROM panel_all
+            WHERE loan_id IS NULL OR month IS NULL)""",
+    ),
+    Check(
+        "duplicate_loan_months", "error", "panel", "loan-months", ("loan_id", "month"),
+        "Loan-months that appear in more than one panel row.",
+        _SUSPECT_LOANS + """
+        offending AS (
+            SELECT loan_id, month, count(*) AS rows FROM panel
+            WHERE loan_id IN (SELECT loan_id FROM suspect)
+            GROUP BY loan_id, month HAVING count(*) > 1)""",
+    ),
+    Check(
+        "month_gaps", "error", "panel", "rows", ("loan_id", "month"),
+        "Panel rows more than one month after the loan's previous row.",
+        _SUSPECT_LOANS + """
+        ordered AS (
+            SELECT loan_id, month, month_idx,
+                   lag(month) OVER w AS previous_month,
+                   month_idx - lag(month_idx) OVER w AS step
+            FROM panel
+            WHERE loan_id IN (SELECT loan_id FROM suspect)
+            WINDOW w AS (PARTITION BY loan_id ORDER BY month_idx)),
+        offending AS (
+            SELECT loan_id, month, previous_month, step - 1 AS missing_months
+            FROM ordered WHERE step > 1)""",
+    ),
+    Check(
+        "age_mismatch", "error", "panel", "rows", ("age", "month", "origination_month"),
+        "Panel rows whose age is not the months since the loan's origination month.",
+        """offending AS (
+            SELECT p.loan_id, p.month, p.age, p.month_idx - l.origination_idx AS expected_age
+            FROM panel AS p
+            JOIN (SELECT loan_id, any_value(origination_idx) AS origination_idx
+                  FROM loans GROUP BY loan_id) AS l USING (loan_id)
+            WHERE l.origination_idx IS NOT NULL
+              AND p.age IS DISTINCT FROM p.month_idx - l.origination_idx)""",
+        needs=("loans",),
+    ),
+    Check(
+        "rows_after_closure", "error", "panel", "rows", ("balance", "month"),
+        "Panel rows after the loan's first month with a paid-off balance.",
+        """closed AS (
+            SELECT loan_id, min(month_idx) AS closed_idx, min(month) AS closed_month FROM panel
+            WHERE balance <= $paid_off GROUP BY loan_id),
+        offending AS (
+            SELECT p.loan_id, p.month, p.balance, c.closed_month
+            FROM panel AS p JOIN closed AS c USING (loan_id)
+            WHERE p.month_idx > c.closed_idx)""",
+    ),
+    Check(
+        "balance_missing", "error", "panel", "rows", ("balance",),
+        "Panel rows without a balance.",
+        """offending AS (
+            SELECT loan_id, month, balance FROM panel WHERE balance IS NULL)""",
+    ),
+    Check(
+        "balance_negative", "error", "panel", "rows", ("balance",),
+        "Panel rows with a negative balance.",
+        """offending AS (
+            SELECT loan_id, month, balance FROM panel WHERE balance < 0)""",
+    ),
+    Check(
+        "days_past_due_invalid", "error", "panel", "rows", ("days_past_due",),
+        "Panel rows whose days past due are missing or negative.",
+        """offending AS (
+            SELECT loan_id, month, days_past_due FROM panel
+            WHERE days_past_due IS NULL OR days_past_due < 0)""",
+    ),
+    Check(
+        "panel_loans_not_in_loan_table", "error", "panel", "loans", ("loan_id",),
+        "Loans in the panel that have no row in the loan table.",
+        """offending AS (
+            SELECT loan_id, min(month) AS first_month, count(*) AS rows FROM panel
+            WHERE loan_id IS NOT NULL
+              AND loan_id NOT IN (SELECT loan_id FROM loans WHERE loan_id IS NOT NULL)
+            GROUP BY loan_id)""",
+        needs=("loans",),
+    ),
+    Check(
+        "loans_without_panel_rows", "warning", "loans", "loans", ("loan_id",),
+        "Loans in the loan table that have no row in the panel.",
+        """offending AS (
+            SELECT l.loan_id, l.origination_month FROM loans AS l
+            WHERE l.loan_id IS NOT NULL
+              AND NOT EXISTS (SELECT 1 FROM panel_all AS p WHERE p.loan_id = l.loan_id))""",
+        needs=("panel",),
+    ),
+    Check(
+        "loan_table_duplicates", "error", "loans", "loans", ("loan_id",),
+        "Loan ids that appear in more than one row of the loan table.",
+        """offending AS (
+            SELECT loan_id, count(*) AS rows FROM loans
+            GROUP BY loan_id HAVING count(*) > 1)""",
+    ),
+    Check(
+        "loan_fields_invalid", "error", "loans", "rows",
+        ("loan_id", "origination_month", "original_balance", "note_rate", "term"),
+        "Loan-table rows with no loan id or origination month, a missing or non-positive "
+        "original balance or term, or a missing or negative note rate.",
+        """offending AS (
+            SELECT loan_id, origination_month, original_balance, note_rate, term FROM loans
+            WHERE loan_id IS NULL OR origination_month IS NULL
+               OR original_balance IS NULL OR original_balance <= 0
+               OR term IS NULL OR term <= 0
+               OR note_rate IS NULL OR note_rate < 0)""",
+    ),
+    Check(
+        "months_after_as_of", "warning", "panel", "rows", ("month",),
+        "Panel rows after the reporting month; they are left out of the panel.",
+        """offending AS (
+            SELECT loan_id, month FROM panel_all WHERE month_idx > $as_of)""",
+    ),
+    Check(
+        "macro_duplicate_months", "error", "macro", "months", ("month",),
+        "Months that appear in more than one row of the macro history.",
+        """offending AS (
+            SELECT month, count(*) AS rows FROM macro
+            WHERE month IS NOT NULL GROUP BY month HAVING count(*) > 1)""",
+    ),
+    Check(
+        "macro_months_missing", "error", "macro", "months", ("month",),
+        "Calendar months missing from the macro history between the development window start "
+        "less the largest macro lag and the reporting month.",
+        """calendar AS (
+            SELECT CAST(i AS INTEGER) AS month_idx FROM range($first_macro, $as_of + 1) AS r(i)),
+        offending AS (
+            SELECT make_date(CAST(month_idx // 12 AS INTEGER), CAST(month_idx % 12 + 1 AS INTEGER), 1) AS month
+            FROM calendar
+            WHERE month_idx NOT IN (SELECT month_idx FROM macro WHERE month_idx IS NOT NULL))""",
+    ),
+    Check(
+        "macro_values_missing", "error", "macro", "months", ("month",),
+        "Months between the development window start less the largest macro lag and the "
+        "reporting month with a missing value of a macro series the model uses.",
+        """offending AS (
+            SELECT month, {series_columns} FROM macro
+            WHERE month_idx BETWEEN $first_macro AND $as_of AND ({series_null}))""",
+    ),
+)
+
+
+_CHECKS_BY_NAME = {c.name: c for c in CHECKS}
+
+
+CHECK_COLUMNS = ["check", "severity", "count", "examples", "source", "columns", "description"]
+
+
+@dataclasses.dataclass(frozen=True)
+class PlannedCheck:
+    """One check as it runs on a given config and set of sources (engine-neutral)."""
+
+    check: Check
+    severity: Severity
+    source: str
+    columns: str
+    sql: str  # the CTE list after WITH, placeholders filled
+    params: dict  # the $-parameters the SQL uses
+    order: str  # ORDER BY of the examples
+
+
+def plan_checks(cfg: Config, srcs: dict) -> list[PlannedCheck]:
+    """The checks that apply to ``srcs``, with severity, labels, SQL and parameters.
+
+    Shared by the engines: each runs ``WITH {sql} ...`` in its own dialect.
+    """
+    used = macro_series_used(cfg)
+    max_lag = max((lag for _k, _s, lag in used), default=0)
+    params = {
+        "as_of": int(cfg.as_of),
+        "paid_off": float(cfg.events.paid_off_balance),
+        "first_macro": int(cfg.windows.development.start) - max_lag,
+    }
+    series = sorted({s for _k, s, _l in used})
+    plans = []
+    for check in CHECKS:
+        if check.table not in srcs:
+            continue
+        if check.name == "macro_values_missing" and not series:
+            continue
+        severity = cfg.checks.severity.get(check.name, check.severity)
+        tables = (check.table, *check.needs)
+        source = "; ".join(str(srcs[t].path) for t in tables if t in srcs)
+        columns = ", ".join(
+            srcs[check.table].label(c) if c in srcs[check.table].mapping else c for c in check.columns
+        )
+        sql = check.sql
+        if check.name == "macro_values_missing":
+            columns = ", ".join(series)
+            sql = sql.replace("{series_columns}", ", ".join(quote_ident(s) for s in series))
+            sql = sql.replace("{series_null}", " OR ".join(f"{quote_ident(s)} IS NULL" for s in series))
+        wanted = {k: v for k, v in params.items() if f"${k}" in sql}
+        order = "ALL" if check.table != "macro" else "month"
+        plans.append(PlannedCheck(check, severity, source, columns, sql, wanted, order))
+    return plans
+
+
+def check_frame(plans: list[PlannedCheck], results: list[tuple[int, str]]) -> pd.DataFrame:
+    """The check table from the plans and each check's ``(count, examples)``."""
+    rows = [
+        [pl.check.name, pl.severity, int(count), examples, pl.source, pl.columns, pl.check.description]
+        for pl, (count, examples) in zip(plans, results)
+    ]
+    return pd.DataFrame(rows, columns=CHECK_COLUMNS).astype({"count": "int64"})
+
+
+def _first_example(examples: str) -> str:
+    text = examples.strip()
+    if text in ("", "[]"):
+        return ""
+    first = json.loads(text)[0]
+    return ", ".join(f"{k}={v}" for k, v in first.items())
+
+
+def _check_line(row) -> str:
+    check = _CHECKS_BY_NAME.get(row["check"])
+    unit = check.unit if check else "rows"
+    example = _first_example(row["examples"])
+    return f"{row['check']}: {row['count']} {unit}" + (f" (e.g. {example})" if example else "")
+
+
+def raise_for_errors(checks: pd.DataFrame) -> None:
+    """Raise for failed error checks; warn for fired warning checks.
+
+    Raises
+    ------
+    DataCheckError
+        When a check of severity ``error`` has a nonzero count. The message
+        names every failed check with its count and first example (and lists
+        the fired warnings too).
+
+    Warns
+    -----
+    DataCheckWarning
+        One per fired check of severity ``warning``, when no error check failed.
+    """
+    fired = checks[checks["count"] > 0]
+    errors = fired[fired["severity"] == "error"]
+    warns = fired[fired["severity"] == "warning"]
+    if len(errors):
+        lines = [f"  - {_check_line(r)}" for _, r in errors.iterrows()]
+        if len(warns):
+            lines.append("  warnings:")
+            lines.extend(f"  - {_check_line(r)}" for _, r in warns.iterrows())
+        n = len(errors)
+        source = "; ".join(dict.fromkeys(errors["source"]))
+        raise DataCheckError(
+            f"{n} data check{'s' if n > 1 else ''} failed on {source}:\n" + "\n".join(lines)
+            + "\nFix the data, or change a check's severity under checks.severity in the config."
+        )
+    for _, r in warns.iterrows():
+        warnings.warn(DataCheckWarning(_check_line(r)), stacklevel=2)
+
+
+def format_checks(checks: pd.DataFrame) -> str:
+    """One line per check: OK, WARN, FAIL or OFF, the name and the count."""
+    lines = []
+    width = max((len(n) for n in checks["check"]), default=0)
+    for _, r in checks.iterrows():
+        if r["severity"] == "off":
+            flag = "OFF "
+        elif r["count"] == 0:
+            flag = "OK  "
+        else:
+            flag = "FAIL" if r["severity"] == "error" else "WARN"
+        lines.append(f"{flag} {r['check']:<{width}} {r['count']:>10,}")
+    return "\n".join(lines)

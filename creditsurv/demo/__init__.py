@@ -1,0 +1,26 @@
+"""The demo book: a simulator of a fictional lender's loan-month history with known true hazards."""
+
+from ._simulate import (
+    DEFAULT_MIN_AGE,
+    LENDER,
+    OUTPUT_FILES,
+    TRUE_COEFFICIENTS,
+    BookChunk,
+    LogitHazard,
+    PSAHazard,
+    SimulatedBook,
+    book_truth,
+    make_macro,
+    psa_hazard,
+    simulate_book,
+    simulate_small_book,
+    scheduled_balance,
+    true_hazard,
+    write_demo_book,
+)
+
+__all__ = [
+    "DEFAULT_MIN_AGE", "LENDER", "OUTPUT_FILES", "TRUE_COEFFICIENTS", "BookChunk", "LogitHazard", "PSAHazard", "SimulatedBook",
+    "book_truth", "make_macro", "psa_hazard", "scheduled_balance", "simulate_book", "simulate_small_book", "true_hazard",
+    "write_demo_book",
+]  # fmt: skip

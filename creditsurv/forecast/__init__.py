@@ -1,0 +1,31 @@
+"""Stage 4, the forecast: scenario paths, projection of every live loan, curves, speeds, segment tables."""
+
+from ._projection import (
+    WEIGHTED,
+    ChunkProjection,
+    MacroLookup,
+    ProjectionResult,
+    TableWriter,
+    check_coverage,
+    loan_list_text,
+    origination_pd,
+    project_loans,
+    repeat_ids,
+    scenario_column,
+    scenario_weights,
+    scheduled_balance,
+    score_band_labels,
+    segment_level,
+    segment_pd_tables,
+    segment_speeds,
+    speeds_frames,
+    term_structure_frame,
+)
+from ._scenarios import extend_path, load_scenario_paths, prepare_paths
+
+__all__ = [
+    "WEIGHTED", "ChunkProjection", "MacroLookup", "ProjectionResult", "TableWriter", "check_coverage",
+    "extend_path", "load_scenario_paths", "loan_list_text", "origination_pd", "prepare_paths", "project_loans",
+    "repeat_ids", "scenario_column", "scenario_weights", "scheduled_balance", "score_band_labels",
+    "segment_level", "segment_pd_tables", "segment_speeds", "speeds_frames", "term_structure_frame",
+]  # fmt: skip

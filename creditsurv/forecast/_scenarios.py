@@ -1,0 +1,282 @@
+"""Scenario paths: read each scenario's monthly macro path, check it, extend it past its end.
+
+A scenario file holds one row per calendar month and one column per macro
+series. :func:`prepare_paths` reads every configured scenario, checks that it
+covers the series the model needs from the month after the reporting month,
+and extends it with the macro history before and the configured reversion rule
+after (:func:`extend_path`).
+"""
+
+from __future__ import annotations
+
+import fnmatch
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..errors import ProjectionError
+from ..months import format_month, month_ranges, parse_month
+
+__all__ = ["load_scenario_paths", "extend_path", "prepare_paths"]
+
+
+# --------------------------------------------------------------------------- months
+
+
+
+
+def _month_index(values) -> tuple[np.ndarray, list]:
+    """Month indices of a column of YYYY-MM text or dates; also the unparseable values."""
+    s = pd.Series(values)
+    if pd.api.types.is_datetime64_any_dtype(s):
+        idx = (s.dt.year * 12 + s.dt.month - 1).to_numpy()
+        return idx.astype(np.int64), []
+    out, bad = np.zeros(len(s), dtype=np.int64), []
+    for i, v in enumerate(s.tolist()):
+        try:
+            out[i] = parse_month(v if not hasattr(v, "date") else v.date())
+        except (ValueError, TypeError):
+            bad.append(v)
+    return out, bad
+
+
+# --------------------------------------------------------------------------- scenario paths
+
+
+def _show(value) -> str:
+    return "a blank" if pd.isna(value) else repr(str(value))
+
+
+def _read_table(path: Path) -> pd.DataFrame:
+    suffix = path.suffix.lower()
+    if suffix in (".parquet", ".pq"):
+        return pd.read_parquet(path)
+    if suffix == ".csv":
+        return pd.read_csv(path, dtype={"month": str})
+    raise ProjectionError(f"{path}: cannot tell the format from the suffix {suffix!r}; use .csv or .parquet")
+
+
+def load_scenario_paths(
+    cfg_scenarios: Sequence,
+    history: pd.DataFrame,
+    *,
+    required_series: Sequence[str] = (),
+    month_column: str = "month",
+) -> dict[str, pd.DataFrame]:
+    """Read and check each scenario's monthly macro path.
+
+    Parameters
+    ----------
+    cfg_scenarios : sequence of config ``Scenario``
+        Each with ``name`` and ``path`` (CSV or Parquet with a month column,
+        ``YYYY-MM`` text or dates, and one column per series).
+    history : DataFrame
+        Macro history indexed by month index; every one of its series must be
+        in every scenario.
+    required_series : sequence of str
+        Further series the model needs (e.g. from ``macro:<series>:<lag>``).
+    month_column : str, default "month"
+
+    Returns
+    -------
+    dict of name -> DataFrame
+        In config order, each indexed by month index (``month_idx``), float columns.
+
+    Raises
+    ------
+    ProjectionError
+        Listing every problem in one message, each naming the scenario and file:
+        unreadable file, no month column, bad or duplicate months, missing
+        months inside the path, missing series, non-numeric or missing values.
+    """
+    needed = list(dict.fromkeys([*history.columns, *required_series]))
+    out, problems = {}, []
+    for sc in cfg_scenarios:
+        path = Path(sc.path)
+        where = f"scenario {sc.name!r} ({path})"
+        try:
+            raw = _read_table(path)
+        except ProjectionError as exc:
+            problems.append(f"{where}: {exc}")
+            continue
+        except (OSError, ValueError) as exc:
+            problems.append(f"{where}: cannot read the file ({exc})")
+            continue
+        if month_column not in raw.columns:
+            problems.append(f"{where}: no {month_column!r} column; columns are {list(raw.columns)}")
+            continue
+        idx, bad = _month_index(raw[month_column])
+        if bad:
+            problems.append(f"{where}: column {month_column!r} has values that are not months: {bad[:5]}")
+            continue
+        dupes = pd.Index(idx)[pd.Index(idx).duplicated()].unique()
+        if len(dupes):
+            problems.append(f"{where}: duplicate months {month_ranges(dupes)}")
+        if len(idx):
+            gaps = sorted(set(range(int(idx.min()), int(idx.max()) + 1)) - set(idx.tolist()))
+            if gaps:
+                problems.append(f"{where}: missing months inside the path: {month_ranges(gaps)}")
+        missing = [s for s in needed if s not in raw.columns]
+        if missing:
+            problems.append(f"{where}: missing series {missing} (needed by the model or present in the history)")
+        frame = {}
+        for col in raw.columns:
+            if col == month_column:
+                continue
+            values = pd.to_numeric(raw[col], errors="coerce")
+            bad_rows = np.flatnonzero(values.isna().to_numpy())
+            if len(bad_rows):
+                problems.append(
+                    f"{where}: series {col!r} has missing or non-numeric values in months "
+                    f"{month_ranges(idx[bad_rows])} (e.g. {_show(raw[col].iloc[bad_rows[0]])})"
+                )
+            frame[col] = values.to_numpy(dtype=float)
+        if not dupes.size:
+            out[sc.name] = pd.DataFrame(frame, index=pd.Index(idx, name="month_idx")).sort_index()
+    if problems:
+        n = len(problems)
+        raise ProjectionError(f"{n} problem{'s' if n > 1 else ''} in the scenario paths:\n" + "\n".join(f"  - {p}" for p in problems))
+    return out
+
+
+def extend_path(
+    history: pd.DataFrame,
+    path: pd.DataFrame,
+    until_idx: int,
+    rule: str = "revert_to_mean",
+    months: int = 24,
+    long_run: Mapping[str, float] | None = None,
+    *,
+    as_of_idx: int | None = None,
+    name: str = "scenario",
+    hold_last_series: Sequence[str] = (),
+) -> pd.DataFrame:
+    """One continuous monthly series per column, from the history's start to ``until_idx``.
+
+    The result is, month by month:
+
+    1. the history up to and including the as-of month (``as_of_idx``, default
+       the last month of the history);
+    2. months after the as-of month and before the path's first month: the
+       history, when it has them (else ProjectionError);
+    3. the scenario path from the month after the as-of month to its last month T;
+    4. after T, by ``rule``:
+
+       - ``hold_last``: x(T + k) = x(T);
+       - ``revert_to_mean``: x(T + k) = x(T) + (L - x(T)) * min(k, months) / months,
+         a straight line reaching the long-run value L after ``months`` months,
+         flat at L after.  L is ``long_run[series]`` when given, else the mean
+         of the history up to the as-of month.  For a trending level series
+         (a house-price index) the history's mean is far below the last
+         value, so reverting to it is a price fall; give ``long_run`` for such
+         series, list it in ``hold_last_series`` or use ``hold_last``.
+
+       Series matching a shell pattern of ``hold_last_series`` (e.g. ``hpi_*``)
+       hold their last value whatever ``rule`` says.
+
+    Parameters
+    ----------
+    history, path : DataFrame
+        Indexed by month index, one column per series.
+    until_idx : int
+        Last month index wanted.
+    rule : {"revert_to_mean", "hold_last"}
+    months : int, default 24
+    long_run : mapping of series -> float, optional
+    as_of_idx : int, optional
+    name : str
+        Scenario name used in error messages.
+
+    Returns
+    -------
+    DataFrame indexed by ``month_idx`` without gaps.
+    """
+    if rule not in ("revert_to_mean", "hold_last"):
+        raise ProjectionError(f"scenario {name!r}: unknown extension rule {rule!r}; use revert_to_mean or hold_last")
+    if months < 1:
+        raise ProjectionError(f"scenario {name!r}: revert_to_mean needs months >= 1, got {months}")
+    long_run = dict(long_run or {})
+    hist = history.sort_index()
+    h_idx = hist.index.to_numpy(dtype=np.int64)
+    as_of = int(h_idx.max()) if as_of_idx is None else int(as_of_idx)
+    start = int(h_idx.min())
+    if as_of < start:
+        raise ProjectionError(f"scenario {name!r}: as-of month {format_month(as_of)} is before the history starts")
+    gaps = sorted(set(range(start, int(h_idx.max()) + 1)) - set(h_idx.tolist()))
+    if gaps:
+        raise ProjectionError(f"macro history: missing months {month_ranges(gaps)}")
+    if len(path) == 0:
+        raise ProjectionError(f"scenario {name!r}: the path has no months")
+    p_idx = path.index.to_numpy(dtype=np.int64)
+    p0, p1 = int(p_idx.min()), int(p_idx.max())
+    if p1 <= as_of:
+        raise ProjectionError(
+            f"scenario {name!r}: the path ends at {format_month(p1)}, not after the as-of month {format_month(as_of)}"
+        )
+    columns = list(dict.fromkeys([*hist.columns, *path.columns]))
+    end = max(int(until_idx), as_of)
+    index = np.arange(start, end + 1)
+    out = pd.DataFrame(np.nan, index=pd.Index(index, name="month_idx"), columns=columns)
+    hist_upto = hist.loc[hist.index <= as_of]
+    out.loc[hist_upto.index, hist.columns] = hist_upto.to_numpy(dtype=float)
+    if p0 > as_of + 1:
+        bridge = list(range(as_of + 1, p0))
+        have = hist.reindex(bridge)
+        missing = [c for c in path.columns if c in hist.columns and have[c].isna().any()]
+        missing += [c for c in path.columns if c not in hist.columns]
+        if missing:
+            raise ProjectionError(
+                f"scenario {name!r}: the path starts at {format_month(p0)} but the as-of month is "
+                f"{format_month(as_of)}; months {month_ranges(bridge)} of series {missing} are not in the history"
+            )
+        out.loc[bridge, path.columns] = have[path.columns].to_numpy(dtype=float)
+    body = path.loc[(path.index > as_of) & (path.index <= end)]
+    out.loc[body.index, path.columns] = body.to_numpy(dtype=float)
+    if end > p1:
+        k = np.arange(1, end - p1 + 1, dtype=float)
+        after = np.arange(p1 + 1, end + 1)
+        for col in path.columns:
+            last = float(path[col].loc[p1])
+            if rule == "hold_last" or any(fnmatch.fnmatchcase(col, pat) for pat in hold_last_series):
+                values = np.full(len(k), last)
+            else:
+                target = long_run.get(col)
+                if target is None:
+                    if col not in hist_upto.columns or hist_upto[col].isna().all():
+                        raise ProjectionError(
+                            f"scenario {name!r}: series {col!r} has no history to take a long-run mean from; "
+                            "give scenario_extension.long_run"
+                        )
+                    target = float(hist_upto[col].mean())
+                values = last + (target - last) * np.minimum(k, months) / months
+            out.loc[after, col] = values
+    return out.loc[: int(until_idx)] if until_idx >= start else out.iloc[:0]
+
+
+def prepare_paths(
+    cfg_scenarios: Sequence,
+    history: pd.DataFrame,
+    *,
+    as_of_idx: int,
+    until_idx: int,
+    extension=None,
+    required_series: Sequence[str] = (),
+) -> dict[str, pd.DataFrame]:
+    """Load every scenario path and extend it with the history (see :func:`extend_path`).
+
+    ``extension`` is a config ``ScenarioExtension`` (rule, months, long_run);
+    default revert to the history mean over 24 months.
+    """
+    paths = load_scenario_paths(cfg_scenarios, history, required_series=required_series)
+    rule = getattr(extension, "rule", "revert_to_mean")
+    months = getattr(extension, "months", 24)
+    long_run = getattr(extension, "long_run", {})
+    hold = getattr(extension, "hold_last_series", ())
+    return {
+        name: extend_path(
+            history, p, until_idx, rule, months, long_run, as_of_idx=as_of_idx, name=name, hold_last_series=hold
+        )
+        for name, p in paths.items()
+    }

@@ -1,0 +1,45 @@
+"""Stage 3, the model: features, the exact hazard fit and its results, and the other hazard sources.
+
+Every hazard source (a fitted model, PSA/SDA benchmark curves, a table of
+hazards by age) answers the same two questions: which inputs it needs per
+loan-month (``required_inputs``) and the monthly default and prepayment
+probabilities for them (``hazards(raw)``).
+"""
+
+from ._features import FeatureSpec, RawInput, feature_spec, natural_spline_basis
+from ._hazard import (
+    CAUSES,
+    FirstPass,
+    HazardResults,
+    batch_design,
+    batch_sums,
+    check_fit_arguments,
+    fit_fingerprint,
+    fit_from_sums,
+    fit_hazard,
+    fit_model,
+    load_model,
+    raw_design_sql,
+    resolve_collapse,
+    symmetric,
+)
+from ._speeds import (
+    BenchmarkCurves,
+    HazardTable,
+    cdr_to_mdr,
+    cpr_to_smm,
+    equivalent_psa,
+    equivalent_sda,
+    mdr_to_cdr,
+    psa_cpr,
+    sda_cdr,
+    smm_to_cpr,
+    speeds_to_hazards,
+)
+
+__all__ = [
+    "BenchmarkCurves", "CAUSES", "FeatureSpec", "FirstPass", "batch_design", "batch_sums", "check_fit_arguments",
+    "fit_fingerprint", "fit_from_sums", "raw_design_sql", "resolve_collapse", "symmetric", "HazardResults", "HazardTable", "RawInput",
+    "cdr_to_mdr", "cpr_to_smm", "equivalent_psa", "equivalent_sda", "feature_spec", "fit_hazard", "fit_model",
+    "load_model", "mdr_to_cdr", "natural_spline_basis", "psa_cpr", "sda_cdr", "smm_to_cpr", "speeds_to_hazards",
+]  # fmt: skip

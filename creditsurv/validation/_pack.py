@@ -1,0 +1,833 @@
+"""The validation pack: reads the labelled panel, projects with the model, runs the statistics.
+
+This is the one place where validation reads the labelled panel
+(``loan_outcomes``, ``loan_months``, ``loans``, ``macro``) and asks the
+projection stage for model curves; it then hands plain arrays to the pure
+statistics of ``_statistics.py``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from ..errors import DataError
+from ._statistics import (
+    CAUSES,
+    _as_1d,
+    age_band,
+    backtest,
+    binomial_interval,
+    calibration,
+    coefficient_changes,
+    discrimination,
+    model_vs_nonparametric,
+    psi,
+    psi_flag,
+    twelve_month_cohort,
+)
+
+__all__ = ["PACK_COLUMNS", "ValidationPack", "input_stability", "validation_pack"]
+
+# ===========================================================================
+# The validation pack: reads the panel and projects with the model
+# ===========================================================================
+#
+# Everything above is pure. The functions below are the one place where
+# validation reads the labelled panel (``loan_outcomes``, ``loan_months``,
+# ``loans``, ``macro``) and asks the projection stage for model curves; they
+# then hand plain arrays to the statistics above.
+
+PACK_AGE_BAND_EDGES = (12, 24, 36, 60)
+"""Age bands of ``backtest_by_age_band`` (see :func:`age_band`)."""
+
+PACK_SAMPLE_ROWS = 200_000
+"""Development rows read at most per stability index (a deterministic hash sample)."""
+
+REALISED = "realised"
+"""Name of the one scenario of the pack: the macro history itself."""
+
+_BACKTEST_COLUMNS = (
+    "cause", "n", "expected", "actual", "predicted_rate", "observed_rate",
+    "observed_lo", "observed_hi", "outside", "z",
+)  # fmt: skip
+
+PACK_COLUMNS: dict[str, tuple[str, ...]] = {
+    "backtest_by_month": ("month", *_BACKTEST_COLUMNS),
+    "backtest_by_age_band": ("age_band", *_BACKTEST_COLUMNS),
+    "backtest_by_vintage": ("vintage", *_BACKTEST_COLUMNS),
+    "development_cohort": ("loan_id", "vintage", "age", "band", "pd_12m", "default_12m", "basis"),
+    "discrimination": (
+        "cohort_month", "n", "defaults", "auc", "auc_lo", "auc_hi", "gini", "gini_lo", "gini_hi", "ks", "bootstrap",
+    ),
+    "calibration": (
+        "group", "n", "pd_mean", "pd_min", "pd_max", "expected", "actual", "observed_rate",
+        "observed_lo", "observed_hi", "p_value", "hl_term",
+    ),
+    "stability": ("variable", "psi", "flag", "n_development", "n_current"),
+    "coefficient_changes": (
+        "cause", "term", "estimate_current", "estimate_prior", "std_error_current", "std_error_prior",
+        "change", "change_in_se", "present",
+    ),
+    "incidence_by_vintage": (
+        "vintage", "cause", "age", "model", "observed", "observed_se", "observed_lo", "observed_hi",
+        "difference", "outside", "n_risk",
+    ),
+    "hazard_by_age": ("age", "cause", "n", "events", "observed", "observed_lo", "observed_hi", "model"),
+}  # fmt: skip
+"""Columns of every table the pack can produce, in order."""
+
+
+@dataclass(frozen=True)
+class ValidationPack:
+    """The tables and headline numbers of one validation.
+
+    Attributes
+    ----------
+    tables : dict of str to DataFrame
+        The tables produced, keyed by the names of :data:`PACK_COLUMNS` with
+        those columns; a table that does not apply is absent (see
+        ``summary["notes"]``).
+    summary : dict
+        JSON-safe headline numbers (NaN written as None) and ``notes``: what
+        was skipped or sampled, and why.
+    """
+
+    tables: dict
+    summary: dict
+
+
+class _UpToAge:
+    """A hazard source that is the model up to loan age ``limit`` and 0 after.
+
+    Curves past ``limit`` are then flat and never read; the point is not to
+    evaluate the design on months nobody looks at.
+    """
+
+    def __init__(self, source, limit: int):
+        self.source = source
+        self.limit = int(limit)
+        self.required_inputs = list(source.required_inputs)
+
+    def hazards(self, raw):
+        age = np.asarray(raw["age"])
+        keep = age <= self.limit
+        hd, hp = np.zeros(age.shape[0]), np.zeros(age.shape[0])
+        if keep.all():
+            return self.source.hazards(raw)
+        if keep.any():
+            a, b = self.source.hazards({k: np.asarray(v)[keep] for k, v in raw.items()})
+            hd[keep], hp[keep] = a, b
+        return hd, hp
+
+
+# The loans alive and not in default at the end of month $month: a panel row in
+# that month with a balance above the paid-off threshold and no event up to it
+# (default is absorbing, so a loan in workout has had its event).
+_ALIVE_AT = """
+alive AS (
+    SELECT o.loan_id, p.age, p.balance
+    FROM loan_outcomes AS o
+    JOIN panel AS p ON p.loan_id = o.loan_id AND p.month_idx = $month
+    WHERE (o.event_month_idx IS NULL OR o.event_month_idx > $month)
+      AND p.balance > $paid_off
+)"""
+
+
+def _sql(panel, sql: str, params: dict | list | None = None) -> pd.DataFrame:
+    import duckdb
+
+    try:
+        return panel.con.execute(sql, params or {}).df()
+    except duckdb.Error as exc:
+        first = str(exc).strip().splitlines()[0]
+        raise DataError(f"validation query failed: {first}") from None
+
+
+def _loan_columns(panel, drop=("age", "balance", "segment")) -> str:
+    from ..sql import quote_ident
+
+    return ", ".join(f"l.{quote_ident(c)}" for c in panel.columns("loans") if c not in drop)
+
+
+def _realised_path(panel, as_of_idx: int, until_idx: int) -> pd.DataFrame:
+    """The macro history up to ``as_of_idx``, held at its last values up to ``until_idx``."""
+    from ..forecast import extend_path
+
+    if not _has_view(panel, "macro"):
+        return pd.DataFrame(index=pd.RangeIndex(0, until_idx + 1, name="month_idx"))
+    history = _sql(panel, "SELECT * EXCLUDE (month) FROM macro WHERE month_idx <= $as_of ORDER BY month_idx",
+                   {"as_of": int(as_of_idx)}).set_index("month_idx")
+    if len(history) < 2:
+        raise DataError(f"the macro history has {len(history)} month(s) up to the reporting month; need at least 2")
+    first = int(history.index.min())
+    return extend_path(
+        history, history.loc[history.index > first], max(int(until_idx), int(history.index.max())),
+        "hold_last", as_of_idx=first, name=REALISED,
+    )
+
+
+def _has_view(panel, name: str) -> bool:
+    rows = panel.con.execute(
+        "SELECT 1 FROM duckdb_views() WHERE view_name = $n\n"
+        "UNION ALL SELECT 1 FROM duckdb_tables() WHERE table_name = $n",
+        {"n": name},
+    ).fetchall()
+    return bool(rows)
+
+
+def _projection_options(cfg) -> dict:
+    c = cfg.collateral
+    return {"hpi_series": c.hpi_series, "region_column": c.region_column, "market_rate_series": c.market_rate_series}
+
+
+def _json_safe(value):
+    if isinstance(value, Mapping):
+        return {str(k): _json_safe(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_safe(v) for v in value]
+    if isinstance(value, (np.bool_, bool)):
+        return bool(value)
+    if isinstance(value, (np.integer, int)):
+        return int(value)
+    if isinstance(value, (np.floating, float)):
+        v = float(value)
+        return v if np.isfinite(v) else None
+    if value is None or isinstance(value, str):
+        return value
+    if value is pd.NA:
+        return None
+    return str(value)
+
+
+# --------------------------------------------------------------------------- the development cohort
+
+
+def _cohort(cfg, panel, month: int, notes: list) -> pd.DataFrame:
+    params = {"month": int(month), "paid_off": float(cfg.events.paid_off_balance)}
+    frame = _sql(
+        panel,
+        f"WITH {_ALIVE_AT}\nSELECT {_loan_columns(panel)}, a.age, a.balance, 'all' AS segment\n"
+        "FROM alive AS a JOIN loans AS l USING (loan_id)\nORDER BY loan_id",
+        params,
+    ).sort_values("loan_id", kind="stable", ignore_index=True)  # the order project_loans uses
+    past = (frame["age"] >= frame["term"]).to_numpy()
+    if past.any():
+        notes.append(f"{int(past.sum())} loans alive at {_fmt_month(month)} at or past their term were left out")
+        frame = frame[~past].reset_index(drop=True)
+    return frame
+
+
+def _fmt_month(idx: int) -> str:
+    from ..months import format_month
+
+    return format_month(int(idx))
+
+
+def _project_cohort(cfg, model, cohort, path, month: int, window, chunk_size: int):
+    """12-month PD of every cohort loan, and the hazards of the months ahead in ``window``.
+
+    Only the first ``max(12, window end)`` months ahead are read, so the loans
+    are projected in groups of similar age with the model cut off (hazards 0)
+    past the oldest age of the group that is needed: the curves up to that
+    horizon are exact and nothing past it is evaluated.
+    """
+    from ..forecast import project_loans
+
+    a0, a1 = window if window is not None else (1, 0)
+    width = max(a1 - a0 + 1, 0)
+    horizon = max(12, a1)
+    n = len(cohort)
+    hd_grid = np.full((n, width), np.nan)
+    hp_grid = np.full((n, width), np.nan)
+    band_column = cfg.segments.band_column if cfg.segments.band_column in cohort.columns else None
+    age = cohort["age"].to_numpy(dtype=np.int64)
+    parts = []
+    for _, rows in pd.Series(age // 12).groupby(age // 12, sort=True).indices.items():
+        group = cohort.iloc[rows]
+        where = np.asarray(rows)  # the group keeps the cohort's loan_id order
+
+        def keep(chunk, where=where):
+            if width == 0:
+                return
+            H = chunk.mask.shape[1]
+            hi = min(a1, H)
+            if hi < a0:
+                return
+            cols = slice(a0 - 1, hi)
+            m = chunk.mask[:, cols]
+            at = where[chunk.rows]
+            hd_grid[at, : hi - a0 + 1] = np.where(m, chunk.h_default[REALISED][:, cols], np.nan)
+            hp_grid[at, : hi - a0 + 1] = np.where(m, chunk.h_prepay[REALISED][:, cols], np.nan)
+
+        result = project_loans(
+            group, _UpToAge(model, int(group["age"].max()) + horizon), {REALISED: path}, as_of_idx=int(month),
+            weights={REALISED: 1.0}, chunk_size=chunk_size, band_column=band_column,
+            band_edges=cfg.segments.band_edges if band_column else (), on_chunk=keep, **_projection_options(cfg),
+        )
+        parts.append(result.loans[["loan_id", "age", "band", f"pd_12m_{REALISED}"]])
+    loans = pd.concat(parts, ignore_index=True).sort_values("loan_id", kind="stable", ignore_index=True)
+    return loans, hd_grid, hp_grid
+
+
+def _month_labels(idx) -> np.ndarray:
+    """``YYYY-MM`` text of an array of month indices."""
+    idx = np.asarray(idx, dtype=np.int64)
+    uniq, inv = np.unique(idx, return_inverse=True)
+    return np.asarray([_fmt_month(m) for m in uniq], dtype=object)[inv.reshape(-1)]
+
+
+def _backtest_tables(cfg, panel, cohort, hd_grid, hp_grid, month: int, notes: list) -> tuple[dict, dict]:
+    oot = cfg.windows.out_of_time
+    params = {"month": int(month), "paid_off": float(cfg.events.paid_off_balance),
+              "start": int(oot.start), "end": int(oot.end)}  # fmt: skip
+    rows = _sql(
+        panel,
+        f"WITH {_ALIVE_AT}\n"
+        "SELECT lm.loan_id, lm.month_idx, lm.age, lm.outcome, l.origination_idx\n"
+        "FROM loan_months AS lm JOIN alive USING (loan_id) JOIN loans AS l USING (loan_id)\n"
+        "WHERE lm.month_idx BETWEEN $start AND $end\nORDER BY lm.loan_id, lm.month_idx",
+        params,
+    )
+    pos = pd.Index(cohort["loan_id"]).get_indexer(rows["loan_id"])
+    col = rows["month_idx"].to_numpy(dtype=np.int64) - int(oot.start)
+    ok = pos >= 0
+    hd = np.full(len(rows), np.nan)
+    hp = np.full(len(rows), np.nan)
+    hd[ok], hp[ok] = hd_grid[pos[ok], col[ok]], hp_grid[pos[ok], col[ok]]
+    found = np.isfinite(hd) & np.isfinite(hp)
+    if (~found).any():
+        notes.append(
+            f"backtest: {int((~found).sum())} out-of-time loan-months had no projected hazard and were left out"
+        )
+    frame = pd.DataFrame(
+        {
+            "month": _month_labels(rows["month_idx"].to_numpy()[found]),
+            "age_band": np.asarray(age_band(rows["age"].to_numpy()[found], PACK_AGE_BAND_EDGES)),
+            "vintage": rows["origination_idx"].to_numpy(dtype=np.int64)[found] // 12,
+            "h_default": hd[found],
+            "h_prepay": hp[found],
+            "outcome": rows["outcome"].to_numpy()[found],
+        }
+    )
+    frame["age_band"] = pd.Categorical(
+        frame["age_band"], categories=list(age_band([1], PACK_AGE_BAND_EDGES).categories), ordered=True
+    )
+    tables = {}
+    for by in ("month", "age_band", "vintage"):
+        name = f"backtest_by_{by}"
+        t = backtest(frame, by=by)
+        if by == "age_band":
+            t["age_band"] = t["age_band"].astype(str)
+        tables[name] = t[list(PACK_COLUMNS[name])]
+    by_month = tables["backtest_by_month"]
+    summary = {"loan_months": int(len(frame)), "months": int(by_month["month"].nunique())}
+    y = frame["outcome"].to_numpy()
+    for k, cause in CAUSES.items():
+        h = frame["h_default" if k == 1 else "h_prepay"].to_numpy()
+        var = float(np.sum(h * (1 - h)))
+        part = by_month[by_month["cause"] == cause]
+        summary[cause] = {
+            "expected": float(h.sum()),
+            "actual": int((y == k).sum()),
+            "z_total": (float((y == k).sum()) - float(h.sum())) / np.sqrt(var) if var > 0 else float("nan"),
+            "share_months_outside": float(part["outside"].mean()) if len(part) else float("nan"),
+        }
+    return tables, summary
+
+
+def _cohort_outcomes(cfg, panel, month: int) -> pd.DataFrame:
+    params = {"month": int(month), "paid_off": float(cfg.events.paid_off_balance)}
+    return _sql(
+        panel,
+        f"WITH {_ALIVE_AT}\n"
+        "SELECT o.loan_id, CASE WHEN o.event = 'censored' THEN NULL ELSE o.event END AS event,\n"
+        "       o.event_month_idx, o.last_month_idx, o.censor_reason\n"
+        "FROM loan_outcomes AS o JOIN alive USING (loan_id)\nORDER BY loan_id",
+        params,
+    )
+
+
+# --------------------------------------------------------------------------- stability
+
+
+def _read_inputs(panel, model, start: int, end: int, max_rows: int):
+    """Raw model inputs of the risk-set rows of months ``start..end``, hash-sampled to ``max_rows``.
+
+    Returns the frame, the sampling step ``k`` (every k-th row by a hash of
+    loan and month) and the inputs that could not be read.
+    """
+    names = [n for n in model.required_inputs if n != "log_age"]
+    if hasattr(model, "spec"):
+        readable = names
+    else:
+        readable = [n for n in names if n == "age"]
+    skipped = [n for n in names if n not in readable]
+    if not readable:
+        return pd.DataFrame(), 1, skipped
+    n_rows = _sql(panel, "SELECT count(*) AS n FROM loan_months WHERE month_idx BETWEEN $s AND $e",
+                  {"s": int(start), "e": int(end)})["n"].iloc[0]
+    k = max(1, int(np.ceil(int(n_rows) / max_rows)))
+    where = "month_idx BETWEEN ? AND ? AND hash(loan_id, month_idx) % ? = 0"
+    params = [int(start), int(end), k]
+    if hasattr(model, "spec"):
+        body = model.spec.raw_query(panel.con, where, order=False)
+    else:
+        body = f"SELECT loan_id, month_idx, age FROM loan_months WHERE {where}"
+    import duckdb
+
+    from ..sql import quote_ident
+
+    cols = ", ".join(quote_ident(n) for n in readable)
+    try:
+        frame = panel.con.execute(f"WITH data AS (\n{body}\n)\nSELECT {cols} FROM data", params).df()
+    except duckdb.Error as exc:
+        first = str(exc).strip().splitlines()[0]
+        raise DataError(f"cannot read the model inputs of {_fmt_month(start)}..{_fmt_month(end)}: {first}") from None
+    return frame, k, skipped
+
+
+def input_stability(
+    panel, model, development, current, *, bins: int = 10, max_rows: int = PACK_SAMPLE_ROWS
+) -> pd.DataFrame:
+    """PSI of every raw model input: the risk-set rows of one window against another.
+
+    Parameters
+    ----------
+    panel : Panel
+        An open panel on which ``label_events`` has run.
+    model : hazard source
+        A fitted :class:`~creditsurv.model.HazardResults` (inputs read with
+        its feature spec's ``raw_query``), or any source with
+        ``required_inputs`` (then only ``age`` is read, from ``loan_months``).
+    development, current : tuple of int
+        ``(first, last)`` month indices of the two windows, e.g. the
+        development window and ``(as_of, as_of)``.
+    bins : int, default 10
+        Quantile bins of :func:`psi` for numeric inputs; text inputs get one
+        bin per level.
+    max_rows : int, default 200,000
+        Rows read at most per window: when a window has more, every k-th row
+        by a hash of loan and month is read (the same rows on every run).
+
+    Returns
+    -------
+    DataFrame
+        ``variable``, ``psi``, ``flag`` (:func:`psi_flag`), ``n_development``
+        and ``n_current`` (rows read).
+    """
+    table, _ = _input_stability(panel, model, development, current, bins=bins, max_rows=max_rows)
+    return table
+
+
+def _input_stability(panel, model, development, current, *, bins, max_rows):
+    dev, k_dev, skipped = _read_inputs(panel, model, int(development[0]), int(development[1]), max_rows)
+    cur, k_cur, _ = _read_inputs(panel, model, int(current[0]), int(current[1]), max_rows)
+    rows = []
+    for name in dev.columns:
+        if name not in cur.columns:
+            continue
+        e, a = dev[name], cur[name]
+        categorical = not (pd.api.types.is_numeric_dtype(e) and pd.api.types.is_numeric_dtype(a))
+        if len(a) == 0 or e.notna().sum() == 0:
+            continue
+        value, _ = psi(e.to_numpy() if categorical else e.to_numpy(dtype=float),
+                       a.to_numpy() if categorical else a.to_numpy(dtype=float),
+                       bins=bins, categorical=categorical)  # fmt: skip
+        rows.append({"variable": name, "psi": value, "flag": psi_flag(value),
+                     "n_development": int(len(e)), "n_current": int(len(a))})  # fmt: skip
+    table = pd.DataFrame(rows, columns=list(PACK_COLUMNS["stability"]))
+    info = {"sampled_every": {"development": k_dev, "current": k_cur}, "skipped": skipped, "n_current": len(cur)}
+    return table, info
+
+
+# --------------------------------------------------------------------------- in-sample fit by age
+
+
+_FIXED_ONE = float(2**32)
+
+
+def _fixed(x) -> np.ndarray:
+    """``x`` in fixed point, units of 2**-32, as int64 (exact, order-free sums)."""
+    return np.round(np.asarray(x, dtype=np.float64) * _FIXED_ONE).astype(np.int64)
+
+
+def _hazard_by_age(panel, model, start: int, end: int, batch_size: int) -> pd.DataFrame | None:
+    """Observed and mean model hazard of each cause by loan age over months ``start..end``."""
+    sums: dict[str, np.ndarray] = {}
+
+    def add(age, weights: dict):
+        top = int(age.max()) + 1
+        for key, w in weights.items():
+            cur = sums.get(key, np.zeros(0, dtype=np.int64))
+            if len(cur) < top:
+                cur = np.r_[cur, np.zeros(top - len(cur), dtype=np.int64)]
+            if w.dtype == np.int64:
+                part = np.zeros(len(cur), dtype=np.int64)
+                np.add.at(part, age, w)
+            else:
+                part = np.round(np.bincount(age, weights=w, minlength=len(cur))).astype(np.int64)
+            sums[key] = cur + part
+
+    if hasattr(model, "spec"):
+        sql = model.spec.raw_query(panel.con, "month_idx BETWEEN ? AND ?", order=False)
+        rel = panel.con.sql(sql, params=[int(start), int(end)])
+        with rel.to_arrow_reader(batch_size=batch_size) as reader:
+            for batch in reader:
+                raw = {nm: batch.column(i).to_numpy(zero_copy_only=False)
+                       for i, nm in enumerate(batch.schema.names) if nm != "loan_id"}  # fmt: skip
+                if len(raw["age"]) == 0:
+                    continue
+                hd, hp = model.hazards(raw)
+                age = np.asarray(raw["age"], dtype=np.int64)
+                y = np.asarray(raw["outcome"])
+                # Hazards are summed in fixed point (units of 2**-32): integer sums do
+                # not depend on the order DuckDB streams the rows in, so neither does the table.
+                add(age, {"n": np.ones(len(age)), "d1": (y == 1) * 1.0, "d2": (y == 2) * 1.0,
+                          "h1": _fixed(hd), "h2": _fixed(hp)})  # fmt: skip
+    elif set(model.required_inputs) <= {"age", "log_age"}:
+        grouped = _sql(
+            panel,
+            "SELECT age, count(*) AS n, count(*) FILTER (WHERE outcome = 1) AS d1,\n"
+            "       count(*) FILTER (WHERE outcome = 2) AS d2\n"
+            "FROM loan_months WHERE month_idx BETWEEN $s AND $e GROUP BY age ORDER BY age",
+            {"s": int(start), "e": int(end)},
+        )
+        if len(grouped):
+            age = grouped["age"].to_numpy(dtype=np.int64)
+            raw = {"age": age.astype(float), "log_age": np.log(np.maximum(age, 1).astype(float))}
+            hd, hp = model.hazards({k: raw[k] for k in model.required_inputs})
+            n = grouped["n"].to_numpy(dtype=float)
+            add(age, {"n": n, "d1": grouped["d1"].to_numpy(float), "d2": grouped["d2"].to_numpy(float),
+                      "h1": _fixed(n * np.asarray(hd)), "h2": _fixed(n * np.asarray(hp))})  # fmt: skip
+    else:
+        return None
+    if not sums:
+        return pd.DataFrame(columns=list(PACK_COLUMNS["hazard_by_age"]))
+    ages = np.flatnonzero(sums["n"] > 0)
+    n = sums["n"][ages]
+    parts = []
+    for k, cause in CAUSES.items():
+        d = sums[f"d{k}"][ages]
+        lo, hi = binomial_interval(d, n)
+        parts.append(
+            pd.DataFrame(
+                {
+                    "age": ages.astype(np.int64),
+                    "cause": cause,
+                    "n": n.astype(np.int64),
+                    "events": d.astype(np.int64),
+                    "observed": d / n,
+                    "observed_lo": lo,
+                    "observed_hi": hi,
+                    "model": sums[f"h{k}"][ages] / _FIXED_ONE / n,
+                }
+            )
+        )
+    out = pd.concat(parts, ignore_index=True).sort_values(["age", "cause"], kind="stable")
+    return out.reset_index(drop=True)[list(PACK_COLUMNS["hazard_by_age"])]
+
+
+# --------------------------------------------------------------------------- cumulative incidence by vintage
+
+
+def _incidence_by_vintage(cfg, panel, model, path, chunk_size: int, notes: list) -> pd.DataFrame | None:
+    """Model cumulative incidence from origination, averaged by vintage, against Aalen-Johansen."""
+    from ..errors import ProjectionError
+    from ..forecast import project_loans
+
+    loans = _sql(
+        panel,
+        f"SELECT {_loan_columns(panel)}, 0 AS age, l.original_balance AS balance, 'all' AS segment,\n"
+        "       CAST(CASE WHEN o.event = 'censored' THEN o.last_age ELSE o.event_age END AS INTEGER) AS _time,\n"
+        "       CAST(CASE o.event WHEN 'default' THEN 1 WHEN 'prepay' THEN 2 ELSE 0 END AS INTEGER) AS _cause,\n"
+        "       o.entry_age AS _entry_age\n"
+        "FROM loan_outcomes AS o JOIN loans AS l USING (loan_id)\n"
+        "WHERE l.origination_idx IS NOT NULL AND l.term >= 1\n"
+        "ORDER BY l.origination_idx, loan_id",
+    )
+    late = (loans["_entry_age"] > 1).to_numpy() | (loans["_time"] < 1).to_numpy()
+    if late.any():
+        notes.append(
+            f"incidence_by_vintage: {int(late.sum())} loans not observed from their first month (or with no "
+            "month at risk) were left out; the comparison is on loans seen from origination"
+        )
+        loans = loans[~late].reset_index(drop=True)
+    if loans.empty:
+        return None
+    loans["_vintage"] = loans["origination_idx"].to_numpy(dtype=np.int64) // 12
+    curves, keep = {}, np.zeros(len(loans), dtype=bool)
+    for vintage, rows in loans.groupby("_vintage", sort=True).indices.items():
+        group = loans.iloc[rows]
+        T = int(group["_time"].max())
+        source = _UpToAge(model, T)
+        sums = {"d": np.zeros(T), "p": np.zeros(T)}
+
+        def collect(chunk):
+            for key, F in (("d", chunk.cum_default[REALISED]), ("p", chunk.cum_prepay[REALISED])):
+                H = F.shape[1]
+                if H >= T:
+                    sums[key] += F[:, :T].sum(axis=0)
+                else:  # every loan of the chunk has matured by T: its curve stays flat
+                    sums[key][:H] += F.sum(axis=0)
+                    sums[key][H:] += F[:, -1].sum()
+
+        try:
+            for m, sub in group.groupby("origination_idx", sort=True):
+                project_loans(
+                    sub, source, {REALISED: path}, as_of_idx=int(m), weights={REALISED: 1.0},
+                    chunk_size=chunk_size, on_chunk=collect, **_projection_options(cfg),
+                )
+        except ProjectionError as exc:
+            first = str(exc).splitlines()[0]
+            notes.append(f"incidence_by_vintage: vintage {vintage} left out, its loans cannot be projected ({first})")
+            continue
+        curves[int(vintage)] = {k: v / len(group) for k, v in sums.items()}
+        keep[rows] = True
+    if not curves:
+        return None
+    obs = loans[keep]
+    parts = []
+    for k, cause in CAUSES.items():
+        key = "d" if k == 1 else "p"
+        t = model_vs_nonparametric(
+            {v: c[key] for v, c in curves.items()},
+            obs["_time"].to_numpy(), obs["_cause"].to_numpy(), obs["_vintage"].to_numpy(), cause=k,
+        )
+        t.insert(1, "cause", cause)
+        parts.append(t)
+    out = pd.concat(parts, ignore_index=True).sort_values(["vintage", "cause", "age"], kind="stable")
+    return out.reset_index(drop=True)[list(PACK_COLUMNS["incidence_by_vintage"])]
+
+
+# --------------------------------------------------------------------------- the pack
+
+
+def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int = 2000) -> ValidationPack:
+    """Out-of-time backtest, discrimination, calibration, stability and curves of one model.
+
+    Parameters
+    ----------
+    cfg : Config
+        The run configuration: windows, ``validation`` settings, ``seed``,
+        ``collateral`` and ``segments``.
+    panel : Panel
+        An open panel on which :func:`~creditsurv.engines.label_events` has run.
+    model : hazard source
+        Usually a fitted :class:`~creditsurv.model.HazardResults`. Any source
+        of the projection's protocol (``required_inputs``, ``hazards``) works
+        for the projected parts; what needs a fitted model (coefficients,
+        inputs beyond loan age) is left out with a note.
+    current_pd_12m : array_like, optional
+        The current book's probability-weighted 12-month PD; when given, its
+        PSI against the development cohort's 12-month PD is reported.
+    chunk_size : int, default 2000
+        Loans per projection chunk (memory grows with it).
+
+    Returns
+    -------
+    ValidationPack
+        Tables (columns in :data:`PACK_COLUMNS`):
+
+        ``backtest_by_month``, ``backtest_by_age_band``, ``backtest_by_vintage``
+            :func:`backtest` of the loans alive and not in default at the end
+            of the development window (the *development cohort*), projected
+            under one scenario ``realised`` (the macro history; held at its
+            last value beyond it), against their risk-set loan-months in the
+            out-of-time window; grouped by calendar month (YYYY-MM), by age
+            band (:data:`PACK_AGE_BAND_EDGES`) and by vintage (origination
+            year).
+        ``development_cohort``
+            Per cohort loan: projected 12-month PD and the realised 12-month
+            default flag of :func:`twelve_month_cohort` (missing when
+            censored before 12 months without an event).
+        ``discrimination`` (one row), ``calibration``
+            :func:`discrimination` and :func:`calibration` of that 12-month
+            PD against that flag; calibration by grade when
+            ``segments.band_column`` and ``band_edges`` are set, else by
+            ``validation.pd_groups`` PD groups (column ``group`` either way).
+        ``stability``
+            :func:`input_stability` of each raw model input, development
+            window against the reporting month, and of ``pd_12m``
+            (development cohort against ``current_pd_12m``).
+        ``coefficient_changes``
+            Against ``validation.prior_model``, when set.
+        ``incidence_by_vintage``
+            Per vintage, the model's cumulative incidence of default and of
+            prepayment from origination (each loan projected from age 0 under
+            the realised path, averaged over the vintage) against the
+            Aalen-Johansen estimate on the same loans (:func:`model_vs_nonparametric`;
+            maturity counts as censoring); ages up to the last one observed.
+        ``hazard_by_age``
+            In-sample fit: observed monthly hazard (events / at risk, with its
+            Jeffreys interval) and mean model hazard by loan age over the
+            development window.
+    """
+    dev, oot = cfg.windows.development, cfg.windows.out_of_time
+    as_of, month = int(cfg.as_of), int(dev.end)
+    notes: list[str] = []
+    tables: dict[str, pd.DataFrame] = {}
+    summary: dict = {
+        "as_of": _fmt_month(as_of),
+        "development": {"start": _fmt_month(dev.start), "end": _fmt_month(dev.end)},
+        "out_of_time": None if oot is None else {"start": _fmt_month(oot.start), "end": _fmt_month(oot.end)},
+        "cohort_month": _fmt_month(month),
+    }
+    fitted = hasattr(model, "predict_hazards") and hasattr(model, "spec")
+    if not fitted:
+        notes.append(
+            f"the hazard source ({type(model).__name__}) is not a fitted model: coefficient changes are not "
+            "produced and stability covers loan age only"
+        )
+
+    max_term = _sql(panel, "SELECT coalesce(max(term), 0) AS t FROM loans")["t"].iloc[0]
+    path = _realised_path(panel, as_of, max(as_of, month) + int(max_term) + 1)
+
+    # 1-2. The development cohort: backtest, discrimination, calibration.
+    cohort = _cohort(cfg, panel, month, notes)
+    summary["cohort_loans"] = int(len(cohort))
+    cohort_pd = None
+    if cohort.empty:
+        notes.append(
+            f"no loan is alive and out of default at {_fmt_month(month)}: no backtest, discrimination or calibration"
+        )
+    else:
+        window = None if oot is None else (int(oot.start) - month, int(oot.end) - month)
+        proj, hd_grid, hp_grid = _project_cohort(cfg, model, cohort, path, month, window, chunk_size)
+        cohort_pd = proj[f"pd_12m_{REALISED}"].to_numpy(dtype=float)
+        if oot is None:
+            notes.append("no out-of-time window is configured: the backtest tables are not produced")
+        else:
+            bt_tables, summary["backtest"] = _backtest_tables(cfg, panel, cohort, hd_grid, hp_grid, month, notes)
+            tables.update(bt_tables)
+        del hd_grid, hp_grid
+        if as_of < month + 12:
+            notes.append(
+                f"the data end {as_of - month} months after {_fmt_month(month)}: a 12-month outcome cannot be "
+                "observed, so discrimination and calibration are not produced"
+            )
+        else:
+            tables.update(_score_tables(cfg, panel, cohort, proj, month, summary, notes))
+
+    # 3. Stability of the inputs and of the 12-month PD.
+    stab, info = _input_stability(
+        panel, model, (int(dev.start), int(dev.end)), (as_of, as_of),
+        bins=cfg.validation.psi_bins, max_rows=PACK_SAMPLE_ROWS,
+    )
+    k_dev = info["sampled_every"]["development"]
+    if k_dev > 1:
+        notes.append(
+            f"stability: the development rows were sampled, one loan-month in {k_dev} chosen by a hash of loan "
+            f"and month (at most {PACK_SAMPLE_ROWS:,} rows; the same rows on every run with this DuckDB version)"
+        )
+    if info["skipped"]:
+        notes.append(f"stability: inputs {info['skipped']} cannot be read for this hazard source")
+    if info["n_current"] == 0:
+        notes.append(f"stability: no risk-set rows at the reporting month {_fmt_month(as_of)}")
+    if current_pd_12m is not None and cohort_pd is not None and len(cohort_pd):
+        cur = _as_1d(current_pd_12m, "current_pd_12m")
+        value, _ = psi(cohort_pd, cur, bins=cfg.validation.psi_bins)
+        row = {"variable": "pd_12m", "psi": value, "flag": psi_flag(value),
+               "n_development": int(len(cohort_pd)), "n_current": int(len(cur))}  # fmt: skip
+        stab = pd.concat([stab, pd.DataFrame([row])], ignore_index=True) if len(stab) else pd.DataFrame([row])
+    elif current_pd_12m is None:
+        notes.append("stability: no current 12-month PD was given, so its PSI is not reported")
+    else:
+        notes.append("stability: the development cohort has no 12-month PD, so the PSI of pd_12m is not reported")
+    tables["stability"] = stab[list(PACK_COLUMNS["stability"])]
+    summary["stability"] = {
+        flag: stab.loc[stab["flag"] == flag, "variable"].tolist() for flag in ("watch", "shift")
+    }
+
+    # 4. Coefficient changes against a prior model.
+    prior = cfg.validation.prior_model
+    if prior is not None and fitted:
+        from ..model import load_model
+
+        tables["coefficient_changes"] = coefficient_changes(model.summary(), load_model(prior).summary())
+    elif prior is None:
+        notes.append("no prior model is configured (validation.prior_model): coefficient changes are not produced")
+
+    # 5. Cumulative incidence by vintage.
+    inc = _incidence_by_vintage(cfg, panel, model, path, chunk_size, notes)
+    if inc is None:
+        notes.append("incidence_by_vintage: no loan observed from origination")
+    else:
+        tables["incidence_by_vintage"] = inc
+        degenerate = int((inc["outside"] & (inc["observed_se"] == 0)).sum())
+        if degenerate:
+            notes.append(
+                f"incidence_by_vintage: {degenerate} ages are flagged outside only because the vintage has had no "
+                "event of the cause yet, where the normal interval of the Aalen-Johansen estimate has zero width"
+            )
+        summary["incidence"] = {
+            "vintages": int(inc["vintage"].nunique()),
+            **{
+                cause: {"share_ages_outside": float(inc.loc[inc["cause"] == cause, "outside"].mean())}
+                for cause in CAUSES.values()
+            },
+        }
+
+    # 6. In-sample fit by loan age.
+    hba = _hazard_by_age(panel, model, int(dev.start), int(dev.end), _batch_size(cfg))
+    if hba is None:
+        notes.append("hazard_by_age: the hazard source needs inputs beyond loan age and is not a fitted model")
+    else:
+        tables["hazard_by_age"] = hba
+
+    summary["tables"] = sorted(tables)
+    summary["notes"] = notes
+    return ValidationPack(tables=tables, summary=_json_safe(summary))
+
+
+def _batch_size(cfg) -> int:
+    return int(getattr(getattr(cfg.model, "fit", None), "batch_size", 250_000))
+
+
+def _score_tables(cfg, panel, cohort, proj, month: int, summary: dict, notes: list) -> dict:
+    """``development_cohort``, ``discrimination`` and ``calibration`` of the cohort's 12-month PD."""
+    outcomes = _cohort_outcomes(cfg, panel, month)
+    flags = twelve_month_cohort(outcomes, month, keep_censored=True).set_index("loan_id")
+    frame = pd.DataFrame(
+        {
+            "loan_id": proj["loan_id"].to_numpy(),
+            "vintage": cohort.set_index("loan_id")["origination_idx"].reindex(proj["loan_id"]).to_numpy(dtype=np.int64)
+            // 12,
+            "age": proj["age"].to_numpy(dtype=np.int64),
+            "band": proj["band"].astype(str).to_numpy(),
+            "pd_12m": proj[f"pd_12m_{REALISED}"].to_numpy(dtype=float),
+        }
+    )
+    frame["default_12m"] = flags["default_12m"].reindex(frame["loan_id"]).to_numpy()
+    frame["basis"] = flags["basis"].reindex(frame["loan_id"]).to_numpy()
+    out = {"development_cohort": frame[list(PACK_COLUMNS["development_cohort"])]}
+    known = frame[frame["default_12m"].notna()]
+    left = len(frame) - len(known)
+    if left:
+        notes.append(
+            f"discrimination and calibration: {left} cohort loans censored within 12 months without an event "
+            "were left out"
+        )
+    y = known["default_12m"].to_numpy(dtype=np.int64)
+    p = known["pd_12m"].to_numpy(dtype=float)
+    try:
+        d = discrimination(p, y, bootstrap=cfg.validation.bootstrap, seed=cfg.seed)
+    except DataError as exc:
+        notes.append(f"discrimination not produced: {exc}")
+    else:
+        row = pd.DataFrame([{"cohort_month": _fmt_month(month), **d}])
+        out["discrimination"] = row[list(PACK_COLUMNS["discrimination"])]
+        summary["discrimination"] = d
+    if len(known):
+        seg = cfg.segments
+        graded = bool(seg.band_column and seg.band_edges and seg.band_column in cohort.columns)
+        grade = known["band"].to_numpy() if graded else None
+        table, cal = calibration(p, y, groups=cfg.validation.pd_groups, grade=grade)
+        table = table.reset_index().rename(columns={"grade": "group"})
+        out["calibration"] = table[list(PACK_COLUMNS["calibration"])]
+        summary["calibration"] = cal
+        summary["calibration"]["grouping"] = f"grades of {seg.band_column}" if graded else "pd quantile groups"
+    return out
