@@ -124,32 +124,41 @@ def ensure_risk_set(book: Path) -> Path:
 def route_creditsurv(book: Path, kind: str) -> dict:
     import dataclasses
 
-    import creditsurv.model._hazard as hazard
     from creditsurv.config import config_from_dict
-    from creditsurv.engines import label_events, open_panel
+    from creditsurv.engines import open_engine
     from creditsurv.model import fit_model
 
-    # Time every pass of Newton over the stored design (one per iteration, plus
-    # any step-halving passes) by wrapping the pass function.
     passes = []
-    evaluate = hazard._evaluate
 
-    def timed(*args, **kwargs):
-        start = time.perf_counter()
-        out = evaluate(*args, **kwargs)
-        passes.append(time.perf_counter() - start)
-        return out
+    def timing_passes(design_sums):
+        """Time every pass of Newton over the stored design (one per iteration, plus
+        any step-halving passes) by wrapping the engine's ``evaluate``."""
 
-    hazard._evaluate = timed
+        def wrapped(*args, **kwargs):
+            sums = design_sums(*args, **kwargs)
+            evaluate = sums.evaluate
+
+            def timed(*a, **k):
+                start = time.perf_counter()
+                out = evaluate(*a, **k)
+                passes.append(time.perf_counter() - start)
+                return out
+
+            sums.evaluate = timed
+            return sums
+
+        return wrapped
+
     cfg = config_from_dict(config_dict(book), ROOT)
     model = dataclasses.replace(cfg.model, kind=kind)
     t0 = time.perf_counter()
-    with open_panel(cfg) as panel:
-        label_events(panel)
+    with open_engine(cfg) as engine:
+        engine.design_sums = timing_passes(engine.design_sums)
+        engine.label_events()
         t1 = time.perf_counter()
         # No default before age 3 in the simulated book (the first payment falls
         # due at age 1): the fit starts at age 3 so that no level is separated.
-        res = fit_model(panel.con, model, cfg.collateral, where_sql="age >= ?", params=(3,), temp_dir=DATA)
+        res = fit_model(engine, model, cfg.collateral, where_sql="age >= ?", params=(3,), temp_dir=DATA)
     t2 = time.perf_counter()
     causes = ["default"] if kind == "cause_specific" else list(res.params.columns)
     params = {c: {t: float(v) for t, v in res.params[c].items()} for c in causes}

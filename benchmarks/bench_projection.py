@@ -37,32 +37,26 @@ DATA = ROOT / "benchmarks" / "_data"
 def _demo():
     """The demo config, its book at the reporting month, the scenario paths and the fitted model."""
     from creditsurv.config import load_config
-    from creditsurv.engines import book_at_as_of
     from creditsurv.forecast import prepare_paths
-    from creditsurv.model import load_model
-    from creditsurv.pipeline import (
-        _hazard_model,
-        _macro_history,
-        _macro_series_needed,
-        _open_checked,
-    )
+    from creditsurv.model import hazard_source, load_model
+    from creditsurv.pipeline import macro_series_needed, open_checked
 
     cfg = load_config(ROOT / "configs" / "demo.yaml")
     DATA.mkdir(parents=True, exist_ok=True)
     model_path = DATA / "demo_model.json"
-    panel, _ = _open_checked(cfg)
-    with panel:
+    engine, _ = open_checked(cfg)
+    with engine:
         if model_path.exists():
             model = load_model(model_path)
         else:
-            model = _hazard_model(cfg, panel, temp_dir=DATA)
+            model = hazard_source(cfg, engine, temp_dir=DATA)
             model.save(model_path)
-        book = book_at_as_of(panel, cfg.segments.column)
-        history = _macro_history(panel)
+        book = engine.book_at_as_of(cfg.segments.column)
+        history = engine.macro_history()
     until = int(cfg.as_of) + 360 + cfg.loss.lgd.months_to_recovery + 1
     paths = prepare_paths(
         cfg.scenarios, history, as_of_idx=int(cfg.as_of), until_idx=until,
-        extension=cfg.scenario_extension, required_series=_macro_series_needed(model, cfg),
+        extension=cfg.scenario_extension, required_series=macro_series_needed(model, cfg),
     )
     return cfg, book, paths, model
 

@@ -8,7 +8,6 @@ from .errors import (
     DataCheckError,
     DataError,
 )
-
 from .version import __version__
 
 __all__ = [

@@ -43,7 +43,7 @@ def _cmd_fit(args) -> int:
     return 0
 
 
-class _TerminalProgress:
+class TerminalProgress:
     """Progress on stderr when it is a terminal; silent otherwise (logs, CI, pipes)."""
 
     def __init__(self, stream=None):
@@ -73,7 +73,7 @@ class _TerminalProgress:
 def _cmd_run(args) -> int:
     from .pipeline import run_command
 
-    outcome = run_command(args.config, as_of=args.as_of, out=args.out, argv=sys.argv, progress=_TerminalProgress())
+    outcome = run_command(args.config, as_of=args.as_of, out=args.out, argv=sys.argv, progress=TerminalProgress())
     print(outcome.text)
     return 0
 
@@ -81,7 +81,7 @@ def _cmd_run(args) -> int:
 def _cmd_reproduce(args) -> int:
     from .pipeline import reproduce_command
 
-    outcome = reproduce_command(args.run_dir, out=args.out, progress=_TerminalProgress())
+    outcome = reproduce_command(args.run_dir, out=args.out, progress=TerminalProgress())
     print(outcome.text)
     return 0
 

@@ -7,6 +7,7 @@ from pathlib import Path
 
 from .config import load_config
 from .errors import DataError
+from .model import hazard_source
 
 
 @dataclass(frozen=True)
@@ -43,15 +44,13 @@ def init_project(folder) -> list[Path]:
 def check_data(config_path, out: Path | None = None) -> Outcome:
     """Run the data checks of a config; optionally write the check table as CSV."""
     from .data import format_checks
-    from .engines import open_panel, run_checks
+    from .engines import open_engine
 
     cfg = load_config(config_path)
-    if (spark := _engine(cfg)) is not None:
-        open_panel, run_checks = spark.open_panel, spark.run_checks
     if out is not None:
         _refuse_existing(Path(out), "the check table")
-    with open_panel(cfg) as panel:
-        checks = run_checks(panel)
+    with open_engine(cfg) as engine:
+        checks = engine.run_checks()
     if out is not None:
         checks.to_csv(out, index=False)
     failed = bool(((checks["severity"] == "error") & (checks["count"] > 0)).any())
@@ -61,82 +60,37 @@ def check_data(config_path, out: Path | None = None) -> Outcome:
 # --------------------------------------------------------------------------- shared steps
 
 
-def _engine(cfg):
-    """The module that holds the engine-specific steps: DuckDB's stages or Spark's."""
-    if cfg.engine == "spark":
-        from .engines import _spark
+def open_checked(cfg):
+    """Open the inputs with the configured engine, run the data checks (raise on errors), label events.
 
-        return _spark
-    return None
-
-
-def _open_checked(cfg):
-    """Open the panel, run the data checks (raise on errors), label events."""
-    if (spark := _engine(cfg)) is not None:
-        return spark.open_checked(cfg)
-    from .data import raise_for_errors
-    from .engines import label_events, open_panel, run_checks
-
-    panel = open_panel(cfg)
-    try:
-        checks = run_checks(panel)
-        raise_for_errors(checks)
-        label_events(panel)
-    except BaseException:
-        panel.close()
-        raise
-    return panel, checks
-
-
-def _event_counts(cfg, panel):
-    if (spark := _engine(cfg)) is not None:
-        return spark.event_counts(panel)
-    from .engines import event_counts
-
-    return event_counts(panel)
-
-
-def _development_filter(cfg) -> tuple[str, tuple[int, int]]:
-    dev = cfg.windows.development
-    return "month_idx BETWEEN ? AND ?", (int(dev.start), int(dev.end))
-
-
-def _hazard_model(cfg, panel, temp_dir):
-    """The hazard source of a run.
-
-    ``model.source`` fitted: the saved model when ``model.path`` is set, else a
-    fit on the development window; benchmark: % PSA and % SDA curves; table:
-    monthly hazards by loan age from a CSV file.
+    Returns
+    -------
+    (Engine, pandas.DataFrame)
+        The open engine (close it, or use ``with``) and the check table.
     """
-    from .model import BenchmarkCurves, HazardTable, fit_model, load_model
+    from .data import raise_for_errors
+    from .engines import open_engine
 
-    if cfg.model.source == "fitted" and cfg.model.path is None and (spark := _engine(cfg)) is not None:
-        return spark.hazard_model(cfg, panel, temp_dir)
-    if cfg.model.source == "benchmark":
-        return BenchmarkCurves(psa=cfg.model.psa, sda=cfg.model.sda)
-    if cfg.model.source == "table":
-        import pandas as pd
-
-        try:
-            table = pd.read_csv(cfg.model.table)
-        except (OSError, ValueError) as exc:
-            raise DataError(f"model.table: cannot read {cfg.model.table}: {exc}") from None
-        return HazardTable(table)
-    if cfg.model.path is not None:
-        return load_model(cfg.model.path)
-    where, params = _development_filter(cfg)
-    return fit_model(panel.con, cfg.model, cfg.collateral, where_sql=where, params=params, temp_dir=temp_dir)
+    engine = open_engine(cfg)
+    try:
+        checks = engine.run_checks()
+        raise_for_errors(checks)
+        engine.label_events()
+    except BaseException:
+        engine.close()
+        raise
+    return engine, checks
 
 
 def _config_text(cfg) -> str | None:
     return Path(cfg.source).read_text(encoding="utf-8") if cfg.source else None
 
 
-def _manifest_start(cfg, panel, argv, kind: str):
+def _manifest_start(cfg, engine, argv, kind: str):
     from .config import config_sha256, config_to_dict
     from .runs import base_manifest, describe_inputs, run_name
 
-    inputs = describe_inputs(panel.sources, {})
+    inputs = describe_inputs(engine.sources, {})
     sha = config_sha256(cfg)
     name = run_name(cfg.as_of, sha, [i["sha256"] for i in inputs])
     manifest = base_manifest(
@@ -194,16 +148,16 @@ def fit_model_command(config_path, out_dir: Path | None = None, argv=None) -> Ou
     from .runs import RunFolder
 
     cfg = load_config(config_path)
-    panel, checks = _open_checked(cfg)
-    with panel:
-        manifest = _manifest_start(cfg, panel, argv, "fit")
+    engine, checks = open_checked(cfg)
+    with engine:
+        manifest = _manifest_start(cfg, engine, argv, "fit")
         parent = _output_parent(cfg, out_dir)
         with RunFolder(parent, manifest["run_id"]) as run:
-            model = _hazard_model(cfg, panel, temp_dir=run.path)
+            model = hazard_source(cfg, engine, temp_dir=run.path)
             model.save(run.add_file("hazard_model.json"))
             run.add_table(model.summary(), "coefficients.csv")
             run.add_table(checks, "data_checks.csv")
-            run.add_table(_event_counts(cfg, panel), "event_counts.csv")
+            run.add_table(engine.event_counts(), "event_counts.csv")
             manifest["model"] = _model_summary(model)
             manifest["data_check_warnings"] = _fired_warnings(checks)
             final = run.commit(manifest)
@@ -230,14 +184,8 @@ def _load_for_run(config_path, as_of: str | None):
     return config_from_dict(data, path.resolve().parent, source=path)
 
 
-def _macro_history(panel) -> "pd.DataFrame":
-    if (spark := _engine(panel.cfg)) is not None:
-        return spark.macro_history(panel)
-    frame = panel.con.execute("SELECT * EXCLUDE (month) FROM macro ORDER BY month_idx").df()
-    return frame.set_index("month_idx")
-
-
-def _macro_series_needed(model, cfg) -> list[str]:
+def macro_series_needed(model, cfg) -> list[str]:
+    """The macro series a hazard source reads, the market rate of the rate incentive included."""
     needed = [name.split(":")[1] for name in model.required_inputs if name.startswith("macro:")]
     if "rate_incentive" in model.required_inputs and cfg.collateral.market_rate_series:
         needed.append(cfg.collateral.market_rate_series)
@@ -256,38 +204,47 @@ class _NoWriter:
         return None
 
 
-def project_book(cfg, panel, model, run, *, progress=None):
-    """Projection, ECL and the exported tables of one run, written into ``run``."""
-    import numpy as np
+def scenario_paths(cfg, engine, model, book):
+    """Every scenario's macro path from the month after the reporting month to the book's last month of recovery."""
+    from .forecast import prepare_paths
 
-    from .engines import book_at_as_of
-    from .forecast import (
-        TableWriter,
-        prepare_paths,
-        segment_level,
-        segment_pd_tables,
-        segment_speeds,
-    )
-    from .loss import expected_credit_loss
-
-    if (spark := _engine(cfg)) is not None:
-        import functools
-
-        book_at_as_of = spark.book_at_as_of
-        expected_credit_loss = functools.partial(spark.expected_credit_loss, partitions=cfg.spark.partitions)
-    book = book_at_as_of(panel, cfg.segments.column)
-    history = _macro_history(panel)
     remaining = (book["term"] - book["age"]).clip(lower=0)
     until = int(cfg.as_of) + int(remaining.max() if len(book) else 0) + cfg.loss.lgd.months_to_recovery + 1
-    paths = prepare_paths(
+    return prepare_paths(
         cfg.scenarios,
-        history,
+        engine.macro_history(),
         as_of_idx=int(cfg.as_of),
         until_idx=until,
         extension=cfg.scenario_extension,
-        required_series=_macro_series_needed(model, cfg),
+        required_series=macro_series_needed(model, cfg),
     )
-    weights = {s.name: s.weight for s in cfg.scenarios}
+
+
+def ecl_options(cfg) -> dict:
+    """The settings of :func:`creditsurv.loss.expected_credit_loss` that a config gives."""
+    return {
+        "as_of_idx": int(cfg.as_of),
+        "weights": {s.name: s.weight for s in cfg.scenarios},
+        "loss": cfg.loss,
+        "staging": cfg.staging,
+        "default_days_past_due": cfg.default_definition.days_past_due,
+        "hpi_series": cfg.collateral.hpi_series,
+        "region_column": cfg.collateral.region_column,
+        "market_rate_series": cfg.collateral.market_rate_series,
+        "band_column": cfg.segments.band_column,
+        "band_edges": cfg.segments.band_edges,
+    }
+
+
+def project_book(cfg, engine, model, run, *, progress=None):
+    """Projection, ECL and the exported tables of one run, written into ``run``."""
+    import numpy as np
+
+    from .forecast import TableWriter, segment_level, segment_pd_tables, segment_speeds
+    from .loss import expected_credit_loss_by_partition
+
+    book = engine.book_at_as_of(cfg.segments.column)
+    paths = scenario_paths(cfg, engine, model, book)
     options = {"compression": "zstd"}
     monthly = cfg.outputs.monthly_tables
     with (
@@ -295,24 +252,9 @@ def project_book(cfg, panel, model, run, *, progress=None):
         TableWriter(run.add_file("pd_annual_by_loan.parquet"), **options) as annual,
         TableWriter(run.add_file("ecl_schedule.parquet"), **options) if monthly else _NoWriter() as schedule,
     ):
-        result = expected_credit_loss(
-            book,
-            model,
-            paths,
-            as_of_idx=int(cfg.as_of),
-            weights=weights,
-            loss=cfg.loss,
-            staging=cfg.staging,
-            default_days_past_due=cfg.default_definition.days_past_due,
-            hpi_series=cfg.collateral.hpi_series,
-            region_column=cfg.collateral.region_column,
-            market_rate_series=cfg.collateral.market_rate_series,
-            band_column=cfg.segments.band_column,
-            band_edges=cfg.segments.band_edges,
-            schedule_writer=schedule if monthly else None,
-            curve_writer=curves if monthly else None,
-            term_writer=annual,
-            progress=progress,
+        writers = {"schedule": schedule, "curve": curves, "term": annual} if monthly else {"term": annual}
+        result = expected_credit_loss_by_partition(
+            engine, book, model, paths, writers=writers, progress=progress, **ecl_options(cfg)
         )
     run.outputs["pd_annual_by_loan.parquet"]["rows"] = annual.rows
     if monthly:
@@ -381,9 +323,9 @@ def execute_run(
 
         raise ConfigError("scenarios: a run needs at least one scenario (name, weight, path)")
     _say(progress, "data checks and events")
-    panel, checks = _open_checked(cfg)
-    with panel:
-        manifest = _manifest_start(cfg, panel, argv, "run")
+    engine, checks = open_checked(cfg)
+    with engine:
+        manifest = _manifest_start(cfg, engine, argv, "run")
         if config_text is not None:
             manifest["config_as_given"] = config_text
         manifest["run_id"] = manifest["run_id"].removeprefix("run_")
@@ -392,18 +334,18 @@ def execute_run(
             work = run.path / "_work"
             work.mkdir()
             _say(progress, "hazard model")
-            model = _hazard_model(cfg, panel, temp_dir=work)
+            model = hazard_source(cfg, engine, temp_dir=work)
             shutil.rmtree(work)
             coefficients = model.summary() if hasattr(model, "summary") else None
             if coefficients is not None:
                 model.save(run.add_file("hazard_model.json"))
                 run.add_table(coefficients, "coefficients.csv")
             run.add_table(checks, "data_checks.csv")
-            events = _event_counts(cfg, panel)
+            events = engine.event_counts()
             run.add_table(events, "event_counts.csv")
             _say(progress, "projection and ECL")
             chunk_progress = (lambda done, total: progress("projection and ECL", done, total)) if progress else None
-            result, report_tables, totals = project_book(cfg, panel, model, run, progress=chunk_progress)
+            result, report_tables, totals = project_book(cfg, engine, model, run, progress=chunk_progress)
             report_tables["data_checks"] = checks
             report_tables["event_counts"] = events
             if coefficients is not None:
@@ -412,7 +354,7 @@ def execute_run(
             manifest["data_check_warnings"] = _fired_warnings(checks)
             manifest["scenario_weights"] = {s.name: s.weight for s in cfg.scenarios}
             manifest["totals"] = totals
-            _validate_run(cfg, panel, model, result, run, manifest, report_tables, progress)
+            _validate_run(cfg, engine, model, result, run, manifest, report_tables, progress)
             if cfg.outputs.prior_run is not None:
                 _say(progress, "movement against the prior run")
                 movement = _movement_against(cfg.outputs.prior_run, result.loans, manifest["scenario_weights"])
@@ -437,16 +379,13 @@ def execute_run(
 _REPORTED_VALIDATION = ("discrimination", "calibration", "stability", "coefficient_changes", "incidence_by_vintage", "hazard_by_age")
 
 
-def _validate_run(cfg, panel, model, result, run, manifest: dict, report_tables: dict, progress) -> None:
+def _validate_run(cfg, engine, model, result, run, manifest: dict, report_tables: dict, progress) -> None:
     """The validation pack: tables under ``validation/``, summary in the manifest and report."""
     from .validation import validation_pack
 
-    if cfg.engine != "duckdb":
-        manifest["validation"] = {"notes": [f"the validation pack runs on the DuckDB engine only; engine is {cfg.engine}"]}
-        return
     _say(progress, "validation")
     live = (result.loans["stage"] != 3).to_numpy()
-    pack = validation_pack(cfg, panel, model, current_pd_12m=result.loans.loc[live, "pd_12m"].to_numpy())
+    pack = validation_pack(cfg, engine, model, current_pd_12m=result.loans.loc[live, "pd_12m"].to_numpy())
     for name, table in pack.tables.items():
         suffix = ".parquet" if name == "development_cohort" else ".csv"
         run.add_table(table, f"validation/{name}{suffix}")

@@ -61,17 +61,17 @@ def test_make_demo_data_refuses_to_overwrite(tmp_path, capsys):
 def test_progress_is_silent_unless_stderr_is_a_terminal():
     import io
 
-    from creditsurv.cli import _TerminalProgress
+    from creditsurv.cli import TerminalProgress
 
     class Tty(io.StringIO):
         def isatty(self):
             return True
 
     quiet = io.StringIO()
-    _TerminalProgress(quiet)("projection and ECL", 5, 10)
+    TerminalProgress(quiet)("projection and ECL", 5, 10)
     assert quiet.getvalue() == ""
     tty = Tty()
-    bar = _TerminalProgress(tty)
+    bar = TerminalProgress(tty)
     bar("projection and ECL", None, None)
     bar("projection and ECL", 5, 10)
     bar("projection and ECL", 10, 10)

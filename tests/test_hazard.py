@@ -18,6 +18,7 @@ from scipy import optimize
 from statsmodels.duration.survfunc import CumIncidenceRight, SurvfuncRight
 
 from creditsurv.config import Baseline, Collateral, Covariate, ModelSpec
+from creditsurv.engines import on_connection
 from creditsurv.errors import (
     ConvergenceError,
     FewEventsWarning,
@@ -161,7 +162,7 @@ def test_cause_specific_matches_statsmodels_glm(con):
         # Reference: statsmodels GLM binomial (IRLS) on the same rows and design.
         refs[cause] = sm.GLM((y[keep] == code).astype(float), X[keep], family=sm.families.Binomial()).fit(tol=1e-12)
     for batch_size in (250_000, 1000):
-        res = fit_hazard(con, spec, kind="cause_specific", batch_size=batch_size)
+        res = fit_hazard(on_connection(con), spec, kind="cause_specific", batch_size=batch_size)
         assert res.params.index.to_list() == names and res.converged
         for cause, ref in refs.items():
             np.testing.assert_allclose(res.params[cause], ref.params, rtol=1e-6)
@@ -178,7 +179,7 @@ def test_multinomial_matches_statsmodels_mnlogit(con):
     # Reference: statsmodels MNLogit (Newton) with 'continue' (0) as the base outcome.
     ref = sm.MNLogit(y, X).fit(method="newton", maxiter=100, tol=1e-12, disp=0)
     for batch_size in (250_000, 1000):
-        res = fit_hazard(con, spec, kind="multinomial", batch_size=batch_size)
+        res = fit_hazard(on_connection(con), spec, kind="multinomial", batch_size=batch_size)
         np.testing.assert_allclose(res.params[["default", "prepay"]].to_numpy(), ref.params, rtol=1e-6)
         np.testing.assert_allclose(res.bse[["default", "prepay"]].to_numpy(), ref.bse, rtol=1e-6)
         assert res.loglik == pytest.approx(ref.llf, rel=1e-10)
@@ -194,7 +195,7 @@ def test_tiny_batches_out_of_core(small_con):
                  Covariate(name="region", column="region", kind="categorical"), baseline=Baseline(kind="age_bands", edges=(6, 12)))
     X, names, y = _design(small_con, spec)
     for kind in ("multinomial", "cause_specific"):
-        res = fit_hazard(small_con, spec, kind=kind, batch_size=7, collapse=False)
+        res = fit_hazard(on_connection(small_con), spec, kind=kind, batch_size=7, collapse=False)
         assert res.n_stored_rows == len(y)
         if kind == "multinomial":
             # Reference: statsmodels MNLogit on the full in-memory design.
@@ -221,7 +222,7 @@ def _times(con):
 def test_age_indicators_reproduce_kaplan_meier():
     con = connect(simulate_book(n_loans=3000, seed=2, max_age=18, prepay=False, hazard_scale=2.0, min_censor=10))
     spec = _spec(con, baseline=Baseline(kind="age_indicators"))
-    res = fit_hazard(con, spec, causes=("default",), collapse=False)
+    res = fit_hazard(on_connection(con), spec, causes=("default",), collapse=False)
     ages = np.arange(1, 19)
     h_def, h_pre = res.predict_hazards({"age": ages})
     assert not h_pre.any()
@@ -242,7 +243,7 @@ def test_age_indicators_reproduce_aalen_johansen():
     aj = CumIncidenceRight(t, status)
     km_all = SurvfuncRight(t, (status > 0).astype(int))
     for collapse in (True, False):
-        res = fit_hazard(con, spec, kind="multinomial", collapse=collapse)
+        res = fit_hazard(on_connection(con), spec, kind="multinomial", collapse=collapse)
         h1, h2 = res.predict_hazards({"age": aj.times})
         surv = np.cumprod(1 - h1 - h2)
         before = np.r_[1.0, surv[:-1]]
@@ -260,7 +261,7 @@ def test_ridge_matches_direct_minimisation(small_con):
     spec = _spec(small_con, Covariate(name="score", column="credit_score", transform="standardise"),
                  Covariate(name="region", column="region", kind="categorical"), baseline=_spline())
     lam = 25.0
-    res = fit_hazard(small_con, spec, ridge=lam)
+    res = fit_hazard(on_connection(small_con), spec, ridge=lam)
     X, names, y = _design(small_con, spec)
     p = X.shape[1]
     Y = np.column_stack([y == 1, y == 2]).astype(float)
@@ -280,7 +281,7 @@ def test_ridge_matches_direct_minimisation(small_con):
     np.testing.assert_allclose(res.params.to_numpy().T.ravel(), ref.x, rtol=1e-5, atol=1e-7)
     assert res.ridge == lam
     # Shrinkage: penalised slopes are smaller than unpenalised ones in norm.
-    plain = fit_hazard(small_con, spec)
+    plain = fit_hazard(on_connection(small_con), spec)
     assert np.linalg.norm(res.params.iloc[1:]) < np.linalg.norm(plain.params.iloc[1:])
 
 
@@ -291,11 +292,11 @@ def test_refit_is_identical_and_inputs_untouched(small_con):
     before = small_con.execute("SELECT count(*), sum(hash(loan_id, month_idx, outcome)) FROM loan_months").fetchone()
     spec = _spec(small_con, *MIXED, baseline=_spline())
     spec_dict = json.dumps(spec.to_dict(), sort_keys=True)
-    a = fit_hazard(small_con, spec, batch_size=300)
-    b = fit_hazard(small_con, spec, batch_size=300)
+    a = fit_hazard(on_connection(small_con), spec, batch_size=300)
+    b = fit_hazard(on_connection(small_con), spec, batch_size=300)
     assert a.params.equals(b.params) and a.bse.equals(b.bse) and a.loglik == b.loglik
     assert a.data_fingerprint == b.data_fingerprint
-    c = fit_hazard(small_con, spec, batch_size=77)
+    c = fit_hazard(on_connection(small_con), spec, batch_size=77)
     assert c.data_fingerprint == a.data_fingerprint  # the fingerprint does not depend on batching
     np.testing.assert_allclose(c.params, a.params, rtol=1e-10)
     assert json.dumps(spec.to_dict(), sort_keys=True) == spec_dict
@@ -306,8 +307,8 @@ def test_repeated_rows_equal_doubled_counts(small_con, tmp_path):
     spec = _spec(small_con, Covariate(name="region", column="region", kind="categorical"),
                  Covariate(name="score_band", column="credit_score", kind="bins", bins=(640.0, 720.0)),
                  baseline=Baseline(kind="age_bands", edges=(6, 12)))
-    rows = fit_hazard(small_con, spec, collapse=False)
-    patterns = fit_hazard(small_con, spec)  # fully discrete: collapsed to pattern counts
+    rows = fit_hazard(on_connection(small_con), spec, collapse=False)
+    patterns = fit_hazard(on_connection(small_con), spec)  # fully discrete: collapsed to pattern counts
     assert patterns.collapsed and patterns.n_stored_rows < rows.n_stored_rows
     assert patterns.n_rows == rows.n_rows and patterns.events == rows.events
     np.testing.assert_allclose(patterns.params, rows.params, rtol=1e-9)
@@ -320,7 +321,7 @@ def test_repeated_rows_equal_doubled_counts(small_con, tmp_path):
         dup.execute(f"CREATE TABLE {t} AS SELECT * FROM _{t}")
     dup.register("_lm", small_con.sql("SELECT * FROM loan_months").df())
     dup.execute("CREATE TABLE loan_months AS SELECT * FROM _lm UNION ALL SELECT * FROM _lm")
-    twice = fit_hazard(dup, spec, collapse=False)
+    twice = fit_hazard(on_connection(dup), spec, collapse=False)
     assert twice.n_rows == 2 * rows.n_rows
     np.testing.assert_allclose(twice.params, rows.params, rtol=1e-9)
     np.testing.assert_allclose(twice.bse * np.sqrt(2), rows.bse, rtol=1e-9)
@@ -329,7 +330,7 @@ def test_repeated_rows_equal_doubled_counts(small_con, tmp_path):
 
 def test_save_load_round_trip(small_con, tmp_path):
     spec = _spec(small_con, *MIXED, baseline=_spline(), interactions=(("score", "region"),))
-    res = fit_hazard(small_con, spec)
+    res = fit_hazard(on_connection(small_con), spec)
     path = res.save(tmp_path / "model.json")
     text = path.read_text()
     data = json.loads(text)
@@ -347,7 +348,7 @@ def test_save_load_round_trip(small_con, tmp_path):
 
 
 def test_summary_table(small_con):
-    res = fit_hazard(small_con, _spec(small_con, MIXED[0], baseline=_spline()))
+    res = fit_hazard(on_connection(small_con), _spec(small_con, MIXED[0], baseline=_spline()))
     s = res.summary()
     assert list(s.columns) == ["cause", "term", "estimate", "std_error", "z", "p_value", "ci_lo", "ci_hi"]
     assert len(s) == 2 * len(res.params)
@@ -379,9 +380,9 @@ def test_separation_names_the_level(small_con):
     con.execute("CREATE TABLE loan_months AS SELECT * FROM _lm")
     spec = _spec(con, Covariate(name="channel", column="channel", kind="categorical"), baseline=Baseline(kind="none"))
     with pytest.raises(SeparationError, match=r"column 'channel\[online\]' has no default events \([\d,]+ loan-months\).*ridge > 0"):
-        fit_hazard(con, spec)
+        fit_hazard(on_connection(con), spec)
     # A ridge penalty keeps the estimate finite: no error.
-    assert fit_hazard(con, spec, ridge=1.0).converged
+    assert fit_hazard(on_connection(con), spec, ridge=1.0).converged
 
 
 def test_separation_of_a_reference_level_is_named(small_con):
@@ -400,20 +401,20 @@ def test_separation_of_a_reference_level_is_named(small_con):
     con.execute("CREATE TABLE loan_months AS SELECT * FROM _lm")
     spec = _spec(con, baseline=Baseline(kind="age_bands", edges=(3, 12, 24)))
     with pytest.raises(SeparationError, match=r"reference level 'age_band\[1-2\]' of 'age_band' has no default events"):
-        fit_hazard(con, spec)
+        fit_hazard(on_connection(con), spec)
 
 
 def test_singular_design_names_columns(small_con):
     spec = _spec(small_con, Covariate(name="score", column="credit_score"),
                  Covariate(name="score_again", column="credit_score", transform="none", floor=0.0), baseline=_spline())
     with pytest.raises(SingularDesignError, match=r"columns 'score(_again)?', 'score(_again)?' are collinear"):
-        fit_hazard(small_con, spec)
+        fit_hazard(on_connection(small_con), spec)
 
 
 def test_non_convergence_reports_the_iterations(small_con):
     spec = _spec(small_con, *MIXED, baseline=_spline())
     with pytest.raises(ConvergenceError) as info:
-        fit_hazard(small_con, spec, max_iter=2)
+        fit_hazard(on_connection(small_con), spec, max_iter=2)
     text = str(info.value)
     assert "no convergence in 2 iterations" in text and "max|step|" in text and "ridge" in text and "max_iter" in text
     assert len(info.value.iteration_log) == 3
@@ -424,7 +425,7 @@ def test_few_events_warning(small_con):
     spec = _spec(con, *MIXED, baseline=_spline())
     n_def = con.execute("SELECT count(*) FROM loan_months WHERE outcome = 1 AND month_idx < 24190").fetchone()[0]
     with pytest.warns(FewEventsWarning, match=r"events for 10 parameters") as rec:
-        fit_hazard(con, spec, where_sql="month_idx < ?", params=[24190])
+        fit_hazard(on_connection(con), spec, where_sql="month_idx < ?", params=[24190])
     texts = [str(r.message) for r in rec]
     assert any(t.startswith(f"default: {n_def:,} events for 10 parameters") and "fewer than 10" in t for t in texts)
     assert all(r.filename == __file__ for r in rec)  # stacklevel points at the caller
@@ -433,7 +434,7 @@ def test_few_events_warning(small_con):
 
 def test_fit_model_from_config_section(small_con):
     model = ModelSpec(kind="cause_specific", baseline=_spline(), covariates=MIXED[:1], ridge=0.5)
-    res = fit_model(small_con, model, Collateral())
+    res = fit_model(on_connection(small_con), model, Collateral())
     assert isinstance(res, HazardResults) and res.kind == "cause_specific" and res.ridge == 0.5
-    direct = fit_hazard(small_con, _spec(small_con, MIXED[0], baseline=_spline()), kind="cause_specific", ridge=0.5)
+    direct = fit_hazard(on_connection(small_con), _spec(small_con, MIXED[0], baseline=_spline()), kind="cause_specific", ridge=0.5)
     assert res.params.equals(direct.params)

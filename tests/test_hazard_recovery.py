@@ -112,7 +112,7 @@ def _fit_true_design(folder: Path, min_age: int):
         early_defaults = panel.con.execute(
             "SELECT count(*) FROM loan_months WHERE outcome = 1 AND age < ?", [min_age]
         ).fetchall()[0][0]
-        results = fit_model(panel.con, cfg.model, cfg.collateral, where_sql=f"age >= ? AND {NOT_AT_TERM}", params=(min_age,))
+        results = fit_model(panel, cfg.model, cfg.collateral, where_sql=f"age >= ? AND {NOT_AT_TERM}", params=(min_age,))
     return results, int(early_defaults)
 
 
@@ -327,7 +327,7 @@ def psa_fit(tmp_path_factory):
     with open_panel(cfg) as panel:
         label_events(panel)
         spec = feature_spec(cfg.model, cfg.collateral)
-        results = fit_hazard(panel.con, spec, where_sql=NOT_AT_TERM, causes=("prepay",))
+        results = fit_hazard(panel, spec, where_sql=NOT_AT_TERM, causes=("prepay",))
 
     # Counts straight from the simulated panel: every month before the term is at risk.
     rows = book.panel.merge(book.loans[["loan_id", "term_months"]], on="loan_id", validate="many_to_one")

@@ -17,6 +17,7 @@ from creditsurv.runs import (
     MANIFEST,
     WALK_STEPS,
     RunFolder,
+    check_walk_reconciles,
     compare_run_folders,
     movement,
 )
@@ -141,18 +142,17 @@ def test_zero_exposure_in_run_a_puts_the_whole_change_in_exposure():
     _only(r, {"exposure": 3.0})
 
 
-def test_a_walk_that_does_not_reconcile_is_refused(monkeypatch):
-    import creditsurv.runs._movement as mod
-
-    real = mod._same_stage_steps
-
-    def off_by_one(*args):
-        exposure, sw, risk = real(*args)
-        return exposure, sw, risk + 1.0
-
-    monkeypatch.setattr(mod, "_same_stage_steps", off_by_one)
+def test_a_walk_that_does_not_reconcile_is_refused():
+    # The walk movement() builds passes its own reconciliation check; the same
+    # steps with one unit added to a step are refused.
+    walk = movement(_book([L1], EVEN), _book([L1], EVEN), EVEN, EVEN).walk
+    steps = walk["ecl_change"].to_numpy()[1:-1]
+    opening, closing = float(walk["ecl_balance"].iloc[0]), float(walk["ecl_balance"].iloc[-1])
+    check_walk_reconciles(steps, opening, closing)
+    off_by_one = steps.copy()
+    off_by_one[-1] += 1.0
     with pytest.raises(RunError, match="does not reconcile"):
-        movement(_book([L1], EVEN), _book([L1], EVEN), EVEN, EVEN)
+        check_walk_reconciles(off_by_one, opening, closing)
 
 
 def _random_book(rng, ids, weights):

@@ -6,7 +6,7 @@ tolerances are relative, 1e-9 (sums are added in another order on Spark).
 
 from __future__ import annotations
 
-import functools
+import dataclasses
 import shutil
 from pathlib import Path
 
@@ -26,16 +26,10 @@ from test_panel import BAD_BOOKS, MACRO_COVARIATE  # noqa: E402 - the crafted ba
 from creditsurv import pipeline  # noqa: E402
 from creditsurv.config import SparkSettings, load_config  # noqa: E402
 from creditsurv.demo import write_demo_book  # noqa: E402
-from creditsurv.engines import (  # noqa: E402  # noqa: E402
-    _spark,  # noqa: E402
-    book_at_as_of,
-    event_counts,
-    open_panel,
-    run_checks,
-)
+from creditsurv.engines import Engine, open_engine, spark_session, spark_sql  # noqa: E402
 from creditsurv.errors import DataCheckError, FewEventsWarning  # noqa: E402
-from creditsurv.forecast import prepare_paths  # noqa: E402
-from creditsurv.loss import expected_credit_loss  # noqa: E402
+from creditsurv.loss import expected_credit_loss_by_partition  # noqa: E402
+from creditsurv.model import hazard_source  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 RTOL = 1e-9
@@ -44,7 +38,7 @@ RTOL = 1e-9
 @pytest.fixture(scope="session")
 def spark():
     """One local Spark session for the module: two cores, two shuffle partitions, no UI."""
-    session, created = _spark.spark_session(
+    session, created = spark_session(
         SparkSettings(master="local[2]", partitions=2, settings={"spark.ui.enabled": "false", "spark.driver.memory": "2g"})
     )
     session.sparkContext.setLogLevel("FATAL")
@@ -64,20 +58,11 @@ def spark_book(tmp_path_factory):
     return load_config(path)
 
 
-def _ecl(cfg, book, history, model, ecl, **extra):
-    remaining = (book["term"] - book["age"]).clip(lower=0)
-    until = int(cfg.as_of) + int(remaining.max()) + cfg.loss.lgd.months_to_recovery + 1
-    paths = prepare_paths(
-        cfg.scenarios, history, as_of_idx=int(cfg.as_of), until_idx=until, extension=cfg.scenario_extension,
-        required_series=pipeline._macro_series_needed(model, cfg),
-    )
+def _ecl(cfg, engine, book, model):
+    paths = pipeline.scenario_paths(cfg, engine, model, book)
     annual = []
-    result = ecl(
-        book, model, paths, as_of_idx=int(cfg.as_of), weights={s.name: s.weight for s in cfg.scenarios},
-        loss=cfg.loss, staging=cfg.staging, default_days_past_due=cfg.default_definition.days_past_due,
-        hpi_series=cfg.collateral.hpi_series, region_column=cfg.collateral.region_column,
-        market_rate_series=cfg.collateral.market_rate_series, band_column=cfg.segments.band_column,
-        band_edges=cfg.segments.band_edges, term_writer=annual.append, **extra,
+    result = expected_credit_loss_by_partition(
+        engine, book, model, paths, writers={"term": annual.append}, **pipeline.ecl_options(cfg)
     )
     return result, pa.concat_tables(annual)
 
@@ -85,36 +70,27 @@ def _ecl(cfg, book, history, model, ecl, **extra):
 _EVENT_TABLES = (("loan_outcomes", "loan_id"), ("loan_months", "loan_id, month_idx"))
 
 
-def _run(cfg, tmp, engine, reference_model=None):
+def _run(cfg, tmp, engine_name, reference_model=None):
     """Checks, events, fit, book and ECL of one engine, as the pipeline's run calls them.
 
-    With ``reference_model`` the Spark engine also projects that model, so that
-    the partitioned ECL can be compared with the DuckDB engine's on the very same
+    The same code for both engines: only ``cfg.engine`` differs. With
+    ``reference_model`` the engine also projects that model, so that the
+    partitioned ECL can be compared with the DuckDB engine's on the very same
     coefficients.
     """
+    cfg = dataclasses.replace(cfg, engine=engine_name)
     out = {}
-    if engine == "duckdb":
-        panel, checks = pipeline._open_checked(cfg)
-        with panel:
-            with pytest.warns(FewEventsWarning):  # 3,000 loans give few defaults for 10 terms
-                model = pipeline._hazard_model(cfg, panel, tmp)
-            book, history, counts = book_at_as_of(panel, cfg.segments.column), pipeline._macro_history(panel), event_counts(panel)
-            for name, key in _EVENT_TABLES:
-                out[name] = panel.con.execute(f"SELECT * FROM {name} ORDER BY {key}").df()
-        ecl = expected_credit_loss
-    else:
-        panel, checks = _spark.open_checked(cfg)
-        with panel:
-            with pytest.warns(FewEventsWarning):
-                model = _spark.hazard_model(cfg, panel, tmp)
-            book, history, counts = _spark.book_at_as_of(panel, cfg.segments.column), _spark.macro_history(panel), _spark.event_counts(panel)
-            for name, key in _EVENT_TABLES:
-                table = _spark._arrow(panel.spark.sql(f"SELECT * FROM {name}"))
-                out[name] = _spark._as_duckdb_frame(table, f"SELECT * FROM t ORDER BY {key}")
-        ecl = functools.partial(_spark.expected_credit_loss, partitions=cfg.spark.partitions)
-    out["ecl"], out["annual"] = _ecl(cfg, book, history, model, ecl)
-    if reference_model is not None:
-        out["ecl_reference"], out["annual_reference"] = _ecl(cfg, book, history, reference_model, ecl)
+    engine, checks = pipeline.open_checked(cfg)
+    with engine:
+        assert engine.name == engine_name and isinstance(engine, Engine)
+        with pytest.warns(FewEventsWarning):  # 3,000 loans give few defaults for 10 terms
+            model = hazard_source(cfg, engine, tmp)
+        book, history, counts = engine.book_at_as_of(cfg.segments.column), engine.macro_history(), engine.event_counts()
+        for name, key in _EVENT_TABLES:
+            out[name] = engine.frame(f"SELECT * FROM {name} ORDER BY {key}")
+        out["ecl"], out["annual"] = _ecl(cfg, engine, book, model)
+        if reference_model is not None:
+            out["ecl_reference"], out["annual_reference"] = _ecl(cfg, engine, book, reference_model)
     out.update(checks=checks, model=model, book=book, history=history, counts=counts)
     return out
 
@@ -211,10 +187,10 @@ CRAFTED = {
 def test_data_checks_fire_on_spark_exactly_as_on_duckdb(spark, panel_clean_book, panel_config_factory, case, fmt):
     panel, loans, macro = CRAFTED[case](*panel_clean_book)
     cfg = panel_config_factory(panel, loans, macro, fmt=fmt, model=MACRO_COVARIATE)
-    with open_panel(cfg) as p:
-        expected = run_checks(p)
-    with _spark.open_panel(cfg) as p:
-        got = _spark.run_checks(p)
+    with open_engine(cfg) as p:
+        expected = p.run_checks()
+    with open_engine(dataclasses.replace(cfg, engine="spark")) as p:
+        got = p.run_checks()
     assert (expected["count"] > 0).sum() >= 3
     pd.testing.assert_frame_equal(got, expected)  # check, severity, count, examples, source, columns, description
 
@@ -223,9 +199,9 @@ def test_open_checked_raises_the_same_error(spark, panel_clean_book, panel_confi
     panel, loans, macro = CRAFTED["keys_and_gaps"](*panel_clean_book)
     cfg = panel_config_factory(panel, loans, macro, model=MACRO_COVARIATE)
     with pytest.raises(DataCheckError) as duck:
-        pipeline._open_checked(cfg)
+        pipeline.open_checked(cfg)
     with pytest.raises(DataCheckError) as on_spark:
-        _spark.open_checked(cfg)
+        pipeline.open_checked(dataclasses.replace(cfg, engine="spark"))
     assert str(on_spark.value) == str(duck.value)
     assert not spark.catalog.tableExists("panel_all")  # a failed open leaves no views behind
 
@@ -235,18 +211,16 @@ def test_open_checked_raises_the_same_error(spark, panel_clean_book, panel_confi
 
 def test_spark_rendering_of_the_shared_sql():
     sql = "SELECT arg_min(age, month_idx) FILTER (WHERE x), CAST(a AS VARCHAR), m // 12 FROM t WHERE m = $as_of"
-    assert _spark.spark_sql(sql) == (
+    assert spark_sql(sql) == (
         "SELECT min_by(age, month_idx) FILTER (WHERE x), CAST(a AS STRING), m div 12 FROM t WHERE m = :as_of"
     )
-    codes = _spark.spark_sql("coalesce(list_contains(CAST($codes AS VARCHAR[]), status), FALSE)", codes=["a'b"])
+    codes = spark_sql("coalesce(list_contains(CAST($codes AS VARCHAR[]), status), FALSE)", codes=["a'b"])
     assert codes == "coalesce(array_contains(CAST(array('a''b') AS ARRAY<STRING>), status), FALSE)"
 
 
 def test_a_whole_run_on_spark_writes_the_same_tables(spark, spark_book, tmp_path):
     # `engine: spark` end to end through the run command: the loan-level ECL and
     # the PD table equal the DuckDB engine's run of the same config.
-    import dataclasses
-
     duck = dataclasses.replace(spark_book, engine="duckdb")
     on_spark = dataclasses.replace(spark_book, engine="spark")
     with pytest.warns(FewEventsWarning):
@@ -259,3 +233,8 @@ def test_a_whole_run_on_spark_writes_the_same_tables(spark, spark_book, tmp_path
         np.testing.assert_allclose(lb[col], la[col], rtol=RTOL, atol=1e-12, err_msg=col)
     ta, tb = pd.read_csv(a / "segment_pd_table.csv"), pd.read_csv(b / "segment_pd_table.csv")
     np.testing.assert_allclose(tb["cumulative_pd"], ta["cumulative_pd"], rtol=RTOL, atol=1e-12)
+    # The validation pack runs through the same engine interface: every table, on both engines.
+    tables = sorted(p.name for p in (a / "validation").glob("*.csv"))
+    assert len(tables) >= 8 and tables == sorted(p.name for p in (b / "validation").glob("*.csv"))
+    for name in tables:
+        _close(pd.read_csv(a / "validation" / name), pd.read_csv(b / "validation" / name), atol=PROB_ATOL)

@@ -22,7 +22,7 @@ from creditsurv import pipeline
 from creditsurv.config import load_config
 from creditsurv.demo import DEFAULT_MIN_AGE, true_hazard, write_demo_book
 from creditsurv.errors import FewEventsWarning
-from creditsurv.model import BenchmarkCurves
+from creditsurv.model import BenchmarkCurves, hazard_source
 from creditsurv.months import parse_month
 from creditsurv.validation import (
     PACK_COLUMNS,
@@ -92,8 +92,8 @@ def opened(book, tmp_path_factory):
     """The demo config on the book, its checked and labelled panel, and the fitted demo model."""
     tmp = tmp_path_factory.mktemp("pack")
     cfg = _config(book, tmp)
-    panel, _ = pipeline._open_checked(cfg)
-    model = pipeline._hazard_model(cfg, panel, temp_dir=tmp)
+    panel, _ = pipeline.open_checked(cfg)
+    model = hazard_source(cfg, panel, temp_dir=tmp)
     yield cfg, panel, model, tmp
     panel.close()
 
@@ -119,7 +119,7 @@ def downturn_packs(opened, book):
     cfg_mis = _config(book, tmp, windows=DOWNTURN, model=model)
     # Few defaults before the downturn: the fit says so.
     with pytest.warns(FewEventsWarning, match="default"):
-        misspecified = pipeline._hazard_model(cfg_mis, panel, temp_dir=tmp)
+        misspecified = hazard_source(cfg_mis, panel, temp_dir=tmp)
     return {
         "truth": validation_pack(cfg_true, panel, TrueHazard()),
         "misspecified": validation_pack(cfg_mis, panel, misspecified),

@@ -12,9 +12,9 @@ from ._simulate import (
     book_truth,
     make_macro,
     psa_hazard,
+    scheduled_balance,
     simulate_book,
     simulate_small_book,
-    scheduled_balance,
     true_hazard,
     write_demo_book,
 )

@@ -33,6 +33,7 @@ import tempfile
 from pathlib import Path
 
 import duckdb
+import numpy as np
 import pandas as pd
 
 from ..config import Config
@@ -56,14 +57,16 @@ from ..data import (
     resolve_inputs,
 )
 from ..errors import ConfigError, DataError, did_you_mean
+from ..model import FirstPass, batch_design, batch_sums, symmetric
 from ..sql import month_index_sql, quote_ident
 
 __all__ = [
-    "CHECKS",
-    "Panel",
-    "format_checks",
+    "DuckdbEngine",
+    "book_at_as_of",
+    "event_counts",
+    "label_events",
+    "on_connection",
     "open_panel",
-    "raise_for_errors",
     "run_checks",
 ]
 
@@ -276,7 +279,7 @@ SELECT month,
 FROM typed"""
 
 
-class Panel:
+class DuckdbEngine:
     """The inputs registered in one DuckDB connection, under internal names.
 
     Use :func:`open_panel` to build one. Close it (or use ``with``) to release
@@ -293,12 +296,69 @@ class Panel:
         Internal table name to input path.
     """
 
+    name = "duckdb"
+
     def __init__(self, cfg: Config, con, sources: dict[str, Source], spill_dir: str | None):
         self.cfg = cfg
         self.con = con
         self._sources = sources
         self._spill_dir = spill_dir
         self.sources = {name: s.path for name, s in sources.items()}
+
+    # The engine interface (see ``_base.Engine``): the stages call these.
+
+    def run_checks(self) -> pd.DataFrame:
+        return run_checks(self)
+
+    def label_events(self) -> None:
+        label_events(self)
+
+    def event_counts(self) -> pd.DataFrame:
+        return event_counts(self)
+
+    def book_at_as_of(self, segment_column: str | None = None) -> pd.DataFrame:
+        return book_at_as_of(self, segment_column)
+
+    def macro_history(self) -> pd.DataFrame:
+        frame = self.con.execute("SELECT * EXCLUDE (month) FROM macro ORDER BY month_idx").df()
+        return frame.set_index("month_idx")
+
+    def frame(self, sql: str, params=None) -> pd.DataFrame:
+        try:
+            return self.con.execute(sql, params or {}).df()
+        except duckdb.Error as exc:
+            raise DataError(f"query failed: {_duck_message(exc)}") from None
+
+    def batches(self, sql: str, params, batch_size: int):
+        rel = self.con.sql(sql, params=list(params)) if params else self.con.sql(sql)
+        with rel.to_arrow_reader(batch_size=batch_size) as reader:
+            yield from reader
+
+    def design_sums(self, spec, sql, params, *, collapse, dropped, codes, kind, batch_size, temp_dir):
+        """Evaluate the design once into a temporary file and sum over it batch by batch.
+
+        Memory is bounded by one batch: the design goes to disk as it is
+        evaluated and is read back in batches for each Newton evaluation.
+        """
+        store = _DesignStore(len(spec.columns), temp_dir)
+        try:
+            first = FirstPass(len(spec.columns))
+            for batch in self.batches(sql, params, batch_size):
+                raw = {nm: batch.column(i).to_numpy(zero_copy_only=False) for i, nm in enumerate(batch.schema.names)}
+                design = batch_design(raw, spec, collapse, dropped)
+                if design is None:
+                    continue
+                store.append(*design)
+                first.add(*design)
+            store.finish()
+        except BaseException:
+            store.close()
+            raise
+        return _StoredSums(store, first, first.fingerprint(spec.columns), codes, kind, batch_size)
+
+    def map_book(self, fn, book, writers, progress=None) -> list:
+        """One partition, the whole book, in this process: the writers receive the tables directly."""
+        return [fn(book, writers, progress)]
 
     def query(self, sql: str, params=None):
         """Run ``sql`` (with ``params``) and return a DuckDB relation."""
@@ -311,6 +371,15 @@ class Panel:
         """Column names of the internal view ``table``."""
         return [r[0] for r in self.con.execute(f"DESCRIBE {quote_ident(table)}").fetchall()]
 
+    def has_table(self, name: str) -> bool:
+        """Whether a view or table ``name`` exists (``macro`` only when configured)."""
+        rows = self.con.execute(
+            "SELECT 1 FROM duckdb_views() WHERE view_name = $n\n"
+            "UNION ALL SELECT 1 FROM duckdb_tables() WHERE table_name = $n",
+            {"n": name},
+        ).fetchall()
+        return bool(rows)
+
     def close(self) -> None:
         """Close the connection and remove the spill folder."""
         if self.con is not None:
@@ -320,7 +389,7 @@ class Panel:
             shutil.rmtree(self._spill_dir, ignore_errors=True)
             self._spill_dir = None
 
-    def __enter__(self) -> Panel:
+    def __enter__(self) -> DuckdbEngine:
         return self
 
     def __exit__(self, *exc) -> None:
@@ -328,7 +397,16 @@ class Panel:
 
     def __repr__(self) -> str:
         state = "closed" if self.con is None else "open"
-        return f"<Panel {state}: {', '.join(f'{k}={v}' for k, v in self.sources.items())}>"
+        return f"<DuckdbEngine {state}: {', '.join(f'{k}={v}' for k, v in self.sources.items())}>"
+
+
+def on_connection(con) -> DuckdbEngine:
+    """An engine over an existing DuckDB connection that already holds the views (no config).
+
+    For tests and notebooks that build ``loan_months``, ``panel``, ``loans``
+    and ``macro`` themselves; the caller keeps (and closes) ``con``.
+    """
+    return DuckdbEngine(None, con, {}, None)
 
 
 def _connect(cfg: Config):
@@ -344,7 +422,7 @@ def _connect(cfg: Config):
     return con, spill_dir
 
 
-def open_panel(cfg: Config) -> Panel:
+def open_panel(cfg: Config) -> DuckdbEngine:
     """Register the configured inputs in a new DuckDB connection.
 
     Parameters
@@ -354,7 +432,7 @@ def open_panel(cfg: Config) -> Panel:
 
     Returns
     -------
-    Panel
+    DuckdbEngine
         Holds the views ``panel``, ``panel_all``, ``loans`` and, when
         ``inputs.macro`` is configured, ``macro``.
 
@@ -370,7 +448,7 @@ def open_panel(cfg: Config) -> Panel:
     """
     check_severity_names(cfg)
     con, spill_dir = _connect(cfg)
-    panel = Panel(cfg, con, {}, spill_dir)
+    panel = DuckdbEngine(cfg, con, {}, spill_dir)
     try:
         _build_views(panel)
     except BaseException:
@@ -379,7 +457,7 @@ def open_panel(cfg: Config) -> Panel:
     return panel
 
 
-def _build_views(panel: Panel) -> None:
+def _build_views(panel: DuckdbEngine) -> None:
     cfg, con = panel.cfg, panel.con
     inputs = input_sources(cfg)
     sources = {name: _register(con, name, key, source) for name, key, source in inputs}
@@ -412,7 +490,7 @@ SELECT (SELECT count(*) FROM offending) AS n,
              FROM (SELECT * FROM offending ORDER BY {order} LIMIT 5) AS e) AS VARCHAR) AS examples"""
 
 
-def run_checks(panel: Panel) -> pd.DataFrame:
+def run_checks(panel: DuckdbEngine) -> pd.DataFrame:
     """Run every data check on ``panel``.
 
     Returns
@@ -442,7 +520,7 @@ def run_checks(panel: Panel) -> pd.DataFrame:
     return result
 
 
-def _store_checks(panel: Panel, checks: pd.DataFrame) -> None:
+def _store_checks(panel: DuckdbEngine, checks: pd.DataFrame) -> None:
     panel.con.register("_data_checks_frame", checks)
     try:
         panel.con.execute("CREATE OR REPLACE TABLE data_checks AS SELECT * FROM _data_checks_frame")
@@ -455,12 +533,12 @@ def _store_checks(panel: Panel, checks: pd.DataFrame) -> None:
 
 
 
-def label_events(panel: Panel) -> None:
+def label_events(panel: DuckdbEngine) -> None:
     """Create the tables ``loan_outcomes`` and ``loan_months`` on ``panel.con``.
 
     Parameters
     ----------
-    panel : Panel
+    panel : DuckdbEngine
         An open panel (see :func:`creditsurv.engines.open_panel`); its checks
         should have passed, since duplicate or gapped loan-months make the risk
         set meaningless.
@@ -473,7 +551,7 @@ def label_events(panel: Panel) -> None:
             raise DataError(f"event labelling failed on {panel.sources.get('panel')}: {first}") from None
 
 
-def _has_table(panel: Panel, name: str) -> bool:
+def _has_table(panel: DuckdbEngine, name: str) -> bool:
     rows = panel.con.execute(
         "SELECT 1 FROM duckdb_tables() WHERE database_name = current_database() AND table_name = $name",
         {"name": name},
@@ -481,7 +559,7 @@ def _has_table(panel: Panel, name: str) -> bool:
     return bool(rows)
 
 
-def event_counts(panel: Panel) -> pd.DataFrame:
+def event_counts(panel: DuckdbEngine) -> pd.DataFrame:
     """Loans by event and censor reason.
 
     Labels the events first when ``loan_outcomes`` does not exist yet.
@@ -509,7 +587,7 @@ def event_counts(panel: Panel) -> pd.DataFrame:
     return frame.astype({"loans": "int64", "share": "float64"})
 
 
-def book_at_as_of(panel: Panel, segment_column: str | None = None) -> pd.DataFrame:
+def book_at_as_of(panel: DuckdbEngine, segment_column: str | None = None) -> pd.DataFrame:
     """The book at the reporting month: every loan still on it, one row each.
 
     A loan is on the book when it has a panel row at the reporting month with a
@@ -532,3 +610,79 @@ def book_at_as_of(panel: Panel, segment_column: str | None = None) -> pd.DataFra
         return panel.con.execute(sql, params).df()
     except duckdb.Error as exc:
         raise DataError(f"cannot build the book at {cfg.as_of}: {exc}") from None
+
+
+# --------------------------------------------------------------------------- the fit's design on disk
+
+
+class _DesignStore:
+    """The evaluated design, outcomes and weights in temporary files, read back in batches."""
+
+    def __init__(self, p: int, temp_dir=None):
+        self.p = p
+        self.dir = Path(tempfile.mkdtemp(prefix="creditsurv-fit-", dir=temp_dir))
+        self._files = {k: open(self.dir / f"{k}.bin", "wb") for k in ("X", "y", "w")}
+        self.n = 0
+
+    def append(self, X: np.ndarray, y: np.ndarray, w: np.ndarray) -> None:
+        self._files["X"].write(np.ascontiguousarray(X, dtype=np.float64).tobytes())
+        self._files["y"].write(np.ascontiguousarray(y, dtype=np.int8).tobytes())
+        self._files["w"].write(np.ascontiguousarray(w, dtype=np.float64).tobytes())
+        self.n += X.shape[0]
+
+    def finish(self) -> None:
+        for f in self._files.values():
+            f.close()
+
+    def batches(self, size: int):
+        """The stored rows in batches of ``size``, read into fresh arrays.
+
+        Plain reads rather than a memory map: a map's pages count as the
+        process's resident memory once touched, so memory would grow with the
+        number of loan-months; here it is bounded by one batch.
+        """
+        p = self.p
+        with open(self.dir / "X.bin", "rb") as fx, open(self.dir / "y.bin", "rb") as fy, open(self.dir / "w.bin", "rb") as fw:
+            for start in range(0, self.n, size):
+                m = min(size, self.n - start)
+                X = np.fromfile(fx, dtype=np.float64, count=m * p).reshape(m, p)
+                y = np.fromfile(fy, dtype=np.int8, count=m)
+                w = np.fromfile(fw, dtype=np.float64, count=m)
+                yield X, y, w
+
+    def close(self) -> None:
+        for f in self._files.values():
+            if not f.closed:
+                f.close()
+        shutil.rmtree(self.dir, ignore_errors=True)
+
+
+def _evaluate(store, beta, codes, kind, batch_size, need_hess):
+    """Log-likelihood, score (K, p) and observed information (K*p, K*p) at ``beta`` (K, p)."""
+    K, p = beta.shape
+    ll = 0.0
+    g = np.zeros((K, p))
+    H = np.zeros((K * p, K * p)) if need_hess else None
+    for X, y, w in store.batches(batch_size):
+        ll_b, g_b, H_b = batch_sums(X, y, w, beta, codes, kind, need_hess)
+        ll += ll_b
+        g += g_b
+        if need_hess:
+            H += H_b
+    if need_hess:
+        H = symmetric(H)
+    return ll, g, H
+
+
+class _StoredSums:
+    """The engine's :class:`~creditsurv.engines.DesignSums`: the design file and its first pass."""
+
+    def __init__(self, store: _DesignStore, first, fingerprint: str, codes, kind: str, batch_size: int):
+        self.store, self.first, self.fingerprint = store, first, fingerprint
+        self._codes, self._kind, self._batch_size = codes, kind, batch_size
+
+    def evaluate(self, beta, need_hess):
+        return _evaluate(self.store, beta, self._codes, self._kind, self._batch_size, need_hess)
+
+    def close(self) -> None:
+        self.store.close()

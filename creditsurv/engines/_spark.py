@@ -3,10 +3,10 @@
 ``engine: spark`` in the config sends the panel, the data checks, the event
 labelling, the fit's likelihood passes and the projection with ECL to Spark.
 The statistics are not written twice: the design (:meth:`FeatureSpec.design`),
-the per-batch likelihood kernel (``hazard._batch_sums``), the Newton
-iterations (``hazard._newton``), the checks on the design and the results
-object, the projection and the ECL arithmetic (``loss.expected_credit_loss``)
-are the same functions the DuckDB engine calls. What is Spark's own:
+the per-batch likelihood kernel (:func:`creditsurv.model.batch_sums`), the
+Newton iterations, the checks on the design and the results object, the
+projection and the ECL arithmetic are the same functions the DuckDB engine's
+runs call. What is Spark's own:
 
 - reading the inputs (Parquet or CSV) and the typed views ``panel``,
   ``panel_all``, ``loans`` and ``macro`` (Spark SQL, same names and types);
@@ -17,12 +17,11 @@ are the same functions the DuckDB engine calls. What is Spark's own:
 - where the sums of the fit are taken: per partition on the executors, then
   added on the driver in partition order, so the driver holds only
   parameter-sized arrays;
-- splitting the book into loan partitions for projection and ECL, and
-  combining the partitions' segment tables exactly from their pooled sums.
+- splitting the book into loan partitions for projection and ECL (the loss
+  stage combines the partitions' segment tables from their pooled sums).
 
-Entry points for the pipeline: :func:`open_checked`, :func:`hazard_model`,
-:func:`event_counts`, :func:`book_at_as_of`, :func:`macro_history` and
-:func:`expected_credit_loss`. See docs/scaling.md.
+:class:`SparkEngine` implements :class:`creditsurv.engines.Engine`; the
+stages call only that interface. See docs/scaling.md.
 """
 
 from __future__ import annotations
@@ -58,34 +57,24 @@ from ..data import (
     passthrough_columns,
     plan_checks,
     problem_text,
-    raise_for_errors,
     resolve_inputs,
 )
 from ..errors import ConfigError, DataError
 from ..model import (
     FirstPass,
-    HazardResults,
     batch_design,
     batch_sums,
-    check_fit_arguments,
-    feature_spec,
     fit_fingerprint,
-    fit_from_sums,
-    raw_design_sql,
-    resolve_collapse,
     symmetric,
 )
 from ..sql import month_index_sql, quote_ident, quote_literal
 
 __all__ = [
-    "SparkPanel",
+    "SparkEngine",
     "book_at_as_of",
     "event_counts",
-    "expected_credit_loss",
-    "fit_hazard",
-    "hazard_model",
+    "label_events",
     "macro_history",
-    "open_checked",
     "open_panel",
     "run_checks",
     "spark_session",
@@ -418,8 +407,11 @@ SELECT month,
 FROM typed"""
 
 
-class SparkPanel:
-    """The inputs as Spark temp views under internal names; the Spark engine's ``Panel``.
+class SparkEngine:
+    """The inputs as Spark temp views under internal names: the Spark engine.
+
+    Implements :class:`creditsurv.engines.Engine`; open one with
+    :func:`open_panel` (``engine: spark`` in the config).
 
     Attributes
     ----------
@@ -433,6 +425,8 @@ class SparkPanel:
         Partitions of the loan-month and loan work (``spark.partitions``).
     """
 
+    name = "spark"
+
     def __init__(self, cfg, spark, owns_session: bool):
         self.cfg = cfg
         self.spark = spark
@@ -443,6 +437,44 @@ class SparkPanel:
         self._cached: list = []
         self._views: list[str] = []
         self.sources: dict = {}
+
+    # The engine interface (see ``_base.Engine``): the stages call these.
+
+    def run_checks(self) -> pd.DataFrame:
+        return run_checks(self)
+
+    def label_events(self) -> None:
+        label_events(self)
+
+    def event_counts(self) -> pd.DataFrame:
+        return event_counts(self)
+
+    def book_at_as_of(self, segment_column: str | None = None) -> pd.DataFrame:
+        return book_at_as_of(self, segment_column)
+
+    def macro_history(self) -> pd.DataFrame:
+        return macro_history(self)
+
+    def frame(self, sql: str, params=None) -> pd.DataFrame:
+        try:
+            table = _arrow(self.con.frame(sql, params))
+        except Exception as exc:  # noqa: BLE001 - Spark's analysis and execution errors
+            raise DataError(f"query failed: {_first_line(exc)}") from None
+        return _as_duckdb_frame(table)
+
+    def batches(self, sql: str, params, batch_size: int):
+        """The rows of ``sql`` in order, as Arrow batches (collected to the driver first)."""
+        try:
+            table = _arrow(self.con.frame(sql, list(params) if params else None))
+        except Exception as exc:  # noqa: BLE001
+            raise DataError(f"query failed: {_first_line(exc)}") from None
+        yield from table.to_batches(max_chunksize=batch_size)
+
+    def design_sums(self, spec, sql, params, *, collapse, dropped, codes, kind, batch_size, temp_dir):
+        return _design_sums(self, spec, sql, params, collapse=collapse, dropped=dropped, codes=codes, kind=kind)
+
+    def map_book(self, fn, book, writers, progress=None) -> list:
+        return _map_book(self, fn, book, writers, progress)
 
     def view(self, name: str, frame, cache: bool = False):
         if cache:
@@ -456,6 +488,14 @@ class SparkPanel:
 
     def has_view(self, name: str) -> bool:
         return name in self._views
+
+    def has_table(self, name: str) -> bool:
+        """Whether a view ``name`` exists (``macro`` only when configured)."""
+        return name in self._views
+
+    def columns(self, table: str) -> list[str]:
+        """Column names of the internal view ``table``."""
+        return list(self.spark.table(table).columns)
 
     def sql(self, sql: str, params=None):
         """Run creditsurv's DuckDB SQL text on Spark (see :func:`spark_sql`)."""
@@ -473,7 +513,7 @@ class SparkPanel:
             self.spark.stop()
         self._cached, self._views, self.spark = [], [], None
 
-    def __enter__(self) -> "SparkPanel":
+    def __enter__(self) -> "SparkEngine":
         return self
 
     def __exit__(self, *exc) -> None:
@@ -481,10 +521,10 @@ class SparkPanel:
 
     def __repr__(self) -> str:
         state = "closed" if self.spark is None else "open"
-        return f"<SparkPanel {state}: {', '.join(f'{k}={v}' for k, v in self.sources.items())}>"
+        return f"<SparkEngine {state}: {', '.join(f'{k}={v}' for k, v in self.sources.items())}>"
 
 
-def open_panel(cfg) -> SparkPanel:
+def open_panel(cfg) -> SparkEngine:
     """Read the configured inputs into Spark and build the views ``panel``, ``panel_all``, ``loans``, ``macro``.
 
     Same contract and errors as :func:`creditsurv.engines.open_panel`; DuckDB
@@ -492,7 +532,7 @@ def open_panel(cfg) -> SparkPanel:
     """
     check_severity_names(cfg)
     spark, owns = spark_session(cfg.spark)
-    panel = SparkPanel(cfg, spark, owns)
+    panel = SparkEngine(cfg, spark, owns)
     try:
         _build_views(panel)
     except BaseException:
@@ -501,7 +541,7 @@ def open_panel(cfg) -> SparkPanel:
     return panel
 
 
-def _build_views(panel: SparkPanel) -> None:
+def _build_views(panel: SparkEngine) -> None:
     cfg, spark = panel.cfg, panel.spark
     inputs = input_sources(cfg)
     sources = {name: _register(spark, name, key, source) for name, key, source in inputs}
@@ -551,7 +591,7 @@ def _examples(table: pa.Table, order: str) -> str:
         ).fetchall()[0][0]
 
 
-def run_checks(panel: SparkPanel) -> pd.DataFrame:
+def run_checks(panel: SparkEngine) -> pd.DataFrame:
     """Run every data check on Spark; the same table as :func:`creditsurv.engines.run_checks`."""
     from pyspark.sql import functions as F
 
@@ -579,7 +619,7 @@ def _strip_create(sql: str) -> tuple[str, str]:
     return match.group(1), sql[match.end():]
 
 
-def label_events(panel: SparkPanel) -> None:
+def label_events(panel: SparkEngine) -> None:
     """The views ``loan_outcomes`` and ``loan_months`` (cached), from the events stage's SQL."""
     cfg = panel.cfg
     for text in (LOAN_OUTCOMES_SQL, LOAN_MONTHS_SQL):
@@ -600,26 +640,7 @@ def label_events(panel: SparkPanel) -> None:
             raise DataError(f"event labelling failed on {panel.sources.get('panel')}: {_first_line(exc)}") from None
 
 
-def open_checked(cfg):
-    """Open the panel on Spark, run the data checks (raise on errors), label events.
-
-    Returns
-    -------
-    (SparkPanel, pandas.DataFrame)
-        The open panel (close it, or use ``with``) and the check table.
-    """
-    panel = open_panel(cfg)
-    try:
-        checks = run_checks(panel)
-        raise_for_errors(checks)
-        label_events(panel)
-    except BaseException:
-        panel.close()
-        raise
-    return panel, checks
-
-
-def event_counts(panel: SparkPanel) -> pd.DataFrame:
+def event_counts(panel: SparkEngine) -> pd.DataFrame:
     """Loans by event and censor reason; the same table as :func:`creditsurv.engines.event_counts`."""
     if not panel.has_view("loan_outcomes"):
         label_events(panel)
@@ -638,7 +659,7 @@ def event_counts(panel: SparkPanel) -> pd.DataFrame:
     return frame.astype({"loans": "int64", "share": "float64"})
 
 
-def book_at_as_of(panel: SparkPanel, segment_column: str | None = None) -> pd.DataFrame:
+def book_at_as_of(panel: SparkEngine, segment_column: str | None = None) -> pd.DataFrame:
     """The book at the reporting month; same rows, columns and dtypes as :func:`creditsurv.engines.book_at_as_of`.
 
     One row per loan on the book passes through the driver (the panel does not).
@@ -657,7 +678,7 @@ def book_at_as_of(panel: SparkPanel, segment_column: str | None = None) -> pd.Da
     return _as_duckdb_frame(table, "SELECT * FROM t ORDER BY loan_id")
 
 
-def macro_history(panel: SparkPanel) -> pd.DataFrame:
+def macro_history(panel: SparkEngine) -> pd.DataFrame:
     """Macro history indexed by month index, every series a column (as ``pipeline._macro_history``)."""
     table = _arrow(panel.spark.sql("SELECT * FROM macro"))
     frame = _as_duckdb_frame(table, "SELECT * EXCLUDE (month) FROM t ORDER BY month_idx")
@@ -713,48 +734,65 @@ def _sums_partition(beta_bc, codes, kind, need_hess, index, blocks):
     yield index, ll, g, packed
 
 
-def fit_hazard(
-    panel: SparkPanel,
-    spec,
-    *,
-    where_sql: str = "TRUE",
-    params=(),
-    kind: str = "multinomial",
-    causes=("default", "prepay"),
-    ridge: float = 0.0,
-    batch_size: int = 250_000,
-    max_iter: int = 50,
-    tol: float = 1e-8,
-    collapse="auto",
-) -> HazardResults:
-    """:func:`creditsurv.model.fit_hazard` on Spark: the same model, likelihood and results.
+class _CachedSums:
+    """The Spark engine's :class:`~creditsurv.engines.DesignSums`.
 
     The design is evaluated once per partition and cached on the executors;
     each Newton evaluation runs one Spark job whose tasks return the
     partition's log-likelihood, score and information (packed upper
-    triangle), added on the driver in partition order. ``batch_size`` is not
-    used for the reads (Spark's Arrow batches, ``spark.sql.execution.arrow.maxRecordsPerBatch``,
-    bound a task's memory instead).
+    triangle), added on the driver in partition order, so the driver holds
+    only parameter-sized arrays.
 
-    ``data_fingerprint`` hashes the partitions' stream digests in order; it
-    is reproducible for the same data, spec and partitioning but is not the
+    ``fingerprint`` hashes the partitions' stream digests in order; it is
+    reproducible for the same data, spec and partitioning but is not the
     DuckDB engine's fingerprint.
+    """
+
+    def __init__(self, engine, blocks, first, fingerprint: str, codes, kind: str):
+        self.first, self.fingerprint = first, fingerprint
+        self._blocks, self._codes, self._kind = blocks, codes, kind
+        self._sc = engine.spark.sparkContext
+
+    def evaluate(self, beta, need_hess):
+        P = beta.size
+        upper = np.triu_indices(P)
+        bc = self._sc.broadcast(np.asarray(beta, dtype=np.float64))
+        try:
+            fn = functools.partial(_sums_partition, bc, self._codes, self._kind, need_hess)
+            results = sorted(_collect(self._blocks.mapPartitionsWithIndex(fn)), key=lambda r: r[0])
+        finally:
+            bc.destroy()
+        ll, g = 0.0, np.zeros(beta.shape)
+        H = np.zeros((P, P)) if need_hess else None
+        packed = np.zeros(len(upper[0])) if need_hess else None
+        for _i, ll_k, g_k, h_k in results:
+            ll += ll_k
+            g += g_k
+            if need_hess:
+                packed += h_k
+        if need_hess:
+            H[upper] = packed
+            H = symmetric(H)
+        return ll, g, H
+
+    def close(self) -> None:
+        self._blocks.unpersist()
+
+
+def _design_sums(engine, spec, sql, params, *, collapse, dropped, codes, kind):
+    """Evaluate the design per partition on the executors (cached) and take the first pass.
+
+    Spark's Arrow batches (``spark.sql.execution.arrow.maxRecordsPerBatch``)
+    bound a task's memory; the fit's ``batch_size`` is not used for the reads.
     """
     from pyspark import StorageLevel
 
-    causes, codes, dropped = check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol)
-    con = panel.con
-    if spec.learned is None:
-        spec = spec.learn(con, where_sql, params)
-    names = spec.columns
-    p = len(names)
-    collapse = resolve_collapse(spec, collapse)
-    sql = raw_design_sql(con, spec, where_sql, collapse)
+    p = len(spec.columns)
     try:
-        raw = con.frame(sql, list(params) if params else None)
+        raw = engine.con.frame(sql, list(params) if params else None)
         if not collapse:
             # Whole loans per partition, rows in (loan, month) order within each.
-            raw = raw.repartitionByRange(panel.partitions, "loan_id").sortWithinPartitions("loan_id", "month_idx")
+            raw = raw.repartitionByRange(engine.partitions, "loan_id").sortWithinPartitions("loan_id", "month_idx")
         schema = "X binary, y binary, w binary"
         with _quiet_pandas_notice():
             blocks = (
@@ -764,47 +802,19 @@ def fit_hazard(
             )
     except Exception as exc:  # noqa: BLE001
         raise DataError(f"cannot read the risk set for the fit: {_first_line(exc)}") from None
-    sc = panel.spark.sparkContext
     try:
         parts = sorted(_collect(blocks.mapPartitionsWithIndex(functools.partial(_first_pass_partition, p))), key=lambda r: r[0])
-        first = FirstPass(p)
-        for _i, S, xtx, is01, n, _d in parts:
-            first.S += S
-            first.xtx += xtx
-            first.is01 &= is01
-            first.n += n
-        digests = [
-            hashlib.sha256("|".join(part[5][k] for part in parts if part[4]).encode()).hexdigest() for k in range(3)
-        ]
-        P = len(codes) * p
-        upper = np.triu_indices(P)
-
-        def evaluate(beta, need_hess):
-            bc = sc.broadcast(np.asarray(beta, dtype=np.float64))
-            try:
-                fn = functools.partial(_sums_partition, bc, codes, kind, need_hess)
-                results = sorted(_collect(blocks.mapPartitionsWithIndex(fn)), key=lambda r: r[0])
-            finally:
-                bc.destroy()
-            ll, g = 0.0, np.zeros(beta.shape)
-            H = np.zeros((P, P)) if need_hess else None
-            packed = np.zeros(len(upper[0])) if need_hess else None
-            for _i, ll_k, g_k, h_k in results:
-                ll += ll_k
-                g += g_k
-                if need_hess:
-                    packed += h_k
-            if need_hess:
-                H[upper] = packed
-                H = symmetric(H)
-            return ll, g, H
-
-        return fit_from_sums(
-            evaluate, first, spec, kind=kind, causes=causes, codes=codes, ridge=ridge, max_iter=max_iter, tol=tol,
-            collapse=collapse, where_sql=where_sql, fingerprint=fit_fingerprint(first.n, names, digests),
-        )
-    finally:
+    except BaseException:
         blocks.unpersist()
+        raise
+    first = FirstPass(p)
+    for _i, S, xtx, is01, n, _d in parts:
+        first.S += S
+        first.xtx += xtx
+        first.is01 &= is01
+        first.n += n
+    digests = [hashlib.sha256("|".join(part[5][k] for part in parts if part[4]).encode()).hexdigest() for k in range(3)]
+    return _CachedSums(engine, blocks, first, fit_fingerprint(first.n, spec.columns, digests), codes, kind)
 
 
 def _collect(rdd):
@@ -830,25 +840,6 @@ def _error_classes(root):
     return out
 
 
-def hazard_model(cfg, panel: SparkPanel, temp_dir=None):
-    """The hazard source of a run on Spark, as ``pipeline._hazard_model``.
-
-    Fitted on the development window on Spark, or the saved ``model.path``,
-    or benchmark curves, or a table of hazards (these three do not read the panel).
-    """
-    from ..pipeline import _development_filter, _hazard_model
-
-    if cfg.model.source != "fitted" or cfg.model.path is not None:
-        return _hazard_model(cfg, panel, temp_dir)
-    where, params = _development_filter(cfg)
-    model = cfg.model
-    spec = feature_spec(model, cfg.collateral).learn(panel.con, where, params)
-    return fit_hazard(
-        panel, spec, where_sql=where, params=params, kind=model.kind, ridge=model.ridge,
-        batch_size=model.fit.batch_size, max_iter=model.fit.max_iter, tol=model.fit.tol,
-    )
-
-
 # --------------------------------------------------------------------------- projection and ECL per partition of loans
 
 
@@ -863,124 +854,12 @@ def _from_ipc(data: bytes) -> pa.Table:
     return pa.ipc.open_stream(data).read_all()
 
 
-def _ecl_partition(model, paths, kwargs, wanted, index, slices):
-    """Executor side: ECL of one partition's loans with the shared loss function."""
-    from ..loss import expected_credit_loss as ecl
-
-    for book in slices:
+def _run_partition(fn, wanted, index, slices):
+    """Executor side: ``fn`` on one partition's loans; the long tables it writes kept as Arrow IPC bytes."""
+    for part in slices:
         tables = {name: [] for name in wanted}
-        writers = {f"{name}_writer": tables[name].append for name in wanted}
-        result = ecl(book, model, paths, **kwargs, **{k: (lambda t, f=f: f(_ipc(t))) for k, f in writers.items()})
-        proj = result.projection
-        yield {
-            "index": index,
-            "n": len(book),
-            "loans": result.loans,
-            "projection_loans": proj.loans,
-            "term_structure": proj.term_structure,
-            "speeds": proj.speeds,
-            "tables": tables,
-        }
-
-
-def _term_sums(parts, names, seg_names, labels):
-    """Pooled sums of the segment term structure, rebuilt from each partition's table and added.
-
-    A partition's table holds ratios of its sums (``cumulative_pd_count`` = F_n / n
-    and so on), so multiplying back by ``n_loans`` or ``balance`` gives its sums.
-    Past a partition's last year its loans have matured: their sums stay at the
-    last year's values. ``Sp`` (survival at the start of the year) is S one year
-    earlier, and n or balance in the first year.
-    """
-    K, nb = len(names), len(labels)
-    G = max(len(seg_names), 1) * nb
-    years = max((int(t["year_ahead"].max()) for t in parts if len(t)), default=0)
-    ts = {key: np.zeros((K, G, years)) for key in ("n", "bal", "F_n", "F_b", "S_n", "S_b")}
-    seg_at = {s: i for i, s in enumerate(seg_names)}
-    band_at = {b: i for i, b in enumerate(labels)}
-    name_at = {s: i for i, s in enumerate(names)}
-    for t in parts:
-        if not len(t):
-            continue
-        ki = t["scenario"].map(name_at).to_numpy()
-        g = t["segment"].astype(str).map(seg_at).to_numpy() * nb + t["band"].map(band_at).to_numpy()
-        y = t["year_ahead"].to_numpy() - 1
-        n = t["n_loans"].to_numpy(dtype=float)
-        bal = t["balance"].to_numpy(dtype=float)
-        values = {
-            "n": n,
-            "bal": bal,
-            "F_n": t["cumulative_pd_count"].to_numpy() * n,
-            "F_b": np.where(bal > 0, t["cumulative_pd_balance"].to_numpy() * bal, 0.0),
-            "S_n": t["survival_count"].to_numpy() * n,
-            "S_b": np.where(bal > 0, t["survival_balance"].to_numpy() * bal, 0.0),
-        }
-        last = int(y.max())
-        part = {k: np.zeros((K, G, years)) for k in ts}
-        for k, v in values.items():
-            part[k][ki, g, y] = v
-            part[k][:, :, last + 1:] = part[k][:, :, last: last + 1]
-            ts[k] += part[k]
-    ts["Sp_n"] = np.concatenate([ts["n"][:, :, :1], ts["S_n"][:, :, :-1]], axis=2)
-    ts["Sp_b"] = np.concatenate([ts["bal"][:, :, :1], ts["S_b"][:, :, :-1]], axis=2)
-    return ts, years
-
-
-def _speed_sums(parts, names, seg_names, labels, weights):
-    """Pooled expected balances of the segment speeds, added over partitions; ``weighted`` recomputed."""
-    K, nb = len(names), len(labels)
-    G = max(len(seg_names), 1) * nb
-    max_age = max((int(t["loan_age"].max()) for t in parts if len(t)), default=0)
-    sp = {key: np.zeros((K, G, max_age + 1)) for key in ("dexp", "dflt", "pexp", "ppay")}
-    columns = {"dexp": "default_exposure", "dflt": "defaulted", "pexp": "prepay_exposure", "ppay": "prepaid"}
-    seg_at = {s: i for i, s in enumerate(seg_names)}
-    band_at = {b: i for i, b in enumerate(labels)}
-    for t in parts:
-        if not len(t):
-            continue
-        t = t[t["scenario"] != names[-1]]
-        ki = t["scenario"].map({s: i for i, s in enumerate(names)}).to_numpy()
-        g = t["segment"].astype(str).map(seg_at).to_numpy() * nb + t["band"].map(band_at).to_numpy()
-        age = t["loan_age"].to_numpy()
-        for key, col in columns.items():
-            np.add.at(sp[key], (ki, g, age), t[col].to_numpy(dtype=float))
-    for key in sp:
-        sp[key][K - 1] = sum(weights[s] * sp[key][ki] for ki, s in enumerate(names[:-1]))
-    return sp, max_age
-
-
-def combine_partitions(bundles, scenarios, weights, as_of_idx, band_edges=()):
-    """One :class:`~creditsurv.loss.EclResult` from the partitions' results, in loan order.
-
-    Loan-level tables are concatenated (each partition is a contiguous range of
-    loan ids); the segment summary is recomputed from them with the shared
-    :func:`creditsurv.loss.segment_summary`; the segment term structure and
-    speeds are rebuilt from the pooled sums of every partition and finished
-    with the projection stage's own table builders.
-    """
-    from ..forecast import WEIGHTED, ProjectionResult
-    from ..forecast._projection import (
-        score_band_labels,
-        speeds_frames,
-        term_structure_frame,
-    )
-    from ..loss import EclResult, segment_summary
-
-    names = (*scenarios, WEIGHTED)
-    labels = score_band_labels(tuple(band_edges))
-    loans = pd.concat([b["loans"] for b in bundles], ignore_index=True)
-    proj_loans = pd.concat([b["projection_loans"] for b in bundles], ignore_index=True)
-    seg_names = sorted({str(s) for s in proj_loans["segment"]})
-    ts, years = _term_sums([b["term_structure"] for b in bundles], names, seg_names, labels)
-    sp, max_age = _speed_sums([b["speeds"] for b in bundles], names, seg_names, labels, weights)
-    term_structure = term_structure_frame(ts, names, seg_names, labels, years)
-    speeds, multiples = speeds_frames(sp, names, seg_names, labels, max_age)
-    projection = ProjectionResult(
-        loans=proj_loans, term_structure=term_structure, speeds=speeds, speed_multiples=multiples,
-        scenarios=tuple(scenarios), weights=dict(weights), as_of_idx=int(as_of_idx),
-    )
-    return EclResult(loans=loans, segments=segment_summary(loans), projection=projection,
-                     scenarios=tuple(scenarios), weights=dict(weights))
+        writers = {name: (lambda t, out=tables[name]: out.append(_ipc(t))) for name in wanted}
+        yield {"index": index, "n": len(part), "result": fn(part, writers, None), "tables": tables}
 
 
 def _split_book(book: pd.DataFrame, partitions: int) -> list[pd.DataFrame]:
@@ -991,76 +870,34 @@ def _split_book(book: pd.DataFrame, partitions: int) -> list[pd.DataFrame]:
     return [frame.iloc[a:b] for a, b in zip(bounds, bounds[1:]) if b > a]
 
 
-def expected_credit_loss(
-    loans: pd.DataFrame,
-    source,
-    paths,
-    *,
-    spark=None,
-    partitions: int | None = None,
-    schedule_writer=None,
-    curve_writer=None,
-    term_writer=None,
-    progress=None,
-    **kwargs,
-):
-    """:func:`creditsurv.loss.expected_credit_loss` run per partition of loans on Spark.
+def _map_book(engine, fn, book, writers, progress=None) -> list:
+    """Run ``fn`` per contiguous range of loans on the executors; replay the long tables in loan order.
 
-    Parameters
-    ----------
-    loans, source, paths, **kwargs
-        As for :func:`creditsurv.loss.expected_credit_loss` (``as_of_idx``,
-        ``weights``, ``loss``, ``staging``, ...).
-    spark : SparkSession, optional
-        Default the active session.
-    partitions : int, optional
-        Loan partitions (default Spark's default parallelism); each is a
-        contiguous range of loan ids.
-    schedule_writer, curve_writer, term_writer : callable(pyarrow.Table), optional
-        As for the loss function. The long tables are computed on the
-        executors and pass through the driver one partition at a time, in
-        loan order, so the files are the same as the DuckDB engine's.
-    progress : callable(done, total), optional
-        Called after each partition with the loans done so far.
-
-    Returns
-    -------
-    EclResult
-        Equal to the DuckDB engine's: per-loan values do not depend on the
-        partitioning and the segment tables are combined from pooled sums.
+    The long tables pass through the driver one partition at a time, in loan
+    order, so the files are the same as the DuckDB engine's. ``progress`` is
+    called after each partition with the loans done so far.
     """
     from pyspark import StorageLevel
-    from pyspark.sql import SparkSession
 
-    from ..forecast._projection import scenario_weights
-    from ..loss import expected_credit_loss as ecl
-
-    spark = spark or SparkSession.getActiveSession()
-    if spark is None:
-        raise ConfigError("spark: no active Spark session; open the panel with engine: spark first")
-    sc = spark.sparkContext
-    writers = {"schedule": schedule_writer, "curve": curve_writer, "term": term_writer}
-    wanted = tuple(k for k, v in writers.items() if v is not None)
-    if len(loans) == 0:
-        return ecl(loans, source, paths, progress=progress, **{f"{k}_writer": v for k, v in writers.items()}, **kwargs)
-    slices = _split_book(loans, partitions or sc.defaultParallelism)
-    fn = functools.partial(_ecl_partition, source, dict(paths), kwargs, wanted)
-    rdd = sc.parallelize(slices, len(slices)).mapPartitionsWithIndex(fn).persist(StorageLevel.MEMORY_AND_DISK)
-    bundles = []
+    if len(book) == 0:
+        return [fn(book, writers, progress)]
+    sc = engine.spark.sparkContext
+    slices = _split_book(book, engine.partitions)
+    wanted = tuple(writers)
+    task = functools.partial(_run_partition, fn, wanted)
+    rdd = sc.parallelize(slices, len(slices)).mapPartitionsWithIndex(task).persist(StorageLevel.MEMORY_AND_DISK)
+    results = []
     try:
         _collect(rdd.map(lambda b: b["n"]))  # every partition in parallel; results stay cached on the executors
-        done, total = 0, len(loans)
+        done, total = 0, len(book)
         for bundle in rdd.toLocalIterator():
             for name in wanted:
                 for data in bundle["tables"][name]:
                     writers[name](_from_ipc(data))
-            bundle["tables"] = None
-            bundles.append(bundle)
+            results.append(bundle["result"])
             done += bundle["n"]
             if progress is not None:
                 progress(done, total)
     finally:
         rdd.unpersist()
-    scenarios = tuple(paths)
-    weights = scenario_weights(scenarios, kwargs.get("weights"))
-    return combine_partitions(bundles, scenarios, weights, kwargs["as_of_idx"], kwargs.get("band_edges", ()))
+    return results

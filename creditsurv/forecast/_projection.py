@@ -39,6 +39,7 @@ segment aggregates stay in memory.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
@@ -54,6 +55,7 @@ from ..model import equivalent_psa, equivalent_sda, mdr_to_cdr, smm_to_cpr
 from ..months import month_ranges
 
 __all__ = [
+    "Curves",
     "scheduled_balance",
     "project_loans",
     "origination_pd",
@@ -302,15 +304,47 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
     return out, mask, bal_start, bal_end, cal
 
 
-def _curves(hd, hp):
-    """S(u-1), S(u), F_D(u), F_P(u), marginal PD (n, H) from hazards."""
-    s = np.cumprod(1.0 - hd - hp, axis=1)
-    s_prev = np.empty_like(s)
-    s_prev[:, 0] = 1.0
-    s_prev[:, 1:] = s[:, :-1]
-    marg_d = s_prev * hd
-    marg_p = s_prev * hp
-    return s_prev, s, np.cumsum(marg_d, axis=1), np.cumsum(marg_p, axis=1), marg_d, marg_p
+@dataclass(frozen=True)
+class Curves:
+    """Survival and cumulative incidence of a chunk of loans, each an array (loans, months ahead).
+
+    Conditional on survival to the reporting month (S(0) = 1), month ``u`` ahead:
+    ``survival`` S(u) = prod_{v<=u} (1 - hD(v) - hP(v)); ``survival_prev`` S(u-1);
+    ``marginal_default`` S(u-1) hD(u) (the marginal PD) and ``marginal_prepay``
+    S(u-1) hP(u); ``cum_default`` F_D(u) and ``cum_prepay`` F_P(u), their running sums
+    (the Aalen-Johansen form in discrete time).
+    """
+
+    survival_prev: np.ndarray
+    survival: np.ndarray
+    cum_default: np.ndarray
+    cum_prepay: np.ndarray
+    marginal_default: np.ndarray
+    marginal_prepay: np.ndarray
+
+    @classmethod
+    def from_hazards(cls, hd: np.ndarray, hp: np.ndarray) -> Curves:
+        """The curves of monthly default and prepayment hazards ``hd``, ``hp`` (loans, months ahead)."""
+        s = np.cumprod(1.0 - hd - hp, axis=1)
+        s_prev = np.empty_like(s)
+        s_prev[:, 0] = 1.0
+        s_prev[:, 1:] = s[:, :-1]
+        marg_d = s_prev * hd
+        marg_p = s_prev * hp
+        return cls(s_prev, s, np.cumsum(marg_d, axis=1), np.cumsum(marg_p, axis=1), marg_d, marg_p)
+
+    @classmethod
+    def weighted(cls, curves: Mapping[str, Curves], weights: Mapping[str, float]) -> Curves:
+        """The probability-weighted curves sum_s w_s curve_s (linear in probabilities, IFRS 9 5.5.17)."""
+        names = [f.name for f in dataclasses.fields(cls)]
+        return cls(**{f: sum(weights[s] * getattr(curves[s], f) for s in weights) for f in names})
+
+    def hazards(self) -> tuple[np.ndarray, np.ndarray]:
+        """The hazards these curves imply: marginal / S(u-1), 0 where S(u-1) is 0."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            hd = np.where(self.survival_prev > 0, self.marginal_default / self.survival_prev, 0.0)
+            hp = np.where(self.survival_prev > 0, self.marginal_prepay / self.survival_prev, 0.0)
+        return hd, hp
 
 
 # --------------------------------------------------------------------------- results
@@ -369,6 +403,8 @@ class ProjectionResult:
     speed_multiples : DataFrame
         By ``segment``, ``band``, ``scenario``: ``psa`` and ``sda``, the equivalent
         multiples (weighted least squares in CPR / CDR units, exposure weights).
+    band_edges : tuple of float
+        The score band edges the ``band`` labels come from.
     """
 
     loans: pd.DataFrame
@@ -378,6 +414,7 @@ class ProjectionResult:
     scenarios: tuple[str, ...]
     weights: dict[str, float]
     as_of_idx: int
+    band_edges: tuple = ()
 
 
 class TableWriter:
@@ -630,16 +667,9 @@ def project_loans(
             book, sl, spec, source, lookups, hpi_names, market_rate_series, hold=False
         )
         n, H = mask.shape
-        curves = {}
-        for s in scenarios:
-            curves[s] = _curves(*haz[s])
-        # probability weighting, linear in probabilities (IFRS 9 5.5.17)
-        wc = [sum(w[s] * curves[s][j] for s in scenarios) for j in range(6)]
-        curves[WEIGHTED] = tuple(wc)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            hd_w = np.where(wc[0] > 0, wc[4] / wc[0], 0.0)
-            hp_w = np.where(wc[0] > 0, wc[5] / wc[0], 0.0)
-        haz[WEIGHTED] = (hd_w, hp_w)
+        curves = {s: Curves.from_hazards(*haz[s]) for s in scenarios}
+        curves[WEIGHTED] = Curves.weighted(curves, {s: w[s] for s in scenarios})
+        haz[WEIGHTED] = curves[WEIGHTED].hazards()
 
         i12 = min(12, H) - 1
         yidx = _year_index(H, years)
@@ -651,7 +681,10 @@ def project_loans(
         ages = book.age[sl][:, None] + np.arange(1, H + 1)[None, :]
         key = (grp[:, None] * (max_age + 1) + ages)[mask]
         for ki, s in enumerate(names):
-            s_prev, surv, F_d, F_p, marg_d, marg_p = curves[s]
+            c = curves[s]
+            s_prev, surv, F_d, F_p, marg_d, marg_p = (
+                c.survival_prev, c.survival, c.cum_default, c.cum_prepay, c.marginal_default, c.marginal_prepay
+            )
             summary[f"pd_12m_{s}"][sl] = F_d[:, i12]
             summary[f"pd_lifetime_{s}"][sl] = F_d[:, -1]
             summary[f"prepay_lifetime_{s}"][sl] = F_p[:, -1]
@@ -685,9 +718,11 @@ def project_loans(
                     balance_start=bal_start, balance_end=bal_end, note_rate=book.rate[sl],
                     scenarios=scenarios, weights=w,
                     h_default={s: haz[s][0] for s in names}, h_prepay={s: haz[s][1] for s in names},
-                    survival_prev={s: curves[s][0] for s in names}, survival={s: curves[s][1] for s in names},
-                    cum_default={s: curves[s][2] for s in names}, cum_prepay={s: curves[s][3] for s in names},
-                    marginal_pd={s: curves[s][4] for s in names},
+                    survival_prev={s: curves[s].survival_prev for s in names},
+                    survival={s: curves[s].survival for s in names},
+                    cum_default={s: curves[s].cum_default for s in names},
+                    cum_prepay={s: curves[s].cum_prepay for s in names},
+                    marginal_pd={s: curves[s].marginal_default for s in names},
                 )
             )
 
@@ -711,7 +746,7 @@ def project_loans(
     speeds, multiples = speeds_frames(sp, names, seg_names, labels, max_age)
     return ProjectionResult(
         loans=loans_out, term_structure=term_structure, speeds=speeds, speed_multiples=multiples,
-        scenarios=scenarios, weights=w, as_of_idx=int(as_of_idx),
+        scenarios=scenarios, weights=w, as_of_idx=int(as_of_idx), band_edges=tuple(band_edges),
     )
 
 
@@ -741,25 +776,25 @@ def _curve_table(loan_id, names, curves, haz, mask, ages) -> pa.Table:
             "loan_age": np.broadcast_to(ages.astype(np.int32)[:, None, :], (n, K, H))[m3],
             "h_default": stack(lambda s: haz[s][0]),
             "h_prepay": stack(lambda s: haz[s][1]),
-            "survival": stack(lambda s: curves[s][1]),
-            "marginal_pd": stack(lambda s: curves[s][4]),
-            "cumulative_pd": stack(lambda s: curves[s][2]),
-            "cumulative_prepay": stack(lambda s: curves[s][3]),
+            "survival": stack(lambda s: curves[s].survival),
+            "marginal_pd": stack(lambda s: curves[s].marginal_default),
+            "cumulative_pd": stack(lambda s: curves[s].cum_default),
+            "cumulative_prepay": stack(lambda s: curves[s].cum_prepay),
         }
     )
 
 
 def _term_table(loan_id, names, curves, remaining) -> pa.Table:
     n = len(loan_id)
-    H = curves[names[0]][0].shape[1]
+    H = curves[names[0]].survival_prev.shape[1]
     years = int(math.ceil(H / 12))
     yidx = _year_index(H, years)
     ny = np.ceil(remaining / 12).astype(np.int64)
     ymask = np.arange(1, years + 1)[None, :] <= ny[:, None]
     cols = {"cumulative_pd": [], "survival": [], "conditional_pd": []}
     for s in names:
-        F = curves[s][2][:, yidx]
-        S = curves[s][1][:, yidx]
+        F = curves[s].cum_default[:, yidx]
+        S = curves[s].survival[:, yidx]
         F_prev = np.concatenate([np.zeros((n, 1)), F[:, :-1]], axis=1)
         S_prev = np.concatenate([np.ones((n, 1)), S[:, :-1]], axis=1)
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -914,7 +949,8 @@ def origination_pd(
     for start in range(0, n_all, chunk_size):
         sl = slice(start, min(start + chunk_size, n_all))
         haz, *_ = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, market_rate_series, hold=True)
-        _, s, f_d, *_ = _curves(*haz["origination"])
+        curves = Curves.from_hazards(*haz["origination"])
+        s, f_d = curves.survival, curves.cum_default
         a = np.clip(ages[sl], 0, f_d.shape[1])
         rows = np.arange(len(a))
         f_a = np.where(a > 0, f_d[rows, np.maximum(a - 1, 0)], 0.0)

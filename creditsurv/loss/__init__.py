@@ -1,5 +1,6 @@
 """Stage 5, the loss: EAD, LGD, discounting, stage allocation and the ECL of every loan."""
 
+from ._combine import combine_partitions, expected_credit_loss_by_partition
 from ._ecl import (
     EclResult,
     allocate_stages,
@@ -9,4 +10,7 @@ from ._ecl import (
     segment_summary,
 )
 
-__all__ = ["EclResult", "allocate_stages", "collateral_lgd", "discount_factors", "expected_credit_loss", "segment_summary"]
+__all__ = [
+    "EclResult", "allocate_stages", "collateral_lgd", "combine_partitions", "discount_factors",
+    "expected_credit_loss", "expected_credit_loss_by_partition", "segment_summary",
+]  # fmt: skip

@@ -36,8 +36,6 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-import shutil
-import tempfile
 import threading
 import warnings
 from dataclasses import dataclass, field
@@ -259,48 +257,6 @@ def load_model(path) -> HazardResults:
 # --------------------------------------------------------------------------- design store
 
 
-class _DesignStore:
-    """The evaluated design, outcomes and weights in temporary files, read back in batches."""
-
-    def __init__(self, p: int, temp_dir=None):
-        self.p = p
-        self.dir = Path(tempfile.mkdtemp(prefix="creditsurv-fit-", dir=temp_dir))
-        self._files = {k: open(self.dir / f"{k}.bin", "wb") for k in ("X", "y", "w")}
-        self.n = 0
-
-    def append(self, X: np.ndarray, y: np.ndarray, w: np.ndarray) -> None:
-        self._files["X"].write(np.ascontiguousarray(X, dtype=np.float64).tobytes())
-        self._files["y"].write(np.ascontiguousarray(y, dtype=np.int8).tobytes())
-        self._files["w"].write(np.ascontiguousarray(w, dtype=np.float64).tobytes())
-        self.n += X.shape[0]
-
-    def finish(self) -> None:
-        for f in self._files.values():
-            f.close()
-
-    def batches(self, size: int):
-        """The stored rows in batches of ``size``, read into fresh arrays.
-
-        Plain reads rather than a memory map: a map's pages count as the
-        process's resident memory once touched, so memory would grow with the
-        number of loan-months; here it is bounded by one batch.
-        """
-        p = self.p
-        with open(self.dir / "X.bin", "rb") as fx, open(self.dir / "y.bin", "rb") as fy, open(self.dir / "w.bin", "rb") as fw:
-            for start in range(0, self.n, size):
-                m = min(size, self.n - start)
-                X = np.fromfile(fx, dtype=np.float64, count=m * p).reshape(m, p)
-                y = np.fromfile(fy, dtype=np.int8, count=m)
-                w = np.fromfile(fw, dtype=np.float64, count=m)
-                yield X, y, w
-
-    def close(self) -> None:
-        for f in self._files.values():
-            if not f.closed:
-                f.close()
-        shutil.rmtree(self.dir, ignore_errors=True)
-
-
 # --------------------------------------------------------------------------- the likelihood
 
 
@@ -382,23 +338,6 @@ def symmetric(H):
     return np.triu(H) + np.triu(H, 1).T
 
 
-def _evaluate(store, beta, codes, kind, batch_size, need_hess):
-    """Log-likelihood, score (K, p) and observed information (K*p, K*p) at ``beta`` (K, p)."""
-    K, p = beta.shape
-    ll = 0.0
-    g = np.zeros((K, p))
-    H = np.zeros((K * p, K * p)) if need_hess else None
-    for X, y, w in store.batches(batch_size):
-        ll_b, g_b, H_b = batch_sums(X, y, w, beta, codes, kind, need_hess)
-        ll += ll_b
-        g += g_b
-        if need_hess:
-            H += H_b
-    if need_hess:
-        H = symmetric(H)
-    return ll, g, H
-
-
 # --------------------------------------------------------------------------- checks
 
 
@@ -463,7 +402,7 @@ def _is_discrete(spec: FeatureSpec) -> bool:
 
 
 def fit_hazard(
-    con,
+    engine,
     spec: FeatureSpec,
     *,
     where_sql: str = "TRUE",
@@ -481,9 +420,10 @@ def fit_hazard(
 
     Parameters
     ----------
-    con : duckdb.DuckDBPyConnection
-        Connection holding the ``loan_months``, ``panel``, ``loans`` and
-        ``macro`` views.
+    engine : creditsurv.engines.Engine
+        Holds the ``loan_months``, ``panel``, ``loans`` and ``macro`` views;
+        reads the raw rows and returns the likelihood sums
+        (:meth:`~creditsurv.engines.Engine.design_sums`).
     spec : FeatureSpec
         The feature spec; learned from the same rows first if not learned yet.
     where_sql, params
@@ -504,7 +444,7 @@ def fit_hazard(
         Collapse to covariate-pattern counts (only possible when every term
         is discrete; "auto" does so when possible).
     temp_dir : path, optional
-        Folder for the temporary design file (default: the system temp folder).
+        Folder for the engine's temporary design data (default: the system temp folder).
 
     Returns
     -------
@@ -516,34 +456,20 @@ def fit_hazard(
     """
     causes, codes, dropped = check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol)
     if spec.learned is None:
-        spec = spec.learn(con, where_sql, params)
-    p = len(spec.columns)
+        spec = spec.learn(engine.con, where_sql, params)
     collapse = resolve_collapse(spec, collapse)
-    sql = raw_design_sql(con, spec, where_sql, collapse)
-
-    store = _DesignStore(p, temp_dir)
+    sql = raw_design_sql(engine.con, spec, where_sql, collapse)
+    sums = engine.design_sums(
+        spec, sql, list(params), collapse=collapse, dropped=dropped, codes=codes, kind=kind,
+        batch_size=batch_size, temp_dir=temp_dir,
+    )
     try:
-        first = FirstPass(p)
-        rel = con.sql(sql, params=list(params)) if params else con.sql(sql)
-        with rel.to_arrow_reader(batch_size=batch_size) as reader:
-            for batch in reader:
-                raw = {nm: batch.column(i).to_numpy(zero_copy_only=False) for i, nm in enumerate(batch.schema.names)}
-                design = batch_design(raw, spec, collapse, dropped)
-                if design is None:
-                    continue
-                store.append(*design)
-                first.add(*design)
-        store.finish()
-
-        def evaluate(b, need_hess):
-            return _evaluate(store, b, codes, kind, batch_size, need_hess)
-
         return fit_from_sums(
-            evaluate, first, spec, kind=kind, causes=causes, codes=codes, ridge=ridge, max_iter=max_iter, tol=tol,
-            collapse=collapse, where_sql=where_sql, fingerprint=first.fingerprint(spec.columns),
+            sums.evaluate, sums.first, spec, kind=kind, causes=causes, codes=codes, ridge=ridge, max_iter=max_iter,
+            tol=tol, collapse=collapse, where_sql=where_sql, fingerprint=sums.fingerprint,
         )
     finally:
-        store.close()
+        sums.close()
 
 
 # --------------------------------------------------------------------------- steps of a fit (shared by the engines)
@@ -785,18 +711,18 @@ def _convergence_text(what: str, log: list) -> str:
     return "\n".join(lines)
 
 
-def fit_model(con, model, collateral=None, *, where_sql: str = "TRUE", params=(), temp_dir=None) -> HazardResults:
+def fit_model(engine, model, collateral=None, *, where_sql: str = "TRUE", params=(), temp_dir=None) -> HazardResults:
     """Fit the model a config describes: ``model`` is the config's ``ModelSpec``.
 
     Builds the feature spec from ``model`` and ``collateral``, learns it on the
     rows ``where_sql`` selects and fits with ``model.kind``, ``model.ridge``
-    and ``model.fit`` (batch size, iterations, tolerance).
+    and ``model.fit`` (batch size, iterations, tolerance) on ``engine``.
     """
     from ._features import feature_spec
 
-    spec = feature_spec(model, collateral).learn(con, where_sql, params)
+    spec = feature_spec(model, collateral).learn(engine.con, where_sql, params)
     return fit_hazard(
-        con,
+        engine,
         spec,
         where_sql=where_sql,
         params=params,

@@ -13,10 +13,10 @@ from ._folder import (
     sha256_file,
     write_table,
 )
-from ._movement import WALK_STEPS, MovementResult, compare_run_folders, movement
+from ._movement import WALK_STEPS, MovementResult, check_walk_reconciles, compare_run_folders, movement
 
 __all__ = [
-    "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "WALK_STEPS", "base_manifest",
+    "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "WALK_STEPS", "base_manifest", "check_walk_reconciles",
     "compare_outputs", "compare_run_folders", "describe_inputs", "movement", "package_versions",
     "read_manifest", "run_name", "sha256_file", "write_table",
 ]  # fmt: skip

@@ -48,7 +48,7 @@ import pandas as pd
 from ..errors import RunError
 from ._folder import MANIFEST
 
-__all__ = ["MovementResult", "movement", "compare_run_folders"]
+__all__ = ["MovementResult", "check_walk_reconciles", "compare_run_folders", "movement"]
 
 LOAN_TABLE = "loan_ecl.parquet"
 STAGES = (1, 2, 3)
@@ -295,6 +295,22 @@ def _pd_change(seg_m, pd_a, ead_a, pd_b, ead_b, seg_a_book, a_book, seg_b_book, 
     return out.reset_index()
 
 
+def check_walk_reconciles(steps, total_a: float, total_b: float) -> None:
+    """Raise ``RunError`` unless the walk's steps add up to the move from ``total_a`` to ``total_b``.
+
+    The tolerance is :data:`RECONCILE_RTOL` of the larger total. A walk built by
+    :func:`movement` always passes; failing here is a bug, not a data problem.
+    """
+    steps = np.asarray(steps, dtype=float)
+    gap = float(steps.sum()) - (total_b - total_a)
+    scale = max(abs(total_a), abs(total_b))
+    if not abs(gap) <= RECONCILE_RTOL * scale:
+        raise RunError(
+            f"the ECL walk does not reconcile: its steps sum to {steps.sum():.10g} but the totals move by "
+            f"{total_b - total_a:.10g} (gap {gap:.3g}); this is a bug in creditsurv, please report it"
+        )
+
+
 def movement(
     loans_a: pd.DataFrame,
     loans_b: pd.DataFrame,
@@ -429,13 +445,7 @@ def _movement(loans_a, loans_b, weights_a, weights_b, segment_column, labels) ->
     steps = walk["ecl_change"].to_numpy()[1:-1]
     walk["ecl_balance"] = np.concatenate([[total_a], total_a + np.cumsum(steps), [total_b]])
 
-    gap = float(steps.sum()) - (total_b - total_a)
-    scale = max(abs(total_a), abs(total_b))
-    if not abs(gap) <= RECONCILE_RTOL * scale:
-        raise RunError(
-            f"the ECL walk does not reconcile: its steps sum to {steps.sum():.10g} but the totals move by "
-            f"{total_b - total_a:.10g} (gap {gap:.3g}); this is a bug in creditsurv, please report it"
-        )
+    check_walk_reconciles(steps, total_a, total_b)
 
     # Stage migration.
     labels_from = [*(str(s) for s in STAGES), "new"]

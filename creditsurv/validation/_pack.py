@@ -1,4 +1,4 @@
-"""The validation pack: reads the labelled panel, projects with the model, runs the statistics.
+"""The validation pack: reads the labelled panel through an engine, projects with the model, runs the statistics.
 
 This is the one place where validation reads the labelled panel
 (``loan_outcomes``, ``loan_months``, ``loans``, ``macro``) and asks the
@@ -31,15 +31,6 @@ from ._statistics import (
 )
 
 __all__ = ["PACK_COLUMNS", "ValidationPack", "input_stability", "validation_pack"]
-
-# ===========================================================================
-# The validation pack: reads the panel and projects with the model
-# ===========================================================================
-#
-# Everything above is pure. The functions below are the one place where
-# validation reads the labelled panel (``loan_outcomes``, ``loan_months``,
-# ``loans``, ``macro``) and asks the projection stage for model curves; they
-# then hand plain arrays to the statistics above.
 
 PACK_AGE_BAND_EDGES = (12, 24, 36, 60)
 """Age bands of ``backtest_by_age_band`` (see :func:`age_band`)."""
@@ -137,30 +128,27 @@ alive AS (
 )"""
 
 
-def _sql(panel, sql: str, params: dict | list | None = None) -> pd.DataFrame:
-    import duckdb
-
+def _sql(engine, sql: str, params: dict | list | None = None) -> pd.DataFrame:
     try:
-        return panel.con.execute(sql, params or {}).df()
-    except duckdb.Error as exc:
-        first = str(exc).strip().splitlines()[0]
-        raise DataError(f"validation query failed: {first}") from None
+        return engine.frame(sql, params)
+    except DataError as exc:
+        raise DataError(f"validation {exc}") from None
 
 
-def _loan_columns(panel, drop=("age", "balance", "segment")) -> str:
+def _loan_columns(engine, drop=("age", "balance", "segment")) -> str:
     from ..sql import quote_ident
 
-    return ", ".join(f"l.{quote_ident(c)}" for c in panel.columns("loans") if c not in drop)
+    return ", ".join(f"l.{quote_ident(c)}" for c in engine.columns("loans") if c not in drop)
 
 
-def _realised_path(panel, as_of_idx: int, until_idx: int) -> pd.DataFrame:
+def _realised_path(engine, as_of_idx: int, until_idx: int) -> pd.DataFrame:
     """The macro history up to ``as_of_idx``, held at its last values up to ``until_idx``."""
     from ..forecast import extend_path
 
-    if not _has_view(panel, "macro"):
+    if not _has_view(engine, "macro"):
         return pd.DataFrame(index=pd.RangeIndex(0, until_idx + 1, name="month_idx"))
-    history = _sql(panel, "SELECT * EXCLUDE (month) FROM macro WHERE month_idx <= $as_of ORDER BY month_idx",
-                   {"as_of": int(as_of_idx)}).set_index("month_idx")
+    history = engine.macro_history()
+    history = history.loc[history.index <= int(as_of_idx)]
     if len(history) < 2:
         raise DataError(f"the macro history has {len(history)} month(s) up to the reporting month; need at least 2")
     first = int(history.index.min())
@@ -170,13 +158,8 @@ def _realised_path(panel, as_of_idx: int, until_idx: int) -> pd.DataFrame:
     )
 
 
-def _has_view(panel, name: str) -> bool:
-    rows = panel.con.execute(
-        "SELECT 1 FROM duckdb_views() WHERE view_name = $n\n"
-        "UNION ALL SELECT 1 FROM duckdb_tables() WHERE table_name = $n",
-        {"n": name},
-    ).fetchall()
-    return bool(rows)
+def _has_view(engine, name: str) -> bool:
+    return engine.has_table(name)
 
 
 def _projection_options(cfg) -> dict:
@@ -206,11 +189,11 @@ def _json_safe(value):
 # --------------------------------------------------------------------------- the development cohort
 
 
-def _cohort(cfg, panel, month: int, notes: list) -> pd.DataFrame:
+def _cohort(cfg, engine, month: int, notes: list) -> pd.DataFrame:
     params = {"month": int(month), "paid_off": float(cfg.events.paid_off_balance)}
     frame = _sql(
-        panel,
-        f"WITH {_ALIVE_AT}\nSELECT {_loan_columns(panel)}, a.age, a.balance, 'all' AS segment\n"
+        engine,
+        f"WITH {_ALIVE_AT}\nSELECT {_loan_columns(engine)}, a.age, a.balance, 'all' AS segment\n"
         "FROM alive AS a JOIN loans AS l USING (loan_id)\nORDER BY loan_id",
         params,
     ).sort_values("loan_id", kind="stable", ignore_index=True)  # the order project_loans uses
@@ -280,12 +263,12 @@ def _month_labels(idx) -> np.ndarray:
     return np.asarray([_fmt_month(m) for m in uniq], dtype=object)[inv.reshape(-1)]
 
 
-def _backtest_tables(cfg, panel, cohort, hd_grid, hp_grid, month: int, notes: list) -> tuple[dict, dict]:
+def _backtest_tables(cfg, engine, cohort, hd_grid, hp_grid, month: int, notes: list) -> tuple[dict, dict]:
     oot = cfg.windows.out_of_time
     params = {"month": int(month), "paid_off": float(cfg.events.paid_off_balance),
               "start": int(oot.start), "end": int(oot.end)}  # fmt: skip
     rows = _sql(
-        panel,
+        engine,
         f"WITH {_ALIVE_AT}\n"
         "SELECT lm.loan_id, lm.month_idx, lm.age, lm.outcome, l.origination_idx\n"
         "FROM loan_months AS lm JOIN alive USING (loan_id) JOIN loans AS l USING (loan_id)\n"
@@ -339,10 +322,10 @@ def _backtest_tables(cfg, panel, cohort, hd_grid, hp_grid, month: int, notes: li
     return tables, summary
 
 
-def _cohort_outcomes(cfg, panel, month: int) -> pd.DataFrame:
+def _cohort_outcomes(cfg, engine, month: int) -> pd.DataFrame:
     params = {"month": int(month), "paid_off": float(cfg.events.paid_off_balance)}
     return _sql(
-        panel,
+        engine,
         f"WITH {_ALIVE_AT}\n"
         "SELECT o.loan_id, CASE WHEN o.event = 'censored' THEN NULL ELSE o.event END AS event,\n"
         "       o.event_month_idx, o.last_month_idx, o.censor_reason\n"
@@ -354,7 +337,7 @@ def _cohort_outcomes(cfg, panel, month: int) -> pd.DataFrame:
 # --------------------------------------------------------------------------- stability
 
 
-def _read_inputs(panel, model, start: int, end: int, max_rows: int):
+def _read_inputs(engine, model, start: int, end: int, max_rows: int):
     """Raw model inputs of the risk-set rows of months ``start..end``, hash-sampled to ``max_rows``.
 
     Returns the frame, the sampling step ``k`` (every k-th row by a hash of
@@ -368,37 +351,34 @@ def _read_inputs(panel, model, start: int, end: int, max_rows: int):
     skipped = [n for n in names if n not in readable]
     if not readable:
         return pd.DataFrame(), 1, skipped
-    n_rows = _sql(panel, "SELECT count(*) AS n FROM loan_months WHERE month_idx BETWEEN $s AND $e",
+    n_rows = _sql(engine, "SELECT count(*) AS n FROM loan_months WHERE month_idx BETWEEN $s AND $e",
                   {"s": int(start), "e": int(end)})["n"].iloc[0]
     k = max(1, int(np.ceil(int(n_rows) / max_rows)))
     where = "month_idx BETWEEN ? AND ? AND hash(loan_id, month_idx) % ? = 0"
     params = [int(start), int(end), k]
     if hasattr(model, "spec"):
-        body = model.spec.raw_query(panel.con, where, order=False)
+        body = model.spec.raw_query(engine.con, where, order=False)
     else:
         body = f"SELECT loan_id, month_idx, age FROM loan_months WHERE {where}"
-    import duckdb
-
     from ..sql import quote_ident
 
     cols = ", ".join(quote_ident(n) for n in readable)
     try:
-        frame = panel.con.execute(f"WITH data AS (\n{body}\n)\nSELECT {cols} FROM data", params).df()
-    except duckdb.Error as exc:
-        first = str(exc).strip().splitlines()[0]
-        raise DataError(f"cannot read the model inputs of {_fmt_month(start)}..{_fmt_month(end)}: {first}") from None
+        frame = engine.frame(f"WITH data AS (\n{body}\n)\nSELECT {cols} FROM data", params)
+    except DataError as exc:
+        raise DataError(f"cannot read the model inputs of {_fmt_month(start)}..{_fmt_month(end)}: {exc}") from None
     return frame, k, skipped
 
 
 def input_stability(
-    panel, model, development, current, *, bins: int = 10, max_rows: int = PACK_SAMPLE_ROWS
+    engine, model, development, current, *, bins: int = 10, max_rows: int = PACK_SAMPLE_ROWS
 ) -> pd.DataFrame:
     """PSI of every raw model input: the risk-set rows of one window against another.
 
     Parameters
     ----------
-    panel : Panel
-        An open panel on which ``label_events`` has run.
+    engine : creditsurv.engines.Engine
+        Inputs opened by an engine, on which ``label_events`` has run.
     model : hazard source
         A fitted :class:`~creditsurv.model.HazardResults` (inputs read with
         its feature spec's ``raw_query``), or any source with
@@ -419,13 +399,13 @@ def input_stability(
         ``variable``, ``psi``, ``flag`` (:func:`psi_flag`), ``n_development``
         and ``n_current`` (rows read).
     """
-    table, _ = _input_stability(panel, model, development, current, bins=bins, max_rows=max_rows)
+    table, _ = _input_stability(engine, model, development, current, bins=bins, max_rows=max_rows)
     return table
 
 
-def _input_stability(panel, model, development, current, *, bins, max_rows):
-    dev, k_dev, skipped = _read_inputs(panel, model, int(development[0]), int(development[1]), max_rows)
-    cur, k_cur, _ = _read_inputs(panel, model, int(current[0]), int(current[1]), max_rows)
+def _input_stability(engine, model, development, current, *, bins, max_rows):
+    dev, k_dev, skipped = _read_inputs(engine, model, int(development[0]), int(development[1]), max_rows)
+    cur, k_cur, _ = _read_inputs(engine, model, int(current[0]), int(current[1]), max_rows)
     rows = []
     for name in dev.columns:
         if name not in cur.columns:
@@ -455,7 +435,7 @@ def _fixed(x) -> np.ndarray:
     return np.round(np.asarray(x, dtype=np.float64) * _FIXED_ONE).astype(np.int64)
 
 
-def _hazard_by_age(panel, model, start: int, end: int, batch_size: int) -> pd.DataFrame | None:
+def _hazard_by_age(engine, model, start: int, end: int, batch_size: int) -> pd.DataFrame | None:
     """Observed and mean model hazard of each cause by loan age over months ``start..end``."""
     sums: dict[str, np.ndarray] = {}
 
@@ -473,24 +453,22 @@ def _hazard_by_age(panel, model, start: int, end: int, batch_size: int) -> pd.Da
             sums[key] = cur + part
 
     if hasattr(model, "spec"):
-        sql = model.spec.raw_query(panel.con, "month_idx BETWEEN ? AND ?", order=False)
-        rel = panel.con.sql(sql, params=[int(start), int(end)])
-        with rel.to_arrow_reader(batch_size=batch_size) as reader:
-            for batch in reader:
-                raw = {nm: batch.column(i).to_numpy(zero_copy_only=False)
-                       for i, nm in enumerate(batch.schema.names) if nm != "loan_id"}  # fmt: skip
-                if len(raw["age"]) == 0:
-                    continue
-                hd, hp = model.hazards(raw)
-                age = np.asarray(raw["age"], dtype=np.int64)
-                y = np.asarray(raw["outcome"])
-                # Hazards are summed in fixed point (units of 2**-32): integer sums do
-                # not depend on the order DuckDB streams the rows in, so neither does the table.
-                add(age, {"n": np.ones(len(age)), "d1": (y == 1) * 1.0, "d2": (y == 2) * 1.0,
-                          "h1": _fixed(hd), "h2": _fixed(hp)})  # fmt: skip
+        sql = model.spec.raw_query(engine.con, "month_idx BETWEEN ? AND ?", order=False)
+        for batch in engine.batches(sql, [int(start), int(end)], batch_size):
+            raw = {nm: batch.column(i).to_numpy(zero_copy_only=False)
+                   for i, nm in enumerate(batch.schema.names) if nm != "loan_id"}  # fmt: skip
+            if len(raw["age"]) == 0:
+                continue
+            hd, hp = model.hazards(raw)
+            age = np.asarray(raw["age"], dtype=np.int64)
+            y = np.asarray(raw["outcome"])
+            # Hazards are summed in fixed point (units of 2**-32): integer sums do
+            # not depend on the order the engine streams the rows in, so neither does the table.
+            add(age, {"n": np.ones(len(age)), "d1": (y == 1) * 1.0, "d2": (y == 2) * 1.0,
+                      "h1": _fixed(hd), "h2": _fixed(hp)})  # fmt: skip
     elif set(model.required_inputs) <= {"age", "log_age"}:
         grouped = _sql(
-            panel,
+            engine,
             "SELECT age, count(*) AS n, count(*) FILTER (WHERE outcome = 1) AS d1,\n"
             "       count(*) FILTER (WHERE outcome = 2) AS d2\n"
             "FROM loan_months WHERE month_idx BETWEEN $s AND $e GROUP BY age ORDER BY age",
@@ -534,14 +512,14 @@ def _hazard_by_age(panel, model, start: int, end: int, batch_size: int) -> pd.Da
 # --------------------------------------------------------------------------- cumulative incidence by vintage
 
 
-def _incidence_by_vintage(cfg, panel, model, path, chunk_size: int, notes: list) -> pd.DataFrame | None:
+def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list) -> pd.DataFrame | None:
     """Model cumulative incidence from origination, averaged by vintage, against Aalen-Johansen."""
     from ..errors import ProjectionError
     from ..forecast import project_loans
 
     loans = _sql(
-        panel,
-        f"SELECT {_loan_columns(panel)}, 0 AS age, l.original_balance AS balance, 'all' AS segment,\n"
+        engine,
+        f"SELECT {_loan_columns(engine)}, 0 AS age, l.original_balance AS balance, 'all' AS segment,\n"
         "       CAST(CASE WHEN o.event = 'censored' THEN o.last_age ELSE o.event_age END AS INTEGER) AS _time,\n"
         "       CAST(CASE o.event WHEN 'default' THEN 1 WHEN 'prepay' THEN 2 ELSE 0 END AS INTEGER) AS _cause,\n"
         "       o.entry_age AS _entry_age\n"
@@ -606,7 +584,7 @@ def _incidence_by_vintage(cfg, panel, model, path, chunk_size: int, notes: list)
 # --------------------------------------------------------------------------- the pack
 
 
-def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int = 2000) -> ValidationPack:
+def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int = 2000) -> ValidationPack:
     """Out-of-time backtest, discrimination, calibration, stability and curves of one model.
 
     Parameters
@@ -614,8 +592,8 @@ def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int =
     cfg : Config
         The run configuration: windows, ``validation`` settings, ``seed``,
         ``collateral`` and ``segments``.
-    panel : Panel
-        An open panel on which :func:`~creditsurv.engines.label_events` has run.
+    engine : creditsurv.engines.Engine
+        Inputs opened by an engine, on which :func:`~creditsurv.engines.label_events` has run.
     model : hazard source
         Usually a fitted :class:`~creditsurv.model.HazardResults`. Any source
         of the projection's protocol (``required_inputs``, ``hazards``) works
@@ -683,11 +661,11 @@ def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int =
             "produced and stability covers loan age only"
         )
 
-    max_term = _sql(panel, "SELECT coalesce(max(term), 0) AS t FROM loans")["t"].iloc[0]
-    path = _realised_path(panel, as_of, max(as_of, month) + int(max_term) + 1)
+    max_term = _sql(engine, "SELECT coalesce(max(term), 0) AS t FROM loans")["t"].iloc[0]
+    path = _realised_path(engine, as_of, max(as_of, month) + int(max_term) + 1)
 
     # 1-2. The development cohort: backtest, discrimination, calibration.
-    cohort = _cohort(cfg, panel, month, notes)
+    cohort = _cohort(cfg, engine, month, notes)
     summary["cohort_loans"] = int(len(cohort))
     cohort_pd = None
     if cohort.empty:
@@ -701,7 +679,7 @@ def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int =
         if oot is None:
             notes.append("no out-of-time window is configured: the backtest tables are not produced")
         else:
-            bt_tables, summary["backtest"] = _backtest_tables(cfg, panel, cohort, hd_grid, hp_grid, month, notes)
+            bt_tables, summary["backtest"] = _backtest_tables(cfg, engine, cohort, hd_grid, hp_grid, month, notes)
             tables.update(bt_tables)
         del hd_grid, hp_grid
         if as_of < month + 12:
@@ -710,11 +688,11 @@ def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int =
                 "observed, so discrimination and calibration are not produced"
             )
         else:
-            tables.update(_score_tables(cfg, panel, cohort, proj, month, summary, notes))
+            tables.update(_score_tables(cfg, engine, cohort, proj, month, summary, notes))
 
     # 3. Stability of the inputs and of the 12-month PD.
     stab, info = _input_stability(
-        panel, model, (int(dev.start), int(dev.end)), (as_of, as_of),
+        engine, model, (int(dev.start), int(dev.end)), (as_of, as_of),
         bins=cfg.validation.psi_bins, max_rows=PACK_SAMPLE_ROWS,
     )
     k_dev = info["sampled_every"]["development"]
@@ -752,7 +730,7 @@ def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int =
         notes.append("no prior model is configured (validation.prior_model): coefficient changes are not produced")
 
     # 5. Cumulative incidence by vintage.
-    inc = _incidence_by_vintage(cfg, panel, model, path, chunk_size, notes)
+    inc = _incidence_by_vintage(cfg, engine, model, path, chunk_size, notes)
     if inc is None:
         notes.append("incidence_by_vintage: no loan observed from origination")
     else:
@@ -772,7 +750,7 @@ def validation_pack(cfg, panel, model, *, current_pd_12m=None, chunk_size: int =
         }
 
     # 6. In-sample fit by loan age.
-    hba = _hazard_by_age(panel, model, int(dev.start), int(dev.end), _batch_size(cfg))
+    hba = _hazard_by_age(engine, model, int(dev.start), int(dev.end), _batch_size(cfg))
     if hba is None:
         notes.append("hazard_by_age: the hazard source needs inputs beyond loan age and is not a fitted model")
     else:
@@ -787,9 +765,9 @@ def _batch_size(cfg) -> int:
     return int(getattr(getattr(cfg.model, "fit", None), "batch_size", 250_000))
 
 
-def _score_tables(cfg, panel, cohort, proj, month: int, summary: dict, notes: list) -> dict:
+def _score_tables(cfg, engine, cohort, proj, month: int, summary: dict, notes: list) -> dict:
     """``development_cohort``, ``discrimination`` and ``calibration`` of the cohort's 12-month PD."""
-    outcomes = _cohort_outcomes(cfg, panel, month)
+    outcomes = _cohort_outcomes(cfg, engine, month)
     flags = twelve_month_cohort(outcomes, month, keep_censored=True).set_index("loan_id")
     frame = pd.DataFrame(
         {
