@@ -28,17 +28,17 @@ def _cmd_make_demo_data(args) -> int:
 
 
 def _cmd_check(args) -> int:
-    from .pipeline import check_data
+    from .pipeline import check
 
-    outcome = check_data(args.config, out=args.out)
+    outcome = check(args.config, out=args.out)
     print(outcome.text)
     return 1 if outcome.failed else 0
 
 
 def _cmd_fit(args) -> int:
-    from .pipeline import fit_model_command
+    from .pipeline import fit
 
-    outcome = fit_model_command(args.config, out_dir=args.out, argv=sys.argv)
+    outcome = fit(args.config, out=args.out, argv=sys.argv)
     print(outcome.text)
     return 0
 
@@ -71,25 +71,25 @@ class TerminalProgress:
 
 
 def _cmd_run(args) -> int:
-    from .pipeline import run_command
+    from .pipeline import run
 
-    outcome = run_command(args.config, as_of=args.as_of, out=args.out, argv=sys.argv, progress=TerminalProgress())
+    outcome = run(args.config, as_of=args.as_of, out=args.out, argv=sys.argv, progress=TerminalProgress())
     print(outcome.text)
     return 0
 
 
 def _cmd_reproduce(args) -> int:
-    from .pipeline import reproduce_command
+    from .pipeline import reproduce
 
-    outcome = reproduce_command(args.run_dir, out=args.out, progress=TerminalProgress())
+    outcome = reproduce(args.run_dir, out=args.out, progress=TerminalProgress())
     print(outcome.text)
     return 0
 
 
 def _cmd_compare(args) -> int:
-    from .pipeline import compare_command
+    from .pipeline import compare
 
-    outcome = compare_command(args.run_a, args.run_b, out=args.out)
+    outcome = compare(args.run_a, args.run_b, out=args.out)
     print(outcome.text)
     return 0
 

@@ -1,22 +1,56 @@
-"""The pipeline runner: calls the stages in order. No modelling logic lives here."""
+"""The pipeline: the stages in order for each command. No modelling logic lives here.
+
+The commands (:func:`check`, :func:`fit`, :func:`run`, :func:`reproduce`,
+:func:`compare`) are the package's public API (re-exported by ``creditsurv``)
+and what the command line calls. Each takes a config file path or a loaded
+:class:`~creditsurv.config.Config` and returns an :class:`Outcome`.
+"""
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
 
-from .config import load_config
+from .config import Config, config_from_dict, config_to_dict, load_config, read_yaml
 from .errors import DataError
-from .model import hazard_source
+from .model import hazard_source, parse_macro_key
 
 
 @dataclass(frozen=True)
 class Outcome:
-    """What a command did: text for the screen and whether it failed."""
+    """What a command did.
+
+    Attributes
+    ----------
+    text : str
+        The summary the command line prints.
+    failed : bool
+        True when the command found a problem it reports rather than raises
+        (a data check of severity ``error`` in :func:`check`).
+    path : pathlib.Path or None
+        The folder or file written (a run folder for :func:`run`).
+    """
 
     text: str
     failed: bool = False
     path: Path | None = None
+
+
+def _config(config, as_of: str | None = None) -> Config:
+    """``config`` as a Config: a path is read, a Config is taken as it is; ``as_of`` replaces the reporting month."""
+    if isinstance(config, Config):
+        if as_of is None:
+            return config
+        data = config_to_dict(config)
+        data["as_of"] = as_of
+        base = Path(config.source).resolve().parent if config.source else Path.cwd()
+        return config_from_dict(data, base, source=config.source)
+    path = Path(config)
+    if as_of is None:
+        return load_config(path)
+    data = read_yaml(path)
+    data["as_of"] = as_of
+    return config_from_dict(data, path.resolve().parent, source=path)
 
 
 def _refuse_existing(path: Path, what: str) -> None:
@@ -41,12 +75,15 @@ def init_project(folder) -> list[Path]:
     return [config, folder / "data", folder / "reports"]
 
 
-def check_data(config_path, out: Path | None = None) -> Outcome:
-    """Run the data checks of a config; optionally write the check table as CSV."""
+def check(config, out: Path | None = None) -> Outcome:
+    """Run the data checks of a config; optionally write the check table as CSV to ``out``.
+
+    ``Outcome.failed`` is True when a check of severity ``error`` fired.
+    """
     from .data import format_checks
     from .engines import open_engine
 
-    cfg = load_config(config_path)
+    cfg = _config(config)
     if out is not None:
         _refuse_existing(Path(out), "the check table")
     with open_engine(cfg) as engine:
@@ -61,25 +98,56 @@ def check_data(config_path, out: Path | None = None) -> Outcome:
 
 
 def open_checked(cfg):
-    """Open the inputs with the configured engine, run the data checks (raise on errors), label events.
+    """Open the inputs with the configured engine, preflight, run the data checks (raise on errors), label events.
 
     Returns
     -------
     (Engine, pandas.DataFrame)
         The open engine (close it, or use ``with``) and the check table.
     """
-    from .data import raise_for_errors
+    from .data import raise_preflight
     from .engines import open_engine
 
     engine = open_engine(cfg)
     try:
-        checks = engine.run_checks()
-        raise_for_errors(checks)
-        engine.label_events()
+        raise_preflight(cfg, engine)
+        checks = check_and_label(engine)
     except BaseException:
         engine.close()
         raise
     return engine, checks
+
+
+def check_and_label(engine):
+    """Run the data checks (raise on errors, warn on warnings) and label the events; return the check table."""
+    from .data import raise_for_errors
+
+    checks = engine.run_checks()
+    raise_for_errors(checks)
+    engine.label_events()
+    return checks
+
+
+def preflight(ctx, engine) -> dict:
+    """Everything a run needs from the config and the inputs together, checked before the data checks and the fit.
+
+    The columns the config names and the reporting month against the panel
+    (one ``DataError`` listing every problem), then every scenario file, read
+    and checked once (one ``ProjectionError`` listing every problem).
+
+    Returns
+    -------
+    dict of str to DataFrame
+        The scenario paths as read, for :func:`scenario_paths`.
+    """
+    import pandas as pd
+
+    from .data import raise_preflight
+    from .forecast import load_scenario_paths
+
+    raise_preflight(ctx.cfg, engine, run=True)
+    history = engine.macro_history() if engine.has_table("macro") else pd.DataFrame()
+    return load_scenario_paths(ctx.cfg.scenarios, history)
 
 
 def _config_text(cfg) -> str | None:
@@ -139,19 +207,19 @@ def _fired_warnings(checks) -> list[dict]:
     return [{"check": r.check, "count": int(r.count), "description": r.description} for r in fired.itertuples()]
 
 
-def fit_model_command(config_path, out_dir: Path | None = None, argv=None) -> Outcome:
+def fit(config, out: Path | None = None, argv=None) -> Outcome:
     """``creditsurv fit``: checks, events, fit; write the model JSON and coefficient table.
 
-    The folder ``fit_<YYYY-MM>_<hash>`` is created under ``out_dir`` (default the
+    The folder ``fit_<YYYY-MM>_<hash>`` is created under ``out`` (default the
     config's output folder) and never overwritten.
     """
     from .runs import RunFolder
 
-    cfg = load_config(config_path)
+    cfg = _config(config)
     engine, checks = open_checked(cfg)
     with engine:
         manifest = _manifest_start(cfg, engine, argv, "fit")
-        parent = _output_parent(cfg, out_dir)
+        parent = _output_parent(cfg, out)
         with RunFolder(parent, manifest["run_id"]) as run:
             model = hazard_source(cfg, engine, temp_dir=run.path)
             model.save(run.add_file("hazard_model.json"))
@@ -172,21 +240,9 @@ def fit_model_command(config_path, out_dir: Path | None = None, argv=None) -> Ou
 # --------------------------------------------------------------------------- the monthly run
 
 
-def _load_for_run(config_path, as_of: str | None):
-    """Load the config, with the reporting month replaced when ``as_of`` is given."""
-    from .config import config_from_dict, read_yaml
-
-    path = Path(config_path)
-    if as_of is None:
-        return load_config(path)
-    data = read_yaml(path)
-    data["as_of"] = as_of
-    return config_from_dict(data, path.resolve().parent, source=path)
-
-
 def macro_series_needed(model, cfg) -> list[str]:
     """The macro series a hazard source reads, the market rate of the rate incentive included."""
-    needed = [name.split(":")[1] for name in model.required_inputs if name.startswith("macro:")]
+    needed = [parsed[0] for parsed in map(parse_macro_key, model.required_inputs) if parsed is not None]
     if "rate_incentive" in model.required_inputs and cfg.collateral.market_rate_series:
         needed.append(cfg.collateral.market_rate_series)
     return sorted(set(needed))
@@ -204,47 +260,34 @@ class _NoWriter:
         return None
 
 
-def scenario_paths(cfg, engine, model, book):
-    """Every scenario's macro path from the month after the reporting month to the book's last month of recovery."""
-    from .forecast import prepare_paths
+def scenario_paths(ctx, engine, model, book, loaded) -> dict:
+    """Every scenario's macro path from the month after the reporting month to the book's last month of recovery.
+
+    ``loaded`` are the paths :func:`preflight` read; the history extends them.
+    """
+    from .forecast import extend_paths
 
     remaining = (book["term"] - book["age"]).clip(lower=0)
-    until = int(cfg.as_of) + int(remaining.max() if len(book) else 0) + cfg.loss.lgd.months_to_recovery + 1
-    return prepare_paths(
-        cfg.scenarios,
+    return extend_paths(
+        loaded,
         engine.macro_history(),
-        as_of_idx=int(cfg.as_of),
-        until_idx=until,
-        extension=cfg.scenario_extension,
-        required_series=macro_series_needed(model, cfg),
+        as_of_idx=ctx.as_of,
+        until_idx=ctx.horizon_end(remaining.max() if len(book) else 0),
+        extension=ctx.cfg.scenario_extension,
+        required_series=macro_series_needed(model, ctx.cfg),
     )
 
 
-def ecl_options(cfg) -> dict:
-    """The settings of :func:`creditsurv.loss.expected_credit_loss` that a config gives."""
-    return {
-        "as_of_idx": int(cfg.as_of),
-        "weights": {s.name: s.weight for s in cfg.scenarios},
-        "loss": cfg.loss,
-        "staging": cfg.staging,
-        "default_days_past_due": cfg.default_definition.days_past_due,
-        "hpi_series": cfg.collateral.hpi_series,
-        "region_column": cfg.collateral.region_column,
-        "market_rate_series": cfg.collateral.market_rate_series,
-        "band_column": cfg.segments.band_column,
-        "band_edges": cfg.segments.band_edges,
-    }
-
-
-def project_book(cfg, engine, model, run, *, progress=None):
+def project_book(ctx, engine, model, run, loaded, *, progress=None):
     """Projection, ECL and the exported tables of one run, written into ``run``."""
     import numpy as np
 
     from .forecast import TableWriter, segment_level, segment_pd_tables, segment_speeds
     from .loss import expected_credit_loss_by_partition
 
+    cfg = ctx.cfg
     book = engine.book_at_as_of(cfg.segments.column)
-    paths = scenario_paths(cfg, engine, model, book)
+    paths = scenario_paths(ctx, engine, model, book, loaded)
     options = {"compression": "zstd"}
     monthly = cfg.outputs.monthly_tables
     with (
@@ -254,7 +297,7 @@ def project_book(cfg, engine, model, run, *, progress=None):
     ):
         writers = {"schedule": schedule, "curve": curves, "term": annual} if monthly else {"term": annual}
         result = expected_credit_loss_by_partition(
-            engine, book, model, paths, writers=writers, progress=progress, **ecl_options(cfg)
+            engine, book, model, paths, writers=writers, progress=progress, **ctx.ecl_options()
         )
     run.outputs["pd_annual_by_loan.parquet"]["rows"] = annual.rows
     if monthly:
@@ -293,9 +336,22 @@ def _describe_source(model) -> str:
     return "a table of monthly hazards by loan age"
 
 
-def run_command(config_path, as_of: str | None = None, out=None, argv=None, progress=None) -> Outcome:
-    """``creditsurv run``: the monthly job, written as one run folder."""
-    cfg = _load_for_run(config_path, as_of)
+def run(config, as_of: str | None = None, out=None, argv=None, progress=None) -> Outcome:
+    """``creditsurv run``: the monthly job, written as one new run folder.
+
+    Parameters
+    ----------
+    config : path or Config
+    as_of : str, optional
+        Reporting month ``YYYY-MM`` in place of the config's.
+    out : path, optional
+        Folder to create the run folder in (default ``outputs.dir``, else
+        ``reports/`` beside the config).
+    argv : list of str, optional
+        The command line, for the record.
+    progress : callable(label, done, total), optional
+    """
+    cfg = _config(config, as_of)
     return execute_run(cfg, _output_parent(cfg, out), argv=argv, progress=progress)
 
 
@@ -318,13 +374,14 @@ def execute_run(
 
     from .runs import RunFolder
 
-    if not cfg.scenarios:
-        from .errors import ConfigError
+    from .config import run_context
+    from .engines import open_engine
 
-        raise ConfigError("scenarios: a run needs at least one scenario (name, weight, path)")
+    ctx = run_context(cfg)
     _say(progress, "data checks and events")
-    engine, checks = open_checked(cfg)
-    with engine:
+    with open_engine(cfg) as engine:
+        loaded = preflight(ctx, engine)
+        checks = check_and_label(engine)
         manifest = _manifest_start(cfg, engine, argv, "run")
         if config_text is not None:
             manifest["config_as_given"] = config_text
@@ -345,14 +402,14 @@ def execute_run(
             run.add_table(events, "event_counts.csv")
             _say(progress, "projection and ECL")
             chunk_progress = (lambda done, total: progress("projection and ECL", done, total)) if progress else None
-            result, report_tables, totals = project_book(cfg, engine, model, run, progress=chunk_progress)
+            result, report_tables, totals = project_book(ctx, engine, model, run, loaded, progress=chunk_progress)
             report_tables["data_checks"] = checks
             report_tables["event_counts"] = events
             if coefficients is not None:
                 report_tables["coefficients"] = coefficients
             manifest["model"] = _model_summary(model)
             manifest["data_check_warnings"] = _fired_warnings(checks)
-            manifest["scenario_weights"] = {s.name: s.weight for s in cfg.scenarios}
+            manifest["scenario_weights"] = dict(ctx.weights)
             manifest["totals"] = totals
             _validate_run(cfg, engine, model, result, run, manifest, report_tables, progress)
             if cfg.outputs.prior_run is not None:
@@ -436,7 +493,7 @@ def _movement_against(prior_run: Path, loans_b, weights_b):
 # --------------------------------------------------------------------------- reproduce and compare
 
 
-def reproduce_command(run_dir, out=None, progress=None) -> Outcome:
+def reproduce(run_dir, out=None, progress=None) -> Outcome:
     """``creditsurv reproduce``: re-run a past run from its manifest and compare outputs.
 
     Every input's SHA-256 is verified first (a changed or missing input is a
@@ -500,7 +557,7 @@ def _free_name(parent: Path, name: str) -> str:
     raise RuntimeError("no free folder name")  # pragma: no cover
 
 
-def compare_command(run_a, run_b, out=None) -> Outcome:
+def compare(run_a, run_b, out=None) -> Outcome:
     """``creditsurv compare``: the ECL walk, stage migration and PD change from run A to run B."""
     from .runs import RunFolder, compare_run_folders, read_manifest
 

@@ -11,6 +11,7 @@ import pytest
 import yaml
 from conftest import demo_config_data
 
+import creditsurv
 from creditsurv import pipeline
 from creditsurv.cli import main
 from creditsurv.demo import write_demo_book
@@ -40,7 +41,7 @@ def _config(book: Path, tmp: Path, outputs=None, **model) -> Path:
 @pytest.fixture(scope="module")
 def demo_run(small_book, tmp_path_factory):
     tmp = tmp_path_factory.mktemp("run")
-    outcome = pipeline.run_command(_config(small_book, tmp), argv=["creditsurv", "run"])
+    outcome = creditsurv.run(_config(small_book, tmp), argv=["creditsurv", "run"])
     return outcome.path
 
 
@@ -104,7 +105,7 @@ def test_benchmark_curves_run_reports_their_own_speeds(small_book, tmp_path):
     # SMM = prepaid / exposure recovers the standard's SMM exactly, so the
     # equivalent multiple is the one configured.
     cfg = _config(small_book, tmp_path, outputs={"monthly_tables": False}, source="benchmark", psa=150.0, sda=200.0)
-    outcome = pipeline.run_command(cfg)
+    outcome = creditsurv.run(cfg)
     speeds = pd.read_csv(outcome.path / "equivalent_speeds.csv")
     np.testing.assert_allclose(speeds["psa"], 150.0, rtol=1e-9)
     np.testing.assert_allclose(speeds["sda"], 200.0, rtol=1e-9)
@@ -136,7 +137,7 @@ def test_failure_mid_run_leaves_no_folder(small_book, tmp_path, monkeypatch):
 
     monkeypatch.setattr(pipeline, "project_book", broken)
     with pytest.raises(RuntimeError, match="injected"):
-        pipeline.run_command(cfg, out=tmp_path / "runs")
+        creditsurv.run(cfg, out=tmp_path / "runs")
     assert list((tmp_path / "runs").iterdir()) == []
 
 
@@ -153,8 +154,8 @@ def own_book(small_book, tmp_path_factory):
 
 def test_two_runs_are_byte_identical_and_reproduce_exits_0(own_book, tmp_path, capsys):
     cfg = _config(own_book, tmp_path)
-    a = pipeline.run_command(cfg, out=tmp_path / "a").path
-    b = pipeline.run_command(cfg, out=tmp_path / "b").path
+    a = creditsurv.run(cfg, out=tmp_path / "a").path
+    b = creditsurv.run(cfg, out=tmp_path / "b").path
     hashes = [{o["file"]: o["sha256"] for o in json.loads((d / MANIFEST).read_text())["outputs"]} for d in (a, b)]
     assert hashes[0] == hashes[1]
     assert main(["reproduce", str(a), "--out", str(tmp_path / "again")]) == 0
@@ -194,9 +195,9 @@ def test_two_month_refresh_walk_reconciles_exactly(small_book, tmp_path):
     # The month-on-month ECL walk: its parts sum to the change in total ECL.
     cfg = _config(small_book, tmp_path)
     with pytest.warns(DataCheckWarning):
-        prev = pipeline.run_command(cfg, as_of="2024-11", out=tmp_path / "runs").path
-    this = pipeline.run_command(cfg, out=tmp_path / "runs").path
-    outcome = pipeline.compare_command(prev, this)
+        prev = creditsurv.run(cfg, as_of="2024-11", out=tmp_path / "runs").path
+    this = creditsurv.run(cfg, out=tmp_path / "runs").path
+    outcome = creditsurv.compare(prev, this)
     walk = pd.read_csv(outcome.path / "movement_walk.csv")
     a = pd.read_parquet(prev / "loan_ecl.parquet")["ecl_reported"].sum()
     b = pd.read_parquet(this / "loan_ecl.parquet")["ecl_reported"].sum()
@@ -258,3 +259,48 @@ def test_fit_command_writes_a_model_that_loads_and_predicts_the_same(small_book,
     manifest = json.loads((folder / MANIFEST).read_text())
     assert manifest["kind"] == "fit" and manifest["model"]["converged"]
     assert "fitted a multinomial model" in capsys.readouterr().out
+
+
+# --------------------------------------------------------------------------- the preflight
+
+
+def _write(data: dict, tmp: Path) -> Path:
+    path = tmp / "config.yaml"
+    path.write_text(yaml.safe_dump(data, sort_keys=False))
+    return path
+
+
+def _no_fit(monkeypatch):
+    """Any fit or data check fails the test: the preflight must stop the run before them."""
+
+    def boom(*args, **kwargs):
+        raise AssertionError("the run reached the data checks or the fit")
+
+    monkeypatch.setattr(pipeline, "hazard_source", boom)
+    monkeypatch.setattr(pipeline, "check_and_label", boom)
+
+
+def test_a_bad_scenario_file_stops_the_run_before_the_checks_and_fit(small_book, tmp_path, monkeypatch):
+    data = demo_config_data(small_book, tmp_path / "reports")
+    (downside,) = [s for s in data["scenarios"] if s["name"] == "downside"]
+    bad = tmp_path / "downside.csv"
+    header, *rows = Path(downside["path"]).read_text().splitlines()
+    bad.write_text("\n".join([header, rows[0], *rows[2:]]) + "\n")  # a month missing inside the path
+    downside["path"] = str(bad)
+    _no_fit(monkeypatch)
+    with pytest.raises(creditsurv.ProjectionError, match=r"scenario 'downside' \(.*downside\.csv\): missing months inside the path"):
+        creditsurv.run(_write(data, tmp_path))
+    assert not (tmp_path / "reports").exists()
+
+
+def test_columns_the_config_names_and_the_reporting_month_are_checked_together(small_book, tmp_path, monkeypatch):
+    data = demo_config_data(small_book, tmp_path / "reports")
+    data["segments"]["column"] = "regoin"
+    data["as_of"] = "2025-06"  # the demo book runs to 2024-12
+    _no_fit(monkeypatch)
+    with pytest.raises(creditsurv.DataError) as info:
+        creditsurv.run(_write(data, tmp_path))
+    text = str(info.value)
+    assert text.startswith("2 problems with the config against the input data:")
+    assert "segments.column: column 'regoin' is in neither the loan table nor the panel; did you mean 'region'?" in text
+    assert "as_of: 2025-06 is after the panel's last month 2024-12" in text

@@ -24,7 +24,7 @@ from conftest import demo_config_data  # noqa: E402
 from test_panel import BAD_BOOKS, MACRO_COVARIATE  # noqa: E402 - the crafted bad books of the DuckDB tests
 
 from creditsurv import pipeline  # noqa: E402
-from creditsurv.config import SparkSettings, load_config  # noqa: E402
+from creditsurv.config import SparkSettings, load_config, run_context  # noqa: E402
 from creditsurv.demo import write_demo_book  # noqa: E402
 from creditsurv.engines import Engine, open_engine, spark_session, spark_sql  # noqa: E402
 from creditsurv.errors import DataCheckError, FewEventsWarning  # noqa: E402
@@ -59,10 +59,11 @@ def spark_book(tmp_path_factory):
 
 
 def _ecl(cfg, engine, book, model):
-    paths = pipeline.scenario_paths(cfg, engine, model, book)
+    ctx = run_context(cfg)
+    paths = pipeline.scenario_paths(ctx, engine, model, book, pipeline.preflight(ctx, engine))
     annual = []
     result = expected_credit_loss_by_partition(
-        engine, book, model, paths, writers={"term": annual.append}, **pipeline.ecl_options(cfg)
+        engine, book, model, paths, writers={"term": annual.append}, **ctx.ecl_options()
     )
     return result, pa.concat_tables(annual)
 

@@ -5,6 +5,7 @@ all of them in one error, each with its key path and the closest valid choice.
 """
 
 from ._config import (
+    WEIGHTED,
     Baseline,
     Checks,
     Collateral,
@@ -40,9 +41,10 @@ from ._config import (
     read_yaml,
     schema_reference,
 )
+from ._context import RunContext, run_context
 
 __all__ = [
-    "Baseline", "Checks", "Collateral", "Config", "Covariate", "DefaultDefinition", "DuckdbSettings",
+    "WEIGHTED", "RunContext", "run_context", "Baseline", "Checks", "Collateral", "Config", "Covariate", "DefaultDefinition", "DuckdbSettings",
     "Events", "FitSettings", "Inputs", "LoanColumns", "LoanSource", "Loss", "Lgd", "MacroColumns",
     "MacroSource", "ModelSpec", "Outputs", "PanelColumns", "PanelSource", "Scenario", "ScenarioExtension",
     "Segments", "SparkSettings", "Staging", "ValidationSettings", "Window", "Windows",

@@ -466,13 +466,17 @@ class Config:
             text = _unique([s.name for s in self.scenarios])
             if text:
                 problems.append(f"scenarios: {text}")
-            if "weighted" in {s.name for s in self.scenarios}:
-                problems.append("scenarios: the name 'weighted' is reserved for the probability-weighted result")
+            if WEIGHTED in {s.name for s in self.scenarios}:
+                problems.append(f"scenarios: the name {WEIGHTED!r} is reserved for the probability-weighted result")
             total = sum(s.weight for s in self.scenarios)
             if abs(total - 1.0) > 1e-9:
                 weights = ", ".join(f"{s.name}={s.weight:g}" for s in self.scenarios)
                 problems.append(f"scenarios: weights must sum to 1, got {total:.10g} ({weights})")
         return problems
+
+
+WEIGHTED = "weighted"
+"""Name of the probability-weighted scenario in every output table (reserved: no scenario may use it)."""
 
 
 # --------------------------------------------------------------------------- loading

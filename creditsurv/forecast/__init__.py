@@ -22,11 +22,11 @@ from ._projection import (
     speeds_frames,
     term_structure_frame,
 )
-from ._scenarios import extend_path, load_scenario_paths, prepare_paths
+from ._scenarios import extend_path, extend_paths, load_scenario_paths, prepare_paths
 
 __all__ = [
     "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "ProjectionResult", "TableWriter", "check_coverage",
-    "extend_path", "load_scenario_paths", "loan_list_text", "origination_pd", "prepare_paths", "project_loans",
+    "extend_path", "extend_paths", "load_scenario_paths", "loan_list_text", "origination_pd", "prepare_paths", "project_loans",
     "repeat_ids", "scenario_column", "scenario_weights", "scheduled_balance", "score_band_labels",
     "segment_level", "segment_pd_tables", "segment_speeds", "speeds_frames", "term_structure_frame",
 ]  # fmt: skip

@@ -50,8 +50,16 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from ..config import WEIGHTED
 from ..errors import ProjectionError
-from ..model import equivalent_psa, equivalent_sda, mdr_to_cdr, smm_to_cpr
+from ..model import (
+    equivalent_psa,
+    equivalent_sda,
+    hpi_series_name,
+    mdr_to_cdr,
+    parse_macro_key,
+    smm_to_cpr,
+)
 from ..months import month_ranges
 
 __all__ = [
@@ -66,8 +74,6 @@ __all__ = [
     "WEIGHTED",
 ]
 
-WEIGHTED = "weighted"
-"""Name of the probability-weighted scenario in every output table."""
 
 _DERIVED = ("age", "log_age", "current_ltv", "rate_incentive")
 
@@ -145,12 +151,13 @@ def _parse_inputs(required, loan_columns) -> _Spec:
     for name in required:
         if name in _DERIVED:
             continue
-        if isinstance(name, str) and name.startswith("macro:"):
-            parts = name.split(":")
-            if len(parts) != 3 or not parts[1] or not parts[2].lstrip("-").isdigit() or int(parts[2]) < 0:
-                problems.append(f"{name!r}: write a macro input as macro:<series>:<lag> with lag >= 0")
-            else:
-                macro.append((name, parts[1], int(parts[2])))
+        try:
+            parsed = parse_macro_key(name)
+        except ValueError as exc:
+            problems.append(str(exc))
+            continue
+        if parsed is not None:
+            macro.append((name, *parsed))
         elif name in loan_columns:
             static.append(name)
         else:
@@ -201,7 +208,7 @@ def _check_loans(loans: pd.DataFrame, needed: Sequence[str], *, balance_col: str
 
 
 def _hpi_names(regions, hpi_series: str) -> list[str]:
-    return [hpi_series.format(region=str(r).lower()) for r in regions]
+    return [hpi_series_name(hpi_series, r) for r in regions]
 
 
 def check_coverage(lookups: Mapping[str, MacroLookup], needs: Mapping[str, np.ndarray]) -> None:
@@ -1022,7 +1029,12 @@ def segment_speeds(speeds: pd.DataFrame, scenario: str = WEIGHTED) -> tuple[pd.D
     ``cdr`` from the pooled expected balances) and the equivalent % PSA and %
     SDA of each segment (exposure-weighted least squares in CPR / CDR units).
     """
-    from ..model import equivalent_psa, equivalent_sda, mdr_to_cdr, smm_to_cpr
+    from ..model import (
+        equivalent_psa,
+        equivalent_sda,
+        mdr_to_cdr,
+        smm_to_cpr,
+    )
 
     sub = speeds[speeds["scenario"] == scenario]
     cols = ["default_exposure", "defaulted", "prepay_exposure", "prepaid"]

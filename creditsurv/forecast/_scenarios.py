@@ -19,7 +19,7 @@ import pandas as pd
 from ..errors import ProjectionError
 from ..months import format_month, month_ranges, parse_month
 
-__all__ = ["load_scenario_paths", "extend_path", "prepare_paths"]
+__all__ = ["extend_path", "extend_paths", "load_scenario_paths", "prepare_paths"]
 
 
 # --------------------------------------------------------------------------- months
@@ -270,6 +270,24 @@ def prepare_paths(
     default revert to the history mean over 24 months.
     """
     paths = load_scenario_paths(cfg_scenarios, history, required_series=required_series)
+    return extend_paths(paths, history, as_of_idx=as_of_idx, until_idx=until_idx, extension=extension)
+
+
+def extend_paths(
+    paths: Mapping[str, pd.DataFrame], history: pd.DataFrame, *, as_of_idx: int, until_idx: int, extension=None,
+    required_series: Sequence[str] = (),
+) -> dict[str, pd.DataFrame]:
+    """Extend paths already read by :func:`load_scenario_paths` with the history (see :func:`extend_path`).
+
+    ``required_series`` not in every path is a ``ProjectionError`` naming them.
+    """
+    missing = {name: [s for s in required_series if s not in p.columns] for name, p in paths.items()}
+    missing = {name: m for name, m in missing.items() if m}
+    if missing:
+        raise ProjectionError(
+            "the hazard source needs series the scenario paths lack: "
+            + "; ".join(f"scenario {name!r}: {m}" for name, m in missing.items())
+        )
     rule = getattr(extension, "rule", "revert_to_mean")
     months = getattr(extension, "months", 24)
     long_run = getattr(extension, "long_run", {})

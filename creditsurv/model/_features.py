@@ -59,6 +59,7 @@ import pandas as pd
 
 from ..errors import ConfigError, FeatureError, did_you_mean
 from ..sql import quote_ident, quote_literal
+from ._names import macro_key
 
 __all__ = [
     "FeatureSpec",
@@ -126,10 +127,6 @@ class RawInput:
     column: str | None = None
     series: str | None = None
     lag: int = 0
-
-
-def _macro_key(series: str, lag: int) -> str:
-    return f"macro:{series}:{int(lag)}"
 
 
 def _columns_of(con, table: str) -> list[str] | None:
@@ -223,7 +220,7 @@ class FeatureSpec:
         seen, out = set(), []
         for c in self.covariates:
             if c.get("macro"):
-                item = RawInput(_macro_key(c["macro"], int(c.get("lag", 0))), "macro", series=c["macro"], lag=int(c.get("lag", 0)))
+                item = RawInput(macro_key(c["macro"], int(c.get("lag", 0))), "macro", series=c["macro"], lag=int(c.get("lag", 0)))
             else:
                 item = RawInput(c["column"], "column", column=c["column"])
             if item.key not in seen and item.key != "age":
@@ -458,7 +455,7 @@ class FeatureSpec:
                     f"macro history: first month needed {format_month(need)}, {have}"
                 )
         for c in self.covariates:
-            key = _macro_key(c["macro"], int(c.get("lag", 0))) if c.get("macro") else c["column"]
+            key = macro_key(c["macro"], int(c.get("lag", 0))) if c.get("macro") else c["column"]
             bad = nulls.get(key, 0)
             if bad and not any(p.startswith(f"covariate {c['name']!r}: macro") for p in problems):
                 extra = ""
@@ -490,7 +487,7 @@ class FeatureSpec:
         for c in self.covariates:
             kind_c = c.get("kind", "numeric")
             if kind_c == "categorical":
-                key = c["column"] if c.get("column") else _macro_key(c["macro"], int(c.get("lag", 0)))
+                key = c["column"] if c.get("column") else macro_key(c["macro"], int(c.get("lag", 0)))
                 rows = con.execute(
                     f"WITH data AS (\n{body}\n)\nSELECT DISTINCT CAST({q(key)} AS VARCHAR) FROM data WHERE {q(key)} IS NOT NULL",
                     list(params),
@@ -524,7 +521,7 @@ class FeatureSpec:
 
     @staticmethod
     def _clip_sql(c) -> str:
-        key = c["column"] if c.get("column") else _macro_key(c["macro"], int(c.get("lag", 0)))
+        key = c["column"] if c.get("column") else macro_key(c["macro"], int(c.get("lag", 0)))
         if key == "log_age":
             x = "ln(CAST(\"age\" AS DOUBLE))"
         else:
@@ -672,7 +669,7 @@ class FeatureSpec:
 
     def _term_values(self, c, raw, n, lrn) -> np.ndarray:
         name = c["name"]
-        key = c["column"] if c.get("column") else _macro_key(c["macro"], int(c.get("lag", 0)))
+        key = c["column"] if c.get("column") else macro_key(c["macro"], int(c.get("lag", 0)))
         if key not in raw:
             if key == "log_age":
                 values = np.log(np.asarray(raw["age"], dtype=np.float64))

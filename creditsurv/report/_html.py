@@ -50,13 +50,13 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, MaxNLocator, PercentFormatter
 
+from ..config import WEIGHTED
 from ..errors import DataError
 
 __all__ = ["REQUIRED_COLUMNS", "SECTIONS", "render_report", "write_report"]
 
 NOT_PRODUCED = "not produced in this run"
 MAX_ROWS = 60  # longer tables are cut in the report; the run folder has them whole
-WEIGHTED = "weighted"  # the probability-weighted scenario in PD tables and ECL columns
 
 REQUIRED_COLUMNS: dict[str, tuple[str, ...]] = {
     "loan_ecl": ("loan_id", "stage", "ead", "ecl_reported"),

@@ -13,7 +13,13 @@ from ._folder import (
     sha256_file,
     write_table,
 )
-from ._movement import WALK_STEPS, MovementResult, check_walk_reconciles, compare_run_folders, movement
+from ._movement import (
+    WALK_STEPS,
+    MovementResult,
+    check_walk_reconciles,
+    compare_run_folders,
+    movement,
+)
 
 __all__ = [
     "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "WALK_STEPS", "base_manifest", "check_walk_reconciles",

@@ -45,6 +45,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from ..config import WEIGHTED
 from ..errors import RunError
 from ._folder import MANIFEST
 
@@ -64,7 +65,6 @@ WALK_STEPS = (
 RECONCILE_RTOL = 1e-6
 _REPORTED_RTOL = 1e-6  # ecl_reported against sum_s w_s ECL_s
 _REPORTED_ATOL = 1e-6  # currency units; absorbs rounding on tiny ECLs
-_WEIGHTED = "weighted"  # the probability-weighted columns, never a scenario
 _ALL = "all"  # label of the whole-book row of the PD-change table
 
 
@@ -148,8 +148,8 @@ def _check_weights(weights: Mapping[str, float], label: str) -> list[str]:
     if not weights:
         return [f"{label}: no scenario weights given"]
     problems = []
-    if _WEIGHTED in weights:
-        problems.append(f"{label}: {_WEIGHTED!r} is the probability-weighted result, not a scenario")
+    if WEIGHTED in weights:
+        problems.append(f"{label}: {WEIGHTED!r} is the probability-weighted result, not a scenario")
     values = {}
     for s, w in weights.items():
         try:
@@ -517,7 +517,7 @@ def _read_run(path: Path) -> tuple[pd.DataFrame | None, dict | None, list[str]]:
             weights[str(sc["name"])] = float(sc["weight"])
     if not scenarios:
         # A run without configured scenarios projects one; take it from the columns.
-        found = sorted(c[len("ecl_12m_") :] for c in loans.columns if c.startswith("ecl_12m_") and c != f"ecl_12m_{_WEIGHTED}")
+        found = sorted(c[len("ecl_12m_") :] for c in loans.columns if c.startswith("ecl_12m_") and c != f"ecl_12m_{WEIGHTED}")
         if len(found) == 1:
             weights = {found[0]: 1.0}
         else:
