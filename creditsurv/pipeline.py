@@ -372,10 +372,9 @@ def execute_run(
     """
     import shutil
 
-    from .runs import RunFolder
-
     from .config import run_context
     from .engines import open_engine
+    from .runs import RunFolder
 
     ctx = run_context(cfg)
     _say(progress, "data checks and events")

@@ -23,7 +23,7 @@ def test_config_error_prints_one_line_without_traceback_and_exits_2(tmp_path, ca
     assert code == 2
     assert "Traceback" not in err
     lines = err.splitlines()
-    assert lines[0] == f"ConfigError: {bad}: 3 problems in the config:"
+    assert lines[0] == f"ConfigError: {bad}: 3 problems with the config:"
     assert "  - as_off: unknown key" in err and "did you mean 'as_of'?" in err
     assert "  - inputs: missing required key" in err and "  - windows: missing required key" in err
 

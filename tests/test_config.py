@@ -147,7 +147,7 @@ def test_problems_in_a_file_are_labelled_with_the_file(tmp_path):
     path = _write(tmp_path, "as_of: 2021-01\nseed: -3\n")
     with pytest.raises(ConfigError) as info:
         load_config(path)
-    assert str(info.value).startswith(f"{path}: 3 problems in the config:")
+    assert str(info.value).startswith(f"{path}: 3 problems with the config:")
     assert info.value.problems == [
         "inputs: missing required key (where the data are and how columns map)",
         "windows: missing required key (development and out-of-time windows)",

@@ -22,7 +22,7 @@ from typing import Literal
 
 import yaml
 
-from ..errors import ConfigError
+from ..errors import ConfigError, problem_list
 from ..months import format_month
 from ._schema import FilePath, Month, build, describe
 
@@ -536,9 +536,7 @@ def config_from_dict(data: dict, base_dir: str | Path = ".", *, source: str | Pa
     cfg, problems = build(Config, data, Path(base_dir).resolve())
     if problems:
         label = str(source) if source else "config"
-        lines = "\n".join(f"  - {p}" for p in problems)
-        n = len(problems)
-        raise ConfigError(f"{label}: {n} problem{'s' if n > 1 else ''} in the config:\n{lines}", problems)
+        raise ConfigError(f"{label}: {problem_list(problems, 'the config')}", problems)
     if source is not None:
         object.__setattr__(cfg, "source", FilePath(Path(source).resolve()))
     return cfg

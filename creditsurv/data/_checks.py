@@ -15,7 +15,13 @@ import warnings
 import pandas as pd
 
 from ..config import Config
-from ..errors import ConfigError, DataCheckError, DataCheckWarning, did_you_mean
+from ..errors import (
+    ConfigError,
+    DataCheckError,
+    DataCheckWarning,
+    did_you_mean,
+    problem_list,
+)
 from ..sql import quote_ident
 from ._inputs import macro_series_used
 
@@ -35,8 +41,7 @@ def check_severity_names(cfg: Config) -> None:
         if name not in names
     ]
     if problems:
-        lines = "\n".join(f"  - {p}" for p in problems)
-        raise ConfigError(f"config: {len(problems)} problem(s) in the config:\n{lines}", problems)
+        raise ConfigError(f"config: {problem_list(problems, 'the config')}", problems)
 
 
 

@@ -51,7 +51,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..config import WEIGHTED
-from ..errors import ProjectionError
+from ..errors import ProjectionError, problem_list
 from ..model import (
     equivalent_psa,
     equivalent_sda,
@@ -163,7 +163,7 @@ def _parse_inputs(required, loan_columns) -> _Spec:
         else:
             problems.append(f"{name!r}: not a derived input {list(_DERIVED)}, a macro:<series>:<lag> or a loan column")
     if problems:
-        raise ProjectionError("the hazard source needs inputs that cannot be built:\n" + "\n".join(f"  - {p}" for p in problems))
+        raise ProjectionError(problem_list(problems, "the inputs the hazard source needs"))
     return _Spec(tuple(required), tuple(macro), tuple(static), "current_ltv" in required, "rate_incentive" in required)
 
 
@@ -222,7 +222,7 @@ def check_coverage(lookups: Mapping[str, MacroLookup], needs: Mapping[str, np.nd
             if bad:
                 problems.append(f"scenario {scen!r}: series {series!r} has no value in months {month_ranges(bad)}")
     if problems:
-        raise ProjectionError("the macro paths do not cover the projection:\n" + "\n".join(f"  - {p}" for p in problems))
+        raise ProjectionError(problem_list(problems, "the macro paths of the projection"))
 
 
 # --------------------------------------------------------------------------- the chunk kernel
@@ -823,7 +823,7 @@ def _term_table(loan_id, names, curves, remaining) -> pa.Table:
 
 
 def term_structure_frame(ts, names, seg_names, labels, years) -> pd.DataFrame:
-    K, G = len(names), len(seg_names) * len(labels)
+    G = len(seg_names) * len(labels)
     rows = []
     nb = len(labels)
     for ki, s in enumerate(names):

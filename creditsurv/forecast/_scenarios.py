@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..errors import ProjectionError
+from ..errors import ProjectionError, problem_list
 from ..months import format_month, month_ranges, parse_month
 
 __all__ = ["extend_path", "extend_paths", "load_scenario_paths", "prepare_paths"]
@@ -136,8 +136,7 @@ def load_scenario_paths(
         if not dupes.size:
             out[sc.name] = pd.DataFrame(frame, index=pd.Index(idx, name="month_idx")).sort_index()
     if problems:
-        n = len(problems)
-        raise ProjectionError(f"{n} problem{'s' if n > 1 else ''} in the scenario paths:\n" + "\n".join(f"  - {p}" for p in problems))
+        raise ProjectionError(problem_list(problems, "the scenario paths"))
     return out
 
 

@@ -57,7 +57,7 @@ from typing import Any, Mapping
 import numpy as np
 import pandas as pd
 
-from ..errors import ConfigError, FeatureError, did_you_mean
+from ..errors import ConfigError, FeatureError, did_you_mean, problem_list
 from ..sql import quote_ident, quote_literal
 from ._names import macro_key
 
@@ -275,7 +275,7 @@ class FeatureSpec:
                 continue
             by_key[col] = src
         if problems:
-            raise FeatureError("feature spec does not match the data:\n" + "\n".join(f"  - {p}" for p in problems))
+            raise FeatureError(problem_list(problems, "the feature spec against the data"))
         for item in self.inputs():
             if item.source == "macro":
                 resolved.append(item)
@@ -511,7 +511,7 @@ class FeatureSpec:
                 continue
             learned["covariates"][c["name"]] = {"levels": levels, "reference": str(ref)}
         if problems:
-            raise FeatureError("cannot learn the feature spec from the development data:\n" + "\n".join(f"  - {p}" for p in problems))
+            raise FeatureError(problem_list(problems, "learning the feature spec from the development data"))
         spec = dataclasses.replace(self, learned=learned)
         learned["columns"] = spec._column_names()
         dup = _duplicates(learned["columns"])
@@ -806,7 +806,7 @@ def feature_spec(model, collateral=None) -> FeatureSpec:
             if nm not in names:
                 problems.append(f"model.interactions[{i}]: {nm!r} is not a covariate name{did_you_mean(nm, names)}")
     if problems:
-        raise ConfigError("model section:\n" + "\n".join(f"  - {p}" for p in problems), problems)
+        raise ConfigError(problem_list(problems, "the model section"), problems)
     b = model.baseline
     baseline = {"kind": b.kind, "edges": [int(e) for e in b.edges], "knots": [float(k) for k in b.knots], "max_age": b.max_age}
     coll = {}

@@ -46,6 +46,7 @@ import pandas as pd
 from scipy import linalg, stats
 from scipy.linalg import blas
 
+from ..data import CAUSE_CODES
 from ..errors import (
     ConvergenceError,
     DataError,
@@ -53,13 +54,14 @@ from ..errors import (
     ModelError,
     SeparationError,
     SingularDesignError,
+    problem_list,
 )
 from ..sql import quote_ident
 from ._features import FeatureSpec
 
 __all__ = ["CAUSES", "HazardResults", "fit_hazard", "fit_model", "load_model"]
 
-CAUSES = {"default": 1, "prepay": 2}
+CAUSES = CAUSE_CODES  # cause name -> outcome code of loan_months, defined once in data
 _FORMAT = "creditsurv.hazard_model"
 _FORMAT_VERSION = 1
 _MIN_EVENTS_PER_PARAMETER = 10
@@ -590,7 +592,7 @@ def fit_from_sums(evaluate, first, spec, *, kind, causes, codes, ridge, max_iter
     if ridge == 0:
         problems = _separation_problems(S, first.is01, names, spec.indicator_groups(), causes, codes, kind)
         if problems:
-            raise SeparationError("quasi-complete separation:\n" + "\n".join(f"  - {t}" for t in problems))
+            raise SeparationError("quasi-complete separation: " + problem_list(problems, "the design"))
     for c in causes:
         if events[c] < _MIN_EVENTS_PER_PARAMETER * p:
             warnings.warn(

@@ -46,7 +46,7 @@ import numpy as np
 import pandas as pd
 
 from ..config import WEIGHTED
-from ..errors import RunError
+from ..errors import RunError, problem_list
 from ._folder import MANIFEST
 
 __all__ = ["MovementResult", "check_walk_reconciles", "compare_run_folders", "movement"]
@@ -219,8 +219,7 @@ def _check_loans(df: pd.DataFrame, weights: Mapping[str, float], label: str, seg
 
 def _raise(problems: list[str], what: str) -> None:
     if problems:
-        n = len(problems)
-        raise RunError(f"{n} problem{'s' if n > 1 else ''} with {what}:\n" + "\n".join(f"  - {p}" for p in problems))
+        raise RunError(problem_list(problems, what))
 
 
 # --------------------------------------------------------------------------- computation

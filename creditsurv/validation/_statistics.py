@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from ..data import CAUSE_CODES
 from ..errors import DataError
 
 __all__ = [
@@ -45,7 +46,7 @@ __all__ = [
     "model_vs_nonparametric",
 ]
 
-CAUSES = {1: "default", 2: "prepay"}
+CAUSES = {code: name for name, code in CAUSE_CODES.items()}  # outcome code -> cause, defined once in data
 PSI_FLOOR = 1e-6
 
 
@@ -357,7 +358,7 @@ def discrimination(score, default, *, bootstrap: int = 200, seed: int = 0, level
     }
 
 
-_EVENT_CODES = {0: None, 1: "default", 2: "prepay", 3: "maturity"}
+_EVENT_CODES = {0: None, **CAUSES, 3: "maturity"}
 
 
 def _event_name(v):
