@@ -23,9 +23,8 @@ from creditsurv.forecast import (
     origination_pd,
     prepare_paths,
     project_loans,
-    scheduled_balance,
 )
-from creditsurv.model import BenchmarkCurves, HazardTable
+from creditsurv.model import BenchmarkCurves, HazardTable, scheduled_balance, scheduled_balance_sql
 from creditsurv.months import parse_month
 
 AS_OF = parse_month("2024-12")
@@ -213,6 +212,23 @@ def test_scheduled_balance_matches_numpy_financial(b0, rate, n):
 
 def test_scheduled_balance_at_zero_rate_is_straight_line():
     np.testing.assert_allclose(scheduled_balance(1200.0, 0.0, 12, np.arange(13)), 1200.0 - 100.0 * np.arange(13))
+
+
+@pytest.mark.parametrize(("b0", "rate", "n"), [(200_000.0, 0.045, 360), (55_000.0, 0.12, 61), (1_200.0, 0.0, 12)])
+def test_the_sql_and_numpy_forms_of_the_schedule_agree(b0, rate, n):
+    # History (SQL in the feature spec) and projection (NumPy) compute current LTV from the
+    # same rule; both are checked against numpy_financial above, here against each other.
+    import duckdb
+
+    k = np.arange(0, n + 1)
+    sql = scheduled_balance_sql("b0", "rate", "n", "k")
+    with duckdb.connect() as con:
+        got = con.execute(
+            f"SELECT {sql} AS bal FROM (SELECT $b0::DOUBLE AS b0, $rate::DOUBLE AS rate, $n::INTEGER AS n, "
+            "unnest(range(0, $n + 1)) AS k) ORDER BY k",
+            {"b0": b0, "rate": rate, "n": n},
+        ).fetchnumpy()["bal"]
+    np.testing.assert_allclose(got, scheduled_balance(b0, rate, n, k), rtol=1e-10, atol=1e-8)
 
 
 def test_covariates_of_each_future_month_are_built_as_documented():

@@ -14,7 +14,6 @@ from ._projection import (
     repeat_ids,
     scenario_column,
     scenario_weights,
-    scheduled_balance,
     score_band_labels,
     segment_level,
     segment_pd_tables,
@@ -27,6 +26,6 @@ from ._scenarios import extend_path, extend_paths, load_scenario_paths, prepare_
 __all__ = [
     "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "ProjectionResult", "TableWriter", "check_coverage",
     "extend_path", "extend_paths", "load_scenario_paths", "loan_list_text", "origination_pd", "prepare_paths", "project_loans",
-    "repeat_ids", "scenario_column", "scenario_weights", "scheduled_balance", "score_band_labels",
+    "repeat_ids", "scenario_column", "scenario_weights", "score_band_labels",
     "segment_level", "segment_pd_tables", "segment_speeds", "speeds_frames", "term_structure_frame",
 ]  # fmt: skip

@@ -58,13 +58,13 @@ from ..model import (
     hpi_series_name,
     mdr_to_cdr,
     parse_macro_key,
+    scheduled_balance,
     smm_to_cpr,
 )
 from ..months import month_ranges
 
 __all__ = [
     "Curves",
-    "scheduled_balance",
     "project_loans",
     "origination_pd",
     "ProjectionResult",
@@ -76,29 +76,6 @@ __all__ = [
 
 
 _DERIVED = ("age", "log_age", "current_ltv", "rate_incentive")
-
-
-# --------------------------------------------------------------------------- amortisation
-
-
-def scheduled_balance(balance, note_rate, n_remaining, k):
-    """Level-payment balance after ``k`` of ``n_remaining`` monthly payments.
-
-    B(k) = B0 ((1+r)^n - (1+r)^k) / ((1+r)^n - 1) with r = note_rate / 12, and
-    B0 (n - k) / n when r = 0; 0 for k >= n.  Arguments broadcast.
-    (Standard annuity closed form; checked against numpy_financial in tests.)
-    """
-    b0 = np.asarray(balance, dtype=float)
-    r = np.asarray(note_rate, dtype=float) / 12.0
-    n = np.asarray(n_remaining, dtype=float)
-    k = np.minimum(np.asarray(k, dtype=float), n)
-    lr = np.log1p(r)
-    gn = np.expm1(n * lr)  # (1+r)^n - 1, accurate for small r
-    gk = np.expm1(k * lr)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        annuity = b0 * (gn - gk) / gn
-    linear = b0 * (n - k) / np.where(n > 0, n, 1.0)
-    return np.where(r == 0.0, linear, annuity)
 
 
 # --------------------------------------------------------------------------- macro lookups

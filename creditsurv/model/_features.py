@@ -60,6 +60,7 @@ import pandas as pd
 from ..errors import ConfigError, FeatureError, did_you_mean, problem_list
 from ..sql import quote_ident, quote_literal
 from ._names import macro_key
+from ._schedule import scheduled_balance_sql
 
 __all__ = [
     "FeatureSpec",
@@ -348,13 +349,7 @@ class FeatureSpec:
             if needs_ltv:
                 # Scheduled level-payment balance after (age - 1) payments.
                 k = "LEAST(GREATEST(r.\"age\" - 1, 0), r.\"_cs_term\")"
-                rate = "(r.\"_cs_note_rate\" / 12.0)"
-                n = "r.\"_cs_term\""
-                bal = (
-                    f"CASE WHEN {rate} = 0 THEN r.\"_cs_original_balance\" * (1.0 - {k} / {n}) "
-                    f"ELSE r.\"_cs_original_balance\" * (power(1 + {rate}, {n}) - power(1 + {rate}, {k})) "
-                    f"/ (power(1 + {rate}, {n}) - 1) END"
-                )
+                bal = scheduled_balance_sql('r."_cs_original_balance"', 'r."_cs_note_rate"', 'r."_cs_term"', k)
                 value = "(r.\"_cs_property_value\" * r.\"_cs_hpi_now\" / r.\"_cs_hpi_orig\")"
                 sel.append(f"{bal} / {value} AS \"current_ltv\"")
             if needs_inc:
