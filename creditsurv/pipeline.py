@@ -13,7 +13,7 @@ from pathlib import Path
 
 from .config import Config, config_from_dict, config_to_dict, load_config, read_yaml
 from .errors import DataError
-from .model import hazard_source, parse_macro_key
+from .model import HazardResults, hazard_source, parse_macro_key
 
 
 @dataclass(frozen=True)
@@ -184,24 +184,6 @@ def _output_parent(cfg, out) -> Path:
     return base / "reports"
 
 
-def _model_summary(model) -> dict:
-    if not hasattr(model, "params"):
-        return {"source": type(model).__name__, **{k: getattr(model, k) for k in ("psa", "sda") if hasattr(model, k)}}
-    return {
-        "kind": model.kind,
-        "causes": list(model.causes),
-        "terms": len(model.params.index),
-        "n_rows": model.n_rows,
-        "events": model.events,
-        "loglik": model.loglik,
-        "aic": model.aic,
-        "bic": model.bic,
-        "iterations": model.iterations,
-        "converged": model.converged,
-        "data_fingerprint": model.data_fingerprint,
-    }
-
-
 def _fired_warnings(checks) -> list[dict]:
     fired = checks[(checks["severity"] == "warning") & (checks["count"] > 0)]
     return [{"check": r.check, "count": int(r.count), "description": r.description} for r in fired.itertuples()]
@@ -226,7 +208,7 @@ def fit(config, out: Path | None = None, argv=None) -> Outcome:
             run.add_table(model.summary(), "coefficients.csv")
             run.add_table(checks, "data_checks.csv")
             run.add_table(engine.event_counts(), "event_counts.csv")
-            manifest["model"] = _model_summary(model)
+            manifest["model"] = model.record()
             manifest["data_check_warnings"] = _fired_warnings(checks)
             final = run.commit(manifest)
     text = (
@@ -328,14 +310,6 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     return result, report_tables, totals
 
 
-def _describe_source(model) -> str:
-    if hasattr(model, "params"):
-        return f"{model.kind} model, {len(model.params.index)} terms per cause, {model.n_rows:,} loan-months"
-    if hasattr(model, "psa"):
-        return f"benchmark curves, {model.psa:g}% PSA and {model.sda:g}% SDA"
-    return "a table of monthly hazards by loan age"
-
-
 def run(config, as_of: str | None = None, out=None, argv=None, progress=None) -> Outcome:
     """``creditsurv run``: the monthly job, written as one new run folder.
 
@@ -392,7 +366,7 @@ def execute_run(
             _say(progress, "hazard model")
             model = hazard_source(cfg, engine, temp_dir=work)
             shutil.rmtree(work)
-            coefficients = model.summary() if hasattr(model, "summary") else None
+            coefficients = model.summary() if isinstance(model, HazardResults) else None
             if coefficients is not None:
                 model.save(run.add_file("hazard_model.json"))
                 run.add_table(coefficients, "coefficients.csv")
@@ -406,7 +380,7 @@ def execute_run(
             report_tables["event_counts"] = events
             if coefficients is not None:
                 report_tables["coefficients"] = coefficients
-            manifest["model"] = _model_summary(model)
+            manifest["model"] = model.record()
             manifest["data_check_warnings"] = _fired_warnings(checks)
             manifest["scenario_weights"] = dict(ctx.weights)
             manifest["totals"] = totals
@@ -426,7 +400,7 @@ def execute_run(
     text = (
         f"reporting month {manifest['as_of']}: {totals['loans']:,} loans, EAD {totals['ead']:,.2f}, "
         f"reported ECL {totals['ecl_reported']:,.2f} ({stage})\n"
-        f"hazards: {_describe_source(model)}\n"
+        f"hazards: {model.describe()}\n"
         f"wrote {final}"
     )
     return Outcome(text, path=final)

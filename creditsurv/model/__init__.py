@@ -25,7 +25,7 @@ from ._hazard import (
 )
 from ._names import hpi_series_name, macro_key, parse_macro_key
 from ._schedule import scheduled_balance, scheduled_balance_sql
-from ._source import development_window, hazard_source
+from ._source import HazardSource, development_window, hazard_source
 from ._speeds import (
     BenchmarkCurves,
     HazardTable,
@@ -41,7 +41,7 @@ from ._speeds import (
 )
 
 __all__ = [
-    "BenchmarkCurves", "CAUSES", "FeatureSpec", "FirstPass", "batch_design", "batch_sums", "check_fit_arguments",
+    "BenchmarkCurves", "CAUSES", "FeatureSpec", "HazardSource", "FirstPass", "batch_design", "batch_sums", "check_fit_arguments",
     "development_window", "fit_fingerprint", "fit_from_sums", "hazard_source", "hpi_series_name", "macro_key", "parse_macro_key", "scheduled_balance", "scheduled_balance_sql", "raw_design_sql", "resolve_collapse", "symmetric", "HazardResults", "HazardTable", "RawInput",
     "cdr_to_mdr", "cpr_to_smm", "equivalent_psa", "equivalent_sda", "feature_spec", "fit_hazard", "fit_model",
     "load_model", "mdr_to_cdr", "natural_spline_basis", "psa_cpr", "sda_cdr", "smm_to_cpr", "speeds_to_hazards",

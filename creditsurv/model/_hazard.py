@@ -202,6 +202,26 @@ class HazardResults:
             "features": self.spec.to_dict(),
         }
 
+    def describe(self) -> str:
+        """One line for the screen: which model, how many terms, on how many loan-months."""
+        return f"{self.kind} model, {len(self.params.index)} terms per cause, {self.n_rows:,} loan-months"
+
+    def record(self) -> dict:
+        """The fit's headline numbers for a run's manifest."""
+        return {
+            "kind": self.kind,
+            "causes": list(self.causes),
+            "terms": len(self.params.index),
+            "n_rows": self.n_rows,
+            "events": self.events,
+            "loglik": self.loglik,
+            "aic": self.aic,
+            "bic": self.bic,
+            "iterations": self.iterations,
+            "converged": self.converged,
+            "data_fingerprint": self.data_fingerprint,
+        }
+
     def save(self, path) -> Path:
         """Write the model as readable JSON (indent 2, sorted keys); return the path."""
         path = Path(path)

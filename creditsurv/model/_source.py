@@ -2,13 +2,37 @@
 
 from __future__ import annotations
 
+from typing import Protocol, runtime_checkable
+
+import numpy as np
 import pandas as pd
 
 from ..errors import DataError
 from ._hazard import HazardResults, fit_model, load_model
 from ._speeds import BenchmarkCurves, HazardTable
 
-__all__ = ["development_window", "hazard_source"]
+__all__ = ["HazardSource", "development_window", "hazard_source"]
+
+
+@runtime_checkable
+class HazardSource(Protocol):
+    """What projection asks of any source of monthly hazards (a fitted model, PSA/SDA curves, a table).
+
+    ``required_inputs`` lists the raw inputs needed per loan-month (``age``,
+    ``log_age``, ``current_ltv``, ``rate_incentive``, a loan column, or
+    ``macro:<series>:<lag>``); ``hazards(raw)`` returns the monthly default and
+    prepayment probabilities for them, flat arrays as long as the inputs.
+    ``describe()`` and ``record()`` say what the source is, for the screen and
+    for a run's manifest.
+    """
+
+    required_inputs: list
+
+    def hazards(self, raw: dict) -> tuple[np.ndarray, np.ndarray]: ...
+
+    def describe(self) -> str: ...
+
+    def record(self) -> dict: ...
 
 
 def development_window(cfg) -> tuple[str, tuple[int, int]]:

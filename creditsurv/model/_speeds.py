@@ -163,6 +163,12 @@ class BenchmarkCurves:
     def __repr__(self) -> str:
         return f"BenchmarkCurves(psa={self.psa:g}, sda={self.sda:g})"
 
+    def describe(self) -> str:
+        return f"benchmark curves, {self.psa:g}% PSA and {self.sda:g}% SDA"
+
+    def record(self) -> dict:
+        return {"source": type(self).__name__, "psa": self.psa, "sda": self.sda}
+
     def hazards(self, raw: dict) -> tuple[np.ndarray, np.ndarray]:
         age = np.asarray(raw["age"], dtype=float)
         mdr = cdr_to_mdr(sda_cdr(age, self.sda))
@@ -205,6 +211,12 @@ class HazardTable:
         self._first = int(age[0])
         self._default = hd
         self._prepay = hp
+
+    def describe(self) -> str:
+        return "a table of monthly hazards by loan age"
+
+    def record(self) -> dict:
+        return {"source": type(self).__name__}
 
     def hazards(self, raw: dict) -> tuple[np.ndarray, np.ndarray]:
         age = np.asarray(raw["age"])

@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DataError
+from ..model import HazardResults
 from ._statistics import (
     CAUSES,
     _as_1d,
@@ -344,7 +345,7 @@ def _read_inputs(engine, model, start: int, end: int, max_rows: int):
     loan and month) and the inputs that could not be read.
     """
     names = [n for n in model.required_inputs if n != "log_age"]
-    if hasattr(model, "spec"):
+    if isinstance(model, HazardResults):
         readable = names
     else:
         readable = [n for n in names if n == "age"]
@@ -356,7 +357,7 @@ def _read_inputs(engine, model, start: int, end: int, max_rows: int):
     k = max(1, int(np.ceil(int(n_rows) / max_rows)))
     where = "month_idx BETWEEN ? AND ? AND hash(loan_id, month_idx) % ? = 0"
     params = [int(start), int(end), k]
-    if hasattr(model, "spec"):
+    if isinstance(model, HazardResults):
         body = model.spec.raw_query(engine.con, where, order=False)
     else:
         body = f"SELECT loan_id, month_idx, age FROM loan_months WHERE {where}"
@@ -452,7 +453,7 @@ def _hazard_by_age(engine, model, start: int, end: int, batch_size: int) -> pd.D
                 part = np.round(np.bincount(age, weights=w, minlength=len(cur))).astype(np.int64)
             sums[key] = cur + part
 
-    if hasattr(model, "spec"):
+    if isinstance(model, HazardResults):
         sql = model.spec.raw_query(engine.con, "month_idx BETWEEN ? AND ?", order=False)
         for batch in engine.batches(sql, [int(start), int(end)], batch_size):
             raw = {nm: batch.column(i).to_numpy(zero_copy_only=False)
@@ -654,7 +655,7 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
         "out_of_time": None if oot is None else {"start": _fmt_month(oot.start), "end": _fmt_month(oot.end)},
         "cohort_month": _fmt_month(month),
     }
-    fitted = hasattr(model, "predict_hazards") and hasattr(model, "spec")
+    fitted = isinstance(model, HazardResults)
     if not fitted:
         notes.append(
             f"the hazard source ({type(model).__name__}) is not a fitted model: coefficient changes are not "
