@@ -348,7 +348,7 @@ def execute_run(
 
     from .config import run_context
     from .engines import open_engine
-    from .runs import RunFolder
+    from .runs import RunFolder, movement_against_run
 
     ctx = run_context(cfg)
     _say(progress, "data checks and events")
@@ -387,7 +387,7 @@ def execute_run(
             _validate_run(cfg, engine, model, result, run, manifest, report_tables, progress)
             if cfg.outputs.prior_run is not None:
                 _say(progress, "movement against the prior run")
-                movement = _movement_against(cfg.outputs.prior_run, result.loans, manifest["scenario_weights"])
+                movement = movement_against_run(cfg.outputs.prior_run, result.loans, manifest["scenario_weights"])
                 for file, table in movement.to_tables().items():
                     run.add_table(table, file)
                 report_tables["movement_walk"] = movement.walk
@@ -451,18 +451,6 @@ def _write_report(run, cfg, manifest: dict, tables: dict) -> None:
     write_report(run.add_file("report.html"), tables, meta)
 
 
-def _movement_against(prior_run: Path, loans_b, weights_b):
-
-    import pandas as pd
-
-    from .runs import movement, read_manifest
-
-    prior = read_manifest(prior_run)
-    loans_a = pd.read_parquet(Path(prior_run) / "loan_ecl.parquet")
-    weights_a = prior.get("scenario_weights") or {s["name"]: s["weight"] for s in prior["config_resolved"]["scenarios"]}
-    return movement(loans_a, loans_b, weights_a, weights_b)
-
-
 # --------------------------------------------------------------------------- reproduce and compare
 
 
@@ -475,59 +463,23 @@ def reproduce(run_dir, out=None, progress=None) -> Outcome:
     output hash must match (else ``ReproduceMismatch``, exit 3); with other
     versions the largest numeric difference per table and column is reported.
     """
-    from .config import config_from_dict
-    from .errors import ReproduceMismatch, RunError
-    from .runs import compare_outputs, read_manifest, sha256_file
+    from .runs import (
+        check_inputs_unchanged,
+        judge_reproduction,
+        read_manifest,
+        reproduction_name,
+    )
 
     run_dir = Path(run_dir)
     manifest = read_manifest(run_dir)
-    if manifest.get("kind") != "run":
-        raise RunError(f"{run_dir}: not a run folder made by creditsurv run (kind {manifest.get('kind')!r})")
-    changed = []
-    for item in manifest["inputs"]:
-        path = Path(item["path"])
-        if not path.exists():
-            changed.append(f"{path}: missing")
-        elif sha256_file(path) != item["sha256"]:
-            changed.append(f"{path}: SHA-256 differs from the run's record ({item['sha256'][:12]}...)")
-    if changed:
-        raise RunError(
-            f"cannot reproduce {run_dir.name}: {len(changed)} input{'s' if len(changed) > 1 else ''} changed since the run:\n"
-            + "\n".join(f"  - {c}" for c in changed)
-        )
+    check_inputs_unchanged(run_dir, manifest)
     cfg = config_from_dict(manifest["config_resolved"], run_dir)
     parent = Path(out) if out is not None else run_dir.parent / "reproductions"
-    name = _free_name(parent, run_dir.name)
     fresh = execute_run(
-        cfg, parent, argv=["creditsurv", "reproduce", str(run_dir)], name=name,
+        cfg, parent, argv=["creditsurv", "reproduce", str(run_dir)], name=reproduction_name(parent, run_dir.name),
         config_text=manifest.get("config_as_given"), progress=progress,
     ).path
-    new_manifest = read_manifest(fresh)
-    report = compare_outputs(run_dir, fresh, manifest, new_manifest)
-    same_versions = manifest["versions"] == new_manifest["versions"]
-    lines = [f"reproduced {run_dir.name} into {fresh}"]
-    if report.all_match:
-        lines.append(f"all {report.n_outputs} outputs match byte for byte")
-        return Outcome("\n".join(lines), path=fresh)
-    lines.append(f"{len(report.mismatched)} of {report.n_outputs} outputs differ: {', '.join(report.mismatched)}")
-    if not same_versions:
-        diff = {k: (manifest["versions"].get(k), v) for k, v in new_manifest["versions"].items() if manifest["versions"].get(k) != v}
-        lines.append("package versions differ: " + ", ".join(f"{k} {a} -> {b}" for k, (a, b) in diff.items()))
-        lines.append(report.differences_text())
-        if report.max_relative_difference <= 1e-8:
-            lines.append("largest relative difference is within 1e-8: numerically the same")
-            return Outcome("\n".join(lines), path=fresh)
-    elif report.differences is not None:
-        lines.append(report.differences_text())
-    raise ReproduceMismatch("\n".join(lines))
-
-
-def _free_name(parent: Path, name: str) -> str:
-    for i in range(1, 10_000):
-        candidate = f"{name}_repro{i}"
-        if not (parent / candidate).exists():
-            return candidate
-    raise RuntimeError("no free folder name")  # pragma: no cover
+    return Outcome(judge_reproduction(run_dir, fresh), path=fresh)
 
 
 def compare(run_a, run_b, out=None) -> Outcome:

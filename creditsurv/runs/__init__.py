@@ -19,10 +19,13 @@ from ._movement import (
     check_walk_reconciles,
     compare_run_folders,
     movement,
+    movement_against_run,
 )
+from ._reproduce import check_inputs_unchanged, judge_reproduction, reproduction_name
 
 __all__ = [
     "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "WALK_STEPS", "base_manifest", "check_walk_reconciles",
-    "compare_outputs", "compare_run_folders", "describe_inputs", "movement", "package_versions",
+    "check_inputs_unchanged", "compare_outputs", "compare_run_folders", "describe_inputs", "judge_reproduction",
+    "movement", "movement_against_run", "reproduction_name", "package_versions",
     "read_manifest", "run_name", "sha256_file", "write_table",
 ]  # fmt: skip

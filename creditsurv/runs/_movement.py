@@ -47,9 +47,9 @@ import pandas as pd
 
 from ..config import WEIGHTED
 from ..errors import RunError, problem_list
-from ._folder import MANIFEST
+from ._folder import MANIFEST, read_manifest
 
-__all__ = ["MovementResult", "check_walk_reconciles", "compare_run_folders", "movement"]
+__all__ = ["MovementResult", "check_walk_reconciles", "compare_run_folders", "movement", "movement_against_run"]
 
 LOAN_TABLE = "loan_ecl.parquet"
 STAGES = (1, 2, 3)
@@ -547,3 +547,11 @@ def compare_run_folders(run_a: Path, run_b: Path, *, segment_column: str = "segm
     _raise(problems_a + problems_b, "the runs to compare")
     labels = (f"{run_a / LOAN_TABLE} (run A)", f"{run_b / LOAN_TABLE} (run B)")
     return _movement(loans_a, loans_b, weights_a, weights_b, segment_column, labels)
+
+
+def movement_against_run(prior_run, loans_b: pd.DataFrame, weights_b: Mapping[str, float]) -> MovementResult:
+    """The movement from a finished prior run to this run's loan table (``outputs.prior_run``)."""
+    prior = read_manifest(prior_run)
+    loans_a = pd.read_parquet(Path(prior_run) / LOAN_TABLE)
+    weights_a = prior.get("scenario_weights") or {s["name"]: s["weight"] for s in prior["config_resolved"]["scenarios"]}
+    return movement(loans_a, loans_b, weights_a, weights_b)
