@@ -100,6 +100,23 @@ def panel_config_factory(tmp_path):
     return factory
 
 
+SIMULATED_LOANS, SIMULATED_SEED = 8000, 2718
+
+
+@pytest.fixture(scope="session")
+def simulated_book(tmp_path_factory):
+    """The one simulated book of the integration tests: 8,000 loans of the demo simulator, seed 2718.
+
+    Enough defaults for the demo model's 10 terms and for the backtest to have power; the tests that need other
+    sizes (parameter recovery as the book grows) write their own.
+    """
+    from creditsurv.demo import write_demo_book
+
+    folder = tmp_path_factory.mktemp("simulated_book")
+    write_demo_book(folder, SIMULATED_LOANS, SIMULATED_SEED)
+    return folder
+
+
 def demo_config_data(book: Path, reports: Path) -> dict:
     """``configs/demo.yaml`` as a dict, its inputs and scenarios pointed at ``book``
     (a folder written by ``write_demo_book``) and its runs at ``reports``."""

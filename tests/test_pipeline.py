@@ -14,7 +14,6 @@ from conftest import demo_config_data
 import creditsurv
 from creditsurv import pipeline
 from creditsurv.cli import main
-from creditsurv.demo import write_demo_book
 from creditsurv.errors import DataCheckWarning
 from creditsurv.runs import MANIFEST, sha256_file
 
@@ -22,11 +21,8 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 @pytest.fixture(scope="session")
-def small_book(tmp_path_factory):
-    """A 6,000-loan book of the simulator (enough defaults for the demo model's 10 terms)."""
-    folder = tmp_path_factory.mktemp("book")
-    write_demo_book(folder, 6000, 314)
-    return folder
+def small_book(simulated_book):
+    return simulated_book
 
 
 def _config(book: Path, tmp: Path, outputs=None, **model) -> Path:

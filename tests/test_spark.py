@@ -25,9 +25,8 @@ from test_panel import BAD_BOOKS, MACRO_COVARIATE  # noqa: E402 - the crafted ba
 
 from creditsurv import pipeline  # noqa: E402
 from creditsurv.config import SparkSettings, load_config, run_context  # noqa: E402
-from creditsurv.demo import write_demo_book  # noqa: E402
 from creditsurv.engines import Engine, open_engine, spark_session, spark_sql  # noqa: E402
-from creditsurv.errors import DataCheckError, FewEventsWarning  # noqa: E402
+from creditsurv.errors import DataCheckError  # noqa: E402
 from creditsurv.loss import expected_credit_loss_by_partition  # noqa: E402
 from creditsurv.model import hazard_source  # noqa: E402
 
@@ -48,10 +47,9 @@ def spark():
 
 
 @pytest.fixture(scope="session")
-def spark_book(tmp_path_factory):
+def spark_book(simulated_book, tmp_path_factory):
     folder = tmp_path_factory.mktemp("spark_book")
-    write_demo_book(folder, 3000, 314)
-    data = demo_config_data(folder, folder / "reports")
+    data = demo_config_data(simulated_book, folder / "reports")
     data["spark"] = {"master": "local[2]", "partitions": 3}
     path = folder / "config.yaml"
     path.write_text(yaml.safe_dump(data, sort_keys=False))
@@ -84,8 +82,7 @@ def _run(cfg, tmp, engine_name, reference_model=None):
     engine, checks = pipeline.open_checked(cfg)
     with engine:
         assert engine.name == engine_name and isinstance(engine, Engine)
-        with pytest.warns(FewEventsWarning):  # 3,000 loans give few defaults for 10 terms
-            model = hazard_source(cfg, engine, tmp)
+        model = hazard_source(cfg, engine, tmp)
         book, history, counts = engine.book_at_as_of(cfg.segments.column), engine.macro_history(), engine.event_counts()
         for name, key in _EVENT_TABLES:
             out[name] = engine.frame(f"SELECT * FROM {name} ORDER BY {key}")
@@ -224,10 +221,8 @@ def test_a_whole_run_on_spark_writes_the_same_tables(spark, spark_book, tmp_path
     # the PD table equal the DuckDB engine's run of the same config.
     duck = dataclasses.replace(spark_book, engine="duckdb")
     on_spark = dataclasses.replace(spark_book, engine="spark")
-    with pytest.warns(FewEventsWarning):
-        a = pipeline.execute_run(duck, tmp_path / "duckdb").path
-    with pytest.warns(FewEventsWarning):
-        b = pipeline.execute_run(on_spark, tmp_path / "spark").path
+    a = pipeline.execute_run(duck, tmp_path / "duckdb").path
+    b = pipeline.execute_run(on_spark, tmp_path / "spark").path
     la, lb = pd.read_parquet(a / "loan_ecl.parquet"), pd.read_parquet(b / "loan_ecl.parquet")
     assert list(la["loan_id"]) == list(lb["loan_id"]) and list(la["stage"]) == list(lb["stage"])
     for col in ("pd_12m", "pd_lifetime", "ead", "lgd", "ecl_12m", "ecl_lifetime", "ecl_reported"):
@@ -238,4 +233,12 @@ def test_a_whole_run_on_spark_writes_the_same_tables(spark, spark_book, tmp_path
     tables = sorted(p.name for p in (a / "validation").glob("*.csv"))
     assert len(tables) >= 8 and tables == sorted(p.name for p in (b / "validation").glob("*.csv"))
     for name in tables:
-        _close(pd.read_csv(a / "validation" / name), pd.read_csv(b / "validation" / name), atol=PROB_ATOL)
+        va, vb = pd.read_csv(a / "validation" / name), pd.read_csv(b / "validation" / name)
+        if name == "stability.csv":
+            # More development rows than the stability sample holds: each engine draws its
+            # one-in-k rows with its own SQL hash (docs/scaling.md), so the indices of the
+            # sampled inputs differ; the variables and the unsampled current rows agree.
+            assert list(va["variable"]) == list(vb["variable"])
+            _close(va[["variable", "n_current"]], vb[["variable", "n_current"]])
+            continue
+        _close(va, vb, atol=PROB_ATOL)

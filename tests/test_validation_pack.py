@@ -20,7 +20,7 @@ from statsmodels.duration.survfunc import CumIncidenceRight
 
 from creditsurv import pipeline
 from creditsurv.config import load_config
-from creditsurv.demo import DEFAULT_MIN_AGE, true_hazard, write_demo_book
+from creditsurv.demo import DEFAULT_MIN_AGE, true_hazard
 from creditsurv.errors import FewEventsWarning
 from creditsurv.model import BenchmarkCurves, hazard_source
 from creditsurv.months import parse_month
@@ -80,11 +80,9 @@ def _config(book: Path, tmp: Path, *, model=None, **top):
 
 
 @pytest.fixture(scope="session")
-def book(tmp_path_factory):
-    """An 8,000-loan simulated book: enough events for the backtest to have power."""
-    folder = tmp_path_factory.mktemp("pack_book")
-    write_demo_book(folder, 8000, 2718)
-    return folder
+def book(simulated_book):
+    """The shared simulated book (conftest): enough events for the backtest to have power."""
+    return simulated_book
 
 
 @pytest.fixture(scope="module")
