@@ -303,3 +303,49 @@ def test_weighted_schedule_rows_keep_the_product_identity():
     total = s.groupby(["loan_id", "scenario"], observed=True)["expected_loss"].sum()
     t = res.loans.set_index("loan_id")
     assert total[("A", WEIGHTED)] == pytest.approx(t.loc["A", "ecl_lifetime"], rel=1e-12)
+
+
+def test_partitions_combined_from_their_sums_equal_the_whole_book():
+    # Invariant: the ECL of a book does not depend on how an engine splits it. Per-loan
+    # values are the same rows; the segment tables are built from pooled sums. The
+    # partitions differ in their segments (the last has no 'subprime' loan) and their
+    # horizons (its loans mature sooner), which the pooling must align.
+    from creditsurv.loss import combine_partitions
+
+    rng = np.random.default_rng(3)
+    n = 90
+    age = rng.integers(0, 40, n)
+    term = age + rng.integers(1, 90, n)
+    book = pd.DataFrame(
+        {
+            "loan_id": [f"L{i:03d}" for i in range(n)],
+            "segment": np.where(np.arange(n) < 60, rng.choice(["prime", "subprime"], n), "prime"),
+            "age": age,
+            "term": np.where(np.arange(n) < 60, term, age + rng.integers(1, 20, n)),
+            "note_rate": rng.uniform(0.0, 0.08, n).round(4),
+            "balance": rng.uniform(1_000, 50_000, n).round(2),
+            "original_balance": 60_000.0,
+            "property_value": 90_000.0,
+            "origination_idx": AS_OF - age,
+            "region": "North",
+            "days_past_due": rng.choice([0, 0, 0, 45], n),
+            "pd0": 0.2,
+            "score": rng.integers(550, 800, n),
+        }
+    )
+    hazards = pd.DataFrame({"age": np.arange(1, 200), "default": np.linspace(0.002, 0.02, 199), "prepay": 0.015})
+    paths = {"base": _flat_macro(last=AS_OF + 200), "down": _flat_macro(last=AS_OF + 200)}
+    options = dict(
+        as_of_idx=AS_OF, weights={"base": 0.7, "down": 0.3}, loss=_loss(), staging=STAGING,
+        band_column="score", band_edges=(640.0, 720.0),
+    )
+    whole = expected_credit_loss(book, HazardTable(hazards), paths, **options)
+    parts = [expected_credit_loss(book.iloc[a:b], HazardTable(hazards), paths, **options) for a, b in ((0, 30), (30, 60), (60, n))]
+    combined = combine_partitions(parts)
+    assert combine_partitions([whole]) is whole
+    pd.testing.assert_frame_equal(combined.loans, whole.loans)
+    pd.testing.assert_frame_equal(combined.segments, whole.segments, check_exact=False, rtol=1e-12)
+    for name in ("term_structure", "speeds", "speed_multiples"):
+        pd.testing.assert_frame_equal(
+            getattr(combined.projection, name), getattr(whole.projection, name), check_exact=False, rtol=1e-10, atol=1e-15
+        )

@@ -6,6 +6,7 @@ from ._projection import (
     Curves,
     MacroLookup,
     ProjectionResult,
+    SegmentSums,
     TableWriter,
     check_coverage,
     loan_list_text,
@@ -24,7 +25,7 @@ from ._projection import (
 from ._scenarios import extend_path, extend_paths, load_scenario_paths, prepare_paths
 
 __all__ = [
-    "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "ProjectionResult", "TableWriter", "check_coverage",
+    "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "ProjectionResult", "SegmentSums", "TableWriter", "check_coverage",
     "extend_path", "extend_paths", "load_scenario_paths", "loan_list_text", "origination_pd", "prepare_paths", "project_loans",
     "repeat_ids", "scenario_column", "scenario_weights", "score_band_labels",
     "segment_level", "segment_pd_tables", "segment_speeds", "speeds_frames", "term_structure_frame",

@@ -68,6 +68,7 @@ __all__ = [
     "project_loans",
     "origination_pd",
     "ProjectionResult",
+    "SegmentSums",
     "ChunkProjection",
     "TableWriter",
     "MacroLookup",
@@ -362,6 +363,33 @@ class ChunkProjection:
 
 
 @dataclass
+class SegmentSums:
+    """The pooled sums behind a projection's segment tables, before they become ratios.
+
+    Partitions of a book add these (padded to the longest horizon) and the
+    tables are built once from the totals, so no ratio is multiplied back out.
+
+    Attributes
+    ----------
+    segments, labels : tuple of str
+        Segment names and score band labels; group g = segment * len(labels) + band.
+    term : dict of str to ndarray (scenarios + weighted, groups, years ahead)
+        ``n``, ``bal`` (loans and balance), ``F_n``, ``F_b`` (cumulative PD), ``S_n``,
+        ``S_b`` (survival) and ``Sp_n``, ``Sp_b`` (survival at the start of the year),
+        count- and balance-weighted. Past a loan's maturity its values stay at
+        their final ones.
+    speed : dict of str to ndarray (scenarios + weighted, groups, loan age)
+        Expected balances ``dexp``, ``dflt``, ``pexp``, ``ppay`` (default exposure,
+        defaulted, prepayment exposure, prepaid).
+    """
+
+    segments: tuple[str, ...]
+    labels: tuple[str, ...]
+    term: dict
+    speed: dict
+
+
+@dataclass
 class ProjectionResult:
     """Per-loan summaries and segment aggregates of a projection.
 
@@ -389,6 +417,8 @@ class ProjectionResult:
         multiples (weighted least squares in CPR / CDR units, exposure weights).
     band_edges : tuple of float
         The score band edges the ``band`` labels come from.
+    sums : SegmentSums or None
+        The pooled sums behind ``term_structure`` and ``speeds``.
     """
 
     loans: pd.DataFrame
@@ -399,6 +429,7 @@ class ProjectionResult:
     weights: dict[str, float]
     as_of_idx: int
     band_edges: tuple = ()
+    sums: SegmentSums | None = None
 
 
 class TableWriter:
@@ -731,6 +762,7 @@ def project_loans(
     return ProjectionResult(
         loans=loans_out, term_structure=term_structure, speeds=speeds, speed_multiples=multiples,
         scenarios=scenarios, weights=w, as_of_idx=int(as_of_idx), band_edges=tuple(band_edges),
+        sums=SegmentSums(tuple(seg_names), tuple(labels), ts, sp),
     )
 
 

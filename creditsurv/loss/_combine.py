@@ -17,6 +17,7 @@ import pandas as pd
 from ..forecast import (
     WEIGHTED,
     ProjectionResult,
+    SegmentSums,
     score_band_labels,
     speeds_frames,
     term_structure_frame,
@@ -26,70 +27,42 @@ from ._ecl import EclResult, expected_credit_loss, segment_summary
 __all__ = ["combine_partitions", "expected_credit_loss_by_partition"]
 
 
-def _term_sums(parts, names, seg_names, labels):
-    """Pooled sums of the segment term structure, rebuilt from each partition's table and added.
+def _in_groups(array: np.ndarray, segments, seg_at: dict, nb: int, G: int, length: int, pad_last: bool) -> np.ndarray:
+    """A partition's (K, groups, length_p) sums placed in the combined groups and padded to ``length``.
 
-    A partition's table holds ratios of its sums (``cumulative_pd_count`` = F_n / n
-    and so on), so multiplying back by ``n_loans`` or ``balance`` gives its sums.
-    Past a partition's last year its loans have matured: their sums stay at the
-    last year's values. ``Sp`` (survival at the start of the year) is S one year
-    earlier, and n or balance in the first year.
+    ``pad_last`` repeats the last column (matured loans keep their final values); otherwise zeros.
     """
-    K, nb = len(names), len(labels)
+    K, _, n = array.shape
+    out = np.zeros((K, G, length))
+    rows = np.array([seg_at[s] * nb + b for s in segments for b in range(nb)], dtype=np.int64)
+    out[:, rows, :n] = array
+    if pad_last and 0 < n < length:
+        out[:, rows, n:] = array[:, :, n - 1: n]
+    return out
+
+
+def _pooled(sums: list[SegmentSums], names, seg_names, labels, weights):
+    """The partitions' term and speed sums added in the combined groups; survival at year start and
+    the weighted speeds recomputed from the totals."""
+    nb = len(labels)
     G = max(len(seg_names), 1) * nb
-    years = max((int(t["year_ahead"].max()) for t in parts if len(t)), default=0)
-    ts = {key: np.zeros((K, G, years)) for key in ("n", "bal", "F_n", "F_b", "S_n", "S_b")}
     seg_at = {s: i for i, s in enumerate(seg_names)}
-    band_at = {b: i for i, b in enumerate(labels)}
-    name_at = {s: i for i, s in enumerate(names)}
-    for t in parts:
-        if not len(t):
-            continue
-        ki = t["scenario"].map(name_at).to_numpy()
-        g = t["segment"].astype(str).map(seg_at).to_numpy() * nb + t["band"].map(band_at).to_numpy()
-        y = t["year_ahead"].to_numpy() - 1
-        n = t["n_loans"].to_numpy(dtype=float)
-        bal = t["balance"].to_numpy(dtype=float)
-        values = {
-            "n": n,
-            "bal": bal,
-            "F_n": t["cumulative_pd_count"].to_numpy() * n,
-            "F_b": np.where(bal > 0, t["cumulative_pd_balance"].to_numpy() * bal, 0.0),
-            "S_n": t["survival_count"].to_numpy() * n,
-            "S_b": np.where(bal > 0, t["survival_balance"].to_numpy() * bal, 0.0),
-        }
-        last = int(y.max())
-        part = {k: np.zeros((K, G, years)) for k in ts}
-        for k, v in values.items():
-            part[k][ki, g, y] = v
-            part[k][:, :, last + 1:] = part[k][:, :, last: last + 1]
-            ts[k] += part[k]
+    years = max((x.term["n"].shape[2] for x in sums), default=0)
+    max_age = max((x.speed["dexp"].shape[2] for x in sums), default=1) - 1
+    ts = {k: np.zeros((len(names), G, years)) for k in ("n", "bal", "F_n", "F_b", "S_n", "S_b")}
+    sp = {k: np.zeros((len(names), G, max_age + 1)) for k in ("dexp", "dflt", "pexp", "ppay")}
+    for x in sums:
+        segments = x.segments if x.segments else (seg_names[0],)
+        for k in ts:
+            ts[k] += _in_groups(x.term[k], segments, seg_at, nb, G, years, pad_last=True)
+        for k in sp:
+            sp[k] += _in_groups(x.speed[k], segments, seg_at, nb, G, max_age + 1, pad_last=False)
     ts["Sp_n"] = np.concatenate([ts["n"][:, :, :1], ts["S_n"][:, :, :-1]], axis=2)
     ts["Sp_b"] = np.concatenate([ts["bal"][:, :, :1], ts["S_b"][:, :, :-1]], axis=2)
-    return ts, years
-
-
-def _speed_sums(parts, names, seg_names, labels, weights):
-    """Pooled expected balances of the segment speeds, added over partitions; ``weighted`` recomputed."""
-    K, nb = len(names), len(labels)
-    G = max(len(seg_names), 1) * nb
-    max_age = max((int(t["loan_age"].max()) for t in parts if len(t)), default=0)
-    sp = {key: np.zeros((K, G, max_age + 1)) for key in ("dexp", "dflt", "pexp", "ppay")}
-    columns = {"dexp": "default_exposure", "dflt": "defaulted", "pexp": "prepay_exposure", "ppay": "prepaid"}
-    seg_at = {s: i for i, s in enumerate(seg_names)}
-    band_at = {b: i for i, b in enumerate(labels)}
-    for t in parts:
-        if not len(t):
-            continue
-        t = t[t["scenario"] != names[-1]]
-        ki = t["scenario"].map({s: i for i, s in enumerate(names)}).to_numpy()
-        g = t["segment"].astype(str).map(seg_at).to_numpy() * nb + t["band"].map(band_at).to_numpy()
-        age = t["loan_age"].to_numpy()
-        for key, col in columns.items():
-            np.add.at(sp[key], (ki, g, age), t[col].to_numpy(dtype=float))
-    for key in sp:
-        sp[key][K - 1] = sum(weights[s] * sp[key][ki] for ki, s in enumerate(names[:-1]))
-    return sp, max_age
+    K = len(names)
+    for k in sp:
+        sp[k][K - 1] = sum(weights[s] * sp[k][ki] for ki, s in enumerate(names[:-1]))
+    return ts, years, sp, max_age
 
 
 def combine_partitions(results: list[EclResult]) -> EclResult:
@@ -111,14 +84,14 @@ def combine_partitions(results: list[EclResult]) -> EclResult:
     loans = pd.concat([r.loans for r in results], ignore_index=True)
     proj_loans = pd.concat([r.projection.loans for r in results], ignore_index=True)
     seg_names = sorted({str(s) for s in proj_loans["segment"]})
-    ts, years = _term_sums([r.projection.term_structure for r in results], names, seg_names, labels)
-    sp, max_age = _speed_sums([r.projection.speeds for r in results], names, seg_names, labels, weights)
+    sums = [r.projection.sums for r in results]
+    ts, years, sp, max_age = _pooled(sums, names, seg_names, labels, weights)
     term_structure = term_structure_frame(ts, names, seg_names, labels, years)
     speeds, multiples = speeds_frames(sp, names, seg_names, labels, max_age)
     projection = ProjectionResult(
         loans=proj_loans, term_structure=term_structure, speeds=speeds, speed_multiples=multiples,
         scenarios=tuple(scenarios), weights=dict(weights), as_of_idx=first.projection.as_of_idx,
-        band_edges=tuple(band_edges),
+        band_edges=tuple(band_edges), sums=SegmentSums(tuple(seg_names), tuple(labels), ts, sp),
     )
     return EclResult(loans=loans, segments=segment_summary(loans), projection=projection,
                      scenarios=tuple(scenarios), weights=dict(weights))
