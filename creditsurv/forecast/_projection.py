@@ -567,6 +567,82 @@ def _year_index(H: int, years: int) -> np.ndarray:
     return np.minimum(12 * np.arange(1, years + 1), H) - 1
 
 
+class _SegmentPool:
+    """Per-loan PD summaries and the pooled segment sums of a projection, added chunk by chunk.
+
+    Groups are segment x score band: ``group = segment code * bands + band code``.
+    ``add`` takes one chunk's curves; ``finish`` weights the speeds and returns
+    the :class:`SegmentSums` the segment tables are built from.
+    """
+
+    def __init__(self, book, frame, names, segment_column, band_column, band_edges):
+        n_all = len(frame)
+        seg_code, seg_levels = pd.factorize(frame[segment_column].astype(str), sort=True)
+        self.labels = score_band_labels(tuple(band_edges))
+        if band_column is not None and band_edges:
+            self.band_code = np.searchsorted(np.asarray(band_edges, float), frame[band_column].to_numpy(float), side="right")
+        else:
+            self.band_code = np.zeros(n_all, dtype=np.int64)
+        n_band = len(self.labels)
+        self.group = seg_code * n_band + self.band_code
+        self.segments = tuple(str(x) for x in seg_levels)
+        self.G = G = max(len(seg_levels), 1) * n_band
+        self.names = names
+        K = len(names)
+        self.years = years = int(math.ceil(book.remaining.max() / 12)) if n_all else 0
+        self.max_age = max_age = int((book.age + book.remaining).max()) if n_all else 0
+        self.ts = {key: np.zeros((K, G, years)) for key in ("n", "bal", "F_n", "F_b", "S_n", "S_b", "Sp_n", "Sp_b")}
+        self.sp = {key: np.zeros((K, G, max_age + 1)) for key in ("dexp", "dflt", "pexp", "ppay")}
+        self.summary = {f"{m}_{s}": np.zeros(n_all) for s in names for m in ("pd_12m", "pd_lifetime", "prepay_lifetime")}
+        self.balance = book.balance
+
+    def add(self, sl: slice, curves, haz, mask, bal_start, bal_end, ages) -> None:
+        """Add the loans ``sl`` of one chunk: their 12-month and lifetime PDs, term and speed sums."""
+        ts, sp, summary, G, max_age = self.ts, self.sp, self.summary, self.G, self.max_age
+        n, H = mask.shape
+        i12 = min(12, H) - 1
+        yidx = _year_index(H, self.years)
+        grp = self.group[sl]
+        onehot = np.zeros((G, n))
+        onehot[grp, np.arange(n)] = 1.0
+        bal0 = self.balance[sl]
+        onehot_b = onehot * bal0[None, :]
+        key = (grp[:, None] * (max_age + 1) + ages)[mask]
+        for ki, s in enumerate(self.names):
+            c = curves[s]
+            s_prev, surv, F_d, F_p, marg_d, marg_p = (
+                c.survival_prev, c.survival, c.cum_default, c.cum_prepay, c.marginal_default, c.marginal_prepay
+            )
+            summary[f"pd_12m_{s}"][sl] = F_d[:, i12]
+            summary[f"pd_lifetime_{s}"][sl] = F_d[:, -1]
+            summary[f"prepay_lifetime_{s}"][sl] = F_p[:, -1]
+            Fy, Sy = F_d[:, yidx], surv[:, yidx]
+            Sy_prev = np.concatenate([np.ones((n, 1)), Sy[:, :-1]], axis=1)
+            for tag, oh in (("n", onehot), ("b", onehot_b)):
+                ts["F_" + tag][ki] += oh @ Fy
+                ts["S_" + tag][ki] += oh @ Sy
+                ts["Sp_" + tag][ki] += oh @ Sy_prev
+            ts["n"][ki] += onehot.sum(axis=1)[:, None]
+            ts["bal"][ki] += onehot_b.sum(axis=1)[:, None]
+            if s != WEIGHTED:
+                hd, hp = haz[s]
+                size = G * (max_age + 1)
+                for name, vals in (
+                    ("dexp", s_prev * bal_start),
+                    ("dflt", marg_d * bal_start),
+                    ("pexp", s_prev * (1.0 - hd) * bal_end),
+                    ("ppay", marg_p * bal_end),
+                ):
+                    sp[name][ki] += np.bincount(key, weights=vals[mask], minlength=size).reshape(G, max_age + 1)
+
+    def finish(self, weights, scenarios) -> SegmentSums:
+        """The pooled sums, the weighted speeds computed from the scenarios' (linear in the expected balances)."""
+        K = len(self.names)
+        for name in self.sp:
+            self.sp[name][K - 1] = sum(weights[s] * self.sp[name][ki] for ki, s in enumerate(scenarios))
+        return SegmentSums(self.segments, tuple(self.labels), self.ts, self.sp)
+
+
 def project_loans(
     loans: pd.DataFrame,
     source,
@@ -658,23 +734,8 @@ def project_loans(
 
     frame = book.frame
     n_all = len(frame)
-    seg_code, seg_levels = pd.factorize(frame[segment_column].astype(str), sort=True)
-    labels = score_band_labels(tuple(band_edges))
-    if band_column is not None and band_edges:
-        band_code = np.searchsorted(np.asarray(band_edges, float), frame[band_column].to_numpy(float), side="right")
-    else:
-        band_code = np.zeros(n_all, dtype=np.int64)
-    n_band = len(labels)
-    group = seg_code * n_band + band_code
-    G = max(len(seg_levels), 1) * n_band
     names = (*scenarios, WEIGHTED)
-    K = len(names)
-    years = int(math.ceil(book.remaining.max() / 12)) if n_all else 0
-    max_age = int((book.age + book.remaining).max()) if n_all else 0
-    ts = {key: np.zeros((K, G, years)) for key in ("n", "bal", "F_n", "F_b", "S_n", "S_b", "Sp_n", "Sp_b")}
-    sp = {key: np.zeros((K, G, max_age + 1)) for key in ("dexp", "dflt", "pexp", "ppay")}
-    summary = {f"{m}_{s}": np.zeros(n_all) for s in names for m in ("pd_12m", "pd_lifetime", "prepay_lifetime")}
-    bal_all = book.balance
+    pooled = _SegmentPool(book, frame, names, segment_column, band_column, band_edges)
 
     for start in range(0, n_all, chunk_size):
         sl = slice(start, min(start + chunk_size, n_all))
@@ -686,41 +747,8 @@ def project_loans(
         curves[WEIGHTED] = Curves.weighted(curves, {s: w[s] for s in scenarios})
         haz[WEIGHTED] = curves[WEIGHTED].hazards()
 
-        i12 = min(12, H) - 1
-        yidx = _year_index(H, years)
-        grp = group[sl]
-        onehot = np.zeros((G, n))
-        onehot[grp, np.arange(n)] = 1.0
-        bal0 = bal_all[sl]
-        onehot_b = onehot * bal0[None, :]
         ages = book.age[sl][:, None] + np.arange(1, H + 1)[None, :]
-        key = (grp[:, None] * (max_age + 1) + ages)[mask]
-        for ki, s in enumerate(names):
-            c = curves[s]
-            s_prev, surv, F_d, F_p, marg_d, marg_p = (
-                c.survival_prev, c.survival, c.cum_default, c.cum_prepay, c.marginal_default, c.marginal_prepay
-            )
-            summary[f"pd_12m_{s}"][sl] = F_d[:, i12]
-            summary[f"pd_lifetime_{s}"][sl] = F_d[:, -1]
-            summary[f"prepay_lifetime_{s}"][sl] = F_p[:, -1]
-            Fy, Sy = F_d[:, yidx], surv[:, yidx]
-            Sy_prev = np.concatenate([np.ones((n, 1)), Sy[:, :-1]], axis=1)
-            for tag, oh in (("n", onehot), ("b", onehot_b)):
-                ts["F_" + tag][ki] += oh @ Fy
-                ts["S_" + tag][ki] += oh @ Sy
-                ts["Sp_" + tag][ki] += oh @ Sy_prev
-            ts["n"][ki] += onehot.sum(axis=1)[:, None]
-            ts["bal"][ki] += onehot_b.sum(axis=1)[:, None]
-            if s != WEIGHTED:
-                hd, hp = haz[s]
-                size = G * (max_age + 1)
-                for name, vals in (
-                    ("dexp", s_prev * bal_start),
-                    ("dflt", marg_d * bal_start),
-                    ("pexp", s_prev * (1.0 - hd) * bal_end),
-                    ("ppay", marg_p * bal_end),
-                ):
-                    sp[name][ki] += np.bincount(key, weights=vals[mask], minlength=size).reshape(G, max_age + 1)
+        pooled.add(sl, curves, haz, mask, bal_start, bal_end, ages)
 
         if curve_writer is not None:
             curve_writer(_curve_table(book.loan_id[sl], names, curves, haz, mask, ages))
@@ -741,28 +769,24 @@ def project_loans(
                 )
             )
 
-    # weighted speeds: linear in the expected balances
-    for name in sp:
-        sp[name][K - 1] = sum(w[s] * sp[name][ki] for ki, s in enumerate(scenarios))
-
+    sums = pooled.finish(w, scenarios)
     loans_out = pd.DataFrame(
         {
             "loan_id": book.loan_id,
             "segment": frame[segment_column].to_numpy(),
-            "band": np.asarray(labels, dtype=object)[band_code],
+            "band": np.asarray(sums.labels, dtype=object)[pooled.band_code],
             "age": book.age,
             "remaining_term": book.remaining,
             "balance": book.balance,
-            **summary,
+            **pooled.summary,
         }
     )
-    seg_names = [str(x) for x in seg_levels]
-    term_structure = term_structure_frame(ts, names, seg_names, labels, years)
-    speeds, multiples = speeds_frames(sp, names, seg_names, labels, max_age)
+    term_structure = term_structure_frame(sums.term, names, list(sums.segments), list(sums.labels), pooled.years)
+    speeds, multiples = speeds_frames(sums.speed, names, list(sums.segments), list(sums.labels), pooled.max_age)
     return ProjectionResult(
         loans=loans_out, term_structure=term_structure, speeds=speeds, speed_multiples=multiples,
         scenarios=scenarios, weights=w, as_of_idx=int(as_of_idx), band_edges=tuple(band_edges),
-        sums=SegmentSums(tuple(seg_names), tuple(labels), ts, sp),
+        sums=sums,
     )
 
 

@@ -279,6 +279,49 @@ class _EclAccumulator:
             )
 
 
+def _pd_at_origination(
+    frame, live, live_rows, in_default, staging, source, first_path, *, chunk_size, hpi_series, region_column,
+    market_rate_series,
+) -> np.ndarray:
+    """Lifetime PD at origination per loan: the configured column, or projected with the origination month's information."""
+    if staging.pd_at_origination_column:
+        col = staging.pd_at_origination_column
+        if col not in frame.columns:
+            raise ProjectionError(f"staging.pd_at_origination_column: loans have no column {col!r}")
+        pd_orig = frame[col].to_numpy(dtype=float)
+        bad = ~((pd_orig >= 0) & (pd_orig <= 1))
+        if (bad & ~in_default).any():
+            raise ProjectionError(f"loans: {col!r} is not a probability in [0, 1] for {loan_list_text(frame['loan_id'][bad & ~in_default])}")
+        return pd_orig
+    pd_orig = np.full(len(frame), np.nan)
+    if len(live):
+        po = origination_pd(
+            live, source, first_path, chunk_size=chunk_size, hpi_series=hpi_series,
+            region_column=region_column, market_rate_series=market_rate_series,
+        )
+        pd_orig[live_rows] = po.to_numpy()
+    return pd_orig
+
+
+def _lgd_at_reporting_month(frame, ead0, rate, lookup, lgd_cfg, region_column, hpi_names, as_of_idx) -> np.ndarray:
+    """LGD of a default at the reporting month (the stage-3 basis) under one scenario's house prices."""
+    n = len(frame)
+    if lgd_cfg.kind == "constant":
+        return np.array([lgd_cfg.by_segment.get(str(x), lgd_cfg.constant) for x in frame["segment"]], dtype=float)
+    hs, ho = np.empty(n), np.empty(n)
+    reg = frame[region_column].to_numpy()
+    orig = frame["origination_idx"].to_numpy(dtype=np.int64)
+    for region, name in hpi_names.items():
+        rows = reg == region
+        hs[rows] = lookup.get(name, np.full(rows.sum(), as_of_idx + lgd_cfg.months_to_recovery))
+        ho[rows] = lookup.get(name, orig[rows])
+    return collateral_lgd(
+        ead0, frame["property_value"].to_numpy(float), ho, hs, rate,
+        months_to_recovery=lgd_cfg.months_to_recovery, forced_sale_haircut=lgd_cfg.forced_sale_haircut,
+        sale_costs=lgd_cfg.sale_costs, floor=lgd_cfg.floor,
+    )
+
+
 def expected_credit_loss(
     loans: pd.DataFrame,
     source,
@@ -400,24 +443,10 @@ def expected_credit_loss(
         cols[f"ecl_12m_{s}"][live_rows] = acc.ecl_12m[s]
         cols[f"ecl_lifetime_{s}"][live_rows] = acc.ecl_life[s]
 
-    # PD at origination: given, or projected with the origination month's information
-    if staging.pd_at_origination_column:
-        col = staging.pd_at_origination_column
-        if col not in frame.columns:
-            raise ProjectionError(f"staging.pd_at_origination_column: loans have no column {col!r}")
-        pd_orig = frame[col].to_numpy(dtype=float)
-        bad = ~((pd_orig >= 0) & (pd_orig <= 1))
-        if (bad & ~in_default).any():
-            raise ProjectionError(f"loans: {col!r} is not a probability in [0, 1] for {loan_list_text(frame['loan_id'][bad & ~in_default])}")
-    else:
-        pd_orig = np.full(n, np.nan)
-        if len(live):
-            first = paths[scenarios[0]]
-            po = origination_pd(
-                live, source, first, chunk_size=chunk_size, hpi_series=hpi_series,
-                region_column=region_column, market_rate_series=market_rate_series,
-            )
-            pd_orig[live_rows] = po.to_numpy()
+    pd_orig = _pd_at_origination(
+        frame, live, live_rows, in_default, staging, source, paths[scenarios[0]],
+        chunk_size=chunk_size, hpi_series=hpi_series, region_column=region_column, market_rate_series=market_rate_series,
+    )
 
     stage, reason = allocate_stages(cols[f"pd_lifetime_{WEIGHTED}"], pd_orig, dpd, in_default, staging)
 
@@ -425,24 +454,7 @@ def expected_credit_loss(
     balance = frame["balance"].to_numpy(dtype=float)
     rate = frame["note_rate"].to_numpy(dtype=float)
     ead0 = balance * (1.0 + rate / 12.0) if loss.accrued_interest else balance
-    lgd0 = {}
-    for s in scenarios:
-        if lgd_cfg.kind == "constant":
-            lgd0[s] = np.array([lgd_cfg.by_segment.get(str(x), lgd_cfg.constant) for x in frame["segment"]], dtype=float)
-        else:
-            lk = lookups[s]
-            hs, ho = np.empty(n), np.empty(n)
-            reg = frame[region_column].to_numpy()
-            orig = frame["origination_idx"].to_numpy(dtype=np.int64)
-            for region, name in hpi_names.items():
-                rows = reg == region
-                hs[rows] = lk.get(name, np.full(rows.sum(), as_of_idx + lgd_cfg.months_to_recovery))
-                ho[rows] = lk.get(name, orig[rows])
-            lgd0[s] = collateral_lgd(
-                ead0, frame["property_value"].to_numpy(float), ho, hs, rate,
-                months_to_recovery=lgd_cfg.months_to_recovery, forced_sale_haircut=lgd_cfg.forced_sale_haircut,
-                sale_costs=lgd_cfg.sale_costs, floor=lgd_cfg.floor,
-            )
+    lgd0 = {s: _lgd_at_reporting_month(frame, ead0, rate, lookups[s], lgd_cfg, region_column, hpi_names, as_of_idx) for s in scenarios}
     lgd0[WEIGHTED] = sum(w[s] * lgd0[s] for s in scenarios)
     d = in_default
     for s in names:
