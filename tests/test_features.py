@@ -215,9 +215,15 @@ def test_unknown_reference_level_lists_levels(con):
         _spec(Covariate(name="region", column="region", kind="categorical", reference="nord")).learn(con)
 
 
-def test_bad_bin_reference_is_a_config_error():
-    with pytest.raises(ConfigError, match=r"model.covariates\[0\].reference: '0.2' is not a bin label"):
-        _spec(Covariate(name="d", column="dti", kind="bins", bins=(0.2, 0.3), reference="0.2"))
+def test_bad_bin_reference_is_a_config_error_when_the_config_is_read(panel_clean_book, panel_config_factory):
+    # Visible in the YAML, so raised when the config is read, not at the fit.
+    model = {"covariates": [{"name": "d", "column": "dti", "kind": "bins", "bins": [0.2, 0.3], "reference": "0.2"}]}
+    with pytest.raises(ConfigError) as info:
+        panel_config_factory(*panel_clean_book, model=model)
+    assert (
+        "model.covariates[0]: covariate 'd': reference '0.2' is not a bin label (labels: <0.2, [0.2,0.3), >=0.3); "
+        "did you mean '<0.2'?" in str(info.value)
+    )
 
 
 def test_unknown_level_at_design_time(con):

@@ -34,6 +34,7 @@ from ._config import (
     ValidationSettings,
     Window,
     Windows,
+    bin_labels,
     config_from_dict,
     config_sha256,
     config_to_dict,
@@ -48,5 +49,5 @@ __all__ = [
     "Events", "FitSettings", "Inputs", "LoanColumns", "LoanSource", "Loss", "Lgd", "MacroColumns",
     "MacroSource", "ModelSpec", "Outputs", "PanelColumns", "PanelSource", "Scenario", "ScenarioExtension",
     "Segments", "SparkSettings", "Staging", "ValidationSettings", "Window", "Windows",
-    "config_from_dict", "config_sha256", "config_to_dict", "load_config", "read_yaml", "schema_reference",
+    "bin_labels", "config_from_dict", "config_sha256", "config_to_dict", "load_config", "read_yaml", "schema_reference",
 ]  # fmt: skip

@@ -22,7 +22,7 @@ from typing import Literal
 
 import yaml
 
-from ..errors import ConfigError, problem_list
+from ..errors import ConfigError, did_you_mean, problem_list
 from ..months import format_month
 from ._schema import FilePath, Month, build, describe
 
@@ -220,6 +220,15 @@ class Baseline:
     )
 
 
+def bin_labels(cuts) -> list[str]:
+    """Labels of the bins that inner cut points make: ``<a``, ``[a,b)``, ..., ``>=z`` (the closed side stated)."""
+    c = [float(x) for x in cuts]
+    labels = [f"<{c[0]:g}"]
+    labels += [f"[{lo:g},{hi:g})" for lo, hi in zip(c, c[1:])]
+    labels.append(f">={c[-1]:g}")
+    return labels
+
+
 @dataclass(frozen=True)
 class Covariate:
     """One term of the design: a column or macro series, transformed."""
@@ -251,6 +260,12 @@ class Covariate:
             problems.append(f"covariate {self.name!r}: reference applies to categorical or bins")
         if self.floor is not None and self.cap is not None and self.cap < self.floor:
             problems.append(f"covariate {self.name!r}: cap {self.cap} is below floor {self.floor}")
+        if self.kind == "bins" and self.bins and self.reference is not None and self.reference not in bin_labels(self.bins):
+            labels = bin_labels(self.bins)
+            problems.append(
+                f"covariate {self.name!r}: reference {self.reference!r} is not a bin label (labels: {', '.join(labels)})"
+                + did_you_mean(self.reference, labels)
+            )
         return problems
 
 

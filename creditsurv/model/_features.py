@@ -57,7 +57,8 @@ from typing import Any, Mapping
 import numpy as np
 import pandas as pd
 
-from ..errors import ConfigError, FeatureError, did_you_mean, problem_list
+from ..config import bin_labels
+from ..errors import FeatureError, did_you_mean, problem_list
 from ..sql import quote_ident, quote_literal
 from ._names import macro_key
 from ._schedule import scheduled_balance_sql
@@ -489,7 +490,7 @@ class FeatureSpec:
                 ).fetchall()
                 levels = sorted(r[0] for r in rows)
             elif kind_c == "bins":
-                levels = _bin_labels(c["bins"])
+                levels = bin_labels(c["bins"])
             else:
                 continue
             ref = c.get("reference")
@@ -734,12 +735,6 @@ def _band_labels(edges) -> list[str]:
     return labels
 
 
-def _bin_labels(cuts) -> list[str]:
-    c = [float(x) for x in cuts]
-    labels = [f"<{_fmt(c[0])}"]
-    labels += [f"[{_fmt(lo)},{_fmt(hi)})" for lo, hi in zip(c, c[1:])]
-    labels.append(f">={_fmt(c[-1])}")
-    return labels
 
 
 def _duplicates(names) -> list[str]:
@@ -771,12 +766,11 @@ def _derived_needs(col: str, coll: dict, loans: list[str]) -> str:
 def feature_spec(model, collateral=None) -> FeatureSpec:
     """Build a :class:`FeatureSpec` from the config's ``model`` (a ``ModelSpec``) and ``collateral``.
 
-    Raises :class:`ConfigError` naming ``model.covariates[i]`` for a
-    covariate that cannot enter the design.
+    The config was checked when it was read (bin references, interaction
+    names); problems that need the data are raised by :meth:`FeatureSpec.learn`.
     """
-    problems = []
     covs = []
-    for i, c in enumerate(model.covariates):
+    for c in model.covariates:
         d = {
             "name": c.name,
             "column": c.column,
@@ -789,19 +783,7 @@ def feature_spec(model, collateral=None) -> FeatureSpec:
             "bins": [float(b) for b in c.bins],
             "reference": c.reference,
         }
-        if d["kind"] == "bins" and d["reference"] is not None and d["reference"] not in _bin_labels(d["bins"]):
-            problems.append(
-                f"model.covariates[{i}].reference: {d['reference']!r} is not a bin label "
-                f"(labels: {', '.join(_bin_labels(d['bins']))})" + did_you_mean(d["reference"], _bin_labels(d["bins"]))
-            )
         covs.append(d)
-    names = [c["name"] for c in covs]
-    for i, pair in enumerate(model.interactions):
-        for nm in pair:
-            if nm not in names:
-                problems.append(f"model.interactions[{i}]: {nm!r} is not a covariate name{did_you_mean(nm, names)}")
-    if problems:
-        raise ConfigError(problem_list(problems, "the model section"), problems)
     b = model.baseline
     baseline = {"kind": b.kind, "edges": [int(e) for e in b.edges], "knots": [float(k) for k in b.knots], "max_age": b.max_age}
     coll = {}
