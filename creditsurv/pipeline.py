@@ -154,25 +154,25 @@ def _config_text(cfg) -> str | None:
     return Path(cfg.source).read_text(encoding="utf-8") if cfg.source else None
 
 
-def _manifest_start(cfg, engine, argv, kind: str):
+def _manifest_start(cfg, engine, argv, kind: str, config_text: str | None = None):
+    """The record of a run or fit, started once the inputs are open: id, config, input hashes, versions."""
     from .config import config_sha256, config_to_dict
-    from .runs import base_manifest, describe_inputs, run_name
+    from .runs import describe_inputs, run_name, start_manifest
 
     inputs = describe_inputs(engine.sources, {})
     sha = config_sha256(cfg)
     name = run_name(cfg.as_of, sha, [i["sha256"] for i in inputs])
-    manifest = base_manifest(
-        run_id=f"{kind}_{name}",
+    return start_manifest(
+        kind=kind,
+        run_id=name if kind == "run" else f"{kind}_{name}",
         as_of=cfg.as_of,
         argv=argv,
-        config_text=_config_text(cfg),
+        config_text=config_text if config_text is not None else _config_text(cfg),
         config_resolved=config_to_dict(cfg),
         config_sha256=sha,
         seed=cfg.seed,
+        inputs=inputs,
     )
-    manifest["kind"] = kind
-    manifest["inputs"] = inputs
-    return manifest
 
 
 def _output_parent(cfg, out) -> Path:
@@ -202,14 +202,14 @@ def fit(config, out: Path | None = None, argv=None) -> Outcome:
     with engine:
         manifest = _manifest_start(cfg, engine, argv, "fit")
         parent = _output_parent(cfg, out)
-        with RunFolder(parent, manifest["run_id"]) as run:
+        with RunFolder(parent, manifest.run_id) as run:
             model = hazard_source(cfg, engine, temp_dir=run.path)
             model.save(run.add_file("hazard_model.json"))
             run.add_table(model.summary(), "coefficients.csv")
             run.add_table(checks, "data_checks.csv")
             run.add_table(engine.event_counts(), "event_counts.csv")
-            manifest["model"] = model.record()
-            manifest["data_check_warnings"] = _fired_warnings(checks)
+            manifest.model = model.record()
+            manifest.data_check_warnings = _fired_warnings(checks)
             final = run.commit(manifest)
     text = (
         f"fitted a {model.kind} model: {len(model.params.index)} terms per cause, "
@@ -355,11 +355,8 @@ def execute_run(
     with open_engine(cfg) as engine:
         loaded = preflight(ctx, engine)
         checks = check_and_label(engine)
-        manifest = _manifest_start(cfg, engine, argv, "run")
-        if config_text is not None:
-            manifest["config_as_given"] = config_text
-        manifest["run_id"] = manifest["run_id"].removeprefix("run_")
-        folder = name or manifest["run_id"]
+        manifest = _manifest_start(cfg, engine, argv, "run", config_text)
+        folder = name or manifest.run_id
         with RunFolder(parent, folder) as run:
             work = run.path / "_work"
             work.mkdir()
@@ -380,25 +377,25 @@ def execute_run(
             report_tables["event_counts"] = events
             if coefficients is not None:
                 report_tables["coefficients"] = coefficients
-            manifest["model"] = model.record()
-            manifest["data_check_warnings"] = _fired_warnings(checks)
-            manifest["scenario_weights"] = dict(ctx.weights)
-            manifest["totals"] = totals
+            manifest.model = model.record()
+            manifest.data_check_warnings = _fired_warnings(checks)
+            manifest.scenario_weights = dict(ctx.weights)
+            manifest.totals = totals
             _validate_run(cfg, engine, model, result, run, manifest, report_tables, progress)
             if cfg.outputs.prior_run is not None:
                 _say(progress, "movement against the prior run")
-                movement = movement_against_run(cfg.outputs.prior_run, result.loans, manifest["scenario_weights"])
+                movement = movement_against_run(cfg.outputs.prior_run, result.loans, manifest.scenario_weights)
                 for file, table in movement.to_tables().items():
                     run.add_table(table, file)
                 report_tables["movement_walk"] = movement.walk
                 report_tables["stage_migration"] = movement.migration_matrix("loans").reset_index()
-                manifest["prior_run"] = str(cfg.outputs.prior_run)
+                manifest.prior_run = str(cfg.outputs.prior_run)
             _say(progress, "report")
             _write_report(run, cfg, manifest, report_tables)
             final = run.commit(manifest)
     stage = ", ".join(f"stage {k}: {v:,.2f}" for k, v in totals["by_stage"].items())
     text = (
-        f"reporting month {manifest['as_of']}: {totals['loans']:,} loans, EAD {totals['ead']:,.2f}, "
+        f"reporting month {manifest.as_of}: {totals['loans']:,} loans, EAD {totals['ead']:,.2f}, "
         f"reported ECL {totals['ecl_reported']:,.2f} ({stage})\n"
         f"hazards: {model.describe()}\n"
         f"wrote {final}"
@@ -409,7 +406,7 @@ def execute_run(
 _REPORTED_VALIDATION = ("discrimination", "calibration", "stability", "coefficient_changes", "incidence_by_vintage", "hazard_by_age")
 
 
-def _validate_run(cfg, engine, model, result, run, manifest: dict, report_tables: dict, progress) -> None:
+def _validate_run(cfg, engine, model, result, run, manifest, report_tables: dict, progress) -> None:
     """The validation pack: tables under ``validation/``, summary in the manifest and report."""
     from .validation import validation_pack
 
@@ -419,15 +416,15 @@ def _validate_run(cfg, engine, model, result, run, manifest: dict, report_tables
     for name, table in pack.tables.items():
         suffix = ".parquet" if name == "development_cohort" else ".csv"
         run.add_table(table, f"validation/{name}{suffix}")
-    manifest["validation"] = pack.summary
+    manifest.validation = pack.summary
     if "calibration" in pack.summary:
-        manifest["calibration"] = pack.summary["calibration"]
+        manifest.calibration = pack.summary["calibration"]
     report_tables.update({k: v for k, v in pack.tables.items() if k in _REPORTED_VALIDATION})
     if "backtest_by_month" in pack.tables:
         report_tables["backtest"] = pack.tables["backtest_by_month"]
 
 
-def _write_report(run, cfg, manifest: dict, tables: dict) -> None:
+def _write_report(run, cfg, manifest, tables: dict) -> None:
     """``report.html``: the run's tables and record in one self-contained page.
 
     The creation time is left out of the page (it is in the manifest) so that
@@ -436,17 +433,17 @@ def _write_report(run, cfg, manifest: dict, tables: dict) -> None:
     from .report import write_report
 
     meta = {
-        "run_id": manifest["run_id"],
-        "as_of": manifest["as_of"],
+        "run_id": manifest.run_id,
+        "as_of": manifest.as_of,
         "config_name": cfg.name,
-        "versions": manifest["versions"],
-        "model": manifest.get("model"),
-        "scenario_weights": manifest.get("scenario_weights"),
-        "inputs": manifest.get("inputs"),
-        "config_sha256": manifest["config_sha256"],
-        "seed": manifest["seed"],
+        "versions": manifest.versions,
+        "model": manifest.model,
+        "scenario_weights": manifest.scenario_weights,
+        "inputs": manifest.inputs,
+        "config_sha256": manifest.config_sha256,
+        "seed": manifest.seed,
         "synthetic": cfg.synthetic_data,
-        **{k: v for k, v in manifest.items() if k in ("calibration",)},
+        **({"calibration": manifest.calibration} if manifest.calibration is not None else {}),
     }
     write_report(run.add_file("report.html"), tables, meta)
 

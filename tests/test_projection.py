@@ -24,7 +24,12 @@ from creditsurv.forecast import (
     prepare_paths,
     project_loans,
 )
-from creditsurv.model import BenchmarkCurves, HazardTable, scheduled_balance, scheduled_balance_sql
+from creditsurv.model import (
+    BenchmarkCurves,
+    HazardTable,
+    scheduled_balance,
+    scheduled_balance_sql,
+)
 from creditsurv.months import parse_month
 
 AS_OF = parse_month("2024-12")

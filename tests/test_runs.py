@@ -1,5 +1,6 @@
 """Run folders: built aside, renamed into place whole, never overwritten."""
 
+import dataclasses
 import json
 
 import pandas as pd
@@ -51,3 +52,18 @@ def test_parquet_writing_is_byte_deterministic(tmp_path):
             run.add_table(_frame(), "t.parquet")
             run.commit({})
     assert sha256_file(tmp_path / "a" / "t.parquet") == sha256_file(tmp_path / "b" / "t.parquet")
+
+
+def test_the_manifest_is_declared_and_leaves_out_parts_a_command_did_not_produce():
+    from creditsurv.runs import RunManifest, start_manifest
+
+    m = start_manifest(
+        kind="fit", run_id="fit_2024-12_abc", as_of=2024 * 12 + 11, argv=["creditsurv", "fit"], config_text=None,
+        config_resolved={"as_of": "2024-12"}, config_sha256="0" * 64, seed=7, inputs=[],
+    )
+    record = m.to_dict()
+    assert record["as_of"] == "2024-12" and record["config_as_given"] is None  # required parts stay, even as null
+    assert "scenario_weights" not in record and "validation" not in record  # a fit has neither
+    m.scenario_weights = {"base": 1.0}
+    assert m.to_dict()["scenario_weights"] == {"base": 1.0}
+    assert set(m.to_dict()) <= {f.name for f in dataclasses.fields(RunManifest)}

@@ -4,15 +4,14 @@ from ._folder import (
     MANIFEST,
     OutputComparison,
     RunFolder,
-    base_manifest,
     compare_outputs,
     describe_inputs,
-    package_versions,
     read_manifest,
     run_name,
     sha256_file,
     write_table,
 )
+from ._manifest import RunManifest, package_versions, start_manifest
 from ._movement import (
     WALK_STEPS,
     MovementResult,
@@ -24,7 +23,7 @@ from ._movement import (
 from ._reproduce import check_inputs_unchanged, judge_reproduction, reproduction_name
 
 __all__ = [
-    "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "WALK_STEPS", "base_manifest", "check_walk_reconciles",
+    "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "RunManifest", "start_manifest", "WALK_STEPS", "check_walk_reconciles",
     "check_inputs_unchanged", "compare_outputs", "compare_run_folders", "describe_inputs", "judge_reproduction",
     "movement", "movement_against_run", "reproduction_name", "package_versions",
     "read_manifest", "run_name", "sha256_file", "write_table",

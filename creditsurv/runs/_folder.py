@@ -9,16 +9,12 @@ a folder without ``manifest.json`` is never a run).
 
 from __future__ import annotations
 
-import datetime as _dt
 import hashlib
 import json
 import os
-import platform
 import shutil
-import sys
 import uuid
 from dataclasses import dataclass, field
-from importlib import metadata
 from pathlib import Path
 
 import pandas as pd
@@ -27,9 +23,9 @@ import pyarrow.parquet as pq
 
 from ..errors import RunError
 from ..months import format_month
+from ._manifest import RunManifest
 
 MANIFEST = "manifest.json"
-_PACKAGES = ("creditsurv", "numpy", "pandas", "pyarrow", "duckdb", "statsmodels", "scipy", "scikit-learn", "pyyaml")
 
 
 def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
@@ -39,16 +35,6 @@ def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
         while block := fh.read(chunk):
             h.update(block)
     return h.hexdigest()
-
-
-def package_versions() -> dict[str, str]:
-    out = {}
-    for name in _PACKAGES:
-        try:
-            out[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            out[name] = "not installed"
-    return out
 
 
 def write_table(df: pd.DataFrame, path: Path) -> None:
@@ -111,8 +97,14 @@ class RunFolder:
         self.outputs[name] = {"rows": rows}
         return self.path / name
 
-    def commit(self, manifest: dict) -> Path:
-        """Hash the outputs, write the manifest last, rename into place."""
+    def commit(self, manifest) -> Path:
+        """Hash the outputs, write the manifest last, rename into place.
+
+        ``manifest`` is a :class:`~creditsurv.runs.RunManifest` or, for other
+        folders (the movement), a plain dict.
+        """
+        if isinstance(manifest, RunManifest):
+            manifest = manifest.to_dict()
         files = []
         for name in sorted(self.outputs):
             p = self.path / name
@@ -137,21 +129,6 @@ def describe_inputs(sources: dict[str, Path], rows: dict[str, int]) -> list[dict
                 {"input": name, "path": str(f), "bytes": f.stat().st_size, "sha256": sha256_file(f), "rows": rows.get(name)}
             )
     return out
-
-
-def base_manifest(*, run_id: str, as_of: int, argv, config_text: str, config_resolved: dict, config_sha256: str, seed: int) -> dict:
-    return {
-        "run_id": run_id,
-        "as_of": format_month(as_of),
-        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-        "command": list(argv) if argv else None,
-        "config_as_given": config_text,
-        "config_resolved": config_resolved,
-        "config_sha256": config_sha256,
-        "versions": package_versions(),
-        "platform": {"python": sys.version.split()[0], "system": platform.platform(), "machine": platform.machine()},
-        "seed": seed,
-    }
 
 
 def run_name(as_of: int, config_sha: str, input_hashes: list[str]) -> str:
