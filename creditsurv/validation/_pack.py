@@ -585,6 +585,92 @@ def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list
 # --------------------------------------------------------------------------- the pack
 
 
+def _cohort_section(cfg, engine, model, path, month, chunk_size, tables, summary, notes):
+    """The development cohort's 12-month PD, backtest, discrimination and calibration; returns its 12-month PDs."""
+    oot = cfg.windows.out_of_time
+    as_of = int(cfg.as_of)
+    cohort = _cohort(cfg, engine, month, notes)
+    summary["cohort_loans"] = int(len(cohort))
+    cohort_pd = None
+    if cohort.empty:
+        notes.append(
+            f"no loan is alive and out of default at {_fmt_month(month)}: no backtest, discrimination or calibration"
+        )
+    else:
+        window = None if oot is None else (int(oot.start) - month, int(oot.end) - month)
+        proj, hd_grid, hp_grid = _project_cohort(cfg, model, cohort, path, month, window, chunk_size)
+        cohort_pd = proj[f"pd_12m_{REALISED}"].to_numpy(dtype=float)
+        if oot is None:
+            notes.append("no out-of-time window is configured: the backtest tables are not produced")
+        else:
+            bt_tables, summary["backtest"] = _backtest_tables(cfg, engine, cohort, hd_grid, hp_grid, month, notes)
+            tables.update(bt_tables)
+        del hd_grid, hp_grid
+        if as_of < month + 12:
+            notes.append(
+                f"the data end {as_of - month} months after {_fmt_month(month)}: a 12-month outcome cannot be "
+                "observed, so discrimination and calibration are not produced"
+            )
+        else:
+            tables.update(_score_tables(cfg, engine, cohort, proj, month, summary, notes))
+    return cohort_pd
+
+
+def _stability_section(cfg, engine, model, cohort_pd, current_pd_12m, tables, summary, notes) -> None:
+    """Stability (PSI) of every model input and of the 12-month PD against the development cohort."""
+    dev, as_of = cfg.windows.development, int(cfg.as_of)
+    stab, info = _input_stability(
+        engine, model, (int(dev.start), int(dev.end)), (as_of, as_of),
+        bins=cfg.validation.psi_bins, max_rows=PACK_SAMPLE_ROWS,
+    )
+    k_dev = info["sampled_every"]["development"]
+    if k_dev > 1:
+        notes.append(
+            f"stability: the development rows were sampled, one loan-month in {k_dev} chosen by a hash of loan "
+            f"and month (at most {PACK_SAMPLE_ROWS:,} rows; the same rows on every run with this DuckDB version)"
+        )
+    if info["skipped"]:
+        notes.append(f"stability: inputs {info['skipped']} cannot be read for this hazard source")
+    if info["n_current"] == 0:
+        notes.append(f"stability: no risk-set rows at the reporting month {_fmt_month(as_of)}")
+    if current_pd_12m is not None and cohort_pd is not None and len(cohort_pd):
+        cur = _as_1d(current_pd_12m, "current_pd_12m")
+        value, _ = psi(cohort_pd, cur, bins=cfg.validation.psi_bins)
+        row = {"variable": "pd_12m", "psi": value, "flag": psi_flag(value),
+               "n_development": int(len(cohort_pd)), "n_current": int(len(cur))}  # fmt: skip
+        stab = pd.concat([stab, pd.DataFrame([row])], ignore_index=True) if len(stab) else pd.DataFrame([row])
+    elif current_pd_12m is None:
+        notes.append("stability: no current 12-month PD was given, so its PSI is not reported")
+    else:
+        notes.append("stability: the development cohort has no 12-month PD, so the PSI of pd_12m is not reported")
+    tables["stability"] = stab[list(PACK_COLUMNS["stability"])]
+    summary["stability"] = {
+        flag: stab.loc[stab["flag"] == flag, "variable"].tolist() for flag in ("watch", "shift")
+    }
+
+
+def _incidence_section(cfg, engine, model, path, chunk_size, tables, summary, notes) -> None:
+    """Model cumulative incidence by vintage against Aalen-Johansen."""
+    inc = _incidence_by_vintage(cfg, engine, model, path, chunk_size, notes)
+    if inc is None:
+        notes.append("incidence_by_vintage: no loan observed from origination")
+    else:
+        tables["incidence_by_vintage"] = inc
+        degenerate = int((inc["outside"] & (inc["observed_se"] == 0)).sum())
+        if degenerate:
+            notes.append(
+                f"incidence_by_vintage: {degenerate} ages are flagged outside only because the vintage has had no "
+                "event of the cause yet, where the normal interval of the Aalen-Johansen estimate has zero width"
+            )
+        summary["incidence"] = {
+            "vintages": int(inc["vintage"].nunique()),
+            **{
+                cause: {"share_ages_outside": float(inc.loc[inc["cause"] == cause, "outside"].mean())}
+                for cause in CAUSES.values()
+            },
+        }
+
+
 def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int = 2000) -> ValidationPack:
     """Out-of-time backtest, discrimination, calibration, stability and curves of one model.
 
@@ -666,61 +752,9 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
     path = _realised_path(engine, as_of, max(as_of, month) + int(max_term) + 1)
 
     # 1-2. The development cohort: backtest, discrimination, calibration.
-    cohort = _cohort(cfg, engine, month, notes)
-    summary["cohort_loans"] = int(len(cohort))
-    cohort_pd = None
-    if cohort.empty:
-        notes.append(
-            f"no loan is alive and out of default at {_fmt_month(month)}: no backtest, discrimination or calibration"
-        )
-    else:
-        window = None if oot is None else (int(oot.start) - month, int(oot.end) - month)
-        proj, hd_grid, hp_grid = _project_cohort(cfg, model, cohort, path, month, window, chunk_size)
-        cohort_pd = proj[f"pd_12m_{REALISED}"].to_numpy(dtype=float)
-        if oot is None:
-            notes.append("no out-of-time window is configured: the backtest tables are not produced")
-        else:
-            bt_tables, summary["backtest"] = _backtest_tables(cfg, engine, cohort, hd_grid, hp_grid, month, notes)
-            tables.update(bt_tables)
-        del hd_grid, hp_grid
-        if as_of < month + 12:
-            notes.append(
-                f"the data end {as_of - month} months after {_fmt_month(month)}: a 12-month outcome cannot be "
-                "observed, so discrimination and calibration are not produced"
-            )
-        else:
-            tables.update(_score_tables(cfg, engine, cohort, proj, month, summary, notes))
-
+    cohort_pd = _cohort_section(cfg, engine, model, path, month, chunk_size, tables, summary, notes)
     # 3. Stability of the inputs and of the 12-month PD.
-    stab, info = _input_stability(
-        engine, model, (int(dev.start), int(dev.end)), (as_of, as_of),
-        bins=cfg.validation.psi_bins, max_rows=PACK_SAMPLE_ROWS,
-    )
-    k_dev = info["sampled_every"]["development"]
-    if k_dev > 1:
-        notes.append(
-            f"stability: the development rows were sampled, one loan-month in {k_dev} chosen by a hash of loan "
-            f"and month (at most {PACK_SAMPLE_ROWS:,} rows; the same rows on every run with this DuckDB version)"
-        )
-    if info["skipped"]:
-        notes.append(f"stability: inputs {info['skipped']} cannot be read for this hazard source")
-    if info["n_current"] == 0:
-        notes.append(f"stability: no risk-set rows at the reporting month {_fmt_month(as_of)}")
-    if current_pd_12m is not None and cohort_pd is not None and len(cohort_pd):
-        cur = _as_1d(current_pd_12m, "current_pd_12m")
-        value, _ = psi(cohort_pd, cur, bins=cfg.validation.psi_bins)
-        row = {"variable": "pd_12m", "psi": value, "flag": psi_flag(value),
-               "n_development": int(len(cohort_pd)), "n_current": int(len(cur))}  # fmt: skip
-        stab = pd.concat([stab, pd.DataFrame([row])], ignore_index=True) if len(stab) else pd.DataFrame([row])
-    elif current_pd_12m is None:
-        notes.append("stability: no current 12-month PD was given, so its PSI is not reported")
-    else:
-        notes.append("stability: the development cohort has no 12-month PD, so the PSI of pd_12m is not reported")
-    tables["stability"] = stab[list(PACK_COLUMNS["stability"])]
-    summary["stability"] = {
-        flag: stab.loc[stab["flag"] == flag, "variable"].tolist() for flag in ("watch", "shift")
-    }
-
+    _stability_section(cfg, engine, model, cohort_pd, current_pd_12m, tables, summary, notes)
     # 4. Coefficient changes against a prior model.
     prior = cfg.validation.prior_model
     if prior is not None and fitted:
@@ -731,24 +765,7 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
         notes.append("no prior model is configured (validation.prior_model): coefficient changes are not produced")
 
     # 5. Cumulative incidence by vintage.
-    inc = _incidence_by_vintage(cfg, engine, model, path, chunk_size, notes)
-    if inc is None:
-        notes.append("incidence_by_vintage: no loan observed from origination")
-    else:
-        tables["incidence_by_vintage"] = inc
-        degenerate = int((inc["outside"] & (inc["observed_se"] == 0)).sum())
-        if degenerate:
-            notes.append(
-                f"incidence_by_vintage: {degenerate} ages are flagged outside only because the vintage has had no "
-                "event of the cause yet, where the normal interval of the Aalen-Johansen estimate has zero width"
-            )
-        summary["incidence"] = {
-            "vintages": int(inc["vintage"].nunique()),
-            **{
-                cause: {"share_ages_outside": float(inc.loc[inc["cause"] == cause, "outside"].mean())}
-                for cause in CAUSES.values()
-            },
-        }
+    _incidence_section(cfg, engine, model, path, chunk_size, tables, summary, notes)
 
     # 6. In-sample fit by loan age.
     hba = _hazard_by_age(engine, model, int(dev.start), int(dev.end), _batch_size(cfg))
