@@ -486,9 +486,6 @@ class SparkEngine:
         self._views.append(name)
         return frame
 
-    def has_view(self, name: str) -> bool:
-        return name in self._views
-
     def has_table(self, name: str) -> bool:
         """Whether a view ``name`` exists (``macro`` only when configured)."""
         return name in self._views
@@ -642,7 +639,7 @@ def label_events(panel: SparkEngine) -> None:
 
 def event_counts(panel: SparkEngine) -> pd.DataFrame:
     """Loans by event and censor reason; the same table as :func:`creditsurv.engines.event_counts`."""
-    if not panel.has_view("loan_outcomes"):
+    if not panel.has_table("loan_outcomes"):
         label_events(panel)
     counts = _arrow(panel.spark.sql("SELECT event, censor_reason, count(*) AS loans FROM loan_outcomes GROUP BY event, censor_reason"))
     frame = _as_duckdb_frame(
@@ -664,7 +661,7 @@ def book_at_as_of(panel: SparkEngine, segment_column: str | None = None) -> pd.D
 
     One row per loan on the book passes through the driver (the panel does not).
     """
-    if not panel.has_view("loan_outcomes"):
+    if not panel.has_table("loan_outcomes"):
         label_events(panel)
 
     segment = f"CAST(l.{quote_ident(segment_column)} AS VARCHAR)" if segment_column else "'all'"

@@ -18,8 +18,8 @@ from ..errors import DataError
 from ..model import HazardResults
 from ._statistics import (
     CAUSES,
-    _as_1d,
     age_band,
+    as_1d,
     backtest,
     binomial_interval,
     calibration,
@@ -634,7 +634,7 @@ def _stability_section(cfg, engine, model, cohort_pd, current_pd_12m, tables, su
     if info["n_current"] == 0:
         notes.append(f"stability: no risk-set rows at the reporting month {_fmt_month(as_of)}")
     if current_pd_12m is not None and cohort_pd is not None and len(cohort_pd):
-        cur = _as_1d(current_pd_12m, "current_pd_12m")
+        cur = as_1d(current_pd_12m, "current_pd_12m")
         value, _ = psi(cohort_pd, cur, bins=cfg.validation.psi_bins)
         row = {"variable": "pd_12m", "psi": value, "flag": psi_flag(value),
                "n_development": int(len(cohort_pd)), "n_current": int(len(cur))}  # fmt: skip

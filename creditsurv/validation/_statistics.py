@@ -60,7 +60,8 @@ def _check_level(level: float) -> float:
     return level
 
 
-def _as_1d(x, name: str, *, dtype=float) -> np.ndarray:
+def as_1d(x, name: str, *, dtype=float) -> np.ndarray:
+    """``x`` as a one-dimensional array (``DataError`` naming ``name`` otherwise); used by the pack too."""
     arr = np.asarray(x, dtype=dtype)
     if arr.ndim != 1:
         raise DataError(f"{name} must be one-dimensional, got shape {arr.shape}")
@@ -75,7 +76,7 @@ def _check_finite(arr: np.ndarray, name: str) -> None:
 
 
 def _check_binary(arr, name: str) -> np.ndarray:
-    arr = _as_1d(arr, name)
+    arr = as_1d(arr, name)
     _check_finite(arr, name)
     bad = (arr != 0) & (arr != 1)
     if bad.any():
@@ -174,7 +175,7 @@ def age_band(age, edges):
     e = [int(x) for x in edges]
     if not e or any(b <= a for a, b in zip(e, e[1:])):
         raise DataError(f"edges must be a non-empty, strictly increasing list of ages, got {list(edges)}")
-    arr = _as_1d(age, "age")
+    arr = as_1d(age, "age")
     _check_finite(arr, "age")
     labels = [f"1-{e[0] - 1}" if e[0] > 2 else "1"]
     labels += [f"{lo}-{hi - 1}" if hi - 1 > lo else f"{lo}" for lo, hi in zip(e, e[1:])]
@@ -309,7 +310,7 @@ def discrimination(score, default, *, bootstrap: int = 200, seed: int = 0, level
         (= 2 AUC - 1), ``gini_lo``, ``gini_hi``, ``ks`` and ``bootstrap``
         (resamples used; resamples without both classes are dropped).
     """
-    s = _as_1d(score, "score")
+    s = as_1d(score, "score")
     y = _check_binary(default, "default")
     _check_same_length(score=s, default=y)
     _check_finite(s, "score")
@@ -497,7 +498,7 @@ def calibration(predicted, default, *, groups: int = 10, grade=None, level: floa
 
 
 def _calibration(pred, default, *, groups, grade, level):
-    p = _as_1d(pred, "pd")
+    p = as_1d(pred, "pd")
     y = _check_binary(default, "default")
     _check_same_length(pd=p, default=y)
     _check_finite(p, "pd")
@@ -610,8 +611,8 @@ def psi(expected, actual, *, bins: int = 10, categorical: bool = False, floor: f
 def _psi_numeric(expected, actual, bins: int) -> pd.DataFrame:
     if bins < 2:
         raise DataError(f"bins must be 2 or more, got {bins!r}")
-    e = _as_1d(expected, "expected")
-    a = _as_1d(actual, "actual")
+    e = as_1d(expected, "expected")
+    a = as_1d(actual, "actual")
     e_ok, a_ok = ~np.isnan(e), ~np.isnan(a)
     if not e_ok.any():
         raise DataError("expected has no non-missing values to define bins")
@@ -759,8 +760,8 @@ def aalen_johansen(time, event, *, causes=(1, 2), entry=None) -> pd.DataFrame:
         (Marubini & Valsecchi 1995); they are NaN where every loan at risk
         has an event, and are approximate under left truncation.
     """
-    t = _as_1d(time, "time")
-    ev = _as_1d(event, "event")
+    t = as_1d(time, "time")
+    ev = as_1d(event, "event")
     _check_same_length(time=t, event=ev)
     _check_finite(t, "time")
     _check_finite(ev, "event")
@@ -777,7 +778,7 @@ def aalen_johansen(time, event, *, causes=(1, 2), entry=None) -> pd.DataFrame:
         start = min(int(t.min()), 1)
         ent = None
     else:
-        ent = _as_1d(entry, "entry")
+        ent = as_1d(entry, "entry")
         _check_same_length(time=t, entry=ent)
         _check_finite(ent, "entry")
         ent = ent.astype(np.int64)
@@ -845,7 +846,7 @@ def _model_curves(model, vintages) -> dict:
             raise DataError(f"model curves lack vintages {missing[:5]}; they have {list(model)[:10]}")
         curves = {v: np.asarray(model[v], dtype=float) for v in vintages}
     else:
-        arr = _as_1d(model, "model")
+        arr = as_1d(model, "model")
         curves = {v: arr for v in vintages}
     return {v: pd.Series(c, index=pd.RangeIndex(1, len(c) + 1, name="age")) for v, c in curves.items()}
 
@@ -889,11 +890,11 @@ def model_vs_nonparametric(
     level = _check_level(level)
     if cause not in (1, 2):
         raise DataError(f"cause must be 1 (default) or 2 (prepayment), got {cause!r}")
-    t = _as_1d(time, "time")
-    ev = _as_1d(event, "event")
+    t = as_1d(time, "time")
+    ev = as_1d(event, "event")
     vin = np.asarray(vintage)
     _check_same_length(time=t, event=ev, vintage=vin)
-    ent = None if entry is None else _as_1d(entry, "entry")
+    ent = None if entry is None else as_1d(entry, "entry")
     if ent is not None:
         _check_same_length(time=t, entry=ent)
     vintages = list(pd.unique(vin))
