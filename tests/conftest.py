@@ -130,3 +130,37 @@ def demo_config_data(book: Path, reports: Path) -> dict:
         scenario["path"] = str(Path(book) / "scenarios" / Path(scenario["path"]).name)
     data["outputs"]["dir"] = str(reports)
     return data
+
+
+@pytest.fixture(scope="session")
+def engine_frames(tmp_path_factory):
+    """Simulate a book with the demo simulator and return it as the engine reads it, as DataFrames.
+
+    Call as ``engine_frames(n_loans, seed, first_origination, hazard=None, default_min_age=3)``.
+    The book is written by :func:`creditsurv.demo.write_demo_book` (last month 2024-12, so loan
+    ages run up to the months since ``first_origination``), opened with ``configs/demo.yaml``'s
+    input mapping, checked and labelled by the DuckDB engine, and returned as a dict of the engine's
+    internal tables ``panel``, ``loans``, ``macro`` and ``loan_months``. Books are cached per
+    argument set for the session; callers get copies they may change.
+    """
+    from creditsurv.config import config_from_dict
+    from creditsurv.demo import DEFAULT_MIN_AGE, write_demo_book
+    from creditsurv.pipeline import open_checked
+
+    cache: dict = {}
+
+    def build(n_loans, seed, first_origination, hazard=None, default_min_age=DEFAULT_MIN_AGE):
+        key = (n_loans, seed, first_origination, id(hazard), default_min_age)
+        if key not in cache:
+            folder = tmp_path_factory.mktemp("engine_book")
+            write_demo_book(folder, n_loans, seed, first_origination=first_origination, hazard=hazard,
+                            default_min_age=default_min_age)  # fmt: skip
+            data = demo_config_data(folder, folder / "runs")
+            data["windows"] = {"development": {"start": first_origination, "end": data["as_of"]}}
+            engine, _ = open_checked(config_from_dict(data, base_dir=folder))
+            with engine:
+                tables = ("panel", "loans", "macro", "loan_months")
+                cache[key] = {t: engine.frame(f"SELECT * FROM {t} ORDER BY ALL") for t in tables}
+        return {name: frame.copy() for name, frame in cache[key].items()}
+
+    return build

@@ -9,17 +9,18 @@ import duckdb
 import numpy as np
 import pandas as pd
 import pytest
-from test_hazard import connect, simulate_book
+from test_hazard import connect
 
 from creditsurv.config import Baseline, Collateral, Covariate, ModelSpec
 from creditsurv.errors import ConfigError, FeatureError
 from creditsurv.model import FeatureSpec, feature_spec, natural_spline_basis
+from creditsurv.months import format_month
 from creditsurv.sql import quote_ident, quote_literal
 
 
 @pytest.fixture(scope="module")
-def book():
-    return simulate_book(n_loans=400, seed=3, max_age=24)
+def book(engine_frames):
+    return engine_frames(400, 3, "2022-12")
 
 
 @pytest.fixture()
@@ -85,7 +86,7 @@ def test_raw_inputs_match_direct_computation(con, book):
     for step in range(int(k.max()) + 1):
         sched[k == step] = bal[k == step]
         bal = bal * (1 + r) - pay
-    region = loans["region"].to_numpy()
+    region = loans["region"].str.lower().to_numpy()
     hpi_now = np.array([macro.loc[m, f"hpi_{g}"] for m, g in zip(raw["month_idx"], region)])
     hpi_orig = np.array([macro.loc[m, f"hpi_{g}"] for m, g in zip(loans["origination_idx"], region)])
     ltv = sched / (loans["property_value"].to_numpy() * hpi_now / hpi_orig)
@@ -110,7 +111,7 @@ def test_where_filter_and_params(con, book):
 def test_learned_constants_and_json_round_trip(con, book):
     spec = _spec(
         Covariate(name="score", column="credit_score", transform="standardise", floor=600),
-        Covariate(name="region", column="region", kind="categorical", reference="south"),
+        Covariate(name="region", column="region", kind="categorical", reference="South"),
         Covariate(name="dti_band", column="dti", kind="bins", bins=(0.2, 0.35)),
         Covariate(name="la", column="log_age"),
         interactions=(("score", "region"),),
@@ -122,14 +123,14 @@ def test_learned_constants_and_json_round_trip(con, book):
     assert st["mean"] == pytest.approx(x.mean(), rel=1e-12)
     assert st["sd"] == pytest.approx(x.std(ddof=1), rel=1e-12)
     lv = spec.learned["covariates"]["region"]
-    assert lv["levels"] == sorted(book["loans"]["region"].unique()) and lv["reference"] == "south"
+    assert lv["levels"] == sorted(book["loans"]["region"].unique()) and lv["reference"] == "South"
     assert spec.learned["covariates"]["dti_band"]["levels"] == ["<0.2", "[0.2,0.35)", ">=0.35"]
     text = json.dumps(spec.to_dict(), sort_keys=True)
     again = FeatureSpec.from_dict(json.loads(text))
     X1, n1 = spec.design(raw)
     X2, n2 = again.design(raw)
     assert n1 == n2 and np.array_equal(X1, X2)
-    assert "score:region[east]" in n1 and "region[south]" not in n1
+    assert "score:region[East]" in n1 and "region[South]" not in n1
 
 
 def test_design_columns_and_inputs_untouched(con):
@@ -139,7 +140,7 @@ def test_design_columns_and_inputs_untouched(con):
         baseline=Baseline(kind="age_bands", edges=(3, 6, 12)),
     ).learn(con)
     raw = {k: v.copy() for k, v in {"age": np.array([1, 3, 5, 6, 12, 40]), "credit_score": np.array([600, 700, 810, 650, 700, 700]),
-                                      "region": np.array(["north", "central", "east", "west", "south", "north"], dtype=object)}.items()}
+                                      "region": np.array(["North", "Central", "East", "West", "South", "North"], dtype=object)}.items()}
     before = copy.deepcopy(raw)
     X, names = spec.design(raw)
     for k in raw:
@@ -147,7 +148,7 @@ def test_design_columns_and_inputs_untouched(con):
     assert names[:4] == ["intercept", "age_band[3-5]", "age_band[6-11]", "age_band[12+]"]
     np.testing.assert_array_equal(X[:, 1:4], [[0, 0, 0], [1, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1], [0, 0, 1]])
     np.testing.assert_allclose(X[:, names.index("score")], np.log([600, 700, 800, 650, 700, 700]))
-    np.testing.assert_array_equal(X[:, names.index("region[north]")], [1, 0, 0, 0, 0, 1])
+    np.testing.assert_array_equal(X[:, names.index("region[North]")], [1, 0, 0, 0, 0, 1])
     assert X.dtype == np.float64 and X.shape == (6, len(names))
 
 
@@ -211,7 +212,7 @@ def test_unknown_macro_series(con):
 
 
 def test_unknown_reference_level_lists_levels(con):
-    with pytest.raises(FeatureError, match=r"covariate 'region': reference level 'nord' is not a level \(levels: central, east, north, south, west\); did you mean 'north'"):
+    with pytest.raises(FeatureError, match=r"covariate 'region': reference level 'nord' is not a level \(levels: Central, East, North, South, West\); did you mean 'North'"):
         _spec(Covariate(name="region", column="region", kind="categorical", reference="nord")).learn(con)
 
 
@@ -229,7 +230,7 @@ def test_bad_bin_reference_is_a_config_error_when_the_config_is_read(panel_clean
 def test_unknown_level_at_design_time(con):
     spec = _spec(Covariate(name="region", column="region", kind="categorical")).learn(con)
     with pytest.raises(FeatureError, match=r"covariate 'region': level\(s\) \['mars'\] were not seen in training"):
-        spec.design({"age": np.array([1, 2]), "region": np.array(["north", "mars"], dtype=object)})
+        spec.design({"age": np.array([1, 2]), "region": np.array(["North", "mars"], dtype=object)})
 
 
 def test_spline_knots_outside_ages(con):
@@ -238,9 +239,14 @@ def test_spline_knots_outside_ages(con):
 
 
 def test_macro_lag_past_history(con, book):
-    first = int(book["macro"]["month_idx"].min())
-    con.execute("DELETE FROM macro WHERE month_idx < ?", [first + 30])
-    with pytest.raises(FeatureError, match=r"covariate 'u6': macro series 'unemployment_rate' at lag 6 runs past the start of the macro history: first month needed 20\d\d-\d\d, first available 2015-07"):
+    # Macro history cut to start 3 months before the first loan-month: lag 6 runs past its start.
+    first_needed = int(book["loan_months"]["month_idx"].min()) - 6
+    con.execute("DELETE FROM macro WHERE month_idx < ?", [first_needed + 3])
+    with pytest.raises(
+        FeatureError,
+        match=rf"covariate 'u6': macro series 'unemployment_rate' at lag 6 runs past the start of the macro history: "
+        rf"first month needed {format_month(first_needed)}, first available {format_month(first_needed + 3)}",
+    ):
         _spec(Covariate(name="u6", macro="unemployment_rate", lag=6)).learn(con)
 
 

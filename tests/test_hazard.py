@@ -11,13 +11,13 @@ import json
 
 import duckdb
 import numpy as np
-import pandas as pd
 import pytest
 import statsmodels.api as sm
 from scipy import optimize
 from statsmodels.duration.survfunc import CumIncidenceRight, SurvfuncRight
 
 from creditsurv.config import Baseline, Collateral, Covariate, ModelSpec
+from creditsurv.demo import TRUE_COEFFICIENTS, LogitHazard
 from creditsurv.engines import on_connection
 from creditsurv.errors import (
     ConvergenceError,
@@ -33,69 +33,21 @@ from creditsurv.model import (
     load_model,
 )
 
-# --------------------------------------------------------------------------- a small simulated book
+# --------------------------------------------------------------------------- simulated books
 
-REGIONS = ("north", "south", "east", "west", "central")
-START = 2015 * 12  # 2015-01
+# The demo simulator's hazard with defaults 60 times and prepayments 4 times as frequent as in the
+# demo book, so that books of a thousand or a few thousand loans over two to four years hold enough
+# events of each cause for the fits below.
+_LIVELY = {cause: dict(terms) for cause, terms in TRUE_COEFFICIENTS.items()}
+_LIVELY["default"]["intercept"] += np.log(60.0)
+_LIVELY["prepay"]["intercept"] += np.log(4.0)
+LIVELY = LogitHazard(_LIVELY)
 
 
-def simulate_book(n_loans=3000, seed=7, max_age=36, prepay=True, hazard_scale=1.0, min_censor=6):
-    """Return dict of DataFrames: loans, macro, loan_months, panel."""
-    rng = np.random.default_rng(seed)
-    n_months = 12 * 8
-    months = np.arange(START - 24, START - 24 + n_months)
-    t = np.arange(n_months)
-    macro = pd.DataFrame(
-        {
-            "month_idx": months.astype(np.int32),
-            "unemployment_rate": 5.0 + 1.5 * np.sin(t / 9.0),
-            "mortgage_rate": 4.0 + 0.8 * np.cos(t / 13.0),
-        }
-    )
-    for j, r in enumerate(REGIONS):
-        macro[f"hpi_{r}"] = 100.0 * np.exp((0.002 + 0.0005 * j) * t + 0.02 * np.sin(t / (5.0 + j)))
-    orig = START + rng.integers(0, 30, n_loans)
-    loans = pd.DataFrame(
-        {
-            "loan_id": [f"L{i:06d}" for i in range(n_loans)],
-            "origination_idx": orig.astype(np.int32),
-            "original_balance": rng.uniform(50_000, 400_000, n_loans).round(2),
-            "note_rate": rng.uniform(0.025, 0.065, n_loans).round(4),
-            "term": rng.choice([180, 240, 360], n_loans).astype(np.int32),
-            "region": rng.choice(REGIONS, n_loans),
-            "credit_score": rng.integers(560, 820, n_loans).astype(np.int32),
-            "dti": rng.uniform(0.1, 0.5, n_loans),
-            "channel": rng.choice(["retail", "broker"], n_loans),
-        }
-    )
-    loans["property_value"] = (loans["original_balance"] / rng.uniform(0.55, 0.95, n_loans)).round(2)
-    censor = rng.integers(min_censor, max_age + 1, n_loans)
-    score = (loans["credit_score"].to_numpy() - 700) / 50.0
-    reg = np.array([REGIONS.index(r) for r in loans["region"]])
-    mac = macro.set_index("month_idx")["unemployment_rate"]
-    rows = []
-    alive = np.ones(n_loans, dtype=bool)
-    for age in range(1, max_age + 1):
-        idx = np.nonzero(alive & (age <= censor))[0]
-        if idx.size == 0:
-            break
-        month = orig[idx] + age
-        u = mac.reindex(month - 3).to_numpy()
-        eta1 = -4.6 + 0.02 * age - 0.5 * score[idx] + 0.15 * (u - 5.0) + 0.1 * reg[idx] + np.log(hazard_scale)
-        eta2 = -3.6 + 0.01 * age + 0.2 * score[idx] - 0.1 * reg[idx]
-        e1, e2 = np.exp(eta1), np.exp(eta2) if prepay else 0.0 * eta2
-        den = 1 + e1 + e2
-        draw = rng.random(idx.size)
-        out = np.where(draw < e1 / den, 1, np.where(draw < (e1 + e2) / den, 2, 0))
-        rows.append(pd.DataFrame({"loan_id": loans["loan_id"].to_numpy()[idx], "month_idx": month, "age": age, "outcome": out}))
-        alive[idx[out > 0]] = False
-    lm = pd.concat(rows, ignore_index=True)
-    lm = lm.astype({"month_idx": np.int32, "age": np.int32, "outcome": np.int8})
-    panel = lm[["loan_id", "month_idx", "age"]].copy()
-    panel["balance"] = 100_000.0 - 100.0 * panel["age"]
-    panel["days_past_due"] = rng.choice([0, 0, 0, 30], len(panel)).astype(np.int32)
-    panel["status"] = "C"
-    return {"loans": loans, "macro": macro, "loan_months": lm, "panel": panel}
+def _default_only(covariates):
+    """The lively hazard's default probability and no prepayment: a single-cause book."""
+    h_default, _ = LIVELY(covariates)
+    return h_default, np.zeros_like(h_default)
 
 
 def connect(book) -> duckdb.DuckDBPyConnection:
@@ -128,8 +80,8 @@ MIXED = (
 
 
 @pytest.fixture(scope="module")
-def book():
-    return simulate_book(n_loans=3000, seed=11, max_age=36)
+def book(engine_frames):
+    return engine_frames(3000, 11, "2021-01", hazard=LIVELY)
 
 
 @pytest.fixture(scope="module")
@@ -140,8 +92,8 @@ def con(book):
 
 
 @pytest.fixture(scope="module")
-def small_con():
-    c = connect(simulate_book(n_loans=800, seed=5, max_age=24, hazard_scale=3.0))
+def small_con(engine_frames):
+    c = connect(engine_frames(1000, 5, "2022-12", hazard=LIVELY))
     yield c
     c.close()
 
@@ -219,8 +171,9 @@ def _times(con):
     return last["t"].to_numpy(dtype=float), last["status"].to_numpy(dtype=int)
 
 
-def test_age_indicators_reproduce_kaplan_meier():
-    con = connect(simulate_book(n_loans=3000, seed=2, max_age=18, prepay=False, hazard_scale=2.0, min_censor=10))
+def test_age_indicators_reproduce_kaplan_meier(engine_frames):
+    # Defaults from age 1 and no prepayment, so that every age 1..18 has default events.
+    con = connect(engine_frames(3000, 2, "2023-06", hazard=_default_only, default_min_age=1))
     spec = _spec(con, baseline=Baseline(kind="age_indicators"))
     res = fit_hazard(on_connection(con), spec, causes=("default",), collapse=False)
     ages = np.arange(1, 19)
@@ -234,8 +187,8 @@ def test_age_indicators_reproduce_kaplan_meier():
     assert len(km.surv_times) == 18
 
 
-def test_age_indicators_reproduce_aalen_johansen():
-    con = connect(simulate_book(n_loans=3000, seed=2, max_age=18, hazard_scale=2.0, min_censor=10))
+def test_age_indicators_reproduce_aalen_johansen(engine_frames):
+    con = connect(engine_frames(3000, 2, "2023-06", hazard=LIVELY, default_min_age=1))
     spec = _spec(con, baseline=Baseline(kind="age_indicators"))
     t, status = _times(con)
     # Reference: statsmodels Aalen-Johansen; its grid is every distinct observed time (events and
@@ -423,9 +376,11 @@ def test_non_convergence_reports_the_iterations(small_con):
 def test_few_events_warning(small_con):
     con = small_con
     spec = _spec(con, *MIXED, baseline=_spline())
-    n_def = con.execute("SELECT count(*) FROM loan_months WHERE outcome = 1 AND month_idx < 24190").fetchone()[0]
+    # The book's first 12 months of history: too few defaults for 10 parameters.
+    before = con.execute("SELECT min(month_idx) + 12 FROM loan_months").fetchone()[0]
+    n_def = con.execute("SELECT count(*) FROM loan_months WHERE outcome = 1 AND month_idx < ?", [before]).fetchone()[0]
     with pytest.warns(FewEventsWarning, match=r"events for 10 parameters") as rec:
-        fit_hazard(on_connection(con), spec, where_sql="month_idx < ?", params=[24190])
+        fit_hazard(on_connection(con), spec, where_sql="month_idx < ?", params=[before])
     texts = [str(r.message) for r in rec]
     assert any(t.startswith(f"default: {n_def:,} events for 10 parameters") and "fewer than 10" in t for t in texts)
     assert all(r.filename == __file__ for r in rec)  # stacklevel points at the caller

@@ -11,6 +11,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from creditsurv.demo import (
+    DEFAULT_MIN_AGE,
     OUTPUT_FILES,
     make_macro,
     psa_hazard,
@@ -194,6 +195,25 @@ def test_psa_book_prepays_at_psa_speed():
     assert abs(observed - smm.sum()) < 4 * np.sqrt((smm * (1 - smm)).sum())
 
 
+def test_default_min_age_moves_the_first_possible_default():
+    # A default-only hazard of 5% a month: with default_min_age 1 loans default at ages 1 and 2, the
+    # demo's default (3) has none there; the truth record states the age used.
+    def hazard(covariates):
+        return np.full(np.shape(covariates["age"]), 0.05), np.zeros(np.shape(covariates["age"]))
+
+    kw = {"first_origination": "2024-01"}
+    early = simulate_small_book(2000, 9, hazard=hazard, default_min_age=1, **kw)
+    demo_rule = simulate_small_book(2000, 9, hazard=hazard, **kw)
+    for book, min_age in ((early, 1), (demo_rule, DEFAULT_MIN_AGE)):
+        first_default = book.panel[book.panel["days_past_due"].ge(90)].groupby("loan_id")["age"].min()
+        assert first_default.min() == min_age
+        assert book.truth["mechanics"]["default_min_age"] == min_age
+    # Loans at risk at age 1 default there at about the 5% hazard (binomial, 4 standard errors).
+    n_at_age_1 = early.panel["age"].eq(1).sum()
+    defaults_at_1 = early.panel["age"].eq(1) & early.panel["days_past_due"].ge(90)
+    assert abs(defaults_at_1.sum() - 0.05 * n_at_age_1) < 4 * np.sqrt(0.05 * 0.95 * n_at_age_1)
+
+
 # --------------------------------------------------------------------------- mechanics
 
 
@@ -344,6 +364,7 @@ def test_write_refuses_to_overwrite(tmp_path):
         ({"chunk_size": 0}, "chunk_size"),
         ({"cutoff": "2024-13"}, "cutoff"),
         ({"last_origination": "2025-01"}, "last_origination < cutoff"),
+        ({"default_min_age": 0}, "default_min_age must be a positive integer"),
     ],
 )
 def test_bad_arguments_raise(kwargs, message):

@@ -21,8 +21,8 @@ Layout of a written book (see :func:`write_demo_book`)::
 Mechanics of one loan (age t = months since the origination month):
 
 - the hazards of month t use covariates known at the start of month t;
-- no default before age ``DEFAULT_MIN_AGE`` (3) and no prepayment in the
-  month the loan reaches its term;
+- no default before age ``DEFAULT_MIN_AGE`` (3; the ``default_min_age``
+  argument) and no prepayment in the month the loan reaches its term;
 - a default at age t is 90 days past due at t, preceded by 30 and 60 days past
   due at t-2 and t-1; the loan then stays in workout for W months (W uniform
   on 1..12) and its last row is ``charged_off`` with balance 0;
@@ -449,7 +449,7 @@ def _draw_loans(rng, n, orig_months, volume, macro: _Macro) -> dict[str, np.ndar
 
 
 def _simulate_chunk(
-    k: int, first_number: int, n: int, *, seed, cutoff, orig_months, volume, macro: _Macro, hazard
+    k: int, first_number: int, n: int, *, seed, cutoff, orig_months, volume, macro: _Macro, hazard, default_min_age
 ) -> BookChunk:
     """Simulate loans ``first_number .. first_number + n - 1`` with stream ``[seed, k]``."""
     rng = np.random.default_rng([seed, k])
@@ -492,7 +492,7 @@ def _simulate_chunk(
             "hazard must return two arrays of monthly probabilities, one per loan-month, "
             "each >= 0 and summing to at most 1"
         )
-    h_default = np.where(age < DEFAULT_MIN_AGE, 0.0, h_default)
+    h_default = np.where(age < default_min_age, 0.0, h_default)
     h_prepay = np.where(age == term[row_loan], 0.0, h_prepay)
 
     draw = rng.random(total)
@@ -607,6 +607,7 @@ def simulate_book(
     last_origination: str = "2024-09",
     hazard: Callable | None = None,
     chunk_size: int = 25_000,
+    default_min_age: int = DEFAULT_MIN_AGE,
 ) -> Iterator[BookChunk]:
     """Simulate a book chunk by chunk.
 
@@ -626,17 +627,23 @@ def simulate_book(
         per loan-month. ``covariates`` maps ``age``, ``log_age``,
         ``credit_score``, ``current_ltv``, ``dti``, ``rate_incentive``,
         ``unemployment_rate`` and ``term_months`` to float arrays. The
-        simulator then sets the default hazard to 0 below age 3 and the
-        prepayment hazard to 0 at the term. Default :data:`true_hazard`.
+        simulator then sets the default hazard to 0 below ``default_min_age``
+        and the prepayment hazard to 0 at the term. Default :data:`true_hazard`.
+        A hazard that returns zeros for prepayment gives a single-cause book.
     chunk_size : int, default 25_000
         Loans per chunk; memory is bounded by one chunk.
+    default_min_age : int, default :data:`DEFAULT_MIN_AGE` (3)
+        First age at which a loan can default. At 1, a default in the first
+        month is 90 days past due at once (its delinquent months fall before
+        origination); tests of the age baseline use it to have defaults at
+        every age.
 
     Returns
     -------
     iterator of BookChunk
         ``loans`` and ``panel`` Arrow tables per chunk, in ``loan_id`` order.
     """
-    settings = _check_book_args(n_loans, seed, cutoff, first_origination, last_origination, chunk_size)
+    settings = _check_book_args(n_loans, seed, cutoff, first_origination, last_origination, chunk_size, default_min_age)
     history, _, _ = make_macro(seed, cutoff=cutoff)
     macro = _Macro.from_frame(history)
     orig_months = np.arange(settings["first"], settings["last"] + 1)
@@ -655,13 +662,16 @@ def simulate_book(
                 volume=volume,
                 macro=macro,
                 hazard=hazard,
+                default_min_age=int(default_min_age),
             )
 
     return chunks()
 
 
-def _check_book_args(n_loans, seed, cutoff, first_origination, last_origination, chunk_size) -> dict:
+def _check_book_args(n_loans, seed, cutoff, first_origination, last_origination, chunk_size, default_min_age) -> dict:
     problems = []
+    if not isinstance(default_min_age, (int, np.integer)) or default_min_age < 1:
+        problems.append(f"default_min_age must be a positive integer, got {default_min_age!r}")
     if not isinstance(n_loans, (int, np.integer)) or not 1 <= n_loans <= 9_999_999:
         problems.append(f"n_loans must be an integer from 1 to 9,999,999, got {n_loans!r}")
     if not isinstance(seed, (int, np.integer)) or seed < 0:
@@ -691,7 +701,7 @@ def _check_book_args(n_loans, seed, cutoff, first_origination, last_origination,
 
 def book_truth(
     n_loans, seed, *, cutoff="2024-12", first_origination="2016-01", last_origination="2024-09",
-    hazard=None, chunk_size=25_000,
+    hazard=None, chunk_size=25_000, default_min_age=DEFAULT_MIN_AGE,
 ) -> dict:  # fmt: skip
     """Return the record written to ``true_parameters.json``."""
     return {
@@ -708,7 +718,7 @@ def book_truth(
         "hazard": _describe_hazard(true_hazard if hazard is None else hazard),
         "scheduled_balance": SCHEDULED_BALANCE_FORMULA,
         "mechanics": {
-            "default_min_age": DEFAULT_MIN_AGE,
+            "default_min_age": int(default_min_age),
             "prepay_at_maturity": False,
             "hazard_timing": "covariates of month t are known at the start of month t; one draw per live loan-month",
             "default_definition": "90 days past due; 30 at t-2 and 60 at t-1 (status delinquent), 90 at t (status default)",
@@ -797,6 +807,7 @@ def write_demo_book(
     first_origination: str = "2016-01",
     last_origination: str = "2024-09",
     hazard=None,
+    default_min_age: int = DEFAULT_MIN_AGE,
 ) -> dict:
     """Write a simulated book to ``out_dir``, chunk by chunk.
 
@@ -811,7 +822,7 @@ def write_demo_book(
     ----------
     out_dir : str or path
         Folder, created if missing. Must not already hold any output file.
-    n_loans, seed, chunk_size, cutoff, first_origination, last_origination
+    n_loans, seed, chunk_size, cutoff, first_origination, last_origination, default_min_age
         As in :func:`simulate_book`.
 
     Returns
@@ -833,7 +844,12 @@ def write_demo_book(
             f"{out} already holds {', '.join(existing)}; the simulator never overwrites files. "
             "Choose an empty folder or remove them first"
         )
-    book_kw = dict(cutoff=cutoff, first_origination=first_origination, last_origination=last_origination)
+    book_kw = {
+        "cutoff": cutoff,
+        "first_origination": first_origination,
+        "last_origination": last_origination,
+        "default_min_age": default_min_age,
+    }
     chunks = simulate_book(n_loans, seed, chunk_size=chunk_size, hazard=hazard, **book_kw)
     (out / "scenarios").mkdir(parents=True, exist_ok=True)
     temp = {f: out / f"{f}.tmp-{os.getpid()}" for f in OUTPUT_FILES}
