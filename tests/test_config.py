@@ -76,7 +76,7 @@ def _problems(change, tmp_path) -> list[str]:
             lambda d: d.update(
                 scenarios=[{"name": "a", "weight": 0.5, "path": "a.csv"}, {"name": "b", "weight": 0.4, "path": "b.csv"}]
             ),
-            "scenarios: weights must sum to 1, got 0.9 (a=0.5, b=0.4)",
+            "scenarios: scenario weights must sum to 1, got 0.9 (a=0.5, b=0.4)",
             id="weights",
         ),
         pytest.param(

@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from creditsurv.config import DATA_CHECK_NAMES
 from creditsurv.data import CHECKS, format_checks, raise_for_errors
 from creditsurv.engines import open_panel, run_checks
 from creditsurv.errors import ConfigError, DataCheckError, DataCheckWarning, DataError
@@ -381,12 +382,15 @@ def test_severity_override(panel_clean_book, panel_config_factory):
     assert "WARN duplicate_loan_months" in format_checks(checks.reset_index())
 
 
-def test_unknown_check_name_in_config(panel_clean_book, panel_config_factory):
+def test_unknown_check_name_is_a_config_error_when_the_config_is_read(panel_clean_book, panel_config_factory):
     panel, loans, _ = panel_clean_book
-    cfg = panel_config_factory(panel, loans, checks={"severity": {"duplicate_loan_month": "off"}})
     with pytest.raises(ConfigError, match=r"checks\.severity\.duplicate_loan_month: unknown data check; "
                        r"did you mean 'duplicate_loan_months'\?"):
-        open_panel(cfg)
+        panel_config_factory(panel, loans, checks={"severity": {"duplicate_loan_month": "off"}})
+
+
+def test_the_config_knows_every_data_check_by_name():
+    assert tuple(check.name for check in CHECKS) == DATA_CHECK_NAMES
 
 
 # --------------------------------------------------------------------------- input errors

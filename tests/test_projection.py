@@ -13,7 +13,7 @@ import pandas as pd
 import pyarrow as pa
 import pytest
 
-from creditsurv.config import Scenario, config_from_dict
+from creditsurv.config import Scenario, ScenarioWeights, config_from_dict
 from creditsurv.errors import ConfigError, ProjectionError
 from creditsurv.forecast import (
     WEIGHTED,
@@ -388,15 +388,32 @@ def test_scenario_weights_must_sum_to_one_in_the_config(tmp_path):
             {"name": "down", "weight": 0.3, "path": "down.csv"},
         ],
     }
-    with pytest.raises(ConfigError, match=r"weights must sum to 1, got 0\.8 \(base=0\.5, down=0\.3\)"):
+    with pytest.raises(ConfigError, match=r"scenario weights must sum to 1, got 0\.8 \(base=0\.5, down=0\.3\)"):
         config_from_dict(data, tmp_path)
 
 
-def test_projection_weights_are_checked_too():
-    with pytest.raises(ProjectionError, match="sum to 1"):
+def test_projection_weights_given_as_a_plain_mapping_are_checked_at_its_entry():
+    # The same rule and words as the config's (creditsurv.config.weight_problems).
+    with pytest.raises(ConfigError, match=r"scenario weights must sum to 1, got 0\.9 \(base=0\.5, down=0\.4\)"):
         project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights={"base": 0.5, "down": 0.4})
-    with pytest.raises(ProjectionError, match="give the probability weights"):
+    with pytest.raises(ConfigError, match="give the probability weights"):
         project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF)
+    with pytest.raises(ConfigError, match=r"no weight for \['down'\]"):
+        project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights=ScenarioWeights({"base": 1.0}))
+
+
+def test_checked_weights_are_trusted_downstream(monkeypatch):
+    # A run's weights are checked once, when built; the stages do not build (and so check) them again.
+    checked = ScenarioWeights({"base": 0.6, "down": 0.4})
+
+    def check_again(self, *args, **kwargs):
+        raise AssertionError("weights checked a second time")
+
+    monkeypatch.setattr(ScenarioWeights, "__init__", check_again)
+    result = project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights=checked)
+    assert dict(result.weights) == {"base": 0.6, "down": 0.4}
+    with pytest.raises(AssertionError, match="second time"):  # the patch is live: a plain mapping is checked
+        project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights={"base": 0.6, "down": 0.4})
 
 
 def test_extend_path_hold_last_and_revert_to_mean_at_known_months():

@@ -5,7 +5,7 @@ all of them in one error, each with its key path and the closest valid choice.
 """
 
 from ._config import (
-    WEIGHTED,
+    DATA_CHECK_NAMES,
     Baseline,
     Checks,
     Collateral,
@@ -43,9 +43,10 @@ from ._config import (
     schema_reference,
 )
 from ._context import RunContext, run_context
+from ._weights import WEIGHTED, ScenarioWeights, weight_problems
 
 __all__ = [
-    "WEIGHTED", "RunContext", "run_context", "Baseline", "Checks", "Collateral", "Config", "Covariate", "DefaultDefinition", "DuckdbSettings",
+    "DATA_CHECK_NAMES", "WEIGHTED", "RunContext", "ScenarioWeights", "run_context", "weight_problems", "Baseline", "Checks", "Collateral", "Config", "Covariate", "DefaultDefinition", "DuckdbSettings",
     "Events", "FitSettings", "Inputs", "LoanColumns", "LoanSource", "Loss", "Lgd", "MacroColumns",
     "MacroSource", "ModelSpec", "Outputs", "PanelColumns", "PanelSource", "Scenario", "ScenarioExtension",
     "Segments", "SparkSettings", "Staging", "ValidationSettings", "Window", "Windows",

@@ -25,6 +25,7 @@ import yaml
 from ..errors import ConfigError, did_you_mean, problem_list
 from ..months import format_month
 from ._schema import FilePath, Month, build, describe
+from ._weights import weight_problems
 
 __all__ = [
     "Config",
@@ -433,6 +434,19 @@ class Checks:
     )
 
 
+DATA_CHECK_NAMES = (
+    "panel_keys_missing", "duplicate_loan_months", "month_gaps", "age_mismatch", "rows_after_closure",
+    "balance_missing", "balance_negative", "days_past_due_invalid", "panel_loans_not_in_loan_table",
+    "loans_without_panel_rows", "loan_table_duplicates", "loan_fields_invalid", "months_after_as_of",
+    "macro_duplicate_months", "macro_months_missing", "macro_values_missing",
+)  # fmt: skip
+"""The data checks, by name, in the order they run: what ``checks.severity`` may name.
+
+The checks themselves (their SQL and default severities) are ``creditsurv.data.CHECKS``;
+the tests keep the two in step.
+"""
+
+
 # --------------------------------------------------------------------------- the whole run
 
 
@@ -477,21 +491,18 @@ class Config:
                 problems.append(f"windows.out_of_time.start: {oot.start} must be after development.end {dev.end}")
             if oot.end > self.as_of:
                 problems.append(f"windows.out_of_time.end: {oot.end} is after as_of {self.as_of}")
+        for name in self.checks.severity:
+            if name not in DATA_CHECK_NAMES:
+                hint = did_you_mean(name, DATA_CHECK_NAMES) or f" (valid names: {', '.join(DATA_CHECK_NAMES)})"
+                problems.append(f"checks.severity.{name}: unknown data check{hint}")
         if self.scenarios:
             text = _unique([s.name for s in self.scenarios])
             if text:
                 problems.append(f"scenarios: {text}")
-            if WEIGHTED in {s.name for s in self.scenarios}:
-                problems.append(f"scenarios: the name {WEIGHTED!r} is reserved for the probability-weighted result")
-            total = sum(s.weight for s in self.scenarios)
-            if abs(total - 1.0) > 1e-9:
-                weights = ", ".join(f"{s.name}={s.weight:g}" for s in self.scenarios)
-                problems.append(f"scenarios: weights must sum to 1, got {total:.10g} ({weights})")
+            problems += weight_problems({s.name: s.weight for s in self.scenarios})
         return problems
 
 
-WEIGHTED = "weighted"
-"""Name of the probability-weighted scenario in every output table (reserved: no scenario may use it)."""
 
 
 # --------------------------------------------------------------------------- loading

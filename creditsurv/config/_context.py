@@ -2,15 +2,13 @@
 
 from __future__ import annotations
 
-from collections.abc import Mapping
 from dataclasses import dataclass
-from types import MappingProxyType
 
 from ..errors import ConfigError
-from ._config import WEIGHTED, Config
+from ._config import Config
+from ._weights import ScenarioWeights
 
-__all__ = ["WEIGHTED", "RunContext", "run_context"]
-
+__all__ = ["RunContext", "run_context"]
 
 @dataclass(frozen=True)
 class RunContext:
@@ -21,7 +19,7 @@ class RunContext:
     cfg : Config
     as_of : int
         The reporting month as a month index (``year * 12 + month - 1``).
-    weights : mapping of str to float
+    weights : ScenarioWeights
         Scenario name to probability weight, in config order; non-negative,
         summing to 1 (checked when the config was read).
     engine : str
@@ -30,7 +28,7 @@ class RunContext:
 
     cfg: Config
     as_of: int
-    weights: Mapping[str, float]
+    weights: ScenarioWeights
     engine: str
 
     @property
@@ -46,7 +44,7 @@ class RunContext:
         cfg = self.cfg
         return {
             "as_of_idx": self.as_of,
-            "weights": dict(self.weights),
+            "weights": self.weights,
             "loss": cfg.loss,
             "staging": cfg.staging,
             "default_days_past_due": cfg.default_definition.days_past_due,
@@ -58,16 +56,19 @@ class RunContext:
         }
 
 
-def run_context(cfg: Config, *, needs_scenarios: bool = True) -> RunContext:
+def run_context(cfg: Config) -> RunContext:
     """The run context of ``cfg``.
+
+    The weights were checked when the config was read; they are wrapped here
+    in :class:`ScenarioWeights`, which every stage then trusts.
 
     Raises
     ------
     ConfigError
-        ``needs_scenarios`` and the config names no scenario (a run projects
-        under at least one; the fit does not need any).
+        The config names no scenario (a run projects under at least one; the
+        fit alone does not need any).
     """
-    if needs_scenarios and not cfg.scenarios:
+    if not cfg.scenarios:
         raise ConfigError("scenarios: a run needs at least one scenario (name, weight, path)")
-    weights = MappingProxyType({s.name: float(s.weight) for s in cfg.scenarios})
+    weights = ScenarioWeights({s.name: s.weight for s in cfg.scenarios})
     return RunContext(cfg=cfg, as_of=int(cfg.as_of), weights=weights, engine=cfg.engine)

@@ -16,33 +16,18 @@ import pandas as pd
 
 from ..config import Config
 from ..errors import (
-    ConfigError,
     DataCheckError,
     DataCheckWarning,
-    did_you_mean,
-    problem_list,
 )
 from ..sql import quote_ident
 from ._inputs import macro_series_used
 
 __all__ = [
-    "CHECKS", "CHECK_COLUMNS", "Check", "PlannedCheck", "check_frame", "check_severity_names", "format_checks",
+    "CHECKS", "CHECK_COLUMNS", "Check", "PlannedCheck", "check_frame", "format_checks",
     "plan_checks", "raise_for_errors",
 ]  # fmt: skip
 
 Severity = str  # "error" | "warning" | "off"
-
-
-def check_severity_names(cfg: Config) -> None:
-    names = [c.name for c in CHECKS]
-    problems = [
-        f"checks.severity.{name}: unknown data check" + (did_you_mean(name, names) or f" (valid names: {', '.join(names)})")
-        for name in cfg.checks.severity
-        if name not in names
-    ]
-    if problems:
-        raise ConfigError(f"config: {problem_list(problems, 'the config')}", problems)
-
 
 
 @dataclasses.dataclass(frozen=True)

@@ -47,7 +47,6 @@ from ..data import (
     Check,
     Source,
     check_frame,
-    check_severity_names,
     event_params,
     file_format,
     input_sources,
@@ -443,10 +442,8 @@ def open_panel(cfg: Config) -> DuckdbEngine:
         wrong type or clashes with an internal name. Every column problem is
         listed in one error.
     ConfigError
-        ``checks.severity`` names an unknown check, or DuckDB rejects the
-        ``duckdb`` settings.
+        DuckDB rejects the ``duckdb`` settings.
     """
-    check_severity_names(cfg)
     con, spill_dir = _connect(cfg)
     panel = DuckdbEngine(cfg, con, {}, spill_dir)
     try:

@@ -51,7 +51,6 @@ from ..data import (
     PANEL_COLUMNS,
     Source,
     check_frame,
-    check_severity_names,
     file_format,
     input_sources,
     passthrough_columns,
@@ -527,7 +526,6 @@ def open_panel(cfg) -> SparkEngine:
     Same contract and errors as :func:`creditsurv.engines.open_panel`; DuckDB
     database files are not readable here.
     """
-    check_severity_names(cfg)
     spark, owns = spark_session(cfg.spark)
     panel = SparkEngine(cfg, spark, owns)
     try:

@@ -50,8 +50,8 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ..config import WEIGHTED
-from ..errors import ProjectionError, problem_list
+from ..config import WEIGHTED, ScenarioWeights
+from ..errors import ConfigError, ProjectionError, problem_list
 from ..model import (
     equivalent_psa,
     equivalent_sda,
@@ -352,7 +352,7 @@ class ChunkProjection:
     balance_end: np.ndarray
     note_rate: np.ndarray
     scenarios: tuple[str, ...]
-    weights: dict[str, float]
+    weights: ScenarioWeights
     h_default: dict[str, np.ndarray]
     h_prepay: dict[str, np.ndarray]
     survival_prev: dict[str, np.ndarray]
@@ -426,7 +426,7 @@ class ProjectionResult:
     speeds: pd.DataFrame
     speed_multiples: pd.DataFrame
     scenarios: tuple[str, ...]
-    weights: dict[str, float]
+    weights: ScenarioWeights
     as_of_idx: int
     band_edges: tuple = ()
     sums: SegmentSums | None = None
@@ -470,22 +470,25 @@ def score_band_labels(edges) -> list[str]:
     return [f"<{e[0]}"] + [f"{a}-{b}" for a, b in zip(e, e[1:])] + [f">={e[-1]}"]
 
 
-def scenario_weights(scenarios, weights) -> dict[str, float]:
-    if WEIGHTED in scenarios:
-        raise ProjectionError(f"scenario name {WEIGHTED!r} is reserved for the probability-weighted result")
+def scenario_weights(scenarios, weights) -> ScenarioWeights:
+    """The weights of ``scenarios``, in their order.
+
+    Weights already of type :class:`ScenarioWeights` (a run's context) are
+    trusted; a plain mapping from a library caller is checked here, once.
+    With one scenario the weights may be left out.
+
+    Raises
+    ------
+    ConfigError
+        Bad weights, or weights that do not match the scenarios.
+    """
     if weights is None:
         if len(scenarios) == 1:
-            return {scenarios[0]: 1.0}
-        raise ProjectionError(f"give the probability weights of the scenarios {list(scenarios)}")
-    w = {s: float(weights[s]) for s in scenarios if s in weights}
-    missing = [s for s in scenarios if s not in w]
-    extra = [s for s in weights if s not in scenarios]
-    if missing or extra:
-        raise ProjectionError(f"weights: no weight for {missing}; weights for unknown scenarios {extra}")
-    total = sum(w.values())
-    if abs(total - 1.0) > 1e-9 or any(v < 0 for v in w.values()):
-        raise ProjectionError(f"weights must be non-negative and sum to 1, got {w} (sum {total:.10g})")
-    return w
+            return ScenarioWeights({scenarios[0]: 1.0})
+        raise ConfigError(f"give the probability weights of the scenarios {list(scenarios)}")
+    if not isinstance(weights, ScenarioWeights):
+        weights = ScenarioWeights(weights)
+    return weights.in_order(scenarios)
 
 
 def _prepare_book(loans, spec, *, as_of_idx, region_column, hpi_series, market_rate_series, origination: bool):
@@ -649,7 +652,7 @@ def project_loans(
     paths: Mapping[str, pd.DataFrame],
     *,
     as_of_idx: int,
-    weights: Mapping[str, float] | None = None,
+    weights: ScenarioWeights | Mapping[str, float] | None = None,
     chunk_size: int = 2000,
     hpi_series: str = "hpi_{region}",
     region_column: str = "region",
@@ -679,8 +682,9 @@ def project_loans(
         (see :func:`prepare_paths`).  Order is the scenario order.
     as_of_idx : int
         Reporting month index; month ahead u is calendar month ``as_of_idx + u``.
-    weights : mapping of scenario -> float, optional
-        Probability weights summing to 1; optional with one scenario.
+    weights : ScenarioWeights or mapping of scenario -> float, optional
+        Probability weights summing to 1 (a plain mapping is checked here);
+        optional with one scenario.
     chunk_size : int, default 2000
         Loans per chunk; memory grows with chunk_size x longest remaining term.
     hpi_series, region_column, market_rate_series : str
@@ -708,6 +712,9 @@ def project_loans(
 
     Raises
     ------
+    ConfigError
+        Bad weights (see :func:`creditsurv.config.weight_problems`), or weights
+        that do not match the scenarios of ``paths``.
     ProjectionError
         Loans past maturity or with a negative note rate (naming the first five
         loan ids and the count), missing columns, macro paths that do not cover

@@ -90,11 +90,11 @@ def combine_partitions(results: list[EclResult]) -> EclResult:
     speeds, multiples = speeds_frames(sp, names, seg_names, labels, max_age)
     projection = ProjectionResult(
         loans=proj_loans, term_structure=term_structure, speeds=speeds, speed_multiples=multiples,
-        scenarios=tuple(scenarios), weights=dict(weights), as_of_idx=first.projection.as_of_idx,
+        scenarios=tuple(scenarios), weights=weights, as_of_idx=first.projection.as_of_idx,
         band_edges=tuple(band_edges), sums=SegmentSums(tuple(seg_names), tuple(labels), ts, sp),
     )
     return EclResult(loans=loans, segments=segment_summary(loans), projection=projection,
-                     scenarios=tuple(scenarios), weights=dict(weights))
+                     scenarios=tuple(scenarios), weights=weights)
 
 
 def expected_credit_loss_by_partition(engine, loans, source, paths, *, writers=None, progress=None, **options) -> EclResult:

@@ -37,7 +37,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from ..config import Loss, Staging
+from ..config import Loss, ScenarioWeights, Staging
 from ..errors import ProjectionError
 from ..forecast import (
     WEIGHTED,
@@ -178,7 +178,7 @@ class EclResult:
     segments: pd.DataFrame
     projection: ProjectionResult
     scenarios: tuple[str, ...]
-    weights: dict[str, float]
+    weights: ScenarioWeights
 
 
 def segment_summary(loans: pd.DataFrame) -> pd.DataFrame:
@@ -328,7 +328,7 @@ def expected_credit_loss(
     paths: Mapping[str, pd.DataFrame],
     *,
     as_of_idx: int,
-    weights: Mapping[str, float] | None = None,
+    weights: ScenarioWeights | Mapping[str, float] | None = None,
     loss: Loss = Loss(),
     staging: Staging = Staging(),
     default_days_past_due: int | None = 90,

@@ -45,7 +45,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..config import WEIGHTED
+from ..config import WEIGHTED, weight_problems
 from ..errors import RunError, problem_list
 from ._folder import MANIFEST, read_manifest
 
@@ -142,27 +142,6 @@ class MovementResult:
 
 
 # --------------------------------------------------------------------------- checks
-
-
-def _check_weights(weights: Mapping[str, float], label: str) -> list[str]:
-    if not weights:
-        return [f"{label}: no scenario weights given"]
-    problems = []
-    if WEIGHTED in weights:
-        problems.append(f"{label}: {WEIGHTED!r} is the probability-weighted result, not a scenario")
-    values = {}
-    for s, w in weights.items():
-        try:
-            values[s] = float(w)
-        except (TypeError, ValueError):
-            values[s] = np.nan
-    bad = {s: weights[s] for s, w in values.items() if not (np.isfinite(w) and w >= 0)}
-    if bad:
-        problems.append(f"{label}: scenario weights must be finite numbers >= 0, got {bad}")
-    elif abs(sum(values.values()) - 1.0) > 1e-6:
-        text = ", ".join(f"{s}={w:g}" for s, w in values.items())
-        problems.append(f"{label}: scenario weights must sum to 1, got {sum(values.values()):.10g} ({text})")
-    return problems
 
 
 def _check_loans(df: pd.DataFrame, weights: Mapping[str, float], label: str, segment_column: str) -> list[str]:
@@ -354,10 +333,10 @@ def _validate(loans_a, loans_b, weights_a, weights_b, segment_column, labels) ->
     """Check both runs' weights and tables; raise one RunError listing every problem."""
     problems = []
     for loans, weights, label in ((loans_a, weights_a, labels[0]), (loans_b, weights_b, labels[1])):
-        weight_problems = _check_weights(weights, f"{label} weights")
-        problems += weight_problems
+        bad_weights = weight_problems(weights, f"{label} weights")
+        problems += bad_weights
         # Scenario columns are only checked against usable weights.
-        problems += _check_loans(loans, {} if weight_problems else weights, f"{label} loans", segment_column)
+        problems += _check_loans(loans, {} if bad_weights else weights, f"{label} loans", segment_column)
     _raise(problems, "the runs to compare")
 
 
