@@ -286,7 +286,8 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         run.outputs["pd_term_structure.parquet"]["rows"] = curves.rows
         run.outputs["ecl_schedule.parquet"]["rows"] = schedule.rows
     csv = cfg.outputs.csv_copies
-    run.add_table(result.loans, "loan_ecl.parquet", csv=csv)
+    loan_table = result.loan_table()
+    run.add_table(loan_table, "loan_ecl.parquet", csv=csv)
     run.add_table(result.segments, "segment_summary.csv")
     tidy, wide = segment_pd_tables(result.projection.term_structure)
     run.add_table(tidy, "segment_pd_table.csv")
@@ -294,7 +295,7 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     run.add_table(result.projection.speeds, "segment_speeds.csv")
     run.add_table(result.projection.speed_multiples, "equivalent_speeds.csv")
     report_tables = {
-        "loan_ecl": result.loans,
+        "loan_ecl": loan_table,
         "segment_summary": result.segments,
         "segment_pd_table": segment_level(tidy),
     }
@@ -384,7 +385,7 @@ def execute_run(
             _validate_run(cfg, engine, model, result, run, manifest, report_tables, progress)
             if cfg.outputs.prior_run is not None:
                 _say(progress, "movement against the prior run")
-                movement = movement_against_run(cfg.outputs.prior_run, result.loans, manifest.scenario_weights)
+                movement = movement_against_run(cfg.outputs.prior_run, report_tables["loan_ecl"], manifest.scenario_weights)
                 for file, table in movement.to_tables().items():
                     run.add_table(table, file)
                 report_tables["movement_walk"] = movement.walk

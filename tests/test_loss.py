@@ -87,7 +87,7 @@ def test_ecl_of_a_small_book_matches_a_direct_sum(accrued):
     book = _small_book()
     res = expected_credit_loss(
         book, _table_source(), {"base": _flat_macro()}, as_of_idx=AS_OF, loss=_loss(accrued_interest=accrued), staging=STAGING
-    ).loans.set_index("loan_id")
+    ).loan_table().set_index("loan_id")
     for lid, lgd in (("A", 0.3), ("B", 0.3), ("C", 0.5)):
         row = book.set_index("loan_id").loc[lid]
         rem = row.term - row.age
@@ -108,7 +108,7 @@ def test_discount_none_and_eir_discount_factors():
     book = _small_book()
     res = expected_credit_loss(
         book, _table_source(), {"base": _flat_macro()}, as_of_idx=AS_OF, loss=_loss(discount="none"), staging=STAGING
-    ).loans.set_index("loan_id")
+    ).loan_table().set_index("loan_id")
     assert res.loc["A", "ecl_lifetime"] == pytest.approx(_hand_ecl(10_000.0, 0.06, 20, 0.3, 20, discount=False), rel=1e-10)
 
 
@@ -144,7 +144,7 @@ def test_collateral_lgd_in_the_schedule_uses_the_scenario_hpi_at_the_sale_month(
     assert a.loc[u, "lgd"] == pytest.approx(expected, rel=1e-10)
     # the schedule sums to the lifetime ECL, and each row is marginal PD x LGD x EAD x DF
     total = sched.groupby(["loan_id", "scenario"], observed=True)["expected_loss"].sum()
-    loans = res.loans.set_index("loan_id")
+    loans = res.loan_table().set_index("loan_id")
     for lid in "ABC":
         assert total[(lid, "base")] == pytest.approx(loans.loc[lid, "ecl_lifetime_base"], rel=1e-12)
     np.testing.assert_allclose(
@@ -188,7 +188,7 @@ def test_reported_ecl_is_12_month_for_stage_1_and_lifetime_for_stages_2_and_3():
     res = expected_credit_loss(
         book, _table_source(), {"base": _flat_macro()}, as_of_idx=AS_OF, loss=_loss(), staging=STAGING
     )
-    t = res.loans.set_index("loan_id")
+    t = res.loan_table().set_index("loan_id")
     assert t["stage"].tolist() == [1, 2, 3]
     assert t.loc["A", "ecl_reported"] == t.loc["A", "ecl_12m"]  # IFRS 9 5.5.5
     assert t.loc["B", "ecl_reported"] == t.loc["B", "ecl_lifetime"]  # IFRS 9 5.5.3
@@ -208,7 +208,7 @@ def test_in_default_column_overrides_days_past_due():
     book = _small_book().assign(in_default=[False, True, False])
     t = expected_credit_loss(
         book, _table_source(), {"base": _flat_macro()}, as_of_idx=AS_OF, loss=_loss(), staging=STAGING
-    ).loans.set_index("loan_id")
+    ).loan_table().set_index("loan_id")
     assert t["stage"].tolist() == [1, 3, 1]
 
 
@@ -231,10 +231,16 @@ def test_probability_weighting_of_scenarios():
         book, _MacroSource(), {"base": base, "down": down}, as_of_idx=AS_OF, weights={"base": 0.7, "down": 0.3},
         loss=_loss(), staging=STAGING,
     )
-    t = res.loans
+    t = res.loan_table()
     for m in ("ecl_12m", "ecl_lifetime", "pd_12m", "pd_lifetime"):
         np.testing.assert_allclose(t[m], 0.7 * t[f"{m}_base"] + 0.3 * t[f"{m}_down"], rtol=1e-14)
     assert (t["ecl_lifetime_down"] > t["ecl_lifetime_base"]).all()
+    # The tidy form holds the same numbers: one row per loan and scenario, weighted last.
+    tidy = res.by_scenario.set_index(["scenario", "loan_id"])
+    assert list(res.by_scenario["scenario"].cat.categories) == ["base", "down", "weighted"]
+    for s in ("base", "down"):
+        np.testing.assert_array_equal(tidy.loc[s, "ecl_lifetime"].to_numpy(), t[f"ecl_lifetime_{s}"].to_numpy())
+    np.testing.assert_array_equal(tidy.loc["weighted", "pd_12m"].to_numpy(), t["pd_12m"].to_numpy())
     # direct sum for loan A under each scenario: hD = 0.002 x rate, hP = 0.01
     row = book.iloc[0]
     for s, rate in (("base", 5.0), ("down", 8.0)):
@@ -301,7 +307,7 @@ def test_weighted_schedule_rows_keep_the_product_identity():
     w = s[s.scenario == WEIGHTED]
     np.testing.assert_allclose(w["expected_loss"], w["marginal_pd"] * w["lgd"] * w["ead"] * w["discount_factor"], rtol=1e-12)
     total = s.groupby(["loan_id", "scenario"], observed=True)["expected_loss"].sum()
-    t = res.loans.set_index("loan_id")
+    t = res.loan_table().set_index("loan_id")
     assert total[("A", WEIGHTED)] == pytest.approx(t.loc["A", "ecl_lifetime"], rel=1e-12)
 
 
@@ -343,7 +349,11 @@ def test_partitions_combined_from_their_sums_equal_the_whole_book():
     parts = [expected_credit_loss(book.iloc[a:b], HazardTable(hazards), paths, **options) for a, b in ((0, 30), (30, 60), (60, n))]
     combined = combine_partitions(parts)
     assert combine_partitions([whole]) is whole
-    pd.testing.assert_frame_equal(combined.loans, whole.loans)
+    pd.testing.assert_frame_equal(combined.loan_table(), whole.loan_table())
+    key = ["scenario", "loan_id"]
+    pd.testing.assert_frame_equal(
+        combined.by_scenario.sort_values(key, ignore_index=True), whole.by_scenario.sort_values(key, ignore_index=True)
+    )
     pd.testing.assert_frame_equal(combined.segments, whole.segments, check_exact=False, rtol=1e-12)
     for name in ("term_structure", "speeds", "speed_multiples"):
         pd.testing.assert_frame_equal(

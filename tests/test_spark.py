@@ -138,7 +138,7 @@ def test_loan_level_pd_and_ecl_are_the_same(both_engines):
     duck, spark = both_engines
     a, b = duck["ecl"], spark["ecl"]  # each engine with its own fit
     assert len(a.loans) == len(b.loans) > 1000
-    _close(a.loans, b.loans)
+    _close(a.loan_table(), b.loan_table())
     _close(a.projection.loans, b.projection.loans)
 
 
@@ -146,7 +146,7 @@ def test_partitioned_ecl_equals_the_single_machine_one(both_engines):
     """Same coefficients, so only the partitioning differs."""
     duck, spark = both_engines
     a, b = duck["ecl"], spark["ecl_reference"]
-    _close(a.loans, b.loans)
+    _close(a.loan_table(), b.loan_table())
     _close(a.segments, b.segments)
     # segment tables combined from the partitions' pooled sums
     _close(a.projection.term_structure, b.projection.term_structure, atol=PROB_ATOL)

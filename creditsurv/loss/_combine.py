@@ -93,8 +93,9 @@ def combine_partitions(results: list[EclResult]) -> EclResult:
         scenarios=tuple(scenarios), weights=weights, as_of_idx=first.projection.as_of_idx,
         band_edges=tuple(band_edges), sums=SegmentSums(tuple(seg_names), tuple(labels), ts, sp),
     )
-    return EclResult(loans=loans, segments=segment_summary(loans), projection=projection,
-                     scenarios=tuple(scenarios), weights=weights)
+    by_scenario = pd.concat([r.by_scenario for r in results], ignore_index=True)
+    return EclResult(loans=loans, by_scenario=by_scenario, segments=segment_summary(loans), projection=projection,
+                     scenarios=tuple(scenarios), weights=weights)  # fmt: skip
 
 
 def expected_credit_loss_by_partition(engine, loans, source, paths, *, writers=None, progress=None, **options) -> EclResult:

@@ -152,33 +152,69 @@ def allocate_stages(
     return stage, reason
 
 
+SCENARIO_MEASURES = ("pd_12m", "pd_lifetime", "ecl_12m", "ecl_lifetime")
+"""The per-scenario measures of a loan, in the order of the wide loan table's columns."""
+
+
 @dataclass
 class EclResult:
-    """Loan-level ECL, segment summary and the projection behind them.
+    """Loan-level ECL, its per-scenario measures, the segment summary and the projection behind them.
 
     Attributes
     ----------
     loans : DataFrame
         One row per loan, sorted by loan_id: ``loan_id``, ``segment``,
         ``stage``, ``stage_reason``, ``days_past_due``, ``pd_12m``,
-        ``pd_lifetime``, ``pd_lifetime_origination``, ``ead``, ``lgd``,
-        ``ecl_12m``, ``ecl_lifetime``, ``ecl_reported``, then per scenario s:
-        ``pd_12m_<s>``, ``pd_lifetime_<s>``, ``ecl_12m_<s>``, ``ecl_lifetime_<s>``.
-        Unsuffixed PD and ECL columns are probability weighted.  ``ead`` is the
-        as-of exposure and ``lgd`` the weighted LGD of a default in the
-        reporting month (the stage 3 LGD).  Stage 3 rows carry PD = 1 and
-        ECL = LGD x EAD in every scenario column.
+        ``pd_lifetime``, ``pd_lifetime_origination``, ``balance``, ``ead``,
+        ``lgd``, ``ecl_12m``, ``ecl_lifetime``, ``ecl_reported``. The PD and
+        ECL columns are probability weighted.  ``ead`` is the as-of exposure
+        and ``lgd`` the weighted LGD of a default in the reporting month (the
+        stage 3 LGD).
+    by_scenario : DataFrame
+        The tidy per-scenario measures: one row per loan and scenario
+        (scenario by scenario in ``scenarios`` order, then ``weighted``; loans
+        in ``loans`` order within each), columns ``loan_id``, ``scenario``,
+        ``pd_12m``, ``pd_lifetime``, ``ecl_12m``, ``ecl_lifetime``. Stage 3
+        rows carry PD = 1 and ECL = LGD x EAD in every scenario.
     segments : DataFrame
         See :func:`segment_summary`.
     projection : ProjectionResult
         Of the loans not in default.
+    scenarios : tuple of str
+    weights : ScenarioWeights
     """
 
     loans: pd.DataFrame
+    by_scenario: pd.DataFrame
     segments: pd.DataFrame
     projection: ProjectionResult
     scenarios: tuple[str, ...]
     weights: ScenarioWeights
+
+    def loan_table(self) -> pd.DataFrame:
+        """The loan table as written (``loan_ecl.parquet``): :attr:`loans`, then per scenario s
+        the columns ``pd_12m_<s>``, ``pd_lifetime_<s>``, ``ecl_12m_<s>``, ``ecl_lifetime_<s>``."""
+        table = self.loans.copy()
+        ids = table["loan_id"].to_numpy()
+        for s in self.scenarios:
+            rows = self.by_scenario[self.by_scenario["scenario"] == s]
+            if not np.array_equal(rows["loan_id"].to_numpy(), ids):
+                rows = rows.set_index("loan_id").loc[ids].reset_index()
+            for m in SCENARIO_MEASURES:
+                table[f"{m}_{s}"] = rows[m].to_numpy()
+        return table
+
+
+def _tidy(loan_ids: np.ndarray, names: tuple[str, ...], measures: dict[str, np.ndarray]) -> pd.DataFrame:
+    """One row per loan and scenario from ``(n_loans, n_scenarios)`` arrays, scenario by scenario."""
+    n, k = len(loan_ids), len(names)
+    return pd.DataFrame(
+        {
+            "loan_id": np.tile(loan_ids, k),
+            "scenario": pd.Categorical(np.repeat(np.array(names, dtype=object), n), categories=list(names)),
+            **{m: np.ascontiguousarray(measures[m].T).ravel() for m in SCENARIO_MEASURES},
+        }
+    )
 
 
 def segment_summary(loans: pd.DataFrame) -> pd.DataFrame:
@@ -432,23 +468,22 @@ def expected_credit_loss(
 
     n = len(frame)
     names = (*scenarios, WEIGHTED)
-    out = {"loan_id": frame["loan_id"].to_numpy(), "segment": frame["segment"].to_numpy()}
     pl = proj.loans  # sorted by loan_id like live
-    cols = {}
-    for s in names:
-        for m in ("pd_12m", "pd_lifetime", "ecl_12m", "ecl_lifetime"):
-            cols[f"{m}_{s}"] = np.ones(n) if m.startswith("pd") else np.zeros(n)
-        cols[f"pd_12m_{s}"][live_rows] = pl[f"pd_12m_{s}"].to_numpy()
-        cols[f"pd_lifetime_{s}"][live_rows] = pl[f"pd_lifetime_{s}"].to_numpy()
-        cols[f"ecl_12m_{s}"][live_rows] = acc.ecl_12m[s]
-        cols[f"ecl_lifetime_{s}"][live_rows] = acc.ecl_life[s]
+    # Per measure, one column per scenario (then weighted): stage 3 rows keep PD 1 until filled below.
+    measures = {m: np.ones((n, len(names))) if m.startswith("pd") else np.zeros((n, len(names))) for m in SCENARIO_MEASURES}
+    for k, s in enumerate(names):
+        measures["pd_12m"][live_rows, k] = pl[f"pd_12m_{s}"].to_numpy()
+        measures["pd_lifetime"][live_rows, k] = pl[f"pd_lifetime_{s}"].to_numpy()
+        measures["ecl_12m"][live_rows, k] = acc.ecl_12m[s]
+        measures["ecl_lifetime"][live_rows, k] = acc.ecl_life[s]
 
     pd_orig = _pd_at_origination(
         frame, live, live_rows, in_default, staging, source, paths[scenarios[0]],
         chunk_size=chunk_size, hpi_series=hpi_series, region_column=region_column, market_rate_series=market_rate_series,
     )
 
-    stage, reason = allocate_stages(cols[f"pd_lifetime_{WEIGHTED}"], pd_orig, dpd, in_default, staging)
+    weighted = len(names) - 1
+    stage, reason = allocate_stages(measures["pd_lifetime"][:, weighted], pd_orig, dpd, in_default, staging)
 
     # stage 3: ECL = LGD x EAD at the reporting month, per scenario
     balance = frame["balance"].to_numpy(dtype=float)
@@ -457,23 +492,24 @@ def expected_credit_loss(
     lgd0 = {s: _lgd_at_reporting_month(frame, ead0, rate, lookups[s], lgd_cfg, region_column, hpi_names, as_of_idx) for s in scenarios}
     lgd0[WEIGHTED] = sum(w[s] * lgd0[s] for s in scenarios)
     d = in_default
-    for s in names:
+    for k, s in enumerate(names):
         loss3 = lgd0[s] * ead0
-        cols[f"ecl_12m_{s}"][d] = loss3[d]
-        cols[f"ecl_lifetime_{s}"][d] = loss3[d]
-    # weighted columns: sum_s w_s x (IFRS 9 5.5.17), recomputed to include stage 3 rows
+        measures["ecl_12m"][d, k] = loss3[d]
+        measures["ecl_lifetime"][d, k] = loss3[d]
+    # weighted: sum_s w_s x (IFRS 9 5.5.17), recomputed to include stage 3 rows
     for m in ("ecl_12m", "ecl_lifetime", "pd_12m", "pd_lifetime"):
-        cols[f"{m}_{WEIGHTED}"] = sum(w[s] * cols[f"{m}_{s}"] for s in scenarios)
+        measures[m][:, weighted] = sum(w[s] * measures[m][:, k] for k, s in enumerate(scenarios))
 
-    ecl_12m, ecl_life = cols[f"ecl_12m_{WEIGHTED}"], cols[f"ecl_lifetime_{WEIGHTED}"]
+    ecl_12m, ecl_life = measures["ecl_12m"][:, weighted].copy(), measures["ecl_lifetime"][:, weighted].copy()
     table = pd.DataFrame(
         {
-            **out,
+            "loan_id": frame["loan_id"].to_numpy(),
+            "segment": frame["segment"].to_numpy(),
             "stage": stage,
             "stage_reason": reason,
             "days_past_due": dpd,
-            "pd_12m": cols[f"pd_12m_{WEIGHTED}"],
-            "pd_lifetime": cols[f"pd_lifetime_{WEIGHTED}"],
+            "pd_12m": measures["pd_12m"][:, weighted].copy(),
+            "pd_lifetime": measures["pd_lifetime"][:, weighted].copy(),
             "pd_lifetime_origination": pd_orig,
             "balance": balance,
             "ead": ead0,
@@ -484,7 +520,7 @@ def expected_credit_loss(
             "ecl_reported": np.where(stage == 1, ecl_12m, ecl_life),
         }
     )
-    for s in scenarios:
-        for m in ("pd_12m", "pd_lifetime", "ecl_12m", "ecl_lifetime"):
-            table[f"{m}_{s}"] = cols[f"{m}_{s}"]
-    return EclResult(loans=table, segments=segment_summary(table), projection=proj, scenarios=scenarios, weights=w)
+    return EclResult(
+        loans=table, by_scenario=_tidy(table["loan_id"].to_numpy(), names, measures), segments=segment_summary(table),
+        projection=proj, scenarios=scenarios, weights=w,
+    )  # fmt: skip
