@@ -358,6 +358,79 @@ def _lgd_at_reporting_month(frame, ead0, rate, lookup, lgd_cfg, region_column, h
     )
 
 
+def _book_frame(loans: pd.DataFrame, segment_column: str, default_days_past_due) -> tuple[pd.DataFrame, np.ndarray]:
+    """The book sorted by loan id with a ``segment`` column, and which loans are in default at the reporting month."""
+    if segment_column not in loans.columns:
+        raise ProjectionError(f"loans: no segment column {segment_column!r}; have {list(loans.columns)}")
+    if "days_past_due" not in loans.columns:
+        raise ProjectionError(f"loans: no days_past_due column (needed for staging); have {list(loans.columns)}")
+    frame = loans.sort_values("loan_id", kind="stable").reset_index(drop=True)
+    if segment_column != "segment":
+        frame = frame.assign(segment=frame[segment_column])
+    if "in_default" in frame.columns:
+        return frame, frame["in_default"].to_numpy(dtype=bool)
+    if default_days_past_due is not None:
+        return frame, frame["days_past_due"].to_numpy() >= default_days_past_due
+    raise ProjectionError("loans: no in_default column and no days-past-due default threshold")
+
+
+def _house_price_series(frame, in_default, lookups, lgd_cfg, hpi_series, region_column, as_of_idx) -> dict:
+    """Region to house-price series of the collateral LGD, after checking every scenario covers the months it reads."""
+    need = ["property_value", "origination_idx", region_column]
+    missing = [c for c in need if c not in frame.columns]
+    if missing:
+        raise ProjectionError(f"loans: collateral LGD needs column(s) {missing}")
+    hpi_names = {r: hpi_series.format(region=str(r).lower()) for r in pd.unique(frame[region_column])}
+    live = ~in_default
+    needs = {}
+    ends = (as_of_idx + frame["term"].to_numpy() - frame["age"].to_numpy() + lgd_cfg.months_to_recovery)
+    for region, name in hpi_names.items():
+        rows = frame[region_column].to_numpy() == region
+        months = [np.unique(frame["origination_idx"].to_numpy()[rows]), [as_of_idx + lgd_cfg.months_to_recovery]]
+        if (rows & live).any():
+            months.append(np.arange(as_of_idx + 1, int(ends[rows & live].max()) + 1))
+        needs.setdefault(name, []).extend(months)
+    check_coverage(lookups, {k: np.unique(np.concatenate([np.asarray(m) for m in v])) for k, v in needs.items()})
+    return hpi_names
+
+
+def _live_measures(n: int, live_rows, names, proj: ProjectionResult, acc: _EclAccumulator) -> dict[str, np.ndarray]:
+    """Per measure, an ``(n_loans, n_scenarios)`` array filled for the projected loans; other rows PD 1, ECL 0."""
+    pl = proj.loans  # sorted by loan_id like the live loans
+    measures = {m: np.ones((n, len(names))) if m.startswith("pd") else np.zeros((n, len(names))) for m in SCENARIO_MEASURES}
+    for k, s in enumerate(names):
+        measures["pd_12m"][live_rows, k] = pl[f"pd_12m_{s}"].to_numpy()
+        measures["pd_lifetime"][live_rows, k] = pl[f"pd_lifetime_{s}"].to_numpy()
+        measures["ecl_12m"][live_rows, k] = acc.ecl_12m[s]
+        measures["ecl_lifetime"][live_rows, k] = acc.ecl_life[s]
+    return measures
+
+
+def _reporting_month_loss(frame, loss: Loss, lookups, region_column, hpi_names, as_of_idx, w) -> tuple[np.ndarray, dict]:
+    """EAD at the reporting month and, per scenario (then weighted), the LGD of a default then: the stage 3 basis."""
+    balance = frame["balance"].to_numpy(dtype=float)
+    rate = frame["note_rate"].to_numpy(dtype=float)
+    ead0 = balance * (1.0 + rate / 12.0) if loss.accrued_interest else balance
+    lgd0 = {
+        s: _lgd_at_reporting_month(frame, ead0, rate, lookups[s], loss.lgd, region_column, hpi_names, as_of_idx)
+        for s in w
+    }
+    lgd0[WEIGHTED] = sum(w[s] * lgd0[s] for s in w)
+    return ead0, lgd0
+
+
+def _fill_defaulted_and_weighted(measures, in_default, ead0, lgd0, names, w) -> None:
+    """Stage 3 rows get ECL = LGD x EAD at the reporting month in every scenario; then the weighted column
+    is sum_s w_s x (IFRS 9 5.5.17), recomputed so that it includes them."""
+    for k, s in enumerate(names):
+        loss3 = lgd0[s] * ead0
+        measures["ecl_12m"][in_default, k] = loss3[in_default]
+        measures["ecl_lifetime"][in_default, k] = loss3[in_default]
+    weighted = len(names) - 1
+    for m in ("ecl_12m", "ecl_lifetime", "pd_12m", "pd_lifetime"):
+        measures[m][:, weighted] = sum(w[s] * measures[m][:, k] for k, s in enumerate(names[:-1]))
+
+
 def expected_credit_loss(
     loans: pd.DataFrame,
     source,
@@ -414,39 +487,13 @@ def expected_credit_loss(
     EclResult
     """
     scenarios = tuple(paths)
-    if segment_column not in loans.columns:
-        raise ProjectionError(f"loans: no segment column {segment_column!r}; have {list(loans.columns)}")
-    if "days_past_due" not in loans.columns:
-        raise ProjectionError(f"loans: no days_past_due column (needed for staging); have {list(loans.columns)}")
-    frame = loans.sort_values("loan_id", kind="stable").reset_index(drop=True)
-    if segment_column != "segment":
-        frame = frame.assign(segment=frame[segment_column])
+    frame, in_default = _book_frame(loans, segment_column, default_days_past_due)
     dpd = frame["days_past_due"].to_numpy()
-    if "in_default" in frame.columns:
-        in_default = frame["in_default"].to_numpy(dtype=bool)
-    elif default_days_past_due is not None:
-        in_default = dpd >= default_days_past_due
-    else:
-        raise ProjectionError("loans: no in_default column and no days-past-due default threshold")
     lgd_cfg = loss.lgd
     lookups = {s: MacroLookup(p) for s, p in paths.items()}
     hpi_names = {}
     if lgd_cfg.kind == "collateral":
-        need = ["property_value", "origination_idx", region_column]
-        missing = [c for c in need if c not in frame.columns]
-        if missing:
-            raise ProjectionError(f"loans: collateral LGD needs column(s) {missing}")
-        hpi_names = {r: hpi_series.format(region=str(r).lower()) for r in pd.unique(frame[region_column])}
-        live = ~in_default
-        needs = {}
-        ends = (as_of_idx + frame["term"].to_numpy() - frame["age"].to_numpy() + lgd_cfg.months_to_recovery)
-        for region, name in hpi_names.items():
-            rows = frame[region_column].to_numpy() == region
-            months = [np.unique(frame["origination_idx"].to_numpy()[rows]), [as_of_idx + lgd_cfg.months_to_recovery]]
-            if (rows & live).any():
-                months.append(np.arange(as_of_idx + 1, int(ends[rows & live].max()) + 1))
-            needs.setdefault(name, []).extend(months)
-        check_coverage(lookups, {k: np.unique(np.concatenate([np.asarray(m) for m in v])) for k, v in needs.items()})
+        hpi_names = _house_price_series(frame, in_default, lookups, lgd_cfg, hpi_series, region_column, as_of_idx)
 
     live_rows = np.flatnonzero(~in_default)
     live = frame.iloc[live_rows]
@@ -465,17 +512,8 @@ def expected_credit_loss(
         band_column=band_column, band_edges=band_edges, curve_writer=curve_writer, term_writer=term_writer,
         on_chunk=on_chunk,
     )
-
-    n = len(frame)
     names = (*scenarios, WEIGHTED)
-    pl = proj.loans  # sorted by loan_id like live
-    # Per measure, one column per scenario (then weighted): stage 3 rows keep PD 1 until filled below.
-    measures = {m: np.ones((n, len(names))) if m.startswith("pd") else np.zeros((n, len(names))) for m in SCENARIO_MEASURES}
-    for k, s in enumerate(names):
-        measures["pd_12m"][live_rows, k] = pl[f"pd_12m_{s}"].to_numpy()
-        measures["pd_lifetime"][live_rows, k] = pl[f"pd_lifetime_{s}"].to_numpy()
-        measures["ecl_12m"][live_rows, k] = acc.ecl_12m[s]
-        measures["ecl_lifetime"][live_rows, k] = acc.ecl_life[s]
+    measures = _live_measures(len(frame), live_rows, names, proj, acc)
 
     pd_orig = _pd_at_origination(
         frame, live, live_rows, in_default, staging, source, paths[scenarios[0]],
@@ -485,21 +523,8 @@ def expected_credit_loss(
     weighted = len(names) - 1
     stage, reason = allocate_stages(measures["pd_lifetime"][:, weighted], pd_orig, dpd, in_default, staging)
 
-    # stage 3: ECL = LGD x EAD at the reporting month, per scenario
-    balance = frame["balance"].to_numpy(dtype=float)
-    rate = frame["note_rate"].to_numpy(dtype=float)
-    ead0 = balance * (1.0 + rate / 12.0) if loss.accrued_interest else balance
-    lgd0 = {s: _lgd_at_reporting_month(frame, ead0, rate, lookups[s], lgd_cfg, region_column, hpi_names, as_of_idx) for s in scenarios}
-    lgd0[WEIGHTED] = sum(w[s] * lgd0[s] for s in scenarios)
-    d = in_default
-    for k, s in enumerate(names):
-        loss3 = lgd0[s] * ead0
-        measures["ecl_12m"][d, k] = loss3[d]
-        measures["ecl_lifetime"][d, k] = loss3[d]
-    # weighted: sum_s w_s x (IFRS 9 5.5.17), recomputed to include stage 3 rows
-    for m in ("ecl_12m", "ecl_lifetime", "pd_12m", "pd_lifetime"):
-        measures[m][:, weighted] = sum(w[s] * measures[m][:, k] for k, s in enumerate(scenarios))
-
+    ead0, lgd0 = _reporting_month_loss(frame, loss, lookups, region_column, hpi_names, as_of_idx, w)
+    _fill_defaulted_and_weighted(measures, in_default, ead0, lgd0, names, w)
     ecl_12m, ecl_life = measures["ecl_12m"][:, weighted].copy(), measures["ecl_lifetime"][:, weighted].copy()
     table = pd.DataFrame(
         {
@@ -511,7 +536,7 @@ def expected_credit_loss(
             "pd_12m": measures["pd_12m"][:, weighted].copy(),
             "pd_lifetime": measures["pd_lifetime"][:, weighted].copy(),
             "pd_lifetime_origination": pd_orig,
-            "balance": balance,
+            "balance": frame["balance"].to_numpy(dtype=float),
             "ead": ead0,
             "lgd": lgd0[WEIGHTED],
             "ecl_12m": ecl_12m,
