@@ -721,6 +721,22 @@ def project_loans(
         the months needed, bad hazards from the source.
     """
     scenarios = tuple(paths)
+    w = _checked_weights(loans, scenarios, weights, chunk_size, segment_column, band_column)
+    spec, book, hpi_names, lookups = _live_book(
+        loans, source, paths, as_of_idx, region_column, hpi_series, market_rate_series
+    )
+    n_all = len(book.frame)
+    pooled = _SegmentPool(book, book.frame, (*scenarios, WEIGHTED), segment_column, band_column, band_edges)
+    for start in range(0, n_all, chunk_size):
+        sl = slice(start, min(start + chunk_size, n_all))
+        chunk = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, market_rate_series, hold=False)
+        _project_chunk(book, sl, chunk, scenarios, w, pooled, curve_writer, term_writer, on_chunk)
+    sums = pooled.finish(w, scenarios)
+    return _projection_result(book, pooled, sums, segment_column, scenarios, w, as_of_idx, band_edges)
+
+
+def _checked_weights(loans, scenarios, weights, chunk_size, segment_column, band_column) -> dict[str, float]:
+    """Check the arguments of :func:`project_loans`; return the scenario weights."""
     if not scenarios:
         raise ProjectionError("no scenarios to project")
     w = scenario_weights(scenarios, weights)
@@ -730,6 +746,15 @@ def project_loans(
         raise ProjectionError(f"loans: no segment column {segment_column!r}; have {list(loans.columns)}")
     if band_column is not None and band_column not in loans.columns:
         raise ProjectionError(f"loans: no band column {band_column!r}; have {list(loans.columns)}")
+    return w
+
+
+def _live_book(loans, source, paths, as_of_idx, region_column, hpi_series, market_rate_series):
+    """The live loans as arrays, the source's inputs and each scenario's macro lookup.
+
+    The scenario paths are checked to cover every month and lag the book needs.
+    Returns ``(spec, book, hpi_names, lookups)``.
+    """
     spec = _parse_inputs(list(source.required_inputs), loans.columns)
     book, hpi_names = _prepare_book(
         loans, spec, as_of_idx=as_of_idx, region_column=region_column, hpi_series=hpi_series,
@@ -738,49 +763,52 @@ def project_loans(
     lookups = {s: MacroLookup(p) for s, p in paths.items()}
     if len(book.loan_id):
         check_coverage(lookups, _coverage_needs(book, spec, hpi_names, market_rate_series, hold=False))
+    return spec, book, hpi_names, lookups
 
-    frame = book.frame
-    n_all = len(frame)
+
+def _project_chunk(book, sl, chunk, scenarios, w, pooled, curve_writer, term_writer, on_chunk) -> None:
+    """Curves of one chunk under each scenario and weighted, added to the pool and handed to the writers.
+
+    ``chunk`` is what :func:`_hazards_chunk` returns for the loans ``sl``. The
+    weighted scenario's hazards are the ones its curves imply.
+    """
+    haz, mask, bal_start, bal_end, cal = chunk
+    H = mask.shape[1]
     names = (*scenarios, WEIGHTED)
-    pooled = _SegmentPool(book, frame, names, segment_column, band_column, band_edges)
+    curves = {s: Curves.from_hazards(*haz[s]) for s in scenarios}
+    curves[WEIGHTED] = Curves.weighted(curves, {s: w[s] for s in scenarios})
+    haz[WEIGHTED] = curves[WEIGHTED].hazards()
 
-    for start in range(0, n_all, chunk_size):
-        sl = slice(start, min(start + chunk_size, n_all))
-        haz, mask, bal_start, bal_end, cal = _hazards_chunk(
-            book, sl, spec, source, lookups, hpi_names, market_rate_series, hold=False
-        )
-        n, H = mask.shape
-        curves = {s: Curves.from_hazards(*haz[s]) for s in scenarios}
-        curves[WEIGHTED] = Curves.weighted(curves, {s: w[s] for s in scenarios})
-        haz[WEIGHTED] = curves[WEIGHTED].hazards()
+    ages = book.age[sl][:, None] + np.arange(1, H + 1)[None, :]
+    pooled.add(sl, curves, haz, mask, bal_start, bal_end, ages)
 
-        ages = book.age[sl][:, None] + np.arange(1, H + 1)[None, :]
-        pooled.add(sl, curves, haz, mask, bal_start, bal_end, ages)
-
-        if curve_writer is not None:
-            curve_writer(_curve_table(book.loan_id[sl], names, curves, haz, mask, ages))
-        if term_writer is not None:
-            term_writer(_term_table(book.loan_id[sl], names, curves, book.remaining[sl]))
-        if on_chunk is not None:
-            on_chunk(
-                ChunkProjection(
-                    rows=sl, loans=frame.iloc[sl], mask=mask, calendar_month=cal,
-                    balance_start=bal_start, balance_end=bal_end, note_rate=book.rate[sl],
-                    scenarios=scenarios, weights=w,
-                    h_default={s: haz[s][0] for s in names}, h_prepay={s: haz[s][1] for s in names},
-                    survival_prev={s: curves[s].survival_prev for s in names},
-                    survival={s: curves[s].survival for s in names},
-                    cum_default={s: curves[s].cum_default for s in names},
-                    cum_prepay={s: curves[s].cum_prepay for s in names},
-                    marginal_pd={s: curves[s].marginal_default for s in names},
-                )
+    if curve_writer is not None:
+        curve_writer(_curve_table(book.loan_id[sl], names, curves, haz, mask, ages))
+    if term_writer is not None:
+        term_writer(_term_table(book.loan_id[sl], names, curves, book.remaining[sl]))
+    if on_chunk is not None:
+        on_chunk(
+            ChunkProjection(
+                rows=sl, loans=book.frame.iloc[sl], mask=mask, calendar_month=cal,
+                balance_start=bal_start, balance_end=bal_end, note_rate=book.rate[sl],
+                scenarios=scenarios, weights=w,
+                h_default={s: haz[s][0] for s in names}, h_prepay={s: haz[s][1] for s in names},
+                survival_prev={s: curves[s].survival_prev for s in names},
+                survival={s: curves[s].survival for s in names},
+                cum_default={s: curves[s].cum_default for s in names},
+                cum_prepay={s: curves[s].cum_prepay for s in names},
+                marginal_pd={s: curves[s].marginal_default for s in names},
             )
+        )
 
-    sums = pooled.finish(w, scenarios)
+
+def _projection_result(book, pooled, sums, segment_column, scenarios, w, as_of_idx, band_edges) -> ProjectionResult:
+    """The per-loan summaries and the segment tables built from the pooled sums."""
+    names = (*scenarios, WEIGHTED)
     loans_out = pd.DataFrame(
         {
             "loan_id": book.loan_id,
-            "segment": frame[segment_column].to_numpy(),
+            "segment": book.frame[segment_column].to_numpy(),
             "band": np.asarray(sums.labels, dtype=object)[pooled.band_code],
             "age": book.age,
             "remaining_term": book.remaining,

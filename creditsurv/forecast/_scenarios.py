@@ -197,6 +197,25 @@ def extend_path(
     if months < 1:
         raise ProjectionError(f"scenario {name!r}: revert_to_mean needs months >= 1, got {months}")
     long_run = dict(long_run or {})
+    hist, as_of, start = _checked_history(history, as_of_idx, name)
+    p0, p1 = _path_months(path, as_of, name)
+    columns = list(dict.fromkeys([*hist.columns, *path.columns]))
+    end = max(int(until_idx), as_of)
+    index = np.arange(start, end + 1)
+    out = pd.DataFrame(np.nan, index=pd.Index(index, name="month_idx"), columns=columns)
+    hist_upto = hist.loc[hist.index <= as_of]
+    out.loc[hist_upto.index, hist.columns] = hist_upto.to_numpy(dtype=float)
+    if p0 > as_of + 1:
+        _fill_bridge(out, hist, path, as_of, p0, name)
+    body = path.loc[(path.index > as_of) & (path.index <= end)]
+    out.loc[body.index, path.columns] = body.to_numpy(dtype=float)
+    if end > p1:
+        _fill_after_path(out, path, hist_upto, p1, end, rule, months, long_run, hold_last_series, name)
+    return out.loc[: int(until_idx)] if until_idx >= start else out.iloc[:0]
+
+
+def _checked_history(history: pd.DataFrame, as_of_idx: int | None, name: str) -> tuple[pd.DataFrame, int, int]:
+    """The history sorted by month, checked for gaps; with the as-of month and the history's first month."""
     hist = history.sort_index()
     h_idx = hist.index.to_numpy(dtype=np.int64)
     as_of = int(h_idx.max()) if as_of_idx is None else int(as_of_idx)
@@ -206,6 +225,11 @@ def extend_path(
     gaps = sorted(set(range(start, int(h_idx.max()) + 1)) - set(h_idx.tolist()))
     if gaps:
         raise ProjectionError(f"macro history: missing months {month_ranges(gaps)}")
+    return hist, as_of, start
+
+
+def _path_months(path: pd.DataFrame, as_of: int, name: str) -> tuple[int, int]:
+    """The first and last month of a scenario path, checked to reach past the as-of month."""
     if len(path) == 0:
         raise ProjectionError(f"scenario {name!r}: the path has no months")
     p_idx = path.index.to_numpy(dtype=np.int64)
@@ -214,44 +238,58 @@ def extend_path(
         raise ProjectionError(
             f"scenario {name!r}: the path ends at {format_month(p1)}, not after the as-of month {format_month(as_of)}"
         )
-    columns = list(dict.fromkeys([*hist.columns, *path.columns]))
-    end = max(int(until_idx), as_of)
-    index = np.arange(start, end + 1)
-    out = pd.DataFrame(np.nan, index=pd.Index(index, name="month_idx"), columns=columns)
-    hist_upto = hist.loc[hist.index <= as_of]
-    out.loc[hist_upto.index, hist.columns] = hist_upto.to_numpy(dtype=float)
-    if p0 > as_of + 1:
-        bridge = list(range(as_of + 1, p0))
-        have = hist.reindex(bridge)
-        missing = [c for c in path.columns if c in hist.columns and have[c].isna().any()]
-        missing += [c for c in path.columns if c not in hist.columns]
-        if missing:
-            raise ProjectionError(
-                f"scenario {name!r}: the path starts at {format_month(p0)} but the as-of month is "
-                f"{format_month(as_of)}; months {month_ranges(bridge)} of series {missing} are not in the history"
-            )
-        out.loc[bridge, path.columns] = have[path.columns].to_numpy(dtype=float)
-    body = path.loc[(path.index > as_of) & (path.index <= end)]
-    out.loc[body.index, path.columns] = body.to_numpy(dtype=float)
-    if end > p1:
-        k = np.arange(1, end - p1 + 1, dtype=float)
-        after = np.arange(p1 + 1, end + 1)
-        for col in path.columns:
-            last = float(path[col].loc[p1])
-            if rule == "hold_last" or any(fnmatch.fnmatchcase(col, pat) for pat in hold_last_series):
-                values = np.full(len(k), last)
-            else:
-                target = long_run.get(col)
-                if target is None:
-                    if col not in hist_upto.columns or hist_upto[col].isna().all():
-                        raise ProjectionError(
-                            f"scenario {name!r}: series {col!r} has no history to take a long-run mean from; "
-                            "give scenario_extension.long_run"
-                        )
-                    target = float(hist_upto[col].mean())
-                values = last + (target - last) * np.minimum(k, months) / months
-            out.loc[after, col] = values
-    return out.loc[: int(until_idx)] if until_idx >= start else out.iloc[:0]
+    return p0, p1
+
+
+def _fill_bridge(out: pd.DataFrame, hist: pd.DataFrame, path: pd.DataFrame, as_of: int, p0: int, name: str) -> None:
+    """Fill the months after the as-of month and before the path starts from the history, in place."""
+    bridge = list(range(as_of + 1, p0))
+    have = hist.reindex(bridge)
+    missing = [c for c in path.columns if c in hist.columns and have[c].isna().any()]
+    missing += [c for c in path.columns if c not in hist.columns]
+    if missing:
+        raise ProjectionError(
+            f"scenario {name!r}: the path starts at {format_month(p0)} but the as-of month is "
+            f"{format_month(as_of)}; months {month_ranges(bridge)} of series {missing} are not in the history"
+        )
+    out.loc[bridge, path.columns] = have[path.columns].to_numpy(dtype=float)
+
+
+def _fill_after_path(
+    out: pd.DataFrame,
+    path: pd.DataFrame,
+    hist_upto: pd.DataFrame,
+    p1: int,
+    end: int,
+    rule: str,
+    months: int,
+    long_run: dict[str, float],
+    hold_last_series: Sequence[str],
+    name: str,
+) -> None:
+    """Fill the months after the path's last month ``p1`` up to ``end`` by the extension rule, in place.
+
+    A series holds its last value (``hold_last``, or a match in
+    ``hold_last_series``) or moves in a straight line to its long-run value
+    over ``months`` months (``revert_to_mean``); see :func:`extend_path`.
+    """
+    k = np.arange(1, end - p1 + 1, dtype=float)
+    after = np.arange(p1 + 1, end + 1)
+    for col in path.columns:
+        last = float(path[col].loc[p1])
+        if rule == "hold_last" or any(fnmatch.fnmatchcase(col, pat) for pat in hold_last_series):
+            values = np.full(len(k), last)
+        else:
+            target = long_run.get(col)
+            if target is None:
+                if col not in hist_upto.columns or hist_upto[col].isna().all():
+                    raise ProjectionError(
+                        f"scenario {name!r}: series {col!r} has no history to take a long-run mean from; "
+                        "give scenario_extension.long_run"
+                    )
+                target = float(hist_upto[col].mean())
+            values = last + (target - last) * np.minimum(k, months) / months
+        out.loc[after, col] = values
 
 
 def prepare_paths(

@@ -386,56 +386,77 @@ class FeatureSpec:
         run past the macro history) is reported in one :class:`FeatureError`.
         """
         body = self.raw_query(con, where_sql, order=False)
-        q = quote_ident
         info = self._resolve(con)
-        aggs = ["count(*)", "min(\"age\")", "max(\"age\")", "min(\"month_idx\")"]
         keys = [i.key for i in info["inputs"] if i.key != "log_age"]
-        for k in keys:
-            aggs.append(f"count(*) - count({q(k)})")
+        numeric = self._numeric_to_learn()
+        row = self._summarise_development_rows(con, body, params, keys, numeric)
+        n, age_min, age_max, month_min = row[:4]
+        if not n:
+            raise FeatureError(f"no risk-set rows match the development filter ({where_sql})")
+        nulls = dict(zip(keys, row[4: 4 + len(keys)]))
+        numeric_constants, problems = _learn_numeric(numeric, row[4 + len(keys):])
+        learned: dict[str, Any] = {
+            "n_rows": int(n), "age_min": int(age_min), "age_max": int(age_max), "covariates": numeric_constants,
+        }
+        problems += self._macro_history_problems(con, info["inputs"], month_min)
+        problems += self._missing_value_problems(nulls, problems)
+        baseline_constants, found = self._learn_baseline(age_min, age_max)
+        learned.update(baseline_constants)
+        problems += found
+        levels, found = self._learn_levels(con, body, params)
+        learned["covariates"].update(levels)
+        problems += found
+        if problems:
+            raise FeatureError(problem_list(problems, "learning the feature spec from the development data"))
+        spec = dataclasses.replace(self, learned=learned)
+        learned["columns"] = spec._column_names()
+        dup = _duplicates(learned["columns"])
+        if dup:
+            raise FeatureError(f"design column names repeat: {dup}; rename the covariates")
+        return spec
+
+    def _numeric_to_learn(self) -> list[tuple[dict, str]]:
+        """The numeric covariates with a learned check or constant: ``(covariate, "std" or "log")``."""
         numeric = []
         for c in self.covariates:
             if c.get("kind", "numeric") != "numeric":
                 continue
-            x = self._clip_sql(c)
             if c.get("transform") == "standardise":
                 numeric.append((c, "std"))
-                aggs += [f"avg({x})", f"stddev_samp({x})"]
             elif c.get("transform") == "log":
                 numeric.append((c, "log"))
+        return numeric
+
+    def _summarise_development_rows(self, con, body: str, params, keys, numeric) -> tuple:
+        """One pass of SQL aggregates over the development rows.
+
+        The row holds the row count, the youngest and oldest age, the first
+        month, the missing values of each input key, then per numeric
+        covariate its mean and sd (standardised) or its non-positive count (log).
+        """
+        aggs = ["count(*)", "min(\"age\")", "max(\"age\")", "min(\"month_idx\")"]
+        for k in keys:
+            aggs.append(f"count(*) - count({quote_ident(k)})")
+        for c, what in numeric:
+            x = self._clip_sql(c)
+            if what == "std":
+                aggs += [f"avg({x})", f"stddev_samp({x})"]
+            else:
                 aggs.append(f"count(*) FILTER (WHERE {x} <= 0)")
         with _one_thread(con):
-            row = con.execute(f"WITH data AS (\n{body}\n)\nSELECT {', '.join(aggs)} FROM data", list(params)).fetchall()[0]
-        n, age_min, age_max, month_min = row[:4]
-        problems = []
-        if not n:
-            raise FeatureError(f"no risk-set rows match the development filter ({where_sql})")
-        pos = 4
-        nulls = dict(zip(keys, row[pos: pos + len(keys)]))
-        pos += len(keys)
-        learned: dict[str, Any] = {"n_rows": int(n), "age_min": int(age_min), "age_max": int(age_max), "covariates": {}}
-        for c, what in numeric:
-            if what == "std":
-                mean, sd = row[pos], row[pos + 1]
-                pos += 2
-                if sd is None or not sd > 0:
-                    problems.append(f"covariate {c['name']!r}: cannot standardise, the values do not vary (sd = {sd})")
-                else:
-                    learned["covariates"][c["name"]] = {"mean": float(mean), "sd": float(sd)}
-            else:
-                bad = row[pos]
-                pos += 1
-                if bad:
-                    problems.append(
-                        f"covariate {c['name']!r}: log of non-positive values in {bad} rows; set floor: to a positive value"
-                    )
-        # Macro history: the first month each lagged series needs.
+            return con.execute(f"WITH data AS (\n{body}\n)\nSELECT {', '.join(aggs)} FROM data", list(params)).fetchall()[0]
+
+    def _macro_history_problems(self, con, inputs, month_min) -> list[str]:
+        """Macro covariates whose lag reaches before the first month of their series."""
+        q = quote_ident
         macro_first = {}
-        for item in info["inputs"]:
+        for item in inputs:
             if item.source != "macro" or item.series in macro_first:
                 continue
             macro_first[item.series] = con.execute(
                 f"SELECT min(\"month_idx\") FROM \"macro\" WHERE {q(item.series)} IS NOT NULL"
             ).fetchall()[0][0]
+        problems = []
         for c in self.covariates:
             if not c.get("macro"):
                 continue
@@ -450,18 +471,27 @@ class FeatureSpec:
                     f"covariate {c['name']!r}: macro series {c['macro']!r} at lag {lag} runs past the start of the "
                     f"macro history: first month needed {format_month(need)}, {have}"
                 )
+        return problems
+
+    def _missing_value_problems(self, nulls: dict, reported: list[str]) -> list[str]:
+        """Covariates with rows that have no value, unless a macro problem already explains it."""
+        problems = []
         for c in self.covariates:
             key = macro_key(c["macro"], int(c.get("lag", 0))) if c.get("macro") else c["column"]
             bad = nulls.get(key, 0)
-            if bad and not any(p.startswith(f"covariate {c['name']!r}: macro") for p in problems):
+            if bad and not any(p.startswith(f"covariate {c['name']!r}: macro") for p in reported):
                 extra = ""
                 if key == "current_ltv":
                     extra = (f" (check property_value, term and that every {self.collateral.get('region_column')!r} "
                              f"value has an HPI series {self.collateral.get('hpi_series')!r} covering origination)")
                 problems.append(f"covariate {c['name']!r}: {bad} rows have no value for {key!r}{extra}")
-        # Baseline.
+        return problems
+
+    def _learn_baseline(self, age_min, age_max) -> tuple[dict, list[str]]:
+        """The baseline's learned constants (``max_age`` or ``band_labels``) and its problems."""
         base = self.baseline
         kind = base.get("kind", "age_bands")
+        learned, problems = {}, []
         if kind == "spline":
             knots = list(base["knots"])
             outside = [k for k in knots if k < age_min or k > age_max]
@@ -479,7 +509,12 @@ class FeatureSpec:
                 problems.append(f"baseline: max_age {max_age} leaves no age indicator above the youngest age {age_min}")
         elif kind == "age_bands":
             learned["band_labels"] = _band_labels(base["edges"])
-        # Levels of categoricals and bins.
+        return learned, problems
+
+    def _learn_levels(self, con, body: str, params) -> tuple[dict, list[str]]:
+        """Levels and reference of each categorical and bins covariate, and their problems."""
+        q = quote_ident
+        learned, problems = {}, []
         for c in self.covariates:
             kind_c = c.get("kind", "numeric")
             if kind_c == "categorical":
@@ -505,15 +540,8 @@ class FeatureSpec:
             if len(levels) < 2:
                 problems.append(f"covariate {c['name']!r}: needs at least two levels, the data have {levels}")
                 continue
-            learned["covariates"][c["name"]] = {"levels": levels, "reference": str(ref)}
-        if problems:
-            raise FeatureError(problem_list(problems, "learning the feature spec from the development data"))
-        spec = dataclasses.replace(self, learned=learned)
-        learned["columns"] = spec._column_names()
-        dup = _duplicates(learned["columns"])
-        if dup:
-            raise FeatureError(f"design column names repeat: {dup}; rename the covariates")
-        return spec
+            learned[c["name"]] = {"levels": levels, "reference": str(ref)}
+        return learned, problems
 
     @staticmethod
     def _clip_sql(c) -> str:
@@ -724,6 +752,32 @@ def _indicators(codes: np.ndarray, levels: list[str], reference: str) -> np.ndar
     rows = np.nonzero(col >= 0)[0]
     out[rows, col[rows]] = 1.0
     return out
+
+
+def _learn_numeric(numeric, values) -> tuple[dict, list[str]]:
+    """Standardisation constants and log checks from the summary values of the numeric covariates.
+
+    ``values`` holds, in the order of ``numeric``, a mean and an sd for each
+    standardised covariate and a count of non-positive values for each logged one.
+    """
+    learned, problems = {}, []
+    pos = 0
+    for c, what in numeric:
+        if what == "std":
+            mean, sd = values[pos], values[pos + 1]
+            pos += 2
+            if sd is None or not sd > 0:
+                problems.append(f"covariate {c['name']!r}: cannot standardise, the values do not vary (sd = {sd})")
+            else:
+                learned[c["name"]] = {"mean": float(mean), "sd": float(sd)}
+        else:
+            bad = values[pos]
+            pos += 1
+            if bad:
+                problems.append(
+                    f"covariate {c['name']!r}: log of non-positive values in {bad} rows; set floor: to a positive value"
+                )
+    return learned, problems
 
 
 def _band_labels(edges) -> list[str]:

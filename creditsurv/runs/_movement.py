@@ -342,79 +342,141 @@ def _validate(loans_a, loans_b, weights_a, weights_b, segment_column, labels) ->
 
 def _movement(loans_a, loans_b, weights_a, weights_b, segment_column, labels) -> MovementResult:
     _validate(loans_a, loans_b, weights_a, weights_b, segment_column, labels)
+    m = _match_loans(_run_arrays(loans_a, weights_a, segment_column), _run_arrays(loans_b, weights_b, segment_column))
+    a, b = m.a, m.b
+    parts = _same_stage_parts(m, weights_a, weights_b)
+    by_loan = _by_loan_table(m, *parts)
+    walk = _walk_table(m, *parts)
+    migration = _migration_table(m)
+    pd_change = _pd_change(
+        b["segment"][m.pb],
+        a["pd"][m.in_b],
+        m.ead_a,
+        b["pd"][m.pb],
+        m.ead_b,
+        a["segment"],
+        (a["pd"], a["ead"]),
+        b["segment"],
+        (b["pd"], b["ead"]),
+    )
+    return MovementResult(walk=walk, migration=migration, pd_change=pd_change, by_loan=by_loan)
 
-    def arrays(df, weights):
-        return {
-            "id": df["loan_id"].to_numpy(),
-            "segment": df[segment_column].to_numpy(),
-            "stage": pd.to_numeric(df["stage"]).to_numpy().astype(np.int64),
-            "pd": df["pd_lifetime"].to_numpy(dtype=np.float64),
-            "ead": df["ead"].to_numpy(dtype=np.float64),
-            "ecl": df["ecl_reported"].to_numpy(dtype=np.float64),
-            "scen": {s: _horizon_ecl(df, s) for s in weights},
-        }
 
-    a, b = arrays(loans_a, weights_a), arrays(loans_b, weights_b)
+def _run_arrays(df: pd.DataFrame, weights: Mapping[str, float], segment_column: str) -> dict:
+    """One run's loan table as arrays, with each scenario's ECL at the horizon of the loan's stage."""
+    return {
+        "id": df["loan_id"].to_numpy(),
+        "segment": df[segment_column].to_numpy(),
+        "stage": pd.to_numeric(df["stage"]).to_numpy().astype(np.int64),
+        "pd": df["pd_lifetime"].to_numpy(dtype=np.float64),
+        "ead": df["ead"].to_numpy(dtype=np.float64),
+        "ecl": df["ecl_reported"].to_numpy(dtype=np.float64),
+        "scen": {s: _horizon_ecl(df, s) for s in weights},
+    }
+
+
+@dataclass(frozen=True)
+class _Matched:
+    """The loans of runs A and B matched on ``loan_id``.
+
+    ``a`` and ``b`` are the runs' arrays (:func:`_run_arrays`). A's matched
+    values are at ``[in_b]`` and B's at ``[pb]``, aligned row by row; ``closed``
+    marks A's loans not in B and ``new`` B's loans not in A. ``sa``, ``sb``,
+    ``ecl_a``, ``ecl_b``, ``ead_a``, ``ead_b`` are the matched loans' values
+    and ``same`` marks those whose stage did not move.
+    """
+
+    a: dict
+    b: dict
+    in_b: np.ndarray
+    closed: np.ndarray
+    new: np.ndarray
+    pb: np.ndarray
+    sa: np.ndarray
+    sb: np.ndarray
+    ecl_a: np.ndarray
+    ecl_b: np.ndarray
+    ead_a: np.ndarray
+    ead_b: np.ndarray
+    same: np.ndarray
+
+
+def _match_loans(a: dict, b: dict) -> _Matched:
+    """Match the loans of run A and run B on ``loan_id``."""
     index_b = pd.Index(b["id"])
     pos_b = index_b.get_indexer(a["id"])
     in_b = pos_b >= 0
     closed = ~in_b
     new = ~index_b.isin(a["id"])
     pb = pos_b[in_b]
-
-    # Matched loans: A's values at [in_b], B's values at [pb], aligned row by row.
     sa, sb = a["stage"][in_b], b["stage"][pb]
     ecl_a, ecl_b = a["ecl"][in_b], b["ecl"][pb]
     ead_a, ead_b = a["ead"][in_b], b["ead"][pb]
     same = sa == sb
-    exposure = np.zeros(len(sa))
-    sw = np.zeros(len(sa))
-    risk = np.zeros(len(sa))
+    return _Matched(a, b, in_b, closed, new, pb, sa, sb, ecl_a, ecl_b, ead_a, ead_b, same)
+
+
+def _same_stage_parts(m: _Matched, weights_a, weights_b) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Exposure, scenario-weight and risk-parameter parts of each matched loan; zero where the stage moved."""
+    a, b, same = m.a, m.b, m.same
+    exposure = np.zeros(len(m.sa))
+    sw = np.zeros(len(m.sa))
+    risk = np.zeros(len(m.sa))
     exposure[same], sw[same], risk[same] = _same_stage_steps(
-        ead_a[same],
-        ead_b[same],
-        ecl_a[same],
-        ecl_b[same],
-        {s: v[in_b][same] for s, v in a["scen"].items()},
-        {s: v[pb][same] for s, v in b["scen"].items()},
+        m.ead_a[same],
+        m.ead_b[same],
+        m.ecl_a[same],
+        m.ecl_b[same],
+        {s: v[m.in_b][same] for s, v in a["scen"].items()},
+        {s: v[m.pb][same] for s, v in b["scen"].items()},
         weights_a,
         weights_b,
     )
-    transfer = np.array([f"stage_transfer_{i}_to_{j}" for i, j in zip(sa, sb)], dtype=object)
-    step_m = np.where(same, "same_stage", transfer) if len(sa) else np.array([], dtype=object)
+    return exposure, sw, risk
 
-    n_m, n_c, n_n = int(in_b.sum()), int(closed.sum()), int(new.sum())
+
+def _by_loan_table(m: _Matched, exposure, sw, risk) -> pd.DataFrame:
+    """One row per loan of either run: matched loans, then closed, then new, with its step of the walk."""
+    a, b, sa, sb, closed, new = m.a, m.b, m.sa, m.sb, m.closed, m.new
+    transfer = np.array([f"stage_transfer_{i}_to_{j}" for i, j in zip(sa, sb)], dtype=object)
+    step_m = np.where(m.same, "same_stage", transfer) if len(sa) else np.array([], dtype=object)
+
+    n_m, n_c, n_n = int(m.in_b.sum()), int(closed.sum()), int(new.sum())
     nan_c, nan_n = np.full(n_c, np.nan), np.full(n_n, np.nan)
     stage_a = pd.array(np.concatenate([sa, a["stage"][closed], np.zeros(n_n, np.int64)]), dtype="Int64")
     stage_a[n_m + n_c :] = pd.NA
     stage_b = pd.array(np.concatenate([sb, np.zeros(n_c, np.int64), b["stage"][new]]), dtype="Int64")
     stage_b[n_m : n_m + n_c] = pd.NA
-    by_loan = pd.DataFrame(
+    return pd.DataFrame(
         {
-            "loan_id": np.concatenate([a["id"][in_b], a["id"][closed], b["id"][new]]),
-            "segment": np.concatenate([b["segment"][pb], a["segment"][closed], b["segment"][new]]),
+            "loan_id": np.concatenate([a["id"][m.in_b], a["id"][closed], b["id"][new]]),
+            "segment": np.concatenate([b["segment"][m.pb], a["segment"][closed], b["segment"][new]]),
             "stage_a": stage_a,
             "stage_b": stage_b,
-            "ead_a": np.concatenate([ead_a, a["ead"][closed], nan_n]),
-            "ead_b": np.concatenate([ead_b, nan_c, b["ead"][new]]),
-            "ecl_a": np.concatenate([ecl_a, a["ecl"][closed], nan_n]),
-            "ecl_b": np.concatenate([ecl_b, nan_c, b["ecl"][new]]),
+            "ead_a": np.concatenate([m.ead_a, a["ead"][closed], nan_n]),
+            "ead_b": np.concatenate([m.ead_b, nan_c, b["ead"][new]]),
+            "ecl_a": np.concatenate([m.ecl_a, a["ecl"][closed], nan_n]),
+            "ecl_b": np.concatenate([m.ecl_b, nan_c, b["ecl"][new]]),
             "step": np.concatenate([step_m, np.full(n_c, "closed_or_repaid"), np.full(n_n, "new_loans")]),
             "exposure": np.concatenate([exposure, np.zeros(n_c + n_n)]),
             "scenario_weights": np.concatenate([sw, np.zeros(n_c + n_n)]),
             "risk_parameters": np.concatenate([risk, np.zeros(n_c + n_n)]),
-            "ecl_change": np.concatenate([ecl_b - ecl_a, -a["ecl"][closed], b["ecl"][new]]),
+            "ecl_change": np.concatenate([m.ecl_b - m.ecl_a, -a["ecl"][closed], b["ecl"][new]]),
         }
     )
 
-    # The walk.
+
+def _walk_table(m: _Matched, exposure, sw, risk) -> pd.DataFrame:
+    """The ECL walk from A's total to B's, one row per step, checked to reconcile."""
+    a, b, sa, sb, closed, new, same = m.a, m.b, m.sa, m.sb, m.closed, m.new, m.same
+    n_c, n_n = int(closed.sum()), int(new.sum())
     total_a, total_b = float(a["ecl"].sum()), float(b["ecl"].sum())
     rows = [("opening", len(a["ecl"]), np.nan)]
     rows.append(("closed_or_repaid", n_c, 0.0 - float(a["ecl"][closed].sum())))  # 0.0 - : no "-0" in the CSV
     rows.append(("new_loans", n_n, float(b["ecl"][new].sum())))
     for i, j in TRANSFERS:
-        m = (sa == i) & (sb == j)
-        rows.append((f"stage_transfer_{i}_to_{j}", int(m.sum()), float((ecl_b[m] - ecl_a[m]).sum())))
+        mask = (sa == i) & (sb == j)
+        rows.append((f"stage_transfer_{i}_to_{j}", int(mask.sum()), float((m.ecl_b[mask] - m.ecl_a[mask]).sum())))
     n_same = int(same.sum())
     for name, part in zip(SAME_STAGE_STEPS, (exposure, sw, risk)):
         rows.append((name, n_same, float(part[same].sum())))
@@ -424,8 +486,12 @@ def _movement(loans_a, loans_b, weights_a, weights_b, segment_column, labels) ->
     walk["ecl_balance"] = np.concatenate([[total_a], total_a + np.cumsum(steps), [total_b]])
 
     check_walk_reconciles(steps, total_a, total_b)
+    return walk
 
-    # Stage migration.
+
+def _migration_table(m: _Matched) -> pd.DataFrame:
+    """Loans and EAD by stage in A (or new) and stage in B (or closed); EAD of B, of A for closed loans."""
+    a, b, sa, sb, closed, new = m.a, m.b, m.sa, m.sb, m.closed, m.new
     labels_from = [*(str(s) for s in STAGES), "new"]
     labels_to = [*(str(s) for s in STAGES), "closed"]
     mig = []
@@ -434,28 +500,15 @@ def _movement(loans_a, loans_b, weights_a, weights_b, segment_column, labels) ->
             if f == "new" and t == "closed":
                 continue
             if f == "new":
-                m = b["stage"][new] == int(t)
-                mig.append((f, t, int(m.sum()), float(b["ead"][new][m].sum())))
+                mask = b["stage"][new] == int(t)
+                mig.append((f, t, int(mask.sum()), float(b["ead"][new][mask].sum())))
             elif t == "closed":
-                m = a["stage"][closed] == int(f)
-                mig.append((f, t, int(m.sum()), float(a["ead"][closed][m].sum())))
+                mask = a["stage"][closed] == int(f)
+                mig.append((f, t, int(mask.sum()), float(a["ead"][closed][mask].sum())))
             else:
-                m = (sa == int(f)) & (sb == int(t))
-                mig.append((f, t, int(m.sum()), float(ead_b[m].sum())))
-    migration = pd.DataFrame(mig, columns=["stage_from", "stage_to", "loans", "ead"])
-
-    pd_change = _pd_change(
-        b["segment"][pb],
-        a["pd"][in_b],
-        ead_a,
-        b["pd"][pb],
-        ead_b,
-        a["segment"],
-        (a["pd"], a["ead"]),
-        b["segment"],
-        (b["pd"], b["ead"]),
-    )
-    return MovementResult(walk=walk, migration=migration, pd_change=pd_change, by_loan=by_loan)
+                mask = (sa == int(f)) & (sb == int(t))
+                mig.append((f, t, int(mask.sum()), float(m.ead_b[mask].sum())))
+    return pd.DataFrame(mig, columns=["stage_from", "stage_to", "loans", "ead"])
 
 
 # --------------------------------------------------------------------------- run folders

@@ -731,31 +731,43 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
             Jeffreys interval) and mean model hazard by loan age over the
             development window.
     """
-    dev, oot = cfg.windows.development, cfg.windows.out_of_time
-    as_of, month = int(cfg.as_of), int(dev.end)
+    as_of, month = int(cfg.as_of), int(cfg.windows.development.end)
     notes: list[str] = []
     tables: dict[str, pd.DataFrame] = {}
-    summary: dict = {
-        "as_of": _fmt_month(as_of),
-        "development": {"start": _fmt_month(dev.start), "end": _fmt_month(dev.end)},
-        "out_of_time": None if oot is None else {"start": _fmt_month(oot.start), "end": _fmt_month(oot.end)},
-        "cohort_month": _fmt_month(month),
-    }
+    summary = _summary_header(cfg)
     fitted = isinstance(model, HazardResults)
     if not fitted:
         notes.append(
             f"the hazard source ({type(model).__name__}) is not a fitted model: coefficient changes are not "
             "produced and stability covers loan age only"
         )
-
     max_term = _sql(engine, "SELECT coalesce(max(term), 0) AS t FROM loans")["t"].iloc[0]
     path = _realised_path(engine, as_of, max(as_of, month) + int(max_term) + 1)
 
-    # 1-2. The development cohort: backtest, discrimination, calibration.
     cohort_pd = _cohort_section(cfg, engine, model, path, month, chunk_size, tables, summary, notes)
-    # 3. Stability of the inputs and of the 12-month PD.
     _stability_section(cfg, engine, model, cohort_pd, current_pd_12m, tables, summary, notes)
-    # 4. Coefficient changes against a prior model.
+    _coefficient_section(cfg, model, fitted, tables, notes)
+    _incidence_section(cfg, engine, model, path, chunk_size, tables, summary, notes)
+    _hazard_by_age_section(cfg, engine, model, tables, notes)
+
+    summary["tables"] = sorted(tables)
+    summary["notes"] = notes
+    return ValidationPack(tables=tables, summary=_json_safe(summary))
+
+
+def _summary_header(cfg) -> dict:
+    """The summary's opening entries: the reporting month, the windows and the cohort month."""
+    dev, oot = cfg.windows.development, cfg.windows.out_of_time
+    return {
+        "as_of": _fmt_month(int(cfg.as_of)),
+        "development": {"start": _fmt_month(dev.start), "end": _fmt_month(dev.end)},
+        "out_of_time": None if oot is None else {"start": _fmt_month(oot.start), "end": _fmt_month(oot.end)},
+        "cohort_month": _fmt_month(int(dev.end)),
+    }
+
+
+def _coefficient_section(cfg, model, fitted: bool, tables, notes) -> None:
+    """Coefficient changes against the prior model, when one is configured and the source is fitted."""
     prior = cfg.validation.prior_model
     if prior is not None and fitted:
         from ..model import load_model
@@ -764,19 +776,15 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
     elif prior is None:
         notes.append("no prior model is configured (validation.prior_model): coefficient changes are not produced")
 
-    # 5. Cumulative incidence by vintage.
-    _incidence_section(cfg, engine, model, path, chunk_size, tables, summary, notes)
 
-    # 6. In-sample fit by loan age.
+def _hazard_by_age_section(cfg, engine, model, tables, notes) -> None:
+    """In-sample fit: observed and model hazard by loan age over the development window."""
+    dev = cfg.windows.development
     hba = _hazard_by_age(engine, model, int(dev.start), int(dev.end), _batch_size(cfg))
     if hba is None:
         notes.append("hazard_by_age: the hazard source needs inputs beyond loan age and is not a fitted model")
     else:
         tables["hazard_by_age"] = hba
-
-    summary["tables"] = sorted(tables)
-    summary["notes"] = notes
-    return ValidationPack(tables=tables, summary=_json_safe(summary))
 
 
 def _batch_size(cfg) -> int:

@@ -760,31 +760,7 @@ def aalen_johansen(time, event, *, causes=(1, 2), entry=None) -> pd.DataFrame:
         (Marubini & Valsecchi 1995); they are NaN where every loan at risk
         has an event, and are approximate under left truncation.
     """
-    t = as_1d(time, "time")
-    ev = as_1d(event, "event")
-    _check_same_length(time=t, event=ev)
-    _check_finite(t, "time")
-    _check_finite(ev, "event")
-    if len(t) == 0:
-        raise DataError("aalen_johansen needs at least one loan")
-    if np.any(t != np.round(t)):
-        raise DataError("time must hold whole months")
-    causes = tuple(int(k) for k in causes)
-    unknown = sorted(set(np.unique(ev).tolist()) - {0, *causes})
-    if unknown:
-        raise DataError(f"event has codes {unknown} outside censored (0) and causes {list(causes)}")
-    t = t.astype(np.int64)
-    if entry is None:
-        start = min(int(t.min()), 1)
-        ent = None
-    else:
-        ent = as_1d(entry, "entry")
-        _check_same_length(time=t, entry=ent)
-        _check_finite(ent, "entry")
-        ent = ent.astype(np.int64)
-        if np.any(ent >= t):
-            raise DataError("entry must be earlier than time for every loan")
-        start = int(ent.min()) + 1
+    t, ev, causes, ent, start = _checked_lifetimes(time, event, causes, entry)
     grid = np.arange(start, int(t.max()) + 1)
     pos = t - start
     m = len(grid)
@@ -817,6 +793,40 @@ def aalen_johansen(time, event, *, causes=(1, 2), entry=None) -> pd.DataFrame:
             out[f"cif_{k}"] = cif
             out[f"cif_{k}_se"] = np.sqrt(_cif_variance(cif, s_prev, n, d[k], ra_all))
     return out
+
+
+def _checked_lifetimes(time, event, causes, entry):
+    """Check the inputs of :func:`aalen_johansen`.
+
+    Returns the times and events as arrays, the cause codes as ints, the entry
+    ages (``None`` without left truncation) and the first age of the grid.
+    """
+    t = as_1d(time, "time")
+    ev = as_1d(event, "event")
+    _check_same_length(time=t, event=ev)
+    _check_finite(t, "time")
+    _check_finite(ev, "event")
+    if len(t) == 0:
+        raise DataError("aalen_johansen needs at least one loan")
+    if np.any(t != np.round(t)):
+        raise DataError("time must hold whole months")
+    causes = tuple(int(k) for k in causes)
+    unknown = sorted(set(np.unique(ev).tolist()) - {0, *causes})
+    if unknown:
+        raise DataError(f"event has codes {unknown} outside censored (0) and causes {list(causes)}")
+    t = t.astype(np.int64)
+    if entry is None:
+        start = min(int(t.min()), 1)
+        ent = None
+    else:
+        ent = as_1d(entry, "entry")
+        _check_same_length(time=t, entry=ent)
+        _check_finite(ent, "entry")
+        ent = ent.astype(np.int64)
+        if np.any(ent >= t):
+            raise DataError("entry must be earlier than time for every loan")
+        start = int(ent.min()) + 1
+    return t, ev, causes, ent, start
 
 
 def _cif_variance(cif, s_prev, n, dk, ra_all):
@@ -908,27 +918,32 @@ def model_vs_nonparametric(
     for v in vintages:
         rows = vin == v
         aj = aalen_johansen(t[rows], ev[rows], causes=(1, 2), entry=None if ent is None else ent[rows])
-        curve = curves[v]
-        ages = curve.index[(curve.index >= max(1, aj.index.min())) & (curve.index <= aj.index.max())]
-        aj = aj.loc[ages]
-        obs = aj[f"cif_{cause}"].to_numpy()
-        se = aj[f"cif_{cause}_se"].to_numpy()
-        lo, hi = np.clip(obs - z * se, 0, 1), np.clip(obs + z * se, 0, 1)
-        mod = curve.loc[ages].to_numpy()
-        parts.append(
-            pd.DataFrame(
-                {
-                    "vintage": v,
-                    "age": np.asarray(ages, dtype=np.int64),
-                    "model": mod,
-                    "observed": obs,
-                    "observed_se": se,
-                    "observed_lo": lo,
-                    "observed_hi": hi,
-                    "difference": mod - obs,
-                    "outside": (mod < lo) | (mod > hi),
-                    "n_risk": aj["n_risk"].to_numpy(dtype=np.int64),
-                }
-            )
-        )
+        parts.append(_vintage_comparison(v, curves[v], aj, cause, z))
     return pd.concat(parts, ignore_index=True)
+
+
+def _vintage_comparison(v, curve: pd.Series, aj: pd.DataFrame, cause: int, z: float) -> pd.DataFrame:
+    """One vintage's model curve against its Aalen-Johansen curve, at the ages both cover.
+
+    ``z`` is the normal quantile of the interval ``observed +/- z * observed_se``.
+    """
+    ages = curve.index[(curve.index >= max(1, aj.index.min())) & (curve.index <= aj.index.max())]
+    aj = aj.loc[ages]
+    obs = aj[f"cif_{cause}"].to_numpy()
+    se = aj[f"cif_{cause}_se"].to_numpy()
+    lo, hi = np.clip(obs - z * se, 0, 1), np.clip(obs + z * se, 0, 1)
+    mod = curve.loc[ages].to_numpy()
+    return pd.DataFrame(
+        {
+            "vintage": v,
+            "age": np.asarray(ages, dtype=np.int64),
+            "model": mod,
+            "observed": obs,
+            "observed_se": se,
+            "observed_lo": lo,
+            "observed_hi": hi,
+            "difference": mod - obs,
+            "outside": (mod < lo) | (mod > hi),
+            "n_risk": aj["n_risk"].to_numpy(dtype=np.int64),
+        }
+    )
