@@ -721,7 +721,7 @@ def project_loans(
         the months needed, bad hazards from the source.
     """
     scenarios = tuple(paths)
-    w = _checked_weights(loans, scenarios, weights, chunk_size, segment_column, band_column)
+    w = _checked_arguments(loans, scenarios, weights, chunk_size, segment_column, band_column)
     spec, book, hpi_names, lookups = _live_book(
         loans, source, paths, as_of_idx, region_column, hpi_series, market_rate_series
     )
@@ -735,7 +735,7 @@ def project_loans(
     return _projection_result(book, pooled, sums, segment_column, scenarios, w, as_of_idx, band_edges)
 
 
-def _checked_weights(loans, scenarios, weights, chunk_size, segment_column, band_column) -> dict[str, float]:
+def _checked_arguments(loans, scenarios, weights, chunk_size, segment_column, band_column) -> ScenarioWeights:
     """Check the arguments of :func:`project_loans`; return the scenario weights."""
     if not scenarios:
         raise ProjectionError("no scenarios to project")
