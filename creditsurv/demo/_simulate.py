@@ -451,25 +451,58 @@ def _draw_loans(rng, n, orig_months, volume, macro: _Macro) -> dict[str, np.ndar
 def _simulate_chunk(
     k: int, first_number: int, n: int, *, seed, cutoff, orig_months, volume, macro: _Macro, hazard, default_min_age
 ) -> BookChunk:
-    """Simulate loans ``first_number .. first_number + n - 1`` with stream ``[seed, k]``."""
+    """Simulate loans ``first_number .. first_number + n - 1`` with stream ``[seed, k]``.
+
+    The random draws come in a fixed order (loans, events, workout lengths,
+    delinquency noise), so a seed and chunk size give the same book.
+    """
     rng = np.random.default_rng([seed, k])
     loan = _draw_loans(rng, n, orig_months, volume, macro)
-    orig, term = loan["orig"], loan["term"]
-    cutoff_age = cutoff - orig
-    a_max = np.minimum(term, cutoff_age)  # months at risk if no event
+    risk = _RiskRows.of(loan, cutoff)
+    h_default, h_prepay = _checked_hazards(hazard, _covariates(loan, risk, macro), risk.total)
+    h_default = np.where(risk.age < default_min_age, 0.0, h_default)
+    h_prepay = np.where(risk.age == loan["term"][risk.row_loan], 0.0, h_prepay)
+    kind, t_event = _first_events(rng, h_default, h_prepay, loan, risk)
+    workout = rng.integers(WORKOUT_MONTHS[0], WORKOUT_MONTHS[1] + 1, size=n)
+    noise_dpd = _noise_delinquency(rng, kind, t_event, risk)
+    return _chunk_tables(k, first_number, loan, risk, kind, t_event, workout, noise_dpd)
 
-    # Every loan-month the loan could be at risk, loan by loan.
-    starts = np.concatenate([[0], np.cumsum(a_max)[:-1]])
-    total = int(a_max.sum())
-    row_loan = np.repeat(np.arange(n), a_max)
-    age = np.arange(total) - starts[row_loan] + 1
+
+@dataclasses.dataclass(frozen=True)
+class _RiskRows:
+    """Every loan-month a chunk's loans could be at risk (to term or the cutoff), loan by loan."""
+
+    cutoff_age: np.ndarray  # per loan: age at the cutoff
+    a_max: np.ndarray  # per loan: months at risk if no event
+    starts: np.ndarray  # per loan: first row
+    row_loan: np.ndarray  # per row: loan position
+    age: np.ndarray  # per row: age 1, 2, ...
+
+    @property
+    def total(self) -> int:
+        return len(self.row_loan)
+
+    @classmethod
+    def of(cls, loan: dict, cutoff: int) -> _RiskRows:
+        cutoff_age = cutoff - loan["orig"]
+        a_max = np.minimum(loan["term"], cutoff_age)
+        starts = np.concatenate([[0], np.cumsum(a_max)[:-1]])
+        total = int(a_max.sum())
+        row_loan = np.repeat(np.arange(len(a_max)), a_max)
+        age = np.arange(total) - starts[row_loan] + 1
+        return cls(cutoff_age, a_max, starts, row_loan, age)
+
+
+def _covariates(loan: dict, risk: _RiskRows, macro: _Macro) -> dict[str, np.ndarray]:
+    """The covariates of every loan-month at risk, as the hazard receives them (see :func:`simulate_book`)."""
+    orig, term, row_loan, age = loan["orig"], loan["term"], risk.row_loan, risk.age
     month_pos = orig[row_loan] + age - macro.start
     region = loan["region"][row_loan]
     house_growth = macro.hpi[region, month_pos] / macro.hpi[region, orig[row_loan] - macro.start]
     prev_balance = scheduled_balance(
         loan["original_balance"][row_loan], loan["note_rate"][row_loan], term[row_loan], age - 1
     )
-    covariates = {
+    return {
         "age": age.astype(float),
         "log_age": np.log(age),
         "credit_score": loan["credit_score"][row_loan].astype(float),
@@ -479,6 +512,9 @@ def _simulate_chunk(
         "unemployment_rate": macro.unemployment[month_pos],
         "term_months": term[row_loan].astype(float),
     }
+
+
+def _checked_hazards(hazard, covariates, total: int) -> tuple[np.ndarray, np.ndarray]:
     h_default, h_prepay = (np.asarray(h, dtype=float) for h in hazard(covariates))
     if (
         h_default.shape != (total,)
@@ -492,29 +528,42 @@ def _simulate_chunk(
             "hazard must return two arrays of monthly probabilities, one per loan-month, "
             "each >= 0 and summing to at most 1"
         )
-    h_default = np.where(age < default_min_age, 0.0, h_default)
-    h_prepay = np.where(age == term[row_loan], 0.0, h_prepay)
+    return h_default, h_prepay
 
+
+def _first_events(rng, h_default, h_prepay, loan: dict, risk: _RiskRows) -> tuple[np.ndarray, np.ndarray]:
+    """One draw per loan-month; per loan the first event and its age.
+
+    ``kind`` is 0 censored, 1 default, 2 prepay, 3 matured; a censored loan's
+    ``t_event`` is its age at the cutoff.
+    """
+    total, age, term_row = risk.total, risk.age, loan["term"][risk.row_loan]
     draw = rng.random(total)
     is_default = draw < h_default
     is_prepay = ~is_default & (draw < h_default + h_prepay)
-    is_matured = ~is_default & (age == term[row_loan])
+    is_matured = ~is_default & (age == term_row)
     event_row = np.where(is_default | is_prepay | is_matured, np.arange(total), total)
-    first = np.minimum.reduceat(event_row, starts)
+    first = np.minimum.reduceat(event_row, risk.starts)
     has_event = first < total
     first = np.minimum(first, total - 1)
-    # kind: 0 censored, 1 default, 2 prepay, 3 matured
     kind = np.select(
         [~has_event, is_default[first], is_prepay[first]], [0, 1, 2], default=3
     ).astype(np.int8)
-    t_event = np.where(has_event, age[first], cutoff_age)
-    workout = rng.integers(WORKOUT_MONTHS[0], WORKOUT_MONTHS[1] + 1, size=n)
+    t_event = np.where(has_event, age[first], risk.cutoff_age)
+    return kind, t_event
 
-    # Short delinquencies that cure: start at a current month, 1 or 2 months long,
-    # ending before the loan closes and at least 3 months before a default.
+
+def _noise_delinquency(rng, kind, t_event, risk: _RiskRows) -> np.ndarray:
+    """Days past due of short delinquencies that cure, per loan-month at risk.
+
+    They start at a current month, last 1 or 2 months, end before the loan
+    closes and at least 3 months before a default, with a cured month between
+    two episodes.
+    """
+    total, row_loan, age = risk.total, risk.row_loan, risk.age
     noise_start = rng.random(total) < NOISE_START_PROB
     two_months = rng.random(total) < NOISE_SECOND_MONTH_PROB
-    limit = np.select([kind == 0, kind == 1], [cutoff_age, t_event - 4], default=t_event - 1)
+    limit = np.select([kind == 0, kind == 1], [risk.cutoff_age, t_event - 4], default=t_event - 1)
     valid = noise_start & (age + two_months <= limit[row_loan])
     earlier = np.zeros(total, dtype=bool)
     for lag in (1, 2):  # keep a cured month between two episodes
@@ -523,14 +572,18 @@ def _simulate_chunk(
     noise_dpd = np.zeros(total, dtype=np.int32)
     noise_dpd[valid] = 30
     noise_dpd[np.flatnonzero(valid & two_months) + 1] = 60
+    return noise_dpd
 
-    # Rows written to the panel.
-    n_rows = np.where(kind == 1, np.minimum(t_event + workout, cutoff_age), t_event)
+
+def _chunk_tables(k, first_number, loan: dict, risk: _RiskRows, kind, t_event, workout, noise_dpd) -> BookChunk:
+    """The loan table and the panel rows (to the event, then the default workout, cut at the cutoff)."""
+    n, term, total = len(kind), loan["term"], risk.total
+    n_rows = np.where(kind == 1, np.minimum(t_event + workout, risk.cutoff_age), t_event)
     out_loan = np.repeat(np.arange(n), n_rows)
     out_starts = np.concatenate([[0], np.cumsum(n_rows)[:-1]])
     out_age = np.arange(len(out_loan)) - out_starts[out_loan] + 1
-    in_risk_rows = out_age <= a_max[out_loan]
-    noise = np.where(in_risk_rows, noise_dpd[np.minimum(starts[out_loan] + out_age - 1, total - 1)], 0)
+    in_risk_rows = out_age <= risk.a_max[out_loan]
+    noise = np.where(in_risk_rows, noise_dpd[np.minimum(risk.starts[out_loan] + out_age - 1, total - 1)], 0)
     te, kd = t_event[out_loan], kind[out_loan]
     default_path = (kd == 1) & (out_age >= te - 2)
     dpd = np.where(default_path, 30 * (out_age - te + 3), noise).astype(np.int32)
@@ -560,7 +613,7 @@ def _simulate_chunk(
     loans = pa.table(
         {
             "loan_id": loan_ids,
-            "origination_month": _month_dates(orig),
+            "origination_month": _month_dates(loan["orig"]),
             "original_balance": loan["original_balance"],
             "note_rate": loan["note_rate"],
             "term_months": term,
@@ -576,7 +629,7 @@ def _simulate_chunk(
     panel = pa.table(
         {
             "loan_id": loan_ids.take(pa.array(out_loan)),
-            "month": _month_dates(orig[out_loan] + out_age),
+            "month": _month_dates(loan["orig"][out_loan] + out_age),
             "age": out_age.astype(np.int32),
             "balance": balance,
             "days_past_due": dpd,
@@ -797,6 +850,25 @@ def _csv_text(frame: pd.DataFrame) -> str:
     return frame.to_csv(index=False, float_format="%.4f", lineterminator="\n")
 
 
+def _text_files(seed: int, cutoff: str, truth: dict) -> dict[str, str]:
+    """The book's text files by relative path: macro history, scenarios, their weights, the truth record."""
+    history, scenarios, weights = make_macro(seed, cutoff=cutoff)
+    texts = {"macro_history.csv": _csv_text(history)}
+    for name, frame in scenarios.items():
+        texts[f"scenarios/{name}.csv"] = _csv_text(frame)
+    texts["scenarios/weights.csv"] = _csv_text(
+        pd.DataFrame(
+            {
+                "scenario": list(weights),
+                "weight": list(weights.values()),
+                "file": [f"{name}.csv" for name in weights],
+            }
+        )
+    )
+    texts["true_parameters.json"] = json.dumps(truth, sort_keys=True, indent=2) + "\n"
+    return texts
+
+
 def write_demo_book(
     out_dir,
     n_loans: int,
@@ -868,22 +940,8 @@ def write_demo_book(
                     events[kind] += n
                 charged_off += _count_status(chunk.panel, "charged_off")
 
-        history, scenarios, weights = make_macro(seed, cutoff=cutoff)
-        texts = {"macro_history.csv": _csv_text(history)}
-        for name, frame in scenarios.items():
-            texts[f"scenarios/{name}.csv"] = _csv_text(frame)
-        texts["scenarios/weights.csv"] = _csv_text(
-            pd.DataFrame(
-                {
-                    "scenario": list(weights),
-                    "weight": list(weights.values()),
-                    "file": [f"{name}.csv" for name in weights],
-                }
-            )
-        )
         truth = book_truth(n_loans, seed, chunk_size=chunk_size, hazard=hazard, **book_kw)
-        texts["true_parameters.json"] = json.dumps(truth, sort_keys=True, indent=2) + "\n"
-        for name, text in texts.items():
+        for name, text in _text_files(seed, cutoff, truth).items():
             temp[name].write_bytes(text.encode("utf-8"))
         for name in OUTPUT_FILES:
             os.replace(temp[name], out / name)
