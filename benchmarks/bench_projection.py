@@ -81,8 +81,7 @@ def route(name: str, n: int) -> dict:
     weights = {s.name: s.weight for s in cfg.scenarios}
     kwargs = dict(
         as_of_idx=int(cfg.as_of), weights=weights, loss=cfg.loss, staging=cfg.staging,
-        hpi_series=cfg.collateral.hpi_series, region_column=cfg.collateral.region_column,
-        market_rate_series=cfg.collateral.market_rate_series,
+        collateral=cfg.collateral,
         band_column=cfg.segments.band_column, band_edges=cfg.segments.band_edges,
     )
     live = int((~loans["in_default"]).sum())

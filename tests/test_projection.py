@@ -13,7 +13,7 @@ import pandas as pd
 import pyarrow as pa
 import pytest
 
-from creditsurv.config import Scenario, ScenarioWeights, config_from_dict
+from creditsurv.config import Collateral, Scenario, ScenarioWeights, config_from_dict
 from creditsurv.errors import ConfigError, ProjectionError
 from creditsurv.forecast import (
     WEIGHTED,
@@ -531,6 +531,6 @@ def test_benchmark_source_needs_no_macro():
 
 def test_derived_inputs_need_their_collateral_settings():
     with pytest.raises(ProjectionError, match="collateral.hpi_series"):
-        project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS, hpi_series=None)
+        project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=Collateral(hpi_series=None))
     with pytest.raises(ProjectionError, match="collateral.market_rate_series"):
-        project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS, market_rate_series=None)
+        project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=Collateral(market_rate_series=None))

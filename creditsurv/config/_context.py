@@ -48,9 +48,7 @@ class RunContext:
             "loss": cfg.loss,
             "staging": cfg.staging,
             "default_days_past_due": cfg.default_definition.days_past_due,
-            "hpi_series": cfg.collateral.hpi_series,
-            "region_column": cfg.collateral.region_column,
-            "market_rate_series": cfg.collateral.market_rate_series,
+            "collateral": cfg.collateral,
             "band_column": cfg.segments.band_column,
             "band_edges": cfg.segments.band_edges,
         }

@@ -50,7 +50,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ..config import WEIGHTED, ScenarioWeights
+from ..config import WEIGHTED, Collateral, ScenarioWeights
 from ..errors import ConfigError, ProjectionError, problem_list
 from ..model import (
     equivalent_psa,
@@ -491,12 +491,13 @@ def scenario_weights(scenarios, weights) -> ScenarioWeights:
     return weights.in_order(scenarios)
 
 
-def _prepare_book(loans, spec, *, as_of_idx, region_column, hpi_series, market_rate_series, origination: bool):
-    if spec.ltv and (hpi_series is None or region_column is None):
+def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination: bool):
+    region_column = collateral.region_column
+    if spec.ltv and (collateral.hpi_series is None or region_column is None):
         raise ProjectionError(
             "the hazard source needs current_ltv: set collateral.hpi_series and collateral.region_column"
         )
-    if spec.incentive and market_rate_series is None:
+    if spec.incentive and collateral.market_rate_series is None:
         raise ProjectionError("the hazard source needs rate_incentive: set collateral.market_rate_series")
     needed = ["loan_id", "term", "note_rate", *spec.static]
     needed += ["original_balance", "origination_idx"] if origination else ["balance", "age"]
@@ -522,7 +523,7 @@ def _prepare_book(loans, spec, *, as_of_idx, region_column, hpi_series, market_r
     region_code = hpi_names = None
     if spec.ltv:
         region_code, regions = pd.factorize(frame[region_column], sort=True)
-        hpi_names = _hpi_names(regions, hpi_series)
+        hpi_names = _hpi_names(regions, collateral.hpi_series)
     book = _Book(
         frame=frame,
         loan_id=frame["loan_id"].to_numpy(),
@@ -654,9 +655,7 @@ def project_loans(
     as_of_idx: int,
     weights: ScenarioWeights | Mapping[str, float] | None = None,
     chunk_size: int = 2000,
-    hpi_series: str = "hpi_{region}",
-    region_column: str = "region",
-    market_rate_series: str = "mortgage_rate",
+    collateral: Collateral = Collateral(),
     segment_column: str = "segment",
     band_column: str | None = None,
     band_edges: Sequence[float] = (),
@@ -687,8 +686,9 @@ def project_loans(
         optional with one scenario.
     chunk_size : int, default 2000
         Loans per chunk; memory grows with chunk_size x longest remaining term.
-    hpi_series, region_column, market_rate_series : str
-        How current LTV and rate incentive are built (config ``collateral``).
+    collateral : config ``Collateral``
+        How current LTV and the rate incentive are built: the region column,
+        the house-price series and the market-rate series.
     segment_column, band_column, band_edges
         Groups of the segment tables; a band is ``band_column`` cut at the
         inner ``band_edges``.
@@ -723,13 +723,13 @@ def project_loans(
     scenarios = tuple(paths)
     w = _checked_arguments(loans, scenarios, weights, chunk_size, segment_column, band_column)
     spec, book, hpi_names, lookups = _live_book(
-        loans, source, paths, as_of_idx, region_column, hpi_series, market_rate_series
+        loans, source, paths, as_of_idx, collateral
     )
     n_all = len(book.frame)
     pooled = _SegmentPool(book, book.frame, (*scenarios, WEIGHTED), segment_column, band_column, band_edges)
     for start in range(0, n_all, chunk_size):
         sl = slice(start, min(start + chunk_size, n_all))
-        chunk = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, market_rate_series, hold=False)
+        chunk = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=False)
         _project_chunk(book, sl, chunk, scenarios, w, pooled, curve_writer, term_writer, on_chunk)
     sums = pooled.finish(w, scenarios)
     return _projection_result(book, pooled, sums, segment_column, scenarios, w, as_of_idx, band_edges)
@@ -749,7 +749,7 @@ def _checked_arguments(loans, scenarios, weights, chunk_size, segment_column, ba
     return w
 
 
-def _live_book(loans, source, paths, as_of_idx, region_column, hpi_series, market_rate_series):
+def _live_book(loans, source, paths, as_of_idx, collateral: Collateral):
     """The live loans as arrays, the source's inputs and each scenario's macro lookup.
 
     The scenario paths are checked to cover every month and lag the book needs.
@@ -757,12 +757,11 @@ def _live_book(loans, source, paths, as_of_idx, region_column, hpi_series, marke
     """
     spec = _parse_inputs(list(source.required_inputs), loans.columns)
     book, hpi_names = _prepare_book(
-        loans, spec, as_of_idx=as_of_idx, region_column=region_column, hpi_series=hpi_series,
-        market_rate_series=market_rate_series, origination=False,
+        loans, spec, as_of_idx=as_of_idx, collateral=collateral, origination=False,
     )
     lookups = {s: MacroLookup(p) for s, p in paths.items()}
     if len(book.loan_id):
-        check_coverage(lookups, _coverage_needs(book, spec, hpi_names, market_rate_series, hold=False))
+        check_coverage(lookups, _coverage_needs(book, spec, hpi_names, collateral.market_rate_series, hold=False))
     return spec, book, hpi_names, lookups
 
 
@@ -974,9 +973,7 @@ def origination_pd(
     macro: pd.DataFrame,
     *,
     chunk_size: int = 2000,
-    hpi_series: str = "hpi_{region}",
-    region_column: str = "region",
-    market_rate_series: str = "mortgage_rate",
+    collateral: Collateral = Collateral(),
 ) -> pd.Series:
     """Lifetime PD of each loan as it could be projected at its origination month.
 
@@ -1008,14 +1005,11 @@ def origination_pd(
     Series of lifetime PD indexed by loan_id (sorted).
     """
     spec = _parse_inputs(list(source.required_inputs), loans.columns)
-    book, hpi_names = _prepare_book(
-        loans, spec, as_of_idx=0, region_column=region_column, hpi_series=hpi_series,
-        market_rate_series=market_rate_series, origination=True,
-    )
+    book, hpi_names = _prepare_book(loans, spec, as_of_idx=0, collateral=collateral, origination=True)
     lookups = {"origination": MacroLookup(macro)}
     n_all = len(book.loan_id)
     if n_all:
-        check_coverage(lookups, _coverage_needs(book, spec, hpi_names, market_rate_series, hold=True))
+        check_coverage(lookups, _coverage_needs(book, spec, hpi_names, collateral.market_rate_series, hold=True))
     out = np.zeros(n_all)
     if "age" in loans.columns:
         ages = loans.set_index("loan_id")["age"].reindex(book.loan_id).to_numpy(dtype=np.int64)
@@ -1023,7 +1017,7 @@ def origination_pd(
         ages = np.zeros(n_all, dtype=np.int64)
     for start in range(0, n_all, chunk_size):
         sl = slice(start, min(start + chunk_size, n_all))
-        haz, *_ = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, market_rate_series, hold=True)
+        haz, *_ = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=True)
         curves = Curves.from_hazards(*haz["origination"])
         s, f_d = curves.survival, curves.cum_default
         a = np.clip(ages[sl], 0, f_d.shape[1])

@@ -37,7 +37,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from ..config import Loss, ScenarioWeights, Staging
+from ..config import Collateral, Loss, ScenarioWeights, Staging
 from ..errors import ProjectionError
 from ..forecast import (
     WEIGHTED,
@@ -52,6 +52,7 @@ from ..forecast import (
     scenario_column,
     scenario_weights,
 )
+from ..model import hpi_series_name
 
 __all__ = [
     "discount_factors",
@@ -316,8 +317,7 @@ class _EclAccumulator:
 
 
 def _pd_at_origination(
-    frame, live, live_rows, in_default, staging, source, first_path, *, chunk_size, hpi_series, region_column,
-    market_rate_series,
+    frame, live, live_rows, in_default, staging, source, first_path, *, chunk_size, collateral: Collateral
 ) -> np.ndarray:
     """Lifetime PD at origination per loan: the configured column, or projected with the origination month's information."""
     if staging.pd_at_origination_column:
@@ -332,8 +332,7 @@ def _pd_at_origination(
     pd_orig = np.full(len(frame), np.nan)
     if len(live):
         po = origination_pd(
-            live, source, first_path, chunk_size=chunk_size, hpi_series=hpi_series,
-            region_column=region_column, market_rate_series=market_rate_series,
+            live, source, first_path, chunk_size=chunk_size, collateral=collateral,
         )
         pd_orig[live_rows] = po.to_numpy()
     return pd_orig
@@ -374,13 +373,14 @@ def _book_frame(loans: pd.DataFrame, segment_column: str, default_days_past_due)
     raise ProjectionError("loans: no in_default column and no days-past-due default threshold")
 
 
-def _house_price_series(frame, in_default, lookups, lgd_cfg, hpi_series, region_column, as_of_idx) -> dict:
+def _house_price_series(frame, in_default, lookups, lgd_cfg, collateral: Collateral, as_of_idx) -> dict:
     """Region to house-price series of the collateral LGD, after checking every scenario covers the months it reads."""
+    region_column = collateral.region_column
     need = ["property_value", "origination_idx", region_column]
     missing = [c for c in need if c not in frame.columns]
     if missing:
         raise ProjectionError(f"loans: collateral LGD needs column(s) {missing}")
-    hpi_names = {r: hpi_series.format(region=str(r).lower()) for r in pd.unique(frame[region_column])}
+    hpi_names = {r: hpi_series_name(collateral.hpi_series, r) for r in pd.unique(frame[region_column])}
     live = ~in_default
     needs = {}
     ends = (as_of_idx + frame["term"].to_numpy() - frame["age"].to_numpy() + lgd_cfg.months_to_recovery)
@@ -442,9 +442,7 @@ def expected_credit_loss(
     staging: Staging = Staging(),
     default_days_past_due: int | None = 90,
     chunk_size: int = 2000,
-    hpi_series: str = "hpi_{region}",
-    region_column: str = "region",
-    market_rate_series: str = "mortgage_rate",
+    collateral: Collateral = Collateral(),
     segment_column: str = "segment",
     band_column: str | None = None,
     band_edges: Sequence[float] = (),
@@ -464,8 +462,8 @@ def expected_credit_loss(
         and ``origination_idx`` when the PD at origination is projected;
         ``property_value``, ``origination_idx`` and the region column for the
         collateral LGD.  Loans in default are not projected (stage 3).
-    source, paths, as_of_idx, weights, chunk_size, hpi_series, region_column,
-    market_rate_series, segment_column, band_column, band_edges, curve_writer,
+    source, paths, as_of_idx, weights, chunk_size, collateral, segment_column,
+    band_column, band_edges, curve_writer,
     term_writer
         Passed to :func:`~creditsurv.forecast.project_loans`.  For the
         collateral LGD the paths must reach ``months_to_recovery`` months past
@@ -493,12 +491,14 @@ def expected_credit_loss(
     lookups = {s: MacroLookup(p) for s, p in paths.items()}
     hpi_names = {}
     if lgd_cfg.kind == "collateral":
-        hpi_names = _house_price_series(frame, in_default, lookups, lgd_cfg, hpi_series, region_column, as_of_idx)
+        hpi_names = _house_price_series(frame, in_default, lookups, lgd_cfg, collateral, as_of_idx)
 
     live_rows = np.flatnonzero(~in_default)
     live = frame.iloc[live_rows]
     w = scenario_weights(scenarios, weights)
-    acc = _EclAccumulator(len(live), scenarios, w, loss, lookups, region_column, hpi_names, as_of_idx, schedule_writer)
+    acc = _EclAccumulator(
+        len(live), scenarios, w, loss, lookups, collateral.region_column, hpi_names, as_of_idx, schedule_writer
+    )
     on_chunk = acc
     if progress is not None:
 
@@ -507,8 +507,7 @@ def expected_credit_loss(
             progress(ch.rows.stop, len(live))
 
     proj = project_loans(
-        live, source, paths, as_of_idx=as_of_idx, weights=w, chunk_size=chunk_size, hpi_series=hpi_series,
-        region_column=region_column, market_rate_series=market_rate_series, segment_column="segment",
+        live, source, paths, as_of_idx=as_of_idx, weights=w, chunk_size=chunk_size, collateral=collateral, segment_column="segment",
         band_column=band_column, band_edges=band_edges, curve_writer=curve_writer, term_writer=term_writer,
         on_chunk=on_chunk,
     )
@@ -517,13 +516,13 @@ def expected_credit_loss(
 
     pd_orig = _pd_at_origination(
         frame, live, live_rows, in_default, staging, source, paths[scenarios[0]],
-        chunk_size=chunk_size, hpi_series=hpi_series, region_column=region_column, market_rate_series=market_rate_series,
+        chunk_size=chunk_size, collateral=collateral,
     )
 
     weighted = len(names) - 1
     stage, reason = allocate_stages(measures["pd_lifetime"][:, weighted], pd_orig, dpd, in_default, staging)
 
-    ead0, lgd0 = _reporting_month_loss(frame, loss, lookups, region_column, hpi_names, as_of_idx, w)
+    ead0, lgd0 = _reporting_month_loss(frame, loss, lookups, collateral.region_column, hpi_names, as_of_idx, w)
     _fill_defaulted_and_weighted(measures, in_default, ead0, lgd0, names, w)
     ecl_12m, ecl_life = measures["ecl_12m"][:, weighted].copy(), measures["ecl_lifetime"][:, weighted].copy()
     table = pd.DataFrame(

@@ -164,8 +164,7 @@ def _has_view(engine, name: str) -> bool:
 
 
 def _projection_options(cfg) -> dict:
-    c = cfg.collateral
-    return {"hpi_series": c.hpi_series, "region_column": c.region_column, "market_rate_series": c.market_rate_series}
+    return {"collateral": cfg.collateral}
 
 
 def _json_safe(value):
