@@ -147,8 +147,14 @@ def did_you_mean(word, choices) -> str:
 
 
 def problem_list(problems, what: str) -> str:
-    """The one text of an error that lists several problems: ``"2 problems with <what>:\n  - ...\n  - ..."``."""
+    """The one text of an error that lists problems: ``"2 problems with <what>:\n  - ...\n  - ..."``.
+
+    A single problem stays on one line (``"1 problem with <what>: ..."``), so that the first line of
+    every message names the file, key, column or rows at fault.
+    """
     problems = list(problems)
     n = len(problems)
+    if n == 1:
+        return f"1 problem with {what}: {problems[0]}"
     lines = "\n".join(f"  - {p}" for p in problems)
     return f"{n} problem{'s' if n != 1 else ''} with {what}:\n{lines}"
