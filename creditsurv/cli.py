@@ -81,7 +81,7 @@ def _cmd_run(args) -> int:
 def _cmd_reproduce(args) -> int:
     from .pipeline import reproduce
 
-    outcome = reproduce(args.run_dir, out=args.out, progress=TerminalProgress())
+    outcome = reproduce(args.run_dir, out=args.out, inputs=args.inputs, progress=TerminalProgress())
     print(outcome.text)
     return 0
 
@@ -140,6 +140,10 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("reproduce", help="re-run a past run from its manifest and compare every output")
     p.add_argument("run_dir", type=Path, metavar="RUN_DIR")
     p.add_argument("--out", type=Path, default=None, help="folder for the fresh run (default: reproductions/ beside it)")
+    p.add_argument(
+        "--inputs", type=Path, default=None, metavar="DIR",
+        help="where the run's input files are now: any file under DIR whose SHA-256 matches a recorded input is used",
+    )
     p.set_defaults(func=_cmd_reproduce)
 
     p = sub.add_parser("compare", help="ECL movement from run A to run B: walk, stage migration, PD change")

@@ -12,7 +12,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from .config import Config, config_from_dict, config_to_dict, load_config, read_yaml
-from .errors import DataError
+from .errors import DataError, RunError
+from .version import __version__
 from .model import HazardResults, hazard_source, parse_macro_key
 
 
@@ -43,8 +44,7 @@ def _config(config, as_of: str | None = None) -> Config:
             return config
         data = config_to_dict(config)
         data["as_of"] = as_of
-        base = Path(config.source).resolve().parent if config.source else Path.cwd()
-        return config_from_dict(data, base, source=config.source)
+        return config_from_dict(data, config.folder, source=config.source)
     path = Path(config)
     if as_of is None:
         return load_config(path)
@@ -154,22 +154,22 @@ def _config_text(cfg) -> str | None:
     return Path(cfg.source).read_text(encoding="utf-8") if cfg.source else None
 
 
-def _manifest_start(cfg, engine, argv, kind: str, config_text: str | None = None):
-    """The record of a run or fit, started once the inputs are open: id, config, input hashes, versions."""
-    from .config import config_sha256, config_to_dict
-    from .runs import describe_inputs, run_name, start_manifest
+def _manifest_start(cfg, argv, kind: str, config_text: str | None = None):
+    """The record of a run or fit, started before any output: id, config, every input's hash, versions."""
+    from .config import config_files, config_sha256, config_to_dict
+    from .runs import describe_inputs, run_identity, start_manifest
 
-    inputs = describe_inputs(engine.sources, {})
-    sha = config_sha256(cfg)
-    name = run_name(cfg.as_of, sha, [i["sha256"] for i in inputs])
+    inputs = describe_inputs(config_files(cfg), cfg.relative)
+    name = run_identity(cfg.as_of, config_to_dict(cfg, paths="omit"), inputs)
     return start_manifest(
         kind=kind,
         run_id=name if kind == "run" else f"{kind}_{name}",
         as_of=cfg.as_of,
         argv=argv,
         config_text=config_text if config_text is not None else _config_text(cfg),
-        config_resolved=config_to_dict(cfg),
-        config_sha256=sha,
+        config_resolved=config_to_dict(cfg, paths="relative"),
+        config_sha256=config_sha256(cfg),
+        config_dir=str(cfg.folder),
         seed=cfg.seed,
         inputs=inputs,
     )
@@ -200,7 +200,7 @@ def fit(config, out: Path | None = None, argv=None) -> Outcome:
     cfg = _config(config)
     engine, checks = open_checked(cfg)
     with engine:
-        manifest = _manifest_start(cfg, engine, argv, "fit")
+        manifest = _manifest_start(cfg, argv, "fit")
         parent = _output_parent(cfg, out)
         with RunFolder(parent, manifest.run_id) as run:
             model = hazard_source(cfg, engine, temp_dir=run.path)
@@ -356,7 +356,7 @@ def execute_run(
     with open_engine(cfg) as engine:
         loaded = preflight(ctx, engine)
         checks = check_and_label(engine)
-        manifest = _manifest_start(cfg, engine, argv, "run", config_text)
+        manifest = _manifest_start(cfg, argv, "run", config_text)
         folder = name or manifest.run_id
         with RunFolder(parent, folder) as run:
             work = run.path / "_work"
@@ -452,37 +452,51 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
 # --------------------------------------------------------------------------- reproduce and compare
 
 
-def reproduce(run_dir, out=None, progress=None) -> Outcome:
-    """``creditsurv reproduce``: re-run a past run from its manifest and compare outputs.
+def reproduce(run_dir, out=None, inputs=None, progress=None) -> Outcome:
+    """``creditsurv reproduce``: re-run a past run from its record and compare every output.
 
-    Every input's SHA-256 is verified first (a changed or missing input is a
-    ``RunError`` naming the file). The fresh run goes to ``out`` (default
-    ``<run_dir>/../reproductions``). With the same package versions every
-    output hash must match (else ``ReproduceMismatch``, exit 3); with other
-    versions the largest numeric difference per table and column is reported.
+    In order: the manifest is read against its schema (its config's SHA-256
+    checked); the run folder is re-hashed and must be exactly what the manifest
+    records (else ``ReproduceMismatch``, exit 3, naming the file); every input is
+    found and must hash to the record (else ``RunError`` naming the file) — at its
+    recorded place, or, with ``inputs``, anywhere under that folder; then the month
+    is re-run from the found files into ``out`` (default
+    ``<run_dir>/../reproductions``) and judged: with the same package versions
+    every output must match byte for byte (else ``ReproduceMismatch``, exit 3);
+    with other versions the largest numeric difference per table and column is
+    reported.
     """
-    from .runs import (
-        check_inputs_unchanged,
-        judge_reproduction,
-        read_manifest,
-        reproduction_name,
-    )
+    import tempfile
+
+    from .runs import check_folder_on_disk, judge_reproduction, locate_inputs, read_manifest, reproduction_name, stage_inputs
 
     run_dir = Path(run_dir)
     manifest = read_manifest(run_dir)
-    check_inputs_unchanged(run_dir, manifest)
-    cfg = config_from_dict(manifest["config_resolved"], run_dir)
+    if manifest["kind"] != "run":
+        raise RunError(f"{run_dir}: not a run folder made by creditsurv run (kind {manifest['kind']!r})")
+    check_folder_on_disk(run_dir, manifest)
+    if manifest.get("schema_version", 1) < 2:
+        raise RunError(
+            f"{run_dir / 'manifest.json'}: schema version 1 records absolute input paths and a run id that depends "
+            f"on them; this creditsurv ({__version__}) cannot re-run it byte for byte. Reproduce it with the "
+            f"creditsurv that wrote it ({manifest['versions'].get('creditsurv', 'version not recorded')})"
+        )
+    found = locate_inputs(manifest, Path(inputs) if inputs is not None else None)
     parent = Path(out) if out is not None else run_dir.parent / "reproductions"
-    fresh = execute_run(
-        cfg, parent, argv=["creditsurv", "reproduce", str(run_dir)], name=reproduction_name(parent, run_dir.name),
-        config_text=manifest.get("config_as_given"), progress=progress,
-    ).path
+    with tempfile.TemporaryDirectory(prefix="creditsurv-reproduce-") as scratch:
+        folder = stage_inputs(found, Path(scratch))
+        cfg = config_from_dict(manifest["config_resolved"], folder)
+        argv = ["creditsurv", "reproduce", str(run_dir)] + (["--inputs", str(inputs)] if inputs is not None else [])
+        fresh = execute_run(
+            cfg, parent, argv=argv, name=reproduction_name(parent, run_dir.name),
+            config_text=manifest.get("config_as_given"), progress=progress,
+        ).path
     return Outcome(judge_reproduction(run_dir, fresh), path=fresh)
 
 
 def compare(run_a, run_b, out=None) -> Outcome:
     """``creditsurv compare``: the ECL walk, stage migration and PD change from run A to run B."""
-    from .runs import RunFolder, compare_run_folders, read_manifest
+    from .runs import SCHEMA_VERSION, RunFolder, compare_run_folders, read_manifest
 
     result = compare_run_folders(run_a, run_b)
     a, b = read_manifest(run_a), read_manifest(run_b)
@@ -490,7 +504,7 @@ def compare(run_a, run_b, out=None) -> Outcome:
     with RunFolder(parent, f"movement_{Path(run_a).name}_to_{Path(run_b).name}") as folder:
         for file, table in result.to_tables().items():
             folder.add_table(table, file)
-        final = folder.commit({"kind": "movement", "run_a": str(run_a), "run_b": str(run_b), "as_of_a": a["as_of"], "as_of_b": b["as_of"]})
+        final = folder.commit({"schema_version": SCHEMA_VERSION, "kind": "movement", "run_a": str(run_a), "run_b": str(run_b), "as_of_a": a["as_of"], "as_of_b": b["as_of"]})
     walk = result.walk
     lines = [f"ECL movement {a['as_of']} -> {b['as_of']}"]
     for row in walk.itertuples():

@@ -2,10 +2,17 @@
 
 from __future__ import annotations
 
+import hashlib
+import json
+import shutil
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Callable
 
+import numpy as np
 import pandas as pd
 import pytest
+import yaml
 
 from creditsurv.config import config_from_dict
 
@@ -164,3 +171,117 @@ def engine_frames(tmp_path_factory):
         return {name: frame.copy() for name, frame in cache[key].items()}
 
     return build
+
+
+# --------------------------------------------------------------------------- the corpus's small book and its workspaces
+
+CORPUS_LOANS, CORPUS_SEED = 2000, 4242
+
+
+def busy_hazard():
+    """The demo's true hazard with defaults three times as frequent: 2,000 loans then give enough default
+    events in the development window for the demo model's 10 terms per cause (the events-per-parameter rule)."""
+    from creditsurv.demo import TRUE_COEFFICIENTS, LogitHazard
+
+    coefficients = {cause: dict(terms) for cause, terms in TRUE_COEFFICIENTS.items()}
+    coefficients["default"]["intercept"] += np.log(3.0)
+    return LogitHazard(coefficients)
+
+
+@pytest.fixture(scope="session")
+def corpus_book(tmp_path_factory):
+    """The small book of the bad-input corpus and the record tests (written once) and one complete run of it.
+
+    Returns the template :class:`Workspace`; tests take copies (:meth:`Workspace.copy_to`).
+    """
+    from creditsurv.cli import main
+    from creditsurv.demo import write_demo_book
+
+    root = tmp_path_factory.mktemp("corpus")
+    book = root / "book"
+    write_demo_book(book, CORPUS_LOANS, CORPUS_SEED, hazard=busy_hazard())
+    ws = Workspace.create(root / "template", book)
+    code = main(["run", str(ws.config)])
+    assert code == 0, "the corpus's clean run must succeed"
+    return ws
+
+
+@dataclass
+class Workspace:
+    """A folder holding a copy of the book, a config reading it and a ``reports`` folder with one earlier run."""
+
+    root: Path
+    data: dict = field(default_factory=dict)
+
+    @classmethod
+    def create(cls, root: Path, book: Path) -> "Workspace":
+        """A workspace at ``root`` with a copy of ``book``; the config names every file relative to its folder."""
+        root.mkdir(parents=True)
+        shutil.copytree(book, root / "book")
+        ws = cls(root)
+        ws.data = demo_config_data(Path("book"), Path("reports"))
+        ws.data["outputs"]["monthly_tables"] = False
+        ws.save()
+        return ws
+
+    def copy_to(self, root: Path) -> "Workspace":
+        """A copy of the whole workspace at ``root``, its earlier run included."""
+        shutil.copytree(self.root, root, symlinks=True)
+        ws = Workspace(root, json.loads(json.dumps(self.data)))
+        # The earlier run was made from the template's config folder and records that folder as where its
+        # inputs were; in the copy it was made here (the same relative paths, the same bytes).
+        manifest = ws.earlier_run / "manifest.json"
+        data = json.loads(manifest.read_text())
+        data["config_dir"] = str(root)
+        manifest.write_text(json.dumps(data, indent=2, sort_keys=True) + "\n")
+        return ws
+
+    # ------------------------------------------------------------------ paths and edits
+
+    @property
+    def config(self) -> Path:
+        return self.root / "config.yaml"
+
+    @property
+    def book(self) -> Path:
+        return self.root / "book"
+
+    @property
+    def reports(self) -> Path:
+        return self.root / "reports"
+
+    @property
+    def earlier_run(self) -> Path:
+        (run,) = [p for p in self.reports.iterdir() if p.is_dir() and not p.name.startswith(".")]
+        return run
+
+    def save(self) -> None:
+        self.config.write_text(yaml.safe_dump(self.data, sort_keys=False), encoding="utf-8")
+
+    def edit_config(self, change: Callable[[dict], None]) -> Path:
+        """Apply ``change`` to the config dict, write it, return its path."""
+        change(self.data)
+        self.save()
+        return self.config
+
+    def edit_table(self, name: str, change: Callable[[pd.DataFrame], pd.DataFrame | None]) -> Path:
+        """Read ``book/<name>`` (Parquet or CSV), apply ``change`` and write it back in the same format."""
+        path = self.book / name
+        frame = pd.read_parquet(path) if path.suffix == ".parquet" else pd.read_csv(path)
+        changed = change(frame)
+        frame = frame if changed is None else changed
+        if path.suffix == ".parquet":
+            frame.to_parquet(path, index=False)
+        else:
+            frame.to_csv(path, index=False)
+        return path
+
+    def snapshot(self) -> dict[str, str]:
+        """SHA-256 of every file under ``reports``, by relative path."""
+        out = {}
+        for p in sorted(self.reports.rglob("*")):
+            if p.is_file():
+                out[str(p.relative_to(self.reports))] = hashlib.sha256(p.read_bytes()).hexdigest()
+        return out
+
+

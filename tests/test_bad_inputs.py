@@ -8,7 +8,7 @@ demo simulator, built once) and asserts
 * the first line of the message (``ErrorName: ...`` naming the file, config key, column or rows),
 * that no run folder, ``.incomplete-*`` folder or temporary folder is left behind (a mismatching
   reproduction, exit 3, is kept: it is the validator's evidence), and
-* that the earlier run in the workspace is untouched, byte for byte.
+* that the command leaves every file that was under ``reports`` before it ran untouched, byte for byte.
 
 A case is a :class:`Case`: a name, the issue item it keeps fixed, a ``prepare`` function that breaks the
 workspace and returns the command line, the exit code and a regular expression for the first line of
@@ -18,6 +18,7 @@ stderr. Add a case by appending to ``CASES`` in the section of its item.
 from __future__ import annotations
 
 import hashlib
+import json
 import re
 import shutil
 import tempfile
@@ -29,105 +30,9 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
-from conftest import demo_config_data
+from conftest import Workspace
 
 from creditsurv.cli import main
-from creditsurv.demo import TRUE_COEFFICIENTS, LogitHazard, write_demo_book
-
-CORPUS_LOANS, CORPUS_SEED = 2000, 4242
-
-# Defaults three times as frequent as the demo's: 2,000 loans then give enough default events in the
-# development window for the demo model's 10 terms per cause (the events-per-parameter rule).
-_BUSY = {cause: dict(terms) for cause, terms in TRUE_COEFFICIENTS.items()}
-_BUSY["default"]["intercept"] += np.log(3.0)
-BUSY = LogitHazard(_BUSY)
-
-
-@pytest.fixture(scope="module")
-def corpus_book(tmp_path_factory):
-    """The corpus's book (written once) and one complete run of it, to copy into every workspace."""
-    root = tmp_path_factory.mktemp("corpus")
-    book = root / "book"
-    write_demo_book(book, CORPUS_LOANS, CORPUS_SEED, hazard=BUSY)
-    ws = Workspace.create(root / "template", book)
-    code = main(["run", str(ws.config)])
-    assert code == 0, "the corpus's clean run must succeed"
-    return ws
-
-
-@dataclass
-class Workspace:
-    """A folder holding a copy of the book, a config reading it and a ``reports`` folder with one earlier run."""
-
-    root: Path
-    data: dict = field(default_factory=dict)
-
-    @classmethod
-    def create(cls, root: Path, book: Path) -> "Workspace":
-        root.mkdir(parents=True)
-        shutil.copytree(book, root / "book")
-        ws = cls(root)
-        ws.data = demo_config_data(root / "book", root / "reports")
-        ws.data["outputs"]["monthly_tables"] = False
-        ws.save()
-        return ws
-
-    def copy_to(self, root: Path) -> "Workspace":
-        shutil.copytree(self.root, root, symlinks=True)
-        ws = Workspace(root)
-        ws.data = demo_config_data(root / "book", root / "reports")
-        ws.data["outputs"]["monthly_tables"] = False
-        ws.save()
-        return ws
-
-    # ------------------------------------------------------------------ paths and edits
-
-    @property
-    def config(self) -> Path:
-        return self.root / "config.yaml"
-
-    @property
-    def book(self) -> Path:
-        return self.root / "book"
-
-    @property
-    def reports(self) -> Path:
-        return self.root / "reports"
-
-    @property
-    def earlier_run(self) -> Path:
-        (run,) = [p for p in self.reports.iterdir() if p.is_dir() and not p.name.startswith(".")]
-        return run
-
-    def save(self) -> None:
-        self.config.write_text(yaml.safe_dump(self.data, sort_keys=False), encoding="utf-8")
-
-    def edit_config(self, change: Callable[[dict], None]) -> Path:
-        """Apply ``change`` to the config dict, write it, return its path."""
-        change(self.data)
-        self.save()
-        return self.config
-
-    def edit_table(self, name: str, change: Callable[[pd.DataFrame], pd.DataFrame | None]) -> Path:
-        """Read ``book/<name>`` (Parquet or CSV), apply ``change`` and write it back in the same format."""
-        path = self.book / name
-        frame = pd.read_parquet(path) if path.suffix == ".parquet" else pd.read_csv(path)
-        changed = change(frame)
-        frame = frame if changed is None else changed
-        if path.suffix == ".parquet":
-            frame.to_parquet(path, index=False)
-        else:
-            frame.to_csv(path, index=False)
-        return path
-
-    def snapshot(self) -> dict[str, str]:
-        """SHA-256 of every file under ``reports``, by relative path."""
-        out = {}
-        for p in sorted(self.reports.rglob("*")):
-            if p.is_file():
-                out[str(p.relative_to(self.reports))] = hashlib.sha256(p.read_bytes()).hexdigest()
-        return out
-
 
 @dataclass(frozen=True)
 class Case:
@@ -155,6 +60,129 @@ def case(item: str, exit_code: int, first_line: str, keeps: str | None = None):
 
 
 # ====================================================================== the record (items 1-4)
+
+
+def _reproduce(ws, *extra) -> list[str]:
+    return ["reproduce", str(ws.earlier_run), "--out", str(ws.reports / "reproductions"), *extra]
+
+
+def _edit_scenario(ws) -> None:
+    ws.edit_table("scenarios/baseline.csv", lambda f: f.assign(unemployment_rate=f["unemployment_rate"] + 0.1))
+
+
+@case("1", 1, r"^RunError: cannot reproduce .*: 1 problem with the recorded inputs: scenarios\[0\]\.path: .*baseline\.csv: changed since the run")
+def scenario_changed_after_the_run(ws):
+    _edit_scenario(ws)
+    return _reproduce(ws)
+
+
+@case("1", 0, r"", keeps=r"2024-12_[0-9a-f]{10}")
+def scenario_changed_is_a_new_run_not_a_refusal(ws):
+    # The scenario file is part of the run's identity: a changed one makes a run of its own.
+    _edit_scenario(ws)
+    return ["run", str(ws.config)]
+
+
+@case("1", 1, r"^RunError: cannot reproduce .*: 1 problem with the recorded inputs: inputs\.loans\.path: .*loans\.parquet: missing")
+def input_deleted_after_the_run(ws):
+    (ws.book / "loans.parquet").unlink()
+    return _reproduce(ws)
+
+
+@case("2", 3, r"^ReproduceMismatch: .*: 1 problem with the run folder against its manifest: loan_ecl\.parquet: changed since the run")
+def output_edited_after_the_run(ws):
+    path = ws.earlier_run / "loan_ecl.parquet"
+    frame = pd.read_parquet(path)
+    frame.loc[0, "ecl_reported"] *= 2
+    frame.to_parquet(path, index=False)
+    return _reproduce(ws)
+
+
+@case("2", 3, r"^ReproduceMismatch: .*: 1 problem with the run folder against its manifest: report\.html: missing")
+def report_deleted_after_the_run(ws):
+    (ws.earlier_run / "report.html").unlink()
+    return _reproduce(ws)
+
+
+@case("2", 3, r"^ReproduceMismatch: .*: 1 problem with the run folder against its manifest: notes\.txt: not an output of the run")
+def extra_file_in_the_run_folder(ws):
+    (ws.earlier_run / "notes.txt").write_text("added after the run\n")
+    return _reproduce(ws)
+
+
+@case("3", 1, r"^RunError: cannot reproduce .*: 1 problem with the recorded inputs: inputs\.macro\.path: .*macro_history\.csv: missing or anywhere under")
+def inputs_folder_lacks_a_recorded_file(ws):
+    moved = ws.root / "moved"
+    shutil.copytree(ws.book, moved)
+    (moved / "macro_history.csv").unlink()
+    shutil.rmtree(ws.book)
+    return _reproduce(ws, "--inputs", str(moved))
+
+
+@case("3", 1, r"^RunError: --inputs .*nowhere: no such folder")
+def inputs_folder_does_not_exist(ws):
+    return _reproduce(ws, "--inputs", str(ws.root / "nowhere"))
+
+
+def _edit_manifest(ws, change) -> None:
+    path = ws.earlier_run / "manifest.json"
+    data = json.loads(path.read_text())
+    changed = change(data)
+    path.write_text(json.dumps(data if changed is None else changed))
+
+
+
+
+def _manifest_without(key):
+    def prepare(ws):
+        _edit_manifest(ws, lambda d: d.__delitem__(key))
+        return _reproduce(ws)
+
+    prepare.__name__ = f"manifest_without_{key}"
+    return prepare
+
+
+for _key in ("inputs", "outputs", "config_resolved", "versions"):
+    case("4", 1, rf"^RunError: .*manifest\.json: 1 problem with the manifest: {_key}: missing")(_manifest_without(_key))
+
+
+@case("4", 1, r"^RunError: .*manifest\.json: a manifest must be a JSON object, got a JSON list")
+def manifest_holding_a_json_list(ws):
+    _edit_manifest(ws, lambda d: [d])
+    return _reproduce(ws)
+
+
+@case("4", 1, r"^RunError: .*manifest\.json: 1 problem with the manifest: inputs: expected a list, got")
+def manifest_inputs_as_an_object(ws):
+    _edit_manifest(ws, lambda d: d.update(inputs={i["input"]: i for i in d["inputs"]}))
+    return _reproduce(ws)
+
+
+@case("4", 1, r"^RunError: .*manifest\.json: 1 problem with the manifest: config_resolved: its SHA-256 no longer matches")
+def manifest_config_edited(ws):
+    _edit_manifest(ws, lambda d: d["config_resolved"]["loss"]["lgd"].update(floor=0.0))
+    return _reproduce(ws)
+
+
+@case("4", 1, r"^RunError: .*manifest\.json: manifest schema version 7 cannot be read by creditsurv")
+def manifest_from_a_later_version(ws):
+    _edit_manifest(ws, lambda d: d.update(schema_version=7))
+    return _reproduce(ws)
+
+
+@case("4", 1, r"^RunError: .*manifest\.json: schema version 1 records absolute input paths")
+def manifest_of_schema_version_1(ws):
+    def to_version_1(d):
+        del d["schema_version"], d["config_dir"]
+
+    _edit_manifest(ws, to_version_1)
+    return _reproduce(ws)
+
+
+@case("4", 1, r"^RunError: .*: not a complete run folder \(no manifest\.json\)")
+def run_folder_without_manifest(ws):
+    (ws.earlier_run / "manifest.json").unlink()
+    return _reproduce(ws)
 
 
 # ====================================================================== no silent wrong numbers (items 5-8)
@@ -188,8 +216,8 @@ def workspace(corpus_book, tmp_path, monkeypatch):
 
 @pytest.mark.parametrize("bad", CASES, ids=[c.name for c in CASES])
 def test_bad_input_or_fault(bad: Case, workspace, capsys):
-    before = workspace.snapshot()
     argv = bad.prepare(workspace)
+    before = workspace.snapshot()  # after the breakage: what the command itself must leave untouched
     capsys.readouterr()
     code = main(argv)
     err = capsys.readouterr().err

@@ -210,9 +210,15 @@ def test_to_dict_and_sha256_are_stable(tmp_path):
     assert plain["model"]["covariates"][0]["lag"] == 2
     assert config_sha256(first) == config_sha256(second)
     assert len(config_sha256(first)) == 64
-    # round trip: the plain form builds the same config and hash
-    again = config_from_dict(plain, base_dir=tmp_path / "elsewhere")
+    # round trip: the plain form builds the same config wherever it is read from
+    assert config_from_dict(plain, base_dir=tmp_path / "elsewhere") == first
+    # the recorded form: paths relative to the config's folder, so a copy of the folder elsewhere hashes the same
+    relative = config_to_dict(first, paths="relative")
+    assert relative["inputs"]["panel"]["path"] == "data/panel.parquet"
+    again = config_from_dict(relative, base_dir=tmp_path / "elsewhere")
+    assert config_to_dict(again)["inputs"]["panel"]["path"] == str(tmp_path / "elsewhere" / "data" / "panel.parquet")
     assert config_sha256(again) == config_sha256(first)
+    assert config_to_dict(first, paths="omit")["inputs"]["panel"]["path"] is None
     # and any change of value changes the hash
     changed = config_from_dict({**plain, "seed": plain["seed"] + 1}, base_dir=tmp_path)
     assert config_sha256(changed) != config_sha256(first)

@@ -35,6 +35,8 @@ from ._config import (
     Window,
     Windows,
     bin_labels,
+    canonical_sha256,
+    config_files,
     config_from_dict,
     config_sha256,
     config_to_dict,
@@ -50,5 +52,5 @@ __all__ = [
     "Events", "FitSettings", "Inputs", "LoanColumns", "LoanSource", "Loss", "Lgd", "MacroColumns",
     "MacroSource", "ModelSpec", "Outputs", "PanelColumns", "PanelSource", "Scenario", "ScenarioExtension",
     "Segments", "SparkSettings", "Staging", "ValidationSettings", "Window", "Windows",
-    "bin_labels", "config_from_dict", "config_sha256", "config_to_dict", "load_config", "read_yaml", "schema_reference",
+    "bin_labels", "canonical_sha256", "config_files", "config_from_dict", "config_sha256", "config_to_dict", "load_config", "read_yaml", "schema_reference",
 ]  # fmt: skip

@@ -16,6 +16,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Literal
@@ -480,6 +481,16 @@ class Config:
         default=False, metadata=_doc("the inputs are synthetic (the report then says so among its cautions)")
     )
     source: FilePath | None = field(default=None, init=False, compare=False, repr=False)
+    folder: Path = field(default=Path("."), init=False, compare=False, repr=False)
+
+    def relative(self, path) -> str:
+        """``path`` relative to the config's folder, with ``/`` separators: how outputs name files.
+
+        A URL (``scheme://...``, for Spark) is returned as it is.
+        """
+        if "://" in str(path):
+            return str(path)
+        return Path(os.path.relpath(path, self.folder)).as_posix()
 
     def _validate(self) -> list[str]:
         problems = []
@@ -559,10 +570,12 @@ def config_from_dict(data: dict, base_dir: str | Path = ".", *, source: str | Pa
     Relative paths resolve against ``base_dir``. Raises ``ConfigError`` listing
     every problem found.
     """
-    cfg, problems = build(Config, data, Path(base_dir).resolve())
+    folder = Path(base_dir).resolve()
+    cfg, problems = build(Config, data, folder)
     if problems:
         label = str(source) if source else "config"
         raise ConfigError(f"{label}: {problem_list(problems, 'the config')}", problems)
+    object.__setattr__(cfg, "folder", folder)
     if source is not None:
         object.__setattr__(cfg, "source", FilePath(Path(source).resolve()))
     return cfg
@@ -575,29 +588,61 @@ def load_config(path: str | Path) -> Config:
     return config_from_dict(data, path.resolve().parent, source=path)
 
 
-def _plain(value):
+def _plain(value, path_text):
     if dataclasses.is_dataclass(value):
-        return {f.name: _plain(getattr(value, f.name)) for f in dataclasses.fields(value) if f.init}
+        return {f.name: _plain(getattr(value, f.name), path_text) for f in dataclasses.fields(value) if f.init}
     if isinstance(value, Month):
         return format_month(value)
     if isinstance(value, Path):
-        return str(value)
+        return path_text(value)
     if isinstance(value, tuple):
-        return [_plain(v) for v in value]
+        return [_plain(v, path_text) for v in value]
     if isinstance(value, dict):
-        return {k: _plain(v) for k, v in value.items()}
+        return {k: _plain(v, path_text) for k, v in value.items()}
     return value
 
 
-def config_to_dict(cfg: Config) -> dict:
-    """The resolved config as plain data (absolute paths, months as YYYY-MM)."""
-    return _plain(cfg)
+def config_to_dict(cfg: Config, *, paths: Literal["absolute", "relative", "omit"] = "absolute") -> dict:
+    """The resolved config as plain data: defaults filled, months as YYYY-MM.
+
+    ``paths``: absolute; relative to the config's folder (``/`` separators), the form a run records;
+    or omitted (every path ``None``), the form a run's identity hashes beside its files' contents.
+    """
+    path_text = {"absolute": str, "relative": cfg.relative, "omit": lambda _p: None}[paths]
+    return _plain(cfg, path_text)
 
 
 def config_sha256(cfg: Config) -> str:
-    """SHA-256 of the resolved config's canonical JSON."""
-    text = json.dumps(config_to_dict(cfg), sort_keys=True, separators=(",", ":"))
+    """SHA-256 of the resolved config's canonical JSON, paths relative to the config's folder."""
+    return canonical_sha256(config_to_dict(cfg, paths="relative"))
+
+
+def canonical_sha256(data) -> str:
+    """SHA-256 of ``data``'s canonical JSON (keys sorted, no spaces): the hash a run records of plain data."""
+    text = json.dumps(data, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()
+
+
+def config_files(cfg: Config) -> list[tuple[str, Path]]:
+    """Every file or folder the config names for reading, as ``(key path, path)`` in schema order.
+
+    ``outputs.dir`` (where runs are written) is not read and is left out.
+    """
+    found = []
+
+    def walk(value, key):
+        if dataclasses.is_dataclass(value):
+            for f in dataclasses.fields(value):
+                if f.init:
+                    walk(getattr(value, f.name), f"{key}.{f.name}" if key else f.name)
+        elif isinstance(value, tuple):
+            for i, item in enumerate(value):
+                walk(item, f"{key}[{i}]")
+        elif isinstance(value, Path) and key != "outputs.dir":
+            found.append((key, value))
+
+    walk(cfg, "")
+    return found
 
 
 def schema_reference() -> str:

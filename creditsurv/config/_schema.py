@@ -22,6 +22,7 @@ All problems are collected in one pass and raised together as one
 from __future__ import annotations
 
 import dataclasses
+import os
 import types
 import typing
 from pathlib import Path
@@ -152,8 +153,10 @@ class _Builder:
                 pass
         elif tp is FilePath:
             if isinstance(value, str) and value.strip():
+                # Lexical resolution (no symlinks followed): a path names the file the config names, so a
+                # reproduction can lay the same relative paths over linked files elsewhere.
                 p = Path(value).expanduser()
-                return FilePath(p if p.is_absolute() else (self.base_dir / p).resolve())
+                return FilePath(os.path.normpath(p if p.is_absolute() else self.base_dir / p))
         else:  # pragma: no cover - a schema bug, not a user error
             raise TypeError(f"unsupported schema type {tp!r} at {path}")
         self.problem(path, f"expected {_type_name(tp)}, got {value!r}")
@@ -220,6 +223,8 @@ def describe(cls, prefix: str = "") -> list[tuple[str, str, str, str]]:
     rows = []
     hints = typing.get_type_hints(cls)
     for f in dataclasses.fields(cls):
+        if not f.init:
+            continue
         path = _join(prefix, f.name)
         tp = hints[f.name]
         if f.default is not dataclasses.MISSING:

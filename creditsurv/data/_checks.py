@@ -251,7 +251,7 @@ def plan_checks(cfg: Config, srcs: dict) -> list[PlannedCheck]:
             continue
         severity = cfg.checks.severity.get(check.name, check.severity)
         tables = (check.table, *check.needs)
-        source = "; ".join(str(srcs[t].path) for t in tables if t in srcs)
+        source = "; ".join(cfg.relative(srcs[t].path) for t in tables if t in srcs)
         columns = ", ".join(
             srcs[check.table].label(c) if c in srcs[check.table].mapping else c for c in check.columns
         )

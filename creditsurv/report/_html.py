@@ -972,13 +972,13 @@ def _run_record(tables, meta) -> str:
     if inputs:
         df = pd.DataFrame(list(inputs))
         cols = [
-            ("input", "Input", fmt_text),
-            ("path", "Path", fmt_text),
-            ("rows", "Rows", fmt_int),
+            ("input", "Config key", fmt_text),
+            ("path", "Path (from the config's folder)", fmt_text),
             ("bytes", "Bytes", fmt_int),
             ("sha256", "SHA-256", fmt_text),
         ]
-        out.append(_table(df, cols, caption="Inputs", max_rows=max(MAX_ROWS, len(df))))
+        caption = "Every file the run read"
+        out.append(_table(df, cols, caption=caption, max_rows=max(MAX_ROWS, len(df))))
     else:
         out.append(_absent('meta["inputs"]'))
     config_hash = meta.get("config_sha256", meta.get("config_hash"))
@@ -1094,7 +1094,7 @@ def render_report(tables: Mapping[str, pd.DataFrame], meta: Mapping) -> str:
         (``kind``, ``loglik``, ``aic``, ``bic``, ``n_rows``, ``events``,
         ``iterations``, ``converged``), ``calibration`` (``hl_statistic``,
         ``hl_df``, ``hl_p_value``), ``scenario_weights`` (scenario -> weight),
-        ``inputs`` (list of dicts with ``input``, ``path``, ``rows``,
+        ``inputs`` (list of dicts with ``input``, ``path``,
         ``bytes``, ``sha256``), ``versions`` (package -> version),
         ``config_sha256`` (or ``config_hash``), ``seed``. All optional.
 

@@ -5,13 +5,14 @@ from ._folder import (
     OutputComparison,
     RunFolder,
     compare_outputs,
+    RUN_FILES_READ,
     describe_inputs,
+    folder_differences,
     read_manifest,
-    run_name,
     sha256_file,
     write_table,
 )
-from ._manifest import RunManifest, package_versions, start_manifest
+from ._manifest import READABLE_VERSIONS, SCHEMA_VERSION, RunManifest, check_manifest, package_versions, run_identity, start_manifest
 from ._movement import (
     WALK_STEPS,
     MovementResult,
@@ -20,11 +21,12 @@ from ._movement import (
     movement,
     movement_against_run,
 )
-from ._reproduce import check_inputs_unchanged, judge_reproduction, reproduction_name
+from ._reproduce import check_folder_on_disk, judge_reproduction, locate_inputs, reproduction_name, stage_inputs
 
 __all__ = [
     "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "RunManifest", "start_manifest", "WALK_STEPS", "check_walk_reconciles",
-    "check_inputs_unchanged", "compare_outputs", "compare_run_folders", "describe_inputs", "judge_reproduction",
+    "check_folder_on_disk", "locate_inputs", "stage_inputs", "compare_outputs", "compare_run_folders", "describe_inputs", "judge_reproduction",
     "movement", "movement_against_run", "reproduction_name", "package_versions",
-    "read_manifest", "run_name", "sha256_file", "write_table",
+    "read_manifest", "run_identity", "sha256_file", "write_table", "READABLE_VERSIONS", "SCHEMA_VERSION", "RUN_FILES_READ",
+    "check_manifest", "folder_differences",
 ]  # fmt: skip

@@ -22,8 +22,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..errors import RunError
-from ..months import format_month
-from ._manifest import RunManifest
+from ._manifest import RunManifest, check_manifest
 
 MANIFEST = "manifest.json"
 
@@ -118,27 +117,41 @@ class RunFolder:
         return self.final
 
 
-def describe_inputs(sources: dict[str, Path], rows: dict[str, int]) -> list[dict]:
-    """Path, size, SHA-256 and row count of every input file."""
+def describe_inputs(files, relative) -> list[dict]:
+    """Every file a run reads, with its config key, path, size and SHA-256.
+
+    Parameters
+    ----------
+    files : list of (str, path)
+        ``(config key, path)`` of every file or folder the config names for reading
+        (:func:`creditsurv.config.config_files`). A glob names each file it matches; a
+        prior run folder (``outputs.prior_run``) names the two files the movement reads.
+    relative : callable(path) -> str
+        How the record writes a path (relative to the config's folder).
+    """
     out = []
-    for name in sorted(sources):
-        path = Path(sources[name])
-        files = sorted(path.parent.glob(path.name)) if any(c in path.name for c in "*?[") else [path]
-        for f in files:
-            out.append(
-                {"input": name, "path": str(f), "bytes": f.stat().st_size, "sha256": sha256_file(f), "rows": rows.get(name)}
-            )
+    for key, path in files:
+        path = Path(path)
+        if any(c in path.name for c in "*?["):
+            found = sorted(path.parent.glob(path.name))
+        elif path.is_dir():
+            found = [path / name for name in RUN_FILES_READ]
+        else:
+            found = [path]
+        for f in found:
+            try:
+                out.append({"input": key, "path": relative(f), "bytes": f.stat().st_size, "sha256": sha256_file(f)})
+            except OSError as exc:
+                raise RunError(f"{key}: cannot read {f} to record it ({exc.strerror or exc})") from None
     return out
 
 
-def run_name(as_of: int, config_sha: str, input_hashes: list[str]) -> str:
-    """``YYYY-MM_<10 hex>``: the reporting month and a short hash of config and inputs."""
-    h = hashlib.sha256((config_sha + "".join(input_hashes)).encode()).hexdigest()[:10]
-    return f"{format_month(as_of)}_{h}"
+#: The files of a prior run that a run reads (the movement): its record and its loan table.
+RUN_FILES_READ = (MANIFEST, "loan_ecl.parquet")
 
 
 def read_manifest(run_dir) -> dict:
-    """The manifest of a complete run folder (``RunError`` when there is none)."""
+    """The manifest of a complete run folder, checked against its schema (``RunError`` naming the problem)."""
     run_dir = Path(run_dir)
     path = run_dir / MANIFEST
     if not run_dir.is_dir():
@@ -146,9 +159,32 @@ def read_manifest(run_dir) -> dict:
     if not path.exists():
         raise RunError(f"{run_dir}: not a complete run folder (no {MANIFEST}); it may be an interrupted run")
     try:
-        return json.loads(path.read_text(encoding="utf-8"))
+        data = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError) as exc:
         raise RunError(f"{path}: cannot read the manifest ({exc})") from None
+    return check_manifest(data, path)
+
+
+def folder_differences(run_dir, manifest: dict) -> list[str]:
+    """How a run folder on disk differs from its manifest: every output re-hashed, every file accounted for.
+
+    Returns one line per difference (an output changed or missing, a file the manifest does not list),
+    empty when the folder is exactly what the manifest records.
+    """
+    run_dir = Path(run_dir)
+    listed = {o["file"]: o for o in manifest["outputs"]}
+    problems = []
+    for name, item in sorted(listed.items()):
+        p = run_dir / name
+        if not p.is_file():
+            problems.append(f"{name}: missing")
+        elif p.stat().st_size != item["bytes"] or sha256_file(p) != item["sha256"]:
+            problems.append(f"{name}: changed since the run (SHA-256 differs from the record {item['sha256'][:12]}...)")
+    for p in sorted(run_dir.rglob("*")):
+        name = p.relative_to(run_dir).as_posix()
+        if (p.is_file() or p.is_symlink()) and name != MANIFEST and name not in listed:
+            problems.append(f"{name}: not an output of the run (an extra file)")
+    return problems
 
 
 @dataclass
