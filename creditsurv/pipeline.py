@@ -13,8 +13,8 @@ from pathlib import Path
 
 from .config import Config, config_from_dict, config_to_dict, load_config, read_yaml
 from .errors import DataError, RunError
+from .model import HazardResults, hazard_source, hpi_series_name, parse_macro_key
 from .version import __version__
-from .model import HazardResults, hazard_source, parse_macro_key
 
 
 @dataclass(frozen=True)
@@ -78,7 +78,8 @@ def init_project(folder) -> list[Path]:
 def check(config, out: Path | None = None) -> Outcome:
     """Run the data checks of a config; optionally write the check table as CSV to ``out``.
 
-    ``Outcome.failed`` is True when a check of severity ``error`` fired.
+    The preflight of the fit comes first (:func:`raise_preflight`). ``Outcome.failed`` is True
+    when a check of severity ``error`` fired.
     """
     from .data import format_checks
     from .engines import open_engine
@@ -87,6 +88,7 @@ def check(config, out: Path | None = None) -> Outcome:
     if out is not None:
         _refuse_existing(Path(out), "the check table")
     with open_engine(cfg) as engine:
+        raise_preflight(cfg, engine)
         checks = engine.run_checks()
     if out is not None:
         checks.to_csv(out, index=False)
@@ -105,7 +107,6 @@ def open_checked(cfg):
     (Engine, pandas.DataFrame)
         The open engine (close it, or use ``with``) and the check table.
     """
-    from .data import raise_preflight
     from .engines import open_engine
 
     engine = open_engine(cfg)
@@ -116,6 +117,16 @@ def open_checked(cfg):
         engine.close()
         raise
     return engine, checks
+
+
+def raise_preflight(cfg, engine, *, run: bool = False) -> None:
+    """The config against the opened inputs, before the data checks and the fit: one ``DataError`` listing every problem.
+
+    ``run`` adds what only a run reads (see :func:`creditsurv.data.preflight_problems`).
+    """
+    from . import data
+
+    data.raise_preflight(cfg, engine, hpi_series_name=hpi_series_name, run=run)
 
 
 def check_and_label(engine):
@@ -131,9 +142,10 @@ def check_and_label(engine):
 def preflight(ctx, engine) -> dict:
     """Everything a run needs from the config and the inputs together, checked before the data checks and the fit.
 
-    The columns the config names and the reporting month against the panel
-    (one ``DataError`` listing every problem), then every scenario file, read
-    and checked once (one ``ProjectionError`` listing every problem).
+    The columns and macro series the config names, the status codes, the reporting month against
+    the panel and the files a run reads later (one ``DataError`` listing every problem), then every
+    scenario file, read and checked once against the history and the reporting month (one
+    ``ProjectionError`` listing every problem).
 
     Returns
     -------
@@ -142,12 +154,11 @@ def preflight(ctx, engine) -> dict:
     """
     import pandas as pd
 
-    from .data import raise_preflight
     from .forecast import load_scenario_paths
 
     raise_preflight(ctx.cfg, engine, run=True)
     history = engine.macro_history() if engine.has_table("macro") else pd.DataFrame()
-    return load_scenario_paths(ctx.cfg.scenarios, history)
+    return load_scenario_paths(ctx.cfg.scenarios, history, as_of_idx=ctx.as_of)
 
 
 def _config_text(cfg) -> str | None:

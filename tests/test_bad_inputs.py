@@ -188,6 +188,75 @@ def run_folder_without_manifest(ws):
 # ====================================================================== no silent wrong numbers (items 5-8)
 
 
+# item 8
+# Problems are found before the fit: each is the preflight's DataError (or the scenario check's
+# ProjectionError) naming the config key, the file and the closest name, raised before any data check or fit.
+
+
+@case("8", 1, r"^DataError: 1 problem with the config against the input data: segments\.column: column 'regoin' is not in the loan table \S*loans\.parquet; did you mean 'region'\?")
+def misspelt_segment_column(ws):
+    return ["run", str(ws.edit_config(lambda d: d["segments"].update(column="regoin")))]
+
+
+@case("8", 1, r"^DataError: .*segments\.band_column: column 'credit_scor' is not in the loan table \S*loans\.parquet.*did you mean 'credit_score'\?")
+def misspelt_band_column(ws):
+    return ["run", str(ws.edit_config(lambda d: d["segments"].update(band_column="credit_scor")))]
+
+
+@case("8", 1, r"^DataError: .*model\.covariates\[2\]\.column: column 'dtii' is in neither the loan table \S*loans\.parquet nor the panel \S*panel\.parquet; did you mean 'dti'\?")
+def misspelt_covariate_column_on_fit(ws):
+    return ["fit", str(ws.edit_config(lambda d: d["model"]["covariates"][2].update(column="dtii")))]
+
+
+@case("8", 1, r"^DataError: .*model\.covariates\[0\]\.column: column 'credit_scor' .*did you mean 'credit_score'\?")
+def misspelt_covariate_column_on_check(ws):
+    return ["check", str(ws.edit_config(lambda d: d["model"]["covariates"][0].update(column="credit_scor")))]
+
+
+@case("8", 1, r"^DataError: .*collateral\.hpi_series: 'house_\{region\}' names series that are not in the macro history \S*macro_history\.csv.*did you mean 'hpi_")
+def house_price_series_not_in_the_history(ws):
+    return ["run", str(ws.edit_config(lambda d: d["collateral"].update(hpi_series="house_{region}")))]
+
+
+@case("8", 1, r"^DataError: .*collateral\.market_rate_series: series 'mortage_rate' is not in the macro history \S*macro_history\.csv; did you mean 'mortgage_rate'\?")
+def misspelt_market_rate_series(ws):
+    return ["run", str(ws.edit_config(lambda d: d["collateral"].update(market_rate_series="mortage_rate")))]
+
+
+@case("8", 1, r"^DataError: .*as_of: 2025-06 is after the panel's last month 2024-12 \(\S*panel\.parquet\)")
+def reporting_month_beyond_the_panel_with_the_macro_check_off(ws):
+    def change(d):
+        d["as_of"] = "2025-06"
+        d["checks"] = {"severity": {"macro_months_missing": "off", "macro_values_missing": "off"}}
+
+    return ["run", str(ws.edit_config(change))]
+
+
+@case("8", 1, r"^DataError: .*default_definition\.status_codes: 'charged_of' never occurs in the status column .*panel\.parquet; did you mean 'charged_off'\?")
+def misspelt_default_status_code(ws):
+    return ["run", str(ws.edit_config(lambda d: d["default_definition"].update(status_codes=["charged_of"])))]
+
+
+@case("8", 1, r"^DataError: .*outputs\.prior_run: no run folder \S*no_such_run")
+def prior_run_that_does_not_exist(ws):
+    return ["run", str(ws.edit_config(lambda d: d["outputs"].update(prior_run=str(ws.root / "no_such_run"))))]
+
+
+@case("8", 1, r"^ProjectionError: .*scenario 'downside' \(\S*downside\.csv\): the path starts at 2025-03 but the as-of month is 2024-12")
+def scenario_that_starts_late(ws):
+    path = ws.book / "scenarios" / "downside.csv"
+    header, *rows = path.read_text().splitlines()
+    path.write_text("\n".join([header, *rows[2:]]) + "\n")
+    return ["run", str(ws.config)]
+
+
+@case("8", 1, r"^ProjectionError: .*scenario 'baseline' \(\S*baseline\.csv\): missing series \['unemployment_rate'\]")
+def scenario_without_a_series_the_model_reads(ws):
+    ws.edit_table("scenarios/baseline.csv", lambda f: f.drop(columns="unemployment_rate"))
+    return ["run", str(ws.config)]
+
+
+
 # ====================================================================== faults leave nothing behind (items 9-12)
 
 

@@ -1,6 +1,7 @@
 """The monthly run end to end on a small synthetic book: tables, identities, record."""
 
 import json
+import re
 import shutil
 from pathlib import Path
 
@@ -298,5 +299,75 @@ def test_columns_the_config_names_and_the_reporting_month_are_checked_together(s
         creditsurv.run(_write(data, tmp_path))
     text = str(info.value)
     assert text.startswith("2 problems with the config against the input data:")
-    assert "segments.column: column 'regoin' is in neither the loan table nor the panel; did you mean 'region'?" in text
-    assert "as_of: 2025-06 is after the panel's last month 2024-12" in text
+    assert re.search(r"segments\.column: column 'regoin' is not in the loan table \S*loans\.parquet; did you mean 'region'\?", text)
+    assert re.search(r"as_of: 2025-06 is after the panel's last month 2024-12 \(\S*panel\.parquet\)", text)
+
+
+def test_every_name_the_config_gives_is_checked_before_the_checks_and_fit(small_book, tmp_path, monkeypatch):
+    # Each misspelling below is one edit from a name in the demo book (configs/demo.yaml's columns and
+    # series); the preflight must report all of them at once, each with its config key and the closest name.
+    data = demo_config_data(small_book, tmp_path / "reports")
+    data["segments"]["band_column"] = "credit_scor"
+    data["staging"]["pd_at_origination_column"] = "orig_ltvv"
+    data["model"]["covariates"][2]["column"] = "dtii"
+    data["collateral"]["hpi_series"] = "hpi-{region}"
+    data["collateral"]["market_rate_series"] = "mortage_rate"
+    data["default_definition"]["status_codes"] = ["charged_of"]
+    data["validation"] = {"prior_model": str(tmp_path / "no_model.json")}
+    _no_fit(monkeypatch)
+    with pytest.raises(creditsurv.DataError) as info:
+        creditsurv.run(_write(data, tmp_path))
+    text = str(info.value)
+    assert text.startswith("7 problems with the config against the input data:")
+    for expected in (
+        "segments.band_column: column 'credit_scor' is not in the loan table",
+        "did you mean 'credit_score'?",
+        "staging.pd_at_origination_column: column 'orig_ltvv' is not in the loan table",
+        "did you mean 'orig_ltv'?",
+        "model.covariates[2].column: column 'dtii' is in neither the loan table",
+        "did you mean 'dti'?",
+        "collateral.hpi_series: 'hpi-{region}' names series that are not in the macro history",
+        "did you mean 'hpi_",
+        "collateral.market_rate_series: series 'mortage_rate' is not in the macro history",
+        "did you mean 'mortgage_rate'?",
+        "default_definition.status_codes: 'charged_of' never occurs in the status column",
+        "did you mean 'charged_off'?",
+        f"validation.prior_model: no file {tmp_path / 'no_model.json'}",
+    ):
+        assert expected in text, expected
+    assert "loans.parquet" in text and "macro_history.csv" in text and "panel.parquet" in text
+
+
+def test_a_segment_column_of_the_panel_is_refused_before_the_fit(small_book, tmp_path, monkeypatch):
+    # The book at the reporting month carries the loan table's columns only (data.BOOK_SQL); a panel
+    # column as the segment used to fail inside the projection, after the fit.
+    data = demo_config_data(small_book, tmp_path / "reports")
+    data["segments"]["column"] = "days_past_due"
+    _no_fit(monkeypatch)
+    with pytest.raises(creditsurv.DataError, match=r"segments\.column: column 'days_past_due' is not in the loan table .*loans\.parquet"):
+        creditsurv.run(_write(data, tmp_path))
+
+
+def test_a_scenario_that_does_not_carry_on_from_the_reporting_month_stops_the_run_before_the_fit(small_book, tmp_path, monkeypatch):
+    data = demo_config_data(small_book, tmp_path / "reports")
+    (downside,) = [s for s in data["scenarios"] if s["name"] == "downside"]
+    late = tmp_path / "downside_late.csv"
+    header, *rows = Path(downside["path"]).read_text().splitlines()
+    late.write_text("\n".join([header, *rows[2:]]) + "\n")  # starts two months after the month after as_of
+    downside["path"] = str(late)
+    _no_fit(monkeypatch)
+    with pytest.raises(creditsurv.ProjectionError, match=r"scenario 'downside' \(.*downside_late\.csv\): the path starts at 2025-03 but the as-of month is 2024-12; months 2025-01\.\.2025-02"):
+        creditsurv.run(_write(data, tmp_path))
+
+
+def test_fit_and_check_run_the_preflight_of_the_fit(small_book, tmp_path, monkeypatch):
+    data = demo_config_data(small_book, tmp_path / "reports")
+    data["model"]["covariates"][0]["column"] = "credit_scor"
+    data["segments"]["column"] = "regoin"  # a run's column: neither fit nor check reads it
+    path = _write(data, tmp_path)
+    _no_fit(monkeypatch)
+    for command in (creditsurv.fit, pipeline.check):
+        with pytest.raises(creditsurv.DataError) as info:
+            command(path)
+        assert str(info.value).startswith("1 problem with the config against the input data: model.covariates[0].column")
+        assert "did you mean 'credit_score'?" in str(info.value)

@@ -64,6 +64,7 @@ def load_scenario_paths(
     *,
     required_series: Sequence[str] = (),
     month_column: str = "month",
+    as_of_idx: int | None = None,
 ) -> dict[str, pd.DataFrame]:
     """Read and check each scenario's monthly macro path.
 
@@ -78,6 +79,10 @@ def load_scenario_paths(
     required_series : sequence of str
         Further series the model needs (e.g. from ``macro:<series>:<lag>``).
     month_column : str, default "month"
+    as_of_idx : int, optional
+        The reporting month: when given, each path must also carry the history
+        on after it (reach past it, with the months before the path's start in
+        the history), as :func:`extend_path` needs.
 
     Returns
     -------
@@ -89,7 +94,8 @@ def load_scenario_paths(
     ProjectionError
         Listing every problem in one message, each naming the scenario and file:
         unreadable file, no month column, bad or duplicate months, missing
-        months inside the path, missing series, non-numeric or missing values.
+        months inside the path, missing series, non-numeric or missing values,
+        a path that does not carry on from the reporting month.
     """
     needed = list(dict.fromkeys([*history.columns, *required_series]))
     out, problems = {}, []
@@ -135,6 +141,9 @@ def load_scenario_paths(
             frame[col] = values.to_numpy(dtype=float)
         if not dupes.size:
             out[sc.name] = pd.DataFrame(frame, index=pd.Index(idx, name="month_idx")).sort_index()
+            reach = None if as_of_idx is None else _reach_problem(out[sc.name], history, int(as_of_idx))
+            if reach:
+                problems.append(f"{where}: {reach}")
     if problems:
         raise ProjectionError(problem_list(problems, "the scenario paths"))
     return out
@@ -198,7 +207,10 @@ def extend_path(
         raise ProjectionError(f"scenario {name!r}: revert_to_mean needs months >= 1, got {months}")
     long_run = dict(long_run or {})
     hist, as_of, start = _checked_history(history, as_of_idx, name)
-    p0, p1 = _path_months(path, as_of, name)
+    problem = _reach_problem(path, hist, as_of)
+    if problem:
+        raise ProjectionError(f"scenario {name!r}: {problem}")
+    p0, p1 = int(path.index.min()), int(path.index.max())
     columns = list(dict.fromkeys([*hist.columns, *path.columns]))
     end = max(int(until_idx), as_of)
     index = np.arange(start, end + 1)
@@ -206,7 +218,7 @@ def extend_path(
     hist_upto = hist.loc[hist.index <= as_of]
     out.loc[hist_upto.index, hist.columns] = hist_upto.to_numpy(dtype=float)
     if p0 > as_of + 1:
-        _fill_bridge(out, hist, path, as_of, p0, name)
+        _fill_bridge(out, hist, path, as_of, p0)
     body = path.loc[(path.index > as_of) & (path.index <= end)]
     out.loc[body.index, path.columns] = body.to_numpy(dtype=float)
     if end > p1:
@@ -228,31 +240,35 @@ def _checked_history(history: pd.DataFrame, as_of_idx: int | None, name: str) ->
     return hist, as_of, start
 
 
-def _path_months(path: pd.DataFrame, as_of: int, name: str) -> tuple[int, int]:
-    """The first and last month of a scenario path, checked to reach past the as-of month."""
+def _reach_problem(path: pd.DataFrame, hist: pd.DataFrame, as_of: int) -> str | None:
+    """Why ``path`` cannot carry the history on after the as-of month (None when it can).
+
+    The path must reach past the as-of month, and the months between the as-of
+    month and its first month must be in the history for every series of the path.
+    """
     if len(path) == 0:
-        raise ProjectionError(f"scenario {name!r}: the path has no months")
+        return "the path has no months"
     p_idx = path.index.to_numpy(dtype=np.int64)
     p0, p1 = int(p_idx.min()), int(p_idx.max())
     if p1 <= as_of:
-        raise ProjectionError(
-            f"scenario {name!r}: the path ends at {format_month(p1)}, not after the as-of month {format_month(as_of)}"
+        return f"the path ends at {format_month(p1)}, not after the as-of month {format_month(as_of)}"
+    bridge = list(range(as_of + 1, p0))
+    if not bridge:
+        return None
+    have = hist.reindex(bridge)
+    missing = [c for c in path.columns if c not in hist.columns or have[c].isna().any()]
+    if missing:
+        return (
+            f"the path starts at {format_month(p0)} but the as-of month is {format_month(as_of)}; "
+            f"months {month_ranges(bridge)} of series {missing} are not in the history"
         )
-    return p0, p1
+    return None
 
 
-def _fill_bridge(out: pd.DataFrame, hist: pd.DataFrame, path: pd.DataFrame, as_of: int, p0: int, name: str) -> None:
+def _fill_bridge(out: pd.DataFrame, hist: pd.DataFrame, path: pd.DataFrame, as_of: int, p0: int) -> None:
     """Fill the months after the as-of month and before the path starts from the history, in place."""
     bridge = list(range(as_of + 1, p0))
-    have = hist.reindex(bridge)
-    missing = [c for c in path.columns if c in hist.columns and have[c].isna().any()]
-    missing += [c for c in path.columns if c not in hist.columns]
-    if missing:
-        raise ProjectionError(
-            f"scenario {name!r}: the path starts at {format_month(p0)} but the as-of month is "
-            f"{format_month(as_of)}; months {month_ranges(bridge)} of series {missing} are not in the history"
-        )
-    out.loc[bridge, path.columns] = have[path.columns].to_numpy(dtype=float)
+    out.loc[bridge, path.columns] = hist.reindex(bridge)[path.columns].to_numpy(dtype=float)
 
 
 def _fill_after_path(
