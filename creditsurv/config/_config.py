@@ -275,6 +275,16 @@ class FitSettings:
     batch_size: int = field(default=250_000, metadata=_doc("loan-months per batch read from DuckDB", min=1))
     max_iter: int = field(default=50, metadata=_doc("Newton iterations at most", min=1))
     tol: float = field(default=1e-8, metadata=_doc("convergence tolerance on the Newton step", gt=0))
+    min_events_per_parameter: float = field(
+        default=5.0,
+        metadata=_doc("fewer events of a cause per parameter stop the fit (common practice; below 10 warns)", min=0.0),
+    )
+    max_scaled_coefficient: float = field(
+        default=10.0, metadata=_doc("a |coefficient| x its column's sd above this stops the run (common practice)", gt=0.0)
+    )
+    max_scaled_std_error: float = field(
+        default=5.0, metadata=_doc("a standard error x its column's sd above this stops the run (common practice)", gt=0.0)
+    )
 
 
 @dataclass(frozen=True)
