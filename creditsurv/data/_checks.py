@@ -417,8 +417,10 @@ def raise_for_errors(checks: pd.DataFrame) -> None:
             lines.extend(f"  - {_check_line(r)}" for _, r in warns.iterrows())
         n = len(errors)
         source = "; ".join(dict.fromkeys(errors["source"]))
+        if n == 1:  # the one failed check on the first line, as every one-problem message
+            lines[0] = lines[0][len("  - "):]
         raise DataCheckError(
-            f"{n} data check{'s' if n > 1 else ''} failed on {source}:\n" + "\n".join(lines)
+            f"{n} data check{'s' if n > 1 else ''} failed on {source}:" + (" " if n == 1 else "\n") + "\n".join(lines)
             + "\nFix the data, or change a check's severity under checks.severity in the config."
         )
     for _, r in warns.iterrows():
