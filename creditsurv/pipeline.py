@@ -268,6 +268,7 @@ def scenario_paths(ctx, engine, model, book, loaded) -> dict:
         until_idx=ctx.horizon_end(remaining.max() if len(book) else 0),
         extension=ctx.cfg.scenario_extension,
         required_series=macro_series_needed(model, ctx.cfg),
+        history_source=f"macro history ({ctx.cfg.inputs.macro.path})" if ctx.cfg.inputs.macro else "macro history",
     )
 
 
@@ -292,6 +293,7 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         result = expected_credit_loss_by_partition(
             engine, book, model, paths, writers=writers, progress=progress, **ctx.ecl_options()
         )
+    result.raise_for_non_finite()
     run.outputs["pd_annual_by_loan.parquet"]["rows"] = annual.rows
     if monthly:
         run.outputs["pd_term_structure.parquet"]["rows"] = curves.rows

@@ -187,6 +187,60 @@ def run_folder_without_manifest(ws):
 
 # ====================================================================== no silent wrong numbers (items 5-8)
 
+# items 5-7
+
+
+@case("5", 2, r"^ConfigError: .*config\.yaml.*scenarios\[0\]\.weight: expected a finite number, got nan")
+def nan_scenario_weight(ws):
+    return ["run", str(ws.edit_config(lambda d: d["scenarios"][0].update(weight=float("nan"))))]
+
+
+@case("5", 2, r"^ConfigError: .*config\.yaml.*loss\.lgd\.constant: expected a finite number, got nan")
+def nan_constant_lgd(ws):
+    return ["run", str(ws.edit_config(lambda d: d.setdefault("loss", {}).setdefault("lgd", {}).update(kind="constant", constant=float("nan"))))]
+
+
+@case("5", 1, r"^DataCheckError: 1 data check failed on .*panel\.parquet: panel_values_not_finite: 1 rows \(e\.g\. loan_id=.*balance=inf\b")
+def infinite_balance(ws):
+    ws.edit_table("panel.parquet", lambda p: p.assign(balance=p["balance"].where(p.index != len(p) // 2, np.inf)))
+    return ["run", str(ws.config)]
+
+
+@case("5", 1, r"^DataCheckError: 1 data check failed on .*macro_history\.csv: macro_values_not_finite: 1 months \(e\.g\. month=2018-01-01.*unemployment_rate=inf\b")
+def infinite_macro_history(ws):
+    ws.edit_table("macro_history.csv", lambda m: m.assign(unemployment_rate=m["unemployment_rate"].where(m["month"] != "2018-01", np.inf)))
+    return ["run", str(ws.config)]
+
+
+@case("5", 1, r"^ProjectionError: 1 problem with the scenario paths: scenario 'baseline' .*baseline\.csv.*series 'unemployment_rate' has infinite values in months 2025-03")
+def infinite_scenario_value(ws):
+    ws.edit_table("scenarios/baseline.csv", lambda m: m.assign(unemployment_rate=m["unemployment_rate"].where(m["month"] != "2025-03", np.inf)))
+    return ["run", str(ws.config)]
+
+
+@case("6", 1, r"^ModelError: too few events to fit the model: default: \d+ events for 10 parameters .*min_events_per_parameter")
+def too_few_default_events(ws):
+    # Six months of development (the loans then span every age): a few default events for 10 terms.
+    return ["run", str(ws.edit_config(lambda d: d["windows"]["development"].update(start="2022-07", end="2022-12")))]
+
+
+@case("6", 1, r"^ModelError: \d+ problems? with the fitted coefficients")
+def coefficients_beyond_the_limits(ws):
+    # A user's limit that no fitted term keeps: the run stops instead of using the model.
+    return ["run", str(ws.edit_config(lambda d: d["model"]["fit"].update(max_scaled_coefficient=1e-6)))]
+
+
+@case("7", 1, r"^DataCheckError: 1 data check failed on .*loans\.parquet: note_rate_implausible: 2000 rows")
+def percent_rates_read_as_decimal(ws):
+    return ["run", str(ws.edit_config(lambda d: d["inputs"]["loans"].update(rate_unit="decimal")))]
+
+
+@case("7", 1, r"^DataCheckError: 1 data check failed on .*macro_history\.csv: macro_values_negative: 1 months \(e\.g\. month=2019-06-01")
+def negative_unemployment(ws):
+    ws.edit_table("macro_history.csv", lambda m: m.assign(unemployment_rate=m["unemployment_rate"].where(m["month"] != "2019-06", -1.0)))
+    return ["run", str(ws.config)]
+
+
 
 # item 8
 # Problems are found before the fit: each is the preflight's DataError (or the scenario check's
@@ -267,6 +321,82 @@ def misspelt_top_level_key(ws):
 
 
 # ====================================================================== the data checks, one case per class
+
+
+def _row_change(column, value, row=None):
+    """A change of one cell of a table: the middle row unless ``row`` says which."""
+
+    def change(frame):
+        i = len(frame) // 2 if row is None else row(frame)
+        frame[column] = frame[column].astype(object) if value is None else frame[column]
+        frame.loc[frame.index[i], column] = value
+        return frame
+
+    return change
+
+
+def _macro_month(column, value, month="2018-01"):
+    def change(m):
+        m[column] = m[column].astype(float)
+        m.loc[m["month"] == month, column] = value
+        return m
+
+    return change
+
+
+def _last_row_of_first_loan(p):
+    first = p["loan_id"].iloc[0]
+    return int(np.flatnonzero((p["loan_id"] == first).to_numpy())[-1])
+
+
+def _second_row_of_first_loan(p):
+    first = p["loan_id"].iloc[0]
+    return int(np.flatnonzero((p["loan_id"] == first).to_numpy())[1])
+
+
+DATA_CHECK_CASES = [
+    # (check, table, change)
+    ("panel_keys_missing", "panel.parquet", _row_change("loan_id", None, _last_row_of_first_loan)),  # no gap left
+    ("duplicate_loan_months", "panel.parquet", lambda p: pd.concat([p, p.iloc[[len(p) // 2]]], ignore_index=True)),
+    ("month_gaps", "panel.parquet", lambda p: p.drop(index=p.index[_second_row_of_first_loan(p)])),
+    ("age_mismatch", "panel.parquet", lambda p: p.assign(age=p["age"].where(p.index != len(p) // 2, p["age"] + 1))),
+    ("rows_after_closure", "panel.parquet", _row_change("balance", 0.0, _second_row_of_first_loan)),
+    ("balance_missing", "panel.parquet", _row_change("balance", np.nan)),
+    # the loan's last row: a balance at or below zero also closes the loan (rows_after_closure)
+    ("balance_negative", "panel.parquet", _row_change("balance", -5.0, _last_row_of_first_loan)),
+    ("days_past_due_invalid", "panel.parquet", _row_change("days_past_due", -1)),
+    ("panel_values_not_finite", "panel.parquet", _row_change("balance", np.inf)),
+    ("panel_loans_not_in_loan_table", "loans.parquet", lambda lo: lo.iloc[1:]),
+    ("loan_table_duplicates", "loans.parquet", lambda lo: pd.concat([lo, lo.iloc[[0]]], ignore_index=True)),
+    ("loan_fields_invalid", "loans.parquet", _row_change("term_months", 0)),
+    ("loan_values_not_finite", "loans.parquet", _row_change("property_value", np.inf)),
+    ("note_rate_implausible", "loans.parquet", _row_change("note_rate", 45.0)),  # 45% a year
+    ("macro_duplicate_months", "macro_history.csv", lambda m: pd.concat([m, m[m["month"] == "2018-01"]], ignore_index=True)),
+    ("macro_months_missing", "macro_history.csv", lambda m: m[m["month"] != "2018-01"]),
+    ("macro_values_missing", "macro_history.csv", _macro_month("unemployment_rate", np.nan)),
+    ("macro_values_not_finite", "macro_history.csv", _macro_month("hpi_north", np.inf)),
+    ("macro_values_negative", "macro_history.csv", _macro_month("hpi_south", -3.0)),
+]
+
+
+def _data_check_case(check, table, change):
+    def prepare(ws):
+        ws.edit_table(table, change)
+        return ["run", str(ws.config)]
+
+    prepare.__name__ = f"data_check_{check}"
+    stem = re.escape(table)
+    return case("data checks", 1, rf"^DataCheckError: 1 data check failed on .*{stem}.*: {check}: \d+ ")(prepare)
+
+
+for _check, _table, _change in DATA_CHECK_CASES:
+    _data_check_case(_check, _table, _change)
+
+
+def test_every_error_check_has_a_case():
+    from creditsurv.data import CHECKS
+
+    assert sorted(c for c, *_ in DATA_CHECK_CASES) == sorted(c.name for c in CHECKS if c.severity == "error")
 
 
 # ====================================================================== the runner

@@ -22,6 +22,7 @@ from creditsurv.engines import on_connection
 from creditsurv.errors import (
     ConvergenceError,
     FewEventsWarning,
+    ModelError,
     SeparationError,
     SingularDesignError,
 )
@@ -379,12 +380,35 @@ def test_few_events_warning(small_con):
     # The book's first 12 months of history: too few defaults for 10 parameters.
     before = con.execute("SELECT min(month_idx) + 12 FROM loan_months").fetchone()[0]
     n_def = con.execute("SELECT count(*) FROM loan_months WHERE outcome = 1 AND month_idx < ?", [before]).fetchone()[0]
+    # The limit lowered explicitly: the fit goes on and warns below 10 per parameter.
     with pytest.warns(FewEventsWarning, match=r"events for 10 parameters") as rec:
-        fit_hazard(on_connection(con), spec, where_sql="month_idx < ?", params=[before])
+        fit_hazard(on_connection(con), spec, where_sql="month_idx < ?", params=[before], limits={"min_events_per_parameter": 0})
     texts = [str(r.message) for r in rec]
     assert any(t.startswith(f"default: {n_def:,} events for 10 parameters") and "fewer than 10" in t for t in texts)
     assert all(r.filename == __file__ for r in rec)  # stacklevel points at the caller
     assert n_def < 100
+
+
+def test_too_few_events_stop_the_fit(small_con):
+    con = small_con
+    spec = _spec(con, *MIXED, baseline=_spline())
+    before = con.execute("SELECT min(month_idx) + 12 FROM loan_months").fetchone()[0]
+    n_def = con.execute("SELECT count(*) FROM loan_months WHERE outcome = 1 AND month_idx < ?", [before]).fetchone()[0]
+    assert n_def < 5 * 10  # below the default limit, 5 per parameter (common practice), for 10 parameters
+    with pytest.raises(ModelError, match=rf"default: {n_def:,} events for 10 parameters .* at least 5 per parameter"):
+        fit_hazard(on_connection(con), spec, where_sql="month_idx < ?", params=[before])
+
+
+def test_absurd_coefficients_stop_the_fit(small_con):
+    # A limit no fitted spline coefficient keeps (|beta| x sd of its column <= 1e-6) shows the rule at work.
+    spec = _spec(small_con, *MIXED, baseline=_spline())
+    with pytest.raises(ModelError, match=r"problems? with the fitted coefficients"):
+        fit_hazard(on_connection(small_con), spec, limits={"max_scaled_coefficient": 1e-6})
+    # The default limits keep a sound fit of the same book.
+    res = fit_hazard(on_connection(small_con), spec)
+    assert res.record().get("limits_loosened") is None
+    loose = fit_hazard(on_connection(small_con), spec, limits={"max_scaled_std_error": 50.0})
+    assert loose.record()["limits_loosened"] == {"max_scaled_std_error": 50.0}
 
 
 def test_fit_model_from_config_section(small_con):

@@ -14,7 +14,7 @@ import pyarrow as pa
 import pytest
 
 from creditsurv.config import Collateral, Scenario, ScenarioWeights, config_from_dict
-from creditsurv.errors import ConfigError, ProjectionError
+from creditsurv.errors import ConfigError, ModelError, ProjectionError
 from creditsurv.forecast import (
     WEIGHTED,
     TableWriter,
@@ -518,8 +518,17 @@ def test_unknown_inputs_and_bad_hazards_are_reported():
         def hazards(self, raw):
             return np.full(len(raw["age"]), 0.7), np.full(len(raw["age"]), 0.7)
 
-    with pytest.raises(ProjectionError, match="summing above 1"):
+    with pytest.raises(ModelError, match=r"summing above 1 for \d+ loans .* in months "):
         project_loans(_loans(), Broken(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS)
+
+    class Infinite:
+        required_inputs = ["age"]
+
+        def hazards(self, raw):
+            return np.full(len(raw["age"]), np.inf), np.zeros(len(raw["age"]))
+
+    with pytest.raises(ModelError, match=r"not finite"):
+        project_loans(_loans(), Infinite(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS)
 
 
 def test_benchmark_source_needs_no_macro():

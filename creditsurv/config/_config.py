@@ -276,6 +276,16 @@ class FitSettings:
     batch_size: int = field(default=250_000, metadata=_doc("loan-months per batch read from DuckDB", min=1))
     max_iter: int = field(default=50, metadata=_doc("Newton iterations at most", min=1))
     tol: float = field(default=1e-8, metadata=_doc("convergence tolerance on the Newton step", gt=0))
+    min_events_per_parameter: float = field(
+        default=5.0,
+        metadata=_doc("fewer events of a cause per parameter stop the fit (common practice; below 10 warns)", min=0.0),
+    )
+    max_scaled_coefficient: float = field(
+        default=10.0, metadata=_doc("a |coefficient| x its column's sd above this stops the run (common practice)", gt=0.0)
+    )
+    max_scaled_std_error: float = field(
+        default=5.0, metadata=_doc("a standard error x its column's sd above this stops the run (common practice)", gt=0.0)
+    )
 
 
 @dataclass(frozen=True)
@@ -433,13 +443,19 @@ class Checks:
     severity: dict[str, Literal["error", "warning", "off"]] = field(
         default_factory=dict, metadata=_doc("override a data check's severity by its name")
     )
+    non_negative_series: tuple[str, ...] = field(
+        default=("unemployment*", "hpi_*"),
+        metadata=_doc("macro series (shell patterns) that cannot be negative, e.g. unemployment rates and house-price indices"),
+    )
 
 
 DATA_CHECK_NAMES = (
     "panel_keys_missing", "duplicate_loan_months", "month_gaps", "age_mismatch", "rows_after_closure",
-    "balance_missing", "balance_negative", "days_past_due_invalid", "panel_loans_not_in_loan_table",
-    "loans_without_panel_rows", "loan_table_duplicates", "loan_fields_invalid", "months_after_as_of",
-    "macro_duplicate_months", "macro_months_missing", "macro_values_missing",
+    "balance_missing", "balance_negative", "days_past_due_invalid", "panel_values_not_finite",
+    "balance_above_original", "panel_loans_not_in_loan_table", "loans_without_panel_rows", "loan_table_duplicates",
+    "loan_fields_invalid", "loan_values_not_finite", "note_rate_implausible", "months_after_as_of",
+    "macro_duplicate_months", "macro_months_missing", "macro_values_missing", "macro_values_not_finite",
+    "macro_values_negative",
 )  # fmt: skip
 """The data checks, by name, in the order they run: what ``checks.severity`` may name.
 

@@ -22,6 +22,7 @@ All problems are collected in one pass and raised together as one
 from __future__ import annotations
 
 import dataclasses
+import math
 import os
 import types
 import typing
@@ -142,6 +143,10 @@ class _Builder:
                 return value
         elif tp is float:
             if isinstance(value, (int, float)) and not isinstance(value, bool):
+                if not math.isfinite(value):
+                    # YAML .nan and .inf would pass every bound check below and spread through the run.
+                    self.problem(path, f"expected a finite number, got {value}")
+                    return None
                 return float(value)
         elif tp is str:
             if isinstance(value, (str, int, float)) and not isinstance(value, bool):

@@ -9,6 +9,7 @@ warnings into ``DataCheckWarning``.
 from __future__ import annotations
 
 import dataclasses
+import fnmatch
 import json
 import warnings
 
@@ -139,6 +140,26 @@ CHECKS: tuple[Check, ...] = (
             WHERE days_past_due IS NULL OR days_past_due < 0)""",
     ),
     Check(
+        "panel_values_not_finite", "error", "panel", "rows", ("balance",),
+        "Panel rows with an infinite number (or NaN in a pass-through column) in a numeric column the run "
+        "uses: the balance and the columns the model or the segments read. A NaN in a mapped column reads "
+        "as missing.",
+        """offending AS (
+            SELECT loan_id, month, {finite_columns} FROM panel WHERE {not_finite})""",
+    ),
+    Check(
+        "balance_above_original", "warning", "panel", "rows", ("balance", "original_balance"),
+        "Panel rows whose balance is more than 1.5 times the loan's original balance (common practice: "
+        "capitalised arrears rarely add half the loan; more suggests a unit or key error).",
+        """offending AS (
+            SELECT p.loan_id, p.month, p.balance, l.original_balance
+            FROM panel AS p
+            JOIN (SELECT loan_id, any_value(original_balance) AS original_balance
+                  FROM loans GROUP BY loan_id) AS l USING (loan_id)
+            WHERE l.original_balance > 0 AND p.balance > 1.5 * l.original_balance)""",
+        needs=("loans",),
+    ),
+    Check(
         "panel_loans_not_in_loan_table", "error", "panel", "loans", ("loan_id",),
         "Loans in the panel that have no row in the loan table.",
         """offending AS (
@@ -177,6 +198,21 @@ CHECKS: tuple[Check, ...] = (
                OR note_rate IS NULL OR note_rate < 0)""",
     ),
     Check(
+        "loan_values_not_finite", "error", "loans", "rows", ("original_balance", "note_rate", "property_value"),
+        "Loan-table rows with an infinite number (or NaN in a pass-through column) in a numeric column the run "
+        "uses: original balance, note rate, property value and the columns the model or the segments read. "
+        "A NaN in a mapped column reads as missing.",
+        """offending AS (
+            SELECT loan_id, {finite_columns} FROM loans WHERE {not_finite})""",
+    ),
+    Check(
+        "note_rate_implausible", "error", "loans", "rows", ("note_rate",),
+        "Loan-table rows whose note rate is above 30% a year after reading it in inputs.loans.rate_unit "
+        "(common practice: no home loan carries such a rate; the rate unit is likely wrong).",
+        """offending AS (
+            SELECT loan_id, note_rate FROM loans WHERE note_rate > 0.30)""",
+    ),
+    Check(
         "months_after_as_of", "warning", "panel", "rows", ("month",),
         "Panel rows after the reporting month; they are left out of the panel.",
         """offending AS (
@@ -207,6 +243,22 @@ CHECKS: tuple[Check, ...] = (
         """offending AS (
             SELECT month, {series_columns} FROM macro
             WHERE month_idx BETWEEN $first_macro AND $as_of AND ({series_null}))""",
+    ),
+    Check(
+        "macro_values_not_finite", "error", "macro", "months", ("month",),
+        "Months up to the reporting month with an infinite value of a macro series (every series of the "
+        "history is carried into the scenario paths). A NaN reads as missing.",
+        """offending AS (
+            SELECT month, {finite_columns} FROM macro
+            WHERE month_idx <= $as_of AND ({not_finite}))""",
+    ),
+    Check(
+        "macro_values_negative", "error", "macro", "months", ("month",),
+        "Months up to the reporting month with a negative value of a series that cannot be negative "
+        "(its name matches checks.non_negative_series, e.g. an unemployment rate or a house-price index).",
+        """offending AS (
+            SELECT month, {finite_columns} FROM macro
+            WHERE month_idx <= $as_of AND ({negative}))""",
     ),
 )
 
@@ -260,10 +312,60 @@ def plan_checks(cfg: Config, srcs: dict) -> list[PlannedCheck]:
             columns = ", ".join(series)
             sql = sql.replace("{series_columns}", ", ".join(quote_ident(s) for s in series))
             sql = sql.replace("{series_null}", " OR ".join(f"{quote_ident(s)} IS NULL" for s in series))
+        if "{finite_columns}" in sql:
+            if check.name == "macro_values_negative":
+                wanted = non_negative_series(cfg, srcs[check.table])
+                test = " OR ".join(f"{quote_ident(c)} < 0" for c in wanted)
+                sql = sql.replace("{negative}", test)
+            else:
+                wanted = finite_columns(cfg, srcs[check.table])
+                sql = sql.replace("{not_finite}", " OR ".join(_not_finite(c) for c in wanted))
+            if not wanted:
+                continue
+            columns = ", ".join(srcs[check.table].label(c) if c in srcs[check.table].mapping else c for c in wanted)
+            sql = sql.replace("{finite_columns}", ", ".join(quote_ident(c) for c in wanted))
         wanted = {k: v for k, v in params.items() if f"${k}" in sql}
         order = "ALL" if check.table != "macro" else "month"
         plans.append(PlannedCheck(check, severity, source, columns, sql, wanted, order))
     return plans
+
+
+# Columns of the internal views that are DOUBLE whatever the source (NaN already read as NULL there).
+_MAPPED_NUMBERS = {"panel": ("balance",), "loans": ("original_balance", "note_rate", "property_value")}
+
+
+def _is_float(source_type: str) -> bool:
+    """Whether a source column type (DuckDB's or Spark's name) can hold NaN or an infinity."""
+    return source_type.lower().startswith(("float", "double", "real"))
+
+
+def _not_finite(column: str) -> str:
+    """SQL true for NaN, +inf or -inf (false for NULL); the same text in DuckDB and Spark."""
+    q = quote_ident(column)
+    return f"(isnan({q}) OR abs({q}) = CAST('Infinity' AS DOUBLE))"
+
+
+def finite_columns(cfg: Config, src) -> list[str]:
+    """Columns of the internal view of ``src`` that the run uses as numbers and that must be finite.
+
+    The mapped number columns of the panel and the loan table, the pass-through columns of floating
+    type that a covariate, the segment bands or the staging read, and every series of the macro history.
+    """
+    if src.name == "macro":
+        month = src.mapping.get("month")
+        return [c for c in src.types if c != month and c.lower() not in ("month", "month_idx")]
+    mapped = [c for c in _MAPPED_NUMBERS.get(src.name, ()) if src.mapping.get(c)]
+    used = [c.column for c in cfg.model.covariates if c.column is not None]
+    used += [cfg.segments.band_column, cfg.staging.pd_at_origination_column]
+    taken = {v for v in src.mapping.values() if v is not None}
+    extra = [c for c in dict.fromkeys(used) if c in src.types and c not in taken and _is_float(src.types[c])]
+    return mapped + extra
+
+
+def non_negative_series(cfg: Config, src) -> list[str]:
+    """Macro series of ``src`` whose names match ``checks.non_negative_series`` (shell patterns)."""
+    series = finite_columns(cfg, src)
+    return [s for s in series if any(fnmatch.fnmatchcase(s.lower(), p.lower()) for p in cfg.checks.non_negative_series)]
 
 
 def check_frame(plans: list[PlannedCheck], results: list[tuple[int, str]]) -> pd.DataFrame:
@@ -315,8 +417,10 @@ def raise_for_errors(checks: pd.DataFrame) -> None:
             lines.extend(f"  - {_check_line(r)}" for _, r in warns.iterrows())
         n = len(errors)
         source = "; ".join(dict.fromkeys(errors["source"]))
+        if n == 1:  # the one failed check on the first line, as every one-problem message
+            lines[0] = lines[0][len("  - "):]
         raise DataCheckError(
-            f"{n} data check{'s' if n > 1 else ''} failed on {source}:\n" + "\n".join(lines)
+            f"{n} data check{'s' if n > 1 else ''} failed on {source}:" + (" " if n == 1 else "\n") + "\n".join(lines)
             + "\nFix the data, or change a check's severity under checks.severity in the config."
         )
     for _, r in warns.iterrows():

@@ -51,7 +51,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..config import WEIGHTED, Collateral, ScenarioWeights
-from ..errors import ConfigError, ProjectionError, problem_list
+from ..errors import ConfigError, ModelError, ProjectionError, problem_list
 from ..model import (
     equivalent_psa,
     equivalent_sda,
@@ -274,12 +274,14 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
             raise ProjectionError(
                 f"hazard source returned shapes {hd_flat.shape}, {hp_flat.shape}; expected ({size},) each"
             )
-        ok = (hd_flat >= 0) & (hp_flat >= 0) & (hd_flat + hp_flat <= 1.0 + 1e-12)
+        ok = (hd_flat >= 0) & (hp_flat >= 0) & (hd_flat + hp_flat <= 1.0 + 1e-12)  # False for NaN
         if not ok.all():
             bad_rows = np.repeat(np.arange(n), counts)[~ok]
-            raise ProjectionError(
-                f"scenario {scen!r}: the hazard source returned hazards outside [0, 1] or summing above 1 "
-                f"(or NaN) for {loan_list_text(book.loan_id[sl][np.unique(bad_rows)])}"
+            bad_months = cal[mask][~ok]
+            raise ModelError(
+                f"scenario {scen!r}: the model gave hazards that are not finite, outside [0, 1] or summing above 1 "
+                f"for {loan_list_text(book.loan_id[sl][np.unique(bad_rows)])} in months {month_ranges(np.unique(bad_months))}; "
+                "the model cannot be trusted for these loans (check its coefficients and the inputs of those months)"
             )
         hd = np.zeros((n, H))
         hp = np.zeros((n, H))

@@ -138,6 +138,12 @@ def load_scenario_paths(
                     f"{where}: series {col!r} has missing or non-numeric values in months "
                     f"{month_ranges(idx[bad_rows])} (e.g. {_show(raw[col].iloc[bad_rows[0]])})"
                 )
+            infinite = np.flatnonzero(np.isinf(values.to_numpy(dtype=float)))
+            if len(infinite):
+                problems.append(
+                    f"{where}: series {col!r} has infinite values in months {month_ranges(idx[infinite])} "
+                    f"(e.g. {_show(raw[col].iloc[infinite[0]])})"
+                )
             frame[col] = values.to_numpy(dtype=float)
         if not dupes.size:
             out[sc.name] = pd.DataFrame(frame, index=pd.Index(idx, name="month_idx")).sort_index()
@@ -308,6 +314,21 @@ def _fill_after_path(
         out.loc[after, col] = values
 
 
+def _raise_for_infinite(history: pd.DataFrame, paths: Mapping[str, pd.DataFrame], as_of_idx: int, history_source: str):
+    """``ProjectionError`` naming the series and months of every infinite value the projection would use."""
+    problems = []
+    used = [(history_source, history.loc[history.index <= as_of_idx])]
+    used += [(f"scenario {name!r}", p.loc[p.index > as_of_idx]) for name, p in paths.items()]
+    for where, frame in used:
+        for col in frame.columns:
+            values = pd.to_numeric(frame[col], errors="coerce").to_numpy(dtype=float)
+            bad = np.flatnonzero(np.isinf(values))
+            if len(bad):
+                problems.append(f"{where}: series {col!r} is infinite in months {month_ranges(frame.index[bad])}")
+    if problems:
+        raise ProjectionError(problem_list(problems, "the macro values"))
+
+
 def prepare_paths(
     cfg_scenarios: Sequence,
     history: pd.DataFrame,
@@ -328,11 +349,13 @@ def prepare_paths(
 
 def extend_paths(
     paths: Mapping[str, pd.DataFrame], history: pd.DataFrame, *, as_of_idx: int, until_idx: int, extension=None,
-    required_series: Sequence[str] = (),
+    required_series: Sequence[str] = (), history_source: str = "macro history",
 ) -> dict[str, pd.DataFrame]:
     """Extend paths already read by :func:`load_scenario_paths` with the history (see :func:`extend_path`).
 
-    ``required_series`` not in every path is a ``ProjectionError`` naming them.
+    ``required_series`` not in every path is a ``ProjectionError`` naming them; so is an infinite value
+    in the months the projection uses: the history up to ``as_of_idx`` (named ``history_source``, e.g.
+    its file) and each path after it.
     """
     missing = {name: [s for s in required_series if s not in p.columns] for name, p in paths.items()}
     missing = {name: m for name, m in missing.items() if m}
@@ -341,6 +364,7 @@ def extend_paths(
             "the hazard source needs series the scenario paths lack: "
             + "; ".join(f"scenario {name!r}: {m}" for name, m in missing.items())
         )
+    _raise_for_infinite(history, paths, as_of_idx, history_source)
     rule = getattr(extension, "rule", "revert_to_mean")
     months = getattr(extension, "months", 24)
     long_run = getattr(extension, "long_run", {})

@@ -38,7 +38,7 @@ import pandas as pd
 import pyarrow as pa
 
 from ..config import Collateral, Loss, ScenarioWeights, Staging
-from ..errors import ProjectionError
+from ..errors import ProjectionError, problem_list
 from ..forecast import (
     WEIGHTED,
     ChunkProjection,
@@ -191,6 +191,33 @@ class EclResult:
     projection: ProjectionResult
     scenarios: tuple[str, ...]
     weights: ScenarioWeights
+
+    def raise_for_non_finite(self) -> None:
+        """Raise when a reported figure is NaN or infinite: such a total is never written as a result.
+
+        The figures are every number of :meth:`loan_table` but the PD at origination (missing when the
+        book does not give one) and the segment summary's numbers.
+
+        Raises
+        ------
+        ProjectionError
+            Naming each column with non-finite values and its loans (or segments).
+        """
+        problems = []
+        table = self.loan_table()
+        for col in table.columns:
+            if col in ("loan_id", "pd_lifetime_origination") or not pd.api.types.is_numeric_dtype(table[col]):
+                continue
+            bad = ~np.isfinite(table[col].to_numpy(dtype=float))
+            if bad.any():
+                problems.append(f"{col}: not finite for {loan_list_text(table['loan_id'][bad])}")
+        for col in self.segments.columns:
+            if pd.api.types.is_numeric_dtype(self.segments[col]) and not col.startswith("pd_lifetime_origination"):
+                bad = ~np.isfinite(self.segments[col].to_numpy(dtype=float))
+                if bad.any():
+                    problems.append(f"segment summary {col}: not finite in {int(bad.sum())} rows")
+        if problems:
+            raise ProjectionError(problem_list(problems, "the projected figures (nothing was written as a result)"))
 
     def loan_table(self) -> pd.DataFrame:
         """The loan table as written (``loan_ecl.parquet``): :attr:`loans`, then per scenario s

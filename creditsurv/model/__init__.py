@@ -9,6 +9,7 @@ probabilities for them (``hazards(raw)``).
 from ._features import FeatureSpec, RawInput, feature_spec, natural_spline_basis
 from ._hazard import (
     CAUSES,
+    TRUST_LIMITS,
     FirstPass,
     HazardResults,
     batch_design,
@@ -19,6 +20,7 @@ from ._hazard import (
     fit_hazard,
     fit_model,
     load_model,
+    loosened_limits,
     raw_design_sql,
     resolve_collapse,
     symmetric,
@@ -41,8 +43,8 @@ from ._speeds import (
 )
 
 __all__ = [
-    "BenchmarkCurves", "CAUSES", "FeatureSpec", "HazardSource", "FirstPass", "batch_design", "batch_sums", "check_fit_arguments",
+    "BenchmarkCurves", "CAUSES", "TRUST_LIMITS", "FeatureSpec", "HazardSource", "FirstPass", "batch_design", "batch_sums", "check_fit_arguments",
     "development_window", "fit_fingerprint", "fit_from_sums", "hazard_source", "hpi_series_name", "macro_key", "parse_macro_key", "scheduled_balance", "scheduled_balance_sql", "raw_design_sql", "resolve_collapse", "symmetric", "HazardResults", "HazardTable", "RawInput",
     "cdr_to_mdr", "cpr_to_smm", "equivalent_psa", "equivalent_sda", "feature_spec", "fit_hazard", "fit_model",
-    "load_model", "mdr_to_cdr", "natural_spline_basis", "psa_cpr", "sda_cdr", "smm_to_cpr", "speeds_to_hazards",
+    "load_model", "loosened_limits", "mdr_to_cdr", "natural_spline_basis", "psa_cpr", "sda_cdr", "smm_to_cpr", "speeds_to_hazards",
 ]  # fmt: skip

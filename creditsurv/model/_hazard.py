@@ -59,12 +59,32 @@ from ..errors import (
 from ..sql import quote_ident
 from ._features import FeatureSpec
 
-__all__ = ["CAUSES", "HazardResults", "fit_hazard", "fit_model", "load_model"]
+__all__ = ["CAUSES", "TRUST_LIMITS", "HazardResults", "fit_hazard", "fit_model", "load_model", "loosened_limits"]
 
 CAUSES = CAUSE_CODES  # cause name -> outcome code of loan_months, defined once in data
 _FORMAT = "creditsurv.hazard_model"
 _FORMAT_VERSION = 1
-_MIN_EVENTS_PER_PARAMETER = 10
+_MIN_EVENTS_PER_PARAMETER = 10  # below: FewEventsWarning (common practice, Peduzzi et al. 1996, from memory)
+
+TRUST_LIMITS = {"min_events_per_parameter": 5.0, "max_scaled_coefficient": 10.0, "max_scaled_std_error": 5.0}
+"""The defaults of the limits a fitted model must keep to be used (``model.fit`` in the config).
+
+Common practice, not a standard: fewer than 5 events per parameter of a cause gives biased, unstable
+logit coefficients (Vittinghoff and McCulloch 2007, from memory); on the log-odds scale a coefficient
+times its column's standard deviation above 10 (odds multiplied by e^10 for one standard deviation) or a
+standard error times it above 5 means the fit ran off, not that the data say so.
+"""
+
+
+def loosened_limits(limits: dict) -> dict:
+    """The limits of ``limits`` set looser than :data:`TRUST_LIMITS`, as ``{name: value}``."""
+    out = {}
+    for name, default in TRUST_LIMITS.items():
+        value = limits.get(name, default)
+        looser = value < default if name.startswith("min_") else value > default
+        if looser:
+            out[name] = value
+    return out
 
 
 # --------------------------------------------------------------------------- results
@@ -116,6 +136,7 @@ class HazardResults:
     iteration_log: list = field(default_factory=list)
     collapsed: bool = False
     n_stored_rows: int = 0
+    trust_limits: dict = field(default_factory=lambda: dict(TRUST_LIMITS))
 
     def summary(self, alpha: float = 0.05) -> pd.DataFrame:
         """Tidy table: cause, term, estimate, std_error, z, p_value, ci_lo, ci_hi."""
@@ -220,6 +241,7 @@ class HazardResults:
             "iterations": self.iterations,
             "converged": self.converged,
             "data_fingerprint": self.data_fingerprint,
+            **({"limits_loosened": loosened} if (loosened := loosened_limits(self.trust_limits)) else {}),
         }
 
     def save(self, path) -> Path:
@@ -437,6 +459,7 @@ def fit_hazard(
     tol: float = 1e-8,
     collapse: bool | str = "auto",
     temp_dir=None,
+    limits: dict | None = None,
 ) -> HazardResults:
     """Fit a discrete-time competing-risk hazard model on the risk set.
 
@@ -467,6 +490,10 @@ def fit_hazard(
         is discrete; "auto" does so when possible).
     temp_dir : path, optional
         Folder for the engine's temporary design data (default: the system temp folder).
+    limits : dict, optional
+        Limits a model must keep to be used, by the names of :data:`TRUST_LIMITS` (its defaults
+        fill the names not given): fewer events per parameter of a cause, or a coefficient or
+        standard error absurd for its column's scale, is a ``ModelError``.
 
     Returns
     -------
@@ -488,7 +515,7 @@ def fit_hazard(
     try:
         return fit_from_sums(
             sums.evaluate, sums.first, spec, kind=kind, causes=causes, codes=codes, ridge=ridge, max_iter=max_iter,
-            tol=tol, collapse=collapse, where_sql=where_sql, fingerprint=sums.fingerprint,
+            tol=tol, collapse=collapse, where_sql=where_sql, fingerprint=sums.fingerprint, limits=limits,
         )
     finally:
         sums.close()
@@ -582,12 +609,16 @@ def fit_fingerprint(n: int, names, digests) -> str:
     return hashlib.sha256(f"creditsurv-design|{n}|{'|'.join(names)}|".encode() + "|".join(digests).encode()).hexdigest()
 
 
-def fit_from_sums(evaluate, first, spec, *, kind, causes, codes, ridge, max_iter, tol, collapse, where_sql, fingerprint):
+def fit_from_sums(
+    evaluate, first, spec, *, kind, causes, codes, ridge, max_iter, tol, collapse, where_sql, fingerprint, limits=None
+):
     """Checks on the first-pass sums, the Newton iterations and the results object.
 
     ``first`` holds ``S``, ``xtx``, ``is01`` and ``n`` summed over all the data;
-    ``evaluate`` is the engine's likelihood pass (see :func:`_newton`).
+    ``evaluate`` is the engine's likelihood pass (see :func:`_newton`); ``limits`` as
+    :func:`fit_hazard` takes them.
     """
+    limits = {**TRUST_LIMITS, **(limits or {})}
     names = spec.columns
     p, K = len(names), len(causes)
     if first.n == 0:
@@ -613,6 +644,14 @@ def fit_from_sums(evaluate, first, spec, *, kind, causes, codes, ridge, max_iter
         problems = _separation_problems(S, first.is01, names, spec.indicator_groups(), causes, codes, kind)
         if problems:
             raise SeparationError("quasi-complete separation: " + problem_list(problems, "the design"))
+    few = [c for c in causes if events[c] < limits["min_events_per_parameter"] * p]
+    if few:
+        text = "; ".join(f"{c}: {events[c]:,} events for {p} parameters ({events[c] / p:.1f} per parameter)" for c in few)
+        raise ModelError(
+            f"too few events to fit the model: {text}; at least {limits['min_events_per_parameter']:g} per parameter "
+            "are needed (model.fit.min_events_per_parameter; common practice). Widen the development window, "
+            "drop terms, or lower the limit explicitly"
+        )
     for c in causes:
         if events[c] < _MIN_EVENTS_PER_PARAMETER * p:
             warnings.warn(
@@ -631,6 +670,7 @@ def fit_from_sums(evaluate, first, spec, *, kind, causes, codes, ridge, max_iter
         raise SingularDesignError("the information matrix at the estimates is singular; fit with ridge > 0 or drop terms") from None
     cov = 0.5 * (cov + cov.T)
     se = np.sqrt(np.clip(np.diag(cov), 0.0, None)).reshape(K, p)
+    _raise_for_absurd(beta, cov, first, spec, causes, limits)
     k_par = K * p
     return HazardResults(
         params=pd.DataFrame(beta.T, index=names, columns=list(causes)),
@@ -651,7 +691,50 @@ def fit_from_sums(evaluate, first, spec, *, kind, causes, codes, ridge, max_iter
         iteration_log=log,
         collapsed=bool(collapse),
         n_stored_rows=first.n,
+        trust_limits=limits,
     )
+
+
+def _raise_for_absurd(beta, cov, first, spec, causes, limits) -> None:
+    """``ModelError`` when a term's coefficients or standard errors are absurd for its columns' scale.
+
+    A term is one design column, or the whole loan-age baseline (its basis columns are strongly
+    correlated, so only their sum means anything). Its scale on the log-odds scale is the standard
+    deviation over the fitted rows of its contribution x'b, sqrt(b' C b), and the mean standard error of
+    that contribution, sqrt(trace(C V)), with C the weighted covariance of its columns (from the first
+    pass's X'WX; the first column is the intercept, so its row holds the column sums) and V the block
+    of the estimates' covariance. For one column these are |b| x sd and SE x sd.
+    """
+    names = list(spec.columns)
+    p = len(names)
+    n = first.xtx[0, 0]
+    mean = first.xtx[0] / n
+    C_all = first.xtx / n - np.outer(mean, mean)
+    base = [j for j, nm in enumerate(names) if nm in set(spec._baseline_names())]
+    groups = ([base] if base else []) + [[j] for j in range(1, p) if j not in base]
+    problems = []
+    for k, c in enumerate(causes):
+        for g in groups:
+            C = C_all[np.ix_(g, g)]
+            b = beta[k, g]
+            idx = [k * p + j for j in g]
+            V = cov[np.ix_(idx, idx)]
+            scaled_b = math.sqrt(max(float(b @ C @ b), 0.0))
+            scaled_se = math.sqrt(max(float(np.trace(C @ V)), 0.0))
+            label = names[g[0]] if len(g) == 1 else "the age baseline (" + ", ".join(names[j] for j in g) + ")"
+            if not (math.isfinite(scaled_b) and math.isfinite(scaled_se)):
+                problems.append(f"{c} {label}: coefficients or standard errors are not finite")
+            elif scaled_b > limits["max_scaled_coefficient"] or scaled_se > limits["max_scaled_std_error"]:
+                detail = f"coefficient {b[0]:.4g} (standard error {math.sqrt(V[0, 0]):.4g})" if len(g) == 1 else "coefficients"
+                problems.append(f"{c} {label}: {detail}: scaled coefficient {scaled_b:.3g}, scaled standard error {scaled_se:.3g}")
+    if problems:
+        raise ModelError(
+            problem_list(problems, "the fitted coefficients")
+            + f"\nThe limits are a scaled coefficient (|coefficient| x the column's sd) <= {limits['max_scaled_coefficient']:g} "
+            f"and a scaled standard error <= {limits['max_scaled_std_error']:g} on the log-odds scale "
+            "(model.fit.max_scaled_coefficient and max_scaled_std_error; common practice): the model cannot be trusted. "
+            "Use more data, fewer terms, ridge > 0, or loosen the limits explicitly"
+        )
 
 
 def _newton(evaluate, p, codes, totals, ridge, max_iter, tol):
@@ -754,4 +837,5 @@ def fit_model(engine, model, collateral=None, *, where_sql: str = "TRUE", params
         max_iter=model.fit.max_iter,
         tol=model.fit.tol,
         temp_dir=temp_dir,
+        limits={name: getattr(model.fit, name) for name in TRUST_LIMITS},
     )

@@ -430,6 +430,14 @@ def _cautions(tables, meta) -> str:
         "Accounting judgement and local supervisory rules prevail over anything in this report, "
         "including stage allocation, scenario weights and overlays.",
     ]
+    loosened = (meta.get("model") or {}).get("limits_loosened")
+    if loosened:
+        text = ", ".join(f"model.fit.{k} = {v:g}" for k, v in loosened.items())
+        lines.insert(
+            0,
+            f"WARNING: the model was accepted under limits looser than the defaults ({text}). A model with so few "
+            "events per parameter or such coefficients would otherwise have been refused as untrustworthy.",
+        )
     if meta.get("synthetic"):
         lines.append(
             "This run uses synthetic demonstration data. The loans, borrowers and amounts are generated "
