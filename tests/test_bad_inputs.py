@@ -17,9 +17,13 @@ stderr. Add a case by appending to ``CASES`` in the section of its item.
 
 from __future__ import annotations
 
+import errno
 import hashlib
+import os
 import re
 import shutil
+import subprocess
+import sys
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -31,6 +35,9 @@ import pytest
 import yaml
 from conftest import demo_config_data
 
+import creditsurv
+import creditsurv.report
+from creditsurv import StaleRunWarning
 from creditsurv.cli import main
 from creditsurv.demo import TRUE_COEFFICIENTS, LogitHazard, write_demo_book
 
@@ -61,6 +68,7 @@ class Workspace:
 
     root: Path
     data: dict = field(default_factory=dict)
+    env: dict = field(default_factory=dict)  # environment of a case run in its own process (test hooks)
 
     @classmethod
     def create(cls, root: Path, book: Path) -> "Workspace":
@@ -139,16 +147,17 @@ class Case:
     exit_code: int
     first_line: str
     keeps: str | None = None  # a folder name pattern under reports that the case may leave (exit 3's evidence)
+    own_process: bool = False  # run ``python -m creditsurv`` in a subprocess (signals), with ``ws.env`` and TMPDIR
 
 
 CASES: list[Case] = []
 
 
-def case(item: str, exit_code: int, first_line: str, keeps: str | None = None):
+def case(item: str, exit_code: int, first_line: str, keeps: str | None = None, own_process: bool = False):
     """Register the decorated ``prepare`` function as a case."""
 
     def register(prepare):
-        CASES.append(Case(prepare.__name__, item, prepare, exit_code, first_line, keeps))
+        CASES.append(Case(prepare.__name__, item, prepare, exit_code, first_line, keeps, own_process))
         return prepare
 
     return register
@@ -161,6 +170,61 @@ def case(item: str, exit_code: int, first_line: str, keeps: str | None = None):
 
 
 # ====================================================================== faults leave nothing behind (items 9-12)
+
+
+@case("9", 143, r"^stopped by SIGTERM", own_process=True)
+def sigterm_during_fit(ws):
+    ws.env["CREDITSURV_TEST_KILL_AT"] = "fit"
+    return ["run", str(ws.config)]
+
+
+@case("9", 143, r"^stopped by SIGTERM", own_process=True)
+def sigterm_while_writing_report(ws):
+    ws.env["CREDITSURV_TEST_KILL_AT"] = "report"
+    return ["run", str(ws.config)]
+
+
+@case("9", 129, r"^stopped by SIGHUP", own_process=True)
+def sighup_during_projection(ws):
+    ws.env.update(CREDITSURV_TEST_KILL_AT="projection", CREDITSURV_TEST_KILL_SIGNAL="SIGHUP")
+    return ["run", str(ws.config)]
+
+
+@case("9", 130, r"^interrupted", own_process=True)
+def ctrl_c_during_validation(ws):
+    ws.env.update(CREDITSURV_TEST_KILL_AT="validation", CREDITSURV_TEST_KILL_SIGNAL="SIGINT")
+    return ["run", str(ws.config)]
+
+
+@case("10", 1, r"^OutputError: .*notes\.txt: is a file, not a folder")
+def outputs_dir_names_a_file(ws):
+    (ws.root / "notes.txt").write_text("not a folder\n")
+    return ["run", str(ws.edit_config(lambda d: d["outputs"].update(dir=str(ws.root / "notes.txt"))))]
+
+
+@case("10", 1, r"^OutputError: .*missing/checks\.csv: cannot write the check table: the folder .*missing does not exist")
+def check_out_into_a_missing_folder(ws):
+    return ["check", str(ws.config), "--out", str(ws.root / "missing" / "checks.csv")]
+
+
+@case("10", 1, r"^OutputError: .*report\.html: the run was not written \(No space left on device\)")
+def disk_full_while_writing_the_report(ws):
+    def full(path, tables, meta):
+        Path(path).write_bytes(b"<html>")  # a partial page, then the disk fills
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
+
+    ws.monkeypatch.setattr(creditsurv.report, "write_report", full)
+    return ["run", str(ws.config)]
+
+
+@case("10", 1, r"^OutputError: .*locked.*cannot create the run folder \(Permission denied\)")
+def read_only_outputs_folder(ws):
+    if os.geteuid() == 0:
+        pytest.skip("runs as root, whom a read-only folder does not stop (outputs_dir_names_a_file covers the path)")
+    locked = ws.root / "locked"
+    locked.mkdir()
+    locked.chmod(0o555)
+    return ["run", str(ws.edit_config(lambda d: d["outputs"].update(dir=str(locked))))]
 
 
 @case("11", 2, r"^ConfigError: .*config\.yaml.*\bmodle\b.*did you mean 'model'")
@@ -177,13 +241,26 @@ def misspelt_top_level_key(ws):
 
 @pytest.fixture
 def workspace(corpus_book, tmp_path, monkeypatch):
-    """A fresh copy of the corpus workspace; temporary files of the case go to a folder of its own."""
+    """A fresh copy of the corpus workspace; temporary files of the case go to a folder of its own.
+
+    ``ws.monkeypatch`` lets a case replace a public function (a full disk, say); it is undone after the case.
+    """
     scratch = tmp_path / "scratch"
     scratch.mkdir()
     monkeypatch.setattr(tempfile, "tempdir", str(scratch))
     ws = corpus_book.copy_to(tmp_path / "ws")
     ws.scratch = scratch
+    ws.monkeypatch = monkeypatch
     return ws
+
+
+def run_own_process(argv: list[str], ws: Workspace) -> tuple[int, str]:
+    """``python -m creditsurv argv`` in a subprocess, with the case's environment and TMPDIR in its scratch folder."""
+    package_root = str(Path(creditsurv.__file__).resolve().parent.parent)
+    env = {**os.environ, **ws.env, "TMPDIR": str(ws.scratch)}
+    env["PYTHONPATH"] = os.pathsep.join(p for p in (package_root, env.get("PYTHONPATH")) if p)
+    done = subprocess.run([sys.executable, "-m", "creditsurv", *argv], env=env, capture_output=True, text=True, timeout=600)
+    return done.returncode, done.stderr
 
 
 @pytest.mark.parametrize("bad", CASES, ids=[c.name for c in CASES])
@@ -191,8 +268,11 @@ def test_bad_input_or_fault(bad: Case, workspace, capsys):
     before = workspace.snapshot()
     argv = bad.prepare(workspace)
     capsys.readouterr()
-    code = main(argv)
-    err = capsys.readouterr().err
+    if bad.own_process:
+        code, err = run_own_process(argv, workspace)
+    else:
+        code = main(argv)
+        err = capsys.readouterr().err
     first = err.strip().splitlines()[0] if err.strip() else ""
     assert code == bad.exit_code, f"exit {code}, expected {bad.exit_code}; stderr:\n{err}"
     assert re.search(bad.first_line, first), f"first line {first!r} does not match {bad.first_line!r}"

@@ -7,6 +7,7 @@ from ._folder import (
     compare_outputs,
     describe_inputs,
     read_manifest,
+    remove_stale_incomplete,
     run_name,
     sha256_file,
     write_table,
@@ -26,5 +27,5 @@ __all__ = [
     "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "RunManifest", "start_manifest", "WALK_STEPS", "check_walk_reconciles",
     "check_inputs_unchanged", "compare_outputs", "compare_run_folders", "describe_inputs", "judge_reproduction",
     "movement", "movement_against_run", "reproduction_name", "package_versions",
-    "read_manifest", "run_name", "sha256_file", "write_table",
+    "read_manifest", "remove_stale_incomplete", "run_name", "sha256_file", "write_table",
 ]  # fmt: skip
