@@ -19,9 +19,11 @@ from __future__ import annotations
 
 import errno
 import hashlib
+import json
 import os
 import re
 import shutil
+import socket
 import subprocess
 import sys
 import tempfile
@@ -40,6 +42,7 @@ import creditsurv.report
 from creditsurv import StaleRunWarning
 from creditsurv.cli import main
 from creditsurv.demo import TRUE_COEFFICIENTS, LogitHazard, write_demo_book
+from creditsurv.runs import remove_stale_incomplete
 
 CORPUS_LOANS, CORPUS_SEED = 2000, 4242
 
@@ -227,6 +230,34 @@ def read_only_outputs_folder(ws):
     return ["run", str(ws.edit_config(lambda d: d["outputs"].update(dir=str(locked))))]
 
 
+def test_a_killed_run_is_swept_at_the_next_start(workspace):
+    # SIGKILL cannot be caught: the killed run leaves its .incomplete folder (with its owner file) ...
+    workspace.env.update(CREDITSURV_TEST_KILL_AT="projection", CREDITSURV_TEST_KILL_SIGNAL="SIGKILL")
+    code, _ = run_own_process(["run", str(workspace.config)], workspace)
+    assert code == -9  # subprocess's convention for a child ended by signal 9
+    (left,) = workspace.reports.glob(".incomplete-*")
+    assert list(workspace.scratch.glob("creditsurv-duckdb-*")), "the killed run's spill folder stays until the next start"
+    owner = json.loads((left / ".owner.json").read_text())
+    assert owner["host"] == socket.gethostname() and owner["pid"] > 0
+    # ... which the next run of this host removes, saying so, before it builds its own.
+    with pytest.warns(StaleRunWarning, match=rf"{left.name}: removed an interrupted run's folder \(process {owner['pid']} "):
+        assert main(["fit", str(workspace.config)]) == 0
+    assert not list(workspace.reports.glob(".incomplete-*"))
+    assert not list(workspace.scratch.iterdir()), "the next start removes the killed run's spill folder too"
+
+
+def test_unfinished_folders_of_other_hosts_and_running_processes_are_left_alone(tmp_path):
+    other = tmp_path / ".incomplete-2024-12_abc-00000001"
+    other.mkdir()
+    (other / ".owner.json").write_text(json.dumps({"host": "another-host", "pid": 1, "started": "2026-01-01T00:00:00"}))
+    alive = tmp_path / ".incomplete-2024-12_abc-00000002"
+    alive.mkdir()
+    (alive / ".owner.json").write_text(json.dumps({"host": socket.gethostname(), "pid": os.getppid(), "started": "x"}))
+    with pytest.warns(StaleRunWarning, match=r"left alone 1 unfinished run folder.*another-host") as record:
+        assert remove_stale_incomplete(tmp_path) == []
+    assert len(record) == 1 and other.exists() and alive.exists()
+
+
 @case("11", 2, r"^ConfigError: .*config\.yaml.*\bmodle\b.*did you mean 'model'")
 def misspelt_top_level_key(ws):
     ws.data["modle"] = ws.data.pop("model")
@@ -259,7 +290,7 @@ def run_own_process(argv: list[str], ws: Workspace) -> tuple[int, str]:
     package_root = str(Path(creditsurv.__file__).resolve().parent.parent)
     env = {**os.environ, **ws.env, "TMPDIR": str(ws.scratch)}
     env["PYTHONPATH"] = os.pathsep.join(p for p in (package_root, env.get("PYTHONPATH")) if p)
-    done = subprocess.run([sys.executable, "-m", "creditsurv", *argv], env=env, capture_output=True, text=True, timeout=600)
+    done = subprocess.run([sys.executable, "-m", "creditsurv", *argv], check=False, env=env, capture_output=True, text=True, timeout=600)
     return done.returncode, done.stderr
 
 
