@@ -264,6 +264,21 @@ def misspelt_top_level_key(ws):
     return ["run", str(ws.edit_config(lambda d: None))]
 
 
+@case("12", 1, r"^DataError: inputs\.loans\.path: .*loans\.csv.*This file is not utf-8 encoded")
+def latin1_loan_table(ws):
+    loans = pd.read_parquet(ws.book / "loans.parquet")
+    loans["region"] = loans["region"].astype(str)
+    loans.loc[loans.index[:3], "region"] = "Zürich"
+    loans.to_csv(ws.book / "loans.csv", index=False, encoding="latin-1")
+    return ["run", str(ws.edit_config(lambda d: d["inputs"]["loans"].update(path=str(ws.book / "loans.csv"))))]
+
+
+@case("12", 2, r"^ConfigError: .*config\.yaml: the config file is [\d,]+ bytes, above the limit of 1,048,576 bytes")
+def config_of_many_megabytes(ws):
+    # A list pasted into the config: 20,000 lines of 100 characters, about 2 MB.
+    return ["run", str(ws.edit_config(lambda d: d.update(notes=["x" * 100] * 20_000)))]
+
+
 # ====================================================================== the data checks, one case per class
 
 

@@ -135,7 +135,15 @@ def _register(con, name: str, key: str, source) -> Source:
 
 
 def _duck_message(exc: Exception) -> str:
-    return str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    """DuckDB's first line, and for a CSV error its cause (``... This file is not utf-8 encoded.``), on one line."""
+    lines = [line.strip() for line in str(exc).strip().splitlines()]
+    if not lines:
+        return type(exc).__name__
+    if "CSV Error" in lines[0]:
+        cause = next((x for x in lines[1:] if x and not x.startswith(("Original Line", "Possible Solution", "file ="))), None)
+        if cause:
+            return f"{lines[0]}: {cause}"
+    return lines[0]
 
 
 def _offending_value(con, src: Source, column: str, test: str) -> str | None:
