@@ -273,6 +273,18 @@ def latin1_loan_table(ws):
     return ["run", str(ws.edit_config(lambda d: d["inputs"]["loans"].update(path=str(ws.book / "loans.csv"))))]
 
 
+@case("12", 0, r"^$", keeps=r"2024-12_[0-9a-f]{10}")
+def segment_names_that_look_like_maths_or_hidden_labels(ws):
+    # matplotlib reads "$...$" as maths (and "$x^$" fails to parse) and leaves labels starting with "_" out of legends.
+    def rename(loans):
+        levels = sorted(loans["channel"].astype(str).unique())
+        names = dict(zip(levels, ["$x^$", "$100k-$250k", "_north"]))
+        loans["channel"] = loans["channel"].astype(str).map(lambda v: names.get(v, v))
+
+    ws.edit_table("loans.parquet", rename)
+    return ["run", str(ws.edit_config(lambda d: d["segments"].update(column="channel")))]
+
+
 @case("12", 2, r"^ConfigError: .*config\.yaml: the config file is [\d,]+ bytes, above the limit of 1,048,576 bytes")
 def config_of_many_megabytes(ws):
     # A list pasted into the config: 20,000 lines of 100 characters, about 2 MB.
