@@ -33,6 +33,7 @@ from typing import Callable
 
 import numpy as np
 import pandas as pd
+import pyarrow.parquet as pq
 import pytest
 import yaml
 from conftest import demo_config_data
@@ -262,6 +263,39 @@ def test_unfinished_folders_of_other_hosts_and_running_processes_are_left_alone(
 def misspelt_top_level_key(ws):
     ws.data["modle"] = ws.data.pop("model")
     return ["run", str(ws.edit_config(lambda d: None))]
+
+
+@case("11", 1, r"^DataError: .*inputs\.panel\.path: .*panel\.parquet has no rows with a readable month")
+def empty_panel(ws):
+    panel = pq.read_table(ws.book / "panel.parquet")
+    pq.write_table(panel.slice(0, 0), ws.book / "panel.parquet")  # the columns and types kept, no rows
+    return ["run", str(ws.config)]
+
+
+def _first_loans(column, value, n=5):
+    def change(loans):
+        loans.loc[loans.sort_values("loan_id").index[:n], column] = value
+
+    return change
+
+
+@case("11", 1, r"^FeatureError: .*'dti': \d+ rows have no value .*column 'dti' of the loan table \(inputs\.loans\), loans QL0000001, ")
+def missing_covariate_values(ws):
+    ws.edit_table("loans.parquet", _first_loans("dti", np.nan))
+    return ["run", str(ws.config)]
+
+
+@case("11", 1, r"^FeatureError: .*'dti': log of non-positive values in \d+ rows.*column 'dti' of the loan table.*loans QL0000001, ")
+def log_of_zeros(ws):
+    ws.edit_table("loans.parquet", _first_loans("dti", 0.0))
+    return ["run", str(ws.edit_config(lambda d: d["model"]["covariates"][2].update(transform="log")))]
+
+
+@case("11", 1, r"^DataCheckError: 1 data check failed on .*loans\.parquet")
+def note_rate_of_a_million_percent(ws):
+    # The first line names the file; the next names the check, the column and the loans (loan_fields_invalid).
+    ws.edit_table("loans.parquet", _first_loans("note_rate", 1e6, n=3))
+    return ["run", str(ws.config)]
 
 
 @case("12", 1, r"^DataError: inputs\.loans\.path: .*loans\.csv.*This file is not utf-8 encoded")

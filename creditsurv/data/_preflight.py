@@ -7,6 +7,8 @@ the panel. All are reported in one error.
 
 from __future__ import annotations
 
+import pandas as pd
+
 from ..errors import DataError, did_you_mean, problem_list
 from ..months import format_month
 
@@ -52,8 +54,8 @@ def preflight_problems(cfg, engine, *, run: bool = False) -> list[str]:
         )
     (last,) = engine.frame("SELECT max(month_idx) AS last FROM panel_all")["last"].tolist()
     as_of = int(cfg.as_of)
-    if last is None or last != last:  # no rows, or NULL months only
-        problems.append("as_of: the panel has no rows with a readable month")
+    if last is None or bool(pd.isna(last)):  # no rows, or NULL months only
+        problems.append(f"inputs.panel.path: {cfg.inputs.panel.path} has no rows with a readable month")
     elif int(last) < as_of:
         problems.append(
             f"as_of: {format_month(as_of)} is after the panel's last month {format_month(int(last))}; "
