@@ -1,18 +1,34 @@
 """The ``creditsurv`` command line: argument parsing and display only.
 
-Exit codes: 0 success; 1 data or data-check errors, model or run errors;
-2 usage or config errors; 3 a reproduced run does not match its record.
+Exit codes (the project's one statement of them; every ``CreditsurvError`` subclass's
+``exit_code`` follows it, and ``tests/test_cli.py`` holds that):
+
+* 0 -- success.
+* 1 -- a problem in the data or the machine: data and data-check errors, a feature that cannot be
+  evaluated on the data, model, projection and run errors, an output the operating system refuses
+  to write (``OutputError``).
+* 2 -- usage or config errors: the command line or the YAML config is wrong (``ConfigError``,
+  argparse's own usage errors), or bad arguments to the demo simulator.
+* 3 -- a reproduced run does not match its record (``ReproduceMismatch``).
+* 128 + N -- stopped by signal N (130 for Ctrl-C, SIGINT; 143 for SIGTERM, what a scheduler sends;
+  129 for SIGHUP). All three clean up alike: no ``.incomplete-*`` folder and no temporary folder
+  is left behind.
+
+Errors print as one line ``ErrorName: message`` on stderr (a traceback only with ``--verbose``);
+creditsurv's warnings print as one line ``WarningName: message``.
 """
 
 from __future__ import annotations
 
 import argparse
+import signal
 import sys
 import traceback
+import warnings
 from pathlib import Path
 
 from . import __version__
-from .errors import CreditsurvError
+from .errors import CreditsurvError, CreditsurvWarning, OutputError
 
 
 def _cmd_make_demo_data(args) -> int:
@@ -154,9 +170,47 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+class Stopped(KeyboardInterrupt):
+    """Raised in the main thread by a SIGTERM or SIGHUP handler, so that the cleanup of Ctrl-C runs."""
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum
+
+
+def _raise_stopped(signum, frame):
+    raise Stopped(signum)
+
+
+def format_warning(message, category, filename, lineno, line=None) -> str:
+    """creditsurv's warnings as one line ``WarningName: message``; others as Python formats them."""
+    if issubclass(category, CreditsurvWarning):
+        return f"{category.__name__}: {message}\n"
+    return _python_format_warning(message, category, filename, lineno, line)
+
+
+_python_format_warning = warnings.formatwarning
+
+
+def _handle_signals() -> dict:
+    """SIGTERM and SIGHUP raise :class:`Stopped` (as SIGINT raises KeyboardInterrupt); returns the old handlers."""
+    old = {}
+    for name in ("SIGTERM", "SIGHUP"):
+        signum = getattr(signal, name, None)
+        if signum is not None:
+            try:
+                old[signum] = signal.signal(signum, _raise_stopped)
+            except ValueError:  # not the main thread: leave the handlers alone
+                pass
+    return old
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    old_handlers = _handle_signals()
+    # Only the text of a shown warning changes: filters, and recording by callers, stay as they are.
+    warnings.formatwarning = format_warning
     try:
         return args.func(args)
     except CreditsurvError as exc:
@@ -164,9 +218,24 @@ def main(argv: list[str] | None = None) -> int:
             traceback.print_exc()
         print(f"{type(exc).__name__}: {exc}", file=sys.stderr)
         return exc.exit_code
+    except OSError as exc:
+        # Outputs are written through OutputError where they are made; this is the net for the rest.
+        if args.verbose:
+            traceback.print_exc()
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"{OutputError.__name__}: {where}{exc.strerror or exc}", file=sys.stderr)
+        return OutputError.exit_code
+    except Stopped as exc:
+        name = signal.Signals(exc.signum).name
+        print(f"stopped by {name}; unfinished outputs were removed", file=sys.stderr)
+        return 128 + exc.signum
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
-        return 130
+        return 128 + signal.SIGINT
+    finally:
+        warnings.formatwarning = _python_format_warning
+        for signum, handler in old_handlers.items():
+            signal.signal(signum, handler)
 
 
 if __name__ == "__main__":  # pragma: no cover

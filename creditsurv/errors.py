@@ -7,21 +7,24 @@ One root class, one subclass per stage::
     ├── DataError            (ValueError)  an input file or column cannot be used
     │   └── DataCheckError                  data checks of severity "error" failed
     ├── SimulationError      (ValueError)  bad arguments to the synthetic book
-    ├── FeatureError         (ValueError)  the feature spec cannot be evaluated
+    ├── FeatureError         (ValueError)  the feature spec cannot be evaluated on the data
     ├── ModelError                          the hazard fit failed
     │   ├── ConvergenceError                Newton did not converge
     │   ├── SeparationError                 a covariate or level has no events of a cause
     │   └── SingularDesignError             collinear design columns
     ├── ProjectionError      (ValueError)  scenarios or loans cannot be projected
     └── RunError                            the run folder or its record is unusable
+        ├── OutputError                     an output cannot be written (the OS refused: permissions, full disk, ...)
         └── ReproduceMismatch               a reproduced run differs from its record
 
     CreditsurvWarning (UserWarning)
     ├── ConvergenceWarning
     ├── FewEventsWarning
-    └── DataCheckWarning
+    ├── DataCheckWarning
+    └── StaleRunWarning                     an interrupted run's folder was found (and removed when its process is gone)
 
-The command line catches ``CreditsurvError`` and prints ``ClassName: message``.
+The command line catches ``CreditsurvError`` and prints ``ClassName: message``; it exits with the
+error's ``exit_code``, following the exit-code rules stated once in ``creditsurv.cli``.
 """
 
 from __future__ import annotations
@@ -31,8 +34,8 @@ import difflib
 __all__ = [
     "ConfigError", "ConvergenceError", "ConvergenceWarning", "CreditsurvError", "CreditsurvWarning",
     "DataCheckError", "DataCheckWarning", "DataError", "FeatureError", "FewEventsWarning", "ModelError",
-    "ProjectionError", "ReproduceMismatch", "RunError", "SeparationError", "SimulationError",
-    "SingularDesignError", "did_you_mean", "problem_list",
+    "OutputError", "ProjectionError", "ReproduceMismatch", "RunError", "SeparationError", "SimulationError",
+    "SingularDesignError", "StaleRunWarning", "did_you_mean", "problem_list",
 ]  # fmt: skip
 
 
@@ -73,7 +76,12 @@ class SimulationError(CreditsurvError, ValueError):
 
 
 class FeatureError(CreditsurvError, ValueError):
-    """The feature spec cannot be evaluated on the given data."""
+    """The feature spec cannot be evaluated on the given data (a data problem: exit 1).
+
+    Problems visible in the config alone are ``ConfigError``, raised when the config is read.
+    """
+
+    exit_code = 1
 
 
 class ModelError(CreditsurvError):
@@ -106,6 +114,13 @@ class RunError(CreditsurvError):
     exit_code = 1
 
 
+class OutputError(RunError):
+    """An output file or folder cannot be written: the operating system refused (no permission, a full
+    disk, a file where a folder should be). Nothing partial is left behind."""
+
+    exit_code = 1
+
+
 class ReproduceMismatch(RunError):
     """A reproduced run does not match the outputs recorded in its manifest."""
 
@@ -126,6 +141,10 @@ class FewEventsWarning(CreditsurvWarning):
 
 class DataCheckWarning(CreditsurvWarning):
     """A data check of severity ``warning`` fired."""
+
+
+class StaleRunWarning(CreditsurvWarning):
+    """A ``.incomplete-*`` folder of an interrupted run was found; removed when its process is gone."""
 
 
 # --------------------------------------------------------------------------- message parts every stage uses

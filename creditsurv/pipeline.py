@@ -8,13 +8,20 @@ and what the command line calls. Each takes a config file path or a loaded
 
 from __future__ import annotations
 
+import os
+import signal
 from dataclasses import dataclass
 from pathlib import Path
 
 from .config import Config, config_from_dict, config_to_dict, load_config, read_yaml
+<<<<<<< HEAD
 from .errors import DataError, RunError
 from .model import HazardResults, hazard_source, hpi_series_name, parse_macro_key
 from .version import __version__
+=======
+from .errors import DataError, OutputError
+from .model import HazardResults, hazard_source, parse_macro_key
+>>>>>>> issue11-faults
 
 
 @dataclass(frozen=True)
@@ -87,11 +94,17 @@ def check(config, out: Path | None = None) -> Outcome:
     cfg = _config(config)
     if out is not None:
         _refuse_existing(Path(out), "the check table")
+        if not Path(out).parent.is_dir():
+            raise OutputError(f"{out}: cannot write the check table: the folder {Path(out).parent} does not exist")
     with open_engine(cfg) as engine:
         raise_preflight(cfg, engine)
         checks = engine.run_checks()
     if out is not None:
-        checks.to_csv(out, index=False)
+        try:
+            checks.to_csv(out, index=False)
+        except OSError as exc:
+            Path(out).unlink(missing_ok=True)  # it did not exist before (refused above): remove the partial file
+            raise OutputError(f"{out}: cannot write the check table ({exc.strerror or exc}); nothing was left behind") from None
     failed = bool(((checks["severity"] == "error") & (checks["count"] > 0)).any())
     return Outcome(format_checks(checks), failed=failed, path=out)
 
@@ -348,6 +361,22 @@ def _say(progress, text: str) -> None:
         progress(text, None, None)
 
 
+KILL_AT = "CREDITSURV_TEST_KILL_AT"
+KILL_SIGNAL = "CREDITSURV_TEST_KILL_SIGNAL"
+
+
+def kill_point(stage: str) -> None:
+    """Test hook: stop this process at a named stage of a run, as a scheduler or the machine would.
+
+    When the environment variable ``CREDITSURV_TEST_KILL_AT`` equals ``stage`` (``fit``, ``projection``,
+    ``validation``, ``report``), the process sends itself ``SIGTERM``, or the signal named by
+    ``CREDITSURV_TEST_KILL_SIGNAL`` (``SIGHUP``, ``SIGINT``, ``SIGKILL``). The fault tests reach their
+    kill points this way rather than by timing. Unset, it does nothing.
+    """
+    if os.environ.get(KILL_AT) == stage:
+        os.kill(os.getpid(), getattr(signal, os.environ.get(KILL_SIGNAL, "SIGTERM")))
+
+
 def execute_run(
     cfg, parent: Path, *, argv=None, name: str | None = None, config_text: str | None = None, progress=None
 ) -> Outcome:
@@ -375,6 +404,7 @@ def execute_run(
             work = run.path / "_work"
             work.mkdir()
             _say(progress, "hazard model")
+            kill_point("fit")
             model = hazard_source(cfg, engine, temp_dir=work)
             shutil.rmtree(work)
             coefficients = model.summary() if isinstance(model, HazardResults) else None
@@ -385,6 +415,7 @@ def execute_run(
             events = engine.event_counts()
             run.add_table(events, "event_counts.csv")
             _say(progress, "projection and ECL")
+            kill_point("projection")
             chunk_progress = (lambda done, total: progress("projection and ECL", done, total)) if progress else None
             result, report_tables, totals = project_book(ctx, engine, model, run, loaded, progress=chunk_progress)
             report_tables["data_checks"] = checks
@@ -405,6 +436,7 @@ def execute_run(
                 report_tables["stage_migration"] = movement.migration_matrix("loans").reset_index()
                 manifest.prior_run = str(cfg.outputs.prior_run)
             _say(progress, "report")
+            kill_point("report")
             _write_report(run, cfg, manifest, report_tables)
             final = run.commit(manifest)
     stage = ", ".join(f"stage {k}: {v:,.2f}" for k, v in totals["by_stage"].items())
@@ -425,6 +457,7 @@ def _validate_run(cfg, engine, model, result, run, manifest, report_tables: dict
     from .validation import validation_pack
 
     _say(progress, "validation")
+    kill_point("validation")
     live = (result.loans["stage"] != 3).to_numpy()
     pack = validation_pack(cfg, engine, model, current_pd_12m=result.loans.loc[live, "pd_12m"].to_numpy())
     for name, table in pack.tables.items():

@@ -212,6 +212,7 @@ class Workspace:
 
     root: Path
     data: dict = field(default_factory=dict)
+    env: dict = field(default_factory=dict)  # environment of a case run in its own process (test hooks)
 
     @classmethod
     def create(cls, root: Path, book: Path) -> "Workspace":

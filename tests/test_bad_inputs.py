@@ -17,22 +17,30 @@ stderr. Add a case by appending to ``CASES`` in the section of its item.
 
 from __future__ import annotations
 
-import hashlib
+import errno
 import json
+import os
 import re
 import shutil
+import socket
+import subprocess
+import sys
 import tempfile
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
 import numpy as np
 import pandas as pd
+import pyarrow.parquet as pq
 import pytest
-import yaml
 from conftest import Workspace
 
+import creditsurv
+import creditsurv.report
+from creditsurv import StaleRunWarning
 from creditsurv.cli import main
+from creditsurv.runs import remove_stale_incomplete
 
 @dataclass(frozen=True)
 class Case:
@@ -44,16 +52,17 @@ class Case:
     exit_code: int
     first_line: str
     keeps: str | None = None  # a folder name pattern under reports that the case may leave (exit 3's evidence)
+    own_process: bool = False  # run ``python -m creditsurv`` in a subprocess (signals), with ``ws.env`` and TMPDIR
 
 
 CASES: list[Case] = []
 
 
-def case(item: str, exit_code: int, first_line: str, keeps: str | None = None):
+def case(item: str, exit_code: int, first_line: str, keeps: str | None = None, own_process: bool = False):
     """Register the decorated ``prepare`` function as a case."""
 
     def register(prepare):
-        CASES.append(Case(prepare.__name__, item, prepare, exit_code, first_line, keeps))
+        CASES.append(Case(prepare.__name__, item, prepare, exit_code, first_line, keeps, own_process))
         return prepare
 
     return register
@@ -314,10 +323,153 @@ def scenario_without_a_series_the_model_reads(ws):
 # ====================================================================== faults leave nothing behind (items 9-12)
 
 
+@case("9", 143, r"^stopped by SIGTERM", own_process=True)
+def sigterm_during_fit(ws):
+    ws.env["CREDITSURV_TEST_KILL_AT"] = "fit"
+    return ["run", str(ws.config)]
+
+
+@case("9", 143, r"^stopped by SIGTERM", own_process=True)
+def sigterm_while_writing_report(ws):
+    ws.env["CREDITSURV_TEST_KILL_AT"] = "report"
+    return ["run", str(ws.config)]
+
+
+@case("9", 129, r"^stopped by SIGHUP", own_process=True)
+def sighup_during_projection(ws):
+    ws.env.update(CREDITSURV_TEST_KILL_AT="projection", CREDITSURV_TEST_KILL_SIGNAL="SIGHUP")
+    return ["run", str(ws.config)]
+
+
+@case("9", 130, r"^interrupted", own_process=True)
+def ctrl_c_during_validation(ws):
+    ws.env.update(CREDITSURV_TEST_KILL_AT="validation", CREDITSURV_TEST_KILL_SIGNAL="SIGINT")
+    return ["run", str(ws.config)]
+
+
+@case("10", 1, r"^OutputError: .*notes\.txt: is a file, not a folder")
+def outputs_dir_names_a_file(ws):
+    (ws.root / "notes.txt").write_text("not a folder\n")
+    return ["run", str(ws.edit_config(lambda d: d["outputs"].update(dir=str(ws.root / "notes.txt"))))]
+
+
+@case("10", 1, r"^OutputError: .*missing/checks\.csv: cannot write the check table: the folder .*missing does not exist")
+def check_out_into_a_missing_folder(ws):
+    return ["check", str(ws.config), "--out", str(ws.root / "missing" / "checks.csv")]
+
+
+@case("10", 1, r"^OutputError: .*report\.html: the run was not written \(No space left on device\)")
+def disk_full_while_writing_the_report(ws):
+    def full(path, tables, meta):
+        Path(path).write_bytes(b"<html>")  # a partial page, then the disk fills
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
+
+    ws.monkeypatch.setattr(creditsurv.report, "write_report", full)
+    return ["run", str(ws.config)]
+
+
+@case("10", 1, r"^OutputError: .*locked.*cannot create the run folder \(Permission denied\)")
+def read_only_outputs_folder(ws):
+    if os.geteuid() == 0:
+        pytest.skip("runs as root, whom a read-only folder does not stop (outputs_dir_names_a_file covers the path)")
+    locked = ws.root / "locked"
+    locked.mkdir()
+    locked.chmod(0o555)
+    return ["run", str(ws.edit_config(lambda d: d["outputs"].update(dir=str(locked))))]
+
+
+def test_a_killed_run_is_swept_at_the_next_start(workspace):
+    # SIGKILL cannot be caught: the killed run leaves its .incomplete folder (with its owner file) ...
+    workspace.env.update(CREDITSURV_TEST_KILL_AT="projection", CREDITSURV_TEST_KILL_SIGNAL="SIGKILL")
+    code, _ = run_own_process(["run", str(workspace.config)], workspace)
+    assert code == -9  # subprocess's convention for a child ended by signal 9
+    (left,) = workspace.reports.glob(".incomplete-*")
+    assert list(workspace.scratch.glob("creditsurv-duckdb-*")), "the killed run's spill folder stays until the next start"
+    owner = json.loads((left / ".owner.json").read_text())
+    assert owner["host"] == socket.gethostname() and owner["pid"] > 0
+    # ... which the next run of this host removes, saying so, before it builds its own.
+    with pytest.warns(StaleRunWarning, match=rf"{left.name}: removed an interrupted run's folder \(process {owner['pid']} "):
+        assert main(["fit", str(workspace.config)]) == 0
+    assert not list(workspace.reports.glob(".incomplete-*"))
+    assert not list(workspace.scratch.iterdir()), "the next start removes the killed run's spill folder too"
+
+
+def test_unfinished_folders_of_other_hosts_and_running_processes_are_left_alone(tmp_path):
+    other = tmp_path / ".incomplete-2024-12_abc-00000001"
+    other.mkdir()
+    (other / ".owner.json").write_text(json.dumps({"host": "another-host", "pid": 1, "started": "2026-01-01T00:00:00"}))
+    alive = tmp_path / ".incomplete-2024-12_abc-00000002"
+    alive.mkdir()
+    (alive / ".owner.json").write_text(json.dumps({"host": socket.gethostname(), "pid": os.getppid(), "started": "x"}))
+    with pytest.warns(StaleRunWarning, match=r"left alone 1 unfinished run folder.*another-host") as record:
+        assert remove_stale_incomplete(tmp_path) == []
+    assert len(record) == 1 and other.exists() and alive.exists()
+
+
 @case("11", 2, r"^ConfigError: .*config\.yaml.*\bmodle\b.*did you mean 'model'")
 def misspelt_top_level_key(ws):
     ws.data["modle"] = ws.data.pop("model")
     return ["run", str(ws.edit_config(lambda d: None))]
+
+
+@case("11", 1, r"^DataError: .*inputs\.panel\.path: .*panel\.parquet has no rows with a readable month")
+def empty_panel(ws):
+    panel = pq.read_table(ws.book / "panel.parquet")
+    pq.write_table(panel.slice(0, 0), ws.book / "panel.parquet")  # the columns and types kept, no rows
+    return ["run", str(ws.config)]
+
+
+def _first_loans(column, value, n=5):
+    def change(loans):
+        loans.loc[loans.sort_values("loan_id").index[:n], column] = value
+
+    return change
+
+
+@case("11", 1, r"^FeatureError: .*'dti': \d+ rows have no value .*column 'dti' of the loan table \(inputs\.loans\), loans QL0000001, ")
+def missing_covariate_values(ws):
+    ws.edit_table("loans.parquet", _first_loans("dti", np.nan))
+    return ["run", str(ws.config)]
+
+
+@case("11", 1, r"^FeatureError: .*'dti': log of non-positive values in \d+ rows.*column 'dti' of the loan table.*loans QL0000001, ")
+def log_of_zeros(ws):
+    ws.edit_table("loans.parquet", _first_loans("dti", 0.0))
+    return ["run", str(ws.edit_config(lambda d: d["model"]["covariates"][2].update(transform="log")))]
+
+
+@case("11", 1, r"^DataCheckError: 1 data check failed on .*loans\.parquet")
+def note_rate_of_a_million_percent(ws):
+    # The first line names the file; the next names the check, the column and the loans (loan_fields_invalid).
+    ws.edit_table("loans.parquet", _first_loans("note_rate", 1e6, n=3))
+    return ["run", str(ws.config)]
+
+
+@case("12", 1, r"^DataError: inputs\.loans\.path: .*loans\.csv.*This file is not utf-8 encoded")
+def latin1_loan_table(ws):
+    loans = pd.read_parquet(ws.book / "loans.parquet")
+    loans["region"] = loans["region"].astype(str)
+    loans.loc[loans.index[:3], "region"] = "Zürich"
+    loans.to_csv(ws.book / "loans.csv", index=False, encoding="latin-1")
+    return ["run", str(ws.edit_config(lambda d: d["inputs"]["loans"].update(path=str(ws.book / "loans.csv"))))]
+
+
+@case("12", 0, r"^$", keeps=r"2024-12_[0-9a-f]{10}")
+def segment_names_that_look_like_maths_or_hidden_labels(ws):
+    # matplotlib reads "$...$" as maths (and "$x^$" fails to parse) and leaves labels starting with "_" out of legends.
+    def rename(loans):
+        levels = sorted(loans["channel"].astype(str).unique())
+        names = dict(zip(levels, ["$x^$", "$100k-$250k", "_north"]))
+        loans["channel"] = loans["channel"].astype(str).map(lambda v: names.get(v, v))
+
+    ws.edit_table("loans.parquet", rename)
+    return ["run", str(ws.edit_config(lambda d: d["segments"].update(column="channel")))]
+
+
+@case("12", 2, r"^ConfigError: .*config\.yaml: the config file is [\d,]+ bytes, above the limit of 1,048,576 bytes")
+def config_of_many_megabytes(ws):
+    # A list pasted into the config: 20,000 lines of 100 characters, about 2 MB.
+    return ["run", str(ws.edit_config(lambda d: d.update(notes=["x" * 100] * 20_000)))]
 
 
 # ====================================================================== the data checks, one case per class
@@ -404,13 +556,26 @@ def test_every_error_check_has_a_case():
 
 @pytest.fixture
 def workspace(corpus_book, tmp_path, monkeypatch):
-    """A fresh copy of the corpus workspace; temporary files of the case go to a folder of its own."""
+    """A fresh copy of the corpus workspace; temporary files of the case go to a folder of its own.
+
+    ``ws.monkeypatch`` lets a case replace a public function (a full disk, say); it is undone after the case.
+    """
     scratch = tmp_path / "scratch"
     scratch.mkdir()
     monkeypatch.setattr(tempfile, "tempdir", str(scratch))
     ws = corpus_book.copy_to(tmp_path / "ws")
     ws.scratch = scratch
+    ws.monkeypatch = monkeypatch
     return ws
+
+
+def run_own_process(argv: list[str], ws: Workspace) -> tuple[int, str]:
+    """``python -m creditsurv argv`` in a subprocess, with the case's environment and TMPDIR in its scratch folder."""
+    package_root = str(Path(creditsurv.__file__).resolve().parent.parent)
+    env = {**os.environ, **ws.env, "TMPDIR": str(ws.scratch)}
+    env["PYTHONPATH"] = os.pathsep.join(p for p in (package_root, env.get("PYTHONPATH")) if p)
+    done = subprocess.run([sys.executable, "-m", "creditsurv", *argv], check=False, env=env, capture_output=True, text=True, timeout=600)
+    return done.returncode, done.stderr
 
 
 @pytest.mark.parametrize("bad", CASES, ids=[c.name for c in CASES])
@@ -418,8 +583,11 @@ def test_bad_input_or_fault(bad: Case, workspace, capsys):
     argv = bad.prepare(workspace)
     before = workspace.snapshot()  # after the breakage: what the command itself must leave untouched
     capsys.readouterr()
-    code = main(argv)
-    err = capsys.readouterr().err
+    if bad.own_process:
+        code, err = run_own_process(argv, workspace)
+    else:
+        code = main(argv)
+        err = capsys.readouterr().err
     first = err.strip().splitlines()[0] if err.strip() else ""
     assert code == bad.exit_code, f"exit {code}, expected {bad.exit_code}; stderr:\n{err}"
     assert re.search(bad.first_line, first), f"first line {first!r} does not match {bad.first_line!r}"

@@ -96,3 +96,38 @@ def test_starter_config_follows_the_demo_config():
         .replace("dir: ../reports", "dir: reports")
     )
     assert starter == expected
+
+
+def _subclasses(cls):
+    for sub in cls.__subclasses__():
+        yield sub
+        yield from _subclasses(sub)
+
+
+def test_every_error_class_exits_as_the_cli_docstring_states():
+    import creditsurv.cli
+    from creditsurv import errors
+
+    # The rules of the creditsurv.cli docstring: 2 usage or config, 3 a reproduction that does not match
+    # its record, 1 every other problem (data, features, model, projection, run, output).
+    usage_or_config = {errors.ConfigError, errors.SimulationError}
+    mismatch = {errors.ReproduceMismatch}
+    found = list(_subclasses(errors.CreditsurvError))
+    assert set(found) >= usage_or_config | mismatch | {errors.DataError, errors.FeatureError, errors.OutputError}
+    for cls in found:
+        expected = 2 if cls in usage_or_config else 3 if cls in mismatch else 1
+        assert cls.exit_code == expected, f"{cls.__name__} exits {cls.exit_code}, the rules say {expected}"
+    for code in ("0 --", "1 --", "2 --", "3 --", "128 + N"):
+        assert code in creditsurv.cli.__doc__
+
+
+def test_creditsurv_warnings_print_as_one_line():
+    from creditsurv import DataCheckWarning
+    from creditsurv.cli import format_warning
+
+    text = "loans.parquet: 3 loans have a negative balance (loan_id 1, 2, 3)"
+    # The one-line form of the cli docstring: no source path, no line number; other warnings as Python shows them.
+    assert format_warning(text, DataCheckWarning, "/somewhere/creditsurv/data/_checks.py", 120) == f"DataCheckWarning: {text}\n"
+    assert format_warning("not ours", RuntimeWarning, "/somewhere/else.py", 7, "x = 1").startswith(
+        "/somewhere/else.py:7: RuntimeWarning: not ours"
+    )

@@ -557,7 +557,23 @@ def _construct_mapping(loader, node, deep=False):
 _UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
 
 
+# A config is a page or two of YAML (the demo's is 5 KB). Files above this are refused before parsing:
+# parsing YAML takes time and memory many times the file's size. The cap is our choice.
+MAX_CONFIG_BYTES = 1 << 20
+
+
 def read_yaml(path: Path) -> dict:
+    try:
+        size = path.stat().st_size
+    except FileNotFoundError:
+        raise ConfigError(f"{path}: config file not found") from None
+    except OSError as exc:
+        raise ConfigError(f"{path}: cannot read the config file ({exc.strerror or exc})") from None
+    if size > MAX_CONFIG_BYTES:
+        raise ConfigError(
+            f"{path}: the config file is {size:,} bytes, above the limit of {MAX_CONFIG_BYTES:,} bytes; "
+            "a config names its data files rather than holding data (put long lists in a CSV file)"
+        )
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:

@@ -28,7 +28,9 @@ from __future__ import annotations
 
 import dataclasses
 import glob
+import os
 import shutil
+import socket
 import tempfile
 from pathlib import Path
 
@@ -133,7 +135,15 @@ def _register(con, name: str, key: str, source) -> Source:
 
 
 def _duck_message(exc: Exception) -> str:
-    return str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    """DuckDB's first line, and for a CSV error its cause (``... This file is not utf-8 encoded.``), on one line."""
+    lines = [line.strip() for line in str(exc).strip().splitlines()]
+    if not lines:
+        return type(exc).__name__
+    if "CSV Error" in lines[0]:
+        cause = next((x for x in lines[1:] if x and not x.startswith(("Original Line", "Possible Solution", "file ="))), None)
+        if cause:
+            return f"{lines[0]}: {cause}"
+    return lines[0]
 
 
 def _offending_value(con, src: Source, column: str, test: str) -> str | None:
@@ -408,8 +418,29 @@ def on_connection(con) -> DuckdbEngine:
     return DuckdbEngine(None, con, {}, None)
 
 
+def _process_gone(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except PermissionError:  # another user's process
+        return False
+    return False
+
+
+def _remove_stale_spill_dirs(prefix: str) -> None:
+    """Remove the spill folders of this host's processes that are gone (killed outright, they could not)."""
+    for folder in Path(tempfile.gettempdir()).glob(f"{prefix}*-*"):
+        pid = folder.name[len(prefix):].rsplit("-", 1)[0]
+        if pid.isdigit() and int(pid) != os.getpid() and _process_gone(int(pid)):
+            shutil.rmtree(folder, ignore_errors=True)
+
+
 def _connect(cfg: Config):
-    spill_dir = tempfile.mkdtemp(prefix="creditsurv-duckdb-")
+    # The folder's name carries host and process id, so that a later process can tell a killed run's leftovers.
+    prefix = f"creditsurv-duckdb-{socket.gethostname()}-"
+    _remove_stale_spill_dirs(prefix)
+    spill_dir = tempfile.mkdtemp(prefix=f"{prefix}{os.getpid()}-")
     settings = {"memory_limit": cfg.duckdb.memory_limit, "temp_directory": spill_dir}
     if cfg.duckdb.threads is not None:
         settings["threads"] = cfg.duckdb.threads

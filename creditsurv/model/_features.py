@@ -392,7 +392,14 @@ class FeatureSpec:
         row = self._summarise_development_rows(con, body, params, keys, numeric)
         n, age_min, age_max, month_min = row[:4]
         if not n:
-            raise FeatureError(f"no risk-set rows match the development filter ({where_sql})")
+            shown = where_sql
+            for value in params:  # the filter as the user would read it, not with "?" placeholders
+                shown = shown.replace("?", repr(value), 1)
+            raise FeatureError(
+                f"no loan-months at risk in the development window (the filter {shown} selects none of the "
+                f"{con.execute('SELECT count(*) FROM loan_months').fetchall()[0][0]:,} loan-months at risk); check the panel file (inputs.panel.path) "
+                "and windows.development"
+            )
         nulls = dict(zip(keys, row[4: 4 + len(keys)]))
         numeric_constants, problems = _learn_numeric(numeric, row[4 + len(keys):])
         learned: dict[str, Any] = {
@@ -400,6 +407,7 @@ class FeatureSpec:
         }
         problems += self._macro_history_problems(con, info["inputs"], month_min)
         problems += self._missing_value_problems(nulls, problems)
+        problems = [self._name_loans(con, body, params, p, info["inputs"]) for p in problems]
         baseline_constants, found = self._learn_baseline(age_min, age_max)
         learned.update(baseline_constants)
         problems += found
@@ -486,6 +494,27 @@ class FeatureSpec:
                              f"value has an HPI series {self.collateral.get('hpi_series')!r} covering origination)")
                 problems.append(f"covariate {c['name']!r}: {bad} rows have no value for {key!r}{extra}")
         return problems
+
+    def _name_loans(self, con, body: str, params, problem: str, inputs) -> str:
+        """A covariate problem with the input table, column and the first loans behind it."""
+        tables = {"loans": "the loan table (inputs.loans)", "panel": "the panel (inputs.panel)", "risk_set": "the panel (inputs.panel)",
+                  "derived": "values derived from the loan table and macro history", "macro": "the macro history (inputs.macro)"}
+        for c in self.covariates:
+            key = macro_key(c["macro"], int(c.get("lag", 0))) if c.get("macro") else c["column"]
+            head = f"covariate {c['name']!r}: "
+            if not problem.startswith(head):
+                continue
+            if "rows have no value" in problem:
+                condition = f"{quote_ident(key)} IS NULL"
+            elif "log of non-positive values" in problem:
+                condition = f"{self._clip_sql(c)} <= 0"
+            else:
+                return problem
+            source = next((i.source for i in inputs if i.key == key), None)
+            where = f"column {key!r} of {tables.get(source, 'the inputs')}"
+            loans = _example_loans(con, body, params, condition)
+            return f"{problem}; {where}, {loans}" if loans else f"{problem}; {where}"
+        return problem
 
     def _learn_baseline(self, age_min, age_max) -> tuple[dict, list[str]]:
         """The baseline's learned constants (``max_age`` or ``band_labels``) and its problems."""
@@ -741,6 +770,19 @@ class FeatureSpec:
             st = lrn["covariates"][name]
             x = (x - st["mean"]) / st["sd"]
         return x[:, None]
+
+
+def _example_loans(con, body: str, params, condition: str, limit: int = 5) -> str:
+    """``"loans 12, 15, 99 and 4 more"``: the first loans (by id) of the rows where ``condition`` holds."""
+    rows = con.execute(
+        f"WITH data AS (\n{body}\n)\nSELECT loan_id, count(*) OVER () FROM data WHERE {condition} "
+        f"GROUP BY loan_id ORDER BY loan_id LIMIT {limit}",
+        list(params),
+    ).fetchall()
+    if not rows:
+        return ""
+    more = rows[0][1] - len(rows)
+    return f"loans {', '.join(str(r[0]) for r in rows)}" + (f" and {more:,} more" if more > 0 else "")
 
 
 def _indicators(codes: np.ndarray, levels: list[str], reference: str) -> np.ndarray:

@@ -302,6 +302,8 @@ _RC = {
     "legend.fontsize": 7.5,
     "lines.linewidth": 1.4,
     "svg.hashsalt": "creditsurv",
+    # Text from the data (segment, scenario and level names) is drawn as written: "$100k-$250k" is not maths.
+    "text.parse_math": False,
     "figure.dpi": 100,
 }
 _WIDTH = 7.2  # inches: fits a portrait A4 or Letter page inside 15 mm margins
@@ -354,6 +356,13 @@ def _figure_legend(fig: Figure, axes) -> None:
 
 def _thousands() -> FuncFormatter:
     return FuncFormatter(lambda v, _: f"{v:,.0f}")
+
+
+def _label(x) -> str:
+    """A series label from the data, drawn as written: matplotlib leaves labels starting with "_" out of
+    legends, so such a label gets a zero-width space in front."""
+    text = str(x)
+    return "\u200b" + text if text.startswith("_") else text
 
 
 def _style(i: int) -> dict:
@@ -575,7 +584,7 @@ def _cumulative_incidence(tables, meta) -> str:
                 )
             if has_obs:
                 ax.plot(d["age"], d["observed"], linestyle="none", marker="o", markersize=2, color=st["color"])
-            ax.plot(d["age"], d["model"], label=str(v), **st)
+            ax.plot(d["age"], d["model"], label=_label(v), **st)
         _style_axes(
             ax,
             xlabel="Loan age (months)",
@@ -620,7 +629,7 @@ def _pd_term_structure(tables, meta) -> str:
         fig, (ax,) = _figure(1, height=3.2)
         for i, seg in enumerate(segments):
             d = w[w["segment"] == seg].sort_values("year", kind="stable")
-            ax.plot(d["year"], d["cumulative_pd"], marker="o", markersize=3, label=str(seg), **_style(i))
+            ax.plot(d["year"], d["cumulative_pd"], marker="o", markersize=3, label=_label(seg), **_style(i))
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
         _style_axes(
             ax,
@@ -640,7 +649,7 @@ def _pd_term_structure(tables, meta) -> str:
         for ax, seg in zip(axes, shown):
             for i, s in enumerate(per):
                 d = pdt[(pdt["segment"] == seg) & (pdt["scenario"] == s)].sort_values("year", kind="stable")
-                ax.plot(d["year"], d["cumulative_pd"], label=str(s), **_style(i))
+                ax.plot(d["year"], d["cumulative_pd"], label=_label(s), **_style(i))
             ax.xaxis.set_major_locator(MaxNLocator(integer=True))
             _style_axes(
                 ax,
@@ -760,8 +769,8 @@ def _speeds(tables, meta) -> str:
         fig, (ax1, ax2) = _figure(2, height=3.0)
         for i, seg in enumerate(_ordered(sp["segment"])):
             d = sp[sp["segment"] == seg].sort_values("age", kind="stable")
-            ax1.plot(d["age"], d["cpr"], label=str(seg), **_style(i))
-            ax2.plot(d["age"], d["cdr"], label=str(seg), **_style(i))
+            ax1.plot(d["age"], d["cpr"], label=_label(seg), **_style(i))
+            ax2.plot(d["age"], d["cdr"], label=_label(seg), **_style(i))
         _style_axes(
             ax1, xlabel="Loan age (months)", ylabel="CPR (% a year)", title="Prepayment", pct_y=True, legend=False
         )

@@ -9,6 +9,7 @@ from ._folder import (
     describe_inputs,
     folder_differences,
     read_manifest,
+    remove_stale_incomplete,
     sha256_file,
     write_table,
 )
@@ -28,5 +29,5 @@ __all__ = [
     "check_folder_on_disk", "locate_inputs", "stage_inputs", "compare_outputs", "compare_run_folders", "describe_inputs", "judge_reproduction",
     "movement", "movement_against_run", "reproduction_name", "package_versions",
     "read_manifest", "run_identity", "sha256_file", "write_table", "READABLE_VERSIONS", "SCHEMA_VERSION", "RUN_FILES_READ",
-    "check_manifest", "folder_differences",
+    "check_manifest", "folder_differences", "remove_stale_incomplete",
 ]  # fmt: skip

@@ -5,15 +5,23 @@ into place only when every output is written; ``manifest.json`` is written
 last. An existing run folder is never overwritten, and a failed or interrupted
 run leaves no folder that looks complete (the temporary folder is removed, and
 a folder without ``manifest.json`` is never a run).
+
+A process killed outright (SIGKILL, a power cut) cannot clean up: each temporary
+folder holds an owner file (host, process id, start time), and the next run in
+the same place removes the temporary folders of this host whose process is gone
+(:func:`remove_stale_incomplete`).
 """
 
 from __future__ import annotations
 
+import datetime
 import hashlib
 import json
 import os
 import shutil
+import socket
 import uuid
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -21,10 +29,12 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ..errors import RunError
+from ..errors import OutputError, RunError, StaleRunWarning
 from ._manifest import RunManifest, check_manifest
 
 MANIFEST = "manifest.json"
+INCOMPLETE_PREFIX = ".incomplete-"
+OWNER = ".owner.json"
 
 
 def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
@@ -65,9 +75,21 @@ class RunFolder:
                 f"{self.final}: a run folder of this name already exists; creditsurv never "
                 "overwrites a run. Change the config or inputs, or use --out for another folder."
             )
-        self.parent.mkdir(parents=True, exist_ok=True)
-        self.path = self.parent / f".incomplete-{self.name}-{uuid.uuid4().hex[:8]}"
-        self.path.mkdir()
+        if self.parent.exists() and not self.parent.is_dir():
+            raise OutputError(f"{self.parent}: is a file, not a folder; the run folders go in a folder (outputs.dir or --out)")
+        try:
+            self.parent.mkdir(parents=True, exist_ok=True)
+            remove_stale_incomplete(self.parent)
+            self.path = self.parent / f"{INCOMPLETE_PREFIX}{self.name}-{uuid.uuid4().hex[:8]}"
+            self.path.mkdir()
+        except OSError as exc:
+            raise _output_error(exc, self.parent, "cannot create the run folder") from None
+        try:
+            owner = {"host": socket.gethostname(), "pid": os.getpid(), "started": datetime.datetime.now().isoformat(timespec="seconds")}
+            (self.path / OWNER).write_text(json.dumps(owner) + "\n", encoding="utf-8")
+        except OSError as exc:
+            shutil.rmtree(self.path, ignore_errors=True)
+            raise _output_error(exc, self.path, "cannot write into the run folder") from None
 
     def __enter__(self) -> "RunFolder":
         return self
@@ -75,6 +97,8 @@ class RunFolder:
     def __exit__(self, exc_type, exc, tb) -> None:
         if exc_type is not None:
             shutil.rmtree(self.path, ignore_errors=True)
+            if issubclass(exc_type, OSError):
+                raise _output_error(exc, self.path, "the run was not written") from None
 
     def add_table(self, df: pd.DataFrame, name: str, *, csv: bool = False) -> Path:
         """Write ``df`` as ``name`` (``.parquet`` or ``.csv``) and record it."""
@@ -110,11 +134,76 @@ class RunFolder:
             files.append({"file": name, "rows": self.outputs[name]["rows"], "bytes": p.stat().st_size, "sha256": sha256_file(p)})
         manifest = {**manifest, "outputs": files}
         text = json.dumps(manifest, indent=2, sort_keys=True, default=str)
+        (self.path / OWNER).unlink(missing_ok=True)
         (self.path / MANIFEST).write_text(text + "\n", encoding="utf-8")
         if self.final.exists():
             raise RunError(f"{self.final}: appeared while the run was being built; the run was not moved into place")
         os.rename(self.path, self.final)
         return self.final
+
+
+def _output_error(exc: OSError, where: Path, what: str) -> OutputError:
+    """``OutputError`` naming the path and the operating system's reason (no space left, permission denied, ...)."""
+    path = exc.filename or where
+    return OutputError(f"{path}: {what} ({exc.strerror or exc}); nothing was left behind")
+
+
+def _process_running(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # another user's process
+        return True
+    return True
+
+
+def remove_stale_incomplete(parent) -> list[Path]:
+    """Remove the ``.incomplete-*`` folders under ``parent`` left by processes of this host that are gone.
+
+    A folder's owner file names its host, process id and start time. A folder of this host whose
+    process no longer runs is removed; folders of other hosts, of running processes, or without an
+    owner file are left alone. Each folder found is told in one :class:`~creditsurv.errors.StaleRunWarning`.
+
+    Parameters
+    ----------
+    parent : path
+        The folder that holds run folders.
+
+    Returns
+    -------
+    list of pathlib.Path
+        The folders removed.
+    """
+    parent = Path(parent)
+    if not parent.is_dir():
+        return []
+    host = socket.gethostname()
+    removed, kept = [], []
+    for folder in sorted(parent.glob(f"{INCOMPLETE_PREFIX}*")):
+        try:
+            owner = json.loads((folder / OWNER).read_text(encoding="utf-8"))
+            o_host, o_pid, started = str(owner["host"]), int(owner["pid"]), owner.get("started", "?")
+        except (OSError, ValueError, KeyError, TypeError):
+            kept.append(f"{folder.name} (no owner file)")
+            continue
+        if o_host != host:
+            kept.append(f"{folder.name} (host {o_host}, process {o_pid})")
+        elif o_pid != os.getpid() and not _process_running(o_pid):
+            shutil.rmtree(folder, ignore_errors=True)
+            removed.append(folder)
+            warnings.warn(
+                f"{folder}: removed an interrupted run's folder (process {o_pid} of this host, started {started}, is gone)",
+                StaleRunWarning,
+                stacklevel=2,
+            )
+    if kept:
+        warnings.warn(
+            f"{parent}: left alone {len(kept)} unfinished run folder(s) this host cannot judge: {', '.join(kept)}",
+            StaleRunWarning,
+            stacklevel=2,
+        )
+    return removed
 
 
 def describe_inputs(files, relative) -> list[dict]:
