@@ -14,14 +14,9 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from .config import Config, config_from_dict, config_to_dict, load_config, read_yaml
-<<<<<<< HEAD
-from .errors import DataError, RunError
+from .errors import DataError, OutputError, RunError
 from .model import HazardResults, hazard_source, hpi_series_name, parse_macro_key
 from .version import __version__
-=======
-from .errors import DataError, OutputError
-from .model import HazardResults, hazard_source, parse_macro_key
->>>>>>> issue11-faults
 
 
 @dataclass(frozen=True)

@@ -11,11 +11,7 @@ file and the closest match.
 
 from __future__ import annotations
 
-<<<<<<< HEAD
 from pathlib import Path
-=======
-import pandas as pd
->>>>>>> issue11-faults
 
 from ..errors import DataError, did_you_mean, problem_list
 from ..months import format_month
@@ -201,7 +197,6 @@ def preflight_problems(cfg, engine, *, hpi_series_name, run: bool = False) -> li
     list of str
         Each problem starts with the config key at fault and names the file.
     """
-<<<<<<< HEAD
     return [
         *_column_problems(cfg, engine, run),
         *_series_problems(cfg, engine, hpi_series_name),
@@ -209,28 +204,6 @@ def preflight_problems(cfg, engine, *, hpi_series_name, run: bool = False) -> li
         *_month_problems(cfg, engine),
         *_file_problems(cfg, run),
     ]
-=======
-    problems = []
-    loans, panel = engine.columns("loans"), engine.columns("panel")
-    available = sorted(set(loans) | set(panel))
-    for key, column in _named_columns(cfg, run):
-        if column in _DERIVED or column in loans or column in panel:
-            continue
-        problems.append(
-            f"{key}: column {column!r} is in neither the loan table nor the panel"
-            f"{did_you_mean(column, available)} (loan table: {', '.join(loans)})"
-        )
-    (last,) = engine.frame("SELECT max(month_idx) AS last FROM panel_all")["last"].tolist()
-    as_of = int(cfg.as_of)
-    if last is None or bool(pd.isna(last)):  # no rows, or NULL months only
-        problems.append(f"inputs.panel.path: {cfg.inputs.panel.path} has no rows with a readable month")
-    elif int(last) < as_of:
-        problems.append(
-            f"as_of: {format_month(as_of)} is after the panel's last month {format_month(int(last))}; "
-            "the book at the reporting month would be empty"
-        )
-    return problems
->>>>>>> issue11-faults
 
 
 def raise_preflight(cfg, engine, *, hpi_series_name, run: bool = False) -> None:
