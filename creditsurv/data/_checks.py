@@ -189,15 +189,14 @@ CHECKS: tuple[Check, ...] = (
         "loan_fields_invalid", "error", "loans", "rows",
         ("loan_id", "origination_month", "original_balance", "note_rate", "term"),
         "Loan-table rows with no loan id or origination month, a missing or non-positive "
-        "original balance or term, or a note rate that is missing, negative or above 100% a year.",
-        # Above 100% a year no mortgage rate is plausible (our choice): such a value is a typo or a wrong
-        # inputs.loans.rate_unit, and its scheduled balance overflows into missing LTVs further on.
+        "original balance or term, or a note rate that is missing or negative (a rate too high to be "
+        "plausible is note_rate_implausible's).",
         """offending AS (
             SELECT loan_id, origination_month, original_balance, note_rate, term FROM loans
             WHERE loan_id IS NULL OR origination_month IS NULL
                OR original_balance IS NULL OR original_balance <= 0
                OR term IS NULL OR term <= 0
-               OR note_rate IS NULL OR note_rate < 0 OR note_rate > 1)""",
+               OR note_rate IS NULL OR note_rate < 0)""",
     ),
     Check(
         "loan_values_not_finite", "error", "loans", "rows", ("original_balance", "note_rate", "property_value"),

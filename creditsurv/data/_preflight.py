@@ -13,6 +13,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import pandas as pd
+
 from ..errors import DataError, did_you_mean, problem_list
 from ..months import format_month
 from ..sql import quote_ident
@@ -146,8 +148,8 @@ def _month_problems(cfg, engine) -> list[str]:
     (last,) = engine.frame("SELECT max(month_idx) AS last FROM panel_all")["last"].tolist()
     panel_file = engine.sources["panel"]
     as_of = int(cfg.as_of)
-    if last is None or last != last:  # no rows, or NULL months only
-        return [f"as_of: the panel {panel_file} has no rows with a readable month"]
+    if last is None or bool(pd.isna(last)):  # no rows, or NULL months only
+        return [f"inputs.panel.path: {panel_file} has no rows with a readable month"]
     if int(last) < as_of:
         return [(
             f"as_of: {format_month(as_of)} is after the panel's last month {format_month(int(last))} "
