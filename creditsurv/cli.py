@@ -5,7 +5,7 @@ Exit codes (the project's one statement of them; every ``CreditsurvError`` subcl
 
 * 0 -- success.
 * 1 -- a problem in the data or the machine: data and data-check errors, a feature that cannot be
-  evaluated on the data, model, projection and run errors, an output the operating system refuses
+  evaluated on the data, model, projection, engine (a failed Spark step) and run errors, an output the operating system refuses
   to write (``OutputError``).
 * 2 -- usage or config errors: the command line or the YAML config is wrong (``ConfigError``,
   argparse's own usage errors), or bad arguments to the demo simulator.

@@ -13,6 +13,7 @@ One root class, one subclass per stage::
     │   ├── SeparationError                 a covariate or level has no events of a cause
     │   └── SingularDesignError             collinear design columns
     ├── ProjectionError      (ValueError)  scenarios or loans cannot be projected
+    ├── EngineError                         the engine's workers failed a step (e.g. Spark tasks)
     └── RunError                            the run folder or its record is unusable
         ├── OutputError                     an output cannot be written (the OS refused: permissions, full disk, ...)
         └── ReproduceMismatch               a reproduced run differs from its record
@@ -33,7 +34,7 @@ import difflib
 
 __all__ = [
     "ConfigError", "ConvergenceError", "ConvergenceWarning", "CreditsurvError", "CreditsurvWarning",
-    "DataCheckError", "DataCheckWarning", "DataError", "FeatureError", "FewEventsWarning", "ModelError",
+    "DataCheckError", "DataCheckWarning", "DataError", "EngineError", "FeatureError", "FewEventsWarning", "ModelError",
     "OutputError", "ProjectionError", "ReproduceMismatch", "RunError", "SeparationError", "SimulationError",
     "SingularDesignError", "StaleRunWarning", "did_you_mean", "problem_list",
 ]  # fmt: skip
@@ -104,6 +105,16 @@ class SingularDesignError(ModelError):
 
 class ProjectionError(CreditsurvError, ValueError):
     """Scenarios or loans cannot be projected."""
+
+    exit_code = 1
+
+
+class EngineError(CreditsurvError):
+    """The engine's workers failed a step: Spark tasks that raised, or executors that could not start Python.
+
+    The message names the step (``the fit's first pass``), the root cause's last
+    line and, where it helps, how to fix it.
+    """
 
     exit_code = 1
 

@@ -222,3 +222,20 @@ def test_to_dict_and_sha256_are_stable(tmp_path):
     # and any change of value changes the hash
     changed = config_from_dict({**plain, "seed": plain["seed"] + 1}, base_dir=tmp_path)
     assert config_sha256(changed) != config_sha256(first)
+
+
+def test_the_executors_python_is_named_once_and_the_driver_python_cannot_change(tmp_path):
+    # The session is built inside the running process (docs/scaling.md, "The executors' Python").
+    import sys
+
+    two = {"spark.pyspark.python": "/opt/a/bin/python", "spark.executorEnv.PYSPARK_PYTHON": "/opt/b/bin/python"}
+    assert _problems(lambda d: d.update(spark={"settings": two}), tmp_path) == [
+        "spark: settings: spark.pyspark.python ('/opt/a/bin/python') and spark.executorEnv.PYSPARK_PYTHON "
+        "('/opt/b/bin/python') name different Pythons for the executors; keep one"
+    ]
+    (problem,) = _problems(lambda d: d.update(spark={"settings": {"spark.pyspark.driver.python": "/opt/a/bin/python"}}), tmp_path)
+    assert problem.startswith("spark: settings.spark.pyspark.driver.python: cannot apply: the driver is this creditsurv process")
+    same = {"spark.pyspark.python": "/opt/a/bin/python", "spark.executorEnv.PYSPARK_PYTHON": "/opt/a/bin/python",
+            "spark.pyspark.driver.python": sys.executable}  # fmt: skip
+    data = {**MINIMAL, "spark": {"settings": same}}
+    assert config_from_dict(data, base_dir=tmp_path).spark.settings == same

@@ -139,6 +139,22 @@ def test_constant_hazards_match_the_geometric_closed_forms():
     np.testing.assert_allclose(res.loans["pd_12m_base"], hd / (hd + hp) * (1 - s12), rtol=1e-12)
 
 
+def test_conditional_pd_of_a_year_keeps_its_digits_when_survival_is_small():
+    # closed form (geometric series, hand computation): with constant hazards the PD of a
+    # year given survival to its start is hD (1 + q + ... + q^11) = hD (1 - q^12) / (1 - q),
+    # q = 1 - hD - hP, whatever the year. With hP = 0.3 survival is ~1e-19 by year 6, where
+    # F(12y) - F(12(y-1)) keeps no correct digit.
+    hd, hp = 1e-4, 0.3
+    q = 1 - hd - hp
+    table = pd.DataFrame({"age": np.arange(1, 400), "default": hd, "prepay": hp})
+    tables, sink = _collect()
+    project_loans(_loans(), HazardTable(table), {"base": _history()}, as_of_idx=AS_OF, term_writer=sink)
+    t = pa.concat_tables(tables).to_pandas()
+    full = t[(t["loan_id"] == "L07") & (t["scenario"] == "base")]  # 360 months ahead: 30 whole years
+    assert len(full) == 30 and full["survival"].min() < 1e-50
+    np.testing.assert_allclose(full["conditional_pd"], hd * (1 - q**12) / (1 - q), rtol=1e-12)
+
+
 def test_survival_plus_incidences_is_one_and_survival_never_rises():
     tables, sink = _collect()
     project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS, curve_writer=sink)
@@ -309,7 +325,7 @@ def test_term_structure_matches_per_loan_annual_rows_with_carry_past_maturity():
         assert row.loc[y, "cumulative_pd_balance"] == pytest.approx((w * F[:, y]).sum() / w.sum(), rel=1e-12)
         cond = (F[:, y].sum() - F[:, y - 1].sum()) / S[:, y - 1].sum()
         assert row.loc[y, "conditional_pd_count"] == pytest.approx(cond, rel=1e-10, abs=1e-15)
-    # per-loan conditional PD: (F(12y) - F(12(y-1))) / S(12(y-1))
+    # per-loan conditional PD: (F(12y) - F(12(y-1))) / S(12(y-1)), here where survival is not small
     g = t[(t.loan_id == "L02") & (t.scenario == "base")].set_index("year_ahead")
     assert g.loc[3, "conditional_pd"] == pytest.approx((g.loc[3, "cumulative_pd"] - g.loc[2, "cumulative_pd"]) / g.loc[2, "survival"], rel=1e-12)
 

@@ -7,7 +7,13 @@ tolerances are relative, 1e-9 (sums are added in another order on Spark).
 from __future__ import annotations
 
 import dataclasses
+import os
+import re
 import shutil
+import socket
+import subprocess
+import sys
+import time
 from pathlib import Path
 
 import numpy as np
@@ -104,9 +110,10 @@ def _close(a: pd.DataFrame, b: pd.DataFrame, atol: float = 0.0) -> None:
     pd.testing.assert_frame_equal(a, b, check_exact=False, rtol=RTOL, atol=atol)
 
 
-# Conditional PDs of the far years are differences of nearly equal cumulative PDs
-# (values down to 1e-11): there a last-bit difference in the pooled sums shows at
-# ~1e-9 relative, so those tables are also allowed 1e-12 absolute on probabilities.
+# The segment tables' conditional PDs of the far years are differences of nearly equal
+# pooled cumulative PDs (values down to 1e-11): there a last-bit difference in the pooled
+# sums shows at ~1e-9 relative, so those tables are also allowed 1e-12 absolute on
+# probabilities. The per-loan conditional PD is checked without that floor.
 PROB_ATOL = 1e-12
 
 
@@ -156,6 +163,8 @@ def test_partitioned_ecl_equals_the_single_machine_one(both_engines):
     pa_a, pa_b = duck["annual"], spark["annual_reference"]
     assert pa_a.column_names == pa_b.column_names and pa_a.num_rows == pa_b.num_rows
     _close(pa_a.to_pandas(), pa_b.to_pandas(), atol=PROB_ATOL)
+    # the year's conditional PD adds the year's marginal PDs: 1e-9 relative even where survival is tiny
+    np.testing.assert_allclose(pa_b["conditional_pd"].to_numpy(), pa_a["conditional_pd"].to_numpy(), rtol=RTOL, atol=0)
 
 
 # --------------------------------------------------------------------------- the data checks on crafted bad books
@@ -227,6 +236,10 @@ def test_a_whole_run_on_spark_writes_the_same_tables(spark, spark_book, tmp_path
     assert list(la["loan_id"]) == list(lb["loan_id"]) and list(la["stage"]) == list(lb["stage"])
     for col in ("pd_12m", "pd_lifetime", "ead", "lgd", "ecl_12m", "ecl_lifetime", "ecl_reported"):
         np.testing.assert_allclose(lb[col], la[col], rtol=RTOL, atol=1e-12, err_msg=col)
+    ya, yb = pd.read_parquet(a / "pd_annual_by_loan.parquet"), pd.read_parquet(b / "pd_annual_by_loan.parquet")
+    assert len(ya) == len(yb) and list(ya["loan_id"]) == list(yb["loan_id"])
+    # each engine with its own fit: conditional PDs agree to 1e-9 relative with no absolute floor
+    np.testing.assert_allclose(yb["conditional_pd"], ya["conditional_pd"], rtol=RTOL, atol=0)
     ta, tb = pd.read_csv(a / "segment_pd_table.csv"), pd.read_csv(b / "segment_pd_table.csv")
     np.testing.assert_allclose(tb["cumulative_pd"], ta["cumulative_pd"], rtol=RTOL, atol=1e-12)
     # The validation pack runs through the same engine interface: every table, on both engines.
@@ -242,3 +255,132 @@ def test_a_whole_run_on_spark_writes_the_same_tables(spark, spark_book, tmp_path
             _close(va[["variable", "n_current"]], vb[["variable", "n_current"]])
             continue
         _close(va, vb, atol=PROB_ATOL)
+
+
+# --------------------------------------------------------------------------- a standalone cluster on localhost
+#
+# Master and worker are separate JVMs, executors start their own Python workers:
+# the interpreter the config names must reach them. The runs go through the
+# command line in a subprocess (one SparkContext per process; this module's local
+# session stays as it is). The data checks are pure Spark SQL, tested above in
+# local mode; here they are off, to keep the cluster's jobs few.
+
+CLUSTER_LOANS = 3_000
+CLUSTER_SEED = 4242
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _wait_for(path: Path, text: str, seconds: float, procs) -> None:
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline:
+        if path.exists() and text in path.read_text(errors="replace"):
+            return
+        if any(p.poll() is not None for p in procs):
+            break
+        time.sleep(0.2)
+    raise RuntimeError(f"{path.name} did not say {text!r}:\n{path.read_text(errors='replace')[-2000:]}")
+
+
+@pytest.fixture(scope="module")
+def standalone_cluster(tmp_path_factory):
+    """``spark://127.0.0.1:<port>``: a standalone master and one worker (2 cores, 1 GB), stopped at teardown."""
+    import pyspark
+
+    folder = tmp_path_factory.mktemp("standalone")
+    home = Path(pyspark.__file__).parent
+    env = {**os.environ, "SPARK_HOME": str(home), "SPARK_LOCAL_IP": "127.0.0.1", "SPARK_LOG_DIR": str(folder)}
+    env.pop("PYSPARK_PYTHON", None)  # the executors' Python comes from the config alone
+    spark_class = str(home / "bin" / "spark-class")
+    port = _free_port()
+    master_cmd = [spark_class, "org.apache.spark.deploy.master.Master", "--host", "127.0.0.1", "--port", str(port),
+                  "--webui-port", str(_free_port())]  # fmt: skip
+    worker_cmd = [spark_class, "org.apache.spark.deploy.worker.Worker", f"spark://127.0.0.1:{port}", "--host", "127.0.0.1",
+                  "--cores", "2", "--memory", "1g", "--webui-port", str(_free_port()), "--work-dir", str(folder / "work")]  # fmt: skip
+    procs = []
+    try:
+        for name, cmd in (("master", master_cmd), ("worker", worker_cmd)):
+            with open(folder / f"{name}.log", "wb") as log:
+                procs.append(subprocess.Popen(cmd, stdout=log, stderr=subprocess.STDOUT, env=env, start_new_session=True))
+        _wait_for(folder / "master.log", "Registering worker", 120, procs)
+        yield f"spark://127.0.0.1:{port}"
+    finally:
+        for p in procs:
+            p.terminate()
+        for p in procs:
+            try:
+                p.wait(timeout=30)
+            except subprocess.TimeoutExpired:
+                p.kill()
+                p.wait()
+
+
+@pytest.fixture(scope="module")
+def cluster_workspace(tmp_path_factory):
+    """A small book and its config: a one-covariate model, the data checks off, one DuckDB run to compare with."""
+    from creditsurv.config import DATA_CHECK_NAMES, config_from_dict
+    from creditsurv.demo import write_demo_book
+
+    folder = tmp_path_factory.mktemp("cluster_book")
+    write_demo_book(folder / "book", CLUSTER_LOANS, CLUSTER_SEED)
+    data = demo_config_data(folder / "book", folder / "duckdb")
+    data["model"]["baseline"] = {"kind": "age_bands", "edges": [24]}
+    data["model"]["covariates"] = [{"name": "credit_score", "column": "credit_score", "transform": "standardise"}]
+    data["checks"] = {"severity": {name: "off" for name in DATA_CHECK_NAMES}}
+    data["validation"] = {"bootstrap": 10}
+    data["windows"].pop("out_of_time")  # fewer validation queries: no backtest
+    data["outputs"]["monthly_tables"] = False
+    duck = pipeline.execute_run(config_from_dict(data, base_dir=folder), folder / "duckdb").path
+    return folder, data, duck
+
+
+def _cli_run_on(cluster: str, folder: Path, data: dict, name: str, python: str):
+    data = {**data, "engine": "spark", "outputs": {**data["outputs"], "dir": str(folder / name)}}
+    data["spark"] = {"master": cluster, "partitions": 2,
+                     "settings": {"spark.pyspark.python": python, "spark.task.maxFailures": "1", "spark.ui.enabled": "false"}}  # fmt: skip
+    config = folder / f"{name}.yaml"
+    config.write_text(yaml.safe_dump(data, sort_keys=False))
+    env = {k: v for k, v in os.environ.items() if k != "PYSPARK_PYTHON"}
+    main = "import sys; from creditsurv.cli import main; sys.exit(main())"
+    return subprocess.run([sys.executable, "-c", main, "run", str(config)], capture_output=True, text=True, env=env, timeout=600)
+
+
+def test_a_standalone_cluster_runs_a_small_book_as_duckdb_does(standalone_cluster, cluster_workspace):
+    # The reference is the DuckDB engine's run of the same config (module docstring).
+    folder, data, duck = cluster_workspace
+    done = _cli_run_on(standalone_cluster, folder, data, "cluster", sys.executable)
+    assert done.returncode == 0, done.stderr[-3000:]
+    (on_cluster,) = (folder / "cluster").iterdir()
+    ca, cb = pd.read_csv(duck / "coefficients.csv"), pd.read_csv(on_cluster / "coefficients.csv")
+    assert list(ca.columns) == list(cb.columns) and len(ca) == len(cb) > 2
+    numeric = ca.select_dtypes("number").columns
+    _close(ca[numeric], cb[numeric])
+    la, lb = pd.read_parquet(duck / "loan_ecl.parquet"), pd.read_parquet(on_cluster / "loan_ecl.parquet")
+    assert list(la["loan_id"]) == list(lb["loan_id"]) and list(la["stage"]) == list(lb["stage"]) and len(la) > 500
+    for col in ("pd_12m", "pd_lifetime", "ecl_lifetime", "ecl_reported"):
+        np.testing.assert_allclose(lb[col], la[col], rtol=RTOL, atol=1e-12, err_msg=col)
+    ya, yb = pd.read_parquet(duck / "pd_annual_by_loan.parquet"), pd.read_parquet(on_cluster / "pd_annual_by_loan.parquet")
+    assert ya[["loan_id", "scenario", "year_ahead"]].astype(str).equals(yb[["loan_id", "scenario", "year_ahead"]].astype(str))
+    # conditional_pd adds the year's marginal PDs, so no absolute floor is needed even where survival is tiny
+    np.testing.assert_allclose(yb["conditional_pd"], ya["conditional_pd"], rtol=RTOL, atol=0)
+
+
+def test_executors_without_creditsurv_fail_with_one_line_naming_the_step(standalone_cluster, cluster_workspace, tmp_path):
+    # A bare virtual environment: the standard library only, no numpy, pandas or creditsurv.
+    subprocess.run([sys.executable, "-m", "venv", "--without-pip", str(tmp_path / "bare")], check=True)
+    folder, data, _duck = cluster_workspace
+    bare = str(tmp_path / "bare" / "bin" / "python")
+    done = _cli_run_on(standalone_cluster, folder, data, "bare", bare)
+    assert done.returncode == 1
+    assert "Traceback" not in done.stderr
+    last = done.stderr.strip().splitlines()[-1]
+    assert re.fullmatch(
+        r"EngineError: Spark tasks failed in the fit's first pass: ModuleNotFoundError: No module named '\w+'; "
+        rf"the executors started '{re.escape(bare)}', which must be a Python with creditsurv installed: .*spark\.archives.*",
+        last,
+    ), last
+    assert not (folder / "bare").exists() or not any((folder / "bare").iterdir())

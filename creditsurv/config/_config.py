@@ -17,6 +17,7 @@ import dataclasses
 import hashlib
 import json
 import os
+import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Literal
@@ -435,7 +436,32 @@ class SparkSettings:
     master: str = field(default="local[2]", metadata=_doc("Spark master URL, e.g. local[2] or spark://host:7077"))
     app_name: str = field(default="creditsurv", metadata=_doc("Spark application name"))
     partitions: int = field(default=8, metadata=_doc("partitions for the loan-month and loan tables", min=1))
-    settings: dict[str, str] = field(default_factory=dict, metadata=_doc("extra Spark settings (spark.* keys)"))
+    settings: dict[str, str] = field(
+        default_factory=dict,
+        metadata=_doc(
+            "extra Spark settings (spark.* keys); spark.pyspark.python (or spark.executorEnv.PYSPARK_PYTHON) "
+            "is the Python the executors start"
+        ),
+    )
+
+    def _validate(self) -> list[str]:
+        # The session is built inside this process: the driver's Python is the one running,
+        # and the executors' Python is read from one place (see engines.spark_session).
+        problems = []
+        python = self.settings.get("spark.pyspark.python")
+        env_python = self.settings.get("spark.executorEnv.PYSPARK_PYTHON")
+        if python and env_python and python != env_python:
+            problems.append(
+                f"settings: spark.pyspark.python ({python!r}) and spark.executorEnv.PYSPARK_PYTHON ({env_python!r}) "
+                "name different Pythons for the executors; keep one"
+            )
+        driver = self.settings.get("spark.pyspark.driver.python")
+        if driver and os.path.abspath(driver) != os.path.abspath(sys.executable):
+            problems.append(
+                f"settings.spark.pyspark.driver.python: cannot apply: the driver is this creditsurv process, already "
+                f"running {sys.executable}; remove the key (run creditsurv with {driver} to drive Spark from it)"
+            )
+        return problems
 
 
 @dataclass(frozen=True)

@@ -58,7 +58,7 @@ from ..data import (
     problem_text,
     resolve_inputs,
 )
-from ..errors import ConfigError, DataError
+from ..errors import ConfigError, DataError, EngineError
 from ..model import (
     FirstPass,
     batch_design,
@@ -72,6 +72,7 @@ __all__ = [
     "SparkEngine",
     "book_at_as_of",
     "event_counts",
+    "executor_python",
     "label_events",
     "macro_history",
     "open_panel",
@@ -92,6 +93,41 @@ _SQL_SETTINGS = {
 # --------------------------------------------------------------------------- the session
 
 
+def executor_python(settings) -> str | None:
+    """The Python the executors of a config's ``spark`` section start.
+
+    PySpark takes the executors' interpreter from the ``PYSPARK_PYTHON``
+    environment variable of the process that starts the session, which is the
+    creditsurv process itself; the ``spark.pyspark.python`` setting is read
+    only by ``spark-submit``. So creditsurv reads it here, in this order:
+
+    1. ``spark.settings`` ``spark.pyspark.python`` (or
+       ``spark.executorEnv.PYSPARK_PYTHON``; the config rejects two different ones);
+    2. the ``PYSPARK_PYTHON`` environment variable;
+    3. with a ``local`` master, this very interpreter (local workers are child
+       processes of this machine and need creditsurv, numpy and duckdb);
+    4. otherwise None: PySpark's default, ``python3`` on each worker host's PATH.
+
+    Parameters
+    ----------
+    settings : config ``SparkSettings``
+
+    Returns
+    -------
+    str or None
+        A path (absolute, or relative to the executor's working folder, e.g.
+        ``./environment/bin/python`` in an archive shipped with ``spark.archives``)
+        or a command name.
+    """
+    conf = settings.settings
+    chosen = conf.get("spark.pyspark.python") or conf.get("spark.executorEnv.PYSPARK_PYTHON")
+    if chosen:
+        return chosen
+    if os.environ.get("PYSPARK_PYTHON"):
+        return os.environ["PYSPARK_PYTHON"]
+    return sys.executable if settings.master.startswith("local") else None
+
+
 def spark_session(settings):
     """Get or create the SparkSession of a config's ``spark`` section.
 
@@ -99,34 +135,56 @@ def spark_session(settings):
     ----------
     settings : config ``SparkSettings``
         ``master``, ``app_name``, ``partitions`` (also the shuffle partitions)
-        and extra ``settings`` (``spark.*`` keys).
+        and extra ``settings`` (``spark.*`` keys). The executors start the
+        Python :func:`executor_python` names.
 
     Returns
     -------
     (SparkSession, bool)
         The session, and whether this call created it (then the caller stops it).
+
+    Raises
+    ------
+    ConfigError
+        The session cannot start, or one is already running in this process
+        with executors on another Python than the config names.
     """
     from pyspark.sql import SparkSession
 
     active = SparkSession.getActiveSession()
+    python = executor_python(settings)
+    named = settings.settings.get("spark.pyspark.python") or settings.settings.get("spark.executorEnv.PYSPARK_PYTHON")
+    if active is not None and named and active.sparkContext.pythonExec != named:
+        raise ConfigError(
+            f"spark.settings.spark.pyspark.python: this process already runs a Spark session whose executors start "
+            f"{active.sparkContext.pythonExec!r}, not {named!r}; stop that session first"
+        )
     builder = SparkSession.builder.master(settings.master).appName(settings.app_name)
     conf = {
         "spark.ui.showConsoleProgress": "false",
+        # A failed task's traceback is logged by the JVM at WARN on every attempt; creditsurv
+        # raises its last line as one error instead (``_tasks``). The config may lower this.
+        "spark.log.level": "ERROR",
         "spark.sql.shuffle.partitions": str(settings.partitions),
         **_SQL_SETTINGS,
         **dict(settings.settings),
     }
-    if settings.master.startswith("local") and not os.environ.get("PYSPARK_PYTHON"):
-        # Local workers are child processes of this machine: they must run this very
-        # interpreter (with creditsurv, numpy and duckdb installed), not whatever
-        # ``python3`` comes first on PATH. PySpark reads only the environment variable.
-        os.environ["PYSPARK_PYTHON"] = sys.executable
     for key, value in conf.items():
         builder = builder.config(key, str(value))
+    before = os.environ.get("PYSPARK_PYTHON")
     try:
+        if python:
+            # Read once, when the SparkContext starts; restored below so that the
+            # setting stays this session's.
+            os.environ["PYSPARK_PYTHON"] = python
         spark = builder.getOrCreate()
     except Exception as exc:  # noqa: BLE001 - py4j and JVM start-up errors have no common base
         raise ConfigError(f"spark: cannot start a Spark session on {settings.master!r}: {_first_line(exc)}") from None
+    finally:
+        if before is None:
+            os.environ.pop("PYSPARK_PYTHON", None)
+        else:
+            os.environ["PYSPARK_PYTHON"] = before
     for key, value in {**_SQL_SETTINGS, "spark.sql.shuffle.partitions": str(settings.partitions)}.items():
         spark.conf.set(key, value)
     return spark, active is None
@@ -754,7 +812,7 @@ class _CachedSums:
         bc = self._sc.broadcast(np.asarray(beta, dtype=np.float64))
         try:
             fn = functools.partial(_sums_partition, bc, self._codes, self._kind, need_hess)
-            results = sorted(_collect(self._blocks.mapPartitionsWithIndex(fn)), key=lambda r: r[0])
+            results = sorted(_collect(self._blocks.mapPartitionsWithIndex(fn), "the fit's Newton iterations"), key=lambda r: r[0])
         finally:
             bc.destroy()
         ll, g = 0.0, np.zeros(beta.shape)
@@ -798,7 +856,8 @@ def _design_sums(engine, spec, sql, params, *, collapse, dropped, codes, kind):
     except Exception as exc:  # noqa: BLE001
         raise DataError(f"cannot read the risk set for the fit: {_first_line(exc)}") from None
     try:
-        parts = sorted(_collect(blocks.mapPartitionsWithIndex(functools.partial(_first_pass_partition, p))), key=lambda r: r[0])
+        first_pass = blocks.mapPartitionsWithIndex(functools.partial(_first_pass_partition, p))
+        parts = sorted(_collect(first_pass, "the fit's first pass"), key=lambda r: r[0])
     except BaseException:
         blocks.unpersist()
         raise
@@ -812,20 +871,52 @@ def _design_sums(engine, spec, sql, params, *, collapse, dropped, codes, kind):
     return _CachedSums(engine, blocks, first, fit_fingerprint(first.n, spec.columns, digests), codes, kind)
 
 
-def _collect(rdd):
-    """``rdd.collect()`` with creditsurv's own errors raised from a task shown as themselves."""
+def _collect(rdd, step: str):
+    """``rdd.collect()``, its task failures raised as one-line creditsurv errors (see :func:`_tasks`)."""
+    with _tasks(rdd.context, step):
+        return rdd.collect()
+
+
+@contextmanager
+def _tasks(sc, step: str):
+    """Run Spark jobs whose tasks run creditsurv's Python; a failure becomes one line naming ``step``.
+
+    creditsurv's own errors raised in a task are raised as themselves; any other
+    task failure (a Python exception, an executor that cannot start its Python)
+    becomes an :class:`EngineError` with the root cause's last line.
+    """
     from ..errors import CreditsurvError
 
     try:
-        return rdd.collect()
-    except Exception as exc:  # noqa: BLE001
+        yield
+    except Exception as exc:  # noqa: BLE001 - py4j, PySpark and JVM errors have no common base
         text = str(exc)
         for cls in _error_classes(CreditsurvError):
             marker = f"{cls.__module__}.{cls.__name__}: "
             if marker in text:
                 message = text.split(marker, 1)[1].split("\n\n")[0].split("\n\tat ")[0].strip()
                 raise cls(message) from None
-        raise
+        cause = _root_cause(exc)
+        message = f"Spark tasks failed in {step}: {cause}"
+        if re.search(r"ModuleNotFoundError|ImportError|Cannot run program|No such file", cause):
+            message += (
+                f"; the executors started {sc.pythonExec!r}, which must be a Python with creditsurv installed: "
+                "set spark.settings.spark.pyspark.python to one on every worker host, or ship a packed "
+                "environment with spark.archives (README, Spark)"
+            )
+        raise EngineError(message) from None
+
+
+def _root_cause(exc: Exception) -> str:
+    """The last line of the innermost error in a Spark failure: the Python exception, else the last Java cause."""
+    lines = str(exc).splitlines()
+    starts = [i for i, line in enumerate(lines) if line.strip().startswith("Traceback (most recent call last)")]
+    if starts:
+        for line in lines[starts[-1] + 1:]:
+            if line.strip() and not line[0].isspace():
+                return line.strip()
+    causes = [line.strip()[len("Caused by: "):] for line in lines if line.strip().startswith("Caused by: ")]
+    return causes[-1] if causes else _first_line(exc)
 
 
 def _error_classes(root):
@@ -883,16 +974,18 @@ def _map_book(engine, fn, book, writers, progress=None) -> list:
     rdd = sc.parallelize(slices, len(slices)).mapPartitionsWithIndex(task).persist(StorageLevel.MEMORY_AND_DISK)
     results = []
     try:
-        _collect(rdd.map(lambda b: b["n"]))  # every partition in parallel; results stay cached on the executors
+        step = "the projection and ECL of the book"
+        _collect(rdd.map(lambda b: b["n"]), step)  # every partition in parallel; results stay cached on the executors
         done, total = 0, len(book)
-        for bundle in rdd.toLocalIterator():
-            for name in wanted:
-                for data in bundle["tables"][name]:
-                    writers[name](_from_ipc(data))
-            results.append(bundle["result"])
-            done += bundle["n"]
-            if progress is not None:
-                progress(done, total)
+        with _tasks(sc, step):
+            for bundle in rdd.toLocalIterator():
+                for name in wanted:
+                    for data in bundle["tables"][name]:
+                        writers[name](_from_ipc(data))
+                results.append(bundle["result"])
+                done += bundle["n"]
+                if progress is not None:
+                    progress(done, total)
     finally:
         rdd.unpersist()
     return results

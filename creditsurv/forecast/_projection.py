@@ -704,7 +704,8 @@ def project_loans(
     term_writer : callable(pyarrow.Table), optional
         Per-loan annual term structure: ``loan_id``, ``scenario``,
         ``year_ahead``, ``cumulative_pd``, ``survival``, ``conditional_pd``, for years 1 ..
-        ceil(remaining / 12).
+        ceil(remaining / 12). ``conditional_pd`` is the PD of the year given survival to its
+        start: the year's marginal PDs added up, divided by S(12(y-1)).
     on_chunk : callable(ChunkProjection), optional
         Further consumer of each chunk (used by loss).
 
@@ -867,14 +868,17 @@ def _term_table(loan_id, names, curves, remaining) -> pa.Table:
     yidx = _year_index(H, years)
     ny = np.ceil(remaining / 12).astype(np.int64)
     ymask = np.arange(1, years + 1)[None, :] <= ny[:, None]
+    starts = 12 * np.arange(years)
     cols = {"cumulative_pd": [], "survival": [], "conditional_pd": []}
     for s in names:
         F = curves[s].cum_default[:, yidx]
         S = curves[s].survival[:, yidx]
-        F_prev = np.concatenate([np.zeros((n, 1)), F[:, :-1]], axis=1)
-        S_prev = np.concatenate([np.ones((n, 1)), S[:, :-1]], axis=1)
+        # The year's marginal PDs added up, not F(12y) - F(12(y-1)): late in a loan's life
+        # that difference of two close running sums keeps few correct digits.
+        year_pd = np.add.reduceat(curves[s].marginal_default, starts, axis=1)
+        S_prev = curves[s].survival_prev[:, starts]
         with np.errstate(invalid="ignore", divide="ignore"):
-            cond = np.where(S_prev > 0, (F - F_prev) / S_prev, 0.0)
+            cond = np.where(S_prev > 0, year_pd / S_prev, 0.0)
         cols["cumulative_pd"].append(F)
         cols["survival"].append(S)
         cols["conditional_pd"].append(cond)
