@@ -162,11 +162,16 @@ def preflight(ctx, engine) -> dict:
     """
     import pandas as pd
 
+    from .data import check_severity
     from .forecast import load_scenario_paths
 
     raise_preflight(ctx.cfg, engine, run=True)
     history = engine.macro_history() if engine.has_table("macro") else pd.DataFrame()
-    return load_scenario_paths(ctx.cfg.scenarios, history, as_of_idx=ctx.as_of)
+    checks = ctx.cfg.checks
+    return load_scenario_paths(
+        ctx.cfg.scenarios, history, as_of_idx=ctx.as_of, non_negative=checks.non_negative_series,
+        negative_severity=checks.severity.get("macro_values_negative", check_severity("macro_values_negative")),
+    )
 
 
 def _config_text(cfg) -> str | None:

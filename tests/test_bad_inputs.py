@@ -250,6 +250,18 @@ def negative_unemployment(ws):
     return ["run", str(ws.config)]
 
 
+@case("7", 1, r"^ProjectionError: 1 problem with the scenario paths: scenario 'downside' .*downside\.csv\): series 'hpi_north' is negative in months 2026-0[1-9]")
+def negative_house_prices_in_a_scenario(ws):
+    # A scenario is checked as the history is (checks.non_negative_series), before the fit.
+    def dip(f):
+        row = f.index[f["month"].astype(str).str.startswith("2026")][0]
+        f.loc[row, "hpi_north"] = -5.0
+        return f
+
+    ws.edit_table("scenarios/downside.csv", dip)
+    return ["run", str(ws.config)]
+
+
 
 # item 8
 # Problems are found before the fit: each is the preflight's DataError (or the scenario check's

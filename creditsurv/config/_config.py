@@ -26,7 +26,7 @@ import yaml
 
 from ..errors import ConfigError, did_you_mean, problem_list
 from ..months import format_month
-from ._schema import FilePath, Month, build, describe
+from ._schema import FilePath, Month, build, describe, is_key
 from ._weights import weight_problems
 
 __all__ = [
@@ -523,7 +523,9 @@ class Config:
         default=False, metadata=_doc("the inputs are synthetic (the report then says so among its cautions)")
     )
     source: FilePath | None = field(default=None, init=False, compare=False, repr=False)
-    folder: Path = field(default=Path("."), init=False, compare=False, repr=False)
+    # The folder relative paths were resolved against (set by config_from_dict; the working folder for a
+    # Config built directly). Not a key; an ordinary field so that dataclasses.replace keeps it.
+    folder: Path = field(default_factory=Path.cwd, compare=False, repr=False, metadata={"loader_state": True})
 
     def relative(self, path) -> str:
         """``path`` relative to the config's folder, with ``/`` separators: how outputs name files.
@@ -648,7 +650,7 @@ def load_config(path: str | Path) -> Config:
 
 def _plain(value, path_text):
     if dataclasses.is_dataclass(value):
-        return {f.name: _plain(getattr(value, f.name), path_text) for f in dataclasses.fields(value) if f.init}
+        return {f.name: _plain(getattr(value, f.name), path_text) for f in dataclasses.fields(value) if is_key(f)}
     if isinstance(value, Month):
         return format_month(value)
     if isinstance(value, Path):
@@ -691,7 +693,7 @@ def config_files(cfg: Config) -> list[tuple[str, Path]]:
     def walk(value, key):
         if dataclasses.is_dataclass(value):
             for f in dataclasses.fields(value):
-                if f.init:
+                if is_key(f):
                     walk(getattr(value, f.name), f"{key}.{f.name}" if key else f.name)
         elif isinstance(value, tuple):
             for i, item in enumerate(value):

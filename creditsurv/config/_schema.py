@@ -171,7 +171,7 @@ class _Builder:
         if not isinstance(value, dict):
             self.problem(path, f"expected a mapping of keys, got {value!r}")
             return None
-        fields = {f.name: f for f in dataclasses.fields(cls) if f.init}
+        fields = {f.name: f for f in dataclasses.fields(cls) if is_key(f)}
         hints = typing.get_type_hints(cls, include_extras=False)
         for key in value:
             if key not in fields:
@@ -223,12 +223,17 @@ def build(cls, data: dict, base_dir: Path):
     return obj, builder.problems
 
 
+def is_key(f: dataclasses.Field) -> bool:
+    """Whether a schema field is a config key (not state the loader sets, such as the config's folder)."""
+    return f.init and not f.metadata.get("loader_state", False)
+
+
 def describe(cls, prefix: str = "") -> list[tuple[str, str, str, str]]:
     """Rows ``(key path, type, default, doc)`` for every key of the schema."""
     rows = []
     hints = typing.get_type_hints(cls)
     for f in dataclasses.fields(cls):
-        if not f.init:
+        if not is_key(f):
             continue
         path = _join(prefix, f.name)
         tp = hints[f.name]

@@ -12,6 +12,7 @@ from ._checks import (
     Check,
     PlannedCheck,
     check_frame,
+    check_severity,
     format_checks,
     plan_checks,
     raise_for_errors,
@@ -44,7 +45,7 @@ from ._preflight import preflight_problems, raise_preflight
 __all__ = [
     "BOOK_SQL", "CAUSE_CODES", "CHECKS", "CHECK_COLUMNS", "Check", "EVENTS", "LOAN_COLUMNS", "LOAN_MONTHS_SQL",
     "LOAN_OUTCOMES_SQL", "MACRO_COLUMNS", "OUTCOME_CONTINUE", "OUTCOME_DEFAULT", "OUTCOME_PREPAY",
-    "PANEL_COLUMNS", "PlannedCheck", "Source", "check_frame", "event_params",
+    "PANEL_COLUMNS", "PlannedCheck", "Source", "check_frame", "check_severity", "event_params",
     "file_format", "format_checks", "input_sources", "macro_series_used", "passthrough_columns", "plan_checks",
     "preflight_problems", "problem_text", "raise_for_errors", "raise_preflight", "resolve_inputs",
 ]  # fmt: skip

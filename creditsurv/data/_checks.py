@@ -441,3 +441,8 @@ def format_checks(checks: pd.DataFrame) -> str:
             flag = "FAIL" if r["severity"] == "error" else "WARN"
         lines.append(f"{flag} {r['check']:<{width}} {r['count']:>10,}")
     return "\n".join(lines)
+
+
+def check_severity(name: str) -> str:
+    """The default severity of the data check ``name`` (``checks.severity`` in the config overrides it)."""
+    return _CHECKS_BY_NAME[name].severity

@@ -948,6 +948,11 @@ def _run_partition(fn, wanted, index, slices):
         yield {"index": index, "n": len(part), "result": fn(part, writers, None), "tables": tables}
 
 
+def _whole_partition(items):
+    """A partition's items as one list (``SparkContext.runJob``'s partition function)."""
+    return list(items)
+
+
 def _split_book(book: pd.DataFrame, partitions: int) -> list[pd.DataFrame]:
     """Contiguous ranges of loans in loan-id order, about equal in size, none empty."""
     frame = book.sort_values("loan_id", kind="stable").reset_index(drop=True)
@@ -978,7 +983,10 @@ def _map_book(engine, fn, book, writers, progress=None) -> list:
         _collect(rdd.map(lambda b: b["n"]), step)  # every partition in parallel; results stay cached on the executors
         done, total = 0, len(book)
         with _tasks(sc, step):
-            for bundle in rdd.toLocalIterator():
+            # One job per cached partition, in order: the driver holds one partition's tables at a time. (The
+            # socket iterator of toLocalIterator was seen to hang when the executors were busy.)
+            bundles = (b for i in range(rdd.getNumPartitions()) for b in sc.runJob(rdd, _whole_partition, [i]))
+            for bundle in bundles:
                 for name in wanted:
                     for data in bundle["tables"][name]:
                         writers[name](_from_ipc(data))

@@ -10,13 +10,14 @@ after (:func:`extend_path`).
 from __future__ import annotations
 
 import fnmatch
+import warnings
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from ..errors import ProjectionError, problem_list
+from ..errors import DataCheckWarning, ProjectionError, problem_list
 from ..months import format_month, month_ranges, parse_month
 
 __all__ = ["extend_path", "extend_paths", "load_scenario_paths", "prepare_paths"]
@@ -65,6 +66,8 @@ def load_scenario_paths(
     required_series: Sequence[str] = (),
     month_column: str = "month",
     as_of_idx: int | None = None,
+    non_negative: Sequence[str] = (),
+    negative_severity: str = "error",
 ) -> dict[str, pd.DataFrame]:
     """Read and check each scenario's monthly macro path.
 
@@ -83,6 +86,11 @@ def load_scenario_paths(
         The reporting month: when given, each path must also carry the history
         on after it (reach past it, with the months before the path's start in
         the history), as :func:`extend_path` needs.
+    non_negative : sequence of str
+        Shell patterns of series that cannot be negative (``checks.non_negative_series``: unemployment
+        rates, house-price indices); a negative value is a problem, a ``DataCheckWarning`` or nothing as
+        ``negative_severity`` is ``"error"``, ``"warning"`` or ``"off"`` (the severity of the history's
+        check ``macro_values_negative``).
 
     Returns
     -------
@@ -145,6 +153,17 @@ def load_scenario_paths(
                     f"(e.g. {_show(raw[col].iloc[infinite[0]])})"
                 )
             frame[col] = values.to_numpy(dtype=float)
+            if negative_severity != "off" and any(fnmatch.fnmatchcase(str(col).lower(), p.lower()) for p in non_negative):
+                negative = np.flatnonzero(frame[col] < 0)
+                if len(negative):
+                    text = (
+                        f"{where}: series {col!r} is negative in months {month_ranges(idx[negative])} "
+                        f"(e.g. {_show(raw[col].iloc[negative[0]])}); it matches checks.non_negative_series"
+                    )
+                    if negative_severity == "error":
+                        problems.append(text)
+                    else:
+                        warnings.warn(DataCheckWarning(f"macro_values_negative: {text}"), stacklevel=2)
         if not dupes.size:
             out[sc.name] = pd.DataFrame(frame, index=pd.Index(idx, name="month_idx")).sort_index()
             reach = None if as_of_idx is None else _reach_problem(out[sc.name], history, int(as_of_idx))
