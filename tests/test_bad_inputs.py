@@ -239,6 +239,15 @@ def coefficients_beyond_the_limits(ws):
     return ["run", str(ws.edit_config(lambda d: d["model"]["fit"].update(max_scaled_coefficient=1e-6)))]
 
 
+@case("6", 1, r"^ModelError: model\.path: .*thin_model\.json: too few events behind the saved model: default: 12 events for 10 parameters")
+def saved_model_fitted_on_too_few_events(ws):
+    # A model fitted elsewhere on a dozen defaults is checked against today's limits before it is used.
+    model = json.loads((ws.earlier_run / "hazard_model.json").read_text())
+    model["fit"]["events"]["default"] = 12
+    (ws.root / "thin_model.json").write_text(json.dumps(model))
+    return ["run", str(ws.edit_config(lambda d: d["model"].update(path="thin_model.json")))]
+
+
 @case("7", 1, r"^DataCheckError: 1 data check failed on .*loans\.parquet: note_rate_implausible: 2000 rows")
 def percent_rates_read_as_decimal(ws):
     return ["run", str(ws.edit_config(lambda d: d["inputs"]["loans"].update(rate_unit="decimal")))]

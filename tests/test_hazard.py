@@ -411,6 +411,14 @@ def test_absurd_coefficients_stop_the_fit(small_con):
     assert loose.record()["limits_loosened"] == {"max_scaled_std_error": 50.0}
 
 
+def test_a_saved_model_keeps_the_limits_it_was_fitted_under(small_con, tmp_path):
+    # A model fitted with loosened limits says so again when a later run loads it (model.path).
+    spec = _spec(small_con, *MIXED, baseline=_spline())
+    loose = fit_hazard(on_connection(small_con), spec, limits={"max_scaled_std_error": 50.0})
+    back = load_model(loose.save(tmp_path / "loose.json"))
+    assert back.record()["limits_loosened"] == {"max_scaled_std_error": 50.0}
+
+
 def test_fit_model_from_config_section(small_con):
     model = ModelSpec(kind="cause_specific", baseline=_spline(), covariates=MIXED[:1], ridge=0.5)
     res = fit_model(on_connection(small_con), model, Collateral())

@@ -142,10 +142,10 @@ def test_failure_mid_run_leaves_no_folder(small_book, tmp_path, monkeypatch):
 
 
 @pytest.fixture(scope="module")
-def own_book(small_book, tmp_path_factory):
-    """A private copy of the book, so a test may change an input file."""
+def own_book(corpus_book, tmp_path_factory):
+    """A private copy of the small book (2,000 loans), so a test may change an input file."""
     folder = tmp_path_factory.mktemp("own") / "book"
-    shutil.copytree(small_book, folder)
+    shutil.copytree(corpus_book.book, folder)
     return folder
 
 

@@ -53,9 +53,11 @@ def spark():
 
 
 @pytest.fixture(scope="session")
-def spark_book(simulated_book, tmp_path_factory):
+def spark_book(corpus_book, tmp_path_factory):
+    # The small book (2,000 loans, busy defaults) keeps the engines' comparisons quick; it has events
+    # enough for the demo model's terms.
     folder = tmp_path_factory.mktemp("spark_book")
-    data = demo_config_data(simulated_book, folder / "reports")
+    data = demo_config_data(corpus_book.book, folder / "reports")
     data["spark"] = {"master": "local[2]", "partitions": 3}
     path = folder / "config.yaml"
     path.write_text(yaml.safe_dump(data, sort_keys=False))
@@ -265,10 +267,6 @@ def test_a_whole_run_on_spark_writes_the_same_tables(spark, spark_book, tmp_path
 # session stays as it is). The data checks are pure Spark SQL, tested above in
 # local mode; here they are off, to keep the cluster's jobs few.
 
-CLUSTER_LOANS = 3_000
-CLUSTER_SEED = 4242
-
-
 def _free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
@@ -320,14 +318,12 @@ def standalone_cluster(tmp_path_factory):
 
 
 @pytest.fixture(scope="module")
-def cluster_workspace(tmp_path_factory):
+def cluster_workspace(corpus_book, tmp_path_factory):
     """A small book and its config: a one-covariate model, the data checks off, one DuckDB run to compare with."""
     from creditsurv.config import DATA_CHECK_NAMES, config_from_dict
-    from creditsurv.demo import write_demo_book
 
     folder = tmp_path_factory.mktemp("cluster_book")
-    write_demo_book(folder / "book", CLUSTER_LOANS, CLUSTER_SEED)
-    data = demo_config_data(folder / "book", folder / "duckdb")
+    data = demo_config_data(corpus_book.book, folder / "duckdb")
     data["model"]["baseline"] = {"kind": "age_bands", "edges": [24]}
     data["model"]["covariates"] = [{"name": "credit_score", "column": "credit_score", "transform": "standardise"}]
     data["checks"] = {"severity": {name: "off" for name in DATA_CHECK_NAMES}}

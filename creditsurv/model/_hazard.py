@@ -59,7 +59,7 @@ from ..errors import (
 from ..sql import quote_ident
 from ._features import FeatureSpec
 
-__all__ = ["CAUSES", "TRUST_LIMITS", "HazardResults", "fit_hazard", "fit_model", "load_model", "loosened_limits"]
+__all__ = ["CAUSES", "TRUST_LIMITS", "HazardResults", "check_saved_model", "fit_hazard", "fit_model", "load_model", "loosened_limits"]
 
 CAUSES = CAUSE_CODES  # cause name -> outcome code of loan_months, defined once in data
 _FORMAT = "creditsurv.hazard_model"
@@ -74,6 +74,22 @@ logit coefficients (Vittinghoff and McCulloch 2007, from memory); on the log-odd
 times its column's standard deviation above 10 (odds multiplied by e^10 for one standard deviation) or a
 standard error times it above 5 means the fit ran off, not that the data say so.
 """
+
+
+def check_saved_model(model: "HazardResults", limits: dict, path) -> None:
+    """Raise ``ModelError`` when a saved model (``model.path``) has fewer events per parameter than ``limits``.
+
+    The model's coefficients were checked against the limits it was fitted under (recorded in its file,
+    and flagged in the report when looser than the defaults); its events are checked against today's.
+    """
+    p = len(model.params.index)
+    few = [c for c in model.causes if model.events.get(c, 0) < limits["min_events_per_parameter"] * p]
+    if few:
+        text = "; ".join(f"{c}: {model.events.get(c, 0):,} events for {p} parameters" for c in few)
+        raise ModelError(
+            f"model.path: {path}: too few events behind the saved model: {text}; at least "
+            f"{limits['min_events_per_parameter']:g} per parameter are needed (model.fit.min_events_per_parameter)"
+        )
 
 
 def loosened_limits(limits: dict) -> dict:
@@ -219,6 +235,7 @@ class HazardResults:
                 "converged": self.converged,
                 "iteration_log": self.iteration_log,
                 "data_fingerprint": self.data_fingerprint,
+                "trust_limits": dict(self.trust_limits),
             },
             "features": self.spec.to_dict(),
         }
@@ -293,6 +310,7 @@ def load_model(path) -> HazardResults:
             iteration_log=list(fit["iteration_log"]),
             collapsed=fit.get("collapsed", False),
             n_stored_rows=fit.get("n_stored_rows", 0),
+            trust_limits={**TRUST_LIMITS, **fit.get("trust_limits", {})},
         )
     except (KeyError, TypeError, ValueError) as exc:
         raise ModelError(f"{path}: model JSON is missing or has a bad entry: {exc!r}") from None

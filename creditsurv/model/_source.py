@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DataError
-from ._hazard import HazardResults, fit_model, load_model
+from ._hazard import TRUST_LIMITS, HazardResults, check_saved_model, fit_model, load_model
 from ._speeds import BenchmarkCurves, HazardTable
 
 __all__ = ["HazardSource", "development_window", "hazard_source"]
@@ -58,6 +58,8 @@ def hazard_source(cfg, engine, temp_dir=None) -> HazardResults | BenchmarkCurves
             raise DataError(f"model.table: cannot read {cfg.model.table}: {exc}") from None
         return HazardTable(table)
     if cfg.model.path is not None:
-        return load_model(cfg.model.path)
+        model = load_model(cfg.model.path)
+        check_saved_model(model, {name: getattr(cfg.model.fit, name) for name in TRUST_LIMITS}, cfg.model.path)
+        return model
     where, params = development_window(cfg)
     return fit_model(engine, cfg.model, cfg.collateral, where_sql=where, params=params, temp_dir=temp_dir)
