@@ -22,8 +22,9 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 @pytest.fixture(scope="session")
-def small_book(simulated_book):
-    return simulated_book
+def small_book(corpus_book):
+    """The small book (2,000 loans): every pipeline test runs the whole job at least once."""
+    return corpus_book.book
 
 
 def _config(book: Path, tmp: Path, outputs=None, **model) -> Path:
