@@ -514,7 +514,14 @@ def reproduce(run_dir, out=None, inputs=None, progress=None) -> Outcome:
     """
     import tempfile
 
-    from .runs import check_folder_on_disk, judge_reproduction, locate_inputs, read_manifest, reproduction_name, stage_inputs
+    from .runs import (
+        check_folder_on_disk,
+        judge_reproduction,
+        locate_inputs,
+        read_manifest,
+        reproduction_name,
+        stage_inputs,
+    )
 
     run_dir = Path(run_dir)
     manifest = read_manifest(run_dir)

@@ -59,6 +59,7 @@ from ..data import (
 )
 from ..errors import ConfigError, DataError, did_you_mean
 from ..model import FirstPass, batch_design, batch_sums, symmetric
+from ..processes import process_running
 from ..sql import month_index_sql, quote_ident
 
 __all__ = [
@@ -418,21 +419,11 @@ def on_connection(con) -> DuckdbEngine:
     return DuckdbEngine(None, con, {}, None)
 
 
-def _process_gone(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return True
-    except PermissionError:  # another user's process
-        return False
-    return False
-
-
 def _remove_stale_spill_dirs(prefix: str) -> None:
     """Remove the spill folders of this host's processes that are gone (killed outright, they could not)."""
     for folder in Path(tempfile.gettempdir()).glob(f"{prefix}*-*"):
         pid = folder.name[len(prefix):].rsplit("-", 1)[0]
-        if pid.isdigit() and int(pid) != os.getpid() and _process_gone(int(pid)):
+        if pid.isdigit() and int(pid) != os.getpid() and not process_running(int(pid)):
             shutil.rmtree(folder, ignore_errors=True)
 
 

@@ -8,7 +8,13 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DataError
-from ._hazard import TRUST_LIMITS, HazardResults, check_saved_model, fit_model, load_model
+from ._hazard import (
+    TRUST_LIMITS,
+    HazardResults,
+    check_saved_model,
+    fit_model,
+    load_model,
+)
 from ._speeds import BenchmarkCurves, HazardTable
 
 __all__ = ["HazardSource", "development_window", "hazard_source"]

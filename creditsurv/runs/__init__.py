@@ -2,10 +2,10 @@
 
 from ._folder import (
     MANIFEST,
+    RUN_FILES_READ,
     OutputComparison,
     RunFolder,
     compare_outputs,
-    RUN_FILES_READ,
     describe_inputs,
     folder_differences,
     read_manifest,
@@ -13,7 +13,15 @@ from ._folder import (
     sha256_file,
     write_table,
 )
-from ._manifest import READABLE_VERSIONS, SCHEMA_VERSION, RunManifest, check_manifest, package_versions, run_identity, start_manifest
+from ._manifest import (
+    READABLE_VERSIONS,
+    SCHEMA_VERSION,
+    RunManifest,
+    check_manifest,
+    package_versions,
+    run_identity,
+    start_manifest,
+)
 from ._movement import (
     WALK_STEPS,
     MovementResult,
@@ -22,7 +30,13 @@ from ._movement import (
     movement,
     movement_against_run,
 )
-from ._reproduce import check_folder_on_disk, judge_reproduction, locate_inputs, reproduction_name, stage_inputs
+from ._reproduce import (
+    check_folder_on_disk,
+    judge_reproduction,
+    locate_inputs,
+    reproduction_name,
+    stage_inputs,
+)
 
 __all__ = [
     "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "RunManifest", "start_manifest", "WALK_STEPS", "check_walk_reconciles",

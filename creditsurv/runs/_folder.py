@@ -30,6 +30,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..errors import OutputError, RunError, StaleRunWarning
+from ..processes import process_running
 from ._manifest import RunManifest, check_manifest
 
 MANIFEST = "manifest.json"
@@ -148,16 +149,6 @@ def _output_error(exc: OSError, where: Path, what: str) -> OutputError:
     return OutputError(f"{path}: {what} ({exc.strerror or exc}); nothing was left behind")
 
 
-def _process_running(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:  # another user's process
-        return True
-    return True
-
-
 def remove_stale_incomplete(parent) -> list[Path]:
     """Remove the ``.incomplete-*`` folders under ``parent`` left by processes of this host that are gone.
 
@@ -189,7 +180,7 @@ def remove_stale_incomplete(parent) -> list[Path]:
             continue
         if o_host != host:
             kept.append(f"{folder.name} (host {o_host}, process {o_pid})")
-        elif o_pid != os.getpid() and not _process_running(o_pid):
+        elif o_pid != os.getpid() and not process_running(o_pid):
             shutil.rmtree(folder, ignore_errors=True)
             removed.append(folder)
             warnings.warn(
