@@ -277,6 +277,12 @@ def negative_house_prices_in_a_scenario(ws):
 # ProjectionError) naming the config key, the file and the closest name, raised before any data check or fit.
 
 
+
+@case("8", 1, r"^DataError: 1 problem with the config against the input data: outputs\.prior_run: .*book is not a complete run folder \(no manifest\.json or loan_ecl\.parquet\)")
+def prior_run_that_is_not_a_run(ws):
+    # Found before the checks and the fit, not when the movement or the record reads it.
+    return ["run", str(ws.edit_config(lambda d: d["outputs"].update(prior_run="book")))]
+
 @case("8", 1, r"^DataError: 1 problem with the config against the input data: segments\.column: column 'regoin' is not in the loan table \S*loans\.parquet; did you mean 'region'\?")
 def misspelt_segment_column(ws):
     return ["run", str(ws.edit_config(lambda d: d["segments"].update(column="regoin")))]

@@ -175,6 +175,11 @@ def _file_problems(cfg, run: bool) -> list[str]:
         found = Path(path).is_dir() if what == "run folder" else Path(path).is_file()
         if not found:
             problems.append(f"{key}: no {what} {path}")
+        elif what == "run folder":
+            # The movement reads the prior run's record and loan table (runs.RUN_FILES_READ).
+            lacking = [name for name in ("manifest.json", "loan_ecl.parquet") if not (Path(path) / name).is_file()]
+            if lacking:
+                problems.append(f"{key}: {path} is not a complete run folder (no {' or '.join(lacking)})")
     return problems
 
 
