@@ -208,6 +208,31 @@ def _output_parent(cfg, out) -> Path:
     return base / "reports"
 
 
+def arrears_tables(cfg, engine) -> dict:
+    """The observed arrears transitions: month by month, and as one-month matrices per window.
+
+    Returns
+    -------
+    dict of file name to DataFrame
+        ``arrears_transitions.csv`` (tidy, every month of the panel) and ``arrears_matrix.csv``
+        (one matrix per window: ``development``, ``out_of_time`` when configured, ``all``).
+    """
+    import pandas as pd
+
+    from .data import TRANSITION_COUNTS_SQL, transition_matrix, transition_table
+
+    counts = engine.frame(TRANSITION_COUNTS_SQL)
+    labels = cfg.arrears.labels(cfg.default_definition.days_past_due)
+    windows = {"development": cfg.windows.development, "out_of_time": cfg.windows.out_of_time}
+    matrices = [
+        transition_matrix(counts, labels, w.start, w.end).assign(window=name) for name, w in windows.items() if w is not None
+    ]
+    matrices.append(transition_matrix(counts, labels).assign(window="all"))
+    matrix = pd.concat(matrices, ignore_index=True)
+    matrix.insert(0, "window", matrix.pop("window"))
+    return {"arrears_transitions.csv": transition_table(counts, labels), "arrears_matrix.csv": matrix}
+
+
 def _fired_warnings(checks) -> list[dict]:
     fired = checks[(checks["severity"] == "warning") & (checks["count"] > 0)]
     return [{"check": r.check, "count": int(r.count), "description": r.description} for r in fired.itertuples()]
@@ -232,6 +257,8 @@ def fit(config, out: Path | None = None, argv=None) -> Outcome:
             run.add_table(model.summary(), "coefficients.csv")
             run.add_table(checks, "data_checks.csv")
             run.add_table(engine.event_counts(), "event_counts.csv")
+            for file, table in arrears_tables(cfg, engine).items():
+                run.add_table(table, file)
             manifest.model = model.record()
             manifest.data_check_warnings = _fired_warnings(checks)
             final = run.commit(manifest)
@@ -289,11 +316,13 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     """Projection, ECL and the exported tables of one run, written into ``run``."""
     import numpy as np
 
+    from .data import state_distribution
     from .forecast import TableWriter, segment_level, segment_pd_tables, segment_speeds
     from .loss import expected_credit_loss_by_partition
 
     cfg = ctx.cfg
     book = engine.book_at_as_of(cfg.segments.column)
+    run.add_table(state_distribution(book, cfg.arrears.labels(cfg.default_definition.days_past_due)), "arrears_states.csv")
     paths = scenario_paths(ctx, engine, model, book, loaded)
     options = {"compression": "zstd"}
     monthly = cfg.outputs.monthly_tables
@@ -414,6 +443,8 @@ def execute_run(
             run.add_table(checks, "data_checks.csv")
             events = engine.event_counts()
             run.add_table(events, "event_counts.csv")
+            for file, table in arrears_tables(cfg, engine).items():
+                run.add_table(table, file)
             _say(progress, "projection and ECL")
             kill_point("projection")
             chunk_progress = (lambda done, total: progress("projection and ECL", done, total)) if progress else None

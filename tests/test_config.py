@@ -39,7 +39,7 @@ def _problems(change, tmp_path) -> list[str]:
     [
         pytest.param(
             lambda d: d.update(as_f="2021-01"),
-            "as_f: unknown key (valid keys: as_of, inputs, windows, name, default_definition, events, model, "
+            "as_f: unknown key (valid keys: as_of, inputs, windows, name, default_definition, events, arrears, model, "
             "collateral, scenarios, scenario_extension, loss, staging, segments, validation, outputs, engine, "
             "duckdb, spark, checks, seed, synthetic_data); did you mean 'as_of'?",
             id="unknown-top-level",
@@ -94,6 +94,11 @@ def _problems(change, tmp_path) -> list[str]:
             lambda d: d["inputs"]["panel"].update(path="book.duckdb"),
             "inputs.panel: table: required when the source is a DuckDB database file",
             id="duckdb-needs-table",
+        ),
+        pytest.param(
+            lambda d: d.update(arrears={"starts": [60, 30]}),
+            "arrears: starts: must increase strictly, got [60, 30]",
+            id="arrears-order",
         ),
         pytest.param(
             lambda d: d.update(checks={"severity": {"month_gaps": "warn"}}),

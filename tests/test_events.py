@@ -10,6 +10,7 @@ from statsmodels.duration.survfunc import SurvfuncRight
 from creditsurv.config import config_from_dict
 from creditsurv.data import raise_for_errors
 from creditsurv.engines import event_counts, label_events, open_panel, run_checks
+from creditsurv.errors import ConfigError
 
 ORIG = 2020 * 12  # 2020-01
 AS_OF = ORIG + 12  # 2021-01
@@ -139,16 +140,65 @@ def test_loan_outcomes_types(events_book_panel):
     }
 
 
+# loan_id: (origin_state, destination) of each risk-set row, labelled by hand from the days past due with the
+# default arrears states (0 current, 1 30-59, 2 60-89; destination 0 stay, 1 default, 2 prepaid, 3 + k to state k)
+EXPECTED_TRANSITIONS = {
+    "both": ([0, 0, 1, 2], [0, 4, 5, 1]),
+    "chargeoff": ([0, 0, 1, 2], [0, 4, 5, 1]),
+    "cure": ([0, 0, 1, 2, 1, 0, 0, 0, 0, 0, 0, 0], [0, 4, 5, 4, 3, 0, 0, 0, 0, 0, 0, 0]),
+    "default90": ([0, 0, 0, 1, 2], [0, 0, 4, 5, 1]),
+    # first seen at age 7: the state before its first row is unknown
+    "late": ([None] + [0] * 11, [None] + [0] * 11),
+    "left": ([0] * 7, [0] * 7),
+    # a maturity row is a month like any other (current to current)
+    "mature": ([0] * 6, [0] * 6),
+    "prepay": ([0] * 4, [0, 0, 0, 2]),
+    # the status code makes the 30-59 loan's third month a default
+    "status": ([0, 0, 1], [0, 4, 1]),
+    "workout": ([0, 0, 1, 2], [0, 4, 5, 1]),
+}
+
+
 def test_risk_set_matches_hand_labels(events_book_panel):
-    got = events_book_panel.con.execute("SELECT loan_id, month_idx, age, outcome FROM loan_months ORDER BY loan_id, month_idx").df()
+    got = events_book_panel.con.execute("SELECT * FROM loan_months ORDER BY loan_id, month_idx").df()
     types = dict(events_book_panel.con.execute("SELECT column_name, column_type FROM (DESCRIBE loan_months)").fetchall())
-    assert types == {"loan_id": "VARCHAR", "month_idx": "INTEGER", "age": "INTEGER", "outcome": "TINYINT"}
+    assert types == {
+        "loan_id": "VARCHAR", "month_idx": "INTEGER", "age": "INTEGER", "outcome": "TINYINT", "origin_state": "TINYINT",
+        "destination": "TINYINT",
+    }
+    got = got.astype(object).where(got.notna(), None)
     for loan_id, outcomes in EXPECTED_RISK_SET.items():
         rows = got[got["loan_id"] == loan_id]
         entry = EXPECTED_OUTCOMES[loan_id][0]
         assert rows["outcome"].tolist() == outcomes, loan_id
         assert rows["age"].tolist() == list(range(entry, entry + len(outcomes))), loan_id
+        assert (rows["origin_state"].tolist(), rows["destination"].tolist()) == EXPECTED_TRANSITIONS[loan_id], loan_id
     assert len(got) == sum(map(len, EXPECTED_RISK_SET.values()))
+
+
+def test_arrears_states_follow_the_configured_starts(tmp_path):
+    # Missed payments instead of days: states current, 1, 2 missed payments; default at 3.
+    rows, fact = _loan("m", [0, 1, 2, 1, 0, 2, 3])
+    config = _config(
+        tmp_path, rows, pd.DataFrame([fact]), default_definition={"days_past_due": 3}, arrears={"starts": [1, 2]}
+    )
+    assert config.arrears.labels(3) == ("current", "1", "2")
+    with open_panel(config) as p:
+        label_events(p)
+        got = p.con.execute("SELECT origin_state, destination FROM loan_months ORDER BY month_idx").fetchall()
+    assert got == [(0, 0), (0, 4), (1, 5), (2, 4), (1, 3), (0, 5), (2, 1)]
+    # No arrears states: one transient state, and the destination is the outcome of the competing-risk model.
+    config = _config(tmp_path, rows, pd.DataFrame([fact]), default_definition={"days_past_due": 3}, arrears={"starts": []})
+    with open_panel(config) as p:
+        label_events(p)
+        got = p.con.execute("SELECT origin_state, destination, outcome FROM loan_months ORDER BY month_idx").fetchall()
+    assert got == [(0, 0, 0)] * 6 + [(0, 1, 1)]
+
+
+def test_arrears_states_must_start_below_the_default_threshold(tmp_path):
+    rows, fact = _loan("m", [0])
+    with pytest.raises(ConfigError, match=r"arrears\.starts: \[60\] at or above default_definition\.days_past_due 60"):
+        _config(tmp_path, rows, pd.DataFrame([fact]), default_definition={"days_past_due": 60})
 
 
 def test_event_counts(events_book_panel):
@@ -272,3 +322,67 @@ def test_kaplan_meier_from_outcomes_equals_risk_set_hazards(events_random_book_p
     np.testing.assert_allclose(km.surv_prob, direct.loc[km.surv_times.astype(int)].to_numpy(), rtol=0, atol=1e-12)
     # at-risk counts agree too
     np.testing.assert_array_equal(km.n_risk, hazards.set_index("age").loc[km.surv_times.astype(int), "at_risk"].to_numpy())
+
+
+def _states_by_hand(panel: pd.DataFrame, loans: pd.DataFrame) -> pd.DataFrame:
+    """Origin and end state of every month at risk, walked loan by loan in plain Python (the events rules:
+    default at 90 days past due, closure at a zero balance before the term is a prepayment, after it a maturity)."""
+    term = dict(zip(loans["loan_id"], loans["term"]))
+    rows = []
+    for loan_id, g in panel.sort_values(["loan_id", "month"]).groupby("loan_id", sort=True):
+        previous = None
+        for r in g.itertuples():
+            origin = previous if previous is not None else ("current" if r.age <= 1 else None)
+            if r.days_past_due >= 90:
+                end = "default"
+            elif r.balance <= 0.005 and r.age < term[loan_id]:
+                end = "prepaid"
+            else:
+                end = "current" if r.days_past_due < 30 else "30-59" if r.days_past_due < 60 else "60-89"
+            rows.append((r.month, origin, end))
+            if end in ("default", "prepaid") or r.balance <= 0.005:
+                break
+            previous = end
+    return pd.DataFrame(rows, columns=["month", "origin", "end"])
+
+
+def test_observed_transitions_equal_a_walk_through_the_panel(tmp_path):
+    from creditsurv.data import TRANSITION_COUNTS_SQL, state_names, transition_matrix, transition_table
+
+    panel, loans = _random_book(seed=11, n_loans=400)
+    by_hand = _states_by_hand(panel, loans).dropna(subset=["origin"])
+    labels = ("current", "30-59", "60-89")
+    with open_panel(_config(tmp_path, panel, loans, default_definition={"days_past_due": 90})) as p:
+        raise_for_errors(run_checks(p))
+        label_events(p)
+        counts = p.frame(TRANSITION_COUNTS_SQL)
+    expected = pd.crosstab(by_hand["origin"], by_hand["end"]).reindex(index=list(labels), columns=state_names(labels), fill_value=0)
+    assert expected.to_numpy().min() >= 0 and (expected.to_numpy()[:, :3] > 0).all()  # every move occurs in the book
+    matrix = transition_matrix(counts, labels).set_index("origin")
+    np.testing.assert_array_equal(matrix["loan_months"].to_numpy(), expected.sum(axis=1).to_numpy())
+    np.testing.assert_allclose(matrix[state_names(labels)].to_numpy(), expected.div(expected.sum(axis=1), axis=0).to_numpy(), rtol=1e-15)
+    # a window keeps only its months; the monthly table adds up to the same counts
+    window = by_hand[by_hand["month"] <= "2020-09"]
+    dev = transition_matrix(counts, labels, end=2020 * 12 + 8).set_index("origin")
+    assert dev["loan_months"].tolist() == window["origin"].value_counts().reindex(list(labels), fill_value=0).tolist()
+    tidy = transition_table(counts, labels)
+    assert tidy["loan_months"].sum() == len(by_hand)
+    per_month = tidy.groupby(["month", "origin"])["rate"].sum()
+    np.testing.assert_allclose(per_month.to_numpy(), 1.0, rtol=1e-12)
+    got = tidy.set_index(["month", "origin", "destination"])["loan_months"]
+    want = by_hand.groupby(["month", "origin", "end"]).size()
+    want.index.names = got.index.names
+    pd.testing.assert_series_equal(got.sort_index(), want.sort_index(), check_names=False, check_dtype=False)
+
+
+def test_state_distribution_at_the_reporting_month():
+    from creditsurv.data import state_distribution
+
+    book = pd.DataFrame(
+        {"arrears_state": [0, 0, 1, 2, 2, 0], "in_default": [False, False, False, False, True, True], "balance": [100.0, 50.0, 30.0, 20.0, 10.0, 5.0]}
+    )
+    got = state_distribution(book, ("current", "30-59", "60-89"))
+    assert got["state"].tolist() == ["current", "30-59", "60-89", "default"]
+    assert got["loans"].tolist() == [2, 1, 1, 2]
+    assert got["balance"].tolist() == [150.0, 30.0, 20.0, 15.0]
+    assert got["balance_share"].sum() == pytest.approx(1.0, abs=1e-15)

@@ -58,6 +58,24 @@ def test_run_writes_every_table_with_the_documented_columns(demo_run):
         assert (demo_run / name).exists(), name
 
 
+def test_run_writes_the_observed_arrears_states_and_transitions(demo_run):
+    loans = pd.read_parquet(demo_run / "loan_ecl.parquet")
+    states = pd.read_csv(demo_run / "arrears_states.csv").set_index("state")
+    assert states.index.tolist() == ["current", "30-59", "60-89", "default"]
+    assert states["loans"].sum() == len(loans)
+    np.testing.assert_allclose(states["balance"].sum(), loans["balance"].sum(), rtol=1e-12)
+    # the default state is stage 3 (IFRS 9 B5.5.37); loans 30 or more days past due are stage 2 by the backstop (5.5.11)
+    assert states.loc["default", "loans"] == (loans["stage"] == 3).sum()
+    assert states.loc[["30-59", "60-89"], "loans"].sum() == ((loans["stage"] == 2) & (loans["days_past_due"] >= 30)).sum() > 0
+    matrix = pd.read_csv(demo_run / "arrears_matrix.csv")
+    assert matrix["window"].unique().tolist() == ["development", "out_of_time", "all"]
+    shares = matrix[["current", "30-59", "60-89", "default", "prepaid"]].to_numpy()
+    np.testing.assert_allclose(shares.sum(axis=1), 1.0, rtol=1e-12)
+    transitions = pd.read_csv(demo_run / "arrears_transitions.csv")
+    everything = matrix[matrix["window"] == "all"]
+    assert transitions["loan_months"].sum() == everything["loan_months"].sum()
+
+
 def test_survival_plus_cumulative_incidences_is_one_for_every_loan_and_month(demo_run):
     # S(u) + F_D(u) + F_P(u) = 1: every loan alive at the start ends each month in
     # exactly one state (the discrete-time Aalen-Johansen identity).

@@ -244,6 +244,9 @@ def test_a_whole_run_on_spark_writes_the_same_tables(spark, spark_book, tmp_path
     np.testing.assert_allclose(yb["conditional_pd"], ya["conditional_pd"], rtol=RTOL, atol=0)
     ta, tb = pd.read_csv(a / "segment_pd_table.csv"), pd.read_csv(b / "segment_pd_table.csv")
     np.testing.assert_allclose(tb["cumulative_pd"], ta["cumulative_pd"], rtol=RTOL, atol=1e-12)
+    # the observed arrears states and transitions: counts from the same SQL, so the same files
+    for name in ("arrears_transitions.csv", "arrears_matrix.csv", "arrears_states.csv"):
+        assert (a / name).read_bytes() == (b / name).read_bytes(), name
     # The validation pack runs through the same engine interface: every table, on both engines.
     tables = sorted(p.name for p in (a / "validation").glob("*.csv"))
     assert len(tables) >= 8 and tables == sorted(p.name for p in (b / "validation").glob("*.csv"))

@@ -6,6 +6,7 @@ all of them in one error, each with its key path and the closest valid choice.
 
 from ._config import (
     DATA_CHECK_NAMES,
+    Arrears,
     Baseline,
     Checks,
     Collateral,
@@ -48,7 +49,7 @@ from ._context import RunContext, run_context
 from ._weights import WEIGHTED, ScenarioWeights, weight_problems
 
 __all__ = [
-    "DATA_CHECK_NAMES", "WEIGHTED", "RunContext", "ScenarioWeights", "run_context", "weight_problems", "Baseline", "Checks", "Collateral", "Config", "Covariate", "DefaultDefinition", "DuckdbSettings",
+    "Arrears", "DATA_CHECK_NAMES", "WEIGHTED", "RunContext", "ScenarioWeights", "run_context", "weight_problems", "Baseline", "Checks", "Collateral", "Config", "Covariate", "DefaultDefinition", "DuckdbSettings",
     "Events", "FitSettings", "Inputs", "LoanColumns", "LoanSource", "Loss", "Lgd", "MacroColumns",
     "MacroSource", "ModelSpec", "Outputs", "PanelColumns", "PanelSource", "Scenario", "ScenarioExtension",
     "Segments", "SparkSettings", "Staging", "ValidationSettings", "Window", "Windows",

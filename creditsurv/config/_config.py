@@ -184,6 +184,40 @@ class Events:
 
 
 @dataclass(frozen=True)
+class Arrears:
+    """The arrears states a loan moves between before default: current, then one state per start."""
+
+    starts: tuple[int, ...] = field(
+        default=(30, 60),
+        metadata=_doc(
+            "days past due at which each arrears state starts (current below the first; default at the "
+            "default definition); [] for current only",
+            min=1,
+        ),
+    )
+
+    def _validate(self) -> list[str]:
+        starts = list(self.starts)
+        if any(b <= a for a, b in zip(starts, starts[1:])):
+            return [f"starts: must increase strictly, got {starts}"]
+        if len(starts) > MAX_ARREARS_STATES:
+            return [f"starts: at most {MAX_ARREARS_STATES} arrears states, got {len(starts)}"]
+        return []
+
+    def labels(self, default_days_past_due: int | None) -> tuple[str, ...]:
+        """Names of the states before default: ``current``, then ``30-59``, ``60-89`` (or ``60+`` with no threshold)."""
+        bounds = [*self.starts[1:], default_days_past_due]
+        out = ["current"]
+        for start, end in zip(self.starts, bounds):
+            out.append(f"{start}+" if end is None else f"{start}" if end - 1 == start else f"{start}-{end - 1}")
+        return tuple(out)
+
+
+MAX_ARREARS_STATES = 8
+"""At most this many arrears states besides current."""
+
+
+@dataclass(frozen=True)
 class Window:
     start: Month = field(metadata=_doc("first calendar month, YYYY-MM"))
     end: Month = field(metadata=_doc("last calendar month, YYYY-MM"))
@@ -503,6 +537,7 @@ class Config:
     name: str = field(default="creditsurv", metadata=_doc("a label for the run"))
     default_definition: DefaultDefinition = field(default_factory=DefaultDefinition, metadata=_doc("default definition"))
     events: Events = field(default_factory=Events, metadata=_doc("closure rules"))
+    arrears: Arrears = field(default_factory=Arrears, metadata=_doc("arrears states before default"))
     model: ModelSpec = field(default_factory=ModelSpec, metadata=_doc("hazard model"))
     collateral: Collateral = field(default_factory=Collateral, metadata=_doc("derived covariates"))
     scenarios: tuple[Scenario, ...] = field(default=(), metadata=_doc("forward macro scenarios"))
@@ -546,6 +581,13 @@ class Config:
                 problems.append(f"windows.out_of_time.start: {oot.start} must be after development.end {dev.end}")
             if oot.end > self.as_of:
                 problems.append(f"windows.out_of_time.end: {oot.end} is after as_of {self.as_of}")
+        threshold = self.default_definition.days_past_due
+        late = [s for s in self.arrears.starts if threshold is not None and s >= threshold]
+        if late:
+            problems.append(
+                f"arrears.starts: {late} at or above default_definition.days_past_due {threshold}: an arrears state "
+                f"must start below the default threshold (e.g. arrears: {{starts: {[s for s in self.arrears.starts if s < threshold]}}})"
+            )
         for name in self.checks.severity:
             if name not in DATA_CHECK_NAMES:
                 hint = did_you_mean(name, DATA_CHECK_NAMES) or f" (valid names: {', '.join(DATA_CHECK_NAMES)})"

@@ -18,15 +18,19 @@ from ._checks import (
     raise_for_errors,
 )
 from ._events import (
-    BOOK_SQL,
+    ABSORBING_STATES,
     CAUSE_CODES,
+    DESTINATION_MOVE,
     EVENTS,
-    LOAN_MONTHS_SQL,
     LOAN_OUTCOMES_SQL,
     OUTCOME_CONTINUE,
     OUTCOME_DEFAULT,
     OUTCOME_PREPAY,
+    TRANSITION_COUNTS_SQL,
+    arrears_state_sql,
+    book_sql,
     event_params,
+    loan_months_sql,
 )
 from ._inputs import (
     LOAN_COLUMNS,
@@ -41,11 +45,18 @@ from ._inputs import (
     resolve_inputs,
 )
 from ._preflight import preflight_problems, raise_preflight
+from ._transitions import (
+    state_distribution,
+    state_names,
+    transition_matrix,
+    transition_table,
+)
 
 __all__ = [
-    "BOOK_SQL", "CAUSE_CODES", "CHECKS", "CHECK_COLUMNS", "Check", "EVENTS", "LOAN_COLUMNS", "LOAN_MONTHS_SQL",
+    "ABSORBING_STATES", "CAUSE_CODES", "CHECKS", "CHECK_COLUMNS", "Check", "DESTINATION_MOVE", "EVENTS", "LOAN_COLUMNS",
+    "TRANSITION_COUNTS_SQL", "arrears_state_sql", "book_sql", "loan_months_sql",
     "LOAN_OUTCOMES_SQL", "MACRO_COLUMNS", "OUTCOME_CONTINUE", "OUTCOME_DEFAULT", "OUTCOME_PREPAY",
     "PANEL_COLUMNS", "PlannedCheck", "Source", "check_frame", "check_severity", "event_params",
     "file_format", "format_checks", "input_sources", "macro_series_used", "passthrough_columns", "plan_checks",
-    "preflight_problems", "problem_text", "raise_for_errors", "raise_preflight", "resolve_inputs",
+    "preflight_problems", "problem_text", "raise_for_errors", "raise_preflight", "resolve_inputs", "state_distribution", "state_names", "transition_matrix", "transition_table",
 ]  # fmt: skip

@@ -12,8 +12,9 @@ core, giving two tables:
                    ``in_default_at_as_of``, ``days_past_due_at_as_of``,
                    ``balance_at_as_of``
 ``loan_months``    the risk set: each panel row of a loan up to and including its
-                   first event, with ``loan_id``, ``month_idx``, ``age`` and
-                   ``outcome`` (TINYINT: 0 continue, 1 default, 2 prepay)
+                   first event, with ``loan_id``, ``month_idx``, ``age``,
+                   ``outcome`` (TINYINT: 0 continue, 1 default, 2 prepay),
+                   ``origin_state`` and ``destination`` (TINYINT, see below)
 
 Rules. Default is the first row at or past the default definition (days past due
 at or above the threshold, or a status code in the list); it is absorbing, so
@@ -24,13 +25,27 @@ loan then leaves the risk set, so maturity censors both hazards). A row that is
 both default and closure is a default. A loan with no event is censored at its
 last row: ``end_of_window`` when that row is the reporting month, ``left_panel``
 when the rows stop earlier.
+
+Arrears states. Before default a loan is in one of the transient states of
+``arrears.starts``: 0 ``current`` (days past due below the first start), 1 the
+first arrears state (``30-59``), 2 the next (``60-89``), ... A month's
+transition runs from the state at the end of the previous month,
+``origin_state``, to the state at the end of the month, coded relative to the
+origin as ``destination``: 0 stayed in the origin state (the reference of the
+multi-state model), 1 default, 2 prepaid, ``3 + k`` moved to transient state
+``k``. The origin of a loan's first panel row is ``current`` when that row is
+its first month on book (age 1 or less) and unknown (NULL, and so the
+destination) for a loan first seen later. With no arrears states the destination
+equals ``outcome``. A maturity row is a month like any other: its destination is
+read from its days past due.
 """
 
 from __future__ import annotations
 
 __all__ = [
-    "BOOK_SQL", "CAUSE_CODES", "EVENTS", "LOAN_MONTHS_SQL", "LOAN_OUTCOMES_SQL", "OUTCOME_CONTINUE",
-    "OUTCOME_DEFAULT", "OUTCOME_PREPAY", "event_params",
+    "ABSORBING_STATES", "CAUSE_CODES", "DESTINATION_MOVE", "EVENTS", "LOAN_OUTCOMES_SQL", "OUTCOME_CONTINUE",
+    "OUTCOME_DEFAULT", "OUTCOME_PREPAY", "TRANSITION_COUNTS_SQL", "arrears_state_sql", "book_sql", "event_params",
+    "loan_months_sql",
 ]  # fmt: skip
 
 EVENTS = ("default", "prepay", "maturity", "censored")
@@ -41,6 +56,23 @@ OUTCOME_CONTINUE, OUTCOME_DEFAULT, OUTCOME_PREPAY = 0, 1, 2
 
 CAUSE_CODES = {"default": OUTCOME_DEFAULT, "prepay": OUTCOME_PREPAY}
 """The competing causes of exit and their outcome codes."""
+
+DESTINATION_MOVE = 3
+"""``loan_months.destination`` of a move to transient state ``k`` is ``DESTINATION_MOVE + k``."""
+
+ABSORBING_STATES = {"default": OUTCOME_DEFAULT, "prepaid": OUTCOME_PREPAY}
+"""The absorbing states and their destination codes (the cause codes of ``outcome``)."""
+
+
+def arrears_state_sql(column: str, n_starts: int) -> str:
+    """SQL of the transient state (0 current, 1, 2, ...) of a days-past-due ``column``.
+
+    The state is the number of ``arrears.starts`` the value reaches; the starts are the
+    parameters ``$arrears_1`` ... (see :func:`event_params`). A NULL value is current.
+    """
+    if n_starts == 0:
+        return "0"
+    return " + ".join(f"CAST(coalesce({column} >= $arrears_{i}, FALSE) AS INTEGER)" for i in range(1, n_starts + 1))
 
 # One CTE per step. Parameters: $dpd (threshold or NULL), $codes (status codes),
 # $paid_off (closure balance), $as_of (reporting month index). Everything a loan's
@@ -89,22 +121,51 @@ labelled AS (
     FROM event_row
 )"""
 
-# The risk set reads the (small) outcome table back instead of aggregating the panel again.
-LOAN_MONTHS_SQL = f"""
+def loan_months_sql(n_starts: int) -> str:
+    """The SQL creating ``loan_months`` with ``n_starts`` arrears states besides current.
+
+    The risk set reads the (small) outcome table back instead of aggregating the panel again;
+    the origin state is the previous row's state, one window over each loan's rows.
+    """
+    return f"""
 CREATE OR REPLACE TABLE loan_months AS
 WITH risk_set AS (
     SELECT p.loan_id, p.month_idx, p.age,
            CASE WHEN p.month_idx = o.event_month_idx AND o.event = 'default' THEN {OUTCOME_DEFAULT}
                 WHEN p.month_idx = o.event_month_idx AND o.event = 'prepay' THEN {OUTCOME_PREPAY}
-                ELSE {OUTCOME_CONTINUE} END AS outcome
+                ELSE {OUTCOME_CONTINUE} END AS outcome,
+           {arrears_state_sql("p.days_past_due", n_starts)} AS arrears_state
     FROM panel AS p JOIN loan_outcomes AS o USING (loan_id)
     WHERE o.event_month_idx IS NULL OR p.month_idx <= o.event_month_idx
+),
+with_origin AS (
+    SELECT *,
+           -- the state at the end of the previous month; a loan's first month on book starts current
+           coalesce(lag(arrears_state) OVER (PARTITION BY loan_id ORDER BY month_idx),
+                    CASE WHEN age <= 1 THEN 0 END) AS origin_state
+    FROM risk_set
 )
 SELECT loan_id, CAST(month_idx AS INTEGER) AS month_idx, CAST(age AS INTEGER) AS age,
-       CAST(outcome AS TINYINT) AS outcome
-FROM risk_set
+       CAST(outcome AS TINYINT) AS outcome,
+       CAST(origin_state AS TINYINT) AS origin_state,
+       CAST(CASE WHEN origin_state IS NULL THEN NULL
+                 WHEN outcome <> {OUTCOME_CONTINUE} THEN outcome
+                 WHEN arrears_state = origin_state THEN 0
+                 ELSE {DESTINATION_MOVE} + arrears_state END AS TINYINT) AS destination
+FROM with_origin
 ORDER BY loan_id, month_idx
 """
+
+
+TRANSITION_COUNTS_SQL = """
+SELECT month_idx, origin_state, destination, count(*) AS loan_months
+FROM loan_months
+WHERE origin_state IS NOT NULL
+GROUP BY month_idx, origin_state, destination
+ORDER BY month_idx, origin_state, destination
+"""
+"""Observed transitions: loan-months by calendar month, origin state and destination (small)."""
+
 
 LOAN_OUTCOMES_SQL = f"""
 CREATE OR REPLACE TABLE loan_outcomes AS
@@ -129,12 +190,13 @@ ORDER BY loan_id
 """
 
 
-BOOK_SQL = """
+_BOOK_SQL = """
     SELECT l.*,
            o.last_age AS age,
            o.balance_at_as_of AS balance,
            o.days_past_due_at_as_of AS days_past_due,
            o.in_default_at_as_of AS in_default,
+           CAST({arrears_state} AS TINYINT) AS arrears_state,
            {segment} AS segment
     FROM loan_outcomes AS o
     JOIN loans AS l USING (loan_id)
@@ -143,7 +205,15 @@ BOOK_SQL = """
       AND o.balance_at_as_of > $paid_off
     ORDER BY loan_id
 """
-"""The book at the reporting month (both engines): ``{segment}`` is the segment expression."""
+
+
+def book_sql(segment: str, n_starts: int) -> str:
+    """The book at the reporting month (both engines): ``segment`` is the segment expression.
+
+    ``arrears_state`` is the transient state of the reporting month's days past due (read
+    ``in_default`` first: a loan in default is in the default state whatever its days past due).
+    """
+    return _BOOK_SQL.format(segment=segment, arrears_state=arrears_state_sql("o.days_past_due_at_as_of", n_starts))
 
 
 def event_params(cfg, sql: str) -> dict:
@@ -154,5 +224,6 @@ def event_params(cfg, sql: str) -> dict:
         "codes": list(dd.status_codes),
         "paid_off": float(cfg.events.paid_off_balance),
         "as_of": int(cfg.as_of),
+        **{f"arrears_{i}": int(v) for i, v in enumerate(cfg.arrears.starts, start=1)},
     }
     return {k: v for k, v in params.items() if f"${k}" in sql}

@@ -40,18 +40,18 @@ import pandas as pd
 
 from ..config import Config
 from ..data import (
-    BOOK_SQL,
     LOAN_COLUMNS,
-    LOAN_MONTHS_SQL,
     LOAN_OUTCOMES_SQL,
     MACRO_COLUMNS,
     PANEL_COLUMNS,
     Check,
     Source,
+    book_sql,
     check_frame,
     event_params,
     file_format,
     input_sources,
+    loan_months_sql,
     passthrough_columns,
     plan_checks,
     problem_text,
@@ -562,7 +562,7 @@ def label_events(panel: DuckdbEngine) -> None:
         should have passed, since duplicate or gapped loan-months make the risk
         set meaningless.
     """
-    for sql in (LOAN_OUTCOMES_SQL, LOAN_MONTHS_SQL):
+    for sql in (LOAN_OUTCOMES_SQL, loan_months_sql(len(panel.cfg.arrears.starts))):
         try:
             panel.con.execute(sql, event_params(panel.cfg, sql))
         except duckdb.Error as exc:
@@ -622,9 +622,10 @@ def book_at_as_of(panel: DuckdbEngine, segment_column: str | None = None) -> pd.
     """
     if not _has_table(panel, "loan_outcomes"):
         label_events(panel)
-    sql = BOOK_SQL.format(segment=f"CAST(l.{quote_ident(segment_column)} AS VARCHAR)" if segment_column else "'all'")
     cfg = panel.cfg
-    params = {"as_of": int(cfg.as_of), "paid_off": float(cfg.events.paid_off_balance)}
+    segment = f"CAST(l.{quote_ident(segment_column)} AS VARCHAR)" if segment_column else "'all'"
+    sql = book_sql(segment, len(cfg.arrears.starts))
+    params = event_params(cfg, sql)
     try:
         return panel.con.execute(sql, params).df()
     except duckdb.Error as exc:

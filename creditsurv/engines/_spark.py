@@ -43,16 +43,17 @@ import pandas as pd
 import pyarrow as pa
 
 from ..data import (
-    BOOK_SQL,
     LOAN_COLUMNS,
-    LOAN_MONTHS_SQL,
     LOAN_OUTCOMES_SQL,
     MACRO_COLUMNS,
     PANEL_COLUMNS,
     Source,
+    book_sql,
     check_frame,
+    event_params,
     file_format,
     input_sources,
+    loan_months_sql,
     passthrough_columns,
     plan_checks,
     problem_text,
@@ -675,17 +676,13 @@ def _strip_create(sql: str) -> tuple[str, str]:
 def label_events(panel: SparkEngine) -> None:
     """The views ``loan_outcomes`` and ``loan_months`` (cached), from the events stage's SQL."""
     cfg = panel.cfg
-    for text in (LOAN_OUTCOMES_SQL, LOAN_MONTHS_SQL):
+    for text in (LOAN_OUTCOMES_SQL, loan_months_sql(len(cfg.arrears.starts))):
         name, body = _strip_create(text)
         if name == "loan_months":
             # The fit sorts its own read; a global sort here would be a wasted shuffle.
             body = re.sub(r"\nORDER BY loan_id, month_idx\s*$", "\n", body)
-        params = {
-            "dpd": cfg.default_definition.days_past_due,
-            "paid_off": float(cfg.events.paid_off_balance),
-            "as_of": int(cfg.as_of),
-        }
-        params = {k: v for k, v in params.items() if f"${k}" in body}
+        # the status codes are inlined by spark_sql
+        params = {k: v for k, v in event_params(cfg, body).items() if k != "codes"}
         try:
             frame = panel.spark.sql(spark_sql(body, codes=cfg.default_definition.status_codes), args=params or None)
             panel.view(name, frame, cache=True)
@@ -721,9 +718,10 @@ def book_at_as_of(panel: SparkEngine, segment_column: str | None = None) -> pd.D
         label_events(panel)
 
     segment = f"CAST(l.{quote_ident(segment_column)} AS VARCHAR)" if segment_column else "'all'"
-    sql = spark_sql(BOOK_SQL.format(segment=segment))
     cfg = panel.cfg
-    params = {"as_of": int(cfg.as_of), "paid_off": float(cfg.events.paid_off_balance)}
+    text = book_sql(segment, len(cfg.arrears.starts))
+    sql = spark_sql(text)
+    params = event_params(cfg, text)
     try:
         table = _arrow(panel.spark.sql(sql, args=params))
     except Exception as exc:  # noqa: BLE001
