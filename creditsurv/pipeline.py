@@ -15,7 +15,14 @@ from pathlib import Path
 
 from .config import Config, config_from_dict, config_to_dict, load_config, read_yaml
 from .errors import DataError, OutputError, RunError
-from .model import HazardResults, hazard_source, hpi_series_name, parse_macro_key
+from .model import (
+    DESIGNS,
+    HazardResults,
+    MultiStateResults,
+    hazard_source,
+    hpi_series_name,
+    parse_macro_key,
+)
 from .version import __version__
 
 
@@ -255,6 +262,8 @@ def fit(config, out: Path | None = None, argv=None) -> Outcome:
             model = hazard_source(cfg, engine, temp_dir=run.path)
             model.save(run.add_file("hazard_model.json"))
             run.add_table(model.summary(), "coefficients.csv")
+            if isinstance(model, MultiStateResults):
+                run.add_table(model.transitions, "transition_fits.csv")
             run.add_table(checks, "data_checks.csv")
             run.add_table(engine.event_counts(), "event_counts.csv")
             for file, table in arrears_tables(cfg, engine).items():
@@ -262,11 +271,16 @@ def fit(config, out: Path | None = None, argv=None) -> Outcome:
             manifest.model = model.record()
             manifest.data_check_warnings = _fired_warnings(checks)
             final = run.commit(manifest)
-    text = (
-        f"fitted a {model.kind} model: {len(model.params.index)} terms per cause, "
-        f"{model.n_rows:,} loan-months, events {model.events}, {model.iterations} Newton iterations\n"
-        f"wrote {final}"
-    )
+    if isinstance(model, MultiStateResults):
+        reduced = model.transitions[model.transitions["design"].isin(["baseline", "intercept", "none"])]
+        detail = "; ".join(f"{r.origin} to {r.destination}: {DESIGNS[r.design]}" for r in reduced.itertuples())
+        head = f"fitted a {model.describe()}, {model.iterations} Newton iterations at most" + (f"\nreduced: {detail}" if detail else "")
+    else:
+        head = (
+            f"fitted a {model.kind} model: {len(model.params.index)} terms per cause, "
+            f"{model.n_rows:,} loan-months, events {model.events}, {model.iterations} Newton iterations"
+        )
+    text = f"{head}\nwrote {final}"
     return Outcome(text, path=final)
 
 
@@ -422,6 +436,12 @@ def execute_run(
     from .engines import open_engine
     from .runs import RunFolder, movement_against_run
 
+    if cfg.model.kind == "multi_state":
+        # The fit is built (creditsurv fit); the Markov-chain projection of its states comes next.
+        raise RunError(
+            "model.kind: multi_state can be fitted (creditsurv fit) but not yet projected by a run; "
+            "run with multinomial or cause_specific"
+        )
     ctx = run_context(cfg)
     _say(progress, "data checks and events")
     with open_engine(cfg) as engine:
@@ -435,6 +455,8 @@ def execute_run(
             _say(progress, "hazard model")
             kill_point("fit")
             model = hazard_source(cfg, engine, temp_dir=work)
+            if isinstance(model, MultiStateResults):
+                raise RunError(f"model.path: {cfg.model.path} holds a multi-state model, which a run cannot project yet")
             shutil.rmtree(work)
             coefficients = model.summary() if isinstance(model, HazardResults) else None
             if coefficients is not None:

@@ -65,7 +65,7 @@ def _problems(change, tmp_path) -> list[str]:
         ),
         pytest.param(
             lambda d: d.update(model={"kind": "multinomal"}),
-            "model.kind: 'multinomal' is not one of multinomial, cause_specific; did you mean 'multinomial'?",
+            "model.kind: 'multinomal' is not one of multinomial, cause_specific, multi_state; did you mean 'multinomial'?",
             id="bad-literal",
         ),
         pytest.param(lambda d: d.pop("as_of"), "as_of: missing required key (reporting month, YYYY-MM)", id="missing"),

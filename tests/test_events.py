@@ -347,7 +347,12 @@ def _states_by_hand(panel: pd.DataFrame, loans: pd.DataFrame) -> pd.DataFrame:
 
 
 def test_observed_transitions_equal_a_walk_through_the_panel(tmp_path):
-    from creditsurv.data import TRANSITION_COUNTS_SQL, state_names, transition_matrix, transition_table
+    from creditsurv.data import (
+        TRANSITION_COUNTS_SQL,
+        state_names,
+        transition_matrix,
+        transition_table,
+    )
 
     panel, loans = _random_book(seed=11, n_loans=400)
     by_hand = _states_by_hand(panel, loans).dropna(subset=["origin"])

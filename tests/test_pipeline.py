@@ -277,6 +277,29 @@ def test_fit_command_writes_a_model_that_loads_and_predicts_the_same(small_book,
     assert "fitted a multinomial model" in capsys.readouterr().out
 
 
+def test_fit_command_fits_the_multi_state_model_and_a_run_refuses_it_for_now(small_book, tmp_path, capsys):
+    from creditsurv.model import MultiStateResults, load_model
+
+    cfg = _config(small_book, tmp_path, kind="multi_state")
+    assert main(["fit", str(cfg), "--out", str(tmp_path / "fits")]) == 0
+    (folder,) = (tmp_path / "fits").iterdir()
+    out = capsys.readouterr().out
+    assert out.startswith("fitted a multi-state model, 3 arrears states") and "reduced: " in out
+    model = load_model(folder / "hazard_model.json")
+    assert isinstance(model, MultiStateResults) and model.converged
+    fits = pd.read_csv(folder / "transition_fits.csv")
+    assert fits.groupby("origin")["design"].apply(lambda d: (d == "reference").sum()).tolist() == [1, 1, 1]
+    coefficients = pd.read_csv(folder / "coefficients.csv")
+    assert list(coefficients.columns[:3]) == ["origin", "destination", "term"]
+    # every estimated parameter is in the table, and nothing else
+    assert len(coefficients) == fits["parameters"].sum()
+    manifest = json.loads((folder / MANIFEST).read_text())
+    assert manifest["model"]["kind"] == "multi_state" and len(manifest["model"]["transitions"]) == len(fits)
+    assert main(["run", str(cfg), "--out", str(tmp_path / "runs")]) == 1
+    assert "RunError: model.kind: multi_state can be fitted" in capsys.readouterr().err
+    assert not (tmp_path / "runs").exists() or not any((tmp_path / "runs").iterdir())
+
+
 # --------------------------------------------------------------------------- the preflight
 
 

@@ -383,3 +383,20 @@ def test_executors_without_creditsurv_fail_with_one_line_naming_the_step(standal
         last,
     ), last
     assert not (folder / "bare").exists() or not any((folder / "bare").iterdir())
+
+
+def test_the_multi_state_fit_is_the_same_on_both_engines(spark, spark_book, tmp_path):
+    # One multinomial logit per arrears state, from the same shared SQL and batch kernel on each engine.
+    cfg = dataclasses.replace(spark_book, model=dataclasses.replace(spark_book.model, kind="multi_state"))
+    fits = {}
+    for name in ("duckdb", "spark"):
+        engine, _ = pipeline.open_checked(dataclasses.replace(cfg, engine=name))
+        with engine:
+            fits[name] = hazard_source(dataclasses.replace(cfg, engine=name), engine, tmp_path)
+    a, b = fits["duckdb"], fits["spark"]
+    pd.testing.assert_frame_equal(a.transitions, b.transitions)
+    assert a.references == b.references and set(a.origins) == {"current", "30-59", "60-89"}
+    for origin in a.origins:
+        _close(a.origins[origin].params, b.origins[origin].params)
+        _close(a.origins[origin].bse, b.origins[origin].bse)
+        assert b.origins[origin].loglik == pytest.approx(a.origins[origin].loglik, rel=1e-12)

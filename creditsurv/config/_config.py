@@ -321,14 +321,26 @@ class FitSettings:
     max_scaled_std_error: float = field(
         default=5.0, metadata=_doc("a standard error x its column's sd above this stops the run (common practice)", gt=0.0)
     )
+    min_transition_events: int = field(
+        default=50,
+        metadata=_doc(
+            "multi_state: a move between states seen fewer times is fitted with intercept and age baseline only "
+            "(common practice); one never seen is fixed at zero",
+            min=0,
+        ),
+    )
 
 
 @dataclass(frozen=True)
 class ModelSpec:
     """Discrete-time competing-risk hazard model of default and prepayment."""
 
-    kind: Literal["multinomial", "cause_specific"] = field(
-        default="multinomial", metadata=_doc("joint multinomial logit, or one binary logit per cause")
+    kind: Literal["multinomial", "cause_specific", "multi_state"] = field(
+        default="multinomial",
+        metadata=_doc(
+            "competing risks: joint multinomial logit, or one binary logit per cause; multi_state: one multinomial "
+            "logit per arrears state (arrears.starts) over the states a loan moves to"
+        ),
     )
     baseline: Baseline = field(default_factory=Baseline, metadata=_doc("loan-age baseline"))
     covariates: tuple[Covariate, ...] = field(default=(), metadata=_doc("terms of the design"))

@@ -35,8 +35,8 @@ origin as ``destination``: 0 stayed in the origin state (the reference of the
 multi-state model), 1 default, 2 prepaid, ``3 + k`` moved to transient state
 ``k``. The origin of a loan's first panel row is ``current`` when that row is
 its first month on book (age 1 or less) and unknown (NULL, and so the
-destination) for a loan first seen later. With no arrears states the destination
-equals ``outcome``. A maturity row is a month like any other: its destination is
+destination) for a loan first seen later. With no arrears states every month
+starts in the one state, current, and the destination equals ``outcome``. A maturity row is a month like any other: its destination is
 read from its days past due.
 """
 
@@ -121,6 +121,16 @@ labelled AS (
     FROM event_row
 )"""
 
+def _origin_sql(n_starts: int) -> str:
+    if n_starts == 0:
+        return "0"  # one state before default: every month starts in it
+    # the state at the end of the previous month; a loan's first month on book starts current
+    return (
+        "coalesce(lag(arrears_state) OVER (PARTITION BY loan_id ORDER BY month_idx),\n"
+        "                    CASE WHEN age <= 1 THEN 0 END)"
+    )
+
+
 def loan_months_sql(n_starts: int) -> str:
     """The SQL creating ``loan_months`` with ``n_starts`` arrears states besides current.
 
@@ -140,9 +150,7 @@ WITH risk_set AS (
 ),
 with_origin AS (
     SELECT *,
-           -- the state at the end of the previous month; a loan's first month on book starts current
-           coalesce(lag(arrears_state) OVER (PARTITION BY loan_id ORDER BY month_idx),
-                    CASE WHEN age <= 1 THEN 0 END) AS origin_state
+           {_origin_sql(n_starts)} AS origin_state
     FROM risk_set
 )
 SELECT loan_id, CAST(month_idx AS INTEGER) AS month_idx, CAST(age AS INTEGER) AS age,

@@ -9,6 +9,8 @@ probabilities for them (``hazards(raw)``).
 from ._features import FeatureSpec, RawInput, feature_spec, natural_spline_basis
 from ._hazard import (
     CAUSES,
+    MULTI_STATE_FORMAT,
+    N_CODES,
     TRUST_LIMITS,
     FirstPass,
     HazardResults,
@@ -19,15 +21,18 @@ from ._hazard import (
     fit_from_sums,
     fit_hazard,
     fit_model,
-    load_model,
+    fit_outcomes,
     loosened_limits,
     raw_design_sql,
+    read_model_file,
     resolve_collapse,
+    results_from_dict,
     symmetric,
 )
+from ._multistate import DESIGNS, MultiStateResults, fit_multi_state, state_codes
 from ._names import hpi_series_name, macro_key, parse_macro_key
 from ._schedule import scheduled_balance, scheduled_balance_sql
-from ._source import HazardSource, development_window, hazard_source
+from ._source import HazardSource, development_window, hazard_source, load_model
 from ._speeds import (
     BenchmarkCurves,
     HazardTable,
@@ -43,7 +48,8 @@ from ._speeds import (
 )
 
 __all__ = [
-    "BenchmarkCurves", "CAUSES", "TRUST_LIMITS", "FeatureSpec", "HazardSource", "FirstPass", "batch_design", "batch_sums", "check_fit_arguments",
+    "DESIGNS", "MULTI_STATE_FORMAT", "MultiStateResults", "N_CODES", "fit_multi_state", "fit_outcomes", "read_model_file", "results_from_dict",
+    "state_codes", "BenchmarkCurves", "CAUSES", "TRUST_LIMITS", "FeatureSpec", "HazardSource", "FirstPass", "batch_design", "batch_sums", "check_fit_arguments",
     "development_window", "fit_fingerprint", "fit_from_sums", "hazard_source", "hpi_series_name", "macro_key", "parse_macro_key", "scheduled_balance", "scheduled_balance_sql", "raw_design_sql", "resolve_collapse", "symmetric", "HazardResults", "HazardTable", "RawInput",
     "cdr_to_mdr", "cpr_to_smm", "equivalent_psa", "equivalent_sda", "feature_spec", "fit_hazard", "fit_model",
     "load_model", "loosened_limits", "mdr_to_cdr", "natural_spline_basis", "psa_cpr", "sda_cdr", "smm_to_cpr", "speeds_to_hazards",

@@ -285,13 +285,19 @@ class FeatureSpec:
                 resolved.append(dataclasses.replace(item, source=by_key[item.key]))
         return {"inputs": resolved, "macro": macro, "loans": loans, "panel": panel}
 
-    def raw_query(self, con, where_sql: str = "TRUE", *, order: bool = True) -> str:
+    def raw_query(
+        self, con, where_sql: str = "TRUE", *, order: bool = True, origin_state: int | None = None, reference: int = 0
+    ) -> str:
         """SQL yielding one row per risk-set row with the raw inputs.
 
         Columns: ``loan_id``, ``month_idx``, ``age``, ``outcome`` and each input
         key. ``where_sql`` is a boolean SQL expression over those columns (use
         ``?`` placeholders for values and pass them as params); rows are
         ordered by ``loan_id, month_idx`` so that reads are deterministic.
+        With ``origin_state`` only the months starting in that arrears state are
+        read, and ``outcome`` is their ``destination`` (the multi-state model's
+        outcome; see :mod:`creditsurv.data`), with the codes ``reference`` and 0
+        swapped when the reference outcome is not "stay".
         """
         info = self._resolve(con)
         q = quote_ident
@@ -299,10 +305,13 @@ class FeatureSpec:
         needs_ltv = any(i.key == "current_ltv" for i in inputs)
         needs_inc = any(i.key == "rate_incentive" for i in inputs)
         ctes = []
-        ctes.append(
-            "risk_set AS (\n  SELECT lm.\"loan_id\", lm.\"month_idx\", lm.\"age\", lm.\"outcome\"\n"
-            "  FROM \"loan_months\" AS lm\n)"
-        )
+        if origin_state is None:
+            rows = "lm.\"outcome\"\n  FROM \"loan_months\" AS lm"
+        else:
+            r = int(reference)
+            outcome = f"CASE lm.\"destination\" WHEN {r} THEN 0 WHEN 0 THEN {r} ELSE lm.\"destination\" END" if r else "lm.\"destination\""
+            rows = f"{outcome} AS \"outcome\"\n  FROM \"loan_months\" AS lm\n  WHERE lm.\"origin_state\" = {int(origin_state)}"
+        ctes.append(f"risk_set AS (\n  SELECT lm.\"loan_id\", lm.\"month_idx\", lm.\"age\", {rows}\n)")
         prev = "risk_set"
         panel_cols = [i for i in inputs if i.source == "panel"]
         if panel_cols:
@@ -602,6 +611,11 @@ class FeatureSpec:
         """Design column names (after :meth:`learn`)."""
         return list(self._require_learned()["columns"])
 
+    @property
+    def baseline_columns(self) -> list[str]:
+        """Design column names of the loan-age baseline (after :meth:`learn`), the intercept not included."""
+        return self._baseline_names()
+
     def _baseline_names(self) -> list[str]:
         base, lrn = self.baseline, self._require_learned()
         kind = base.get("kind", "age_bands")
@@ -684,28 +698,9 @@ class FeatureSpec:
         n = age.shape[0]
         names = self.columns
         X = np.zeros((n, len(names)))
-        X[:, 0] = 1.0
-        col = 1
-        base = self.baseline
-        kind = base.get("kind", "age_bands")
-        if np.isnan(age).any():
-            raise FeatureError(f"age: {int(np.isnan(age).sum())} rows have no value")
-        if kind == "age_bands":
-            band = np.searchsorted(np.asarray(base["edges"], dtype=np.float64), age, side="right")
-            nb = len(base["edges"])
-            rows = np.nonzero(band > 0)[0]
-            X[rows, col + band[rows] - 1] = 1.0
-            col += nb
-        elif kind == "spline":
-            B = natural_spline_basis(age, base["knots"])
-            X[:, col: col + B.shape[1]] = B
-            col += B.shape[1]
-        elif kind == "age_indicators":
-            lo, hi = lrn["age_min"], lrn["max_age"]
-            a = np.minimum(age, hi).astype(np.int64)
-            rows = np.nonzero(a > lo)[0]
-            X[rows, col + a[rows] - lo - 1] = 1.0
-            col += hi - lo
+        base = self.baseline_design(age)
+        X[:, : base.shape[1]] = base
+        col = base.shape[1]
         term_cols: dict[str, np.ndarray] = {}
         for c in self.covariates:
             vals = self._term_values(c, raw, n, lrn)
@@ -719,6 +714,29 @@ class FeatureSpec:
                 X[:, col: col + B.shape[1]] = A[:, i: i + 1] * B
                 col += B.shape[1]
         return X, names
+
+    def baseline_design(self, age) -> np.ndarray:
+        """The intercept and loan-age baseline columns of the design for loan ages ``age``, shape (n, 1 + baseline)."""
+        lrn = self._require_learned()
+        age = np.asarray(age, dtype=np.float64)
+        if np.isnan(age).any():
+            raise FeatureError(f"age: {int(np.isnan(age).sum())} rows have no value")
+        base = self.baseline
+        kind = base.get("kind", "age_bands")
+        X = np.zeros((age.shape[0], 1 + len(self.baseline_columns)))
+        X[:, 0] = 1.0
+        if kind == "age_bands":
+            band = np.searchsorted(np.asarray(base["edges"], dtype=np.float64), age, side="right")
+            rows = np.nonzero(band > 0)[0]
+            X[rows, band[rows]] = 1.0
+        elif kind == "spline":
+            X[:, 1:] = natural_spline_basis(age, base["knots"])
+        elif kind == "age_indicators":
+            lo, hi = lrn["age_min"], lrn["max_age"]
+            a = np.minimum(age, hi).astype(np.int64)
+            rows = np.nonzero(a > lo)[0]
+            X[rows, a[rows] - lo] = 1.0
+        return X
 
     def _term_values(self, c, raw, n, lrn) -> np.ndarray:
         name = c["name"]

@@ -59,12 +59,15 @@ from ..errors import (
 from ..sql import quote_ident
 from ._features import FeatureSpec
 
-__all__ = ["CAUSES", "TRUST_LIMITS", "HazardResults", "check_saved_model", "fit_hazard", "fit_model", "load_model", "loosened_limits"]
+__all__ = [
+    "CAUSES", "MULTI_STATE_FORMAT", "N_CODES", "STABLE_EVENTS_PER_PARAMETER", "TRUST_LIMITS", "HazardResults", "check_saved_model", "fit_hazard",
+    "fit_model", "fit_outcomes", "loosened_limits", "read_model_file", "results_from_dict",
+]  # fmt: skip
 
 CAUSES = CAUSE_CODES  # cause name -> outcome code of loan_months, defined once in data
 _FORMAT = "creditsurv.hazard_model"
 _FORMAT_VERSION = 1
-_MIN_EVENTS_PER_PARAMETER = 10  # below: FewEventsWarning (common practice, Peduzzi et al. 1996, from memory)
+STABLE_EVENTS_PER_PARAMETER = 10  # below: FewEventsWarning (common practice, Peduzzi et al. 1996, from memory)
 
 TRUST_LIMITS = {"min_events_per_parameter": 5.0, "max_scaled_coefficient": 10.0, "max_scaled_std_error": 5.0}
 """The defaults of the limits a fitted model must keep to be used (``model.fit`` in the config).
@@ -76,16 +79,21 @@ standard error times it above 5 means the fit ran off, not that the data say so.
 """
 
 
-def check_saved_model(model: "HazardResults", limits: dict, path) -> None:
+def check_saved_model(model, limits: dict, path) -> None:
     """Raise ``ModelError`` when a saved model (``model.path``) has fewer events per parameter than ``limits``.
 
     The model's coefficients were checked against the limits it was fitted under (recorded in its file,
     and flagged in the report when looser than the defaults); its events are checked against today's.
     """
-    p = len(model.params.index)
-    few = [c for c in model.causes if model.events.get(c, 0) < limits["min_events_per_parameter"] * p]
+    parts = getattr(model, "origins", {"": model})  # a multi-state model: each origin state's logit
+    few = []
+    for origin, part in parts.items():
+        for c in part.causes:
+            n_par = len(part.params.index) - len(part.fixed_terms.get(c, []))
+            if part.events.get(c, 0) < limits["min_events_per_parameter"] * n_par:
+                few.append(f"{origin + ' to ' if origin else ''}{c}: {part.events.get(c, 0):,} events for {n_par} parameters")
     if few:
-        text = "; ".join(f"{c}: {model.events.get(c, 0):,} events for {p} parameters" for c in few)
+        text = "; ".join(few)
         raise ModelError(
             f"model.path: {path}: too few events behind the saved model: {text}; at least "
             f"{limits['min_events_per_parameter']:g} per parameter are needed (model.fit.min_events_per_parameter)"
@@ -153,20 +161,22 @@ class HazardResults:
     collapsed: bool = False
     n_stored_rows: int = 0
     trust_limits: dict = field(default_factory=lambda: dict(TRUST_LIMITS))
+    fixed_terms: dict = field(default_factory=dict)
 
     def summary(self, alpha: float = 0.05) -> pd.DataFrame:
         """Tidy table: cause, term, estimate, std_error, z, p_value, ci_lo, ci_hi."""
         q = stats.norm.ppf(1 - alpha / 2)
         frames = []
         for cause in self.causes:
-            est = self.params[cause].to_numpy()
-            se = self.bse[cause].to_numpy()
+            used = ~self.params.index.isin(self.fixed_terms.get(cause, []))  # terms held at zero are not estimates
+            est = self.params[cause].to_numpy()[used]
+            se = self.bse[cause].to_numpy()[used]
             z = est / se
             frames.append(
                 pd.DataFrame(
                     {
                         "cause": cause,
-                        "term": self.params.index.to_list(),
+                        "term": self.params.index[used].to_list(),
                         "estimate": est,
                         "std_error": se,
                         "z": z,
@@ -196,6 +206,19 @@ class HazardResults:
         out = {c: h[:, i] for i, c in enumerate(self.causes)}
         zero = np.zeros(X.shape[0])
         return out.get("default", zero), out.get("prepay", zero)
+
+    def probabilities(self, raw) -> np.ndarray:
+        """Multinomial probabilities of every outcome in :attr:`causes` order for raw rows, shape (n, K).
+
+        The reference outcome (continue, or stay in the origin state) has ``1 - row sum``.
+        """
+        if self.kind != "multinomial":
+            raise ModelError(f"probabilities() needs a multinomial model, not {self.kind}")
+        X, _ = self.spec.design(raw)
+        eta = X @ self.params[list(self.causes)].to_numpy()
+        m = np.maximum(eta.max(axis=1), 0.0)
+        e = np.exp(eta - m[:, None])
+        return e / (np.exp(-m) + e.sum(axis=1))[:, None]
 
     @property
     def required_inputs(self) -> list[str]:
@@ -238,6 +261,7 @@ class HazardResults:
                 "trust_limits": dict(self.trust_limits),
             },
             "features": self.spec.to_dict(),
+            **({"fixed_terms": {c: list(t) for c, t in self.fixed_terms.items()}} if self.fixed_terms else {}),
         }
 
     def describe(self) -> str:
@@ -269,8 +293,8 @@ class HazardResults:
         return path
 
 
-def load_model(path) -> HazardResults:
-    """Read a model written by :meth:`HazardResults.save`."""
+def read_model_file(path) -> dict:
+    """The JSON of a saved model file as plain data; ``ModelError`` naming the file when it cannot be read."""
     path = Path(path)
     try:
         data = json.loads(path.read_text(encoding="utf-8"))
@@ -278,6 +302,15 @@ def load_model(path) -> HazardResults:
         raise ModelError(f"{path}: model file not found") from None
     except (OSError, ValueError) as exc:
         raise ModelError(f"{path}: not a readable model JSON ({exc})") from None
+    return data
+
+
+MULTI_STATE_FORMAT = "creditsurv.multi_state_model"
+"""The ``format`` of a saved multi-state model (one multinomial logit per origin state)."""
+
+
+def results_from_dict(data, path) -> HazardResults:
+    """A :class:`HazardResults` from the plain data :meth:`HazardResults.to_dict` gives; ``path`` names it in errors."""
     if not isinstance(data, dict) or data.get("format") != _FORMAT:
         raise ModelError(f"{path}: not a creditsurv hazard model (format should be {_FORMAT!r})")
     if data.get("format_version") != _FORMAT_VERSION:
@@ -311,6 +344,7 @@ def load_model(path) -> HazardResults:
             collapsed=fit.get("collapsed", False),
             n_stored_rows=fit.get("n_stored_rows", 0),
             trust_limits={**TRUST_LIMITS, **fit.get("trust_limits", {})},
+            fixed_terms={c: list(t) for c, t in data.get("fixed_terms", {}).items()},
         )
     except (KeyError, TypeError, ValueError) as exc:
         raise ModelError(f"{path}: model JSON is missing or has a bad entry: {exc!r}") from None
@@ -420,16 +454,22 @@ def _singular_columns(xtx: np.ndarray, names: list[str]) -> list[list[str]]:
     return groups
 
 
-def _separation_problems(S, is01, names, groups, causes, codes, kind) -> list[str]:
-    """Indicator columns (and reference levels) with no events of a cause, or only events."""
-    problems = []
-    totals = S[0]  # the intercept column: rows by outcome 0, 1, 2
+def _separation_problems(S, is01, names, groups, causes, codes, kind, free=None) -> list[str]:
+    """Indicator columns (and reference levels) with no events of a cause, or only events.
 
-    def check(label, counts):
+    ``free`` (K, p) marks the coefficients estimated; a column fixed at zero for a cause cannot separate it.
+    """
+    problems = []
+    totals = S[0]  # the intercept column: rows by outcome code
+    free = np.ones((len(causes), len(names)), dtype=bool) if free is None else free
+
+    def check(label, counts, cols):
         n_rows = counts.sum()
         if n_rows <= 0:
             return
-        for cause, code in zip(causes, codes):
+        for a, (cause, code) in enumerate(zip(causes, codes)):
+            if not free[a, cols].any():
+                continue
             e = counts[code]
             eligible = n_rows if kind == "multinomial" else counts[0] + counts[code]
             if e == 0:
@@ -443,10 +483,10 @@ def _separation_problems(S, is01, names, groups, causes, codes, kind) -> list[st
     for j, name in enumerate(names):
         if j == 0 or not is01[j]:
             continue
-        check(f"column {name!r}", S[j])
+        check(f"column {name!r}", S[j], [j])
     for term, ref, cols in groups:
         if cols:
-            check(f"reference level {ref!r} of {term!r}", totals - S[cols].sum(axis=0))
+            check(f"reference level {ref!r} of {term!r}", totals - S[cols].sum(axis=0), cols)
     return problems
 
 
@@ -524,16 +564,37 @@ def fit_hazard(
     causes, codes, dropped = check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol)
     if spec.learned is None:
         spec = spec.learn(engine.con, where_sql, params)
+    return fit_outcomes(
+        engine, spec, causes=causes, codes=codes, dropped=dropped, kind=kind, where_sql=where_sql, params=params,
+        ridge=ridge, batch_size=batch_size, max_iter=max_iter, tol=tol, collapse=collapse, temp_dir=temp_dir,
+        limits=limits, stacklevel=4,
+    )
+
+
+def fit_outcomes(
+    engine, spec, *, causes, codes, dropped=(), kind="multinomial", where_sql="TRUE", params=(), ridge=0.0,
+    batch_size=250_000, max_iter=50, tol=1e-8, collapse="auto", temp_dir=None, limits=None, origin_state=None, free=None,
+    reference=0, stacklevel=3,
+) -> HazardResults:
+    """Fit a learned ``spec`` to the outcomes ``codes`` (named ``causes``) against code 0, the reference.
+
+    The step :func:`fit_hazard` and the multi-state fit share. ``dropped`` are outcome codes whose rows
+    are left out; ``origin_state`` fits the months that start in that arrears state, with their
+    destination as the outcome (``reference``: the destination code taken as the reference instead of
+    "stay"); ``free`` (K, p) bool holds the unmarked coefficients at zero.
+    """
+    codes = np.asarray(codes, dtype=np.int8)
     collapse = resolve_collapse(spec, collapse)
-    sql = raw_design_sql(engine.con, spec, where_sql, collapse)
+    sql = raw_design_sql(engine.con, spec, where_sql, collapse, origin_state=origin_state, reference=reference)
     sums = engine.design_sums(
-        spec, sql, list(params), collapse=collapse, dropped=dropped, codes=codes, kind=kind,
+        spec, sql, list(params), collapse=collapse, dropped=list(dropped), codes=codes, kind=kind,
         batch_size=batch_size, temp_dir=temp_dir,
     )
     try:
         return fit_from_sums(
-            sums.evaluate, sums.first, spec, kind=kind, causes=causes, codes=codes, ridge=ridge, max_iter=max_iter,
-            tol=tol, collapse=collapse, where_sql=where_sql, fingerprint=sums.fingerprint, limits=limits,
+            sums.evaluate, sums.first, spec, kind=kind, causes=tuple(causes), codes=codes, ridge=ridge,
+            max_iter=max_iter, tol=tol, collapse=collapse, where_sql=where_sql, fingerprint=sums.fingerprint,
+            limits=limits, free=free, stacklevel=stacklevel,
         )
     finally:
         sums.close()
@@ -545,7 +606,8 @@ def fit_hazard(
 def check_fit_arguments(kind, causes, ridge, batch_size, max_iter, tol):
     """Validate the fit settings; return the causes in canonical order, their codes and the dropped codes."""
     if kind not in ("multinomial", "cause_specific"):
-        raise ModelError(f"kind must be 'multinomial' or 'cause_specific', got {kind!r}")
+        hint = "; the multi-state model is fitted by fit_multi_state" if kind == "multi_state" else ""
+        raise ModelError(f"kind must be 'multinomial' or 'cause_specific', got {kind!r}{hint}")
     causes = tuple(causes)
     if not causes or any(c not in CAUSES for c in causes) or len(set(causes)) != len(causes):
         raise ModelError(f"causes must be a non-empty subset of {list(CAUSES)}, got {list(causes)}")
@@ -567,9 +629,11 @@ def resolve_collapse(spec: FeatureSpec, collapse) -> bool:
     return bool(collapse)
 
 
-def raw_design_sql(con, spec: FeatureSpec, where_sql: str, collapse: bool) -> str:
+def raw_design_sql(
+    con, spec: FeatureSpec, where_sql: str, collapse: bool, origin_state: int | None = None, reference: int = 0
+) -> str:
     """The raw-input query of the fit; with ``collapse``, grouped to covariate-pattern counts."""
-    sql = spec.raw_query(con, where_sql, order=not collapse)
+    sql = spec.raw_query(con, where_sql, order=not collapse, origin_state=origin_state, reference=reference)
     if collapse:
         keys = [i.key for i in spec.inputs() if i.key != "log_age"]
         group = ", ".join(quote_ident(k) for k in ["age", "outcome", *keys])
@@ -580,9 +644,10 @@ def raw_design_sql(con, spec: FeatureSpec, where_sql: str, collapse: bool) -> st
 def batch_design(raw: dict, spec: FeatureSpec, collapse: bool, dropped):
     """Design ``X``, outcomes ``y`` (int8) and weights ``w`` of one batch of raw rows, or None if empty."""
     y = np.asarray(raw["outcome"])
-    if y.dtype.kind == "f" and np.isnan(y).any() or not np.isin(y, (0, 1, 2)).all():
-        bad = sorted(set(np.unique(y[~np.isin(y, (0, 1, 2))]).tolist()))[:5]
-        raise DataError(f"loan_months.outcome must be 0, 1 or 2; found {bad}")
+    valid = np.arange(N_CODES)
+    if y.dtype.kind == "f" and np.isnan(y).any() or not np.isin(y, valid).all():
+        bad = sorted(set(np.unique(y[~np.isin(y, valid)]).tolist()))[:5]
+        raise DataError(f"loan_months outcome codes must be integers 0 to {N_CODES - 1}; found {bad}")
     y = y.astype(np.int8)
     w = np.asarray(raw["_cs_weight"], dtype=np.float64) if collapse else np.ones(y.shape[0])
     if dropped:
@@ -595,13 +660,20 @@ def batch_design(raw: dict, spec: FeatureSpec, collapse: bool, dropped):
     return X, y, w
 
 
+N_CODES = 16
+"""Outcome codes the fit accepts: 0 (the reference), 1 default, 2 prepay, 3 + k a move to arrears state k."""
+
+
 class FirstPass:
-    """Sums of the first pass over the design: events by column, X'WX, 0/1 columns, fingerprint."""
+    """Sums of the first pass over the design: events by column, X'WX, 0/1 columns, fingerprint.
+
+    ``S[j, c]`` is the weighted sum of column ``j`` over the rows with outcome code ``c``.
+    """
 
     def __init__(self, p: int):
         # One hash per stream so that the fingerprint does not depend on batch boundaries.
         self.digests = {k: hashlib.sha256() for k in ("X", "y", "w")}
-        self.S = np.zeros((p, 3))
+        self.S = np.zeros((p, N_CODES))
         self.xtx = np.zeros((p, p))
         self.is01 = np.ones(p, dtype=bool)
         self.n = 0
@@ -610,8 +682,9 @@ class FirstPass:
         self.digests["X"].update(np.ascontiguousarray(X).tobytes())
         self.digests["y"].update(y.tobytes())
         self.digests["w"].update(w.tobytes())
-        onehot = (y[:, None] == np.arange(3)[None, :]) * w[:, None]
-        self.S += X.T @ onehot
+        for code in np.unique(y):  # column sums by outcome: integers for indicators, in any order
+            rows = y == code
+            self.S[:, code] += w[rows] @ X[rows]
         self.xtx += (X * w[:, None]).T @ X
         self.is01 &= ((X == 0) | (X == 1)).all(axis=0)
         self.n += X.shape[0]
@@ -628,17 +701,20 @@ def fit_fingerprint(n: int, names, digests) -> str:
 
 
 def fit_from_sums(
-    evaluate, first, spec, *, kind, causes, codes, ridge, max_iter, tol, collapse, where_sql, fingerprint, limits=None
+    evaluate, first, spec, *, kind, causes, codes, ridge, max_iter, tol, collapse, where_sql, fingerprint, limits=None,
+    free=None, stacklevel=3,
 ):
     """Checks on the first-pass sums, the Newton iterations and the results object.
 
     ``first`` holds ``S``, ``xtx``, ``is01`` and ``n`` summed over all the data;
     ``evaluate`` is the engine's likelihood pass (see :func:`_newton`); ``limits`` as
-    :func:`fit_hazard` takes them.
+    :func:`fit_hazard` takes them. ``free`` (K, p) bool marks the coefficients to estimate;
+    the others are held at zero (a cause fitted on part of the design). Default: all.
     """
     limits = {**TRUST_LIMITS, **(limits or {})}
     names = spec.columns
     p, K = len(names), len(causes)
+    free = np.ones((K, p), dtype=bool) if free is None else np.asarray(free, dtype=bool)
     if first.n == 0:
         raise ModelError(f"no loan-months to fit (filter: {where_sql})")
     S = first.S
@@ -659,37 +735,43 @@ def fit_from_sums(
     if missing:
         raise SeparationError(f"no {', '.join(missing)} events in the {n_rows:,} loan-months; remove the cause from causes or widen the data")
     if ridge == 0:
-        problems = _separation_problems(S, first.is01, names, spec.indicator_groups(), causes, codes, kind)
+        problems = _separation_problems(S, first.is01, names, spec.indicator_groups(), causes, codes, kind, free)
         if problems:
             raise SeparationError("quasi-complete separation: " + problem_list(problems, "the design"))
-    few = [c for c in causes if events[c] < limits["min_events_per_parameter"] * p]
+    n_par = {c: int(free[a].sum()) for a, c in enumerate(causes)}
+    # An intercept alone is the outcome's observed rate: the events-per-parameter rule guards coefficients of terms.
+    few = [c for c in causes if n_par[c] > 1 and events[c] < limits["min_events_per_parameter"] * n_par[c]]
     if few:
-        text = "; ".join(f"{c}: {events[c]:,} events for {p} parameters ({events[c] / p:.1f} per parameter)" for c in few)
+        text = "; ".join(
+            f"{c}: {events[c]:,} events for {n_par[c]} parameters ({events[c] / n_par[c]:.1f} per parameter)" for c in few
+        )
         raise ModelError(
             f"too few events to fit the model: {text}; at least {limits['min_events_per_parameter']:g} per parameter "
             "are needed (model.fit.min_events_per_parameter; common practice). Widen the development window, "
             "drop terms, or lower the limit explicitly"
         )
     for c in causes:
-        if events[c] < _MIN_EVENTS_PER_PARAMETER * p:
+        if n_par[c] > 1 and events[c] < STABLE_EVENTS_PER_PARAMETER * n_par[c]:
             warnings.warn(
                 FewEventsWarning(
-                    f"{c}: {events[c]:,} events for {p} parameters ({events[c] / p:.1f} per parameter, "
-                    f"fewer than {_MIN_EVENTS_PER_PARAMETER}); estimates may be unstable"
+                    f"{c}: {events[c]:,} events for {n_par[c]} parameters ({events[c] / n_par[c]:.1f} per parameter, "
+                    f"fewer than {STABLE_EVENTS_PER_PARAMETER}); estimates may be unstable"
                 ),
-                stacklevel=3,
+                stacklevel=stacklevel,
             )
 
-    beta, ll, H, log, converged = _newton(evaluate, p, codes, totals, ridge, max_iter, tol)
+    beta, ll, H, log, converged = _newton(evaluate, p, codes, totals, ridge, max_iter, tol, free)
     pen = np.tile(np.r_[0.0, np.full(p - 1, ridge)], K)
+    idx = np.flatnonzero(free.ravel())
     try:
-        cov = linalg.inv(H + np.diag(pen))
+        inner = linalg.inv(H[np.ix_(idx, idx)] + np.diag(pen[idx]))
     except linalg.LinAlgError:
         raise SingularDesignError("the information matrix at the estimates is singular; fit with ridge > 0 or drop terms") from None
-    cov = 0.5 * (cov + cov.T)
+    cov = np.zeros((K * p, K * p))
+    cov[np.ix_(idx, idx)] = 0.5 * (inner + inner.T)
     se = np.sqrt(np.clip(np.diag(cov), 0.0, None)).reshape(K, p)
     _raise_for_absurd(beta, cov, first, spec, causes, limits)
-    k_par = K * p
+    k_par = len(idx)
     return HazardResults(
         params=pd.DataFrame(beta.T, index=names, columns=list(causes)),
         bse=pd.DataFrame(se.T, index=names, columns=list(causes)),
@@ -710,6 +792,7 @@ def fit_from_sums(
         collapsed=bool(collapse),
         n_stored_rows=first.n,
         trust_limits=limits,
+        fixed_terms={c: [names[j] for j in np.flatnonzero(~free[a])] for a, c in enumerate(causes) if not free[a].all()},
     )
 
 
@@ -728,7 +811,7 @@ def _raise_for_absurd(beta, cov, first, spec, causes, limits) -> None:
     n = first.xtx[0, 0]
     mean = first.xtx[0] / n
     C_all = first.xtx / n - np.outer(mean, mean)
-    base = [j for j, nm in enumerate(names) if nm in set(spec._baseline_names())]
+    base = [j for j, nm in enumerate(names) if nm in set(spec.baseline_columns)]
     groups = ([base] if base else []) + [[j] for j in range(1, p) if j not in base]
     problems = []
     for k, c in enumerate(causes):
@@ -755,15 +838,17 @@ def _raise_for_absurd(beta, cov, first, spec, causes, limits) -> None:
         )
 
 
-def _newton(evaluate, p, codes, totals, ridge, max_iter, tol):
+def _newton(evaluate, p, codes, totals, ridge, max_iter, tol, free=None):
     """Newton-Raphson with step halving on the penalised log-likelihood.
 
     ``evaluate(beta, need_hess)`` returns the log-likelihood, score and
     information at ``beta`` (K, p); it is the only part that touches the data,
     so each engine passes its own (a loop over batches, or a Spark job over
-    partitions) and the iteration itself is shared.
+    partitions) and the iteration itself is shared. Only the coefficients that
+    ``free`` (K, p) marks move; the others stay at zero.
     """
     K = len(codes)
+    idx = np.flatnonzero(np.ones(K * p, dtype=bool) if free is None else np.asarray(free, dtype=bool).ravel())
     beta = np.zeros((K, p))
     for a, code in enumerate(codes):
         base = totals[0]
@@ -777,15 +862,17 @@ def _newton(evaluate, p, codes, totals, ridge, max_iter, tol):
     obj = objective(ll, beta)
     log = [{"iteration": 0, "loglik": ll, "max_step": None, "step_fraction": None}]
     for it in range(1, max_iter + 1):
-        grad = g.ravel() - pen * beta.ravel()
-        A = H + np.diag(pen)
+        grad = (g.ravel() - pen * beta.ravel())[idx]
+        A = H[np.ix_(idx, idx)] + np.diag(pen[idx])
         try:
-            step = linalg.cho_solve(linalg.cho_factor(A), grad)
+            inner = linalg.cho_solve(linalg.cho_factor(A), grad)
         except linalg.LinAlgError:
             try:
-                step = linalg.solve(A, grad, assume_a="sym")
+                inner = linalg.solve(A, grad, assume_a="sym")
             except linalg.LinAlgError:
                 raise _convergence_error("the information matrix is singular at an iterate", log) from None
+        step = np.zeros(K * p)
+        step[idx] = inner
         step = step.reshape(K, p)
         t = 1.0
         new = beta + step

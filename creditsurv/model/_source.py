@@ -8,16 +8,20 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DataError
+from ._features import feature_spec
 from ._hazard import (
+    MULTI_STATE_FORMAT,
     TRUST_LIMITS,
     HazardResults,
     check_saved_model,
     fit_model,
-    load_model,
+    read_model_file,
+    results_from_dict,
 )
+from ._multistate import MultiStateResults, fit_multi_state
 from ._speeds import BenchmarkCurves, HazardTable
 
-__all__ = ["HazardSource", "development_window", "hazard_source"]
+__all__ = ["HazardSource", "development_window", "hazard_source", "load_model"]
 
 
 @runtime_checkable
@@ -41,17 +45,26 @@ class HazardSource(Protocol):
     def record(self) -> dict: ...
 
 
+def load_model(path) -> HazardResults | MultiStateResults:
+    """Read a model written by :meth:`HazardResults.save` or :meth:`MultiStateResults.save`."""
+    data = read_model_file(path)
+    if isinstance(data, dict) and data.get("format") == MULTI_STATE_FORMAT:
+        return MultiStateResults.from_dict(data, path)
+    return results_from_dict(data, path)
+
+
 def development_window(cfg) -> tuple[str, tuple[int, int]]:
     """The row filter of the development window over the raw inputs, and its bounds."""
     dev = cfg.windows.development
     return "month_idx BETWEEN ? AND ?", (int(dev.start), int(dev.end))
 
 
-def hazard_source(cfg, engine, temp_dir=None) -> HazardResults | BenchmarkCurves | HazardTable:
+def hazard_source(cfg, engine, temp_dir=None) -> HazardResults | MultiStateResults | BenchmarkCurves | HazardTable:
     """The hazard source of a run.
 
     ``model.source`` fitted: the saved model when ``model.path`` is set, else a
-    fit on the development window on ``engine``; benchmark: % PSA and % SDA
+    fit on the development window on ``engine`` (with ``model.kind: multi_state``
+    one multinomial logit per arrears state); benchmark: % PSA and % SDA
     curves; table: monthly hazards by loan age from a CSV file. Only a fit
     reads the panel.
     """
@@ -68,4 +81,13 @@ def hazard_source(cfg, engine, temp_dir=None) -> HazardResults | BenchmarkCurves
         check_saved_model(model, {name: getattr(cfg.model.fit, name) for name in TRUST_LIMITS}, cfg.model.path)
         return model
     where, params = development_window(cfg)
+    if cfg.model.kind == "multi_state":
+        model = cfg.model
+        spec = feature_spec(model, cfg.collateral).learn(engine.con, where, params)
+        return fit_multi_state(
+            engine, spec, cfg.arrears.labels(cfg.default_definition.days_past_due), where_sql=where, params=params,
+            ridge=model.ridge, batch_size=model.fit.batch_size, max_iter=model.fit.max_iter, tol=model.fit.tol,
+            temp_dir=temp_dir, limits={name: getattr(model.fit, name) for name in TRUST_LIMITS},
+            min_transition_events=model.fit.min_transition_events,
+        )
     return fit_model(engine, cfg.model, cfg.collateral, where_sql=where, params=params, temp_dir=temp_dir)

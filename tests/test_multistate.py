@@ -1,0 +1,305 @@
+"""Tests of creditsurv.model's multi-state fit: one multinomial logit per arrears state.
+
+Independent references: statsmodels' ``MNLogit`` on the same rows, the empirical transition
+shares counted here with pandas (the non-parametric Markov estimate, Aalen & Johansen 1978),
+a direct scipy.optimize maximisation of the constrained likelihood written here, and the known
+parameters of the book simulated below.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+from scipy import optimize
+
+from creditsurv.config import config_from_dict
+from creditsurv.data import raise_for_errors
+from creditsurv.engines import label_events, open_panel, run_checks
+from creditsurv.errors import ModelError
+from creditsurv.model import (
+    MultiStateResults,
+    feature_spec,
+    fit_hazard,
+    fit_multi_state,
+    hazard_source,
+    load_model,
+)
+
+LABELS = ("current", "30-59", "60-89")
+STATES = [*LABELS, "default", "prepaid"]
+START = 2018 * 12  # 2018-01: first origination month
+AS_OF = 2022 * 12 - 1  # 2021-12
+
+# The true model: from each state, log-odds against staying of each end state = intercept + score effect
+# + an effect of loan age above 12 months. A move missing here never happens (current to 60-89).
+TRUE = {
+    "current": {"30-59": (-3.6, -0.5, 0.2), "default": (-7.0, -0.6, 0.0), "prepaid": (-4.4, 0.3, 0.4)},
+    "30-59": {"current": (-0.4, 0.4, 0.0), "60-89": (-1.2, -0.4, 0.1), "default": (-4.0, -0.3, 0.0), "prepaid": (-4.0, 0.0, 0.0)},
+    "60-89": {"current": (-1.0, 0.3, 0.0), "30-59": (-1.4, 0.0, 0.0), "default": (-0.3, -0.5, 0.2), "prepaid": (-2.8, 0.0, 0.0)},
+}
+DPD = {"current": 0, "30-59": 35, "60-89": 65, "default": 95}
+
+
+def _month(idx: int) -> str:
+    return f"{idx // 12:04d}-{idx % 12 + 1:02d}"
+
+
+def simulate(n_loans: int, seed: int, true=TRUE, starts_current=True):
+    """A book moving between arrears states by the multinomial logits of ``true``; panel and loan table."""
+    rng = np.random.default_rng(seed)
+    orig = rng.integers(START, AS_OF - 6, size=n_loans)
+    score = rng.normal(0.0, 1.0, size=n_loans)
+    state = np.zeros(n_loans, dtype=np.int64)  # index into STATES
+    alive = np.ones(n_loans, dtype=bool)
+    rows = []
+    for age in range(1, AS_OF - START + 1):
+        on = alive & (orig + age <= AS_OF)
+        if not on.any():
+            break
+        new_state = state.copy()
+        for j, origin in enumerate(LABELS):
+            idx = np.flatnonzero(on & (state == j))
+            if idx.size == 0:
+                continue
+            eta = np.zeros((idx.size, len(STATES)))
+            for dest, (a, b, c) in true[origin].items():
+                eta[:, STATES.index(dest)] = a + b * score[idx] + c * (age > 12)
+            eta[:, [k for k, s in enumerate(STATES) if s not in true[origin] and s != origin]] = -np.inf
+            p = np.exp(eta - eta.max(axis=1, keepdims=True))
+            p /= p.sum(axis=1, keepdims=True)
+            u = rng.random(idx.size)[:, None]
+            new_state[idx] = (u > np.cumsum(p, axis=1)).sum(axis=1)
+        idx = np.flatnonzero(on)
+        end = new_state[idx]
+        name = np.array(STATES, dtype=object)[end]
+        rows.append(
+            pd.DataFrame(
+                {
+                    "loan_id": idx,
+                    "month_idx": orig[idx] + age,
+                    "age": age,
+                    "balance": np.where(name == "prepaid", 0.0, 100_000.0 - 100.0 * age),
+                    "days_past_due": [DPD.get(s, 0) for s in name],
+                }
+            )
+        )
+        state = new_state
+        alive &= ~np.isin(state, [STATES.index("default"), STATES.index("prepaid")])
+    panel = pd.concat(rows, ignore_index=True).sort_values(["loan_id", "month_idx"])
+    panel["month"] = [_month(int(m)) for m in panel.pop("month_idx")]
+    panel["loan_id"] = [f"L{i:06d}" for i in panel["loan_id"]]
+    loans = pd.DataFrame(
+        {
+            "loan_id": [f"L{i:06d}" for i in range(n_loans)],
+            "origination_month": [_month(int(m)) for m in orig],
+            "original_balance": 100_000.0,
+            "note_rate": 4.0,
+            "term": 360,
+            "credit_score": score,
+        }
+    )
+    return panel, loans[loans["loan_id"].isin(panel["loan_id"])]
+
+
+def _config(folder, panel, loans, **model):
+    panel.to_parquet(folder / "panel.parquet", index=False)
+    loans.to_parquet(folder / "loans.parquet", index=False)
+    data = {
+        "as_of": _month(AS_OF),
+        "windows": {"development": {"start": _month(START), "end": _month(AS_OF)}},
+        "inputs": {"panel": {"path": "panel.parquet"}, "loans": {"path": "loans.parquet"}},
+        "default_definition": {"days_past_due": 90},
+        "model": {
+            "kind": "multi_state",
+            "baseline": {"kind": "age_bands", "edges": [13]},
+            "covariates": [{"name": "score", "column": "credit_score"}],
+            **model,
+        },
+    }
+    return config_from_dict(data, base_dir=folder)
+
+
+@pytest.fixture(scope="module")
+def book(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("arrears_book")
+    panel, loans = simulate(10_000, seed=20)
+    return folder, panel, loans
+
+
+def _opened(cfg):
+    engine = open_panel(cfg)
+    raise_for_errors(run_checks(engine))
+    label_events(engine)
+    return engine
+
+
+def _fit(engine, cfg, **overrides):
+    spec = feature_spec(cfg.model, cfg.collateral).learn(engine.con)
+    options = {"limits": {"min_events_per_parameter": 0}, "min_transition_events": 0, **overrides}
+    return fit_multi_state(engine, spec, LABELS, **options)
+
+
+@pytest.fixture(scope="module")
+def fitted(book):
+    folder, panel, loans = book
+    cfg = _config(folder, panel, loans)
+    with _opened(cfg) as engine:
+        model = _fit(engine, cfg)
+        raw = {j: engine.frame(model.spec.raw_query(engine.con, origin_state=j)) for j in range(len(LABELS))}
+    return model, raw
+
+
+def test_each_origin_state_equals_statsmodels_mnlogit_on_the_same_rows(fitted):
+    # statsmodels MNLogit, the multinomial logit's maximum likelihood, on each origin state's months
+    model, raw = fitted
+    for j, origin in enumerate(LABELS):
+        part = model.origins[origin]
+        X, _ = model.spec.design(raw[j])
+        y = raw[j]["outcome"].to_numpy()
+        assert part.n_rows == len(y) and sorted(np.unique(y)) == [0, *sorted(set(np.unique(y)) - {0})]
+        ref = sm.MNLogit(y, X).fit(method="newton", disp=False, tol=1e-12, maxiter=100)
+        # MNLogit's columns follow the sorted outcome codes above 0; the fit keeps them in the same order
+        np.testing.assert_allclose(part.params.to_numpy(), ref.params, rtol=1e-6, atol=1e-9, err_msg=origin)
+        np.testing.assert_allclose(part.bse.to_numpy(), ref.bse, rtol=1e-6, err_msg=origin)
+        np.testing.assert_allclose(part.loglik, ref.llf, rtol=1e-10)
+
+
+def test_the_fit_recovers_the_simulated_parameters(fitted):
+    # The book was drawn from TRUE: every estimated coefficient within 4 standard errors of its true value.
+    model, _ = fitted
+    seen = 0
+    for origin, moves in TRUE.items():
+        part = model.origins[origin]
+        for dest, (a, b, c) in moves.items():
+            if dest == model.references[origin]:
+                continue
+            truth = {"intercept": a, "score": b, "age_band[13+]": c}
+            for term, value in truth.items():
+                est, se = part.params.loc[term, dest], part.bse.loc[term, dest]
+                assert abs(est - value) < 4 * se, (origin, dest, term, est, se, value)
+                seen += 1
+    assert seen == 3 * 11  # every move of TRUE: each state's loans stay put often enough to be the reference
+
+
+def test_moves_never_seen_are_fixed_at_zero_and_rows_sum_to_one(fitted):
+    model, raw = fitted
+    fits = model.transitions.set_index(["origin", "destination"])
+    assert fits.loc[("current", "60-89"), "design"] == "none" and fits.loc[("current", "60-89"), "loan_months"] == 0
+    for j, origin in enumerate(LABELS):
+        P = model.transition_probabilities(raw[j], origin)
+        assert P.shape == (len(raw[j]), 5)
+        np.testing.assert_allclose(P.sum(axis=1), 1.0, rtol=0, atol=1e-12)
+        assert (P >= 0).all()
+    P = model.transition_probabilities(raw[0], "current")
+    assert (P[:, STATES.index("60-89")] == 0).all()
+
+
+def test_no_covariates_give_the_empirical_transition_shares(book, tmp_path):
+    # With the age bands alone every move's fit is saturated: the model's probabilities are the observed
+    # shares of each end state among the months starting in each state, band by band (the
+    # non-parametric Markov estimate; Aalen & Johansen 1978), counted here straight from loan_months.
+    _, panel, loans = book
+    cfg = _config(tmp_path, panel, loans, covariates=[])
+    with _opened(cfg) as engine:
+        model = _fit(engine, cfg)
+        months = engine.frame("SELECT origin_state, destination, age FROM loan_months WHERE origin_state IS NOT NULL")
+        for j, origin in enumerate(LABELS):
+            rows = months[months["origin_state"] == j]
+            for band, ages in (("young", rows["age"] <= 12), ("old", rows["age"] > 12)):
+                sub = rows[ages]
+                d = sub["destination"].to_numpy().astype(np.int64)
+                end = np.select([d == 0, d == 1, d == 2], [j, 3, 4], default=d - 3)
+                observed = np.bincount(end, minlength=5) / len(sub)
+                age = np.array([6 if band == "young" else 24])
+                got = model.transition_probabilities({"age": age, "log_age": np.log(age)}, origin)[0]
+                np.testing.assert_allclose(got, observed, rtol=1e-9, atol=1e-13, err_msg=f"{origin} {band}")
+
+
+def test_one_state_is_the_competing_risk_model(book, tmp_path):
+    # With no arrears states the multi-state model's one logit is the multinomial competing-risk model.
+    _, panel, loans = book
+    data_cfg = _config(tmp_path, panel, loans)
+    cfg = config_from_dict({**_as_dict(data_cfg), "arrears": {"starts": []}}, base_dir=tmp_path)
+    with _opened(cfg) as engine:
+        spec = feature_spec(cfg.model, cfg.collateral).learn(engine.con)
+        multi = fit_multi_state(engine, spec, ("current",))
+        competing = fit_hazard(engine, spec, kind="multinomial")
+    part = multi.origins["current"]
+    assert part.causes == ("default", "prepaid") and competing.causes == ("default", "prepay")
+    np.testing.assert_allclose(part.params.to_numpy(), competing.params.to_numpy(), rtol=1e-12, atol=0)
+    np.testing.assert_allclose(part.bse.to_numpy(), competing.bse.to_numpy(), rtol=1e-12, atol=0)
+    assert part.loglik == pytest.approx(competing.loglik, rel=1e-14)
+
+
+def _as_dict(cfg):
+    from creditsurv.config import config_to_dict
+
+    return config_to_dict(cfg)
+
+
+def _constrained_mle(X, y, codes, free):
+    """The multinomial likelihood with some coefficients held at zero, maximised by scipy (BFGS)."""
+    K, p = free.shape
+    idx = np.flatnonzero(free.ravel())
+    Y = (y[:, None] == np.asarray(codes)[None, :]).astype(float)
+
+    def negloglik(theta):
+        beta = np.zeros(K * p)
+        beta[idx] = theta
+        eta = X @ beta.reshape(K, p).T
+        full = np.column_stack([np.zeros(len(y)), eta])
+        lse = np.logaddexp.reduce(full, axis=1)
+        return -(np.sum(Y * eta) - lse.sum())
+
+    res = optimize.minimize(negloglik, np.zeros(idx.size), method="BFGS", options={"gtol": 1e-9, "maxiter": 5000})
+    beta = np.zeros(K * p)
+    beta[idx] = res.x
+    return beta.reshape(K, p)
+
+
+def test_rare_moves_get_a_reduced_design_and_the_constrained_maximum(book, tmp_path):
+    # Moves seen fewer than min_transition_events times keep intercept and age baseline only: the fit is
+    # the maximum of the likelihood with the other coefficients at zero (scipy.optimize on the same rows).
+    _, panel, loans = book
+    cfg = _config(tmp_path, panel, loans)
+    with _opened(cfg) as engine:
+        counts = engine.frame("SELECT origin_state, destination, count(*) AS n FROM loan_months GROUP BY ALL")
+        n = {(int(o), int(d)): int(k) for o, d, k in counts.itertuples(index=False) if o == o}
+        limit = n[(1, 2)] + 1  # prepaid from 30-59 falls below it; default, 60-89 and cure from 30-59 do not
+        assert min(n[(1, 1)], n[(1, 3)], n[(1, 5)]) > limit
+        model = _fit(engine, cfg, min_transition_events=limit)
+        raw = engine.frame(model.spec.raw_query(engine.con, origin_state=1))
+    fits = model.transitions.set_index(["origin", "destination"])
+    assert fits.loc[("30-59", "prepaid"), "design"] == "baseline" and fits.loc[("30-59", "prepaid"), "parameters"] == 2
+    assert fits.loc[("30-59", "default"), "design"] == "full"
+    part = model.origins["30-59"]
+    assert part.fixed_terms == {"prepaid": ["score"]}
+    assert part.params.loc["score", "prepaid"] == 0.0 and part.bse.loc["score", "prepaid"] == 0.0
+    assert "score" not in set(part.summary().query("cause == 'prepaid'")["term"])
+    X, _ = model.spec.design(raw)
+    free = np.array([[c not in part.fixed_terms.get(cause, []) for c in part.params.index] for cause in part.causes])
+    codes = {"default": 1, "prepaid": 2, "current": 3, "60-89": 5}
+    want = _constrained_mle(X, raw["outcome"].to_numpy(), [codes[c] for c in part.causes], free)
+    np.testing.assert_allclose(part.params.to_numpy().T, want, rtol=1e-5, atol=1e-6)
+
+
+def test_saved_model_reads_back_with_the_same_probabilities(fitted, tmp_path):
+    model, raw = fitted
+    path = model.save(tmp_path / "model.json")
+    again = load_model(path)
+    assert isinstance(again, MultiStateResults)
+    assert again.references == model.references and again.labels == model.labels
+    pd.testing.assert_frame_equal(again.transitions, model.transitions)
+    for j, origin in enumerate(LABELS):
+        np.testing.assert_array_equal(again.transition_probabilities(raw[j], origin), model.transition_probabilities(raw[j], origin))
+    assert again.save(tmp_path / "again.json").read_bytes() == path.read_bytes()
+
+
+def test_a_state_no_month_starts_in_is_an_error(book, tmp_path):
+    _, panel, loans = book
+    cfg = _config(tmp_path, panel, loans)
+    cfg = config_from_dict({**_as_dict(cfg), "arrears": {"starts": [30, 60, 80]}}, base_dir=tmp_path)
+    with _opened(cfg) as engine, pytest.raises(ModelError, match=r"no loan-months start in arrears state '80-89'"):
+        hazard_source(cfg, engine)
