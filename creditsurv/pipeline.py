@@ -436,12 +436,6 @@ def execute_run(
     from .engines import open_engine
     from .runs import RunFolder, movement_against_run
 
-    if cfg.model.kind == "multi_state":
-        # The fit is built (creditsurv fit); the Markov-chain projection of its states comes next.
-        raise RunError(
-            "model.kind: multi_state can be fitted (creditsurv fit) but not yet projected by a run; "
-            "run with multinomial or cause_specific"
-        )
     ctx = run_context(cfg)
     _say(progress, "data checks and events")
     with open_engine(cfg) as engine:
@@ -455,13 +449,13 @@ def execute_run(
             _say(progress, "hazard model")
             kill_point("fit")
             model = hazard_source(cfg, engine, temp_dir=work)
-            if isinstance(model, MultiStateResults):
-                raise RunError(f"model.path: {cfg.model.path} holds a multi-state model, which a run cannot project yet")
             shutil.rmtree(work)
-            coefficients = model.summary() if isinstance(model, HazardResults) else None
+            coefficients = model.summary() if isinstance(model, (HazardResults, MultiStateResults)) else None
             if coefficients is not None:
                 model.save(run.add_file("hazard_model.json"))
                 run.add_table(coefficients, "coefficients.csv")
+            if isinstance(model, MultiStateResults):
+                run.add_table(model.transitions, "transition_fits.csv")
             run.add_table(checks, "data_checks.csv")
             events = engine.event_counts()
             run.add_table(events, "event_counts.csv")
@@ -475,6 +469,8 @@ def execute_run(
             report_tables["event_counts"] = events
             if coefficients is not None:
                 report_tables["coefficients"] = coefficients
+            if isinstance(model, MultiStateResults):
+                report_tables["transition_fits"] = model.transitions
             manifest.model = model.record()
             manifest.data_check_warnings = _fired_warnings(checks)
             manifest.scenario_weights = dict(ctx.weights)

@@ -303,3 +303,49 @@ def test_a_state_no_month_starts_in_is_an_error(book, tmp_path):
     cfg = config_from_dict({**_as_dict(cfg), "arrears": {"starts": [30, 60, 80]}}, base_dir=tmp_path)
     with _opened(cfg) as engine, pytest.raises(ModelError, match=r"no loan-months start in arrears state '80-89'"):
         hazard_source(cfg, engine)
+
+
+# --------------------------------------------------------------------------- projection: the Markov chain
+
+
+def test_projection_is_the_aalen_johansen_product_of_the_empirical_matrices(book, tmp_path):
+    # No covariates and age bands: the fitted model's transition matrices are the empirical ones of each band,
+    # so a loan's projected PD must be the product of those matrices month after month (the Aalen-Johansen
+    # estimator of a Markov multi-state model, Aalen & Johansen 1978), computed here with numpy alone.
+    from creditsurv.forecast import project_loans
+
+    _, panel, loans = book
+    cfg = _config(tmp_path, panel, loans, covariates=[])
+    with _opened(cfg) as engine:
+        model = _fit(engine, cfg)
+        months = engine.frame("SELECT origin_state, destination, age FROM loan_months WHERE origin_state IS NOT NULL")
+    empirical = {}
+    for band, ages in (("young", months["age"] <= 12), ("old", months["age"] > 12)):
+        M = np.zeros((5, 5))
+        for j in range(3):
+            d = months.loc[ages & (months["origin_state"] == j), "destination"].to_numpy().astype(np.int64)
+            end = np.select([d == 0, d == 1, d == 2], [j, 3, 4], default=d - 3)
+            M[j] = np.bincount(end, minlength=5) / len(d)
+        M[3, 3] = M[4, 4] = 1.0
+        empirical[band] = M
+    book_now = pd.DataFrame(
+        {
+            "loan_id": ["a", "b", "c", "d"], "segment": "all", "age": [3, 3, 20, 11], "term": [60, 60, 60, 40],
+            "note_rate": 0.04, "balance": 1e5, "arrears_state": [0, 2, 1, 1],
+        }
+    )
+    history = pd.DataFrame({"x": np.zeros(200)}, index=pd.Index(np.arange(AS_OF - 100, AS_OF + 100), name="month_idx"))
+    curves = []
+    project_loans(book_now, model, {"base": history}, as_of_idx=AS_OF, curve_writer=curves.append)
+    table = pd.concat([c.to_pandas() for c in curves])
+    table = table[table["scenario"] == "base"]
+    for row in book_now.itertuples():
+        pi = np.zeros(5)
+        pi[row.arrears_state] = 1.0
+        got = table[table["loan_id"] == row.loan_id].sort_values("month_ahead")
+        for u, (cum_pd, survival, cum_prepay) in enumerate(got[["cumulative_pd", "survival", "cumulative_prepay"]].to_numpy(), 1):
+            pi = pi @ empirical["young" if row.age + u <= 12 else "old"]
+            np.testing.assert_allclose([cum_pd, survival, cum_prepay], [pi[3], pi[:3].sum(), pi[4]], rtol=1e-9, atol=1e-15)
+    # from arrears the 12-month PD is many times that from current
+    pd12 = table[table["month_ahead"] == 12].set_index("loan_id")["cumulative_pd"]
+    assert pd12["b"] > 5 * pd12["a"]

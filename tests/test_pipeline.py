@@ -277,7 +277,7 @@ def test_fit_command_writes_a_model_that_loads_and_predicts_the_same(small_book,
     assert "fitted a multinomial model" in capsys.readouterr().out
 
 
-def test_fit_command_fits_the_multi_state_model_and_a_run_refuses_it_for_now(small_book, tmp_path, capsys):
+def test_fit_command_fits_the_multi_state_model_and_a_run_projects_it(small_book, tmp_path, capsys):
     from creditsurv.model import MultiStateResults, load_model
 
     cfg = _config(small_book, tmp_path, kind="multi_state")
@@ -290,14 +290,24 @@ def test_fit_command_fits_the_multi_state_model_and_a_run_refuses_it_for_now(sma
     fits = pd.read_csv(folder / "transition_fits.csv")
     assert fits.groupby("origin")["design"].apply(lambda d: (d == "reference").sum()).tolist() == [1, 1, 1]
     coefficients = pd.read_csv(folder / "coefficients.csv")
-    assert list(coefficients.columns[:3]) == ["origin", "destination", "term"]
+    assert list(coefficients.columns[:4]) == ["origin", "destination", "cause", "term"]
     # every estimated parameter is in the table, and nothing else
     assert len(coefficients) == fits["parameters"].sum()
     manifest = json.loads((folder / MANIFEST).read_text())
     assert manifest["model"]["kind"] == "multi_state" and len(manifest["model"]["transitions"]) == len(fits)
-    assert main(["run", str(cfg), "--out", str(tmp_path / "runs")]) == 1
-    assert "RunError: model.kind: multi_state can be fitted" in capsys.readouterr().err
-    assert not (tmp_path / "runs").exists() or not any((tmp_path / "runs").iterdir())
+    assert main(["run", str(cfg), "--out", str(tmp_path / "runs")]) == 0
+    assert "hazards: multi-state model, 3 arrears states" in capsys.readouterr().out
+    (run,) = (tmp_path / "runs").iterdir()
+    assert isinstance(load_model(run / "hazard_model.json"), MultiStateResults)
+    assert (run / "transition_fits.csv").read_bytes() == (folder / "transition_fits.csv").read_bytes()
+    loans = pd.read_parquet(run / "loan_ecl.parquet")
+    # the projection starts each loan in its arrears state: loans 30-89 days past due carry far higher PDs
+    late = loans[(loans["days_past_due"] >= 30) & (loans["stage"] != 3)]
+    current = loans[loans["days_past_due"] < 30]
+    assert len(late) > 5 and late["pd_12m"].median() > 3 * current["pd_12m"].median()
+    pf = pd.read_parquet(run / "pd_term_structure.parquet", columns=["survival", "cumulative_pd", "cumulative_prepay"])
+    np.testing.assert_allclose(pf.sum(axis=1), 1.0, rtol=0, atol=1e-12)
+    assert len(pd.read_csv(run / "validation" / "hazard_by_age.csv")) > 0
 
 
 # --------------------------------------------------------------------------- the preflight

@@ -77,7 +77,7 @@ def _ecl(cfg, engine, book, model):
 _EVENT_TABLES = (("loan_outcomes", "loan_id"), ("loan_months", "loan_id, month_idx"))
 
 
-def _run(cfg, tmp, engine_name, reference_model=None):
+def _run(cfg, tmp, engine_name, reference_model=None, reference_multi=None):
     """Checks, events, fit, book and ECL of one engine, as the pipeline's run calls them.
 
     The same code for both engines: only ``cfg.engine`` differs. With
@@ -97,6 +97,10 @@ def _run(cfg, tmp, engine_name, reference_model=None):
         out["ecl"], out["annual"] = _ecl(cfg, engine, book, model)
         if reference_model is not None:
             out["ecl_reference"], out["annual_reference"] = _ecl(cfg, engine, book, reference_model)
+        # the multi-state model on the same open engine; its projection on a quarter of the book
+        out["multi"] = hazard_source(dataclasses.replace(cfg, model=dataclasses.replace(cfg.model, kind="multi_state")), engine, tmp)
+        part = book.iloc[::4].reset_index(drop=True)
+        out["ecl_multi"], _ = _ecl(cfg, engine, part, reference_multi or out["multi"])
     out.update(checks=checks, model=model, book=book, history=history, counts=counts)
     return out
 
@@ -105,7 +109,7 @@ def _run(cfg, tmp, engine_name, reference_model=None):
 def both_engines(spark, spark_book, tmp_path_factory):
     tmp = tmp_path_factory.mktemp("fit")
     duck = _run(spark_book, tmp, "duckdb")
-    return duck, _run(spark_book, tmp, "spark", reference_model=duck["model"])
+    return duck, _run(spark_book, tmp, "spark", reference_model=duck["model"], reference_multi=duck["multi"])
 
 
 def _close(a: pd.DataFrame, b: pd.DataFrame, atol: float = 0.0) -> None:
@@ -385,18 +389,19 @@ def test_executors_without_creditsurv_fail_with_one_line_naming_the_step(standal
     assert not (folder / "bare").exists() or not any((folder / "bare").iterdir())
 
 
-def test_the_multi_state_fit_is_the_same_on_both_engines(spark, spark_book, tmp_path):
-    # One multinomial logit per arrears state, from the same shared SQL and batch kernel on each engine.
-    cfg = dataclasses.replace(spark_book, model=dataclasses.replace(spark_book.model, kind="multi_state"))
-    fits = {}
-    for name in ("duckdb", "spark"):
-        engine, _ = pipeline.open_checked(dataclasses.replace(cfg, engine=name))
-        with engine:
-            fits[name] = hazard_source(dataclasses.replace(cfg, engine=name), engine, tmp_path)
-    a, b = fits["duckdb"], fits["spark"]
+
+def test_the_multi_state_fit_and_projection_are_the_same_on_both_engines(both_engines):
+    # One multinomial logit per arrears state, from the same shared SQL and batch kernel on each engine; each
+    # engine projects the DuckDB engine's model as a Markov chain over its own partitions of the book.
+    duck, spark = both_engines
+    a, b = duck["multi"], spark["multi"]
     pd.testing.assert_frame_equal(a.transitions, b.transitions)
     assert a.references == b.references and set(a.origins) == {"current", "30-59", "60-89"}
     for origin in a.origins:
         _close(a.origins[origin].params, b.origins[origin].params)
         _close(a.origins[origin].bse, b.origins[origin].bse)
         assert b.origins[origin].loglik == pytest.approx(a.origins[origin].loglik, rel=1e-12)
+    la, lb = duck["ecl_multi"].loans, spark["ecl_multi"].loans
+    assert list(la["loan_id"]) == list(lb["loan_id"]) and list(la["stage"]) == list(lb["stage"])
+    for col in ("pd_12m", "pd_lifetime", "ecl_reported"):
+        np.testing.assert_allclose(lb[col], la[col], rtol=RTOL, atol=1e-12, err_msg=col)

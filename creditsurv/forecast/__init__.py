@@ -1,5 +1,6 @@
 """Stage 4, the forecast: scenario paths, projection of every live loan, curves, speeds, segment tables."""
 
+from ._chain import ChainResult, markov_chain
 from ._projection import (
     WEIGHTED,
     ChunkProjection,
@@ -25,7 +26,7 @@ from ._projection import (
 from ._scenarios import extend_path, extend_paths, load_scenario_paths, prepare_paths
 
 __all__ = [
-    "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "ProjectionResult", "SegmentSums", "TableWriter", "check_coverage",
+    "ChainResult", "markov_chain", "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "ProjectionResult", "SegmentSums", "TableWriter", "check_coverage",
     "extend_path", "extend_paths", "load_scenario_paths", "loan_list_text", "origination_pd", "prepare_paths", "project_loans",
     "repeat_ids", "scenario_column", "scenario_weights", "score_band_labels",
     "segment_level", "segment_pd_tables", "segment_speeds", "speeds_frames", "term_structure_frame",

@@ -62,6 +62,7 @@ from ..model import (
     smm_to_cpr,
 )
 from ..months import month_ranges
+from ._chain import markov_chain
 
 __all__ = [
     "Curves",
@@ -221,6 +222,7 @@ class _Book:
     value: np.ndarray | None
     region_code: np.ndarray | None
     static: dict[str, np.ndarray]
+    state: np.ndarray  # arrears state at month_ahead 0 (0 current), for a multi-state source
 
 
 def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names, market_rate, hold: bool):
@@ -266,7 +268,11 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
         if spec.incentive:
             raw["rate_incentive"] = (100.0 * rate[:, None] - lk.get(market_rate, lookup_months))[mask]
         raw = {name: raw[name] for name in spec.names}
-        hd_flat, hp_flat = source.hazards(raw)
+        if hasattr(source, "transition_probabilities"):
+            hd_chain, hp_chain = _chain_hazards(source, raw, mask, book.state[sl])
+            hd_flat, hp_flat = hd_chain[mask], hp_chain[mask]
+        else:
+            hd_flat, hp_flat = source.hazards(raw)
         hd_flat = np.asarray(hd_flat, dtype=float)
         hp_flat = np.asarray(hp_flat, dtype=float)
         size = int(mask.sum())
@@ -538,8 +544,45 @@ def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination
         value=frame["property_value"].to_numpy(dtype=float) if spec.ltv else None,
         region_code=region_code,
         static={c: frame[c].to_numpy() for c in spec.static},
+        state=_start_states(frame, origination),
     )
     return book, hpi_names
+
+
+def _start_states(frame: pd.DataFrame, origination: bool) -> np.ndarray:
+    """Each loan's arrears state where its projection starts: current at origination, else ``arrears_state``."""
+    if origination or "arrears_state" not in frame.columns:
+        return np.zeros(len(frame), dtype=np.int64)
+    state = frame["arrears_state"]
+    if state.isna().any():
+        raise ProjectionError(f"loans: no arrears_state for {loan_list_text(frame['loan_id'][state.isna()])}")
+    return state.to_numpy(dtype=np.int64)
+
+
+def _chain_hazards(source, raw, mask, start) -> tuple[np.ndarray, np.ndarray]:
+    """Default and prepayment hazards (n, H) of a multi-state source, from the Markov chain of each loan.
+
+    Row j of every month's transition matrix comes from the source's multinomial logit of origin
+    state j on that month's inputs; after a loan's term nothing moves. The hazards are the mass
+    entering default and prepaid over the mass still on book (see :mod:`._chain`).
+    """
+    states = list(source.states)
+    T, S = len(source.labels), len(states)
+    n, H = mask.shape
+    if start.size and int(start.max()) >= T:
+        raise ProjectionError(f"a loan starts in arrears state {int(start.max())} but the model has {T} states ({', '.join(source.labels)})")
+    P = np.zeros((T, n, H, S))
+    finite = np.ones((n, H), dtype=bool)
+    for j, origin in enumerate(source.labels):
+        rows = np.asarray(source.transition_probabilities(raw, origin), dtype=float)
+        P[j][mask] = rows
+        P[j][~mask, j] = 1.0
+        finite[mask] &= np.isfinite(rows).all(axis=1) & (rows >= 0).all(axis=1)
+    hazards = markov_chain(np.where(np.isfinite(P), P, 0.0), start).hazards()
+    hd, hp = hazards[:, :, states.index("default") - T], hazards[:, :, states.index("prepaid") - T]
+    # a month whose transition probabilities are not finite probabilities must not pass as a hazard
+    return np.where(finite, hd, np.nan), np.where(finite, hp, np.nan)
+
 
 
 def _coverage_needs(book: _Book, spec: _Spec, hpi_names, market_rate, hold: bool) -> dict[str, np.ndarray]:

@@ -286,7 +286,8 @@ class FeatureSpec:
         return {"inputs": resolved, "macro": macro, "loans": loans, "panel": panel}
 
     def raw_query(
-        self, con, where_sql: str = "TRUE", *, order: bool = True, origin_state: int | None = None, reference: int = 0
+        self, con, where_sql: str = "TRUE", *, order: bool = True, origin_state: int | None = None, reference: int = 0,
+        carry=(),
     ) -> str:
         """SQL yielding one row per risk-set row with the raw inputs.
 
@@ -297,7 +298,8 @@ class FeatureSpec:
         With ``origin_state`` only the months starting in that arrears state are
         read, and ``outcome`` is their ``destination`` (the multi-state model's
         outcome; see :mod:`creditsurv.data`), with the codes ``reference`` and 0
-        swapped when the reference outcome is not "stay".
+        swapped when the reference outcome is not "stay". ``carry`` names further
+        ``loan_months`` columns to carry (``origin_state``), after the inputs.
         """
         info = self._resolve(con)
         q = quote_ident
@@ -311,7 +313,8 @@ class FeatureSpec:
             r = int(reference)
             outcome = f"CASE lm.\"destination\" WHEN {r} THEN 0 WHEN 0 THEN {r} ELSE lm.\"destination\" END" if r else "lm.\"destination\""
             rows = f"{outcome} AS \"outcome\"\n  FROM \"loan_months\" AS lm\n  WHERE lm.\"origin_state\" = {int(origin_state)}"
-        ctes.append(f"risk_set AS (\n  SELECT lm.\"loan_id\", lm.\"month_idx\", lm.\"age\", {rows}\n)")
+        carried = "".join(f"lm.{q(c)}, " for c in carry)
+        ctes.append(f"risk_set AS (\n  SELECT {carried}lm.\"loan_id\", lm.\"month_idx\", lm.\"age\", {rows}\n)")
         prev = "risk_set"
         panel_cols = [i for i in inputs if i.source == "panel"]
         if panel_cols:
@@ -367,7 +370,7 @@ class FeatureSpec:
             ctes.append(f"derived AS (\n  SELECT r.*, {', '.join(sel)}\n  FROM {prev} AS r\n)")
             prev = "derived"
         keys = [i.key for i in inputs if i.key != "log_age" or i.source != "derived"]
-        cols = ", ".join(q(c) for c in (*RISK_SET_COLUMNS, *keys))
+        cols = ", ".join(q(c) for c in (*RISK_SET_COLUMNS, *keys, *carry))
         ctes.append(f"raw AS (\n  SELECT {cols}\n  FROM {prev}\n)")
         sql = "WITH " + ",\n".join(ctes) + f"\nSELECT * FROM raw\nWHERE ({where_sql})"
         return sql + "\nORDER BY \"loan_id\", \"month_idx\"" if order else sql

@@ -142,6 +142,28 @@ class MultiStateResults:
         text = "|".join(f"{o}:{m.data_fingerprint}" for o, m in self.origins.items())
         return hashlib.sha256(f"creditsurv-multi-state|{text}".encode()).hexdigest()
 
+    risk_set_inputs = ("origin_state",)
+    """Columns of ``loan_months`` that :meth:`hazards` reads besides the feature spec's inputs."""
+
+    def hazards(self, raw) -> tuple[np.ndarray, np.ndarray]:
+        """One-month probabilities of default and prepayment of observed months, from their origin state.
+
+        ``raw["origin_state"]`` gives each month's state at its start (code order of :attr:`labels`);
+        a month without it, or with it unknown (NaN), starts current. The projection does not use
+        this: it runs each loan's chain from its state (:mod:`creditsurv.forecast`).
+        """
+        n = np.asarray(raw["age"]).shape[0]
+        origin = np.asarray(raw.get("origin_state", np.zeros(n)), dtype=float)
+        origin = np.where(np.isnan(origin), 0, origin).astype(np.int64)
+        states = self.states
+        hd, hp = np.zeros(n), np.zeros(n)
+        for j, label in enumerate(self.labels):
+            rows = np.flatnonzero(origin == j)
+            if rows.size:
+                P = self.transition_probabilities({k: np.asarray(v)[rows] for k, v in raw.items()}, label)
+                hd[rows], hp[rows] = P[:, states.index("default")], P[:, states.index("prepaid")]
+        return hd, hp
+
     def transition_probabilities(self, raw, origin: str) -> np.ndarray:
         """Monthly probabilities of every end state (:attr:`states` order) for months starting in ``origin``.
 
@@ -167,11 +189,14 @@ class MultiStateResults:
         return out
 
     def summary(self, alpha: float = 0.05) -> pd.DataFrame:
-        """Tidy coefficients: origin, destination, term, estimate, std_error, z, p_value, ci_lo, ci_hi."""
+        """Tidy coefficients: origin, destination, cause (the move, ``<origin> to <destination>``), term, estimate,
+        std_error, z, p_value, ci_lo, ci_hi; terms held at zero are left out."""
         frames = []
         for origin, model in self.origins.items():
-            table = model.summary(alpha).rename(columns={"cause": "destination"})
+            table = model.summary(alpha)
+            table.insert(0, "destination", table["cause"])
             table.insert(0, "origin", origin)
+            table["cause"] = origin + " to " + table["destination"]
             frames.append(table)
         return pd.concat(frames, ignore_index=True)
 

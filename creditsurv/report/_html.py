@@ -513,6 +513,24 @@ def _model(tables, meta) -> str:
         out.append(_pairs([(h, f(model[k])) for k, h, f in labels if k in model], caption="Fit"))
     else:
         out.append(_absent('meta["model"]'))
+    fits = tables.get("transition_fits")
+    if fits is not None:
+        out.append(
+            _p(
+                "A multi-state model: one multinomial logit per arrears state over the states its loans move to "
+                "(staying is the reference). Each loan is projected as a Markov chain from its arrears state at the "
+                "reporting month; the probability of entering default each month is its marginal PD. Covariates "
+                "follow their own projection rule and do not react to the projected arrears."
+            )
+        )
+        cols = [
+            ("origin", "From", fmt_text),
+            ("destination", "To", fmt_text),
+            ("loan_months", "Moves seen", fmt_int),
+            ("design", "Fitted with", fmt_text),
+            ("parameters", "Parameters", fmt_int),
+        ]
+        out.append(_table(fits, cols, caption="How each move between states was fitted", name="transition_fits"))
     coef = tables.get("coefficients")
     if coef is None:
         out.append(_absent("coefficients"))

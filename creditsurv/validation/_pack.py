@@ -14,8 +14,9 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from ..data import arrears_state_sql, event_params
 from ..errors import DataError
-from ..model import HazardResults
+from ..model import HazardResults, MultiStateResults
 from ._statistics import (
     CAUSES,
     age_band,
@@ -103,6 +104,9 @@ class _UpToAge:
         self.source = source
         self.limit = int(limit)
         self.required_inputs = list(source.required_inputs)
+        if hasattr(source, "transition_probabilities"):  # a multi-state model: its chain runs whole
+            self.labels, self.states = source.labels, source.states
+            self.transition_probabilities = source.transition_probabilities
 
     def hazards(self, raw):
         age = np.asarray(raw["age"])
@@ -121,12 +125,17 @@ class _UpToAge:
 # (default is absorbing, so a loan in workout has had its event).
 _ALIVE_AT = """
 alive AS (
-    SELECT o.loan_id, p.age, p.balance
+    SELECT o.loan_id, p.age, p.balance, p.days_past_due
     FROM loan_outcomes AS o
     JOIN panel AS p ON p.loan_id = o.loan_id AND p.month_idx = $month
     WHERE (o.event_month_idx IS NULL OR o.event_month_idx > $month)
       AND p.balance > $paid_off
 )"""
+
+
+def _has_spec(model) -> bool:
+    """Whether the hazard source is a fitted model (one logit, or one per arrears state) with a feature spec."""
+    return isinstance(model, (HazardResults, MultiStateResults))
 
 
 def _sql(engine, sql: str, params: dict | list | None = None) -> pd.DataFrame:
@@ -190,13 +199,14 @@ def _json_safe(value):
 
 
 def _cohort(cfg, engine, month: int, notes: list) -> pd.DataFrame:
-    params = {"month": int(month), "paid_off": float(cfg.events.paid_off_balance)}
-    frame = _sql(
-        engine,
-        f"WITH {_ALIVE_AT}\nSELECT {_loan_columns(engine)}, a.age, a.balance, 'all' AS segment\n"
-        "FROM alive AS a JOIN loans AS l USING (loan_id)\nORDER BY loan_id",
-        params,
-    ).sort_values("loan_id", kind="stable", ignore_index=True)  # the order project_loans uses
+    state = arrears_state_sql("a.days_past_due", len(cfg.arrears.starts))
+    sql = (
+        f"WITH {_ALIVE_AT}\nSELECT {_loan_columns(engine)}, a.age, a.balance, 'all' AS segment,\n"
+        f"       CAST({state} AS TINYINT) AS arrears_state\n"
+        "FROM alive AS a JOIN loans AS l USING (loan_id)\nORDER BY loan_id"
+    )
+    params = {"month": int(month), "paid_off": float(cfg.events.paid_off_balance), **event_params(cfg, state)}
+    frame = _sql(engine, sql, params).sort_values("loan_id", kind="stable", ignore_index=True)  # the order project_loans uses
     past = (frame["age"] >= frame["term"]).to_numpy()
     if past.any():
         notes.append(f"{int(past.sum())} loans alive at {_fmt_month(month)} at or past their term were left out")
@@ -344,7 +354,7 @@ def _read_inputs(engine, model, start: int, end: int, max_rows: int):
     loan and month) and the inputs that could not be read.
     """
     names = [n for n in model.required_inputs if n != "log_age"]
-    if isinstance(model, HazardResults):
+    if _has_spec(model):
         readable = names
     else:
         readable = [n for n in names if n == "age"]
@@ -356,7 +366,7 @@ def _read_inputs(engine, model, start: int, end: int, max_rows: int):
     k = max(1, int(np.ceil(int(n_rows) / max_rows)))
     where = "month_idx BETWEEN ? AND ? AND hash(loan_id, month_idx) % ? = 0"
     params = [int(start), int(end), k]
-    if isinstance(model, HazardResults):
+    if _has_spec(model):
         body = model.spec.raw_query(engine.con, where, order=False)
     else:
         body = f"SELECT loan_id, month_idx, age FROM loan_months WHERE {where}"
@@ -452,8 +462,10 @@ def _hazard_by_age(engine, model, start: int, end: int, batch_size: int) -> pd.D
                 part = np.round(np.bincount(age, weights=w, minlength=len(cur))).astype(np.int64)
             sums[key] = cur + part
 
-    if isinstance(model, HazardResults):
-        sql = model.spec.raw_query(engine.con, "month_idx BETWEEN ? AND ?", order=False)
+    if _has_spec(model):
+        sql = model.spec.raw_query(
+            engine.con, "month_idx BETWEEN ? AND ?", order=False, carry=getattr(model, "risk_set_inputs", ())
+        )
         for batch in engine.batches(sql, [int(start), int(end)], batch_size):
             raw = {nm: batch.column(i).to_numpy(zero_copy_only=False)
                    for i, nm in enumerate(batch.schema.names) if nm != "loan_id"}  # fmt: skip
@@ -734,7 +746,7 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
     notes: list[str] = []
     tables: dict[str, pd.DataFrame] = {}
     summary = _summary_header(cfg)
-    fitted = isinstance(model, HazardResults)
+    fitted = _has_spec(model)
     if not fitted:
         notes.append(
             f"the hazard source ({type(model).__name__}) is not a fitted model: coefficient changes are not "
