@@ -326,6 +326,19 @@ def scenario_paths(ctx, engine, model, book, loaded) -> dict:
     )
 
 
+def loans_with_panel_history(engine, loans, model, month: int):
+    """``loans`` with the last panel values the model's lagged panel covariates read (nothing to add: as given)."""
+    from .data import panel_history_sql
+    from .forecast import panel_history_columns, with_panel_history
+
+    needed = panel_history_columns(model)
+    if not needed:
+        return loans
+    depth = max(j for _, j in needed)
+    history = engine.frame(panel_history_sql(sorted({c for c, _ in needed})), {"first": int(month) - depth, "last": int(month)})
+    return with_panel_history(loans, history, model, int(month))
+
+
 def project_book(ctx, engine, model, run, loaded, *, progress=None):
     """Projection, ECL and the exported tables of one run, written into ``run``."""
     import numpy as np
@@ -335,7 +348,7 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     from .loss import expected_credit_loss_by_partition
 
     cfg = ctx.cfg
-    book = engine.book_at_as_of(cfg.segments.column)
+    book = loans_with_panel_history(engine, engine.book_at_as_of(cfg.segments.column), model, ctx.as_of)
     run.add_table(state_distribution(book, cfg.arrears.labels(cfg.default_definition.days_past_due)), "arrears_states.csv")
     paths = scenario_paths(ctx, engine, model, book, loaded)
     options = {"compression": "zstd"}

@@ -499,6 +499,20 @@ def config_of_many_megabytes(ws):
     return ["run", str(ws.edit_config(lambda d: d.update(notes=["x" * 100] * 20_000)))]
 
 
+# ====================================================================== no look-ahead in panel covariates
+
+
+@case("look-ahead", 1, r"^DataError: .*model\.covariates\[5\]\.column: 'days_past_due' is a panel column, a month-end value: .* lag: 1")
+def same_month_panel_covariate(ws):
+    # Month-end days past due of the outcome's own month: at or above 90 in every default month.
+    return ["run", str(ws.edit_config(lambda d: d["model"]["covariates"].append({"name": "dpd", "column": "days_past_due"})))]
+
+
+@case("look-ahead", 1, r"^DataError: .*model\.covariates\[5\]\.column: column 'note_rate' is not in the panel .*\(lag applies to macro series and panel columns\)")
+def lag_on_a_loan_table_column(ws):
+    return ["run", str(ws.edit_config(lambda d: d["model"]["covariates"].append({"name": "r", "column": "note_rate", "lag": 1})))]
+
+
 # ====================================================================== the data checks, one case per class
 
 

@@ -66,7 +66,7 @@ def test_raw_inputs_match_direct_computation(con, book):
         Covariate(name="ltv", column="current_ltv"),
         Covariate(name="inc", column="rate_incentive"),
         Covariate(name="score", column="credit_score"),
-        Covariate(name="bal", column="balance"),
+        Covariate(name="bal", column="balance", lag=1, before_first=-1.0),
     ).learn(con)
     raw = _raw(con, spec)
     lm = book["loan_months"].sort_values(["loan_id", "month_idx"]).reset_index(drop=True)
@@ -94,7 +94,12 @@ def test_raw_inputs_match_direct_computation(con, book):
     inc = 100 * loans["note_rate"].to_numpy() - macro.loc[raw["month_idx"], "mortgage_rate"].to_numpy()
     np.testing.assert_allclose(raw["rate_incentive"], inc, rtol=1e-12)
     np.testing.assert_array_equal(raw["credit_score"], loans["credit_score"])
-    assert spec.required_inputs == ["age", "macro:unemployment_rate:3", "current_ltv", "rate_incentive", "credit_score", "balance"]
+    # Reference: the panel's balance at the end of the month before, by pandas look-up; none before the first row
+    panel = book["panel"].set_index(["loan_id", "month_idx"])["balance"]
+    before = panel.reindex(list(zip(raw["loan_id"], raw["month_idx"] - 1))).fillna(-1.0).to_numpy()
+    np.testing.assert_array_equal(raw["panel:balance:1"], before)
+    assert (before == -1.0).any() and (before != -1.0).any()
+    assert spec.required_inputs == ["age", "macro:unemployment_rate:3", "current_ltv", "rate_incentive", "credit_score", "panel:balance:1"]
 
 
 def test_where_filter_and_params(con, book):
@@ -251,12 +256,13 @@ def test_macro_lag_past_history(con, book):
 
 
 def test_log_of_non_positive_values(con):
+    dpd = {"name": "ls", "column": "days_past_due", "lag": 1, "before_first": 0.0, "transform": "log"}
     with pytest.raises(FeatureError, match=r"covariate 'ls': log of non-positive values in \d+ rows"):
-        _spec(Covariate(name="ls", column="days_past_due", transform="log")).learn(con)
-    spec = _spec(Covariate(name="ls", column="days_past_due", transform="log", floor=1.0)).learn(con)
+        _spec(Covariate(**dpd)).learn(con)
+    spec = _spec(Covariate(**dpd, floor=1.0)).learn(con)
     spec_nofloor = FeatureSpec.from_dict({**spec.to_dict(), "covariates": [{**spec.covariates[0], "floor": None}]})
     with pytest.raises(FeatureError, match=r"covariate 'ls': log of non-positive values in 1 rows"):
-        spec_nofloor.design({"age": np.array([1, 2]), "days_past_due": np.array([0, 30])})
+        spec_nofloor.design({"age": np.array([1, 2]), "panel:days_past_due:1": np.array([0, 30])})
 
 
 def test_all_problems_in_one_error(con):
@@ -279,3 +285,55 @@ def test_missing_values_named(con):
 
 def test_duckdb_is_the_engine():
     assert duckdb.__version__
+
+
+# --------------------------------------------------------------------------- panel columns: the previous month-end
+
+
+def _panel_book(tmp_path):
+    """Two loans with days past due by hand; b defaults (90 at month end) in its fourth month."""
+    from creditsurv.config import config_from_dict
+    from creditsurv.engines import label_events, open_panel
+
+    rows = [("a", 1, 0), ("a", 2, 30), ("a", 3, 0), ("a", 4, 0), ("b", 1, 0), ("b", 2, 30), ("b", 3, 60), ("b", 4, 90)]
+    panel = pd.DataFrame(
+        {
+            "loan_id": [r[0] for r in rows], "month": [format_month(2023 * 12 + r[1]) for r in rows], "age": [r[1] for r in rows],
+            "balance": 1000.0, "days_past_due": [r[2] for r in rows],
+        }
+    )
+    loans = pd.DataFrame({"loan_id": ["a", "b"], "origination_month": "2023-01", "original_balance": 1000.0, "note_rate": 5.0, "term": 360})
+    panel.to_parquet(tmp_path / "panel.parquet", index=False)
+    loans.to_parquet(tmp_path / "loans.parquet", index=False)
+    cfg = config_from_dict(
+        {
+            "as_of": "2023-05", "windows": {"development": {"start": "2023-01", "end": "2023-05"}},
+            "inputs": {"panel": {"path": "panel.parquet"}, "loans": {"path": "loans.parquet"}},
+        },
+        base_dir=tmp_path,
+    )
+    engine = open_panel(cfg)
+    label_events(engine)
+    return engine
+
+
+def test_a_panel_covariate_is_the_previous_month_end_value(tmp_path):
+    # The month-end days past due of month t describe the end of t; month t's covariate is the value at the end
+    # of t - 1 (lag 1), and a loan's first month takes before_first (a new loan is current: 0 days past due).
+    with _panel_book(tmp_path) as engine:
+        spec = _spec(Covariate(name="dpd", column="days_past_due", lag=1, before_first=0.0)).learn(engine.con)
+        raw = engine.frame(spec.raw_query(engine.con))
+    assert raw["panel:days_past_due:1"].tolist() == [0, 0, 30, 0, 0, 0, 30, 60]
+    # the default month's own 90 days past due never enters: its covariate is the 60 of the month before
+    assert raw.loc[raw["outcome"] == 1, "panel:days_past_due:1"].tolist() == [60]
+
+
+def test_a_same_month_panel_covariate_is_refused(tmp_path):
+    with _panel_book(tmp_path) as engine:
+        with pytest.raises(FeatureError, match=r"covariate 'dpd': 'days_past_due' is a panel column, a month-end value: .* lag: 1"):
+            _spec(Covariate(name="dpd", column="days_past_due")).learn(engine.con)
+        with pytest.raises(FeatureError, match=r"covariate 'r': lag applies to macro series and panel columns; 'note_rate' is not a panel column"):
+            _spec(Covariate(name="r", column="note_rate", lag=1)).learn(engine.con)
+        # without before_first a loan's first month has no previous month-end: named, with the fix
+        with pytest.raises(FeatureError, match=r"covariate 'dpd': 2 rows have no value .* set before_first"):
+            _spec(Covariate(name="dpd", column="days_past_due", lag=1)).learn(engine.con)

@@ -231,6 +231,20 @@ def test_one_state_is_the_competing_risk_model(book, tmp_path):
     np.testing.assert_allclose(part.params.to_numpy(), competing.params.to_numpy(), rtol=1e-12, atol=0)
     np.testing.assert_allclose(part.bse.to_numpy(), competing.bse.to_numpy(), rtol=1e-12, atol=0)
     assert part.loglik == pytest.approx(competing.loglik, rel=1e-14)
+    # and the chain of its one state projects the same loan PDs as the competing-risk hazards
+    from creditsurv.forecast import project_loans
+
+    book_now = pd.DataFrame(
+        {
+            "loan_id": ["a", "b", "c"], "segment": "all", "age": [3, 30, 11], "term": [360, 120, 60],
+            "note_rate": 0.04, "balance": 1e5, "credit_score": [-1.0, 0.0, 2.0], "arrears_state": 0,
+        }
+    )
+    history = pd.DataFrame({"x": np.zeros(400)}, index=pd.Index(np.arange(AS_OF - 100, AS_OF + 300), name="month_idx"))
+    a = project_loans(book_now, multi, {"base": history}, as_of_idx=AS_OF).loans
+    b = project_loans(book_now, competing, {"base": history}, as_of_idx=AS_OF).loans
+    for col in ("pd_12m_base", "pd_lifetime_base"):
+        np.testing.assert_allclose(a[col], b[col], rtol=1e-12, atol=0, err_msg=col)
 
 
 def _as_dict(cfg):
@@ -349,3 +363,27 @@ def test_projection_is_the_aalen_johansen_product_of_the_empirical_matrices(book
     # from arrears the 12-month PD is many times that from current
     pd12 = table[table["month_ahead"] == 12].set_index("loan_id")["cumulative_pd"]
     assert pd12["b"] > 5 * pd12["a"]
+
+
+def test_days_past_due_at_the_previous_month_end_is_a_trustworthy_predictor(book, tmp_path):
+    # At the outcome's own month days past due reveal the outcome (refused, tests/test_features.py); at the previous
+    # month-end they are what the lender knows at the start of the month. The competing-risk fit keeps every
+    # trust limit (fit_hazard raises otherwise), arrears raise the default hazard, and a loan 60 days past due at
+    # the reporting month projects a far higher 12-month PD than a current one.
+    from creditsurv.config import Covariate, ModelSpec
+    from creditsurv.forecast import project_loans, with_panel_history
+
+    _, panel, loans = book
+    cfg = _config(tmp_path, panel, loans)
+    dpd = Covariate(name="dpd", column="days_past_due", lag=1, before_first=0.0)
+    with _opened(cfg) as engine:
+        spec = feature_spec(ModelSpec(baseline=cfg.model.baseline, covariates=(*cfg.model.covariates, dpd)), cfg.collateral)
+        model = fit_hazard(engine, spec.learn(engine.con), kind="multinomial")
+    assert model.params.loc["dpd", "default"] > 0 and model.bse.loc["dpd", "default"] < 0.05
+    now = pd.DataFrame(
+        {"loan_id": ["cur", "late"], "segment": "all", "age": [20, 20], "term": 360, "note_rate": 0.04, "balance": 1e5, "credit_score": 0.0}
+    )
+    history = pd.DataFrame({"loan_id": ["cur", "late"], "month_idx": AS_OF, "days_past_due": [0.0, 65.0]})
+    paths = {"base": pd.DataFrame({"x": np.zeros(400)}, index=pd.Index(np.arange(AS_OF - 100, AS_OF + 300), name="month_idx"))}
+    pd12 = project_loans(with_panel_history(now, history, model, AS_OF), model, paths, as_of_idx=AS_OF).loans.set_index("loan_id")["pd_12m_base"]
+    assert pd12["late"] > 3 * pd12["cur"]

@@ -310,6 +310,23 @@ def test_fit_command_fits_the_multi_state_model_and_a_run_projects_it(small_book
     assert len(pd.read_csv(run / "validation" / "hazard_by_age.csv")) > 0
 
 
+def test_a_run_projects_a_panel_covariate_from_the_reporting_month_value(small_book, tmp_path):
+    # A panel column at lag 1 (here the balance at the previous month-end) is fitted on the previous month-end's
+    # values and projected from each loan's value at the reporting month (held): the run needs no panel rows
+    # beyond the reporting month and records how the input is filled and projected.
+    data = demo_config_data(small_book, tmp_path / "reports")
+    data["model"]["covariates"].append(
+        {"name": "balance_before", "column": "balance", "lag": 1, "before_first": 250000.0, "transform": "standardise"}
+    )
+    outcome = creditsurv.run(_write(data, tmp_path))
+    model = json.loads((outcome.path / "hazard_model.json").read_text())
+    (cov,) = [c for c in model["features"]["covariates"] if c["name"] == "balance_before"]
+    assert (cov["lag"], cov["before_first"], cov["projection"]) == (1, 250000.0, "hold")
+    assert "balance_before" in model["features"]["learned"]["covariates"]  # standardised on the lagged values
+    loans = pd.read_parquet(outcome.path / "loan_ecl.parquet")
+    assert np.isfinite(loans["pd_lifetime"]).all() and (loans["pd_lifetime"] > 0).all()
+
+
 # --------------------------------------------------------------------------- the preflight
 
 

@@ -559,3 +559,58 @@ def test_derived_inputs_need_their_collateral_settings():
         project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=Collateral(hpi_series=None))
     with pytest.raises(ProjectionError, match="collateral.market_rate_series"):
         project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=Collateral(market_rate_series=None))
+
+
+# --------------------------------------------------------------------------- panel covariates at a lag
+
+
+class _PanelSource:
+    """Records the raw inputs it is given: a months-in-arrears count at lag 1 and a refreshed score at lag 2."""
+
+    required_inputs = ["age", "panel:months_in_arrears:1", "panel:score_now:2"]
+    panel_rules = [
+        {"key": "panel:months_in_arrears:1", "column": "months_in_arrears", "lag": 1, "before_first": 0.0, "projection": "hold"},
+        {"key": "panel:score_now:2", "column": "score_now", "lag": 2, "before_first": 650.0, "projection": "revert",
+         "revert_to": 700.0, "revert_months": 4},
+    ]  # fmt: skip
+
+    def __init__(self):
+        self.calls = []
+
+    def hazards(self, raw):
+        self.calls.append({k: np.array(v) for k, v in raw.items()})
+        n = len(raw["age"])
+        return np.full(n, 0.001), np.full(n, 0.01)
+
+
+def test_panel_covariates_read_history_then_follow_their_projection_rule():
+    from creditsurv.forecast import with_panel_history
+
+    loans = pd.DataFrame({"loan_id": ["a", "b"], "segment": "x", "age": [10, 20], "term": [20, 30], "note_rate": 0.05, "balance": 1e5})
+    # the panel's last months: month-end values at as_of - 1 and as_of (loan b has no row at as_of - 1)
+    history = pd.DataFrame(
+        {"loan_id": ["a", "a", "b"], "month_idx": [AS_OF - 1, AS_OF, AS_OF], "months_in_arrears": [2.0, 3.0, 0.0], "score_now": [610.0, 620.0, 780.0]}
+    )
+    source = _PanelSource()
+    frame = with_panel_history(loans, history, source, AS_OF)
+    project_loans(frame, source, {"base": _history()}, as_of_idx=AS_OF)
+    (raw,) = source.calls
+    arrears = raw["panel:months_in_arrears:1"][:10]  # loan a, months 1 ... 10 ahead
+    score = raw["panel:score_now:2"][:10]
+    # Month u reads the end of month u - lag. Lag 1: month 1 is the reporting month's value (3), then held.
+    assert arrears.tolist() == [3.0] * 10
+    # Lag 2: month 1 reads as_of - 1 (610), month 2 as_of (620), then 620 moves to 700 over 4 months.
+    np.testing.assert_allclose(score, [610, 620, 640, 660, 680, 700, 700, 700, 700, 700], rtol=1e-15)
+    # loan b has no row at as_of - 1: it takes the value a loan starts with (before_first)
+    np.testing.assert_allclose(raw["panel:score_now:2"][10:13], [650, 780, 760], rtol=1e-15)
+
+
+def test_a_loan_without_recent_panel_values_is_named():
+    from creditsurv.forecast import with_panel_history
+
+    source = _PanelSource()
+    source.panel_rules = [dict(source.panel_rules[0], before_first=None), source.panel_rules[1]]
+    loans = pd.DataFrame({"loan_id": ["a"], "segment": "x", "age": [10], "term": [20], "note_rate": 0.05, "balance": 1e5})
+    history = pd.DataFrame({"loan_id": ["z"], "month_idx": [AS_OF], "months_in_arrears": [1.0], "score_now": [700.0]})
+    with pytest.raises(ProjectionError, match=r"panel column 'months_in_arrears': no value in the last 1 month\(s\) for 1 loan \(a\)"):
+        project_loans(with_panel_history(loans, history, source, AS_OF), source, {"base": _history()}, as_of_idx=AS_OF)

@@ -273,20 +273,44 @@ class Covariate:
     name: str = field(metadata=_doc("name of the term in the model"))
     column: str | None = field(default=None, metadata=_doc("panel, loan-table or derived column"))
     macro: str | None = field(default=None, metadata=_doc("macro series, joined by calendar month"))
-    lag: int = field(default=0, metadata=_doc("macro lag in months", min=0))
+    lag: int = field(
+        default=0,
+        metadata=_doc(
+            "months before the row's month: a macro series (0 = that month), or a panel column (1 or more: the "
+            "previous month-end's value; a month-end value would reveal the month's outcome)",
+            min=0,
+        ),
+    )
     kind: Literal["numeric", "categorical", "bins"] = field(default="numeric", metadata=_doc("how the value enters"))
     transform: Literal["none", "log", "standardise"] = field(default="none", metadata=_doc("numeric transform"))
     floor: float | None = field(default=None, metadata=_doc("values below are raised to this (before transform)"))
     cap: float | None = field(default=None, metadata=_doc("values above are lowered to this (before transform)"))
     bins: tuple[float, ...] = field(default=(), metadata=_doc("bins: inner cut points", check=_increasing))
     reference: str | None = field(default=None, metadata=_doc("categorical or bins: reference level"))
+    before_first: float | None = field(
+        default=None,
+        metadata=_doc(
+            "panel column: the value where a loan has no panel row lag months earlier (its first months on book, "
+            "and the origination view), e.g. 0 for days past due; unset, such months are an error"
+        ),
+    )
+    projection: Literal["hold", "revert"] = field(
+        default="hold",
+        metadata=_doc("panel column: months ahead keep the last value (hold) or move to revert_to (revert)"),
+    )
+    revert_to: float | None = field(default=None, metadata=_doc("projection revert: the value reached"))
+    revert_months: int = field(default=12, metadata=_doc("projection revert: months to reach it, in a straight line", min=1))
 
     def _validate(self) -> list[str]:
         problems = []
         if (self.column is None) == (self.macro is None):
             problems.append(f"covariate {self.name!r}: give exactly one of column or macro")
-        if self.lag and self.macro is None:
-            problems.append(f"covariate {self.name!r}: lag applies to macro series only")
+        if self.macro is not None and (self.before_first is not None or self.projection != "hold" or self.revert_to is not None):
+            problems.append(f"covariate {self.name!r}: before_first, projection and revert_to apply to panel columns, not macro series")
+        if self.projection == "revert" and self.revert_to is None:
+            problems.append(f"covariate {self.name!r}: projection revert needs revert_to: the value to move to")
+        if self.projection != "revert" and self.revert_to is not None:
+            problems.append(f"covariate {self.name!r}: revert_to given but projection is {self.projection}; set projection: revert")
         if self.kind == "bins" and not self.bins:
             problems.append(f"covariate {self.name!r}: kind bins needs bins: [cut points]")
         if self.kind != "bins" and self.bins:

@@ -44,7 +44,7 @@ from __future__ import annotations
 
 __all__ = [
     "ABSORBING_STATES", "CAUSE_CODES", "DESTINATION_MOVE", "EVENTS", "LOAN_OUTCOMES_SQL", "OUTCOME_CONTINUE",
-    "OUTCOME_DEFAULT", "OUTCOME_PREPAY", "TRANSITION_COUNTS_SQL", "arrears_state_sql", "book_sql", "event_params",
+    "OUTCOME_DEFAULT", "OUTCOME_PREPAY", "TRANSITION_COUNTS_SQL", "arrears_state_sql", "book_sql", "event_params", "panel_history_sql",
     "loan_months_sql",
 ]  # fmt: skip
 
@@ -222,6 +222,14 @@ def book_sql(segment: str, n_starts: int) -> str:
     ``in_default`` first: a loan in default is in the default state whatever its days past due).
     """
     return _BOOK_SQL.format(segment=segment, arrears_state=arrears_state_sql("o.days_past_due_at_as_of", n_starts))
+
+
+def panel_history_sql(columns) -> str:
+    """The panel's values of ``columns`` for every loan in months ``$first`` to ``$last`` (small: a few months)."""
+    from ..sql import quote_ident
+
+    cols = ", ".join(quote_ident(c) for c in columns)
+    return f"SELECT loan_id, month_idx, {cols} FROM panel WHERE month_idx BETWEEN $first AND $last ORDER BY loan_id, month_idx"
 
 
 def event_params(cfg, sql: str) -> dict:

@@ -19,7 +19,16 @@ from ..errors import DataError, did_you_mean, problem_list
 from ..months import format_month
 from ..sql import quote_ident
 
-__all__ = ["preflight_problems", "raise_preflight"]
+__all__ = ["preflight_problems", "raise_preflight", "same_month_panel_problem"]
+
+
+def same_month_panel_problem(column: str) -> str:
+    """Why a panel column cannot describe its own month, and the fix (the preflight and the feature spec say it alike)."""
+    return (
+        f"{column!r} is a panel column, a month-end value: in the month it describes it would reveal the month's "
+        "outcome (a loan at 90 days past due at month end has defaulted in that month). Take the previous "
+        "month-end's value with lag: 1"
+    )
 
 
 _DERIVED = ("current_ltv", "rate_incentive", "age", "log_age")
@@ -64,12 +73,18 @@ def _column_problems(cfg, engine, run: bool) -> list[str]:
             ("segments.band_column", cfg.segments.band_column, in_book),
             ("staging.pd_at_origination_column", cfg.staging.pd_at_origination_column, in_loans),
         ]
-    named += [(f"model.covariates[{i}].column", c.column, in_either) for i, c in enumerate(cfg.model.covariates)]
+    in_panel = (f"is not in the panel {panel_file}", panel, f"panel: {_listing(panel)}")
+    covariates = list(enumerate(cfg.model.covariates))
+    named += [(f"model.covariates[{i}].column", c.column, in_panel if c.lag else in_either) for i, c in covariates]
     problems = []
     for key, column, (where, allowed, listing) in named:
         if column is None or column in allowed:
             continue
-        problems.append(f"{key}: column {column!r} {where}{did_you_mean(column, allowed)} ({listing})")
+        lag_hint = " (lag applies to macro series and panel columns)" if allowed is panel and column in [*loans, *_DERIVED] else ""
+        problems.append(f"{key}: column {column!r} {where}{lag_hint}{did_you_mean(column, allowed)} ({listing})")
+    for i, c in covariates:
+        if c.column is not None and not c.lag and c.column in panel and c.column not in [*loans, *_DERIVED]:
+            problems.append(f"model.covariates[{i}].column: " + same_month_panel_problem(c.column))
     return problems
 
 

@@ -58,6 +58,7 @@ from ..model import (
     hpi_series_name,
     mdr_to_cdr,
     parse_macro_key,
+    parse_panel_key,
     scheduled_balance,
     smm_to_cpr,
 )
@@ -123,27 +124,79 @@ class _Spec:
     static: tuple[str, ...]
     ltv: bool
     incentive: bool
+    panel: tuple[dict, ...] = ()  # panel inputs at a lag: the source's panel_rules
 
 
-def _parse_inputs(required, loan_columns) -> _Spec:
-    macro, static, problems = [], [], []
+def _parse_inputs(required, loan_columns, source=None) -> _Spec:
+    macro, static, panel, problems = [], [], [], []
+    rules = {r["key"]: r for r in getattr(source, "panel_rules", [])}
     for name in required:
         if name in _DERIVED:
             continue
         try:
             parsed = parse_macro_key(name)
+            in_panel = parse_panel_key(name)
         except ValueError as exc:
             problems.append(str(exc))
             continue
         if parsed is not None:
             macro.append((name, *parsed))
+        elif in_panel is not None:
+            column, lag = in_panel
+            panel.append(rules.get(name, {"key": name, "column": column, "lag": lag, "before_first": None, "projection": "hold"}))
         elif name in loan_columns:
             static.append(name)
         else:
             problems.append(f"{name!r}: not a derived input {list(_DERIVED)}, a macro:<series>:<lag> or a loan column")
     if problems:
         raise ProjectionError(problem_list(problems, "the inputs the hazard source needs"))
-    return _Spec(tuple(required), tuple(macro), tuple(static), "current_ltv" in required, "rate_incentive" in required)
+    return _Spec(
+        tuple(required), tuple(macro), tuple(static), "current_ltv" in required, "rate_incentive" in required, tuple(panel)
+    )
+
+
+def panel_history_name(column: str, months_before: int) -> str:
+    """The loans-frame column holding a panel column's value ``months_before`` months before the start month."""
+    return f"{column}@-{int(months_before)}"
+
+
+def panel_history_columns(source) -> list[tuple[str, int]]:
+    """``(column, months_before)`` of every panel value a projection of ``source`` reads from history.
+
+    A panel input at lag L reads, in month u ahead, the value at the end of month u - L: for u <= L
+    that month is history (0 ... L - 1 months before the start month), after it the projection rule.
+    """
+    out = []
+    for rule in getattr(source, "panel_rules", []):
+        out += [(rule["column"], j) for j in range(rule["lag"])]
+    return sorted(set(out))
+
+
+def with_panel_history(loans: pd.DataFrame, history: pd.DataFrame, source, start_idx: int) -> pd.DataFrame:
+    """``loans`` with the panel values a projection of ``source`` reads from history, as named columns.
+
+    Parameters
+    ----------
+    history : DataFrame
+        ``loan_id``, ``month_idx`` and the panel columns, for the months up to ``start_idx``.
+    start_idx : int
+        The month the projection starts from (the reporting month).
+
+    A loan without a panel row in a month takes the input's ``before_first`` value; without one it stays
+    missing, and the projection names the loan.
+    """
+    needed = panel_history_columns(source)
+    if not needed:
+        return loans
+    first = {r["column"]: r.get("before_first") for r in source.panel_rules}
+    out = loans.copy()
+    for column, j in needed:
+        rows = history[history["month_idx"] == start_idx - j]
+        values = rows.set_index("loan_id")[column].reindex(out["loan_id"]).to_numpy(dtype=float)
+        if first.get(column) is not None:
+            values = np.where(np.isnan(values), float(first[column]), values)
+        out[panel_history_name(column, j)] = values
+    return out
 
 
 def loan_list_text(values) -> str:
@@ -223,6 +276,7 @@ class _Book:
     region_code: np.ndarray | None
     static: dict[str, np.ndarray]
     state: np.ndarray  # arrears state at month_ahead 0 (0 current), for a multi-state source
+    panel: dict  # panel input key -> (n, lag) values at months 0 ... lag - 1 before month_ahead 0
 
 
 def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names, market_rate, hold: bool):
@@ -248,6 +302,8 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
             raw_common["log_age"] = np.log(ages)
     for col in spec.static:
         raw_common[col] = np.repeat(book.static[col][sl], counts)
+    for rule in spec.panel:
+        raw_common[rule["key"]] = _panel_path(rule, book.panel[rule["key"]][sl], H)[mask]
     lookup_months = np.broadcast_to(book.start_idx[sl][:, None], (n, H)) if hold else cal
     lookup_flat = lookup_months[mask]
     out = {}
@@ -545,8 +601,61 @@ def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination
         region_code=region_code,
         static={c: frame[c].to_numpy() for c in spec.static},
         state=_start_states(frame, origination),
+        panel=_panel_history(frame, spec, origination),
     )
     return book, hpi_names
+
+
+def _panel_history(frame: pd.DataFrame, spec: _Spec, origination: bool) -> dict:
+    """Per panel input, its values at 0 ... lag - 1 months before the start: from the loans frame, or at
+    origination the value a new loan starts with (``before_first``)."""
+    out = {}
+    n = len(frame)
+    for rule in spec.panel:
+        lag, column = rule["lag"], rule["column"]
+        if origination:
+            if rule.get("before_first") is None:
+                raise ProjectionError(
+                    f"covariate on panel column {column!r}: the origination view needs the value a new loan starts "
+                    "with; set before_first"
+                )
+            values = np.full((n, lag), float(rule["before_first"]))
+        else:
+            names = [panel_history_name(column, j) for j in range(lag)]
+            lacking = [c for c in names if c not in frame.columns]
+            if lacking:
+                raise ProjectionError(f"loans: no column {lacking[0]!r}: the last panel values of {column!r} are needed")
+            values = frame[names].to_numpy(dtype=float)
+            bad = np.isnan(values).any(axis=1)
+            if bad.any():
+                raise ProjectionError(
+                    f"panel column {column!r}: no value in the last {lag} month(s) for {loan_list_text(frame['loan_id'][bad])}; "
+                    "set before_first for the covariate, or check the panel"
+                )
+        out[rule["key"]] = values
+    return out
+
+
+def _panel_path(rule: dict, history: np.ndarray, H: int) -> np.ndarray:
+    """Values (n, H) of a panel input in months 1 ... H ahead: history while it reaches back, then its projection rule.
+
+    Month u reads the value at the end of month u - lag: history column lag - u for u <= lag (column j is
+    j months before the start), afterwards the last value, held or moving in a straight line to
+    ``revert_to`` over ``revert_months``.
+    """
+    lag = rule["lag"]
+    n = history.shape[0]
+    last = history[:, 0]
+    u = np.arange(1, H + 1)
+    ahead = np.maximum(u - lag, 0)
+    if rule.get("projection", "hold") == "revert":
+        share = np.minimum(ahead / float(rule["revert_months"]), 1.0)
+        out = last[:, None] + (float(rule["revert_to"]) - last[:, None]) * share[None, :]
+    else:
+        out = np.repeat(last[:, None], H, axis=1)
+    for k in range(min(lag, H)):  # month k + 1 ahead reads lag - k - 1 months before the start
+        out[:, k] = history[:, lag - k - 1]
+    return out.reshape(n, H)
 
 
 def _start_states(frame: pd.DataFrame, origination: bool) -> np.ndarray:
@@ -801,7 +910,7 @@ def _live_book(loans, source, paths, as_of_idx, collateral: Collateral):
     The scenario paths are checked to cover every month and lag the book needs.
     Returns ``(spec, book, hpi_names, lookups)``.
     """
-    spec = _parse_inputs(list(source.required_inputs), loans.columns)
+    spec = _parse_inputs(list(source.required_inputs), loans.columns, source)
     book, hpi_names = _prepare_book(
         loans, spec, as_of_idx=as_of_idx, collateral=collateral, origination=False,
     )
@@ -1053,7 +1162,7 @@ def origination_pd(
     -------
     Series of lifetime PD indexed by loan_id (sorted).
     """
-    spec = _parse_inputs(list(source.required_inputs), loans.columns)
+    spec = _parse_inputs(list(source.required_inputs), loans.columns, source)
     book, hpi_names = _prepare_book(loans, spec, as_of_idx=0, collateral=collateral, origination=True)
     lookups = {"origination": MacroLookup(macro)}
     n_all = len(book.loan_id)

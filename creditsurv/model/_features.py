@@ -58,9 +58,10 @@ import numpy as np
 import pandas as pd
 
 from ..config import bin_labels
+from ..data import same_month_panel_problem
 from ..errors import FeatureError, did_you_mean, problem_list
 from ..sql import quote_ident, quote_literal
-from ._names import macro_key
+from ._names import macro_key, panel_key
 from ._schedule import scheduled_balance_sql
 
 __all__ = [
@@ -125,10 +126,18 @@ class RawInput:
     """One raw input column: where it comes from and the key it is read under."""
 
     key: str
-    source: str  # "risk_set", "panel", "loans", "derived", "macro"
+    source: str  # "risk_set", "panel_lag", "loans", "derived", "macro"
     column: str | None = None
     series: str | None = None
     lag: int = 0
+
+
+def input_key(covariate: Mapping) -> str:
+    """The raw input a covariate reads: ``macro:<series>:<lag>``, ``panel:<column>:<lag>`` (lag >= 1) or the column."""
+    lag = int(covariate.get("lag", 0))
+    if covariate.get("macro"):
+        return macro_key(covariate["macro"], lag)
+    return panel_key(covariate["column"], lag) if lag else covariate["column"]
 
 
 def _columns_of(con, table: str) -> list[str] | None:
@@ -221,8 +230,11 @@ class FeatureSpec:
         """
         seen, out = set(), []
         for c in self.covariates:
+            lag = int(c.get("lag", 0))
             if c.get("macro"):
-                item = RawInput(macro_key(c["macro"], int(c.get("lag", 0))), "macro", series=c["macro"], lag=int(c.get("lag", 0)))
+                item = RawInput(input_key(c), "macro", series=c["macro"], lag=lag)
+            elif lag:
+                item = RawInput(input_key(c), "panel_lag", column=c["column"], lag=lag)
             else:
                 item = RawInput(c["column"], "column", column=c["column"])
             if item.key not in seen and item.key != "age":
@@ -260,20 +272,29 @@ class FeatureSpec:
                     where = "no 'macro' view exists" if tables["macro"] is None else f"available: {', '.join(macro)}"
                     problems.append(f"covariate {c['name']!r}: unknown macro series {s!r} ({where}){did_you_mean(s, macro)}")
                 continue
-            col = c["column"]
+            col, lag, head = c["column"], int(c.get("lag", 0)), f"covariate {c['name']!r}: "
+            if lag:
+                if col in panel:
+                    by_key[input_key(c)] = "panel_lag"
+                elif col in loans or col in lm or col in DERIVED_COLUMNS:
+                    problems.append(head + f"lag applies to macro series and panel columns; {col!r} is not a panel column")
+                else:
+                    problems.append(head + f"unknown panel column {col!r}{did_you_mean(col, panel)}")
+                continue
             if col in lm:
                 src = "risk_set"
-            elif col in panel:
-                src = "panel"
             elif col in loans:
                 src = "loans"
             elif col in DERIVED_COLUMNS:
                 if col not in derived:
-                    problems.append(f"covariate {c['name']!r}: derived column {col!r} cannot be built: " + _derived_needs(col, coll, loans))
+                    problems.append(head + f"derived column {col!r} cannot be built: " + _derived_needs(col, coll, loans))
                     continue
                 src = "derived"
+            elif col in panel:
+                problems.append(head + same_month_panel_problem(col))
+                continue
             else:
-                problems.append(f"covariate {c['name']!r}: unknown column {col!r}{did_you_mean(col, available)}")
+                problems.append(head + f"unknown column {col!r}{did_you_mean(col, available)}")
                 continue
             by_key[col] = src
         if problems:
@@ -316,13 +337,21 @@ class FeatureSpec:
         carried = "".join(f"lm.{q(c)}, " for c in carry)
         ctes.append(f"risk_set AS (\n  SELECT {carried}lm.\"loan_id\", lm.\"month_idx\", lm.\"age\", {rows}\n)")
         prev = "risk_set"
-        panel_cols = [i for i in inputs if i.source == "panel"]
+        panel_cols = [i for i in inputs if i.source == "panel_lag"]
         if panel_cols:
-            sel = ", ".join(f"p.{q(i.column)} AS {q(i.key)}" for i in panel_cols)
-            ctes.append(
-                f"with_panel AS (\n  SELECT r.*, {sel}\n  FROM {prev} AS r\n"
-                "  LEFT JOIN \"panel\" AS p ON p.\"loan_id\" = r.\"loan_id\" AND p.\"month_idx\" = r.\"month_idx\"\n)"
+            # a panel column enters at the end of the month `lag` months before: the start of the row's month
+            first = {r["key"]: r["before_first"] for r in self.panel_rules}
+            sel = []
+            for i in panel_cols:
+                value = f"p{i.lag}.{q(i.column)}"
+                if first.get(i.key) is not None:
+                    value = f"coalesce({value}, CAST({float(first[i.key])!r} AS DOUBLE))"
+                sel.append(f"{value} AS {q(i.key)}")
+            joins = "\n".join(
+                f"  LEFT JOIN \"panel\" AS p{lag} ON p{lag}.\"loan_id\" = r.\"loan_id\" AND p{lag}.\"month_idx\" = r.\"month_idx\" - {int(lag)}"
+                for lag in sorted({i.lag for i in panel_cols})
             )
+            ctes.append(f"with_panel AS (\n  SELECT r.*, {', '.join(sel)}\n  FROM {prev} AS r\n{joins}\n)")
             prev = "with_panel"
         loan_sel = [f"l.{q(i.column)} AS {q(i.key)}" for i in inputs if i.source == "loans"]
         if needs_ltv or needs_inc:
@@ -497,10 +526,13 @@ class FeatureSpec:
         """Covariates with rows that have no value, unless a macro problem already explains it."""
         problems = []
         for c in self.covariates:
-            key = macro_key(c["macro"], int(c.get("lag", 0))) if c.get("macro") else c["column"]
+            key = input_key(c)
             bad = nulls.get(key, 0)
             if bad and not any(p.startswith(f"covariate {c['name']!r}: macro") for p in reported):
                 extra = ""
+                if int(c.get("lag", 0)) and c.get("column"):
+                    extra = (f" (the panel has no row {int(c['lag'])} month(s) before these loan-months, e.g. in a loan's "
+                             "first months on book: set before_first to the value a loan starts with)")
                 if key == "current_ltv":
                     extra = (f" (check property_value, term and that every {self.collateral.get('region_column')!r} "
                              f"value has an HPI series {self.collateral.get('hpi_series')!r} covering origination)")
@@ -509,10 +541,10 @@ class FeatureSpec:
 
     def _name_loans(self, con, body: str, params, problem: str, inputs) -> str:
         """A covariate problem with the input table, column and the first loans behind it."""
-        tables = {"loans": "the loan table (inputs.loans)", "panel": "the panel (inputs.panel)", "risk_set": "the panel (inputs.panel)",
+        tables = {"loans": "the loan table (inputs.loans)", "panel_lag": "the panel (inputs.panel)", "risk_set": "the panel (inputs.panel)",
                   "derived": "values derived from the loan table and macro history", "macro": "the macro history (inputs.macro)"}
         for c in self.covariates:
-            key = macro_key(c["macro"], int(c.get("lag", 0))) if c.get("macro") else c["column"]
+            key = input_key(c)
             head = f"covariate {c['name']!r}: "
             if not problem.startswith(head):
                 continue
@@ -559,7 +591,7 @@ class FeatureSpec:
         for c in self.covariates:
             kind_c = c.get("kind", "numeric")
             if kind_c == "categorical":
-                key = c["column"] if c.get("column") else macro_key(c["macro"], int(c.get("lag", 0)))
+                key = input_key(c)
                 rows = con.execute(
                     f"WITH data AS (\n{body}\n)\nSELECT DISTINCT CAST({q(key)} AS VARCHAR) FROM data WHERE {q(key)} IS NOT NULL",
                     list(params),
@@ -586,7 +618,7 @@ class FeatureSpec:
 
     @staticmethod
     def _clip_sql(c) -> str:
-        key = c["column"] if c.get("column") else macro_key(c["macro"], int(c.get("lag", 0)))
+        key = input_key(c)
         if key == "log_age":
             x = "ln(CAST(\"age\" AS DOUBLE))"
         else:
@@ -598,6 +630,26 @@ class FeatureSpec:
         return x
 
     # ----------------------------------------------------------------- design
+
+    @property
+    def panel_rules(self) -> list[dict]:
+        """How each panel input (``panel:<column>:<lag>``) is filled and projected, one dict per input key.
+
+        ``key``, ``column``, ``lag``; ``before_first`` (the value where a loan has no panel row ``lag``
+        months earlier, or None); ``projection`` (``hold``: months ahead keep the value at the reporting
+        month; ``revert``: it moves in a straight line to ``revert_to`` over ``revert_months``, then stays).
+        """
+        out, seen = [], set()
+        for c in self.covariates:
+            if c.get("macro") or not int(c.get("lag", 0)) or input_key(c) in seen:
+                continue
+            seen.add(input_key(c))
+            out.append({
+                "key": input_key(c), "column": c["column"], "lag": int(c["lag"]), "before_first": c.get("before_first"),
+                "projection": c.get("projection", "hold"), "revert_to": c.get("revert_to"),
+                "revert_months": int(c.get("revert_months", 12)),
+            })  # fmt: skip
+        return out
 
     @property
     def required_inputs(self) -> list[str]:
@@ -743,7 +795,7 @@ class FeatureSpec:
 
     def _term_values(self, c, raw, n, lrn) -> np.ndarray:
         name = c["name"]
-        key = c["column"] if c.get("column") else macro_key(c["macro"], int(c.get("lag", 0)))
+        key = input_key(c)
         if key not in raw:
             if key == "log_age":
                 values = np.log(np.asarray(raw["age"], dtype=np.float64))
@@ -900,6 +952,8 @@ def feature_spec(model, collateral=None) -> FeatureSpec:
             "bins": [float(b) for b in c.bins],
             "reference": c.reference,
         }
+        if c.column is not None and c.lag:  # a panel column at a lag: how it is filled and projected
+            d.update(before_first=c.before_first, projection=c.projection, revert_to=c.revert_to, revert_months=int(c.revert_months))
         covs.append(d)
     b = model.baseline
     baseline = {"kind": b.kind, "edges": [int(e) for e in b.edges], "knots": [float(k) for k in b.knots], "max_age": b.max_age}

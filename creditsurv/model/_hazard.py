@@ -225,6 +225,11 @@ class HazardResults:
         """Raw input names the model reads (the projection's hazard-source protocol)."""
         return self.spec.required_inputs
 
+    @property
+    def panel_rules(self) -> list[dict]:
+        """How each panel input is filled and projected (see :attr:`FeatureSpec.panel_rules`)."""
+        return self.spec.panel_rules
+
     def hazards(self, raw) -> tuple[np.ndarray, np.ndarray]:
         """Alias of :meth:`predict_hazards` (the projection's hazard-source protocol)."""
         return self.predict_hazards(raw)

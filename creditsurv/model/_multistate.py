@@ -114,6 +114,10 @@ class MultiStateResults:
         return self.spec.required_inputs
 
     @property
+    def panel_rules(self) -> list[dict]:
+        return self.spec.panel_rules
+
+    @property
     def n_rows(self) -> int:
         return int(sum(m.n_rows for m in self.origins.values()))
 

@@ -2,16 +2,34 @@
 
 A hazard source lists the inputs it needs per loan-month (``required_inputs``);
 a macro series enters as ``macro:<series>:<lag>``, the value of ``<series>`` in
-calendar month ``month - lag``. The house-price series of a region is the
+calendar month ``month - lag``; a panel column as ``panel:<column>:<lag>``, the
+loan's value at the end of month ``month - lag`` (lag 1 or more: a month-end value
+describes the end of its month, not its start). The house-price series of a region is the
 ``collateral.hpi_series`` template with ``{region}`` replaced by the region's
 name in lower case.
 """
 
 from __future__ import annotations
 
-__all__ = ["hpi_series_name", "macro_key", "parse_macro_key"]
+__all__ = ["hpi_series_name", "macro_key", "panel_key", "parse_macro_key", "parse_panel_key"]
 
 _MACRO = "macro"
+_PANEL = "panel"
+
+
+def panel_key(column: str, lag: int) -> str:
+    """The input name of panel column ``column`` at ``lag`` months: ``panel:<column>:<lag>``."""
+    return f"{_PANEL}:{column}:{int(lag)}"
+
+
+def parse_panel_key(name) -> tuple[str, int] | None:
+    """``(column, lag)`` of a panel input name; None when ``name`` is not a panel input."""
+    if not (isinstance(name, str) and name.startswith(f"{_PANEL}:")):
+        return None
+    column, _, lag = name[len(_PANEL) + 1:].rpartition(":")
+    if not column or not lag.isdigit() or int(lag) < 1:
+        raise ValueError(f"{name!r}: write a panel input as panel:<column>:<lag> with lag >= 1")
+    return column, int(lag)
 
 
 def macro_key(series: str, lag: int) -> str:

@@ -14,8 +14,9 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from ..data import arrears_state_sql, event_params
+from ..data import arrears_state_sql, event_params, panel_history_sql
 from ..errors import DataError
+from ..forecast import panel_history_columns, with_panel_history
 from ..model import HazardResults, MultiStateResults
 from ._statistics import (
     CAUSES,
@@ -104,6 +105,7 @@ class _UpToAge:
         self.source = source
         self.limit = int(limit)
         self.required_inputs = list(source.required_inputs)
+        self.panel_rules = list(getattr(source, "panel_rules", []))
         if hasattr(source, "transition_probabilities"):  # a multi-state model: its chain runs whole
             self.labels, self.states = source.labels, source.states
             self.transition_probabilities = source.transition_probabilities
@@ -198,7 +200,7 @@ def _json_safe(value):
 # --------------------------------------------------------------------------- the development cohort
 
 
-def _cohort(cfg, engine, month: int, notes: list) -> pd.DataFrame:
+def _cohort(cfg, engine, model, month: int, notes: list) -> pd.DataFrame:
     state = arrears_state_sql("a.days_past_due", len(cfg.arrears.starts))
     sql = (
         f"WITH {_ALIVE_AT}\nSELECT {_loan_columns(engine)}, a.age, a.balance, 'all' AS segment,\n"
@@ -207,6 +209,12 @@ def _cohort(cfg, engine, month: int, notes: list) -> pd.DataFrame:
     )
     params = {"month": int(month), "paid_off": float(cfg.events.paid_off_balance), **event_params(cfg, state)}
     frame = _sql(engine, sql, params).sort_values("loan_id", kind="stable", ignore_index=True)  # the order project_loans uses
+    needed = panel_history_columns(model)
+    if needed:
+        depth = max(j for _, j in needed)
+        columns = sorted({c for c, _ in needed})
+        history = _sql(engine, panel_history_sql(columns), {"first": int(month) - depth, "last": int(month)})
+        frame = with_panel_history(frame, history, model, int(month))
     past = (frame["age"] >= frame["term"]).to_numpy()
     if past.any():
         notes.append(f"{int(past.sum())} loans alive at {_fmt_month(month)} at or past their term were left out")
@@ -600,7 +608,7 @@ def _cohort_section(cfg, engine, model, path, month, chunk_size, tables, summary
     """The development cohort's 12-month PD, backtest, discrimination and calibration; returns its 12-month PDs."""
     oot = cfg.windows.out_of_time
     as_of = int(cfg.as_of)
-    cohort = _cohort(cfg, engine, month, notes)
+    cohort = _cohort(cfg, engine, model, month, notes)
     summary["cohort_loans"] = int(len(cohort))
     cohort_pd = None
     if cohort.empty:
