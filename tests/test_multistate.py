@@ -142,12 +142,28 @@ def _fit(engine, cfg, **overrides):
 
 
 @pytest.fixture(scope="module")
-def fitted(book):
+def opened(book):
+    """The book opened, checked and labelled once, with the config of one score covariate."""
     folder, panel, loans = book
     cfg = _config(folder, panel, loans)
     with _opened(cfg) as engine:
-        model = _fit(engine, cfg)
-        raw = {j: engine.frame(model.spec.raw_query(engine.con, origin_state=j)) for j in range(len(LABELS))}
+        yield cfg, engine
+
+
+@pytest.fixture(scope="module")
+def opened_plain(book, tmp_path_factory):
+    """The same book with no covariates (age bands alone)."""
+    _, panel, loans = book
+    cfg = _config(tmp_path_factory.mktemp("plain"), panel, loans, covariates=[])
+    with _opened(cfg) as engine:
+        yield cfg, engine
+
+
+@pytest.fixture(scope="module")
+def fitted(opened):
+    cfg, engine = opened
+    model = _fit(engine, cfg)
+    raw = {j: engine.frame(model.spec.raw_query(engine.con, origin_state=j)) for j in range(len(LABELS))}
     return model, raw
 
 
@@ -196,25 +212,23 @@ def test_moves_never_seen_are_fixed_at_zero_and_rows_sum_to_one(fitted):
     assert (P[:, STATES.index("60-89")] == 0).all()
 
 
-def test_no_covariates_give_the_empirical_transition_shares(book, tmp_path):
+def test_no_covariates_give_the_empirical_transition_shares(opened_plain):
     # With the age bands alone every move's fit is saturated: the model's probabilities are the observed
     # shares of each end state among the months starting in each state, band by band (the
     # non-parametric Markov estimate; Aalen & Johansen 1978), counted here straight from loan_months.
-    _, panel, loans = book
-    cfg = _config(tmp_path, panel, loans, covariates=[])
-    with _opened(cfg) as engine:
-        model = _fit(engine, cfg)
-        months = engine.frame("SELECT origin_state, destination, age FROM loan_months WHERE origin_state IS NOT NULL")
-        for j, origin in enumerate(LABELS):
-            rows = months[months["origin_state"] == j]
-            for band, ages in (("young", rows["age"] <= 12), ("old", rows["age"] > 12)):
-                sub = rows[ages]
-                d = sub["destination"].to_numpy().astype(np.int64)
-                end = np.select([d == 0, d == 1, d == 2], [j, 3, 4], default=d - 3)
-                observed = np.bincount(end, minlength=5) / len(sub)
-                age = np.array([6 if band == "young" else 24])
-                got = model.transition_probabilities({"age": age, "log_age": np.log(age)}, origin)[0]
-                np.testing.assert_allclose(got, observed, rtol=1e-9, atol=1e-13, err_msg=f"{origin} {band}")
+    cfg, engine = opened_plain
+    model = _fit(engine, cfg)
+    months = engine.frame("SELECT origin_state, destination, age FROM loan_months WHERE origin_state IS NOT NULL")
+    for j, origin in enumerate(LABELS):
+        rows = months[months["origin_state"] == j]
+        for band, ages in (("young", rows["age"] <= 12), ("old", rows["age"] > 12)):
+            sub = rows[ages]
+            d = sub["destination"].to_numpy().astype(np.int64)
+            end = np.select([d == 0, d == 1, d == 2], [j, 3, 4], default=d - 3)
+            observed = np.bincount(end, minlength=5) / len(sub)
+            age = np.array([6 if band == "young" else 24])
+            got = model.transition_probabilities({"age": age, "log_age": np.log(age)}, origin)[0]
+            np.testing.assert_allclose(got, observed, rtol=1e-9, atol=1e-13, err_msg=f"{origin} {band}")
 
 
 def test_one_state_is_the_competing_risk_model(book, tmp_path):
@@ -273,18 +287,16 @@ def _constrained_mle(X, y, codes, free):
     return beta.reshape(K, p)
 
 
-def test_rare_moves_get_a_reduced_design_and_the_constrained_maximum(book, tmp_path):
+def test_rare_moves_get_a_reduced_design_and_the_constrained_maximum(opened):
     # Moves seen fewer than min_transition_events times keep intercept and age baseline only: the fit is
     # the maximum of the likelihood with the other coefficients at zero (scipy.optimize on the same rows).
-    _, panel, loans = book
-    cfg = _config(tmp_path, panel, loans)
-    with _opened(cfg) as engine:
-        counts = engine.frame("SELECT origin_state, destination, count(*) AS n FROM loan_months GROUP BY ALL")
-        n = {(int(o), int(d)): int(k) for o, d, k in counts.itertuples(index=False) if o == o}
-        limit = n[(1, 2)] + 1  # prepaid from 30-59 falls below it; default, 60-89 and cure from 30-59 do not
-        assert min(n[(1, 1)], n[(1, 3)], n[(1, 5)]) > limit
-        model = _fit(engine, cfg, min_transition_events=limit)
-        raw = engine.frame(model.spec.raw_query(engine.con, origin_state=1))
+    cfg, engine = opened
+    counts = engine.frame("SELECT origin_state, destination, count(*) AS n FROM loan_months GROUP BY ALL")
+    n = {(int(o), int(d)): int(k) for o, d, k in counts.itertuples(index=False) if o == o}
+    limit = n[(1, 2)] + 1  # prepaid from 30-59 falls below it; default, 60-89 and cure from 30-59 do not
+    assert min(n[(1, 1)], n[(1, 3)], n[(1, 5)]) > limit
+    model = _fit(engine, cfg, min_transition_events=limit)
+    raw = engine.frame(model.spec.raw_query(engine.con, origin_state=1))
     fits = model.transitions.set_index(["origin", "destination"])
     assert fits.loc[("30-59", "prepaid"), "design"] == "baseline" and fits.loc[("30-59", "prepaid"), "parameters"] == 2
     assert fits.loc[("30-59", "default"), "design"] == "full"
@@ -322,17 +334,15 @@ def test_a_state_no_month_starts_in_is_an_error(book, tmp_path):
 # --------------------------------------------------------------------------- projection: the Markov chain
 
 
-def test_projection_is_the_aalen_johansen_product_of_the_empirical_matrices(book, tmp_path):
+def test_projection_is_the_aalen_johansen_product_of_the_empirical_matrices(opened_plain):
     # No covariates and age bands: the fitted model's transition matrices are the empirical ones of each band,
     # so a loan's projected PD must be the product of those matrices month after month (the Aalen-Johansen
     # estimator of a Markov multi-state model, Aalen & Johansen 1978), computed here with numpy alone.
     from creditsurv.forecast import project_loans
 
-    _, panel, loans = book
-    cfg = _config(tmp_path, panel, loans, covariates=[])
-    with _opened(cfg) as engine:
-        model = _fit(engine, cfg)
-        months = engine.frame("SELECT origin_state, destination, age FROM loan_months WHERE origin_state IS NOT NULL")
+    cfg, engine = opened_plain
+    model = _fit(engine, cfg)
+    months = engine.frame("SELECT origin_state, destination, age FROM loan_months WHERE origin_state IS NOT NULL")
     empirical = {}
     for band, ages in (("young", months["age"] <= 12), ("old", months["age"] > 12)):
         M = np.zeros((5, 5))
@@ -365,7 +375,7 @@ def test_projection_is_the_aalen_johansen_product_of_the_empirical_matrices(book
     assert pd12["b"] > 5 * pd12["a"]
 
 
-def test_days_past_due_at_the_previous_month_end_is_a_trustworthy_predictor(book, tmp_path):
+def test_days_past_due_at_the_previous_month_end_is_a_trustworthy_predictor(opened):
     # At the outcome's own month days past due reveal the outcome (refused, tests/test_features.py); at the previous
     # month-end they are what the lender knows at the start of the month. The competing-risk fit keeps every
     # trust limit (fit_hazard raises otherwise), arrears raise the default hazard, and a loan 60 days past due at
@@ -373,12 +383,10 @@ def test_days_past_due_at_the_previous_month_end_is_a_trustworthy_predictor(book
     from creditsurv.config import Covariate, ModelSpec
     from creditsurv.forecast import project_loans, with_panel_history
 
-    _, panel, loans = book
-    cfg = _config(tmp_path, panel, loans)
+    cfg, engine = opened
     dpd = Covariate(name="dpd", column="days_past_due", lag=1, before_first=0.0)
-    with _opened(cfg) as engine:
-        spec = feature_spec(ModelSpec(baseline=cfg.model.baseline, covariates=(*cfg.model.covariates, dpd)), cfg.collateral)
-        model = fit_hazard(engine, spec.learn(engine.con), kind="multinomial")
+    spec = feature_spec(ModelSpec(baseline=cfg.model.baseline, covariates=(*cfg.model.covariates, dpd)), cfg.collateral)
+    model = fit_hazard(engine, spec.learn(engine.con), kind="multinomial")
     assert model.params.loc["dpd", "default"] > 0 and model.bse.loc["dpd", "default"] < 0.05
     now = pd.DataFrame(
         {"loan_id": ["cur", "late"], "segment": "all", "age": [20, 20], "term": 360, "note_rate": 0.04, "balance": 1e5, "credit_score": 0.0}

@@ -263,15 +263,26 @@ class MultiStateResults:
         return cls(labels=labels, origins=origins, references=references, transitions=transitions, spec=origins[labels[0]].spec)
 
 
-def _end_state_counts(engine, spec, where_sql, params, origin: int, labels) -> pd.DataFrame:
-    """Loan-months from ``origin`` by loan age (rows) and end state (columns), over the rows the fit reads."""
-    body = spec.raw_query(engine.con, where_sql, order=False, origin_state=origin)
-    counts = engine.frame(f"SELECT age, outcome, count(*) AS n FROM ({body}) AS r GROUP BY age, outcome", list(params) or None)
-    table = counts.pivot_table(index="age", columns="outcome", values="n", aggfunc="sum", fill_value=0)
-    codes = _end_codes(labels, origin)
-    table = table.reindex(columns=list(codes.values()), fill_value=0).astype(np.int64)
-    table.columns = list(codes)
-    return table.sort_index()
+def _end_state_counts(engine, spec, where_sql, params, labels) -> dict[int, pd.DataFrame]:
+    """Per origin state, loan-months by loan age (rows) and end state (columns), over the rows the fit reads.
+
+    One query for every origin state: the moves each origin's fit will see.
+    """
+    body = spec.raw_query(engine.con, where_sql, order=False, carry=("origin_state", "destination"))
+    counts = engine.frame(
+        f"SELECT origin_state, age, destination, count(*) AS n FROM ({body}) AS r\n"
+        "WHERE origin_state IS NOT NULL GROUP BY origin_state, age, destination",
+        list(params) or None,
+    )
+    out = {}
+    for j in range(len(labels)):
+        codes = _end_codes(labels, j)
+        rows = counts[counts["origin_state"] == j]
+        table = rows.pivot_table(index="age", columns="destination", values="n", aggfunc="sum", fill_value=0)
+        table = table.reindex(columns=list(codes.values()), fill_value=0).astype(np.int64)
+        table.columns = list(codes)
+        out[j] = table.sort_index()
+    return out
 
 
 def _baseline_separates(spec, by_age: pd.DataFrame, name: str) -> bool:
@@ -342,8 +353,9 @@ def fit_multi_state(
     # (common practice; Peduzzi et al. 1996, from memory), or the configured limit if higher.
     per_parameter = max(limits["min_events_per_parameter"], STABLE_EVENTS_PER_PARAMETER)
     origins, references, rows = {}, {}, []
+    moves = _end_state_counts(engine, spec, where_sql, params, labels)
     for j, origin in enumerate(labels):
-        by_age = _end_state_counts(engine, spec, where_sql, params, j, labels)
+        by_age = moves[j]
         counts = {name: int(by_age[name].sum()) for name in by_age.columns}
         if sum(counts.values()) == 0:
             raise ModelError(
