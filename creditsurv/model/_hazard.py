@@ -79,6 +79,13 @@ standard error times it above 5 means the fit ran off, not that the data say so.
 """
 
 
+def _multinomial(eta: np.ndarray) -> np.ndarray:
+    """Probabilities exp(eta_k) / (1 + sum_j exp(eta_j)) of each outcome against the reference, stable for large eta."""
+    m = np.maximum(eta.max(axis=1), 0.0)
+    e = np.exp(eta - m[:, None])
+    return e / (np.exp(-m) + e.sum(axis=1))[:, None]
+
+
 def check_saved_model(model, limits: dict, path) -> None:
     """Raise ``ModelError`` when a saved model (``model.path``) has fewer events per parameter than ``limits``.
 
@@ -194,17 +201,10 @@ class HazardResults:
         A cause that was not fitted gets hazard 0. For ``cause_specific`` each
         hazard is its own binary logit's probability.
         """
-        X, _ = self.spec.design(raw)
-        beta = self.params[list(self.causes)].to_numpy().T
-        eta = X @ beta.T
-        if self.kind == "multinomial":
-            m = np.maximum(eta.max(axis=1), 0.0)
-            e = np.exp(eta - m[:, None])
-            h = e / (np.exp(-m) + e.sum(axis=1))[:, None]
-        else:
-            h = 1.0 / (1.0 + np.exp(-eta))
+        eta = self._linear_predictors(raw)
+        h = _multinomial(eta) if self.kind == "multinomial" else 1.0 / (1.0 + np.exp(-eta))
         out = {c: h[:, i] for i, c in enumerate(self.causes)}
-        zero = np.zeros(X.shape[0])
+        zero = np.zeros(eta.shape[0])
         return out.get("default", zero), out.get("prepay", zero)
 
     def probabilities(self, raw) -> np.ndarray:
@@ -214,11 +214,11 @@ class HazardResults:
         """
         if self.kind != "multinomial":
             raise ModelError(f"probabilities() needs a multinomial model, not {self.kind}")
+        return _multinomial(self._linear_predictors(raw))
+
+    def _linear_predictors(self, raw) -> np.ndarray:
         X, _ = self.spec.design(raw)
-        eta = X @ self.params[list(self.causes)].to_numpy()
-        m = np.maximum(eta.max(axis=1), 0.0)
-        e = np.exp(eta - m[:, None])
-        return e / (np.exp(-m) + e.sum(axis=1))[:, None]
+        return X @ self.params[list(self.causes)].to_numpy()
 
     @property
     def required_inputs(self) -> list[str]:
