@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import os
 import signal
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -430,7 +431,9 @@ def kill_point(stage: str) -> None:
     kill points this way rather than by timing. Unset, it does nothing.
     """
     if os.environ.get(KILL_AT) == stage:
-        os.kill(os.getpid(), getattr(signal, os.environ.get(KILL_SIGNAL, "SIGTERM")))
+        # To this thread, not the process: a process-directed signal may land on a library's worker thread and
+        # reach Python only after a library (pyarrow) has put its own SIGINT handler in place, which can drop it.
+        signal.pthread_kill(threading.get_ident(), getattr(signal, os.environ.get(KILL_SIGNAL, "SIGTERM")))
 
 
 def execute_run(
