@@ -588,11 +588,36 @@ def open_panel(cfg) -> SparkEngine:
     spark, owns = spark_session(cfg.spark)
     panel = SparkEngine(cfg, spark, owns)
     try:
+        check_executors(spark.sparkContext)
         _build_views(panel)
     except BaseException:
         panel.close()
         raise
     return panel
+
+
+def _executor_version(_rows):
+    from creditsurv.version import __version__  # on the executor: its own Python must have creditsurv installed
+
+    yield __version__
+
+
+def check_executors(sc) -> None:
+    """Before any work: every executor slot starts a Python that imports creditsurv, of the driver's version.
+
+    Fails in seconds, with the one-line message of :func:`_tasks`, instead of after the data checks and the
+    events; a different creditsurv version on the workers would compute other numbers, so it is refused too.
+    """
+    from ..version import __version__
+
+    slots = max(int(sc.defaultParallelism), 1)
+    with _tasks(sc, "the executors' start-up check"):
+        versions = set(sc.parallelize(range(slots), slots).mapPartitions(_executor_version).collect())
+    if versions != {__version__}:
+        raise EngineError(
+            f"the Spark executors run creditsurv {', '.join(sorted(versions))} and the driver {__version__}: "
+            "install the driver's version on every worker host, or ship it with spark.archives (README, Spark)"
+        )
 
 
 def _build_views(panel: SparkEngine) -> None:
