@@ -340,6 +340,56 @@ def loans_with_panel_history(engine, loans, model, month: int):
     return with_panel_history(loans, history, model, int(month))
 
 
+def stage_reasons(loans) -> dict:
+    """Loans of stages 2 and 3 by stage and reason: ``{"2": {"backstop": n, ...}, "3": {...}}`` (JSON-ready)."""
+    out = {}
+    impaired = loans[loans["stage"] > 1]
+    for (stage, reason), n in impaired.groupby(["stage", "stage_reason"], sort=True).size().items():
+        out.setdefault(str(int(stage)), {})[str(reason)] = int(n)
+    return out
+
+
+def with_sicr_history(cfg, as_of: int, book):
+    """The book with the staging's SICR history (:data:`creditsurv.loss.SICR_HISTORY`) and a sentence naming its source.
+
+    From ``staging.sicr_history_column`` when set, else from ``outputs.prior_run``; with neither, probation
+    applies to arrears exits only, and the sentence says so.
+    """
+    import numpy as np
+    import pandas as pd
+
+    from .errors import DataError
+    from .forecast import loan_list_text
+    from .loss import SICR_HISTORY
+
+    col = cfg.staging.sicr_history_column
+    if col is not None:
+        values = pd.to_numeric(book[col], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+        bad = (book[col].notna().to_numpy() & np.isnan(values)) | (values < 0) | (values != np.floor(values))
+        if bad.any():
+            raise DataError(
+                f"{cfg.inputs.loans.path}: staging.sicr_history_column: column {col!r} must hold whole months "
+                f"(0 or more) or be empty; not so for {loan_list_text(book['loan_id'][bad])}"
+            )
+        return book.assign(**{SICR_HISTORY: values}), f"SICR history from the loan-table column {col!r}"
+    no_history = (
+        "no SICR history (neither staging.sicr_history_column nor outputs.prior_run): probation was applied "
+        "to exits from the arrears backstop only, not to exits from SICR or the watch list"
+    )
+    if cfg.outputs.prior_run is not None:
+        from .runs import sicr_history_of_run
+
+        history, gap = sicr_history_of_run(cfg.outputs.prior_run, as_of)
+        if history is None:
+            return book, no_history.replace("outputs.prior_run)", "an outputs.prior_run of an earlier month)")
+        values = book["loan_id"].map(history).to_numpy(dtype=float, na_value=np.nan)
+        text = f"SICR history from the prior run {cfg.outputs.prior_run}"
+        if gap > 1:
+            text += f" ({gap} months earlier: SICR or watch-list triggers in the {gap - 1} months between are unknown)"
+        return book.assign(**{SICR_HISTORY: values}), text
+    return book, no_history
+
+
 def project_book(ctx, engine, model, run, loaded, *, progress=None):
     """Projection, ECL and the exported tables of one run, written into ``run``."""
     import numpy as np
@@ -350,6 +400,7 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
 
     cfg = ctx.cfg
     book = loans_with_panel_history(engine, engine.book_at_as_of(cfg.segments.column), model, ctx.as_of)
+    book, sicr_history = with_sicr_history(cfg, ctx.as_of, book)
     run.add_table(state_distribution(book, cfg.arrears.labels(cfg.default_definition.days_past_due)), "arrears_states.csv")
     paths = scenario_paths(ctx, engine, model, book, loaded)
     options = {"compression": "zstd"}
@@ -390,6 +441,8 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         "by_stage": {
             int(k): float(v) for k, v in result.loans.groupby("stage")["ecl_reported"].sum().items()
         },
+        "stage_reasons": stage_reasons(result.loans),
+        "sicr_history": sicr_history,
     }
     return result, report_tables, totals
 
@@ -555,6 +608,7 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
         "config_sha256": manifest.config_sha256,
         "seed": manifest.seed,
         "synthetic": cfg.synthetic_data,
+        "sicr_history": (manifest.totals or {}).get("sicr_history"),
         **({"calibration": manifest.calibration} if manifest.calibration is not None else {}),
     }
     write_report(run.add_file("report.html"), tables, meta)

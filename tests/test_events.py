@@ -70,18 +70,19 @@ BOOK = [
 ]
 
 # loan_id: entry_age, entry_month_idx, last_age, last_month_idx, event, event_age,
-#          event_month_idx, censor_reason, in_default_at_as_of, days_past_due_at_as_of, balance_at_as_of
+#          event_month_idx, censor_reason, in_default_at_as_of, days_past_due_at_as_of, balance_at_as_of,
+#          last_arrears_month_idx (the last month at or above the 30-day backstop or in default)
 EXPECTED_OUTCOMES = {
-    "both": (1, ORIG + 1, 4, ORIG + 4, "default", 4, ORIG + 4, None, False, None, None),
-    "chargeoff": (1, ORIG + 1, 7, ORIG + 7, "default", 4, ORIG + 4, None, False, None, None),
-    "cure": (1, ORIG + 1, 12, AS_OF, "censored", None, None, "end_of_window", False, 0, 988.0),
-    "default90": (1, ORIG + 1, 6, ORIG + 6, "default", 5, ORIG + 5, None, False, None, None),
-    "late": (7, ORIG + 1, 18, AS_OF, "censored", None, None, "end_of_window", False, 0, 982.0),
-    "left": (1, ORIG + 1, 7, ORIG + 7, "censored", None, None, "left_panel", False, None, None),
-    "mature": (1, ORIG + 1, 6, ORIG + 6, "maturity", 6, ORIG + 6, None, False, None, None),
-    "prepay": (1, ORIG + 1, 4, ORIG + 4, "prepay", 4, ORIG + 4, None, False, None, None),
-    "status": (1, ORIG + 1, 5, ORIG + 5, "default", 3, ORIG + 3, None, False, None, None),
-    "workout": (1, ORIG + 1, 12, AS_OF, "default", 4, ORIG + 4, None, True, 330, 988.0),
+    "both": (1, ORIG + 1, 4, ORIG + 4, "default", 4, ORIG + 4, None, False, None, None, ORIG + 4),
+    "chargeoff": (1, ORIG + 1, 7, ORIG + 7, "default", 4, ORIG + 4, None, False, None, None, ORIG + 7),
+    "cure": (1, ORIG + 1, 12, AS_OF, "censored", None, None, "end_of_window", False, 0, 988.0, ORIG + 4),
+    "default90": (1, ORIG + 1, 6, ORIG + 6, "default", 5, ORIG + 5, None, False, None, None, ORIG + 6),
+    "late": (7, ORIG + 1, 18, AS_OF, "censored", None, None, "end_of_window", False, 0, 982.0, None),
+    "left": (1, ORIG + 1, 7, ORIG + 7, "censored", None, None, "left_panel", False, None, None, None),
+    "mature": (1, ORIG + 1, 6, ORIG + 6, "maturity", 6, ORIG + 6, None, False, None, None, None),
+    "prepay": (1, ORIG + 1, 4, ORIG + 4, "prepay", 4, ORIG + 4, None, False, None, None, None),
+    "status": (1, ORIG + 1, 5, ORIG + 5, "default", 3, ORIG + 3, None, False, None, None, ORIG + 5),
+    "workout": (1, ORIG + 1, 12, AS_OF, "default", 4, ORIG + 4, None, True, 330, 988.0, AS_OF),
 }
 
 # loan_id: outcome of each risk-set row, from its first row on
@@ -136,7 +137,7 @@ def test_loan_outcomes_types(events_book_panel):
         "loan_id": "VARCHAR", "entry_age": "INTEGER", "entry_month_idx": "INTEGER", "last_age": "INTEGER",
         "last_month_idx": "INTEGER", "event": "VARCHAR", "event_age": "INTEGER", "event_month_idx": "INTEGER",
         "censor_reason": "VARCHAR", "in_default_at_as_of": "BOOLEAN", "days_past_due_at_as_of": "INTEGER",
-        "balance_at_as_of": "DOUBLE",
+        "balance_at_as_of": "DOUBLE", "last_arrears_month_idx": "INTEGER",
     }
 
 

@@ -160,9 +160,9 @@ def test_thirty_days_past_due_is_stage_2_and_default_is_stage_3():
     pd_now = np.array([0.01, 0.01, 0.01, 0.01])
     pd0 = np.array([0.01, 0.01, 0.01, 0.01])
     dpd = np.array([0, 29, 30, 95])
-    stage, reason = allocate_stages(pd_now, pd0, dpd, dpd >= 90, Staging())
+    stage, reason, _ = allocate_stages(pd_now, pd0, dpd, dpd >= 90, Staging())
     assert stage.tolist() == [1, 1, 2, 3]
-    assert reason.tolist() == ["", "", "dpd_backstop", "in_default"]
+    assert reason.tolist() == ["", "", "backstop", "default"]
 
 
 @pytest.mark.parametrize(
@@ -174,12 +174,73 @@ def test_sicr_relative_and_absolute_thresholds(rule, expected):
     pd0 = np.array([0.010, 0.001, 0.100, 0.100, 0.0])
     now = np.array([0.025, 0.005, 0.120, 0.105, 0.02])
     # ratios 2.5, 5, 1.2, 1.05, inf; increases 0.015, 0.004, 0.02, 0.005, 0.02
-    stage, reason = allocate_stages(now, pd0, np.zeros(5), np.zeros(5, bool), staging)
+    stage, reason, since = allocate_stages(now, pd0, np.zeros(5), np.zeros(5, bool), staging)
     assert stage.tolist() == expected
-    assert set(reason[stage == 2]) == {"sicr"}
+    # the reason names the thresholds that fired and count under the rule
+    expected_reasons = {
+        "both": ["sicr_relative+sicr_absolute", "", "", "", "sicr_relative+sicr_absolute"],
+        "either": ["sicr_relative+sicr_absolute", "sicr_relative", "sicr_absolute", "", "sicr_relative+sicr_absolute"],
+    }[rule]
+    assert reason.tolist() == expected_reasons
+    np.testing.assert_array_equal(since, np.where(stage == 2, 0.0, np.nan))
     # exactly at the thresholds counts (>=)
-    s, _ = allocate_stages([0.02], [0.01], [0], [False], Staging(sicr_relative=2.0, sicr_absolute=0.01))
+    s, _, _ = allocate_stages([0.02], [0.01], [0], [False], Staging(sicr_relative=2.0, sicr_absolute=0.01))
     assert s.tolist() == [2]
+
+
+def test_each_stage_reason_on_hand_built_loans():
+    # One loan per reason. PD at origination 1% for all; "now" 1% unless SICR is the point.
+    staging = Staging(sicr_relative=2.0, sicr_absolute=0.01, dpd_backstop=30, probation_months=3)
+    loans = {  # name: (pd now, dpd, in default, in cure period, months since arrears, SICR months before, watch list)
+        "performing": (0.01, 0, False, False, np.nan, np.nan, False),
+        "default": (1.0, 120, True, False, 0, np.nan, False),  # IFRS 9 B5.5.37: credit-impaired, stage 3
+        "cure_period": (1.0, 0, True, True, 2, np.nan, False),  # no default condition now, cure not complete
+        "backstop": (0.01, 45, False, False, 0, np.nan, False),  # IFRS 9 5.5.11: more than 30 days past due
+        "sicr": (0.05, 0, False, False, np.nan, np.nan, False),  # IFRS 9 5.5.3: lifetime PD 5x, +4 points
+        "watch_list": (0.01, 0, False, False, np.nan, np.nan, True),
+        "arrears_probation": (0.01, 0, False, False, 1, np.nan, False),  # left the backstop last month
+        "sicr_probation": (0.01, 0, False, False, np.nan, 1, False),  # SICR two months ago (1 at the last month-end)
+        "probation_over": (0.01, 0, False, False, 3, 2, False),  # three whole months without a trigger
+        "backstop_and_watch": (0.01, 30, False, False, 0, np.nan, True),
+    }
+    cols = list(zip(*loans.values()))
+    stage, reason, since = allocate_stages(
+        np.array(cols[0]), np.full(len(loans), 0.01), np.array(cols[1]), np.array(cols[2]), staging,
+        in_cure_period=np.array(cols[3]), months_since_arrears=np.array(cols[4], float),
+        months_since_sicr_before=np.array(cols[5], float), watch_list=np.array(cols[6]),
+    )
+    got = dict(zip(loans, zip(stage.tolist(), reason.tolist())))
+    assert got == {
+        "performing": (1, ""),  # IFRS 9 5.5.5: 12-month ECL
+        "default": (3, "default"),
+        "cure_period": (3, "cure_period"),
+        "backstop": (2, "backstop"),
+        "sicr": (2, "sicr_relative+sicr_absolute"),
+        "watch_list": (2, "watch_list"),
+        "arrears_probation": (2, "probation"),
+        "sicr_probation": (2, "probation"),
+        "probation_over": (1, ""),
+        "backstop_and_watch": (2, "backstop+watch_list"),
+    }
+    # the SICR history carried to next month: 0 on a SICR or watch-list trigger, one more month otherwise
+    assert dict(zip(loans, since.tolist()))["sicr_probation"] == 2.0
+    assert dict(zip(loans, since.tolist()))["probation_over"] == 3.0
+    assert dict(zip(loans, since.tolist()))["watch_list"] == 0.0
+    assert np.isnan(dict(zip(loans, since.tolist()))["performing"])
+
+
+@pytest.mark.parametrize("months", [0, 1, 3, 6])
+def test_probation_holds_a_loan_in_stage_2_for_the_configured_months(months):
+    # A loan 30 days past due in month 0 that pays from month 1 on: stage 2 while fewer than `months` whole
+    # months have passed without a trigger (common practice: a few months of good behaviour, often 3;
+    # the value is a policy choice of the lender, not a rule of IFRS 9).
+    staging = Staging(probation_months=months)
+    stages = []
+    for month in range(0, 9):
+        dpd = 30 if month == 0 else 0
+        s, _, _ = allocate_stages([0.01], [0.01], [dpd], [False], staging, months_since_arrears=[float(month)])
+        stages.append(int(s[0]))
+    assert stages == [2] + [2] * max(months - 1, 0) + [1] * (8 - max(months - 1, 0))
 
 
 def test_reported_ecl_is_12_month_for_stage_1_and_lifetime_for_stages_2_and_3():

@@ -207,12 +207,16 @@ def test_reproduce_reports_a_changed_output_as_a_mismatch(demo_run, tmp_path, ca
     assert "segment_summary.csv" in capsys.readouterr().err
 
 
-def test_two_month_refresh_walk_reconciles_exactly(small_book, tmp_path):
-    # The month-on-month ECL walk: its parts sum to the change in total ECL.
-    cfg = _config(small_book, tmp_path)
+def test_two_month_refresh_walk_reconciles_and_the_sicr_history_runs_on(small_book, tmp_path):
+    # The month-on-month ECL walk: its parts sum to the change in total ECL. And probation after a SICR exit
+    # needs last month's triggers: the prior run's `months_since_sicr`, one month on.
+    import json
+
     with pytest.warns(DataCheckWarning):
-        prev = creditsurv.run(cfg, as_of="2024-11", out=tmp_path / "runs").path
-    this = creditsurv.run(cfg, out=tmp_path / "runs").path
+        prev = creditsurv.run(_config(small_book, tmp_path), as_of="2024-11", out=tmp_path / "runs").path
+    assert json.loads((prev / "manifest.json").read_text())["totals"]["sicr_history"].startswith("no SICR history")
+    (tmp_path / "second").mkdir()
+    this = creditsurv.run(_config(small_book, tmp_path / "second", outputs={"prior_run": str(prev)}), out=tmp_path / "runs").path
     outcome = creditsurv.compare(prev, this)
     walk = pd.read_csv(outcome.path / "movement_walk.csv")
     a = pd.read_parquet(prev / "loan_ecl.parquet")["ecl_reported"].sum()
@@ -223,6 +227,24 @@ def test_two_month_refresh_walk_reconciles_exactly(small_book, tmp_path):
     assert (walk.loc[walk["step"] == "closed_or_repaid", "loans"] > 0).all()
     for name in ("stage_migration.csv", "pd_change_by_segment.csv"):
         assert (outcome.path / name).exists()
+    # the run with outputs.prior_run wrote the same walk itself
+    pd.testing.assert_frame_equal(pd.read_csv(this / "movement_walk.csv"), walk)
+
+    totals = json.loads((this / "manifest.json").read_text())["totals"]
+    assert totals["sicr_history"] == f"SICR history from the prior run {prev}"
+    a = pd.read_parquet(prev / "loan_ecl.parquet").set_index("loan_id")
+    b = pd.read_parquet(this / "loan_ecl.parquet").set_index("loan_id")
+    both = b.index.intersection(a.index)
+    assert len(both) > 100
+    fired = b["stage_reason"].str.contains("sicr|watch_list").reindex(both)
+    expected = np.where(fired, 0.0, a.loc[both, "months_since_sicr"] + 1.0)
+    live = ~b.loc[both, "stage"].eq(3).to_numpy()
+    np.testing.assert_array_equal(b.loc[both, "months_since_sicr"].to_numpy()[live], expected[live])
+    # the counts by reason in the record are the loan table's
+    counts = b[b["stage"] > 1].groupby(["stage", "stage_reason"]).size()
+    assert {(int(k[0]), k[1]): int(v) for k, v in counts.items()} == {
+        (int(st), r): n for st, by in totals["stage_reasons"].items() for r, n in by.items()
+    }
 
 
 def test_report_is_self_contained_and_shows_the_runs_numbers(demo_run):

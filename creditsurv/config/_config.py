@@ -465,6 +465,22 @@ class Staging:
     pd_at_origination_column: str | None = field(
         default=None, metadata=_doc("loan-table column of lifetime PD at origination; else projected")
     )
+    probation_months: int = field(
+        default=3,
+        metadata=_doc(
+            "months with no stage 2 trigger before a loan returns from stage 2 to stage 1; 0 returns it at once", min=0
+        ),
+    )
+    watch_list_column: str | None = field(
+        default=None, metadata=_doc("loan-table column, true for a loan on the watch list (stage 2)")
+    )
+    sicr_history_column: str | None = field(
+        default=None,
+        metadata=_doc(
+            "loan-table column: months since the loan last met the SICR test or the watch list, at the previous "
+            "month-end (empty: never); else outputs.prior_run's loan table gives it"
+        ),
+    )
 
 
 @dataclass(frozen=True)
@@ -492,7 +508,7 @@ class Outputs:
         default=True,
         metadata=_doc("write the loan-by-month tables (pd_term_structure, ecl_schedule); they are most of a run's size"),
     )
-    prior_run: FilePath | None = field(default=None, metadata=_doc("previous run folder for the movement"))
+    prior_run: FilePath | None = field(default=None, metadata=_doc("previous run folder: the movement against it, and the staging's SICR history"))
 
 
 @dataclass(frozen=True)

@@ -10,7 +10,10 @@ core, giving two tables:
                    ``event_age``, ``event_month_idx`` (NULL when censored),
                    ``censor_reason`` ('end_of_window', 'left_panel' or NULL),
                    ``in_default_at_as_of``, ``days_past_due_at_as_of``,
-                   ``balance_at_as_of``
+                   ``balance_at_as_of``, ``last_arrears_month_idx`` (the last
+                   month up to the reporting month at or above
+                   ``staging.dpd_backstop`` days past due or meeting the default
+                   definition; NULL when none)
 ``loan_months``    the risk set: each panel row of a loan up to and including its
                    first event, with ``loan_id``, ``month_idx``, ``age``,
                    ``outcome`` (TINYINT: 0 continue, 1 default, 2 prepay),
@@ -96,7 +99,11 @@ per_loan AS (
            arg_min(age, month_idx) FILTER (WHERE is_closed) AS closed_age,
            any_value(days_past_due) FILTER (WHERE month_idx = $as_of) AS days_past_due_at_as_of,
            any_value(balance) FILTER (WHERE month_idx = $as_of) AS balance_at_as_of,
-           count(*) FILTER (WHERE month_idx = $as_of) > 0 AS on_book_at_as_of
+           count(*) FILTER (WHERE month_idx = $as_of) > 0 AS on_book_at_as_of,
+           -- the staging's arrears history: the last month at or past the backstop, or in default
+           max(month_idx) FILTER (
+               WHERE month_idx <= $as_of AND (is_default OR coalesce(days_past_due >= $backstop, FALSE))
+           ) AS last_arrears_idx
     FROM flagged GROUP BY loan_id
 ),
 event_row AS (
@@ -192,7 +199,8 @@ SELECT loan_id,
        -- default is absorbing: a loan on the book at the reporting month stays in default
        on_book_at_as_of AND is_default_event AND event_month_idx <= $as_of AS in_default_at_as_of,
        CAST(days_past_due_at_as_of AS INTEGER) AS days_past_due_at_as_of,
-       CAST(balance_at_as_of AS DOUBLE) AS balance_at_as_of
+       CAST(balance_at_as_of AS DOUBLE) AS balance_at_as_of,
+       CAST(last_arrears_idx AS INTEGER) AS last_arrears_month_idx
 FROM labelled
 ORDER BY loan_id
 """
@@ -204,6 +212,7 @@ _BOOK_SQL = """
            o.balance_at_as_of AS balance,
            o.days_past_due_at_as_of AS days_past_due,
            o.in_default_at_as_of AS in_default,
+           CAST($as_of - o.last_arrears_month_idx AS INTEGER) AS months_since_arrears,
            CAST({arrears_state} AS TINYINT) AS arrears_state,
            {segment} AS segment
     FROM loan_outcomes AS o
@@ -240,6 +249,7 @@ def event_params(cfg, sql: str) -> dict:
         "codes": list(dd.status_codes),
         "paid_off": float(cfg.events.paid_off_balance),
         "as_of": int(cfg.as_of),
+        "backstop": int(cfg.staging.dpd_backstop),
         **{f"arrears_{i}": int(v) for i, v in enumerate(cfg.arrears.starts, start=1)},
     }
     return {k: v for k, v in params.items() if f"${k}" in sql}

@@ -72,6 +72,8 @@ def _column_problems(cfg, engine, run: bool) -> list[str]:
             ("segments.column", cfg.segments.column, in_loans),
             ("segments.band_column", cfg.segments.band_column, in_book),
             ("staging.pd_at_origination_column", cfg.staging.pd_at_origination_column, in_loans),
+            ("staging.watch_list_column", cfg.staging.watch_list_column, in_loans),
+            ("staging.sicr_history_column", cfg.staging.sicr_history_column, in_loans),
         ]
     in_panel = (f"is not in the panel {panel_file}", panel, f"panel: {_listing(panel)}")
     covariates = list(enumerate(cfg.model.covariates))

@@ -617,7 +617,9 @@ def book_at_as_of(panel: DuckdbEngine, segment_column: str | None = None) -> pd.
     -------
     pandas.DataFrame
         Sorted by ``loan_id``: every ``loans`` column, then ``age`` (at the
-        reporting month), ``balance``, ``days_past_due``, ``in_default`` and
+        reporting month), ``balance``, ``days_past_due``, ``in_default``,
+        ``months_since_arrears`` (since the last month at or above the staging
+        backstop or in default; 0 now, empty when never), ``arrears_state`` and
         ``segment`` (the value of ``segment_column``, or ``"all"``).
     """
     if not _has_table(panel, "loan_outcomes"):

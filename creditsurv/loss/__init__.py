@@ -2,7 +2,10 @@
 
 from ._combine import combine_partitions, expected_credit_loss_by_partition
 from ._ecl import (
+    SICR_HISTORY,
+    STAGE_REASONS,
     EclResult,
+    Stages,
     allocate_stages,
     collateral_lgd,
     discount_factors,
@@ -11,6 +14,6 @@ from ._ecl import (
 )
 
 __all__ = [
-    "EclResult", "allocate_stages", "collateral_lgd", "combine_partitions", "discount_factors",
+    "SICR_HISTORY", "STAGE_REASONS", "EclResult", "Stages", "allocate_stages", "collateral_lgd", "combine_partitions", "discount_factors",
     "expected_credit_loss", "expected_credit_loss_by_partition", "segment_summary",
 ]  # fmt: skip

@@ -22,16 +22,19 @@ Stages (:func:`allocate_stages`):
 stage 3 when in default at the reporting month (credit-impaired; IFRS 9
 B5.5.37, the 90 days past due presumption enters through the default
 definition): ECL = LGD x EAD on the as-of balance, PD = 1;
-stage 2 at or above ``staging.dpd_backstop`` days past due (IFRS 9 5.5.11) or on
+stage 2 at or above ``staging.dpd_backstop`` days past due (IFRS 9 5.5.11), on
 a significant increase in credit risk (lifetime PD now against lifetime PD at
-origination); stage 1 otherwise.  Reported ECL: 12-month for stage 1
-(IFRS 9 5.5.5), lifetime for stages 2 and 3 (IFRS 9 5.5.3).
+origination), on the watch list, or on probation after one of these (fewer than
+``staging.probation_months`` months without a trigger); stage 1 otherwise.
+Reported ECL: 12-month for stage 1 (IFRS 9 5.5.5), lifetime for stages 2 and 3
+(IFRS 9 5.5.3).
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 import pandas as pd
@@ -58,6 +61,9 @@ __all__ = [
     "discount_factors",
     "collateral_lgd",
     "allocate_stages",
+    "Stages",
+    "SICR_HISTORY",
+    "STAGE_REASONS",
     "expected_credit_loss",
     "segment_summary",
     "EclResult",
@@ -107,51 +113,112 @@ def collateral_lgd(
     return np.clip(lgd, floor, 1.0)
 
 
+STAGE_REASONS = ("default", "cure_period", "backstop", "sicr_relative", "sicr_absolute", "watch_list", "probation")
+"""The values of ``stage_reason``: stage 3 ``default`` or ``cure_period``; stage 2 the triggers that fired, in this
+order and joined by ``+`` (``backstop+sicr_relative+sicr_absolute``), or ``probation``; empty for stage 1."""
+
+
+class Stages(NamedTuple):
+    """Each loan's stage, its reason and the SICR history the next month's run carries on."""
+
+    stage: np.ndarray
+    """int8: 1, 2 or 3."""
+    reason: np.ndarray
+    """str, one of the combinations of :data:`STAGE_REASONS` (empty for stage 1)."""
+    months_since_sicr: np.ndarray
+    """float: months since the loan last met the SICR test or the watch list (0: it meets one now); NaN when
+    it has not in the known history."""
+
+
+def _optional(values, n: int, fill) -> np.ndarray:
+    return np.full(n, fill) if values is None else np.asarray(values)
+
+
 def allocate_stages(
     pd_lifetime,
     pd_lifetime_origination,
     days_past_due,
     in_default,
     staging: Staging = Staging(),
-) -> tuple[np.ndarray, np.ndarray]:
-    """Stage of each loan and the reason.
+    *,
+    in_cure_period=None,
+    months_since_arrears=None,
+    months_since_sicr_before=None,
+    watch_list=None,
+) -> Stages:
+    """Stage of each loan, the reason, and the months since its last SICR or watch-list trigger.
+
+    - Stage 3 (credit-impaired, IFRS 9 B5.5.37): in default at the reporting month; the reason is
+      ``cure_period`` when the loan meets no default condition now but has not yet completed the cure period,
+      else ``default``.
+    - Stage 2 on a trigger now: ``backstop`` (days past due at or above ``staging.dpd_backstop``,
+      IFRS 9 5.5.11), ``sicr_relative`` and ``sicr_absolute`` (lifetime PD now against lifetime PD at
+      origination, IFRS 9 5.5.3; combined by ``staging.sicr_rule``, and listed when the combination fires),
+      ``watch_list``.
+    - Stage 2 ``probation``: no trigger now, but one in the last ``staging.probation_months - 1`` months:
+      a loan returns to stage 1 only after that many whole months without one. Arrears triggers come from
+      ``months_since_arrears`` (months since the last month at or above the backstop or in default, from
+      the panel; 0 now), SICR and watch-list triggers from ``months_since_sicr_before`` (the same count at
+      the previous month-end, from the prior run or a loan-table column). NaN (or ``None`` for the whole
+      array) means no trigger in the known history.
+    - Stage 1 otherwise (12-month ECL, IFRS 9 5.5.5).
 
     Parameters
     ----------
     pd_lifetime, pd_lifetime_origination : array of float
-        Probability-weighted lifetime PD now, and lifetime PD at origination.
     days_past_due : array of int
     in_default : array of bool
-        Default definition met at the reporting month.
+        Default definition met at the reporting month, or within its cure period.
     staging : config ``Staging``
-        ``dpd_backstop``, ``sicr_relative`` (PD now / PD at origination >=),
-        ``sicr_absolute`` (PD now - PD at origination >=), ``sicr_rule``
-        (``both``: both thresholds; ``either``: one is enough).
+    in_cure_period : array of bool, optional
+        In default only because the cure period has not run out (the reason ``cure_period``).
+    months_since_arrears, months_since_sicr_before : array of float, optional
+    watch_list : array of bool, optional
 
     Returns
     -------
-    stage : array of int8 (1, 2, 3)
-    reason : array of str: ``in_default``, ``dpd_backstop``, ``sicr``,
-        ``dpd_backstop+sicr`` or ``""`` for stage 1.
+    Stages
     """
     now = np.asarray(pd_lifetime, dtype=float)
     orig = np.asarray(pd_lifetime_origination, dtype=float)
     dpd = np.asarray(days_past_due)
     dflt = np.asarray(in_default, dtype=bool)
+    n = len(dflt)
     with np.errstate(invalid="ignore", divide="ignore"):
         ratio = np.where(orig > 0, now / np.where(orig > 0, orig, 1.0), np.where(now > 0, np.inf, 1.0))
     rel = ratio >= staging.sicr_relative
     absolute = (now - orig) >= staging.sicr_absolute
     sicr = (rel & absolute) if staging.sicr_rule == "both" else (rel | absolute)
-    backstop = dpd >= staging.dpd_backstop
-    stage = np.where(dflt, 3, np.where(backstop | sicr, 2, 1)).astype(np.int8)
-    reason = np.full(len(stage), "", dtype=object)
-    reason[sicr] = "sicr"
-    reason[backstop] = "dpd_backstop"
-    reason[backstop & sicr] = "dpd_backstop+sicr"
-    reason[dflt] = "in_default"
-    return stage, reason
+    watch = _optional(watch_list, n, False).astype(bool)
+    triggers = {
+        "backstop": dpd >= staging.dpd_backstop,
+        "sicr_relative": sicr & rel,
+        "sicr_absolute": sicr & absolute,
+        "watch_list": watch,
+    }
+    triggered = np.zeros(n, dtype=bool)
+    reason = np.full(n, "", dtype=object)
+    for name, fired in triggers.items():
+        fired = fired & ~dflt
+        reason[fired] = np.where(triggered[fired], reason[fired] + "+" + name, name)
+        triggered |= fired
+    since_arrears = _optional(months_since_arrears, n, np.nan).astype(float)
+    before = _optional(months_since_sicr_before, n, np.nan).astype(float)
+    since_sicr = np.where((sicr | watch) & ~dflt, 0.0, before + 1.0)
+    p = staging.probation_months
 
+    def recent(months):
+        return (months >= 1) & (months < p)  # NaN compares false: no trigger known
+
+    probation = ~dflt & ~triggered & (recent(since_arrears) | recent(since_sicr))
+    reason[probation] = "probation"
+    cure = _optional(in_cure_period, n, False).astype(bool) & dflt
+    reason[dflt] = np.where(cure[dflt], "cure_period", "default")
+    stage = np.where(dflt, 3, np.where(triggered | probation, 2, 1)).astype(np.int8)
+    return Stages(stage, reason, since_sicr)
+
+
+_MAY_BE_EMPTY = ("loan_id", "pd_lifetime_origination", "months_since_arrears", "months_since_sicr")
 
 SCENARIO_MEASURES = ("pd_12m", "pd_lifetime", "ecl_12m", "ecl_lifetime")
 """The per-scenario measures of a loan, in the order of the wide loan table's columns."""
@@ -195,8 +262,9 @@ class EclResult:
     def raise_for_non_finite(self) -> None:
         """Raise when a reported figure is NaN or infinite: such a total is never written as a result.
 
-        The figures are every number of :meth:`loan_table` but the PD at origination (missing when the
-        book does not give one) and the segment summary's numbers.
+        The figures are every number of :meth:`loan_table` but the PD at origination (a loan in default may
+        leave the configured column empty) and the staging history (empty: no trigger known), and the segment
+        summary's numbers.
 
         Raises
         ------
@@ -206,7 +274,7 @@ class EclResult:
         problems = []
         table = self.loan_table()
         for col in table.columns:
-            if col in ("loan_id", "pd_lifetime_origination") or not pd.api.types.is_numeric_dtype(table[col]):
+            if col in _MAY_BE_EMPTY or not pd.api.types.is_numeric_dtype(table[col]):
                 continue
             bad = ~np.isfinite(table[col].to_numpy(dtype=float))
             if bad.any():
@@ -344,7 +412,7 @@ class _EclAccumulator:
 
 
 def _pd_at_origination(
-    frame, live, live_rows, in_default, staging, source, first_path, *, chunk_size, collateral: Collateral
+    frame, in_default, staging, source, first_path, *, chunk_size, collateral: Collateral
 ) -> np.ndarray:
     """Lifetime PD at origination per loan: the configured column, or projected with the origination month's information."""
     if staging.pd_at_origination_column:
@@ -353,16 +421,41 @@ def _pd_at_origination(
             raise ProjectionError(f"staging.pd_at_origination_column: loans have no column {col!r}")
         pd_orig = frame[col].to_numpy(dtype=float)
         bad = ~((pd_orig >= 0) & (pd_orig <= 1))
+        # a loan in default may leave the column empty: its stage does not read it
         if (bad & ~in_default).any():
             raise ProjectionError(f"loans: {col!r} is not a probability in [0, 1] for {loan_list_text(frame['loan_id'][bad & ~in_default])}")
         return pd_orig
-    pd_orig = np.full(len(frame), np.nan)
-    if len(live):
-        po = origination_pd(
-            live, source, first_path, chunk_size=chunk_size, collateral=collateral,
-        )
-        pd_orig[live_rows] = po.to_numpy()
-    return pd_orig
+    # every loan, those in default too: the origination view does not depend on today's state
+    if not len(frame):
+        return np.zeros(0)
+    return origination_pd(frame, source, first_path, chunk_size=chunk_size, collateral=collateral).to_numpy()
+
+
+def _optional_column(frame, column: str) -> np.ndarray:
+    return frame[column].to_numpy(dtype=float, na_value=np.nan) if column in frame.columns else np.full(len(frame), np.nan)
+
+
+def _staging_history(frame, staging: Staging) -> dict:
+    """The book's columns that :func:`allocate_stages` reads besides PDs and days past due, when present."""
+    out = {
+        "months_since_arrears": _optional_column(frame, "months_since_arrears"),
+        "months_since_sicr_before": _optional_column(frame, SICR_HISTORY),
+    }
+    if "in_cure_period" in frame.columns:
+        out["in_cure_period"] = frame["in_cure_period"].to_numpy(dtype=bool)
+    col = staging.watch_list_column
+    if col is not None:
+        if col not in frame.columns:
+            raise ProjectionError(f"staging.watch_list_column: loans have no column {col!r}")
+        flag = frame[col]
+        if flag.isna().any():
+            raise ProjectionError(f"loans: {col!r} (staging.watch_list_column) is empty for {loan_list_text(frame['loan_id'][flag.isna()])}")
+        out["watch_list"] = flag.to_numpy(dtype=bool)
+    return out
+
+
+SICR_HISTORY = "months_since_sicr_before"
+"""Book column: months since the loan last met the SICR test or the watch list, at the previous month-end."""
 
 
 def _lgd_at_reporting_month(frame, ead0, rate, lookup, lgd_cfg, region_column, hpi_names, as_of_idx) -> np.ndarray:
@@ -542,12 +635,15 @@ def expected_credit_loss(
     measures = _live_measures(len(frame), live_rows, names, proj, acc)
 
     pd_orig = _pd_at_origination(
-        frame, live, live_rows, in_default, staging, source, paths[scenarios[0]],
+        frame, in_default, staging, source, paths[scenarios[0]],
         chunk_size=chunk_size, collateral=collateral,
     )
 
     weighted = len(names) - 1
-    stage, reason = allocate_stages(measures["pd_lifetime"][:, weighted], pd_orig, dpd, in_default, staging)
+    stages = allocate_stages(
+        measures["pd_lifetime"][:, weighted], pd_orig, dpd, in_default, staging, **_staging_history(frame, staging)
+    )
+    stage = stages.stage
 
     ead0, lgd0 = _reporting_month_loss(frame, loss, lookups, collateral.region_column, hpi_names, as_of_idx, w)
     _fill_defaulted_and_weighted(measures, in_default, ead0, lgd0, names, w)
@@ -557,8 +653,10 @@ def expected_credit_loss(
             "loan_id": frame["loan_id"].to_numpy(),
             "segment": frame["segment"].to_numpy(),
             "stage": stage,
-            "stage_reason": reason,
+            "stage_reason": stages.reason,
             "days_past_due": dpd,
+            "months_since_arrears": _optional_column(frame, "months_since_arrears"),
+            "months_since_sicr": stages.months_since_sicr,
             "pd_12m": measures["pd_12m"][:, weighted].copy(),
             "pd_lifetime": measures["pd_lifetime"][:, weighted].copy(),
             "pd_lifetime_origination": pd_orig,

@@ -408,7 +408,28 @@ def _summary(tables, meta) -> str:
         )
     )
     out.append(_table(_by_stage(loans), _STAGE_COLUMNS, caption="Reported ECL by stage"))
+    if "stage_reason" in loans.columns:
+        out.append(_table(_by_reason(loans), _REASON_COLUMNS, caption="Stages 2 and 3 by reason"))
+    if meta.get("sicr_history"):
+        out.append(_p(f"Staging: {meta['sicr_history']}."))
     return "".join(out)
+
+
+_REASON_COLUMNS = [
+    ("stage", "Stage", fmt_text),
+    ("stage_reason", "Reason (triggers joined by +)", fmt_text),
+    ("loans", "Loans", fmt_int),
+    ("ead", "EAD", fmt_money),
+    ("ecl", "Reported ECL", fmt_money),
+]
+
+
+def _by_reason(loans: pd.DataFrame) -> pd.DataFrame:
+    impaired = loans[loans["stage"] > 1]
+    g = impaired.groupby(["stage", "stage_reason"], sort=True)
+    out = g.agg(loans=("ead", "size"), ead=("ead", "sum"), ecl=("ecl_reported", "sum")).reset_index()
+    out["stage"] = out["stage"].map(_stage_label)
+    return out
 
 
 _STAGE_COLUMNS = [

@@ -29,6 +29,7 @@ from ._movement import (
     compare_run_folders,
     movement,
     movement_against_run,
+    sicr_history_of_run,
 )
 from ._reproduce import (
     check_folder_on_disk,
@@ -41,7 +42,7 @@ from ._reproduce import (
 __all__ = [
     "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "RunManifest", "start_manifest", "WALK_STEPS", "check_walk_reconciles",
     "check_folder_on_disk", "locate_inputs", "stage_inputs", "compare_outputs", "compare_run_folders", "describe_inputs", "judge_reproduction",
-    "movement", "movement_against_run", "reproduction_name", "package_versions",
+    "movement", "movement_against_run", "sicr_history_of_run", "reproduction_name", "package_versions",
     "read_manifest", "run_identity", "sha256_file", "write_table", "READABLE_VERSIONS", "SCHEMA_VERSION", "RUN_FILES_READ",
     "check_manifest", "folder_differences", "remove_stale_incomplete",
 ]  # fmt: skip

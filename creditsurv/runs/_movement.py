@@ -49,7 +49,10 @@ from ..config import WEIGHTED, weight_problems
 from ..errors import RunError, problem_list
 from ._folder import MANIFEST, read_manifest
 
-__all__ = ["MovementResult", "check_walk_reconciles", "compare_run_folders", "movement", "movement_against_run"]
+__all__ = [
+    "MovementResult", "check_walk_reconciles", "compare_run_folders", "movement", "movement_against_run",
+    "sicr_history_of_run",
+]  # fmt: skip
 
 LOAN_TABLE = "loan_ecl.parquet"
 STAGES = (1, 2, 3)
@@ -587,3 +590,32 @@ def movement_against_run(prior_run, loans_b: pd.DataFrame, weights_b: Mapping[st
     loans_a = pd.read_parquet(Path(prior_run) / LOAN_TABLE)
     weights_a = prior.get("scenario_weights") or {s["name"]: s["weight"] for s in prior["config_resolved"]["scenarios"]}
     return movement(loans_a, loans_b, weights_a, weights_b)
+
+
+def sicr_history_of_run(prior_run, as_of_idx: int) -> tuple[pd.Series | None, int]:
+    """Months since each loan last met the SICR test or the watch list, at the month-end before ``as_of_idx``.
+
+    Read from the prior run's loan table (``months_since_sicr``, at its reporting month) and moved on by the
+    months between the two runs, in which no trigger is known. A loan table written before the column existed
+    gives 0 for a stage-2 loan whose reason names SICR, and nothing (NaN) otherwise.
+
+    Returns
+    -------
+    (Series indexed by loan_id, or None; int)
+        The history (None when the prior run is not of an earlier month: a rerun of the same month compared
+        for its movement), and the months between the prior run's reporting month and this one's.
+    """
+    from ..months import parse_month
+
+    prior = read_manifest(prior_run)
+    gap = int(as_of_idx) - parse_month(prior["as_of"])
+    if gap < 1:
+        return None, gap
+    table = pd.read_parquet(Path(prior_run) / LOAN_TABLE)
+    if "months_since_sicr" in table.columns:
+        months = table["months_since_sicr"].to_numpy(dtype=float)
+    else:
+        reason = table["stage_reason"].astype(str)
+        months = np.where((table["stage"] == 2) & reason.str.contains("sicr"), 0.0, np.nan)
+    history = pd.Series(months + (gap - 1), index=pd.Index(table["loan_id"], name="loan_id"), name="months_since_sicr")
+    return history, gap
