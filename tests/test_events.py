@@ -70,19 +70,20 @@ BOOK = [
 ]
 
 # loan_id: entry_age, entry_month_idx, last_age, last_month_idx, event, event_age,
-#          event_month_idx, censor_reason, in_default_at_as_of, days_past_due_at_as_of, balance_at_as_of,
+#          event_month_idx, censor_reason, in_default_at_as_of, in_cure_period_at_as_of, days_past_due_at_as_of,
+#          balance_at_as_of,
 #          last_arrears_month_idx (the last month at or above the 30-day backstop or in default)
 EXPECTED_OUTCOMES = {
-    "both": (1, ORIG + 1, 4, ORIG + 4, "default", 4, ORIG + 4, None, False, None, None, ORIG + 4),
-    "chargeoff": (1, ORIG + 1, 7, ORIG + 7, "default", 4, ORIG + 4, None, False, None, None, ORIG + 7),
-    "cure": (1, ORIG + 1, 12, AS_OF, "censored", None, None, "end_of_window", False, 0, 988.0, ORIG + 4),
-    "default90": (1, ORIG + 1, 6, ORIG + 6, "default", 5, ORIG + 5, None, False, None, None, ORIG + 6),
-    "late": (7, ORIG + 1, 18, AS_OF, "censored", None, None, "end_of_window", False, 0, 982.0, None),
-    "left": (1, ORIG + 1, 7, ORIG + 7, "censored", None, None, "left_panel", False, None, None, None),
-    "mature": (1, ORIG + 1, 6, ORIG + 6, "maturity", 6, ORIG + 6, None, False, None, None, None),
-    "prepay": (1, ORIG + 1, 4, ORIG + 4, "prepay", 4, ORIG + 4, None, False, None, None, None),
-    "status": (1, ORIG + 1, 5, ORIG + 5, "default", 3, ORIG + 3, None, False, None, None, ORIG + 5),
-    "workout": (1, ORIG + 1, 12, AS_OF, "default", 4, ORIG + 4, None, True, 330, 988.0, AS_OF),
+    "both": (1, ORIG + 1, 4, ORIG + 4, "default", 4, ORIG + 4, None, False, False, None, None, ORIG + 4),
+    "chargeoff": (1, ORIG + 1, 7, ORIG + 7, "default", 4, ORIG + 4, None, False, False, None, None, ORIG + 7),
+    "cure": (1, ORIG + 1, 12, AS_OF, "censored", None, None, "end_of_window", False, False, 0, 988.0, ORIG + 4),
+    "default90": (1, ORIG + 1, 6, ORIG + 6, "default", 5, ORIG + 5, None, False, False, None, None, ORIG + 6),
+    "late": (7, ORIG + 1, 18, AS_OF, "censored", None, None, "end_of_window", False, False, 0, 982.0, None),
+    "left": (1, ORIG + 1, 7, ORIG + 7, "censored", None, None, "left_panel", False, False, None, None, None),
+    "mature": (1, ORIG + 1, 6, ORIG + 6, "maturity", 6, ORIG + 6, None, False, False, None, None, None),
+    "prepay": (1, ORIG + 1, 4, ORIG + 4, "prepay", 4, ORIG + 4, None, False, False, None, None, None),
+    "status": (1, ORIG + 1, 5, ORIG + 5, "default", 3, ORIG + 3, None, False, False, None, None, ORIG + 5),
+    "workout": (1, ORIG + 1, 12, AS_OF, "default", 4, ORIG + 4, None, True, False, 330, 988.0, AS_OF),
 }
 
 # loan_id: outcome of each risk-set row, from its first row on
@@ -136,7 +137,8 @@ def test_loan_outcomes_types(events_book_panel):
     assert types == {
         "loan_id": "VARCHAR", "entry_age": "INTEGER", "entry_month_idx": "INTEGER", "last_age": "INTEGER",
         "last_month_idx": "INTEGER", "event": "VARCHAR", "event_age": "INTEGER", "event_month_idx": "INTEGER",
-        "censor_reason": "VARCHAR", "in_default_at_as_of": "BOOLEAN", "days_past_due_at_as_of": "INTEGER",
+        "censor_reason": "VARCHAR", "in_default_at_as_of": "BOOLEAN", "in_cure_period_at_as_of": "BOOLEAN",
+        "days_past_due_at_as_of": "INTEGER",
         "balance_at_as_of": "DOUBLE", "last_arrears_month_idx": "INTEGER",
     }
 
@@ -165,7 +167,7 @@ def test_risk_set_matches_hand_labels(events_book_panel):
     types = dict(events_book_panel.con.execute("SELECT column_name, column_type FROM (DESCRIBE loan_months)").fetchall())
     assert types == {
         "loan_id": "VARCHAR", "month_idx": "INTEGER", "age": "INTEGER", "outcome": "TINYINT", "origin_state": "TINYINT",
-        "destination": "TINYINT",
+        "destination": "TINYINT", "previously_defaulted": "TINYINT",
     }
     got = got.astype(object).where(got.notna(), None)
     for loan_id, outcomes in EXPECTED_RISK_SET.items():
@@ -175,6 +177,77 @@ def test_risk_set_matches_hand_labels(events_book_panel):
         assert rows["age"].tolist() == list(range(entry, entry + len(outcomes))), loan_id
         assert (rows["origin_state"].tolist(), rows["destination"].tolist()) == EXPECTED_TRANSITIONS[loan_id], loan_id
     assert len(got) == sum(map(len, EXPECTED_RISK_SET.values()))
+
+
+# Loans that cure, labelled by hand with a cure period of 3 months (dpd threshold 90, backstop 30, ages 1-12).
+CURE_BOOK = [
+    # default at age 4; ages 5-7 meet no default condition, so it is cured at the end of age 7 and at risk from 8
+    _loan("recure", [0, 30, 60, 90, 60, 30, 0, 0, 0, 0, 30, 0]),
+    # default at age 10: at the reporting month (age 12) two clean months, still in its cure period
+    _loan("incure", [0, 0, 0, 0, 0, 0, 0, 30, 60, 90, 30, 0]),
+    # cured at the end of age 7, defaults again at age 11: in default (not cure) at the reporting month
+    _loan("redefault", [0, 30, 60, 90, 0, 0, 0, 0, 30, 60, 90, 120]),
+    # 90 at age 4 and again at age 6 (the clock restarts): in default in ages 4-8, at risk again from age 10
+    _loan("relapse", [0, 0, 0, 90, 60, 90, 60, 30, 0, 0, 0, 0]),
+]
+
+# loan_id: (age, outcome, origin_state, destination, previously_defaulted) of each risk-set row
+EXPECTED_CURE_RISK_SET = {
+    "recure": [(1, 0, 0, 0, 0), (2, 0, 0, 4, 0), (3, 0, 1, 5, 0), (4, 1, 2, 1, 0),
+               (8, 0, 0, 0, 1), (9, 0, 0, 0, 1), (10, 0, 0, 0, 1), (11, 0, 0, 4, 1), (12, 0, 1, 3, 1)],
+    "incure": [(a, 0, 0, 0, 0) for a in range(1, 8)] + [(8, 0, 0, 4, 0), (9, 0, 1, 5, 0), (10, 1, 2, 1, 0)],
+    "redefault": [(1, 0, 0, 0, 0), (2, 0, 0, 4, 0), (3, 0, 1, 5, 0), (4, 1, 2, 1, 0),
+                  (8, 0, 0, 0, 1), (9, 0, 0, 4, 1), (10, 0, 1, 5, 1), (11, 1, 2, 1, 1)],
+    "relapse": [(1, 0, 0, 0, 0), (2, 0, 0, 0, 0), (3, 0, 0, 0, 0), (4, 1, 0, 1, 0),
+                (10, 0, 0, 0, 1), (11, 0, 0, 0, 1), (12, 0, 0, 0, 1)],
+}  # fmt: skip
+
+# loan_id: (event, event_age, in_default_at_as_of, in_cure_period_at_as_of, last_arrears_month_idx)
+EXPECTED_CURE_OUTCOMES = {
+    "recure": ("default", 4, False, False, ORIG + 11),
+    "incure": ("default", 10, True, True, ORIG + 11),
+    "redefault": ("default", 4, True, False, ORIG + 12),
+    "relapse": ("default", 4, False, False, ORIG + 8),
+}
+
+
+def test_a_cured_loan_is_at_risk_again_in_a_new_spell(tmp_path):
+    panel = pd.concat([rows for rows, _ in BOOK + CURE_BOOK], ignore_index=True)
+    loans = pd.DataFrame([fact for _, fact in BOOK + CURE_BOOK])
+    config = _config(tmp_path, panel, loans, default_definition={"days_past_due": 90, "status_codes": ["default"], "cure_months": 3})
+    with open_panel(config) as p:
+        label_events(p)
+        months = p.con.execute("SELECT * FROM loan_months ORDER BY loan_id, month_idx").df()
+        outcomes = p.con.execute("SELECT * FROM loan_outcomes ORDER BY loan_id").df().set_index("loan_id")
+        book = p.book_at_as_of().set_index("loan_id")
+    for loan_id, expected in EXPECTED_CURE_RISK_SET.items():
+        rows = months[months["loan_id"] == loan_id]
+        got = list(rows[["age", "outcome", "origin_state", "destination", "previously_defaulted"]].itertuples(index=False, name=None))
+        assert got == expected, loan_id
+        o = outcomes.loc[loan_id]
+        assert (o["event"], o["event_age"], bool(o["in_default_at_as_of"]), bool(o["in_cure_period_at_as_of"]),
+                o["last_arrears_month_idx"]) == EXPECTED_CURE_OUTCOMES[loan_id], loan_id  # fmt: skip
+    # the loans of the first book never cure (workout, charge-off, status code to the end): the same risk set
+    first = months[months["loan_id"].isin(EXPECTED_RISK_SET)]
+    assert {k: g["outcome"].tolist() for k, g in first.groupby("loan_id")} == EXPECTED_RISK_SET
+    assert (first["previously_defaulted"] == 0).all()
+    # the book: cured loans are live with the flag, the others in default (stage 3), one in its cure period
+    assert book.loc[["recure", "relapse"], "previously_defaulted"].tolist() == [1, 1]
+    assert book.loc[["recure", "relapse"], "in_default"].tolist() == [False, False]
+    assert book.loc[["incure", "redefault", "workout"], "in_default"].tolist() == [True, True, True]
+    assert book.loc[["incure", "redefault", "workout"], "in_cure_period"].tolist() == [True, False, False]
+    assert book.loc["recure", "months_since_arrears"] == 1 and book.loc["recure", "arrears_state"] == 0
+    # with no cure period the same loans stop at their first default, and default is absorbing
+    config = _config(tmp_path, panel, loans, default_definition={"days_past_due": 90, "status_codes": ["default"]})
+    with open_panel(config) as p:
+        label_events(p)
+        months = p.con.execute("SELECT loan_id, age, outcome FROM loan_months ORDER BY loan_id, month_idx").df()
+        book = p.book_at_as_of().set_index("loan_id")
+    for loan_id, expected in EXPECTED_CURE_RISK_SET.items():
+        first_spell = [r[:2] for r in expected if r[4] == 0]
+        assert list(months[months["loan_id"] == loan_id][["age", "outcome"]].itertuples(index=False, name=None)) == first_spell
+    assert book.loc[list(EXPECTED_CURE_RISK_SET), "in_default"].all()
+    assert not book["in_cure_period"].any() and (book["previously_defaulted"] == 0).all()
 
 
 def test_arrears_states_follow_the_configured_starts(tmp_path):

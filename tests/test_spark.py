@@ -27,6 +27,8 @@ if shutil.which("java") is None:
     pytest.skip("no Java runtime on PATH: Spark needs one (.ci/run installs it)", allow_module_level=True)
 
 from conftest import demo_config_data  # noqa: E402
+from test_events import BOOK, CURE_BOOK  # noqa: E402 - the hand-labelled loans of the event tests
+from test_events import _config as events_config  # noqa: E402
 from test_panel import BAD_BOOKS, MACRO_COVARIATE  # noqa: E402 - the crafted bad books of the DuckDB tests
 
 from creditsurv import pipeline  # noqa: E402
@@ -219,6 +221,22 @@ def test_open_checked_raises_the_same_error(spark, panel_clean_book, panel_confi
         pipeline.open_checked(dataclasses.replace(cfg, engine="spark"))
     assert str(on_spark.value) == str(duck.value)
     assert not spark.catalog.tableExists("panel_all")  # a failed open leaves no views behind
+
+
+def test_cures_and_spells_are_labelled_alike(spark, tmp_path):
+    # The hand-labelled loans (tests/test_events.py) with a cure period: both engines run the same SQL.
+    panel = pd.concat([rows for rows, _ in BOOK + CURE_BOOK], ignore_index=True)
+    loans = pd.DataFrame([fact for _, fact in BOOK + CURE_BOOK])
+    dd = {"days_past_due": 90, "status_codes": ["default"], "cure_months": 3}
+    cfg = events_config(tmp_path, panel, loans, default_definition=dd)
+    tables = []
+    for engine in ("duckdb", "spark"):
+        with open_engine(dataclasses.replace(cfg, engine=engine)) as p:
+            p.label_events()
+            tables.append([p.frame(f"SELECT * FROM {name} ORDER BY {key}") for name, key in _EVENT_TABLES] + [p.book_at_as_of()])
+    assert tables[0][1]["previously_defaulted"].sum() > 0
+    for a, b in zip(*tables):
+        pd.testing.assert_frame_equal(a, b)
 
 
 # --------------------------------------------------------------------------- the dialect rendering

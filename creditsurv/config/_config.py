@@ -167,6 +167,14 @@ class DefaultDefinition:
 
     days_past_due: int | None = field(default=90, metadata=_doc("threshold in days past due", min=1))
     status_codes: tuple[str, ...] = field(default=(), metadata=_doc("status codes that mean default"))
+    cure_months: int | None = field(
+        default=None,
+        metadata=_doc(
+            "months in a row meeting no default condition before a defaulted loan is cured: it leaves stage 3 and "
+            "is at risk again, flagged previously_defaulted (common practice 3); empty: default is absorbing",
+            min=1,
+        ),
+    )
 
     def _validate(self) -> list[str]:
         if self.days_past_due is None and not self.status_codes:

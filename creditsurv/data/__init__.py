@@ -26,6 +26,7 @@ from ._events import (
     OUTCOME_CONTINUE,
     OUTCOME_DEFAULT,
     OUTCOME_PREPAY,
+    PREVIOUSLY_DEFAULTED,
     TRANSITION_COUNTS_SQL,
     arrears_state_sql,
     book_sql,
@@ -56,7 +57,7 @@ from ._transitions import (
 __all__ = [
     "ABSORBING_STATES", "CAUSE_CODES", "CHECKS", "CHECK_COLUMNS", "Check", "DESTINATION_MOVE", "EVENTS", "LOAN_COLUMNS",
     "TRANSITION_COUNTS_SQL", "arrears_state_sql", "book_sql", "loan_months_sql", "panel_history_sql",
-    "LOAN_OUTCOMES_SQL", "MACRO_COLUMNS", "OUTCOME_CONTINUE", "OUTCOME_DEFAULT", "OUTCOME_PREPAY",
+    "LOAN_OUTCOMES_SQL", "MACRO_COLUMNS", "OUTCOME_CONTINUE", "OUTCOME_DEFAULT", "OUTCOME_PREPAY", "PREVIOUSLY_DEFAULTED",
     "PANEL_COLUMNS", "PlannedCheck", "Source", "check_frame", "check_severity", "event_params",
     "file_format", "format_checks", "input_sources", "macro_series_used", "passthrough_columns", "plan_checks",
     "preflight_problems", "problem_text", "raise_for_errors", "raise_preflight", "resolve_inputs", "same_month_panel_problem", "state_distribution", "state_names", "transition_matrix", "transition_table",

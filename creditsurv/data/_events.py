@@ -9,25 +9,36 @@ core, giving two tables:
                    rows), ``event`` ('default', 'prepay', 'maturity' or 'censored'),
                    ``event_age``, ``event_month_idx`` (NULL when censored),
                    ``censor_reason`` ('end_of_window', 'left_panel' or NULL),
-                   ``in_default_at_as_of``, ``days_past_due_at_as_of``,
-                   ``balance_at_as_of``, ``last_arrears_month_idx`` (the last
-                   month up to the reporting month at or above
-                   ``staging.dpd_backstop`` days past due or meeting the default
-                   definition; NULL when none)
-``loan_months``    the risk set: each panel row of a loan up to and including its
-                   first event, with ``loan_id``, ``month_idx``, ``age``,
-                   ``outcome`` (TINYINT: 0 continue, 1 default, 2 prepay),
-                   ``origin_state`` and ``destination`` (TINYINT, see below)
+                   ``in_default_at_as_of``, ``in_cure_period_at_as_of``,
+                   ``days_past_due_at_as_of``, ``balance_at_as_of``,
+                   ``last_arrears_month_idx`` (the last month up to the reporting
+                   month at or above ``staging.dpd_backstop`` days past due or
+                   meeting the default definition; NULL when none). The event is
+                   the loan's first: with cures, later spells are in ``loan_months``.
+``loan_months``    the risk set: each panel row of a loan at risk (see Cures), up to
+                   and including its closure, with ``loan_id``, ``month_idx``,
+                   ``age``, ``outcome`` (TINYINT: 0 continue, 1 default, 2 prepay),
+                   ``origin_state`` and ``destination`` (TINYINT, see below) and
+                   ``previously_defaulted`` (TINYINT 1 in a spell after a cured default)
 
-Rules. Default is the first row at or past the default definition (days past due
-at or above the threshold, or a status code in the list); it is absorbing, so
-later rows (workout, charge-off) leave the risk set. Closure is the first row
-with balance at or below ``events.paid_off_balance``: before the contractual
-term it is a prepayment, at or after it a maturity (outcome 0 on that row; the
-loan then leaves the risk set, so maturity censors both hazards). A row that is
-both default and closure is a default. A loan with no event is censored at its
-last row: ``end_of_window`` when that row is the reporting month, ``left_panel``
-when the rows stop earlier.
+Rules. Default is the first row of a spell at or past the default definition (days
+past due at or above the threshold, or a status code in the list). Closure is the
+first row with balance at or below ``events.paid_off_balance``: before the
+contractual term it is a prepayment, at or after it a maturity (outcome 0 on that
+row; the loan then leaves the risk set, so maturity censors both hazards). A row
+that is both default and closure is a default. A loan with no event is censored at
+its last row: ``end_of_window`` when that row is the reporting month,
+``left_panel`` when the rows stop earlier.
+
+Cures. With no ``default_definition.cure_months`` default is absorbing: later rows
+(workout, charge-off) leave the risk set and the loan stays in default. With a cure
+period of C months a loan is in default from a default month d until it has met no
+default condition for C months in a row: in months d ... d + C - 1 when nothing
+defaults again (``in_default_at_as_of``; ``in_cure_period_at_as_of`` when the
+reporting month itself meets no default condition). It is cured at the end of
+month d + C and at risk again from month d + C + 1, a new spell whose months carry
+``previously_defaulted`` = 1; its origin state is its arrears state at the end of
+month d + C, and its next default is an event again.
 
 Arrears states. Before default a loan is in one of the transient states of
 ``arrears.starts``: 0 ``current`` (days past due below the first start), 1 the
@@ -47,7 +58,7 @@ from __future__ import annotations
 
 __all__ = [
     "ABSORBING_STATES", "CAUSE_CODES", "DESTINATION_MOVE", "EVENTS", "LOAN_OUTCOMES_SQL", "OUTCOME_CONTINUE",
-    "OUTCOME_DEFAULT", "OUTCOME_PREPAY", "TRANSITION_COUNTS_SQL", "arrears_state_sql", "book_sql", "event_params", "panel_history_sql",
+    "OUTCOME_DEFAULT", "OUTCOME_PREPAY", "PREVIOUSLY_DEFAULTED", "TRANSITION_COUNTS_SQL", "arrears_state_sql", "book_sql", "event_params", "panel_history_sql",
     "loan_months_sql",
 ]  # fmt: skip
 
@@ -66,6 +77,9 @@ DESTINATION_MOVE = 3
 ABSORBING_STATES = {"default": OUTCOME_DEFAULT, "prepaid": OUTCOME_PREPAY}
 """The absorbing states and their destination codes (the cause codes of ``outcome``)."""
 
+PREVIOUSLY_DEFAULTED = "previously_defaulted"
+"""The risk-set and book column that is 1 in a spell after a cured default: a covariate by this name."""
+
 
 def arrears_state_sql(column: str, n_starts: int) -> str:
     """SQL of the transient state (0 current, 1, 2, ...) of a days-past-due ``column``.
@@ -78,17 +92,20 @@ def arrears_state_sql(column: str, n_starts: int) -> str:
     return " + ".join(f"CAST(coalesce({column} >= $arrears_{i}, FALSE) AS INTEGER)" for i in range(1, n_starts + 1))
 
 # One CTE per step. Parameters: $dpd (threshold or NULL), $codes (status codes),
-# $paid_off (closure balance), $as_of (reporting month index). Everything a loan's
+# $paid_off (closure balance), $as_of (reporting month index), $backstop (the staging's
+# days past due), $cure (cure period in months, or NULL). Everything a loan's
 # outcome needs comes from one aggregate per loan, so the panel is read once per table.
-_FLAGS = """
-flagged AS (
+_FLAGGED = """flagged AS (
     SELECT loan_id, month_idx, age, balance, days_past_due,
            coalesce(days_past_due >= $dpd, FALSE)
                OR coalesce(list_contains(CAST($codes AS VARCHAR[]), status), FALSE) AS is_default,
            coalesce(balance <= $paid_off, FALSE) AS is_closed
     FROM panel
     WHERE loan_id IS NOT NULL
-),
+)"""
+
+_FLAGS = f"""
+{_FLAGGED},
 per_loan AS (
     SELECT loan_id,
            arg_min(age, month_idx) AS entry_age, min(month_idx) AS entry_month_idx,
@@ -103,7 +120,9 @@ per_loan AS (
            -- the staging's arrears history: the last month at or past the backstop, or in default
            max(month_idx) FILTER (
                WHERE month_idx <= $as_of AND (is_default OR coalesce(days_past_due >= $backstop, FALSE))
-           ) AS last_arrears_idx
+           ) AS last_arrears_idx,
+           max(month_idx) FILTER (WHERE is_default AND month_idx <= $as_of) AS last_default_idx,
+           coalesce(bool_or(is_default) FILTER (WHERE month_idx = $as_of), FALSE) AS default_condition_at_as_of
     FROM flagged GROUP BY loan_id
 ),
 event_row AS (
@@ -141,24 +160,39 @@ def _origin_sql(n_starts: int) -> str:
 def loan_months_sql(n_starts: int) -> str:
     """The SQL creating ``loan_months`` with ``n_starts`` arrears states besides current.
 
-    The risk set reads the (small) outcome table back instead of aggregating the panel again;
-    the origin state is the previous row's state, one window over each loan's rows.
+    One pass over each loan's panel rows in month order: the origin state is the previous row's state,
+    the loan is at risk unless the previous month was in default (a default less than ``$cure`` months
+    back; with no cure period, any default), and its rows stop at its closure.
     """
     return f"""
 CREATE OR REPLACE TABLE loan_months AS
-WITH risk_set AS (
-    SELECT p.loan_id, p.month_idx, p.age,
-           CASE WHEN p.month_idx = o.event_month_idx AND o.event = 'default' THEN {OUTCOME_DEFAULT}
-                WHEN p.month_idx = o.event_month_idx AND o.event = 'prepay' THEN {OUTCOME_PREPAY}
-                ELSE {OUTCOME_CONTINUE} END AS outcome,
-           {arrears_state_sql("p.days_past_due", n_starts)} AS arrears_state
-    FROM panel AS p JOIN loan_outcomes AS o USING (loan_id)
-    WHERE o.event_month_idx IS NULL OR p.month_idx <= o.event_month_idx
+WITH {_FLAGGED},
+with_state AS (
+    SELECT f.*, l.term, {arrears_state_sql("f.days_past_due", n_starts)} AS arrears_state
+    FROM flagged AS f
+    LEFT JOIN (SELECT loan_id, any_value(term) AS term FROM loans GROUP BY loan_id) AS l USING (loan_id)
 ),
-with_origin AS (
+walked AS (
     SELECT *,
+           min(CASE WHEN is_closed THEN month_idx END) OVER (
+               PARTITION BY loan_id ORDER BY month_idx ROWS BETWEEN UNBOUNDED PRECEDING AND UNBOUNDED FOLLOWING
+           ) AS closed_idx,
+           max(CASE WHEN is_default THEN month_idx END) OVER (
+               PARTITION BY loan_id ORDER BY month_idx ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+           ) AS prior_default_idx,
            {_origin_sql(n_starts)} AS origin_state
-    FROM risk_set
+    FROM with_state
+),
+risk_set AS (
+    SELECT *,
+           CASE WHEN is_default THEN {OUTCOME_DEFAULT}
+                -- a closure before the contractual term is a prepayment; at or after it, maturity
+                WHEN month_idx = closed_idx AND coalesce(age < term, TRUE) THEN {OUTCOME_PREPAY}
+                ELSE {OUTCOME_CONTINUE} END AS outcome
+    FROM walked
+    WHERE (closed_idx IS NULL OR month_idx <= closed_idx)
+      -- at risk: no default yet, or the last one at least $cure months before the previous month-end
+      AND (prior_default_idx IS NULL OR coalesce(month_idx - 1 - prior_default_idx >= $cure, FALSE))
 )
 SELECT loan_id, CAST(month_idx AS INTEGER) AS month_idx, CAST(age AS INTEGER) AS age,
        CAST(outcome AS TINYINT) AS outcome,
@@ -166,11 +200,11 @@ SELECT loan_id, CAST(month_idx AS INTEGER) AS month_idx, CAST(age AS INTEGER) AS
        CAST(CASE WHEN origin_state IS NULL THEN NULL
                  WHEN outcome <> {OUTCOME_CONTINUE} THEN outcome
                  WHEN arrears_state = origin_state THEN 0
-                 ELSE {DESTINATION_MOVE} + arrears_state END AS TINYINT) AS destination
-FROM with_origin
+                 ELSE {DESTINATION_MOVE} + arrears_state END AS TINYINT) AS destination,
+       CAST(prior_default_idx IS NOT NULL AS TINYINT) AS previously_defaulted
+FROM risk_set
 ORDER BY loan_id, month_idx
 """
-
 
 TRANSITION_COUNTS_SQL = """
 SELECT month_idx, origin_state, destination, count(*) AS loan_months
@@ -196,8 +230,13 @@ SELECT loan_id,
        CASE WHEN event <> 'censored' THEN NULL
             WHEN last_month_idx = $as_of THEN 'end_of_window'
             ELSE 'left_panel' END AS censor_reason,
-       -- default is absorbing: a loan on the book at the reporting month stays in default
-       on_book_at_as_of AND is_default_event AND event_month_idx <= $as_of AS in_default_at_as_of,
+       -- in default from the first default until the cure period runs out: the last month meeting a default
+       -- condition is less than $cure months back (with no cure period default is absorbing)
+       on_book_at_as_of AND is_default_event AND event_month_idx <= $as_of
+           AND coalesce($as_of - last_default_idx < $cure, TRUE) AS in_default_at_as_of,
+       on_book_at_as_of AND is_default_event AND event_month_idx <= $as_of
+           AND coalesce($as_of - last_default_idx < $cure, FALSE) AND NOT default_condition_at_as_of
+           AS in_cure_period_at_as_of,
        CAST(days_past_due_at_as_of AS INTEGER) AS days_past_due_at_as_of,
        CAST(balance_at_as_of AS DOUBLE) AS balance_at_as_of,
        CAST(last_arrears_idx AS INTEGER) AS last_arrears_month_idx
@@ -212,6 +251,10 @@ _BOOK_SQL = """
            o.balance_at_as_of AS balance,
            o.days_past_due_at_as_of AS days_past_due,
            o.in_default_at_as_of AS in_default,
+           o.in_cure_period_at_as_of AS in_cure_period,
+           -- a loan at risk again after a cured default
+           CAST(o.event = 'default' AND o.event_month_idx <= $as_of AND NOT o.in_default_at_as_of AS TINYINT)
+               AS previously_defaulted,
            CAST($as_of - o.last_arrears_month_idx AS INTEGER) AS months_since_arrears,
            CAST({arrears_state} AS TINYINT) AS arrears_state,
            {segment} AS segment
@@ -250,6 +293,7 @@ def event_params(cfg, sql: str) -> dict:
         "paid_off": float(cfg.events.paid_off_balance),
         "as_of": int(cfg.as_of),
         "backstop": int(cfg.staging.dpd_backstop),
+        "cure": None if dd.cure_months is None else int(dd.cure_months),
         **{f"arrears_{i}": int(v) for i, v in enumerate(cfg.arrears.starts, start=1)},
     }
     return {k: v for k, v in params.items() if f"${k}" in sql}

@@ -31,8 +31,8 @@ def same_month_panel_problem(column: str) -> str:
     )
 
 
-_DERIVED = ("current_ltv", "rate_incentive", "age", "log_age")
-"""Covariate columns the feature spec derives (not read from a table)."""
+_DERIVED = ("current_ltv", "rate_incentive", "age", "log_age", "previously_defaulted")
+"""Covariate columns the feature spec derives or the risk set carries (not read from a table)."""
 
 _BOOK_COLUMNS = ("age", "balance", "days_past_due")
 """Panel columns the book at the reporting month carries beside the loan table's."""

@@ -597,7 +597,8 @@ def open_panel(cfg) -> SparkEngine:
 
 
 def _executor_version(_rows):
-    from creditsurv.version import __version__  # on the executor: its own Python must have creditsurv installed
+    # runs on an executor: its own Python must have creditsurv installed
+    from creditsurv.version import __version__
 
     yield __version__
 

@@ -51,6 +51,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..config import WEIGHTED, Collateral, ScenarioWeights
+from ..data import PREVIOUSLY_DEFAULTED
 from ..errors import ConfigError, ModelError, ProjectionError, problem_list
 from ..model import (
     equivalent_psa,
@@ -599,7 +600,7 @@ def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination
         orig_idx=frame["origination_idx"].to_numpy(dtype=np.int64) if "origination_idx" in frame else None,
         value=frame["property_value"].to_numpy(dtype=float) if spec.ltv else None,
         region_code=region_code,
-        static={c: frame[c].to_numpy() for c in spec.static},
+        static={c: _static_values(frame, c, origination) for c in spec.static},
         state=_start_states(frame, origination),
         panel=_panel_history(frame, spec, origination),
     )
@@ -656,6 +657,13 @@ def _panel_path(rule: dict, history: np.ndarray, H: int) -> np.ndarray:
     for k in range(min(lag, H)):  # month k + 1 ahead reads lag - k - 1 months before the start
         out[:, k] = history[:, lag - k - 1]
     return out.reshape(n, H)
+
+
+def _static_values(frame: pd.DataFrame, column: str, origination: bool) -> np.ndarray:
+    """A loan input held over the projection; at origination a loan has no cured default behind it."""
+    if origination and column == PREVIOUSLY_DEFAULTED:
+        return np.zeros(len(frame), dtype=np.int8)
+    return frame[column].to_numpy()
 
 
 def _start_states(frame: pd.DataFrame, origination: bool) -> np.ndarray:

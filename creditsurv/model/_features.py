@@ -334,7 +334,9 @@ class FeatureSpec:
             r = int(reference)
             outcome = f"CASE lm.\"destination\" WHEN {r} THEN 0 WHEN 0 THEN {r} ELSE lm.\"destination\" END" if r else "lm.\"destination\""
             rows = f"{outcome} AS \"outcome\"\n  FROM \"loan_months\" AS lm\n  WHERE lm.\"origin_state\" = {int(origin_state)}"
-        carried = "".join(f"lm.{q(c)}, " for c in carry)
+        # risk-set columns the model reads besides age (previously_defaulted), then those to carry
+        own = [i.key for i in inputs if i.source == "risk_set" and i.key not in RISK_SET_COLUMNS]
+        carried = "".join(f"lm.{q(c)}, " for c in dict.fromkeys([*own, *carry]))
         ctes.append(f"risk_set AS (\n  SELECT {carried}lm.\"loan_id\", lm.\"month_idx\", lm.\"age\", {rows}\n)")
         prev = "risk_set"
         panel_cols = [i for i in inputs if i.source == "panel_lag"]

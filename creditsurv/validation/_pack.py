@@ -14,7 +14,12 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from ..data import arrears_state_sql, event_params, panel_history_sql
+from ..data import (
+    PREVIOUSLY_DEFAULTED,
+    arrears_state_sql,
+    event_params,
+    panel_history_sql,
+)
 from ..errors import DataError
 from ..forecast import panel_history_columns, with_panel_history
 from ..model import HazardResults, MultiStateResults
@@ -204,7 +209,9 @@ def _cohort(cfg, engine, model, month: int, notes: list) -> pd.DataFrame:
     state = arrears_state_sql("a.days_past_due", len(cfg.arrears.starts))
     sql = (
         f"WITH {_ALIVE_AT}\nSELECT {_loan_columns(engine)}, a.age, a.balance, 'all' AS segment,\n"
-        f"       CAST({state} AS TINYINT) AS arrears_state\n"
+        f"       CAST({state} AS TINYINT) AS arrears_state,\n"
+        # alive loans have had no event: none has a cured default behind it
+        f"       CAST(0 AS TINYINT) AS {PREVIOUSLY_DEFAULTED}\n"
         "FROM alive AS a JOIN loans AS l USING (loan_id)\nORDER BY loan_id"
     )
     params = {"month": int(month), "paid_off": float(cfg.events.paid_off_balance), **event_params(cfg, state)}
@@ -540,6 +547,7 @@ def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list
     loans = _sql(
         engine,
         f"SELECT {_loan_columns(engine)}, 0 AS age, l.original_balance AS balance, 'all' AS segment,\n"
+        f"       CAST(0 AS TINYINT) AS {PREVIOUSLY_DEFAULTED},\n"
         "       CAST(CASE WHEN o.event = 'censored' THEN o.last_age ELSE o.event_age END AS INTEGER) AS _time,\n"
         "       CAST(CASE o.event WHEN 'default' THEN 1 WHEN 'prepay' THEN 2 ELSE 0 END AS INTEGER) AS _cause,\n"
         "       o.entry_age AS _entry_age\n"
