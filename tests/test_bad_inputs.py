@@ -618,7 +618,13 @@ def run_own_process(argv: list[str], ws: Workspace) -> tuple[int, str]:
     package_root = str(Path(creditsurv.__file__).resolve().parent.parent)
     env = {**os.environ, **ws.env, "TMPDIR": str(ws.scratch)}
     env["PYTHONPATH"] = os.pathsep.join(p for p in (package_root, env.get("PYTHONPATH")) if p)
-    done = subprocess.run([sys.executable, "-m", "creditsurv", *argv], check=False, env=env, capture_output=True, text=True, timeout=600)
+    # Python's own Ctrl-C handler, as in a terminal: a shell that starts the suite in the background hands its
+    # children an ignored SIGINT, and a Python started with SIGINT ignored keeps ignoring it.
+    main = (
+        "import runpy, signal, sys; signal.signal(signal.SIGINT, signal.default_int_handler); "
+        "sys.argv[0] = 'creditsurv'; runpy.run_module('creditsurv', run_name='__main__', alter_sys=True)"
+    )
+    done = subprocess.run([sys.executable, "-c", main, *argv], check=False, env=env, capture_output=True, text=True, timeout=600)
     return done.returncode, done.stderr
 
 
