@@ -1,5 +1,11 @@
 """The demo book: a simulator of a fictional lender's loan-month history with known true hazards."""
 
+from ._behaviour import (
+    ARREARS_COEFFICIENTS,
+    SCORE_BEFORE_FIRST,
+    ArrearsBehaviour,
+    arrears_behaviour,
+)
 from ._simulate import (
     DEFAULT_MIN_AGE,
     LENDER,
@@ -20,7 +26,7 @@ from ._simulate import (
 )
 
 __all__ = [
-    "DEFAULT_MIN_AGE", "LENDER", "OUTPUT_FILES", "TRUE_COEFFICIENTS", "BookChunk", "LogitHazard", "PSAHazard", "SimulatedBook",
+    "ARREARS_COEFFICIENTS", "ArrearsBehaviour", "SCORE_BEFORE_FIRST", "arrears_behaviour", "DEFAULT_MIN_AGE", "LENDER", "OUTPUT_FILES", "TRUE_COEFFICIENTS", "BookChunk", "LogitHazard", "PSAHazard", "SimulatedBook",
     "book_truth", "make_macro", "psa_hazard", "scheduled_balance", "simulate_book", "simulate_small_book", "true_hazard",
     "write_demo_book",
 ]  # fmt: skip

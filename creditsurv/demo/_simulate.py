@@ -459,6 +459,8 @@ def _simulate_chunk(
     rng = np.random.default_rng([seed, k])
     loan = _draw_loans(rng, n, orig_months, volume, macro)
     risk = _RiskRows.of(loan, cutoff)
+    if hasattr(hazard, "chunk"):  # a model of arrears behaviour walks the loans through its states itself
+        return hazard.chunk(k, first_number, rng, loan, risk, macro)
     h_default, h_prepay = _checked_hazards(hazard, _covariates(loan, risk, macro), risk.total)
     h_default = np.where(risk.age < default_min_age, 0.0, h_default)
     h_prepay = np.where(risk.age == loan["term"][risk.row_loan], 0.0, h_prepay)
@@ -608,7 +610,25 @@ def _chunk_tables(k, first_number, loan: dict, risk: _RiskRows, kind, t_event, w
     )
     balance = np.where(closed, 0.0, np.round(balance, 2))
 
-    numbers = np.arange(first_number, first_number + n)
+    loans, loan_ids = _loan_table(first_number, loan)
+    panel = pa.table(
+        {
+            "loan_id": loan_ids.take(pa.array(out_loan)),
+            "month": _month_dates(loan["orig"][out_loan] + out_age),
+            "age": out_age.astype(np.int32),
+            "balance": balance,
+            "days_past_due": dpd,
+            "status": pa.array(STATUSES).take(pa.array(status.astype(np.int8))),
+        },
+        schema=PANEL_SCHEMA,
+    )
+    return BookChunk(k, loans, panel)
+
+
+def _loan_table(first_number: int, loan: dict) -> tuple[pa.Table, pa.Array]:
+    """The chunk's loan table and its loan ids (``QL0000001`` ...)."""
+    term = loan["term"]
+    numbers = np.arange(first_number, first_number + len(term))
     loan_ids = pa.array(np.char.add("QL", np.char.zfill(numbers.astype(str), 7)), type=pa.string())
     loans = pa.table(
         {
@@ -626,18 +646,7 @@ def _chunk_tables(k, first_number, loan: dict, risk: _RiskRows, kind, t_event, w
         },
         schema=LOANS_SCHEMA,
     )
-    panel = pa.table(
-        {
-            "loan_id": loan_ids.take(pa.array(out_loan)),
-            "month": _month_dates(loan["orig"][out_loan] + out_age),
-            "age": out_age.astype(np.int32),
-            "balance": balance,
-            "days_past_due": dpd,
-            "status": pa.array(STATUSES).take(pa.array(status.astype(np.int8))),
-        },
-        schema=PANEL_SCHEMA,
-    )
-    return BookChunk(k, loans, panel)
+    return loans, loan_ids
 
 
 # --------------------------------------------------------------------------- books
@@ -930,7 +939,7 @@ def write_demo_book(
     try:
         with (
             pq.ParquetWriter(temp["loans.parquet"], LOANS_SCHEMA, compression="zstd") as loan_writer,
-            pq.ParquetWriter(temp["panel.parquet"], PANEL_SCHEMA, compression="zstd") as panel_writer,
+            pq.ParquetWriter(temp["panel.parquet"], getattr(hazard, "panel_schema", PANEL_SCHEMA), compression="zstd") as panel_writer,
         ):
             for chunk in chunks:
                 loan_writer.write_table(chunk.loans, row_group_size=max(chunk.loans.num_rows, 1))
