@@ -16,7 +16,6 @@ from conftest import demo_config_data
 from creditsurv.config import config_from_dict
 from creditsurv.demo import (
     ARREARS_COEFFICIENTS,
-    SCORE_BEFORE_FIRST,
     arrears_behaviour,
     write_demo_book,
 )
@@ -26,7 +25,7 @@ from creditsurv.pipeline import open_checked
 # The true model's terms as the feature spec names them: each is its own covariate, no age baseline.
 COVARIATES = [
     {"name": "log_age", "column": "log_age"},
-    {"name": "refreshed_score", "column": "refreshed_score", "lag": 1, "before_first": SCORE_BEFORE_FIRST},
+    {"name": "refreshed_score", "column": "refreshed_score", "lag": 1, "before_first_column": "credit_score"},
     {"name": "current_ltv", "column": "current_ltv"},
     {"name": "dti", "column": "dti"},
     {"name": "rate_incentive", "column": "rate_incentive"},

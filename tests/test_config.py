@@ -52,7 +52,7 @@ def _problems(change, tmp_path) -> list[str]:
         pytest.param(
             lambda d: d.update(model={"covariates": [{"name": "a", "column": "b"}, {"name": "c", "column": "d", "tranform": "log"}]}),
             "model.covariates[1].tranform: unknown key (valid keys: name, column, macro, lag, kind, transform, "
-            "floor, cap, bins, reference, before_first, projection, revert_to, revert_months); did you mean 'transform'?",
+            "floor, cap, bins, reference, before_first, before_first_column, projection, revert_to, revert_months); did you mean 'transform'?",
             id="unknown-in-list-item",
         ),
         pytest.param(lambda d: d.update(seed="abc"), "seed: expected an integer, got 'abc'", id="wrong-type"),

@@ -302,7 +302,8 @@ def _panel_book(tmp_path):
             "balance": 1000.0, "days_past_due": [r[2] for r in rows],
         }
     )
-    loans = pd.DataFrame({"loan_id": ["a", "b"], "origination_month": "2023-01", "original_balance": 1000.0, "note_rate": 5.0, "term": 360})
+    loans = pd.DataFrame({"loan_id": ["a", "b"], "origination_month": "2023-01", "original_balance": 1000.0, "note_rate": 5.0, "term": 360,
+                          "dpd_at_origination": [5.0, 15.0]})  # fmt: skip
     panel.to_parquet(tmp_path / "panel.parquet", index=False)
     loans.to_parquet(tmp_path / "loans.parquet", index=False)
     cfg = config_from_dict(
@@ -326,6 +327,19 @@ def test_a_panel_covariate_is_the_previous_month_end_value(tmp_path):
     assert raw["panel:days_past_due:1"].tolist() == [0, 0, 30, 0, 0, 0, 30, 60]
     # the default month's own 90 days past due never enters: its covariate is the 60 of the month before
     assert raw.loc[raw["outcome"] == 1, "panel:days_past_due:1"].tolist() == [60]
+
+
+def test_a_loan_column_gives_each_loan_its_first_months_value(tmp_path):
+    # before_first_column: a loan's own value where it has no previous month-end (a refreshed score starts at the
+    # origination score); here each loan's first month reads its dpd_at_origination.
+    with _panel_book(tmp_path) as engine:
+        cov = Covariate(name="dpd", column="days_past_due", lag=1, before_first_column="dpd_at_origination")
+        spec = _spec(cov).learn(engine.con)
+        raw = engine.frame(spec.raw_query(engine.con))
+        assert raw["panel:days_past_due:1"].tolist() == [5, 0, 30, 0, 15, 0, 30, 60]
+        bad = Covariate(name="dpd", column="days_past_due", lag=1, before_first_column="dpd_at_orig")
+        with pytest.raises(FeatureError, match=r"before_first_column: unknown loan-table column 'dpd_at_orig'.*dpd_at_origination"):
+            _spec(bad).learn(engine.con)
 
 
 def test_a_same_month_panel_covariate_is_refused(tmp_path):

@@ -605,6 +605,30 @@ def test_panel_covariates_read_history_then_follow_their_projection_rule():
     np.testing.assert_allclose(raw["panel:score_now:2"][10:13], [650, 780, 760], rtol=1e-15)
 
 
+def test_a_loan_column_fills_missing_history_and_the_origination_view():
+    from creditsurv.forecast import origination_pd, with_panel_history
+
+    source = _PanelSource()
+    rules = [dict(r, before_first=None, before_first_column=c) for r, c in zip(source.panel_rules, ("arrears0", "score0"))]
+    source.panel_rules = rules
+    loans = pd.DataFrame({"loan_id": ["a", "b"], "segment": "x", "age": [10, 20], "term": [20, 30], "note_rate": 0.05,
+                          "balance": 1e5, "arrears0": [0.0, 1.0], "score0": [690.0, 720.0]})  # fmt: skip
+    history = pd.DataFrame({"loan_id": ["a", "a"], "month_idx": [AS_OF - 1, AS_OF], "months_in_arrears": [2.0, 3.0],
+                            "score_now": [610.0, 620.0]})  # fmt: skip
+    project_loans(with_panel_history(loans, history, source, AS_OF), source, {"base": _history()}, as_of_idx=AS_OF)
+    (raw,) = source.calls
+    # loan b has no panel rows at all: its own columns stand in (1 month in arrears; score 720 at both lags)
+    np.testing.assert_allclose(raw["panel:months_in_arrears:1"][10:12], [1.0, 1.0], rtol=0)
+    np.testing.assert_allclose(raw["panel:score_now:2"][10:12], [720.0, 720.0], rtol=0)
+    # the origination view starts every loan at its own column's value
+    source.calls.clear()
+    orig = loans.assign(original_balance=1e5, origination_idx=AS_OF - 10)
+    origination_pd(orig, source, _history())
+    (raw,) = source.calls
+    first = raw["age"] == 1
+    np.testing.assert_allclose(raw["panel:score_now:2"][first], [690.0, 720.0], rtol=0)
+
+
 def test_a_loan_without_recent_panel_values_is_named():
     from creditsurv.forecast import with_panel_history
 

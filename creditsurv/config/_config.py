@@ -302,6 +302,13 @@ class Covariate:
             "and the origination view), e.g. 0 for days past due; unset, such months are an error"
         ),
     )
+    before_first_column: str | None = field(
+        default=None,
+        metadata=_doc(
+            "panel column: a loan-table column giving each loan's value where it has no panel row lag months "
+            "earlier, e.g. the credit score at origination for a refreshed score (instead of before_first)"
+        ),
+    )
     projection: Literal["hold", "revert"] = field(
         default="hold",
         metadata=_doc("panel column: months ahead keep the last value (hold) or move to revert_to (revert)"),
@@ -313,8 +320,14 @@ class Covariate:
         problems = []
         if (self.column is None) == (self.macro is None):
             problems.append(f"covariate {self.name!r}: give exactly one of column or macro")
-        if self.macro is not None and (self.before_first is not None or self.projection != "hold" or self.revert_to is not None):
-            problems.append(f"covariate {self.name!r}: before_first, projection and revert_to apply to panel columns, not macro series")
+        panel_only = (self.before_first, self.before_first_column, self.revert_to)
+        if self.macro is not None and (any(v is not None for v in panel_only) or self.projection != "hold"):
+            problems.append(
+                f"covariate {self.name!r}: before_first, before_first_column, projection and revert_to apply to panel "
+                "columns, not macro series"
+            )
+        if self.before_first is not None and self.before_first_column is not None:
+            problems.append(f"covariate {self.name!r}: give before_first or before_first_column, not both")
         if self.projection == "revert" and self.revert_to is None:
             problems.append(f"covariate {self.name!r}: projection revert needs revert_to: the value to move to")
         if self.projection != "revert" and self.revert_to is not None:

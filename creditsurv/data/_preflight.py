@@ -78,6 +78,7 @@ def _column_problems(cfg, engine, run: bool) -> list[str]:
     in_panel = (f"is not in the panel {panel_file}", panel, f"panel: {_listing(panel)}")
     covariates = list(enumerate(cfg.model.covariates))
     named += [(f"model.covariates[{i}].column", c.column, in_panel if c.lag else in_either) for i, c in covariates]
+    named += [(f"model.covariates[{i}].before_first_column", c.before_first_column, in_loans) for i, c in covariates]
     problems = []
     for key, column, (where, allowed, listing) in named:
         if column is None or column in allowed:

@@ -2,7 +2,6 @@
 
 from ._behaviour import (
     ARREARS_COEFFICIENTS,
-    SCORE_BEFORE_FIRST,
     ArrearsBehaviour,
     arrears_behaviour,
 )
@@ -26,7 +25,7 @@ from ._simulate import (
 )
 
 __all__ = [
-    "ARREARS_COEFFICIENTS", "ArrearsBehaviour", "SCORE_BEFORE_FIRST", "arrears_behaviour", "DEFAULT_MIN_AGE", "LENDER", "OUTPUT_FILES", "TRUE_COEFFICIENTS", "BookChunk", "LogitHazard", "PSAHazard", "SimulatedBook",
+    "ARREARS_COEFFICIENTS", "ArrearsBehaviour", "arrears_behaviour", "DEFAULT_MIN_AGE", "LENDER", "OUTPUT_FILES", "TRUE_COEFFICIENTS", "BookChunk", "LogitHazard", "PSAHazard", "SimulatedBook",
     "book_truth", "make_macro", "psa_hazard", "scheduled_balance", "simulate_book", "simulate_small_book", "true_hazard",
     "write_demo_book",
 ]  # fmt: skip

@@ -11,8 +11,9 @@ its log-odds of the moves the model names.
 A refreshed credit score, written to the panel as ``refreshed_score``, moves
 every month: a random step, a drop on entering each arrears state and default,
 and, while current, a partial return to the origination score. The model reads
-the score at the end of the previous month (``SCORE_BEFORE_FIRST`` in the first
-month on book, the value a fit's ``before_first`` gives it).
+the score at the end of the previous month; in the first month on book that is
+the origination score (``credit_score`` of the loan table, the value a fit's
+``before_first_column: credit_score`` gives it).
 
 Everything that draws the book is in :meth:`ArrearsBehaviour.describe`, written
 to ``true_parameters.json``.
@@ -37,7 +38,7 @@ from ._simulate import (
     scheduled_balance,
 )
 
-__all__ = ["ARREARS_COEFFICIENTS", "ArrearsBehaviour", "BEHAVIOUR_PANEL_SCHEMA", "SCORE_BEFORE_FIRST", "arrears_behaviour"]
+__all__ = ["ARREARS_COEFFICIENTS", "ArrearsBehaviour", "BEHAVIOUR_PANEL_SCHEMA", "arrears_behaviour"]
 
 TRANSIENT = ("current", "30-59", "60-89")
 END_STATES = (*TRANSIENT, "default", "prepaid")
@@ -45,8 +46,6 @@ STATE_DPD = (0, 30, 60)
 """Days past due at the end of a month spent in each transient state; default starts at 90."""
 TERMS = ("intercept", "log_age", "refreshed_score", "current_ltv", "dti", "rate_incentive", "unemployment_rate",
          "previously_defaulted")  # fmt: skip
-SCORE_BEFORE_FIRST = 740.0
-"""The previous month-end's refreshed score a loan's first month reads (no panel row before it)."""
 
 ARREARS_COEFFICIENTS = {
     "current": {
@@ -158,7 +157,7 @@ class ArrearsBehaviour:
             ),
             "covariates": {
                 "log_age": "natural log of loan age t (age 1 = month after origination)",
-                "refreshed_score": f"refreshed_score at the end of month t-1 (panel); {SCORE_BEFORE_FIRST:g} at age 1",
+                "refreshed_score": "refreshed_score at the end of month t-1 (panel); credit_score at age 1",
                 "current_ltv": "as in the competing-risk book: scheduled balance after t-1 payments over the "
                 "property value moved by the region's house-price index to month t",
                 "dti": "dti from loans.parquet",
@@ -204,7 +203,7 @@ class ArrearsBehaviour:
             status = np.zeros(n, dtype=np.int64)  # index into STATUSES
             new = state.copy()
             entered = np.zeros(n, dtype=bool)
-            prev_score = np.full(n, SCORE_BEFORE_FIRST) if age == 1 else score.copy()
+            prev_score = score.copy()  # the end of the previous month; at age 1 the origination score
             for j, origin in enumerate(TRANSIENT):
                 idx = np.flatnonzero(on & (state == j))
                 if idx.size == 0:

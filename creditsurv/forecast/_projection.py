@@ -189,15 +189,27 @@ def with_panel_history(loans: pd.DataFrame, history: pd.DataFrame, source, start
     needed = panel_history_columns(source)
     if not needed:
         return loans
-    first = {r["column"]: r.get("before_first") for r in source.panel_rules}
+    rules = {r["column"]: r for r in source.panel_rules}
     out = loans.copy()
     for column, j in needed:
         rows = history[history["month_idx"] == start_idx - j]
         values = rows.set_index("loan_id")[column].reindex(out["loan_id"]).to_numpy(dtype=float)
-        if first.get(column) is not None:
-            values = np.where(np.isnan(values), float(first[column]), values)
+        values = np.where(np.isnan(values), _before_first(rules.get(column, {}), out), values)
         out[panel_history_name(column, j)] = values
     return out
+
+
+def _before_first(rule: dict, loans: pd.DataFrame) -> np.ndarray:
+    """Per loan, the value of a panel input where the loan has no panel row: ``before_first``, the loan-table
+    column ``before_first_column``, or NaN (then the projection names the loans)."""
+    if rule.get("before_first") is not None:
+        return np.full(len(loans), float(rule["before_first"]))
+    column = rule.get("before_first_column")
+    if column is not None:
+        if column not in loans.columns:
+            raise ProjectionError(f"loans: no column {column!r} (before_first_column of panel column {rule['column']!r})")
+        return loans[column].to_numpy(dtype=float, na_value=np.nan)
+    return np.full(len(loans), np.nan)
 
 
 def loan_list_text(values) -> str:
@@ -609,18 +621,23 @@ def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination
 
 def _panel_history(frame: pd.DataFrame, spec: _Spec, origination: bool) -> dict:
     """Per panel input, its values at 0 ... lag - 1 months before the start: from the loans frame, or at
-    origination the value a new loan starts with (``before_first``)."""
+    origination the value a new loan starts with (``before_first`` or ``before_first_column``)."""
     out = {}
-    n = len(frame)
     for rule in spec.panel:
         lag, column = rule["lag"], rule["column"]
         if origination:
-            if rule.get("before_first") is None:
+            if rule.get("before_first") is None and rule.get("before_first_column") is None:
                 raise ProjectionError(
                     f"covariate on panel column {column!r}: the origination view needs the value a new loan starts "
-                    "with; set before_first"
+                    "with; set before_first or before_first_column"
                 )
-            values = np.full((n, lag), float(rule["before_first"]))
+            values = np.repeat(_before_first(rule, frame)[:, None], lag, axis=1)
+            bad = np.isnan(values[:, 0])
+            if bad.any():
+                raise ProjectionError(
+                    f"loans: {rule.get('before_first_column')!r} (before_first_column of panel column {column!r}) "
+                    f"is empty for {loan_list_text(frame['loan_id'][bad])}"
+                )
         else:
             names = [panel_history_name(column, j) for j in range(lag)]
             lacking = [c for c in names if c not in frame.columns]

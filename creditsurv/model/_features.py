@@ -274,6 +274,9 @@ class FeatureSpec:
                 continue
             col, lag, head = c["column"], int(c.get("lag", 0)), f"covariate {c['name']!r}: "
             if lag:
+                first_col = c.get("before_first_column")
+                if first_col is not None and first_col not in loans:
+                    problems.append(head + f"before_first_column: unknown loan-table column {first_col!r}{did_you_mean(first_col, loans)}")
                 if col in panel:
                     by_key[input_key(c)] = "panel_lag"
                 elif col in loans or col in lm or col in DERIVED_COLUMNS:
@@ -342,17 +345,22 @@ class FeatureSpec:
         panel_cols = [i for i in inputs if i.source == "panel_lag"]
         if panel_cols:
             # a panel column enters at the end of the month `lag` months before: the start of the row's month
-            first = {r["key"]: r["before_first"] for r in self.panel_rules}
+            rules = {r["key"]: r for r in self.panel_rules}
             sel = []
             for i in panel_cols:
                 value = f"p{i.lag}.{q(i.column)}"
-                if first.get(i.key) is not None:
-                    value = f"coalesce({value}, CAST({float(first[i.key])!r} AS DOUBLE))"
+                rule = rules.get(i.key, {})
+                if rule.get("before_first") is not None:
+                    value = f"coalesce({value}, CAST({float(rule['before_first'])!r} AS DOUBLE))"
+                elif rule.get("before_first_column") is not None:
+                    value = f"coalesce({value}, CAST(lf.{q(rule['before_first_column'])} AS DOUBLE))"
                 sel.append(f"{value} AS {q(i.key)}")
             joins = "\n".join(
                 f"  LEFT JOIN \"panel\" AS p{lag} ON p{lag}.\"loan_id\" = r.\"loan_id\" AND p{lag}.\"month_idx\" = r.\"month_idx\" - {int(lag)}"
                 for lag in sorted({i.lag for i in panel_cols})
             )
+            if any(r.get("before_first_column") for r in rules.values()):
+                joins += "\n  LEFT JOIN \"loans\" AS lf ON lf.\"loan_id\" = r.\"loan_id\""
             ctes.append(f"with_panel AS (\n  SELECT r.*, {', '.join(sel)}\n  FROM {prev} AS r\n{joins}\n)")
             prev = "with_panel"
         loan_sel = [f"l.{q(i.column)} AS {q(i.key)}" for i in inputs if i.source == "loans"]
@@ -638,7 +646,8 @@ class FeatureSpec:
         """How each panel input (``panel:<column>:<lag>``) is filled and projected, one dict per input key.
 
         ``key``, ``column``, ``lag``; ``before_first`` (the value where a loan has no panel row ``lag``
-        months earlier, or None); ``projection`` (``hold``: months ahead keep the value at the reporting
+        months earlier, or None) or ``before_first_column`` (the loan-table column giving it loan by
+        loan, or None); ``projection`` (``hold``: months ahead keep the value at the reporting
         month; ``revert``: it moves in a straight line to ``revert_to`` over ``revert_months``, then stays).
         """
         out, seen = [], set()
@@ -648,6 +657,7 @@ class FeatureSpec:
             seen.add(input_key(c))
             out.append({
                 "key": input_key(c), "column": c["column"], "lag": int(c["lag"]), "before_first": c.get("before_first"),
+                "before_first_column": c.get("before_first_column"),
                 "projection": c.get("projection", "hold"), "revert_to": c.get("revert_to"),
                 "revert_months": int(c.get("revert_months", 12)),
             })  # fmt: skip
@@ -956,6 +966,8 @@ def feature_spec(model, collateral=None) -> FeatureSpec:
         }
         if c.column is not None and c.lag:  # a panel column at a lag: how it is filled and projected
             d.update(before_first=c.before_first, projection=c.projection, revert_to=c.revert_to, revert_months=int(c.revert_months))
+            if c.before_first_column is not None:
+                d["before_first_column"] = c.before_first_column
         covs.append(d)
     b = model.baseline
     baseline = {"kind": b.kind, "edges": [int(e) for e in b.edges], "knots": [float(k) for k in b.knots], "max_age": b.max_age}
