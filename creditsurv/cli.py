@@ -32,9 +32,10 @@ from .errors import CreditsurvError, CreditsurvWarning, OutputError
 
 
 def _cmd_make_demo_data(args) -> int:
-    from .demo import write_demo_book
+    from .demo import arrears_behaviour, write_demo_book
 
-    summary = write_demo_book(args.out_dir, args.loans, args.seed)
+    hazard = arrears_behaviour() if args.kind == "arrears" else None
+    summary = write_demo_book(args.out_dir, args.loans, args.seed, hazard=hazard)
     events = ", ".join(f"{n:,} {kind}" for kind, n in summary["events"].items())
     print(f"wrote a synthetic book of {summary['loans']:,} loans ({summary['rows']:,} loan-months) to {args.out_dir}")
     print(f"  outcomes: {events}")
@@ -131,6 +132,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("out_dir", type=Path, metavar="OUT_DIR")
     p.add_argument("--loans", type=int, default=20_000, help="number of loans (default 20000)")
     p.add_argument("--seed", type=int, default=20261202, help="random seed (default 20261202)")
+    p.add_argument(
+        "--kind", choices=("arrears", "competing"), default="arrears",
+        help="arrears: loans move between arrears states, with cures and a refreshed score (the shipped demo); "
+        "competing: default and prepayment from one competing-risk hazard",
+    )  # fmt: skip
     p.set_defaults(func=_cmd_make_demo_data)
 
     p = sub.add_parser("init", help="write a commented starter config and folder layout")

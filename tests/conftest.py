@@ -124,13 +124,31 @@ def simulated_book(tmp_path_factory):
     return folder
 
 
-def demo_config_data(book: Path, reports: Path) -> dict:
+# The competing-risk model of the books most tests draw (the simulator's competing-risk hazard: no arrears
+# behaviour, no refreshed score): the demo config's model before the shipped book moved through arrears states.
+COMPETING_MODEL_COVARIATES = [
+    {"name": "credit_score", "column": "credit_score", "transform": "standardise"},
+    {"name": "current_ltv", "column": "current_ltv", "floor": 0.1, "cap": 2.0},
+    {"name": "dti", "column": "dti"},
+    {"name": "rate_incentive", "column": "rate_incentive"},
+    {"name": "unemployment", "macro": "unemployment_rate", "lag": 0},
+]
+
+
+def demo_config_data(book: Path, reports: Path, *, competing: bool = True) -> dict:
     """``configs/demo.yaml`` as a dict, its inputs and scenarios pointed at ``book``
-    (a folder written by ``write_demo_book``) and its runs at ``reports``."""
+    (a folder written by ``write_demo_book``) and its runs at ``reports``.
+
+    With ``competing`` (for a book of the simulator's competing-risk hazard) the model is the multinomial
+    competing-risk model of that hazard's terms, with no cure period; else the demo config's own."""
     import yaml
 
     root = Path(__file__).resolve().parents[1]
     data = yaml.safe_load((root / "configs" / "demo.yaml").read_text())
+    if competing:
+        data["model"]["kind"] = "multinomial"
+        data["model"]["covariates"] = [dict(c) for c in COMPETING_MODEL_COVARIATES]
+        data["default_definition"].pop("cure_months", None)
     for key in ("panel", "loans", "macro"):
         data["inputs"][key]["path"] = str(Path(book) / Path(data["inputs"][key]["path"]).name)
     for scenario in data["scenarios"]:
@@ -186,6 +204,17 @@ def busy_hazard():
     coefficients = {cause: dict(terms) for cause, terms in TRUE_COEFFICIENTS.items()}
     coefficients["default"]["intercept"] += np.log(3.0)
     return LogitHazard(coefficients)
+
+
+@pytest.fixture(scope="session")
+def competing_demo_book(tmp_path_factory):
+    """A book of the demo's size and seed drawn from the simulator's competing-risk hazard (the shipped demo
+    book moves through arrears states instead): the folder, written once."""
+    from creditsurv.demo import write_demo_book
+
+    folder = tmp_path_factory.mktemp("competing_demo") / "book"
+    write_demo_book(folder, 20_000, 20261202)
+    return folder
 
 
 @pytest.fixture(scope="session")

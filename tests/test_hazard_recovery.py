@@ -29,7 +29,6 @@ from creditsurv.demo import psa_hazard, simulate_small_book, write_demo_book
 from creditsurv.engines import label_events, open_panel
 from creditsurv.model import feature_spec, fit_hazard, fit_model
 
-DEMO = Path(__file__).resolve().parents[1] / "data_demo"
 CAUSES = ("default", "prepay")
 
 # Tail probability of each chi-square check under a correct fit.
@@ -142,14 +141,14 @@ def _wald(results, coefficients: dict) -> float:
 
 
 @pytest.fixture(scope="module")
-def truth():
-    return json.loads((DEMO / "true_parameters.json").read_text())
+def truth(competing_demo_book):
+    return json.loads((competing_demo_book / "true_parameters.json").read_text())
 
 
 @pytest.fixture(scope="module")
-def demo_fit(truth):
-    """The true design fitted on the shipped 20,000-loan demo book."""
-    return _fit_true_design(DEMO, truth["mechanics"]["default_min_age"])
+def demo_fit(truth, competing_demo_book):
+    """The true design fitted on the demo-sized 20,000-loan book of the competing-risk hazard."""
+    return _fit_true_design(competing_demo_book, truth["mechanics"]["default_min_age"])
 
 
 # --------------------------------------------------------------------------- 1. recovery on the demo book
@@ -187,7 +186,7 @@ def test_joint_wald_statistic_is_consistent_with_chi_square(demo_fit, truth):
 
 # --------------------------------------------------------------------------- 2. convergence as the book grows
 
-# Book sizes and seeds. The 20,000-loan point is the shipped demo book (seed 20261202);
+# Book sizes and seeds. The 20,000-loan point is the demo-sized competing-risk book (seed 20261202);
 # the others are written to a temporary folder. Seeds differ, so the books are independent.
 GROWING_BOOKS = {5_000: 41, 60_000: 43}
 

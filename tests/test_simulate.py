@@ -17,6 +17,7 @@ from creditsurv.demo import (
     psa_hazard,
     scheduled_balance,
     simulate_book,
+    arrears_behaviour,
     simulate_small_book,
     write_demo_book,
 )
@@ -31,15 +32,16 @@ def _month_index(dates) -> np.ndarray:
 
 
 @pytest.fixture(scope="module")
-def truth():
-    return json.loads((DEMO / "true_parameters.json").read_text())
+def truth(competing_demo_book):
+    return json.loads((competing_demo_book / "true_parameters.json").read_text())
 
 
 @pytest.fixture(scope="module")
-def demo(truth):
-    """The shipped demo book joined to its loans, with outcomes per loan."""
-    loans = pq.read_table(DEMO / "loans.parquet").to_pandas(date_as_object=False)
-    panel = pq.read_table(DEMO / "panel.parquet").to_pandas(date_as_object=False)
+def demo(truth, competing_demo_book):
+    """The demo-sized book of the competing-risk hazard joined to its loans (the shipped demo book moves through
+    arrears states: tests/test_behaviour.py)."""
+    loans = pq.read_table(competing_demo_book / "loans.parquet").to_pandas(date_as_object=False)
+    panel = pq.read_table(competing_demo_book / "panel.parquet").to_pandas(date_as_object=False)
     panel["month_index"] = _month_index(panel["month"])
     loans["orig_index"] = _month_index(loans["origination_month"])
     panel = panel.merge(loans, on="loan_id", how="left", validate="many_to_one")
@@ -79,11 +81,11 @@ def test_same_seed_gives_same_book_and_other_seed_differs():
     assert a.loans["loan_id"].tolist() == [f"QL{i:07d}" for i in range(1, 601)]
 
 
-def test_regeneration_of_shipped_demo_book(tmp_path, truth):
-    # Regeneration check: the shipped data_demo/ must be exactly what the code writes.
-    book = truth["book"]
+def test_regeneration_of_shipped_demo_book(tmp_path):
+    # Regeneration check: the shipped data_demo/ must be exactly what the code writes (make-demo-data's default).
+    book = json.loads((DEMO / "true_parameters.json").read_text())["book"]
     out = tmp_path / "book"
-    write_demo_book(out, book["n_loans"], book["seed"], chunk_size=book["chunk_size"])
+    write_demo_book(out, book["n_loans"], book["seed"], chunk_size=book["chunk_size"], hazard=arrears_behaviour())
     for name in OUTPUT_FILES:
         if name.endswith(".parquet"):
             assert pq.read_table(out / name).equals(pq.read_table(DEMO / name)), name
