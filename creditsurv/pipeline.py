@@ -396,12 +396,13 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
 
     from .data import state_distribution
     from .forecast import TableWriter, segment_level, segment_pd_tables, segment_speeds
-    from .loss import expected_credit_loss_by_partition
+    from .loss import expected_credit_loss_by_partition, sicr_sensitivity
 
     cfg = ctx.cfg
     book = loans_with_panel_history(engine, engine.book_at_as_of(cfg.segments.column), model, ctx.as_of)
     book, sicr_history = with_sicr_history(cfg, ctx.as_of, book)
-    run.add_table(state_distribution(book, cfg.arrears.labels(cfg.default_definition.days_past_due)), "arrears_states.csv")
+    states = state_distribution(book, cfg.arrears.labels(cfg.default_definition.days_past_due))
+    run.add_table(states, "arrears_states.csv")
     paths = scenario_paths(ctx, engine, model, book, loaded)
     options = {"compression": "zstd"}
     monthly = cfg.outputs.monthly_tables
@@ -422,6 +423,8 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     csv = cfg.outputs.csv_copies
     loan_table = result.loan_table()
     run.add_table(loan_table, "loan_ecl.parquet", csv=csv)
+    sensitivity = sicr_sensitivity(result.loans, book, cfg.staging)
+    run.add_table(sensitivity, "sicr_sensitivity.csv")
     run.add_table(result.segments, "segment_summary.csv")
     tidy, wide = segment_pd_tables(result.projection.term_structure)
     run.add_table(tidy, "segment_pd_table.csv")
@@ -430,6 +433,8 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     run.add_table(result.projection.speed_multiples, "equivalent_speeds.csv")
     report_tables = {
         "loan_ecl": loan_table,
+        "arrears_states": states,
+        "sicr_sensitivity": sensitivity,
         "segment_summary": result.segments,
         "segment_pd_table": segment_level(tidy),
     }

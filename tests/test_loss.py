@@ -229,6 +229,33 @@ def test_each_stage_reason_on_hand_built_loans():
     assert np.isnan(dict(zip(loans, since.tolist()))["performing"])
 
 
+def test_the_sicr_sensitivity_restages_the_loans_at_each_threshold():
+    from creditsurv.loss import sicr_sensitivity
+
+    # PD at origination 1% each; lifetime PD now 1.5%, 2.5%, 3.5%, 5%: ratios 1.5, 2.5, 3.5, 5 (all at least
+    # 1 point up but the first). A fifth loan is on the backstop, a sixth in default.
+    staging = Staging(sicr_relative=2.0, sicr_absolute=0.004)
+    now = np.array([0.015, 0.025, 0.035, 0.05, 0.01, 1.0])
+    loans = pd.DataFrame({
+        "loan_id": list("abcdef"), "pd_lifetime": now, "pd_lifetime_origination": 0.01,
+        "days_past_due": [0, 0, 0, 0, 45, 120], "ecl_12m": [10.0, 20, 30, 40, 50, 600], "ecl_lifetime": [100.0, 200, 300, 400, 500, 600],
+    })  # fmt: skip
+    stages = allocate_stages(now, loans["pd_lifetime_origination"], loans["days_past_due"], loans["days_past_due"] >= 90, staging)
+    loans["stage"] = stages.stage
+    loans["ecl_reported"] = np.where(stages.stage == 1, loans["ecl_12m"], loans["ecl_lifetime"])
+    book = loans[["loan_id"]].copy()
+    table = sicr_sensitivity(loans, book, staging).set_index("multiplier")
+    # thresholds 1, 2, 3, 4: SICR for ratios at or above them (and 0.4 points up), plus the backstop loan
+    assert table["sicr_relative"].tolist() == [1.0, 2.0, 3.0, 4.0]
+    assert table["stage_2_loans"].tolist() == [5, 4, 3, 2]
+    assert table["stage_2_sicr_loans"].tolist() == [4, 3, 2, 1]
+    assert table.loc[1.0, "stage_2_share"] == pytest.approx(4 / 5)
+    # at the configured threshold the run's own reported ECL; each loan leaving stage 2 reports its 12-month ECL
+    assert table.loc[1.0, "ecl_reported"] == pytest.approx(loans["ecl_reported"].sum()) and table.loc[1.0, "ecl_change"] == 0
+    assert table.loc[0.5, "ecl_change"] == pytest.approx(100 - 10)
+    assert table.loc[2.0, "ecl_change"] == pytest.approx(-(200 - 20) - (300 - 30))  # b and c leave
+
+
 @pytest.mark.parametrize("months", [0, 1, 3, 6])
 def test_probation_holds_a_loan_in_stage_2_for_the_configured_months(months):
     # A loan 30 days past due in month 0 that pays from month 1 on: stage 2 while fewer than `months` whole

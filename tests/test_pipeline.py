@@ -278,6 +278,14 @@ def test_report_is_self_contained_and_shows_the_runs_numbers(demo_run):
     assert fmt_money(loans["ead"].sum()) in text
     assert "validated independently under the institution&#x27;s model risk policy" in text
     assert "Accounting judgement and local supervisory rules prevail" in text
+    # the staging's sensitivity: at the configured threshold, the run's own stage 2 and reported ECL
+    sens = pd.read_csv(demo_run / "sicr_sensitivity.csv").set_index("multiplier")
+    assert sens.loc[1.0, "stage_2_loans"] == (loans["stage"] == 2).sum()
+    assert sens.loc[1.0, "ecl_reported"] == pytest.approx(loans["ecl_reported"].sum(), rel=1e-12)
+    assert sens["stage_2_sicr_loans"].is_monotonic_decreasing
+    for caption in ("Stage 2 and ECL against the relative SICR threshold", "Arrears states at the reporting month",
+                    "Stages 2 and 3 by reason"):  # fmt: skip
+        assert caption in text, caption
 
 
 def test_fit_command_writes_a_model_that_loads_and_predicts_the_same(small_book, tmp_path, capsys):

@@ -3,6 +3,7 @@
 from ._combine import combine_partitions, expected_credit_loss_by_partition
 from ._ecl import (
     SICR_HISTORY,
+    SICR_MULTIPLIERS,
     STAGE_REASONS,
     EclResult,
     Stages,
@@ -11,9 +12,10 @@ from ._ecl import (
     discount_factors,
     expected_credit_loss,
     segment_summary,
+    sicr_sensitivity,
 )
 
 __all__ = [
-    "SICR_HISTORY", "STAGE_REASONS", "EclResult", "Stages", "allocate_stages", "collateral_lgd", "combine_partitions", "discount_factors",
-    "expected_credit_loss", "expected_credit_loss_by_partition", "segment_summary",
+    "SICR_HISTORY", "SICR_MULTIPLIERS", "STAGE_REASONS", "EclResult", "Stages", "allocate_stages", "collateral_lgd", "combine_partitions", "discount_factors",
+    "expected_credit_loss", "expected_credit_loss_by_partition", "segment_summary", "sicr_sensitivity",
 ]  # fmt: skip

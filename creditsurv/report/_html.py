@@ -780,6 +780,35 @@ def _ecl(tables, meta) -> str:
                 "note",
             )
         )
+    states = tables.get("arrears_states")
+    if states is not None:
+        cols = [
+            ("state", "Arrears state", fmt_text),
+            ("loans", "Loans", fmt_int),
+            ("loan_share", "Share of loans", fmt_pct),
+            ("balance", "Balance", fmt_money),
+            ("balance_share", "Share of balance", fmt_pct),
+        ]
+        out.append(_table(states, cols, caption="Arrears states at the reporting month", name="arrears_states"))
+    sens = tables.get("sicr_sensitivity")
+    if sens is not None:
+        cols = [
+            ("multiplier", "Relative threshold, x configured", fmt_stat),
+            ("sicr_relative", "Lifetime PD now / at origination at least", fmt_stat),
+            ("stage_2_loans", "Stage 2 loans", fmt_int),
+            ("stage_2_share", "Stage 2 share of loans not in default", fmt_pct),
+            ("stage_2_sicr_loans", "Of them through SICR", fmt_int),
+            ("ecl_reported", "Reported ECL", fmt_money),
+            ("ecl_change", "Change against the configured threshold", fmt_money),
+        ]
+        out.append(_table(sens, cols, caption="Stage 2 and ECL against the relative SICR threshold", name="sicr_sensitivity"))
+        out.append(
+            _p(
+                "Every other staging rule as configured (absolute threshold, backstop, watch list, probation); "
+                "each loan's 12-month and lifetime ECL are the run's, only the horizon it reports moves.",
+                "note",
+            )
+        )
     seg = tables.get("segment_summary")
     if seg is None:
         out.append(_absent("segment_summary"))
