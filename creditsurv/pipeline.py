@@ -572,7 +572,10 @@ def execute_run(
     return Outcome(text, path=final)
 
 
-_REPORTED_VALIDATION = ("discrimination", "calibration", "stability", "coefficient_changes", "incidence_by_vintage", "hazard_by_age")
+_REPORTED_VALIDATION = (
+    "discrimination", "calibration", "stability", "coefficient_changes", "incidence_by_vintage", "hazard_by_age",
+    "backtest_transitions",
+)  # fmt: skip
 
 
 def _validate_run(cfg, engine, model, result, run, manifest, report_tables: dict, progress) -> None:

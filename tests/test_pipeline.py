@@ -339,6 +339,17 @@ def test_fit_command_fits_the_multi_state_model_and_a_run_projects_it(small_book
     pf = pd.read_parquet(run / "pd_term_structure.parquet", columns=["survival", "cumulative_pd", "cumulative_prepay"])
     np.testing.assert_allclose(pf.sum(axis=1), 1.0, rtol=0, atol=1e-12)
     assert len(pd.read_csv(run / "validation" / "hazard_by_age.csv")) > 0
+    # the out-of-time moves one month ahead: each state's rows add up to its months on both sides, and the actual
+    # counts are those of the observed transition table (another query: arrears_transitions.csv)
+    moves = pd.read_csv(run / "validation" / "backtest_transitions.csv")
+    for origin, rows in moves.groupby("origin"):
+        assert rows["expected"].sum() == pytest.approx(rows["n"].iloc[0], rel=1e-9)
+        assert rows["actual"].sum() == rows["n"].iloc[0]
+    counted = pd.read_csv(run / "arrears_transitions.csv")
+    oot = counted[(counted["month"] >= "2023-01") & (counted["month"] <= "2024-06")]
+    by_move = oot.groupby(["origin", "destination"])["loan_months"].sum()
+    got = moves[moves["actual"] > 0].set_index(["origin", "destination"])["actual"]
+    assert got.sort_index().to_dict() == by_move[by_move > 0].sort_index().to_dict()
 
 
 def test_a_run_projects_a_panel_covariate_from_the_reporting_month_value(small_book, tmp_path):

@@ -984,6 +984,27 @@ def _backtest_part(tables, meta) -> str:
     ]
     flag = bt["outside"].eq(True) if "outside" in bt.columns else None
     out.append(_table(bt, cols, name="backtest", flag=flag))
+    moves = tables.get("backtest_transitions")
+    if moves is not None:
+        cols = [
+            ("origin", "From", fmt_text),
+            ("destination", "To", fmt_text),
+            ("n", "Loan-months in the state", fmt_int),
+            ("expected", "Expected", fmt_num),
+            ("actual", "Actual", fmt_int),
+            ("predicted_rate", "Predicted rate", fmt_pct3),
+            ("observed_rate", "Observed rate", fmt_pct3),
+            ("z", "z", fmt_stat),
+        ]
+        out.append(_table(moves, cols, caption="Out-of-time moves between arrears states, one month ahead",
+                          name="backtest_transitions", flag=moves["z"].abs().gt(2)))  # fmt: skip
+        out.append(
+            _p(
+                "Each month's move against the model's probabilities given the state and inputs at its start: "
+                "roll, cure, default and prepayment rates per state. Rows with |z| above 2 are marked.",
+                "note",
+            )
+        )
     return "".join(out)
 
 

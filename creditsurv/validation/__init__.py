@@ -1,6 +1,12 @@
 """Validation: pure statistics on arrays (``_statistics``) apart from the pack that gathers the data and runs them (``_pack``)."""
 
-from ._pack import PACK_COLUMNS, ValidationPack, input_stability, validation_pack
+from ._pack import (
+    PACK_COLUMNS,
+    ValidationPack,
+    input_stability,
+    transition_backtest,
+    validation_pack,
+)
 from ._statistics import (
     aalen_johansen,
     age_band,
@@ -18,5 +24,5 @@ from ._statistics import (
 __all__ = [
     "PACK_COLUMNS", "ValidationPack", "aalen_johansen", "age_band", "backtest", "binomial_interval", "calibration",
     "coefficient_changes", "discrimination", "input_stability", "model_vs_nonparametric", "psi", "psi_flag",
-    "twelve_month_cohort", "validation_pack",
+    "transition_backtest", "twelve_month_cohort", "validation_pack",
 ]  # fmt: skip

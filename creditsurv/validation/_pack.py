@@ -38,7 +38,7 @@ from ._statistics import (
     twelve_month_cohort,
 )
 
-__all__ = ["PACK_COLUMNS", "ValidationPack", "input_stability", "validation_pack"]
+__all__ = ["PACK_COLUMNS", "ValidationPack", "input_stability", "transition_backtest", "validation_pack"]
 
 PACK_AGE_BAND_EDGES = (12, 24, 36, 60)
 """Age bands of ``backtest_by_age_band`` (see :func:`age_band`)."""
@@ -67,6 +67,7 @@ PACK_COLUMNS: dict[str, tuple[str, ...]] = {
         "observed_lo", "observed_hi", "p_value", "hl_term",
     ),
     "stability": ("variable", "psi", "flag", "n_development", "n_current"),
+    "backtest_transitions": ("origin", "destination", "n", "expected", "actual", "predicted_rate", "observed_rate", "z"),
     "coefficient_changes": (
         "cause", "term", "estimate_current", "estimate_prior", "std_error_current", "std_error_prior",
         "change", "change_in_se", "present",
@@ -643,6 +644,46 @@ def _cohort_section(cfg, engine, model, path, month, chunk_size, tables, summary
     return cohort_pd
 
 
+def transition_backtest(engine, model, start: int, end: int) -> pd.DataFrame:
+    """Each move of a multi-state model in months ``start..end``: the model's expected count against the actual.
+
+    For the months starting in each arrears state, with the months' own inputs (one month ahead, the state
+    known): expected = the sum of the model's probabilities of each end state, actual = the months that
+    ended there, z = (actual - expected) / sqrt(sum p (1 - p)). Staying is a row too; a state's rows add
+    up to its months on both sides.
+
+    Returns
+    -------
+    DataFrame
+        ``origin``, ``destination``, ``n`` (months starting in the origin), ``expected``, ``actual``,
+        ``predicted_rate``, ``observed_rate``, ``z``.
+    """
+    from ..data import ABSORBING_STATES, DESTINATION_MOVE
+
+    labels, states = list(model.labels), list(model.states)
+    rows = []
+    for j, origin in enumerate(labels):
+        body = model.spec.raw_query(engine.con, "month_idx BETWEEN ? AND ?", order=False, origin_state=j, carry=("destination",))
+        frame = _sql(engine, f"WITH data AS (\n{body}\n)\nSELECT * FROM data ORDER BY loan_id, month_idx", [int(start), int(end)])
+        n = len(frame)
+        if n == 0:
+            continue
+        probabilities = model.transition_probabilities({c: frame[c].to_numpy() for c in frame.columns}, origin)
+        code = frame["destination"].to_numpy(dtype=np.int64)
+        code_state = {0: origin, **{v: k for k, v in ABSORBING_STATES.items()},
+                      **{DESTINATION_MOVE + k: name for k, name in enumerate(labels)}}  # fmt: skip
+        ended = np.array([states.index(code_state[int(c)]) for c in code], dtype=np.int64)
+        for k, name in enumerate(states):
+            p = probabilities[:, k]
+            expected, actual, var = float(p.sum()), int((ended == k).sum()), float(np.sum(p * (1.0 - p)))
+            rows.append({
+                "origin": origin, "destination": name, "n": n, "expected": expected, "actual": actual,
+                "predicted_rate": expected / n, "observed_rate": actual / n,
+                "z": (actual - expected) / np.sqrt(var) if var > 0 else float("nan"),
+            })  # fmt: skip
+    return pd.DataFrame(rows, columns=list(PACK_COLUMNS["backtest_transitions"]))
+
+
 def _stability_section(cfg, engine, model, cohort_pd, current_pd_12m, tables, summary, notes) -> None:
     """Stability (PSI) of every model input and of the 12-month PD against the development cohort."""
     dev, as_of = cfg.windows.development, int(cfg.as_of)
@@ -776,6 +817,14 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
     _coefficient_section(cfg, model, fitted, tables, notes)
     _incidence_section(cfg, engine, model, path, chunk_size, tables, summary, notes)
     _hazard_by_age_section(cfg, engine, model, tables, notes)
+    oot = cfg.windows.out_of_time
+    if isinstance(model, MultiStateResults) and oot is not None:
+        moves = transition_backtest(engine, model, int(oot.start), int(oot.end))
+        tables["backtest_transitions"] = moves
+        seen = moves[moves["origin"] != moves["destination"]]
+        summary["backtest_transitions"] = {
+            "moves": int(len(seen)), "outside_2_se": seen.loc[seen["z"].abs() > 2, ["origin", "destination"]].values.tolist(),
+        }  # fmt: skip
 
     summary["tables"] = sorted(tables)
     summary["notes"] = notes
