@@ -574,7 +574,7 @@ def execute_run(
 
 _REPORTED_VALIDATION = (
     "discrimination", "calibration", "stability", "coefficient_changes", "incidence_by_vintage", "hazard_by_age",
-    "backtest_transitions",
+    "backtest_transitions", "transitions_development",
 )  # fmt: skip
 
 

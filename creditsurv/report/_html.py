@@ -960,6 +960,28 @@ def _calibration_part(tables, meta) -> str:
     return "".join(out)
 
 
+def _transition_matrices(tables) -> str:
+    """Observed against model one-month transition matrices of the development window, one row per origin state."""
+    moves = tables.get("transitions_development")
+    if moves is None or moves.empty:
+        return ""
+    order = list(dict.fromkeys(moves["origin"])) + [d for d in dict.fromkeys(moves["destination"]) if d not in set(moves["origin"])]
+    out = []
+    for what, column in (("observed", "observed_rate"), ("model", "predicted_rate")):
+        wide = moves.pivot(index="origin", columns="destination", values=column).reindex(index=order[: moves["origin"].nunique()], columns=order)
+        wide = wide.reset_index()
+        cols = [("origin", "From", fmt_text)] + [(c, f"To {c}", fmt_pct3) for c in order]
+        out.append(_table(wide, cols, caption=f"One-month transition matrix, development window: {what}"))
+    out.append(
+        _p(
+            "The model's row is the mean of its probabilities over the development months starting in the state; "
+            "with a free intercept for every move it reproduces the observed shares (a check of the fit).",
+            "note",
+        )
+    )
+    return "".join(out)
+
+
 def _backtest_part(tables, meta) -> str:
     bt = tables.get("backtest")
     if bt is None:
@@ -1023,6 +1045,7 @@ def _validation(tables, meta) -> str:
         _h3("Calibration"),
         _calibration_part(tables, meta),
         _h3("Backtest"),
+        _transition_matrices(tables),
         _backtest_part(tables, meta),
         _h3("Stability"),
         _stability_part(tables, meta),

@@ -68,6 +68,7 @@ PACK_COLUMNS: dict[str, tuple[str, ...]] = {
     ),
     "stability": ("variable", "psi", "flag", "n_development", "n_current"),
     "backtest_transitions": ("origin", "destination", "n", "expected", "actual", "predicted_rate", "observed_rate", "z"),
+    "transitions_development": ("origin", "destination", "n", "expected", "actual", "predicted_rate", "observed_rate", "z"),
     "coefficient_changes": (
         "cause", "term", "estimate_current", "estimate_prior", "std_error_current", "std_error_prior",
         "change", "change_in_se", "present",
@@ -817,7 +818,10 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
     _coefficient_section(cfg, model, fitted, tables, notes)
     _incidence_section(cfg, engine, model, path, chunk_size, tables, summary, notes)
     _hazard_by_age_section(cfg, engine, model, tables, notes)
-    oot = cfg.windows.out_of_time
+    oot, dev = cfg.windows.out_of_time, cfg.windows.development
+    if isinstance(model, MultiStateResults):
+        # on the rows it was fitted to, a logit with a free intercept per move reproduces each move's count
+        tables["transitions_development"] = transition_backtest(engine, model, int(dev.start), int(dev.end))
     if isinstance(model, MultiStateResults) and oot is not None:
         moves = transition_backtest(engine, model, int(oot.start), int(oot.end))
         tables["backtest_transitions"] = moves
