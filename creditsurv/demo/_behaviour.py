@@ -32,9 +32,9 @@ from ._simulate import (
     PANEL_SCHEMA,
     STATUSES,
     BookChunk,
-    _covariates,
-    _loan_table,
-    _month_dates,
+    loan_table,
+    month_dates,
+    risk_covariates,
     scheduled_balance,
 )
 
@@ -186,7 +186,7 @@ class ArrearsBehaviour:
 
     def chunk(self, k: int, first_number: int, rng, loan: dict, risk, macro) -> BookChunk:
         """Walk the chunk's loans month by month through the states; the loan table and the panel."""
-        cov = _covariates(loan, risk, macro)
+        cov = risk_covariates(loan, risk, macro)
         n = len(loan["orig"])
         cutoff_age, term = risk.cutoff_age, loan["term"]
         state = np.zeros(n, dtype=np.int64)  # index into END_STATES; prepaid (4) and charged off (5) are closed
@@ -255,11 +255,11 @@ def _tables(k: int, first_number: int, loan: dict, rows: list) -> BookChunk:
     live, age, dpd, status, balance, score = (np.concatenate(c) for c in zip(*rows))
     order = np.lexsort((age, live))
     live, age, dpd, status, balance, score = (a[order] for a in (live, age, dpd, status, balance, score))
-    loans, loan_ids = _loan_table(first_number, loan)
+    loans, loan_ids = loan_table(first_number, loan)
     panel = pa.table(
         {
             "loan_id": loan_ids.take(pa.array(live)),
-            "month": _month_dates(loan["orig"][live] + age),
+            "month": month_dates(loan["orig"][live] + age),
             "age": age.astype(np.int32),
             "balance": balance.astype(float),
             "days_past_due": dpd.astype(np.int32),

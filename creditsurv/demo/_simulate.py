@@ -56,8 +56,11 @@ __all__ = [
     "SimulatedBook",
     "TRUE_COEFFICIENTS",
     "book_truth",
+    "loan_table",
     "make_macro",
+    "month_dates",
     "psa_hazard",
+    "risk_covariates",
     "scheduled_balance",
     "simulate_book",
     "simulate_small_book",
@@ -416,7 +419,8 @@ class BookChunk(NamedTuple):
     panel: pa.Table
 
 
-def _month_dates(months: np.ndarray) -> pa.Array:
+def month_dates(months: np.ndarray) -> pa.Array:
+    """Month indices as Arrow dates (the first of each month): the panel's and loan table's month columns."""
     days = (np.asarray(months) - 1970 * 12).astype("datetime64[M]").astype("datetime64[D]")
     return pa.array(days.astype(np.int32), type=pa.date32())
 
@@ -461,7 +465,7 @@ def _simulate_chunk(
     risk = _RiskRows.of(loan, cutoff)
     if hasattr(hazard, "chunk"):  # a model of arrears behaviour walks the loans through its states itself
         return hazard.chunk(k, first_number, rng, loan, risk, macro)
-    h_default, h_prepay = _checked_hazards(hazard, _covariates(loan, risk, macro), risk.total)
+    h_default, h_prepay = _checked_hazards(hazard, risk_covariates(loan, risk, macro), risk.total)
     h_default = np.where(risk.age < default_min_age, 0.0, h_default)
     h_prepay = np.where(risk.age == loan["term"][risk.row_loan], 0.0, h_prepay)
     kind, t_event = _first_events(rng, h_default, h_prepay, loan, risk)
@@ -495,7 +499,7 @@ class _RiskRows:
         return cls(cutoff_age, a_max, starts, row_loan, age)
 
 
-def _covariates(loan: dict, risk: _RiskRows, macro: _Macro) -> dict[str, np.ndarray]:
+def risk_covariates(loan: dict, risk, macro) -> dict[str, np.ndarray]:
     """The covariates of every loan-month at risk, as the hazard receives them (see :func:`simulate_book`)."""
     orig, term, row_loan, age = loan["orig"], loan["term"], risk.row_loan, risk.age
     month_pos = orig[row_loan] + age - macro.start
@@ -610,11 +614,11 @@ def _chunk_tables(k, first_number, loan: dict, risk: _RiskRows, kind, t_event, w
     )
     balance = np.where(closed, 0.0, np.round(balance, 2))
 
-    loans, loan_ids = _loan_table(first_number, loan)
+    loans, loan_ids = loan_table(first_number, loan)
     panel = pa.table(
         {
             "loan_id": loan_ids.take(pa.array(out_loan)),
-            "month": _month_dates(loan["orig"][out_loan] + out_age),
+            "month": month_dates(loan["orig"][out_loan] + out_age),
             "age": out_age.astype(np.int32),
             "balance": balance,
             "days_past_due": dpd,
@@ -625,7 +629,7 @@ def _chunk_tables(k, first_number, loan: dict, risk: _RiskRows, kind, t_event, w
     return BookChunk(k, loans, panel)
 
 
-def _loan_table(first_number: int, loan: dict) -> tuple[pa.Table, pa.Array]:
+def loan_table(first_number: int, loan: dict) -> tuple[pa.Table, pa.Array]:
     """The chunk's loan table and its loan ids (``QL0000001`` ...)."""
     term = loan["term"]
     numbers = np.arange(first_number, first_number + len(term))
@@ -633,7 +637,7 @@ def _loan_table(first_number: int, loan: dict) -> tuple[pa.Table, pa.Array]:
     loans = pa.table(
         {
             "loan_id": loan_ids,
-            "origination_month": _month_dates(loan["orig"]),
+            "origination_month": month_dates(loan["orig"]),
             "original_balance": loan["original_balance"],
             "note_rate": loan["note_rate"],
             "term_months": term,
