@@ -365,7 +365,8 @@ def with_sicr_history(cfg, as_of: int, book):
     col = cfg.staging.sicr_history_column
     if col is not None:
         values = pd.to_numeric(book[col], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
-        bad = (book[col].notna().to_numpy() & np.isnan(values)) | (values < 0) | (values != np.floor(values))
+        given = ~np.isnan(values)
+        bad = (book[col].notna().to_numpy() & ~given) | (given & ((values < 0) | (values != np.floor(values))))
         if bad.any():
             raise DataError(
                 f"{cfg.inputs.loans.path}: staging.sicr_history_column: column {col!r} must hold whole months "

@@ -488,3 +488,26 @@ def test_fit_and_check_run_the_preflight_of_the_fit(small_book, tmp_path, monkey
             command(path)
         assert str(info.value).startswith("1 problem with the config against the input data: model.covariates[0].column")
         assert "did you mean 'credit_score'?" in str(info.value)
+
+
+def test_a_bad_sicr_history_column_is_named_with_its_loans():
+    # staging.sicr_history_column holds whole months since the last SICR or watch-list trigger, or nothing
+    from types import SimpleNamespace
+
+    from creditsurv.errors import DataError
+    from creditsurv.loss import SICR_HISTORY
+    from creditsurv.pipeline import with_sicr_history
+
+    cfg = SimpleNamespace(
+        staging=SimpleNamespace(sicr_history_column="sicr_months"),
+        inputs=SimpleNamespace(loans=SimpleNamespace(path="book/loans.parquet")),
+        outputs=SimpleNamespace(prior_run=None),
+    )
+    good = pd.DataFrame({"loan_id": ["a", "b", "c"], "sicr_months": [0.0, None, 4.0]})
+    book, text = with_sicr_history(cfg, 100, good)
+    np.testing.assert_array_equal(book[SICR_HISTORY], [0.0, np.nan, 4.0])
+    assert text == "SICR history from the loan-table column 'sicr_months'"
+    bad = pd.DataFrame({"loan_id": ["a", "b", "c"], "sicr_months": [1.5, -1.0, 2.0]})
+    with pytest.raises(DataError, match=r"^book/loans.parquet: staging.sicr_history_column: column 'sicr_months' must hold "
+                                        r"whole months \(0 or more\) or be empty; not so for 2 loans \(a, b\)"):
+        with_sicr_history(cfg, 100, bad)
