@@ -137,4 +137,7 @@ def test_the_demo_staging_responds_to_arrears_and_deterioration(demo_loans):
     used = {part for r in loans.loc[loans["stage"] > 1, "stage_reason"] for part in r.split("+")}
     assert used <= set(STAGE_REASONS) and "backstop" in used and "default" in used
     assert manifest["model"]["kind"] == "multi_state"
+    # the comparison with the non-parametric estimates projects every vintage from origination, where the
+    # refreshed score (a panel input) starts from its before-first column
+    assert {"incidence_by_vintage", "states_by_vintage"} <= set(manifest["validation"]["tables"])
     assert sum(manifest["totals"]["stage_reasons"]["2"].values()) == len(stage2)

@@ -447,3 +447,71 @@ def test_model_vs_nonparametric_by_vintage():
     # Same curves in a DataFrame by vintage give the same table.
     curves = pd.DataFrame({"2019-01": truth, "2019-02": truth}, index=pd.Index(ages, name="age"))
     pd.testing.assert_frame_equal(v.model_vs_nonparametric(curves, time, event, vintage), out)
+
+
+# --------------------------------------------------------------------------- Aalen-Johansen for arrears states
+
+
+def _loan_months_of(time, event):
+    """Loan-month rows (age, origin 0, end) of lifetimes with one transient state: stay, then the event or censoring."""
+    age = np.concatenate([np.arange(1, t + 1) for t in time])
+    last = np.cumsum(time) - 1
+    end = np.zeros(len(age), dtype=np.int64)
+    end[last] = event
+    return age, np.zeros(len(age), dtype=np.int64), end
+
+
+def test_state_occupation_with_one_transient_state_matches_statsmodels():
+    time, event = _competing_sample(np.random.default_rng(11))
+    age, origin, end = _loan_months_of(time, event)
+    out = v.aalen_johansen_states(age, origin, end, n_transient=1, n_states=3)
+    # Reference: statsmodels SurvfuncRight (Kaplan-Meier, Greenwood SE) and CumIncidenceRight (Aalen-Johansen,
+    # delta-method SE of Marubini & Valsecchi): with one transient state the Greenwood-type variance of the state
+    # occupation is both of them.
+    km = SurvfuncRight(time, (event > 0).astype(int))
+    np.testing.assert_allclose(out.loc[km.surv_times, "p_0"], km.surv_prob, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(out.loc[km.surv_times, "p_0_se"], km.surv_prob_se, rtol=1e-9)
+    ci = CumIncidenceRight(time, event)
+    for k in (1, 2):
+        np.testing.assert_allclose(out.loc[ci.times, f"p_{k}"], ci.cinc[k - 1], rtol=0, atol=1e-12)
+        se = np.asarray(ci.cinc_se[k - 1])
+        ok = np.isfinite(se)
+        np.testing.assert_allclose(out.loc[ci.times, f"p_{k}_se"].to_numpy()[ok], se[ok], rtol=1e-8, atol=1e-14)
+    assert out["n_risk"].iloc[0] == len(time)
+
+
+def test_state_occupation_without_censoring_is_the_share_of_loans_in_each_state():
+    # Every loan followed from its first month to age 20 (or absorption): the product of the empirical transition
+    # matrices must give back the plain share of loans in each state at each age, and its standard error the
+    # binomial sqrt(p (1 - p) / n) (the definition of a proportion's variance).
+    rng = np.random.default_rng(12)
+    P = np.array([[0.90, 0.05, 0.00, 0.01, 0.04], [0.30, 0.50, 0.15, 0.02, 0.03], [0.10, 0.20, 0.50, 0.15, 0.05]])
+    n, A, T = 500, 20, 3
+    state = np.zeros((n, A + 1), dtype=np.int64)
+    rows = []
+    for a in range(1, A + 1):
+        moving = state[:, a - 1] < T
+        u = rng.random(n)
+        nxt = (u[:, None] > np.cumsum(P[np.minimum(state[:, a - 1], T - 1)], axis=1)).sum(axis=1)
+        state[:, a] = np.where(moving, nxt, state[:, a - 1])
+        rows.append(np.column_stack([np.full(moving.sum(), a), state[moving, a - 1], state[moving, a]]))
+    r = np.concatenate(rows)
+    out = v.aalen_johansen_states(r[:, 0], r[:, 1], r[:, 2], n_transient=T, n_states=5)
+    share = np.stack([(state[:, 1:] == k).mean(axis=0) for k in range(5)], axis=1)
+    got = out[[f"p_{k}" for k in range(5)]].to_numpy()
+    np.testing.assert_allclose(got, share, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(out[[f"p_{k}_se" for k in range(5)]].to_numpy(), np.sqrt(share * (1 - share) / n), atol=1e-12)
+    np.testing.assert_allclose(got.sum(axis=1), 1.0, atol=1e-12)
+    # aggregated rows (with counts) give the same estimate as one row per loan-month
+    cells, count = np.unique(r, axis=0, return_counts=True)
+    agg = v.aalen_johansen_states(cells[:, 0], cells[:, 1], cells[:, 2], count, n_transient=T, n_states=5)
+    pd.testing.assert_frame_equal(agg, out)
+
+
+def test_state_occupation_names_bad_input():
+    with pytest.raises(DataError, match="origin must be a transient state code 0..2"):
+        v.aalen_johansen_states([1, 2], [0, 3], [0, 0], n_transient=3, n_states=5)
+    with pytest.raises(DataError, match="end must be a state code 0..4"):
+        v.aalen_johansen_states([1, 2], [0, 1], [0, 5], n_transient=3, n_states=5)
+    with pytest.raises(DataError, match="age must hold whole months from 1"):
+        v.aalen_johansen_states([0, 2], [0, 1], [0, 1], n_transient=3, n_states=5)

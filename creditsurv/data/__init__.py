@@ -48,6 +48,7 @@ from ._inputs import (
 )
 from ._preflight import preflight_problems, raise_preflight, same_month_panel_problem
 from ._transitions import (
+    end_states,
     state_distribution,
     state_names,
     transition_matrix,
@@ -58,7 +59,7 @@ __all__ = [
     "ABSORBING_STATES", "CAUSE_CODES", "CHECKS", "CHECK_COLUMNS", "Check", "DESTINATION_MOVE", "EVENTS", "LOAN_COLUMNS",
     "TRANSITION_COUNTS_SQL", "arrears_state_sql", "book_sql", "loan_months_sql", "panel_history_sql",
     "LOAN_OUTCOMES_SQL", "MACRO_COLUMNS", "OUTCOME_CONTINUE", "OUTCOME_DEFAULT", "OUTCOME_PREPAY", "PREVIOUSLY_DEFAULTED",
-    "PANEL_COLUMNS", "PlannedCheck", "Source", "check_frame", "check_severity", "event_params",
+    "PANEL_COLUMNS", "PlannedCheck", "Source", "check_frame", "check_severity", "end_states", "event_params",
     "file_format", "format_checks", "input_sources", "macro_series_used", "passthrough_columns", "plan_checks",
     "preflight_problems", "problem_text", "raise_for_errors", "raise_preflight", "resolve_inputs", "same_month_panel_problem", "state_distribution", "state_names", "transition_matrix", "transition_table",
 ]  # fmt: skip

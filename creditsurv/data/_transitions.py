@@ -15,7 +15,7 @@ import pandas as pd
 from ..months import format_month
 from ._events import ABSORBING_STATES, DESTINATION_MOVE
 
-__all__ = ["state_distribution", "state_names", "transition_matrix", "transition_table"]
+__all__ = ["end_states", "state_distribution", "state_names", "transition_matrix", "transition_table"]
 
 
 def state_names(labels) -> list[str]:
@@ -23,14 +23,23 @@ def state_names(labels) -> list[str]:
     return [*labels, *ABSORBING_STATES]
 
 
+def end_states(origin, destination, n_transient: int) -> np.ndarray:
+    """The state each month ends in, as its position in :func:`state_names` order.
+
+    ``origin`` is the transient state code at the start of the month and ``destination`` the
+    ``loan_months.destination`` code (0 stay, an absorbing state's code, or ``DESTINATION_MOVE + k``).
+    """
+    origin = np.asarray(origin, dtype=np.int64)
+    destination = np.asarray(destination, dtype=np.int64)
+    end = np.where(destination == 0, origin, destination - DESTINATION_MOVE)
+    for position, code in enumerate(ABSORBING_STATES.values()):
+        end = np.where(destination == code, n_transient + position, end)
+    return end
+
+
 def _destination_names(origin: np.ndarray, destination: np.ndarray, labels) -> np.ndarray:
     """The state each (origin code, destination code) pair ends in, by name."""
-    names = np.array(state_names(labels), dtype=object)
-    n = len(labels)
-    end = np.where(destination == 0, origin, destination - DESTINATION_MOVE)
-    for state, code in ABSORBING_STATES.items():
-        end = np.where(destination == code, n + list(ABSORBING_STATES).index(state), end)
-    return names[end]
+    return np.array(state_names(labels), dtype=object)[end_states(origin, destination, len(labels))]
 
 
 def _named(counts: pd.DataFrame, labels) -> pd.DataFrame:

@@ -319,7 +319,7 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
         raw_common[rule["key"]] = _panel_path(rule, book.panel[rule["key"]][sl], H)[mask]
     lookup_months = np.broadcast_to(book.start_idx[sl][:, None], (n, H)) if hold else cal
     lookup_flat = lookup_months[mask]
-    out = {}
+    out, states = {}, {}
     for scen, lk in lookups.items():
         raw = dict(raw_common)
         for name, series, lag in spec.macro:
@@ -338,7 +338,7 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
             raw["rate_incentive"] = (100.0 * rate[:, None] - lk.get(market_rate, lookup_months))[mask]
         raw = {name: raw[name] for name in spec.names}
         if hasattr(source, "transition_probabilities"):
-            hd_chain, hp_chain = _chain_hazards(source, raw, mask, book.state[sl])
+            hd_chain, hp_chain, states[scen] = _chain_hazards(source, raw, mask, book.state[sl])
             hd_flat, hp_flat = hd_chain[mask], hp_chain[mask]
         else:
             hd_flat, hp_flat = source.hazards(raw)
@@ -363,7 +363,7 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
         hd[mask] = hd_flat
         hp[mask] = hp_flat
         out[scen] = (hd, hp)
-    return out, mask, bal_start, bal_end, cal
+    return out, mask, bal_start, bal_end, cal, states or None
 
 
 @dataclass(frozen=True)
@@ -418,7 +418,10 @@ class ChunkProjection:
 
     Arrays are (n, H): n loans of the chunk (rows ``rows`` of ``ProjectionResult.loans``),
     H the longest remaining term in the chunk; column j is month ahead j + 1.
-    Cells past a loan's maturity have zero hazards and zero balance.
+    Cells past a loan's maturity have zero hazards and zero balance. For a multi-state
+    source, ``arrears_states`` holds per scenario the probability of each transient arrears
+    state at the end of month u ahead, (n, H + 1, T) with u = 0 the start; past a loan's
+    maturity the probabilities stay where they were. ``None`` for a competing-risk source.
     """
 
     rows: slice
@@ -437,6 +440,7 @@ class ChunkProjection:
     cum_default: dict[str, np.ndarray]
     cum_prepay: dict[str, np.ndarray]
     marginal_pd: dict[str, np.ndarray]
+    arrears_states: dict[str, np.ndarray] | None = None
 
 
 @dataclass
@@ -693,12 +697,13 @@ def _start_states(frame: pd.DataFrame, origination: bool) -> np.ndarray:
     return state.to_numpy(dtype=np.int64)
 
 
-def _chain_hazards(source, raw, mask, start) -> tuple[np.ndarray, np.ndarray]:
+def _chain_hazards(source, raw, mask, start) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Default and prepayment hazards (n, H) of a multi-state source, from the Markov chain of each loan.
 
     Row j of every month's transition matrix comes from the source's multinomial logit of origin
     state j on that month's inputs; after a loan's term nothing moves. The hazards are the mass
-    entering default and prepaid over the mass still on book (see :mod:`._chain`).
+    entering default and prepaid over the mass still on book (see :mod:`._chain`); the third
+    array is the chain's transient state probabilities (n, H + 1, T).
     """
     states = list(source.states)
     T, S = len(source.labels), len(states)
@@ -712,10 +717,12 @@ def _chain_hazards(source, raw, mask, start) -> tuple[np.ndarray, np.ndarray]:
         P[j][mask] = rows
         P[j][~mask, j] = 1.0
         finite[mask] &= np.isfinite(rows).all(axis=1) & (rows >= 0).all(axis=1)
-    hazards = markov_chain(np.where(np.isfinite(P), P, 0.0), start).hazards()
+    chain = markov_chain(np.where(np.isfinite(P), P, 0.0), start)
+    del P
+    hazards = chain.hazards()
     hd, hp = hazards[:, :, states.index("default") - T], hazards[:, :, states.index("prepaid") - T]
     # a month whose transition probabilities are not finite probabilities must not pass as a hazard
-    return np.where(finite, hd, np.nan), np.where(finite, hp, np.nan)
+    return np.where(finite, hd, np.nan), np.where(finite, hp, np.nan), chain.transient
 
 
 
@@ -951,12 +958,14 @@ def _project_chunk(book, sl, chunk, scenarios, w, pooled, curve_writer, term_wri
     ``chunk`` is what :func:`_hazards_chunk` returns for the loans ``sl``. The
     weighted scenario's hazards are the ones its curves imply.
     """
-    haz, mask, bal_start, bal_end, cal = chunk
+    haz, mask, bal_start, bal_end, cal, states = chunk
     H = mask.shape[1]
     names = (*scenarios, WEIGHTED)
     curves = {s: Curves.from_hazards(*haz[s]) for s in scenarios}
     curves[WEIGHTED] = Curves.weighted(curves, {s: w[s] for s in scenarios})
     haz[WEIGHTED] = curves[WEIGHTED].hazards()
+    if states is not None:  # state probabilities mix linearly over scenarios
+        states[WEIGHTED] = sum(w[s] * states[s] for s in scenarios)
 
     ages = book.age[sl][:, None] + np.arange(1, H + 1)[None, :]
     pooled.add(sl, curves, haz, mask, bal_start, bal_end, ages)
@@ -977,6 +986,7 @@ def _project_chunk(book, sl, chunk, scenarios, w, pooled, curve_writer, term_wri
                 cum_default={s: curves[s].cum_default for s in names},
                 cum_prepay={s: curves[s].cum_prepay for s in names},
                 marginal_pd={s: curves[s].marginal_default for s in names},
+                arrears_states=states,
             )
         )
 

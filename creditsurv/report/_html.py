@@ -18,7 +18,7 @@ Sections, in order, each an HTML ``<section>`` with the ``id`` given:
 ``events``                  ``event_counts``
 ``model``                   ``coefficients``, ``meta["model"]``
 ``hazard-curves``           ``hazard_by_age``
-``cumulative-incidence``    ``incidence_by_vintage``
+``cumulative-incidence``    ``incidence_by_vintage``, ``states_by_vintage``
 ``pd-term-structure``       ``segment_pd_table``
 ``ecl``                     ``loan_ecl``, ``segment_summary``
 ``speeds``                  ``segment_speeds``, ``equivalent_speeds``
@@ -65,6 +65,7 @@ REQUIRED_COLUMNS: dict[str, tuple[str, ...]] = {
     "coefficients": ("cause", "term", "estimate"),
     "hazard_by_age": ("age", "cause", "observed", "model"),
     "incidence_by_vintage": ("vintage", "age", "cause", "model"),
+    "states_by_vintage": ("vintage", "age", "state", "model"),
     "segment_pd_table": ("segment", "scenario", "year", "cumulative_pd"),
     "segment_summary": ("segment", "stage", "loans", "ecl"),
     "segment_speeds": ("segment", "age", "cpr", "cdr"),
@@ -599,21 +600,41 @@ def _cumulative_incidence(tables, meta) -> str:
     inc = tables.get("incidence_by_vintage")
     if inc is None:
         return _absent("incidence_by_vintage")
-    causes = _ordered(inc["cause"])
-    if not causes:
+    out = _by_vintage_chart(inc, "cause", "Cumulative incidence (% of vintage)", "Cumulative incidence by vintage")
+    states = tables.get("states_by_vintage")
+    if states is not None:
+        transient = states[~states["state"].isin(["default", "prepaid"])]
+        out += "<h3>Arrears states by vintage</h3>" + _by_vintage_chart(
+            transient, "state", "Share of vintage in the state", "Arrears states by vintage"
+        ) + _p(
+            "Each arrears state's share of the vintage at each age from origination, first spells only (a loan "
+            "leaves the comparison when it defaults). Points: the Aalen-Johansen estimate of the Markov "
+            "multi-state model from the observed monthly transitions; lines: the model's chain from origination "
+            "on the realised macro path. Default and prepaid appear as cumulative incidence above. Inputs that "
+            "the projection holds (a refreshed score, months since arrears) do not drift or react to projected "
+            "arrears; a gap that widens with age points at them.",
+            "note",
+        )
+    return out
+
+
+def _by_vintage_chart(table: pd.DataFrame, panel: str, ylabel: str, alt: str) -> str:
+    """One panel per value of ``panel``: model lines and observed points (with their interval) by vintage and age."""
+    panels = _ordered(table[panel])
+    if not panels:
         return _p("The table has no rows.")
-    vintages = sorted(_ordered(inc["vintage"]), key=str)
+    vintages = sorted(_ordered(table["vintage"]), key=str)
     note = ""
     if len(vintages) > _MAX_VINTAGES:
         keep = np.unique(np.linspace(0, len(vintages) - 1, _MAX_VINTAGES).round().astype(int))
         vintages = [vintages[i] for i in keep]
-        note = _p(f"{len(vintages)} of {inc['vintage'].nunique():,d} vintages shown, evenly spaced.", "note")
-    has_obs = "observed" in inc.columns
-    has_band = has_obs and {"observed_lo", "observed_hi"} <= set(inc.columns)
-    fig, axes = _figure(len(causes))
-    for ax, cause in zip(axes, causes):
+        note = _p(f"{len(vintages)} of {table['vintage'].nunique():,d} vintages shown, evenly spaced.", "note")
+    has_obs = "observed" in table.columns
+    has_band = has_obs and {"observed_lo", "observed_hi"} <= set(table.columns)
+    fig, axes = _figure(len(panels))
+    for ax, key in zip(axes, panels):
         for i, v in enumerate(vintages):
-            d = inc[(inc["cause"] == cause) & (inc["vintage"] == v)].sort_values("age", kind="stable")
+            d = table[(table[panel] == key) & (table["vintage"] == v)].sort_values("age", kind="stable")
             if d.empty:
                 continue
             st = _style(i)
@@ -624,18 +645,11 @@ def _cumulative_incidence(tables, meta) -> str:
             if has_obs:
                 ax.plot(d["age"], d["observed"], linestyle="none", marker="o", markersize=2, color=st["color"])
             ax.plot(d["age"], d["model"], label=_label(v), **st)
-        _style_axes(
-            ax,
-            xlabel="Loan age (months)",
-            ylabel="Cumulative incidence (% of vintage)",
-            title=str(cause),
-            pct_y=True,
-            legend=False,
-        )
+        _style_axes(ax, xlabel="Loan age (months)", ylabel=ylabel, title=str(key), pct_y=True, legend=False)
     _figure_legend(fig, axes)
     text = "Lines: model; points: observed (Aalen-Johansen)"
     text += ", shaded: its interval." if has_band else "."
-    return _img(fig, "Cumulative incidence by vintage") + _p(text, "note") + note
+    return _img(fig, alt) + _p(text, "note") + note
 
 
 def _pick_weighting(pdt: pd.DataFrame) -> tuple[pd.DataFrame, str | None]:

@@ -9,6 +9,7 @@ from ._pack import (
 )
 from ._statistics import (
     aalen_johansen,
+    aalen_johansen_states,
     age_band,
     backtest,
     binomial_interval,
@@ -22,7 +23,7 @@ from ._statistics import (
 )
 
 __all__ = [
-    "PACK_COLUMNS", "ValidationPack", "aalen_johansen", "age_band", "backtest", "binomial_interval", "calibration",
+    "PACK_COLUMNS", "ValidationPack", "aalen_johansen", "aalen_johansen_states", "age_band", "backtest", "binomial_interval", "calibration",
     "coefficient_changes", "discrimination", "input_stability", "model_vs_nonparametric", "psi", "psi_flag",
     "transition_backtest", "twelve_month_cohort", "validation_pack",
 ]  # fmt: skip

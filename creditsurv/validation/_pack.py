@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+from scipy import stats
 
 from ..data import (
     PREVIOUSLY_DEFAULTED,
@@ -25,6 +26,7 @@ from ..forecast import panel_history_columns, with_panel_history
 from ..model import HazardResults, MultiStateResults
 from ._statistics import (
     CAUSES,
+    aalen_johansen_states,
     age_band,
     as_1d,
     backtest,
@@ -75,6 +77,10 @@ PACK_COLUMNS: dict[str, tuple[str, ...]] = {
     ),
     "incidence_by_vintage": (
         "vintage", "cause", "age", "model", "observed", "observed_se", "observed_lo", "observed_hi",
+        "difference", "outside", "n_risk",
+    ),
+    "states_by_vintage": (
+        "vintage", "state", "age", "model", "observed", "observed_se", "observed_lo", "observed_hi",
         "difference", "outside", "n_risk",
     ),
     "hazard_by_age": ("age", "cause", "n", "events", "observed", "observed_lo", "observed_hi", "model"),
@@ -541,8 +547,11 @@ def _hazard_by_age(engine, model, start: int, end: int, batch_size: int) -> pd.D
 # --------------------------------------------------------------------------- cumulative incidence by vintage
 
 
-def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list) -> pd.DataFrame | None:
-    """Model cumulative incidence from origination, averaged by vintage, against Aalen-Johansen."""
+def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list):
+    """Model against Aalen-Johansen by vintage: cumulative incidence, and for a multi-state model every state.
+
+    Returns ``(incidence_by_vintage, states_by_vintage)``; either is ``None`` when it cannot be built.
+    """
     from ..errors import ProjectionError
     from ..forecast import project_loans
 
@@ -554,7 +563,7 @@ def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list
         "       CAST(CASE o.event WHEN 'default' THEN 1 WHEN 'prepay' THEN 2 ELSE 0 END AS INTEGER) AS _cause,\n"
         "       o.entry_age AS _entry_age\n"
         "FROM loan_outcomes AS o JOIN loans AS l USING (loan_id)\n"
-        "WHERE l.origination_idx IS NOT NULL AND l.term >= 1\n"
+        f"WHERE {_FROM_ORIGINATION}\n"
         "ORDER BY l.origination_idx, loan_id",
     )
     late = (loans["_entry_age"] > 1).to_numpy() | (loans["_time"] < 1).to_numpy()
@@ -565,7 +574,9 @@ def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list
         )
         loans = loans[~late].reset_index(drop=True)
     if loans.empty:
-        return None
+        return None, None
+    multi = isinstance(model, MultiStateResults)
+    no_history = pd.DataFrame(columns=["loan_id", "month_idx", *{c for c, _ in panel_history_columns(model)}])
     loans["_vintage"] = loans["origination_idx"].to_numpy(dtype=np.int64) // 12
     curves, keep = {}, np.zeros(len(loans), dtype=bool)
     for vintage, rows in loans.groupby("_vintage", sort=True).indices.items():
@@ -573,18 +584,25 @@ def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list
         T = int(group["_time"].max())
         source = _UpToAge(model, T)
         sums = {"d": np.zeros(T), "p": np.zeros(T)}
+        if multi:
+            sums["s"] = np.zeros((T, len(model.labels)))
 
         def collect(chunk):
-            for key, F in (("d", chunk.cum_default[REALISED]), ("p", chunk.cum_prepay[REALISED])):
+            parts = [("d", chunk.cum_default[REALISED]), ("p", chunk.cum_prepay[REALISED])]
+            if multi:  # the transient states at the end of each month ahead (month 0 is the start)
+                parts.append(("s", chunk.arrears_states[REALISED][:, 1:]))
+            for key, F in parts:
                 H = F.shape[1]
                 if H >= T:
                     sums[key] += F[:, :T].sum(axis=0)
                 else:  # every loan of the chunk has matured by T: its curve stays flat
                     sums[key][:H] += F.sum(axis=0)
-                    sums[key][H:] += F[:, -1].sum()
+                    sums[key][H:] += F[:, -1].sum(axis=0)
 
         try:
             for m, sub in group.groupby("origination_idx", sort=True):
+                # before its first month a loan has no panel row: a panel input takes its before-first value
+                sub = with_panel_history(sub, no_history, model, int(m))
                 project_loans(
                     sub, source, {REALISED: path}, as_of_idx=int(m), weights={REALISED: 1.0},
                     chunk_size=chunk_size, on_chunk=collect, **_projection_options(cfg),
@@ -596,7 +614,7 @@ def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list
         curves[int(vintage)] = {k: v / len(group) for k, v in sums.items()}
         keep[rows] = True
     if not curves:
-        return None
+        return None, None
     obs = loans[keep]
     parts = []
     for k, cause in CAUSES.items():
@@ -608,7 +626,59 @@ def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list
         t.insert(1, "cause", cause)
         parts.append(t)
     out = pd.concat(parts, ignore_index=True).sort_values(["vintage", "cause", "age"], kind="stable")
-    return out.reset_index(drop=True)[list(PACK_COLUMNS["incidence_by_vintage"])]
+    incidence = out.reset_index(drop=True)[list(PACK_COLUMNS["incidence_by_vintage"])]
+    return incidence, (_states_by_vintage(engine, model, curves) if multi else None)
+
+
+# Loans the vintage comparisons can follow from their first month on book.
+_FROM_ORIGINATION = "l.origination_idx IS NOT NULL AND l.term >= 1"
+
+
+def _states_by_vintage(engine, model, curves: dict) -> pd.DataFrame:
+    """Each state's model occupation probability by age against the Aalen-Johansen estimate, per vintage.
+
+    The observed side is every first-spell loan-month (before any cured default, as the projection
+    from origination) of the loans seen from their first month, in the vintages of ``curves``.
+    """
+    from ..data import end_states
+
+    counts = _sql(
+        engine,
+        "SELECT l.origination_idx, m.age, m.origin_state, m.destination, count(*) AS loan_months\n"
+        "FROM loan_months AS m JOIN loans AS l USING (loan_id) JOIN loan_outcomes AS o USING (loan_id)\n"
+        f"WHERE {_FROM_ORIGINATION} AND o.entry_age <= 1 AND m.origin_state IS NOT NULL\n"
+        f"  AND m.{PREVIOUSLY_DEFAULTED} = 0 AND m.age >= 1\n"
+        "GROUP BY l.origination_idx, m.age, m.origin_state, m.destination",
+    )
+    labels, states = list(model.labels), list(model.states)
+    n_transient = len(labels)
+    vintage = counts["origination_idx"].to_numpy(dtype=np.int64) // 12
+    origin = counts["origin_state"].to_numpy(dtype=np.int64)
+    end = end_states(origin, counts["destination"].to_numpy(dtype=np.int64), n_transient)
+    z = stats.norm.isf(0.025)
+    parts = []
+    for v, c in curves.items():
+        rows = vintage == v
+        if not rows.any():
+            continue
+        aj = aalen_johansen_states(
+            counts["age"].to_numpy()[rows], origin[rows], end[rows], counts["loan_months"].to_numpy()[rows],
+            n_transient=n_transient, n_states=len(states),
+        )
+        model_curve = np.column_stack([c["s"], c["d"], c["p"]])  # (ages, states) in state order
+        ages = np.arange(1, min(len(aj), len(model_curve)) + 1)
+        for k, state in enumerate(states):
+            obs, se = aj[f"p_{k}"].to_numpy()[ages - 1], aj[f"p_{k}_se"].to_numpy()[ages - 1]
+            lo, hi = np.clip(obs - z * se, 0, 1), np.clip(obs + z * se, 0, 1)
+            mod = model_curve[ages - 1, k]
+            parts.append(pd.DataFrame({
+                "vintage": v, "state": state, "age": ages, "model": mod, "observed": obs, "observed_se": se,
+                "observed_lo": lo, "observed_hi": hi, "difference": mod - obs, "outside": (mod < lo) | (mod > hi),
+                "n_risk": aj["n_risk"].to_numpy()[ages - 1],
+            }))  # fmt: skip
+    if not parts:
+        return None
+    return pd.concat(parts, ignore_index=True)[list(PACK_COLUMNS["states_by_vintage"])]
 
 
 # --------------------------------------------------------------------------- the pack
@@ -659,7 +729,7 @@ def transition_backtest(engine, model, start: int, end: int) -> pd.DataFrame:
         ``origin``, ``destination``, ``n`` (months starting in the origin), ``expected``, ``actual``,
         ``predicted_rate``, ``observed_rate``, ``z``.
     """
-    from ..data import ABSORBING_STATES, DESTINATION_MOVE
+    from ..data import end_states
 
     labels, states = list(model.labels), list(model.states)
     rows = []
@@ -670,10 +740,7 @@ def transition_backtest(engine, model, start: int, end: int) -> pd.DataFrame:
         if n == 0:
             continue
         probabilities = model.transition_probabilities({c: frame[c].to_numpy() for c in frame.columns}, origin)
-        code = frame["destination"].to_numpy(dtype=np.int64)
-        code_state = {0: origin, **{v: k for k, v in ABSORBING_STATES.items()},
-                      **{DESTINATION_MOVE + k: name for k, name in enumerate(labels)}}  # fmt: skip
-        ended = np.array([states.index(code_state[int(c)]) for c in code], dtype=np.int64)
+        ended = end_states(np.full(n, j), frame["destination"].to_numpy(dtype=np.int64), len(labels))
         for k, name in enumerate(states):
             p = probabilities[:, k]
             expected, actual, var = float(p.sum()), int((ended == k).sum()), float(np.sum(p * (1.0 - p)))
@@ -720,7 +787,16 @@ def _stability_section(cfg, engine, model, cohort_pd, current_pd_12m, tables, su
 
 def _incidence_section(cfg, engine, model, path, chunk_size, tables, summary, notes) -> None:
     """Model cumulative incidence by vintage against Aalen-Johansen."""
-    inc = _incidence_by_vintage(cfg, engine, model, path, chunk_size, notes)
+    inc, by_state = _incidence_by_vintage(cfg, engine, model, path, chunk_size, notes)
+    if by_state is not None:
+        tables["states_by_vintage"] = by_state
+        summary["states_by_vintage"] = {
+            "vintages": int(by_state["vintage"].nunique()),
+            **{
+                state: {"share_ages_outside": float(rows["outside"].mean())}
+                for state, rows in by_state.groupby("state", sort=False)
+            },
+        }
     if inc is None:
         notes.append("incidence_by_vintage: no loan observed from origination")
     else:
@@ -795,6 +871,13 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
             the realised path, averaged over the vintage) against the
             Aalen-Johansen estimate on the same loans (:func:`model_vs_nonparametric`;
             maturity counts as censoring); ages up to the last one observed.
+        ``states_by_vintage``
+            For a multi-state model, the same comparison state by state: the
+            model's probability of being in each arrears state (and of having
+            defaulted or prepaid) at each age, averaged over the vintage,
+            against the Aalen-Johansen state occupation probabilities of the
+            loans' first spells (:func:`aalen_johansen_states`, with its
+            Greenwood-type 95% interval).
         ``hazard_by_age``
             In-sample fit: observed monthly hazard (events / at risk, with its
             Jeffreys interval) and mean model hazard by loan age over the

@@ -43,6 +43,7 @@ __all__ = [
     "psi_flag",
     "coefficient_changes",
     "aalen_johansen",
+    "aalen_johansen_states",
     "model_vs_nonparametric",
 ]
 
@@ -792,6 +793,88 @@ def aalen_johansen(time, event, *, causes=(1, 2), entry=None) -> pd.DataFrame:
             cif = np.cumsum(s_prev * hk)
             out[f"cif_{k}"] = cif
             out[f"cif_{k}_se"] = np.sqrt(_cif_variance(cif, s_prev, n, d[k], ra_all))
+    return out
+
+
+def aalen_johansen_states(age, origin, end, count=None, *, n_transient: int, n_states: int) -> pd.DataFrame:
+    """Aalen-Johansen state occupation probabilities of a discrete-time Markov multi-state model.
+
+    Every loan starts in transient state 0 (current) before its first month. In each month of
+    age ``a`` the empirical transition matrix P(a) has row j = the share of the loan-months of
+    age ``a`` starting in state j that ended in each state (a state nobody occupied stays put);
+    the occupation probabilities are p(a) = p(a - 1) P(a), the product-limit (Aalen & Johansen
+    1978). Censoring and late entry need nothing more: a loan counts in the months it was seen.
+
+    Parameters
+    ----------
+    age : array_like of int, shape (m,)
+        Loan age of the month (1 is the first month on book).
+    origin : array_like of int, shape (m,)
+        Transient state at the start of the month, ``0 .. n_transient - 1``.
+    end : array_like of int, shape (m,)
+        State at the end of the month, ``0 .. n_states - 1``: the transient states first,
+        then the absorbing ones.
+    count : array_like of int, shape (m,), optional
+        Loan-months each row stands for (rows may be pre-aggregated); 1 each by default.
+    n_transient, n_states : int
+        How many transient states, and states in all.
+
+    Returns
+    -------
+    DataFrame
+        Index ``age`` (1 to the last age seen); ``n_risk`` (loan-months of the age, in any
+        transient state) and per state k ``p_k`` and ``p_k_se``. The standard errors are the
+        Greenwood-type estimate (Andersen, Borgan, Gill & Keiding 1993, *Statistical Models
+        Based on Counting Processes*, section IV.4, from memory): with the rows of P(a)
+        multinomial given the past, Cov p(a) = P(a)' Cov p(a - 1) P(a) + sum_j p_j(a - 1)^2
+        (diag(r_j) - r_j r_j') / n_j(a). With one transient state it is Greenwood's formula
+        for the survival.
+    """
+    a = as_1d(age, "age")
+    o = as_1d(origin, "origin")
+    e = as_1d(end, "end")
+    c = np.ones(len(a)) if count is None else as_1d(count, "count")
+    _check_same_length(age=a, origin=o, end=e, count=c)
+    for name, arr in (("age", a), ("origin", o), ("end", e), ("count", c)):
+        _check_finite(arr, name)
+    T, S = int(n_transient), int(n_states)
+    if not 1 <= T < S:
+        raise DataError(f"need 1 <= n_transient < n_states, got {T} and {S}")
+    if len(a) == 0:
+        raise DataError("aalen_johansen_states needs at least one loan-month")
+    if (a < 1).any() or (a != np.round(a)).any():
+        raise DataError("age must hold whole months from 1")
+    if ((o < 0) | (o >= T) | (o != np.round(o))).any():
+        raise DataError(f"origin must be a transient state code 0..{T - 1}")
+    if ((e < 0) | (e >= S) | (e != np.round(e))).any():
+        raise DataError(f"end must be a state code 0..{S - 1}")
+    if (c < 0).any():
+        raise DataError("count must not be negative")
+    A = int(a.max())
+    counts = np.zeros((A, T, S))
+    np.add.at(counts, (a.astype(np.int64) - 1, o.astype(np.int64), e.astype(np.int64)), c)
+    n = counts.sum(axis=2)  # (A, T) loan-months starting in each transient state
+    p = np.zeros(S)
+    p[0] = 1.0
+    cov = np.zeros((S, S))
+    eye = np.eye(S)
+    occupancy, se = np.empty((A, S)), np.empty((A, S))
+    for k in range(A):
+        P = eye.copy()  # absorbing rows and unoccupied transient rows stay put
+        step_var = np.zeros((S, S))
+        for j in range(T):
+            if n[k, j] > 0:
+                r = counts[k, j] / n[k, j]
+                P[j] = r
+                step_var += p[j] ** 2 * (np.diag(r) - np.outer(r, r)) / n[k, j]
+        cov = P.T @ cov @ P + step_var
+        p = p @ P
+        occupancy[k], se[k] = p, np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    out = pd.DataFrame(index=pd.Index(np.arange(1, A + 1), name="age"))
+    out["n_risk"] = n.sum(axis=1).round().astype(np.int64)
+    for k in range(S):
+        out[f"p_{k}"] = occupancy[:, k]
+        out[f"p_{k}_se"] = se[:, k]
     return out
 
 
