@@ -197,8 +197,8 @@ def route_pandas(book: Path, kind: str) -> dict:
     X, names = spec.design(raw)
     y = frame["outcome"].to_numpy()
     if kind == "cause_specific":
-        keep = y != 2
-        fit = sm.GLM((y[keep] == 1).astype(float), X[keep], family=sm.families.Binomial()).fit(tol=1e-10)
+        # the default logit: every month a trial, the prepayment month one without default
+        fit = sm.GLM((y == 1).astype(float), X, family=sm.families.Binomial()).fit(tol=1e-10)
         params = {"default": {n: float(v) for n, v in zip(names, fit.params)}}
     else:
         fit = sm.MNLogit(y, X).fit(method="newton", maxiter=100, tol=1e-10, disp=0)

@@ -51,6 +51,12 @@ def _default_only(covariates):
     return h_default, np.zeros_like(h_default)
 
 
+def _constant(covariates):
+    """Known monthly hazards: default 1% and prepayment 3% in every month of every loan."""
+    h_default, _ = LIVELY(covariates)
+    return np.full_like(h_default, 0.01), np.full_like(h_default, 0.03)
+
+
 def connect(book) -> duckdb.DuckDBPyConnection:
     con = duckdb.connect()
     for name, df in book.items():
@@ -110,10 +116,10 @@ def test_cause_specific_matches_statsmodels_glm(con):
     spec = _spec(con, *MIXED, baseline=_spline(), interactions=(("score", "ltv"),))
     X, names, y = _design(con, spec)
     refs = {}
-    for cause, code, other in (("default", 1, 2), ("prepay", 2, 1)):
-        keep = y != other  # the other cause censors the loan in its event month
-        # Reference: statsmodels GLM binomial (IRLS) on the same rows and design.
-        refs[cause] = sm.GLM((y[keep] == code).astype(float), X[keep], family=sm.families.Binomial()).fit(tol=1e-12)
+    for cause, code in (("default", 1), ("prepay", 2)):
+        # Reference: statsmodels GLM binomial (IRLS) on every row and the same design, the cause as the response
+        # (the other cause's month is a month without this cause).
+        refs[cause] = sm.GLM((y == code).astype(float), X, family=sm.families.Binomial()).fit(tol=1e-12)
     for batch_size in (250_000, 1000):
         res = fit_hazard(on_connection(con), spec, kind="cause_specific", batch_size=batch_size)
         assert res.params.index.to_list() == names and res.converged
@@ -156,10 +162,9 @@ def test_tiny_batches_out_of_core(small_con):
             np.testing.assert_allclose(res.params.to_numpy(), ref.params, rtol=1e-6)
             np.testing.assert_allclose(res.bse.to_numpy(), ref.bse, rtol=1e-6)
         else:
-            for cause, code, other in (("default", 1, 2), ("prepay", 2, 1)):
-                keep = y != other
-                # Reference: statsmodels GLM binomial on the rows without the other cause.
-                ref = sm.GLM((y[keep] == code).astype(float), X[keep], family=sm.families.Binomial()).fit(tol=1e-12)
+            for cause, code in (("default", 1), ("prepay", 2)):
+                # Reference: statsmodels GLM binomial on every row, the cause as the response.
+                ref = sm.GLM((y == code).astype(float), X, family=sm.families.Binomial()).fit(tol=1e-12)
                 np.testing.assert_allclose(res.params[cause], ref.params, rtol=1e-6)
                 np.testing.assert_allclose(res.bse[cause], ref.bse, rtol=1e-6)
 
@@ -206,6 +211,32 @@ def test_age_indicators_reproduce_aalen_johansen(engine_frames):
         np.testing.assert_allclose(surv[km_all.surv_times.astype(int) - 1], km_all.surv_prob, rtol=0, atol=1e-8)
         # Invariant: survival plus the cumulative incidence of every cause is 1.
         np.testing.assert_allclose(surv + np.cumsum(before * h1) + np.cumsum(before * h2), 1.0, atol=1e-12)
+
+
+def test_both_kinds_combine_into_the_aalen_johansen_curves_on_a_book_with_known_hazards(engine_frames):
+    # Monthly hazards of 1% (default) and 3% (prepayment) in every month. The projection combines the two
+    # fitted hazards as S(u) = S(u-1) (1 - h_d - h_p), so each must be the cause's probability among all the
+    # loans at risk: with one indicator per age, both kinds must give back the Aalen-Johansen estimate
+    # (reference: statsmodels CumIncidenceRight) and the same 12-month PD. A cause-specific logit that left
+    # out the other cause's months would give h_d / (1 - h_p), about 1.031%, and a 12-month PD about 3% too high.
+    con = connect(engine_frames(4000, 3, "2023-06", hazard=_constant, default_min_age=1))
+    con.execute("DELETE FROM loan_months WHERE age > 12")  # the first year: every age holds events of both causes
+    spec = _spec(con, baseline=Baseline(kind="age_indicators"))
+    t, status = _times(con)
+    aj = CumIncidenceRight(t, status)
+    assert list(aj.times) == list(range(1, 13))
+    pd_12m = {}
+    for kind in ("multinomial", "cause_specific"):
+        res = fit_hazard(on_connection(con), spec, kind=kind)
+        h1, h2 = res.predict_hazards({"age": aj.times})
+        before = np.r_[1.0, np.cumprod(1 - h1 - h2)[:-1]]
+        np.testing.assert_allclose(np.cumsum(before * h1), aj.cinc[0], rtol=0, atol=1e-8)
+        np.testing.assert_allclose(np.cumsum(before * h2), aj.cinc[1], rtol=0, atol=1e-8)
+        pd_12m[kind] = np.cumsum(before * h1)[11]
+    assert pd_12m["cause_specific"] == pytest.approx(pd_12m["multinomial"], rel=1e-9)
+    # against the truth, sum_u 0.96^(u-1) 0.01 over 12 months, within 4 of the estimate's standard errors
+    truth = 0.01 * (1 - 0.96**12) / 0.04
+    assert abs(pd_12m["multinomial"] - truth) < 4 * aj.cinc_se[0][11]
 
 
 # --------------------------------------------------------------------------- ridge
