@@ -131,7 +131,7 @@ COMPETING_MODEL_COVARIATES = [
     {"name": "current_ltv", "column": "current_ltv", "floor": 0.1, "cap": 2.0},
     {"name": "dti", "column": "dti"},
     {"name": "rate_incentive", "column": "rate_incentive"},
-    {"name": "unemployment", "macro": "unemployment_rate", "lag": 0},
+    {"name": "unemployment", "macro": "unemployment_rate", "lag": 1},
 ]
 
 

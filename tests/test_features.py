@@ -86,13 +86,20 @@ def test_raw_inputs_match_direct_computation(con, book):
     for step in range(int(k.max()) + 1):
         sched[k == step] = bal[k == step]
         bal = bal * (1 + r) - pay
+    # A covariate of month t describes its start: the index and the market rate of the previous month-end
+    # (collateral.hpi_lag and market_rate_lag, default 1), the index never before the valuation at origination.
     region = loans["region"].str.lower().to_numpy()
-    hpi_now = np.array([macro.loc[m, f"hpi_{g}"] for m, g in zip(raw["month_idx"], region)])
+    hpi_months = np.maximum(raw["month_idx"].to_numpy() - 1, loans["origination_idx"].to_numpy())
+    hpi_now = np.array([macro.loc[m, f"hpi_{g}"] for m, g in zip(hpi_months, region)])
     hpi_orig = np.array([macro.loc[m, f"hpi_{g}"] for m, g in zip(loans["origination_idx"], region)])
     ltv = sched / (loans["property_value"].to_numpy() * hpi_now / hpi_orig)
     np.testing.assert_allclose(raw["current_ltv"], ltv, rtol=1e-10)
-    inc = 100 * loans["note_rate"].to_numpy() - macro.loc[raw["month_idx"], "mortgage_rate"].to_numpy()
+    inc = 100 * loans["note_rate"].to_numpy() - macro.loc[raw["month_idx"] - 1, "mortgage_rate"].to_numpy()
     np.testing.assert_allclose(raw["rate_incentive"], inc, rtol=1e-12)
+    # at the start of the first month after origination current LTV is the LTV at origination
+    first = (raw["month_idx"].to_numpy() - 1 == loans["origination_idx"].to_numpy()) & (raw["age"].to_numpy() == 1)
+    assert first.any()
+    np.testing.assert_allclose(raw["current_ltv"][first], (loans["original_balance"] / loans["property_value"]).to_numpy()[first], rtol=1e-12)
     np.testing.assert_array_equal(raw["credit_score"], loans["credit_score"])
     # Reference: the panel's balance at the end of the month before, by pandas look-up; none before the first row
     panel = book["panel"].set_index(["loan_id", "month_idx"])["balance"]
@@ -100,6 +107,31 @@ def test_raw_inputs_match_direct_computation(con, book):
     np.testing.assert_array_equal(raw["panel:balance:1"], before)
     assert (before == -1.0).any() and (before != -1.0).any()
     assert spec.required_inputs == ["age", "macro:unemployment_rate:3", "current_ltv", "rate_incentive", "credit_score", "panel:balance:1"]
+
+
+def test_derived_covariates_read_the_configured_lags(con, book):
+    # A publication delay of three months for the index (clipped at origination: no index move before the
+    # valuation) and the market rate of the month itself (lag 0), against pandas look-ups.
+    model = ModelSpec(covariates=(Covariate(name="ltv", column="current_ltv"), Covariate(name="inc", column="rate_incentive")))
+    spec = feature_spec(model, Collateral(hpi_lag=3, market_rate_lag=0)).learn(con)
+    assert spec.derived_lags == {"hpi": 3, "market_rate": 0}
+    raw = _raw(con, spec)
+    macro = book["macro"].set_index("month_idx")
+    loans = book["loans"].set_index("loan_id").loc[raw["loan_id"]]
+    orig = loans["origination_idx"].to_numpy()
+    region = loans["region"].str.lower().to_numpy()
+    months = np.maximum(raw["month_idx"].to_numpy() - 3, orig)
+    assert (months == orig).sum() > (raw["age"] == 1).sum()  # the clip is reached in the first months
+    growth = np.array([macro.loc[m, f"hpi_{g}"] / macro.loc[o, f"hpi_{g}"] for m, o, g in zip(months, orig, region)])
+    default_spec = _spec(Covariate(name="ltv", column="current_ltv")).learn(con)
+    base = _raw(con, default_spec)  # lag 1: the ratio of the two LTVs is the ratio of the two index moves
+    growth1 = np.array([
+        macro.loc[m, f"hpi_{g}"] / macro.loc[o, f"hpi_{g}"]
+        for m, o, g in zip(np.maximum(raw["month_idx"].to_numpy() - 1, orig), orig, region)
+    ])  # fmt: skip
+    np.testing.assert_allclose(raw["current_ltv"] * growth, base["current_ltv"] * growth1, rtol=1e-12)
+    inc = 100 * loans["note_rate"].to_numpy() - macro.loc[raw["month_idx"], "mortgage_rate"].to_numpy()
+    np.testing.assert_allclose(raw["rate_incentive"], inc, rtol=1e-12)
 
 
 def test_where_filter_and_params(con, book):

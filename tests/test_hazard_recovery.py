@@ -93,7 +93,7 @@ TRUE_DESIGN = {
         {"name": "current_ltv", "column": "current_ltv"},
         {"name": "dti", "column": "dti"},
         {"name": "rate_incentive", "column": "rate_incentive"},
-        {"name": "unemployment_rate", "macro": "unemployment_rate", "lag": 0},
+        {"name": "unemployment_rate", "macro": "unemployment_rate", "lag": 1},
     ],
 }
 

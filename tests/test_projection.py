@@ -269,16 +269,40 @@ def test_covariates_of_each_future_month_are_built_as_documented():
         hpi = f"hpi_{row.region.lower()}"
         for u in range(1, rem + 1):
             month = AS_OF + u
-            value = row.property_value * p.loc[month, hpi] / p.loc[row.origination_idx, hpi]
+            # the start of month u: the index and the market rate of the previous month-end (the default lags)
+            value = row.property_value * p.loc[max(month - 1, row.origination_idx), hpi] / p.loc[row.origination_idx, hpi]
             assert raw["age"][pos] == row.age + u
             assert raw["log_age"][pos] == pytest.approx(np.log(row.age + u), rel=1e-15)
             assert raw["current_ltv"][pos] == pytest.approx(bal / value, rel=1e-9, abs=1e-12)
-            assert raw["rate_incentive"][pos] == pytest.approx(100 * row.note_rate - p.loc[month, "mortgage_rate"], rel=1e-12)
+            assert raw["rate_incentive"][pos] == pytest.approx(100 * row.note_rate - p.loc[month - 1, "mortgage_rate"], rel=1e-12)
             assert raw["macro:unemployment_rate:1"][pos] == p.loc[month - 1, "unemployment_rate"]
             assert raw["credit_score"][pos] == row.credit_score
             bal = bal * (1 + r) - pay  # start balance of the next month
             pos += 1
     assert pos == len(raw["age"])
+
+
+def test_a_source_projects_with_the_lags_it_was_fitted_with():
+    # A model fitted with a three-month index delay and the month's own market rate reads the same months in
+    # its projection, whatever the config's defaults.
+    src = LogitSource()
+    src.derived_lags = {"hpi": 3, "market_rate": 0}
+    loans = _loans()
+    p = _paths()["base"]
+    project_loans(loans, src, {"base": p}, as_of_idx=AS_OF, chunk_size=100)
+    raw = src.calls[0]
+    row = loans.sort_values("loan_id").iloc[0]
+    r = row.note_rate / 12
+    rem = row.term - row.age
+    pay = -npf.pmt(r, rem, row.balance)
+    hpi = f"hpi_{row.region.lower()}"
+    bal = row.balance
+    for u in range(1, 4):
+        month = AS_OF + u
+        value = row.property_value * p.loc[max(month - 3, row.origination_idx), hpi] / p.loc[row.origination_idx, hpi]
+        assert raw["current_ltv"][u - 1] == pytest.approx(bal / value, rel=1e-9)
+        assert raw["rate_incentive"][u - 1] == pytest.approx(100 * row.note_rate - p.loc[month, "mortgage_rate"], rel=1e-12)
+        bal = bal * (1 + r) - pay
 
 
 def test_origination_pd_holds_macro_at_the_origination_month():
@@ -292,7 +316,7 @@ def test_origination_pd_holds_macro_at_the_origination_month():
     counts = ordered["term"].to_numpy()
     orig = np.repeat(ordered["origination_idx"].to_numpy(), counts)
     np.testing.assert_array_equal(raw["macro:unemployment_rate:1"], hist["unemployment_rate"].loc[orig - 1].to_numpy())
-    np.testing.assert_allclose(raw["rate_incentive"], 100 * np.repeat(ordered["note_rate"].to_numpy(), counts) - hist["mortgage_rate"].loc[orig].to_numpy())
+    np.testing.assert_allclose(raw["rate_incentive"], 100 * np.repeat(ordered["note_rate"].to_numpy(), counts) - hist["mortgage_rate"].loc[orig - 1].to_numpy())
     first = ordered.iloc[0]
     assert raw["age"][0] == 1
     assert raw["current_ltv"][0] == pytest.approx(first["original_balance"] / first["property_value"], rel=1e-12)

@@ -423,13 +423,32 @@ class ModelSpec:
 
 @dataclass(frozen=True)
 class Collateral:
-    """How derived covariates are built: current LTV and the rate incentive."""
+    """How derived covariates are built: current LTV and the rate incentive.
+
+    Like every covariate of month t they describe the start of month t, so by default they read the
+    house-price index and the market rate of the previous month-end (lag 1).
+    """
 
     region_column: str | None = field(default="region", metadata=_doc("loan-table column naming the region"))
     hpi_series: str | None = field(
         default="hpi_{region}", metadata=_doc("macro series of the house-price index; {region} is lower-cased")
     )
     market_rate_series: str | None = field(default="mortgage_rate", metadata=_doc("macro series of the market rate"))
+    hpi_lag: int = field(
+        default=1,
+        metadata=_doc(
+            "months before the row's month of the house-price index current LTV reads: 1 = the previous month-end "
+            "(the start of the month), more for a publication delay; never before origination",
+            min=0,
+        ),
+    )
+    market_rate_lag: int = field(
+        default=1,
+        metadata=_doc(
+            "months before the row's month of the market rate the rate incentive reads: 1 = the previous month-end",
+            min=0,
+        ),
+    )
 
 
 # --------------------------------------------------------------------------- scenarios and loss

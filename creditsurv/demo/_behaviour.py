@@ -159,10 +159,10 @@ class ArrearsBehaviour:
                 "log_age": "natural log of loan age t (age 1 = month after origination)",
                 "refreshed_score": "refreshed_score at the end of month t-1 (panel); credit_score at age 1",
                 "current_ltv": "as in the competing-risk book: scheduled balance after t-1 payments over the "
-                "property value moved by the region's house-price index to month t",
+                "property value moved by the region's house-price index to month t-1 (the previous month-end)",
                 "dti": "dti from loans.parquet",
-                "rate_incentive": "note_rate - mortgage_rate(month t)",
-                "unemployment_rate": "unemployment_rate(month t)",
+                "rate_incentive": "note_rate - mortgage_rate(month t-1)",
+                "unemployment_rate": "unemployment_rate(month t-1)",
                 "previously_defaulted": "1 from the month after a cure on",
             },
             "default": {

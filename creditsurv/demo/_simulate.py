@@ -20,7 +20,8 @@ Layout of a written book (see :func:`write_demo_book`)::
 
 Mechanics of one loan (age t = months since the origination month):
 
-- the hazards of month t use covariates known at the start of month t;
+- the hazards of month t use covariates known at the start of month t (the
+  macro values of month t-1, the previous month-end);
 - no default before age ``DEFAULT_MIN_AGE`` (3; the ``default_min_age``
   argument) and no prepayment in the month the loan reaches its term;
 - a default at age t is 90 days past due at t, preceded by 30 and 60 days past
@@ -107,12 +108,12 @@ COVARIATE_FORMULAS = {
     "credit_score": "credit_score from loans.parquet (static)",
     "current_ltv": (
         "scheduled balance after t-1 level payments (original_balance at t=1) divided by "
-        "property_value * hpi_<region>(month t) / hpi_<region>(origination month), "
+        "property_value * hpi_<region>(month t-1, the previous month-end) / hpi_<region>(origination month), "
         "HPI from macro_history.csv"
     ),
     "dti": "dti from loans.parquet (static, decimal)",
-    "rate_incentive": "note_rate - mortgage_rate(month t), percentage points, mortgage_rate from macro_history.csv",
-    "unemployment_rate": "unemployment_rate(month t) from macro_history.csv, percent",
+    "rate_incentive": "note_rate - mortgage_rate(month t-1), percentage points, mortgage_rate from macro_history.csv",
+    "unemployment_rate": "unemployment_rate(month t-1) from macro_history.csv, percent",
 }
 SCHEDULED_BALANCE_FORMULA = (
     "B(k) = P * ((1+r)^n - (1+r)^k) / ((1+r)^n - 1), P = original_balance, "
@@ -502,7 +503,9 @@ class _RiskRows:
 def risk_covariates(loan: dict, risk, macro) -> dict[str, np.ndarray]:
     """The covariates of every loan-month at risk, as the hazard receives them (see :func:`simulate_book`)."""
     orig, term, row_loan, age = loan["orig"], loan["term"], risk.row_loan, risk.age
-    month_pos = orig[row_loan] + age - macro.start
+    # covariates of month t describe its start: the macro values of the previous month-end (month t-1, at
+    # the earliest the origination month itself)
+    month_pos = orig[row_loan] + age - 1 - macro.start
     region = loan["region"][row_loan]
     house_growth = macro.hpi[region, month_pos] / macro.hpi[region, orig[row_loan] - macro.start]
     prev_balance = scheduled_balance(

@@ -117,6 +117,10 @@ class MacroLookup:
 
 # --------------------------------------------------------------------------- inputs
 
+DERIVED_LAGS = {"hpi": Collateral().hpi_lag, "market_rate": Collateral().market_rate_lag}
+"""The lags of current LTV's index and the rate incentive's market rate for a source that does not state
+its own (``derived_lags``): the config's defaults, the previous month-end."""
+
 
 @dataclass(frozen=True)
 class _Spec:
@@ -126,6 +130,8 @@ class _Spec:
     ltv: bool
     incentive: bool
     panel: tuple[dict, ...] = ()  # panel inputs at a lag: the source's panel_rules
+    hpi_lag: int = DERIVED_LAGS["hpi"]  # months before the row's month of the index current LTV reads
+    rate_lag: int = DERIVED_LAGS["market_rate"]  # ... and of the market rate the rate incentive reads
 
 
 def _parse_inputs(required, loan_columns, source=None) -> _Spec:
@@ -151,8 +157,10 @@ def _parse_inputs(required, loan_columns, source=None) -> _Spec:
             problems.append(f"{name!r}: not a derived input {list(_DERIVED)}, a macro:<series>:<lag> or a loan column")
     if problems:
         raise ProjectionError(problem_list(problems, "the inputs the hazard source needs"))
+    lags = {**DERIVED_LAGS, **getattr(source, "derived_lags", {})}
     return _Spec(
-        tuple(required), tuple(macro), tuple(static), "current_ltv" in required, "rate_incentive" in required, tuple(panel)
+        tuple(required), tuple(macro), tuple(static), "current_ltv" in required, "rate_incentive" in required,
+        tuple(panel), int(lags["hpi"]), int(lags["market_rate"]),
     )
 
 
@@ -328,14 +336,17 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
             codes = book.region_code[sl]
             hpi_now = np.empty((n, H))
             hpi_orig = np.empty(n)
+            orig = book.orig_idx[sl]
+            # the index as of the start of the month (spec.hpi_lag earlier), never before the valuation at origination
+            hpi_months = np.maximum(lookup_months - spec.hpi_lag, orig[:, None])
             for c in np.unique(codes):
                 rows = codes == c
-                hpi_now[rows] = lk.get(hpi_names[c], lookup_months[rows])
-                hpi_orig[rows] = lk.get(hpi_names[c], book.orig_idx[sl][rows])
+                hpi_now[rows] = lk.get(hpi_names[c], hpi_months[rows])
+                hpi_orig[rows] = lk.get(hpi_names[c], orig[rows])
             value_now = book.value[sl][:, None] * hpi_now / hpi_orig[:, None]
             raw["current_ltv"] = (bal_start / value_now)[mask]
         if spec.incentive:
-            raw["rate_incentive"] = (100.0 * rate[:, None] - lk.get(market_rate, lookup_months))[mask]
+            raw["rate_incentive"] = (100.0 * rate[:, None] - lk.get(market_rate, lookup_months - spec.rate_lag))[mask]
         raw = {name: raw[name] for name in spec.names}
         if hasattr(source, "transition_probabilities"):
             hd_chain, hp_chain, states[scen] = _chain_hazards(source, raw, mask, book.state[sl])
@@ -733,23 +744,28 @@ def _coverage_needs(book: _Book, spec: _Spec, hpi_names, market_rate, hold: bool
         for _, series, lag in spec.macro:
             needs.setdefault(series, []).append(np.unique(book.start_idx - lag))
         if spec.incentive:
-            needs.setdefault(market_rate, []).append(np.unique(book.start_idx))
+            needs.setdefault(market_rate, []).append(np.unique(book.start_idx - spec.rate_lag))
         if spec.ltv:
             for c, name in enumerate(hpi_names):
-                needs.setdefault(name, []).append(np.unique(book.start_idx[book.region_code == c]))
+                rows = book.region_code == c
+                needs.setdefault(name, []).append(np.unique(np.maximum(book.start_idx[rows] - spec.hpi_lag, book.orig_idx[rows])))
+                needs[name].append(np.unique(book.orig_idx[rows]))
     else:
         lo, hi = int(book.start_idx.min()) + 1, int((book.start_idx + book.remaining).max())
         span = np.arange(lo, hi + 1)
         for _, series, lag in spec.macro:
             needs.setdefault(series, []).append(span - lag)
         if spec.incentive:
-            needs.setdefault(market_rate, []).append(span)
+            needs.setdefault(market_rate, []).append(span - spec.rate_lag)
         if spec.ltv:
             for c, name in enumerate(hpi_names):
                 rows = book.region_code == c
-                last = int((book.start_idx[rows] + book.remaining[rows]).max())
-                needs.setdefault(name, []).append(np.arange(lo, last + 1))
-                needs[name].append(np.unique(book.orig_idx[rows]))
+                orig = book.orig_idx[rows]
+                # months max(start + u - lag, origination) for u = 1 ... remaining
+                first = int(np.maximum(book.start_idx[rows] + 1 - spec.hpi_lag, orig).min())
+                last = int(np.maximum(book.start_idx[rows] + book.remaining[rows] - spec.hpi_lag, orig).max())
+                needs.setdefault(name, []).append(np.arange(first, last + 1))
+                needs[name].append(np.unique(orig))
     return {s: np.unique(np.concatenate(v)) for s, v in needs.items()}
 
 

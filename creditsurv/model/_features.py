@@ -377,22 +377,28 @@ class FeatureSpec:
             )
             prev = "with_loans"
         macro_items = [i for i in inputs if i.source == "macro"]
-        lags = sorted({i.lag for i in macro_items} | ({0} if (needs_ltv or needs_inc) else set()))
-        if lags:
+        lag = self.derived_lags
+        lags = sorted({i.lag for i in macro_items} | ({lag["market_rate"]} if needs_inc else set()))
+        if lags or needs_ltv:
             sel, joins = [], []
-            for lag in lags:
-                alias = f"m_lag{lag}"
-                joins.append(f"  LEFT JOIN \"macro\" AS {alias} ON {alias}.\"month_idx\" = r.\"month_idx\" - {int(lag)}")
+            for m in lags:
+                alias = f"m_lag{m}"
+                joins.append(f"  LEFT JOIN \"macro\" AS {alias} ON {alias}.\"month_idx\" = r.\"month_idx\" - {int(m)}")
             for i in macro_items:
                 sel.append(f"m_lag{i.lag}.{q(i.series)} AS {q(i.key)}")
             if needs_inc:
-                sel.append(f"m_lag0.{q(self.collateral['market_rate_series'])} AS \"_cs_market_rate\"")
+                sel.append(f"m_lag{lag['market_rate']}.{q(self.collateral['market_rate_series'])} AS \"_cs_market_rate\"")
             if needs_ltv:
                 regions = self._hpi_regions(info["macro"])
                 region = q("_cs_" + self.collateral["region_column"])
-                for tag, alias in (("now", "m_lag0"), ("orig", "m_orig")):
+                for tag, alias in (("now", "m_hpi"), ("orig", "m_orig")):
                     whens = " ".join(f"WHEN {quote_literal(r)} THEN {alias}.{q(s)}" for r, s in regions)
                     sel.append(f"CASE lower(CAST(r.{region} AS VARCHAR)) {whens} END AS \"_cs_hpi_{tag}\"")
+                # the index as of the start of the month, and no move before the valuation at origination
+                joins.append(
+                    f"  LEFT JOIN \"macro\" AS m_hpi ON m_hpi.\"month_idx\" = "
+                    f"GREATEST(r.\"month_idx\" - {int(lag['hpi'])}, r.\"_cs_origination_idx\")"
+                )
                 joins.append("  LEFT JOIN \"macro\" AS m_orig ON m_orig.\"month_idx\" = r.\"_cs_origination_idx\"")
             ctes.append(f"with_macro AS (\n  SELECT r.*, {', '.join(sel)}\n  FROM {prev} AS r\n" + "\n".join(joins) + "\n)")
             prev = "with_macro"
@@ -640,6 +646,16 @@ class FeatureSpec:
         return x
 
     # ----------------------------------------------------------------- design
+
+    @property
+    def derived_lags(self) -> dict[str, int]:
+        """Months before the row's month of the house-price index (``hpi``) and market rate (``market_rate``)
+        that current LTV and the rate incentive read; 0 for a model saved before the lags existed (it was
+        fitted on the month's own values)."""
+        return {
+            "hpi": int(self.collateral.get("hpi_lag", 0)),
+            "market_rate": int(self.collateral.get("market_rate_lag", 0)),
+        }
 
     @property
     def panel_rules(self) -> list[dict]:
@@ -977,6 +993,8 @@ def feature_spec(model, collateral=None) -> FeatureSpec:
             "region_column": collateral.region_column,
             "hpi_series": collateral.hpi_series,
             "market_rate_series": collateral.market_rate_series,
+            "hpi_lag": int(collateral.hpi_lag),
+            "market_rate_lag": int(collateral.market_rate_lag),
         }
     return FeatureSpec(
         baseline=baseline,

@@ -240,6 +240,11 @@ class HazardResults:
         """How each panel input is filled and projected (see :attr:`FeatureSpec.panel_rules`)."""
         return self.spec.panel_rules
 
+    @property
+    def derived_lags(self) -> dict[str, int]:
+        """The lags of the index and rate behind current LTV and the rate incentive (see :attr:`FeatureSpec.derived_lags`)."""
+        return self.spec.derived_lags
+
     def hazards(self, raw) -> tuple[np.ndarray, np.ndarray]:
         """Alias of :meth:`predict_hazards` (the projection's hazard-source protocol)."""
         return self.predict_hazards(raw)

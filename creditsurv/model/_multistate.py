@@ -118,6 +118,11 @@ class MultiStateResults:
         return self.spec.panel_rules
 
     @property
+    def derived_lags(self) -> dict[str, int]:
+        """The lags of the index and rate behind current LTV and the rate incentive (see :attr:`FeatureSpec.derived_lags`)."""
+        return self.spec.derived_lags
+
+    @property
     def n_rows(self) -> int:
         return int(sum(m.n_rows for m in self.origins.values()))
 

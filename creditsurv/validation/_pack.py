@@ -119,6 +119,8 @@ class _UpToAge:
         self.limit = int(limit)
         self.required_inputs = list(source.required_inputs)
         self.panel_rules = list(getattr(source, "panel_rules", []))
+        if hasattr(source, "derived_lags"):
+            self.derived_lags = source.derived_lags
         if hasattr(source, "transition_probabilities"):  # a multi-state model: its chain runs whole
             self.labels, self.states = source.labels, source.states
             self.transition_probabilities = source.transition_probabilities
