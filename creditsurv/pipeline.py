@@ -313,9 +313,9 @@ def scenario_paths(ctx, engine, model, book, loaded) -> dict:
 
     ``loaded`` are the paths :func:`preflight` read; the history extends them.
     """
-    from .forecast import extend_paths
+    from .forecast import extend_paths, remaining_term
 
-    remaining = (book["term"] - book["age"]).clip(lower=0)
+    remaining = remaining_term(book["age"], book["term"])
     return extend_paths(
         loaded,
         engine.macro_history(),
@@ -449,6 +449,8 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         },
         "stage_reasons": stage_reasons(result.loans),
         "sicr_history": sicr_history,
+        # loans at or past their term with a balance left, projected as due next month (forecast.remaining_term)
+        "past_term": int(((book["age"] >= book["term"]) & ~book["in_default"].astype(bool)).sum()),
     }
     return result, report_tables, totals
 
@@ -618,6 +620,7 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
         "seed": manifest.seed,
         "synthetic": cfg.synthetic_data,
         "sicr_history": (manifest.totals or {}).get("sicr_history"),
+        "past_term": (manifest.totals or {}).get("past_term"),
         **({"calibration": manifest.calibration} if manifest.calibration is not None else {}),
     }
     write_report(run.add_file("report.html"), tables, meta)

@@ -72,7 +72,8 @@ BOOK = [
 # loan_id: entry_age, entry_month_idx, last_age, last_month_idx, event, event_age,
 #          event_month_idx, censor_reason, in_default_at_as_of, in_cure_period_at_as_of, days_past_due_at_as_of,
 #          balance_at_as_of,
-#          last_arrears_month_idx (the last month at or above the 30-day backstop or in default)
+#          last_arrears_month_idx (the last month at or above the 30-day backstop or in default);
+#          default_start_month_idx is checked beside them
 EXPECTED_OUTCOMES = {
     "both": (1, ORIG + 1, 4, ORIG + 4, "default", 4, ORIG + 4, None, False, False, None, None, ORIG + 4),
     "chargeoff": (1, ORIG + 1, 7, ORIG + 7, "default", 4, ORIG + 4, None, False, False, None, None, ORIG + 7),
@@ -129,7 +130,10 @@ def test_loan_outcomes_match_hand_labels(events_book_panel):
     got = events_book_panel.con.execute("SELECT * FROM loan_outcomes ORDER BY loan_id").fetchall()
     assert [r[0] for r in got] == sorted(EXPECTED_OUTCOMES)
     for row in got:
-        assert tuple(row[1:]) == EXPECTED_OUTCOMES[row[0]], row[0]
+        expected = EXPECTED_OUTCOMES[row[0]]
+        # with no cure period the default a loan is in began at its first default: its event month
+        start = expected[6] if expected[4] == "default" else None
+        assert tuple(row[1:]) == (*expected, start), row[0]
 
 
 def test_loan_outcomes_types(events_book_panel):
@@ -139,7 +143,7 @@ def test_loan_outcomes_types(events_book_panel):
         "last_month_idx": "INTEGER", "event": "VARCHAR", "event_age": "INTEGER", "event_month_idx": "INTEGER",
         "censor_reason": "VARCHAR", "in_default_at_as_of": "BOOLEAN", "in_cure_period_at_as_of": "BOOLEAN",
         "days_past_due_at_as_of": "INTEGER",
-        "balance_at_as_of": "DOUBLE", "last_arrears_month_idx": "INTEGER",
+        "balance_at_as_of": "DOUBLE", "last_arrears_month_idx": "INTEGER", "default_start_month_idx": "INTEGER",
     }
 
 
@@ -237,6 +241,10 @@ def test_a_cured_loan_is_at_risk_again_in_a_new_spell(tmp_path):
     assert book.loc[["incure", "redefault", "workout"], "in_default"].tolist() == [True, True, True]
     assert book.loc[["incure", "redefault", "workout"], "in_cure_period"].tolist() == [True, False, False]
     assert book.loc["recure", "months_since_arrears"] == 1 and book.loc["recure", "arrears_state"] == 0
+    # months since the default the loan is in began: incure from age 10, redefault from its second default at
+    # age 11 (not its first at 4), workout from age 4; none for the cured loans
+    assert book.loc[["incure", "redefault", "workout"], "months_in_default"].tolist() == [2, 1, 8]
+    assert book.loc[["recure", "relapse"], "months_in_default"].isna().all()
     # with no cure period the same loans stop at their first default, and default is absorbing
     config = _config(tmp_path, panel, loans, default_definition={"days_past_due": 90, "status_codes": ["default"]})
     with open_panel(config) as p:
@@ -247,6 +255,8 @@ def test_a_cured_loan_is_at_risk_again_in_a_new_spell(tmp_path):
         first_spell = [r[:2] for r in expected if r[4] == 0]
         assert list(months[months["loan_id"] == loan_id][["age", "outcome"]].itertuples(index=False, name=None)) == first_spell
     assert book.loc[list(EXPECTED_CURE_RISK_SET), "in_default"].all()
+    # default is for good: every loan counts from its first default
+    assert book.loc[["recure", "incure", "redefault", "relapse"], "months_in_default"].tolist() == [8, 2, 8, 8]
     assert not book["in_cure_period"].any() and (book["previously_defaulted"] == 0).all()
 
 

@@ -152,6 +152,47 @@ def test_collateral_lgd_in_the_schedule_uses_the_scenario_hpi_at_the_sale_month(
     )
 
 
+def test_a_loan_past_its_term_with_a_balance_left_is_due_next_month():
+    # Rule (README, loss): a loan at or past its contractual term that still owes a balance (balloon,
+    # extension, arrears at maturity) is projected over one month, its whole balance due at the end of it.
+    book = _small_book()
+    book.loc[book.loan_id == "A", ["age", "term"]] = [26, 24]  # two months past its term, 10,000 left
+    book.loc[book.loan_id == "B", "age"] = 30  # exactly at its term
+    res = expected_credit_loss(
+        book, _table_source(), {"base": _flat_macro()}, as_of_idx=AS_OF, loss=_loss(), staging=STAGING
+    ).loan_table().set_index("loan_id")
+    for lid, balance, rate in (("A", 10_000.0, 0.06), ("B", 4_000.0, 0.0)):
+        expected = HD * 0.3 * balance * (1 + rate / 12) ** -1  # marginal PD of month 1 x LGD x EAD x DF(1)
+        assert res.loc[lid, "pd_12m"] == pytest.approx(HD, rel=1e-12)
+        assert res.loc[lid, "pd_lifetime"] == pytest.approx(HD, rel=1e-12)
+        assert res.loc[lid, "ecl_12m"] == pytest.approx(expected, rel=1e-12)
+        assert res.loc[lid, "ecl_lifetime"] == pytest.approx(expected, rel=1e-12)
+    # its PD at origination (the SICR comparison) covers its last contractual month: one month's hazard too
+    po = origination_pd(book.drop(columns="pd0"), _table_source(), _flat_macro())
+    assert po["A"] == pytest.approx(HD, rel=1e-12) and po["B"] == pytest.approx(HD, rel=1e-12)
+
+
+@pytest.mark.parametrize("months_in_default, to_sale", [(None, 18), (0, 18), (13, 5), (18, 0), (30, 0)])
+def test_stage_3_sale_is_counted_from_the_default_date(months_in_default, to_sale):
+    # The collateral is sold loss.lgd.months_to_recovery (18) months after the default began, not 18 months
+    # after every reporting date: a loan 13 months in default is sold in 5 months, one in default longer
+    # than 18 months at the reporting month. Recovery by hand: value moved by the index to the sale month,
+    # less haircut and costs, discounted at the note rate over the months to the sale (IFRS 9 B5.5.44).
+    hpi = lambda idx: 100.0 * 1.002 ** (idx - AS_OF)  # noqa: E731 - rising prices
+    book = _small_book()
+    book.loc[book.loan_id == "A", ["days_past_due", "property_value"]] = [90 + 30 * (months_in_default or 0), 12_000.0]
+    if months_in_default is not None:
+        book["months_in_default"] = [months_in_default, None, None]
+    lgd_cfg = Lgd(kind="collateral", forced_sale_haircut=0.25, sale_costs=0.06, months_to_recovery=18, floor=0.0)
+    res = expected_credit_loss(
+        book, _table_source(), {"base": _flat_macro(hpi=hpi)}, as_of_idx=AS_OF, loss=Loss(lgd=lgd_cfg), staging=STAGING
+    ).loan_table().set_index("loan_id")
+    assert res.loc["A", "stage"] == 3
+    recovery = 12_000.0 * hpi(AS_OF + to_sale) / hpi(AS_OF - 4) * 0.69 / (1 + 0.06 / 12) ** to_sale
+    assert res.loc["A", "lgd"] == pytest.approx(1 - recovery / 10_000.0, rel=1e-12)
+    assert res.loc["A", "ecl_reported"] == pytest.approx(10_000.0 - recovery, rel=1e-12)
+
+
 # --------------------------------------------------------------------------- stages
 
 

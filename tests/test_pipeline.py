@@ -404,6 +404,28 @@ def test_a_run_projects_a_panel_covariate_from_the_reporting_month_value(small_b
     assert np.isfinite(loans["pd_lifetime"]).all() and (loans["pd_lifetime"] > 0).all()
 
 
+def test_a_loan_past_its_term_with_a_balance_left_does_not_stop_the_run(small_book, tmp_path):
+    # Two live loans whose term ran out two months before the reporting month with their balance unpaid (an
+    # extension, say): the run prices them as due next month and counts them, instead of stopping.
+    import shutil
+
+    book = tmp_path / "book"
+    shutil.copytree(small_book, book)
+    loans = pd.read_parquet(book / "loans.parquet")
+    panel = pd.read_parquet(book / "panel.parquet", columns=["loan_id", "month", "age", "days_past_due"])
+    last = panel[panel["month"] == panel["month"].max()]
+    chosen = last[last["days_past_due"] == 0].sort_values("loan_id").iloc[:2]
+    term = dict(zip(chosen["loan_id"], chosen["age"] - 2))
+    loans["term_months"] = [term.get(i, t) for i, t in zip(loans["loan_id"], loans["term_months"])]
+    loans.to_parquet(book / "loans.parquet", index=False)
+    outcome = creditsurv.run(_write(demo_config_data(book, tmp_path / "reports"), tmp_path))
+    manifest = json.loads((outcome.path / "manifest.json").read_text())
+    assert manifest["totals"]["past_term"] == 2
+    ecl = pd.read_parquet(outcome.path / "loan_ecl.parquet").set_index("loan_id").loc[list(term)]
+    assert (ecl["pd_lifetime"] == ecl["pd_12m"]).all() and (ecl["ecl_reported"] > 0).all()
+    assert "2 live loans are at or past their contractual term" in (outcome.path / "report.html").read_text()
+
+
 # --------------------------------------------------------------------------- the preflight
 
 

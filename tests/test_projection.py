@@ -515,11 +515,18 @@ def test_prepare_paths_loads_and_extends(tmp_path):
 # --------------------------------------------------------------------------- loan and coverage errors
 
 
-def test_loans_past_maturity_are_named():
+def test_loans_at_or_past_maturity_are_projected_over_one_month():
+    # The rule for a balance left at or after the term: due at the end of the next month (one month projected).
     loans = _loans()
-    loans.loc[[0, 2], "age"] = loans.loc[[0, 2], "term"]
-    with pytest.raises(ProjectionError, match=r"past maturity .*2 loans \(L07, L03\)"):
-        project_loans(loans, LogitSource(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS)
+    loans.loc[0, "age"] = loans.loc[0, "term"]
+    loans.loc[2, "age"] = loans.loc[2, "term"] + 5
+    res = project_loans(loans, LogitSource(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS)
+    out = res.loans.set_index("loan_id")
+    for i in (0, 2):
+        lid = loans.loc[i, "loan_id"]
+        assert out.loc[lid, "remaining_term"] == 1
+        assert out.loc[lid, "pd_lifetime_weighted"] == pytest.approx(out.loc[lid, "pd_12m_weighted"], rel=1e-15)
+        assert 0 < out.loc[lid, "pd_12m_weighted"] < 1
 
 
 def test_negative_note_rates_are_named():

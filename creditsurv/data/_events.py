@@ -13,7 +13,10 @@ core, giving two tables:
                    ``days_past_due_at_as_of``, ``balance_at_as_of``,
                    ``last_arrears_month_idx`` (the last month up to the reporting
                    month at or above ``staging.dpd_backstop`` days past due or
-                   meeting the default definition; NULL when none). The event is
+                   meeting the default definition; NULL when none),
+                   ``default_start_month_idx`` (the first month of the default the
+                   loan is in at the reporting month, after any cured one; NULL when
+                   it has not defaulted by then). The event is
                    the loan's first: with cures, later spells are in ``loan_months``.
 ``loan_months``    the risk set: each panel row of a loan at risk (see Cures), up to
                    and including its closure, with ``loan_id``, ``month_idx``,
@@ -106,6 +109,20 @@ _FLAGGED = """flagged AS (
 
 _FLAGS = f"""
 {_FLAGGED},
+default_months AS (
+    SELECT loan_id, month_idx,
+           lag(month_idx) OVER (PARTITION BY loan_id ORDER BY month_idx) AS prior_default_idx
+    FROM flagged
+    WHERE is_default AND month_idx <= $as_of
+),
+default_starts AS (
+    -- a default month starts a new default when none came before it, or the last one was a cure period or
+    -- more before the previous month-end (the at-risk rule of loan_months); with no cure period only the first
+    SELECT loan_id, max(month_idx) AS default_start_month_idx
+    FROM default_months
+    WHERE prior_default_idx IS NULL OR coalesce(month_idx - 1 - prior_default_idx >= $cure, FALSE)
+    GROUP BY loan_id
+),
 per_loan AS (
     SELECT loan_id,
            arg_min(age, month_idx) AS entry_age, min(month_idx) AS entry_month_idx,
@@ -133,9 +150,10 @@ event_row AS (
                 THEN default_idx ELSE closed_idx END AS event_month_idx,
            CASE WHEN default_idx IS NOT NULL AND (closed_idx IS NULL OR default_idx <= closed_idx)
                 THEN default_age ELSE closed_age END AS event_age,
-           l.term
+           l.term, ds.default_start_month_idx
     FROM per_loan AS p
     LEFT JOIN (SELECT loan_id, any_value(term) AS term FROM loans GROUP BY loan_id) AS l USING (loan_id)
+    LEFT JOIN default_starts AS ds USING (loan_id)
 ),
 labelled AS (
     SELECT *,
@@ -239,7 +257,8 @@ SELECT loan_id,
            AS in_cure_period_at_as_of,
        CAST(days_past_due_at_as_of AS INTEGER) AS days_past_due_at_as_of,
        CAST(balance_at_as_of AS DOUBLE) AS balance_at_as_of,
-       CAST(last_arrears_idx AS INTEGER) AS last_arrears_month_idx
+       CAST(last_arrears_idx AS INTEGER) AS last_arrears_month_idx,
+       CAST(default_start_month_idx AS INTEGER) AS default_start_month_idx
 FROM labelled
 ORDER BY loan_id
 """
@@ -256,6 +275,9 @@ _BOOK_SQL = """
            CAST(o.event = 'default' AND o.event_month_idx <= $as_of AND NOT o.in_default_at_as_of AS TINYINT)
                AS previously_defaulted,
            CAST($as_of - o.last_arrears_month_idx AS INTEGER) AS months_since_arrears,
+           -- months since the default the loan is in began (0 in its first month); NULL when not in default
+           CAST(CASE WHEN o.in_default_at_as_of THEN $as_of - o.default_start_month_idx END AS INTEGER)
+               AS months_in_default,
            CAST({arrears_state} AS TINYINT) AS arrears_state,
            {segment} AS segment
     FROM loan_outcomes AS o

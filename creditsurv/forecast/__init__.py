@@ -15,6 +15,7 @@ from ._projection import (
     panel_history_columns,
     panel_history_name,
     project_loans,
+    remaining_term,
     repeat_ids,
     scenario_column,
     scenario_weights,
@@ -30,7 +31,7 @@ from ._scenarios import extend_path, extend_paths, load_scenario_paths, prepare_
 
 __all__ = [
     "ChainResult", "markov_chain", "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "ProjectionResult", "SegmentSums", "TableWriter", "check_coverage",
-    "extend_path", "extend_paths", "load_scenario_paths", "loan_list_text", "origination_pd", "panel_history_columns", "panel_history_name", "prepare_paths", "with_panel_history", "project_loans",
+    "extend_path", "extend_paths", "load_scenario_paths", "loan_list_text", "origination_pd", "panel_history_columns", "panel_history_name", "prepare_paths", "with_panel_history", "project_loans", "remaining_term",
     "repeat_ids", "scenario_column", "scenario_weights", "score_band_labels",
     "segment_level", "segment_pd_tables", "segment_speeds", "speeds_frames", "term_structure_frame",
 ]  # fmt: skip

@@ -67,6 +67,7 @@ from ..months import month_ranges
 from ._chain import markov_chain
 
 __all__ = [
+    "remaining_term",
     "Curves",
     "project_loans",
     "origination_pd",
@@ -220,6 +221,16 @@ def _before_first(rule: dict, loans: pd.DataFrame) -> np.ndarray:
     return np.full(len(loans), np.nan)
 
 
+def remaining_term(age, term) -> np.ndarray:
+    """Months left to project: ``term - age``, and 1 for a loan at or past its term with a balance left.
+
+    Such a loan (a balloon, an extension, arrears at maturity) still owes its balance: the rule is that
+    the whole balance falls due at the end of the next month, so it is projected over one month, its
+    default risk that month's hazard and its exposure the whole balance.
+    """
+    return np.maximum(np.asarray(term, dtype=np.int64) - np.asarray(age, dtype=np.int64), 1)
+
+
 def loan_list_text(values) -> str:
     values = list(values)
     head = ", ".join(map(str, values[:5]))
@@ -250,9 +261,6 @@ def _check_loans(loans: pd.DataFrame, needed: Sequence[str], *, balance_col: str
         age = loans[age_col].to_numpy()
         if (age < 0).any():
             raise ProjectionError(f"loans: negative age for {loan_list_text(ids[age < 0])}")
-        past = age >= term
-        if past.any():
-            raise ProjectionError(f"loans: at or past maturity (age >= term) for {loan_list_text(ids[past])}; nothing to project")
     elif (term < 1).any():
         raise ProjectionError(f"loans: term below 1 month for {loan_list_text(ids[term < 1])}")
     bal = loans[balance_col].to_numpy(dtype=float)
@@ -620,7 +628,7 @@ def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination
         frame=frame,
         loan_id=frame["loan_id"].to_numpy(),
         age=age,
-        remaining=term - age,
+        remaining=remaining_term(age, term),
         rate=frame["note_rate"].to_numpy(dtype=float),
         balance=balance,
         start_idx=start,
@@ -1229,7 +1237,8 @@ def origination_pd(
         haz, *_ = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=True)
         curves = Curves.from_hazards(*haz["origination"])
         s, f_d = curves.survival, curves.cum_default
-        a = np.clip(ages[sl], 0, f_d.shape[1])
+        # a loan at or past its term is compared over its last contractual month (see remaining_term)
+        a = np.clip(ages[sl], 0, book.remaining[sl] - 1)
         rows = np.arange(len(a))
         f_a = np.where(a > 0, f_d[rows, np.maximum(a - 1, 0)], 0.0)
         s_a = np.where(a > 0, s[rows, np.maximum(a - 1, 0)], 1.0)

@@ -2,6 +2,7 @@
 
 from ._combine import combine_partitions, expected_credit_loss_by_partition
 from ._ecl import (
+    MONTHS_IN_DEFAULT,
     SICR_HISTORY,
     SICR_MULTIPLIERS,
     STAGE_REASONS,
@@ -11,11 +12,12 @@ from ._ecl import (
     collateral_lgd,
     discount_factors,
     expected_credit_loss,
+    months_to_sale,
     segment_summary,
     sicr_sensitivity,
 )
 
 __all__ = [
-    "SICR_HISTORY", "SICR_MULTIPLIERS", "STAGE_REASONS", "EclResult", "Stages", "allocate_stages", "collateral_lgd", "combine_partitions", "discount_factors",
-    "expected_credit_loss", "expected_credit_loss_by_partition", "segment_summary", "sicr_sensitivity",
+    "MONTHS_IN_DEFAULT", "SICR_HISTORY", "SICR_MULTIPLIERS", "STAGE_REASONS", "EclResult", "Stages", "allocate_stages", "collateral_lgd", "combine_partitions", "discount_factors",
+    "expected_credit_loss", "expected_credit_loss_by_partition", "months_to_sale", "segment_summary", "sicr_sensitivity",
 ]  # fmt: skip

@@ -51,6 +51,7 @@ from ..forecast import (
     loan_list_text,
     origination_pd,
     project_loans,
+    remaining_term,
     repeat_ids,
     scenario_column,
     scenario_weights,
@@ -58,6 +59,8 @@ from ..forecast import (
 from ..model import hpi_series_name
 
 __all__ = [
+    "MONTHS_IN_DEFAULT",
+    "months_to_sale",
     "discount_factors",
     "collateral_lgd",
     "allocate_stages",
@@ -102,17 +105,22 @@ def collateral_lgd(
 
     recovery = property_value x hpi_sale / hpi_origination x
     (1 - forced_sale_haircut - sale_costs), received ``months_to_recovery``
-    months after default and discounted to the default month at r/12 a month.
-    LGD is 1 where EAD <= 0 would make the ratio undefined (no exposure).
+    months after default (a number, or one per loan) and discounted to the
+    default month at r/12 a month. LGD is 1 where EAD <= 0 would make the
+    ratio undefined (no exposure).
     """
     ead = np.asarray(ead, dtype=float)
     r = np.asarray(note_rate, dtype=float) / 12.0
     net = max(1.0 - forced_sale_haircut - sale_costs, 0.0)
     recovery = np.asarray(property_value, float) * np.asarray(hpi_sale, float) / np.asarray(hpi_origination, float) * net
-    pv = recovery * (1.0 + r) ** (-float(months_to_recovery))
+    pv = recovery * (1.0 + r) ** (-np.asarray(months_to_recovery, dtype=float))
     with np.errstate(invalid="ignore", divide="ignore"):
         lgd = np.where(ead > 0, 1.0 - pv / np.where(ead > 0, ead, 1.0), 1.0)
     return np.clip(lgd, floor, 1.0)
+
+
+MONTHS_IN_DEFAULT = "months_in_default"
+"""Book column: months since the default a loan is in began (0 in its first month); empty when not in default."""
 
 
 STAGE_REASONS = ("default", "cure_period", "backstop", "sicr_relative", "sicr_absolute", "watch_list", "probation")
@@ -220,7 +228,7 @@ def allocate_stages(
     return Stages(stage, reason, since_sicr)
 
 
-_MAY_BE_EMPTY = ("loan_id", "pd_lifetime_origination", "months_since_arrears", "months_since_sicr")
+_MAY_BE_EMPTY = ("loan_id", "pd_lifetime_origination", "months_since_arrears", MONTHS_IN_DEFAULT, "months_since_sicr")
 
 SICR_MULTIPLIERS = (0.5, 1.0, 1.5, 2.0)
 """The multiples of ``staging.sicr_relative`` of :func:`sicr_sensitivity` (common practice for such a table)."""
@@ -515,21 +523,37 @@ SICR_HISTORY = "months_since_sicr_before"
 """Book column: months since the loan last met the SICR test or the watch list, at the previous month-end."""
 
 
+def months_to_sale(frame: pd.DataFrame, months_to_recovery: int) -> np.ndarray:
+    """Months from the reporting month to the sale of the collateral of a loan in default now.
+
+    The sale is ``loss.lgd.months_to_recovery`` months after the default began, so a loan that has been
+    in default for m months is sold ``months_to_recovery - m`` months from now; a loan in default for longer
+    is taken as sold at the reporting month (0). Without ``months_in_default`` (or where it is empty) the
+    default is taken to begin at the reporting month.
+    """
+    if MONTHS_IN_DEFAULT not in frame.columns:
+        return np.full(len(frame), int(months_to_recovery), dtype=np.int64)
+    elapsed = frame[MONTHS_IN_DEFAULT].fillna(0).to_numpy(dtype=np.int64)
+    return np.maximum(int(months_to_recovery) - elapsed, 0)
+
+
 def _lgd_at_reporting_month(frame, ead0, rate, lookup, lgd_cfg, region_column, hpi_names, as_of_idx) -> np.ndarray:
-    """LGD of a default at the reporting month (the stage-3 basis) under one scenario's house prices."""
+    """LGD of the loans in default at the reporting month (the stage-3 basis) under one scenario's house prices:
+    the sale :func:`months_to_sale` from now, discounted to now."""
     n = len(frame)
     if lgd_cfg.kind == "constant":
         return np.array([lgd_cfg.by_segment.get(str(x), lgd_cfg.constant) for x in frame["segment"]], dtype=float)
     hs, ho = np.empty(n), np.empty(n)
     reg = frame[region_column].to_numpy()
     orig = frame["origination_idx"].to_numpy(dtype=np.int64)
+    to_sale = months_to_sale(frame, lgd_cfg.months_to_recovery)
     for region, name in hpi_names.items():
         rows = reg == region
-        hs[rows] = lookup.get(name, np.full(rows.sum(), as_of_idx + lgd_cfg.months_to_recovery))
+        hs[rows] = lookup.get(name, as_of_idx + to_sale[rows])
         ho[rows] = lookup.get(name, orig[rows])
     return collateral_lgd(
         ead0, frame["property_value"].to_numpy(float), ho, hs, rate,
-        months_to_recovery=lgd_cfg.months_to_recovery, forced_sale_haircut=lgd_cfg.forced_sale_haircut,
+        months_to_recovery=to_sale, forced_sale_haircut=lgd_cfg.forced_sale_haircut,
         sale_costs=lgd_cfg.sale_costs, floor=lgd_cfg.floor,
     )
 
@@ -560,10 +584,11 @@ def _house_price_series(frame, in_default, lookups, lgd_cfg, collateral: Collate
     hpi_names = {r: hpi_series_name(collateral.hpi_series, r) for r in pd.unique(frame[region_column])}
     live = ~in_default
     needs = {}
-    ends = (as_of_idx + frame["term"].to_numpy() - frame["age"].to_numpy() + lgd_cfg.months_to_recovery)
+    ends = as_of_idx + remaining_term(frame["age"].to_numpy(), frame["term"].to_numpy()) + lgd_cfg.months_to_recovery
+    to_sale = as_of_idx + months_to_sale(frame, lgd_cfg.months_to_recovery)
     for region, name in hpi_names.items():
         rows = frame[region_column].to_numpy() == region
-        months = [np.unique(frame["origination_idx"].to_numpy()[rows]), [as_of_idx + lgd_cfg.months_to_recovery]]
+        months = [np.unique(frame["origination_idx"].to_numpy()[rows]), np.unique(to_sale[rows])]
         if (rows & live).any():
             months.append(np.arange(as_of_idx + 1, int(ends[rows & live].max()) + 1))
         needs.setdefault(name, []).extend(months)
@@ -713,6 +738,7 @@ def expected_credit_loss(
             "stage_reason": stages.reason,
             "days_past_due": dpd,
             "months_since_arrears": _optional_column(frame, "months_since_arrears"),
+            "months_in_default": _optional_column(frame, MONTHS_IN_DEFAULT),
             "months_since_sicr": stages.months_since_sicr,
             "pd_12m": measures["pd_12m"][:, weighted].copy(),
             "pd_lifetime": measures["pd_lifetime"][:, weighted].copy(),

@@ -413,6 +413,11 @@ def _summary(tables, meta) -> str:
         out.append(_table(_by_reason(loans), _REASON_COLUMNS, caption="Stages 2 and 3 by reason"))
     if meta.get("sicr_history"):
         out.append(_p(f"Staging: {meta['sicr_history']}."))
+    if meta.get("past_term"):
+        out.append(_p(
+            f"{meta['past_term']:,d} live loans are at or past their contractual term with a balance left; each is "
+            "treated as due now: projected over one month, its whole balance the exposure."
+        ))  # fmt: skip
     return "".join(out)
 
 
