@@ -426,6 +426,9 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     run.add_table(loan_table, "loan_ecl.parquet", csv=csv)
     sensitivity = sicr_sensitivity(result.loans, book, cfg.staging)
     run.add_table(sensitivity, "sicr_sensitivity.csv")
+    age_tail, tail_table = age_tail_sensitivity(engine, book, model, paths, result, ctx.ecl_options())
+    if tail_table is not None:
+        run.add_table(tail_table, "age_tail_sensitivity.csv")
     run.add_table(result.segments, "segment_summary.csv")
     tidy, wide = segment_pd_tables(result.projection.term_structure)
     run.add_table(tidy, "segment_pd_table.csv")
@@ -440,6 +443,8 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         "segment_pd_table": segment_level(tidy),
     }
     report_tables["segment_speeds"], report_tables["equivalent_speeds"] = segment_speeds(result.projection.speeds)
+    if tail_table is not None:
+        report_tables["age_tail_sensitivity"] = tail_table
     totals = {
         "loans": int(len(result.loans)),
         "ead": float(np.sum(result.loans["ead"])),
@@ -451,8 +456,54 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         "sicr_history": sicr_history,
         # loans at or past their term with a balance left, projected as due next month (forecast.remaining_term)
         "past_term": int(((book["age"] >= book["term"]) & ~book["in_default"].astype(bool)).sum()),
+        "age_tail": age_tail,
     }
-    return result, report_tables, totals
+    return result, report_tables, {k: v for k, v in totals.items() if v is not None}
+
+
+def age_tail_sensitivity(engine, book, model, paths, result, ecl_options: dict):
+    """How much of the projection rests on loan ages the development data barely cover, and what the other
+    age-tail rule would give.
+
+    The supported ages run to the last one with ``model.baseline.tail_min_loan_months`` development
+    loan-months. For the run's rule and the other one (``hold`` / ``extrapolate``, the ECL recomputed with
+    it): the share of the book's expected defaulted balance (scenario-weighted) falling at older ages, the
+    lifetime and reported ECL and the stage-2 loans. Returns ``(summary, table)``, both ``None`` for a
+    source with no fitted age baseline (benchmark curves, a table).
+    """
+    import pandas as pd
+
+    from .config import WEIGHTED
+    from .loss import expected_credit_loss_by_partition
+    from .model import HazardResults, MultiStateResults, with_age_tail
+
+    if not isinstance(model, (HazardResults, MultiStateResults)) or "supported_age" not in (model.spec.learned or {}):
+        return None, None
+    supported = int(model.spec.learned["supported_age"])
+    rule = "hold" if model.age_cap is not None else "extrapolate"
+    other = "extrapolate" if rule == "hold" else "hold"
+    alternative = expected_credit_loss_by_partition(engine, book, with_age_tail(model, other), paths, **ecl_options)
+    rows = []
+    for name, res in ((rule, result), (other, alternative)):
+        speeds = res.projection.speeds
+        weighted = speeds[speeds["scenario"].astype(str) == WEIGHTED]
+        total = float(weighted["defaulted"].sum())
+        beyond = float(weighted.loc[weighted["loan_age"] > supported, "defaulted"].sum())
+        loans = res.loans
+        rows.append({
+            "tail": name, "in_use": name == rule, "supported_age": supported,
+            "share_of_defaults_beyond": beyond / total if total > 0 else 0.0,
+            "ecl_lifetime": float(loans["ecl_lifetime"].sum()), "ecl_reported": float(loans["ecl_reported"].sum()),
+            "stage_2_loans": int((loans["stage"] == 2).sum()),
+        })  # fmt: skip
+    table = pd.DataFrame(rows)
+    table["ecl_change"] = table["ecl_reported"] - table["ecl_reported"].iloc[0]
+    summary = {
+        "rule": rule, "supported_age": supported,
+        "share_of_defaults_beyond": float(table["share_of_defaults_beyond"].iloc[0]),
+        "ecl_reported_other_rule": float(table["ecl_reported"].iloc[1]),
+    }  # fmt: skip
+    return summary, table
 
 
 def run(config, as_of: str | None = None, out=None, argv=None, progress=None) -> Outcome:

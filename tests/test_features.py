@@ -134,6 +134,19 @@ def test_derived_covariates_read_the_configured_lags(con, book):
     np.testing.assert_allclose(raw["rate_incentive"], inc, rtol=1e-12)
 
 
+def test_the_supported_ages_are_learned_from_the_development_loan_months(con, book):
+    # The last age with at least tail_min_loan_months development loan-months (pandas count of the risk set);
+    # under tail: hold the projection reads it for every older month, under extrapolate nothing is capped.
+    counts = book["loan_months"].groupby("age").size()
+    for need in (50, 400):
+        model = ModelSpec(baseline=Baseline(kind="spline", knots=(3.0, 12.0, 24.0), tail_min_loan_months=need))
+        spec = feature_spec(model, Collateral()).learn(con)
+        assert spec.learned["supported_age"] == counts[counts >= need].index.max()
+        assert spec.age_cap == spec.learned["supported_age"]
+        assert spec.with_tail("extrapolate").age_cap is None and spec.with_tail("extrapolate").learned == spec.learned
+    assert counts.index.max() > spec.age_cap  # the book has older, thinner ages
+
+
 def test_where_filter_and_params(con, book):
     spec = _spec(Covariate(name="score", column="credit_score"))
     first = int(book["loan_months"]["month_idx"].min()) + 12

@@ -58,6 +58,27 @@ def test_run_writes_every_table_with_the_documented_columns(demo_run):
         assert (demo_run / name).exists(), name
 
 
+def test_the_age_tail_sensitivity_is_the_run_with_the_other_rule(demo_run, small_book, tmp_path):
+    # The run holds the hazard's age effect beyond the last supported age (model.baseline.tail: hold, the
+    # default); its sensitivity row for the other rule must be what a run with that rule reports.
+    tail = pd.read_csv(demo_run / "age_tail_sensitivity.csv")
+    manifest = json.loads((demo_run / "manifest.json").read_text())
+    assert tail["tail"].tolist() == ["hold", "extrapolate"] and tail["in_use"].tolist() == [True, False]
+    assert tail.loc[0, "ecl_reported"] == pytest.approx(manifest["totals"]["ecl_reported"], rel=1e-12)
+    model = json.loads((demo_run / "hazard_model.json").read_text())
+    supported = model["features"]["learned"]["supported_age"]
+    assert manifest["totals"]["age_tail"]["supported_age"] == supported == tail.loc[0, "supported_age"]
+    assert 0 < tail.loc[0, "share_of_defaults_beyond"] < 1
+    data = demo_config_data(small_book, tmp_path / "reports")
+    data["model"]["baseline"]["tail"] = "extrapolate"
+    other = creditsurv.run(_write(data, tmp_path))
+    again = pd.read_csv(other.path / "age_tail_sensitivity.csv")
+    assert again["tail"].tolist() == ["extrapolate", "hold"]
+    assert again.loc[0, "ecl_reported"] == pytest.approx(tail.loc[1, "ecl_reported"], rel=1e-12)
+    assert again.loc[1, "ecl_reported"] == pytest.approx(tail.loc[0, "ecl_reported"], rel=1e-12)
+    assert again.loc[0, "share_of_defaults_beyond"] == pytest.approx(tail.loc[1, "share_of_defaults_beyond"], rel=1e-12)
+
+
 def test_run_writes_the_observed_arrears_states_and_transitions(demo_run):
     loans = pd.read_parquet(demo_run / "loan_ecl.parquet")
     states = pd.read_csv(demo_run / "arrears_states.csv").set_index("state")

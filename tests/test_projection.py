@@ -305,6 +305,22 @@ def test_a_source_projects_with_the_lags_it_was_fitted_with():
         bal = bal * (1 + r) - pay
 
 
+def test_a_source_with_an_age_cap_is_projected_at_the_cap_beyond_it():
+    # The age-tail rule hold: months older than the last supported age read that age (and its log).
+    src = LogitSource()
+    src.age_cap = 20
+    loans = _loans()
+    paths = {"base": _paths()["base"]}
+    project_loans(loans, src, paths, as_of_idx=AS_OF, chunk_size=100)
+    raw = src.calls[0]
+    plain = LogitSource()
+    project_loans(loans, plain, paths, as_of_idx=AS_OF, chunk_size=100)
+    true_age = plain.calls[0]["age"]
+    assert true_age.max() > 20
+    np.testing.assert_array_equal(raw["age"], np.minimum(true_age, 20))
+    np.testing.assert_allclose(raw["log_age"], np.log(np.minimum(true_age, 20)), rtol=1e-15)
+
+
 def test_origination_pd_holds_macro_at_the_origination_month():
     src = LogitSource()
     loans = _loans()

@@ -22,7 +22,7 @@ from creditsurv import pipeline
 from creditsurv.config import load_config
 from creditsurv.demo import DEFAULT_MIN_AGE, true_hazard
 from creditsurv.errors import FewEventsWarning
-from creditsurv.model import BenchmarkCurves, hazard_source
+from creditsurv.model import BenchmarkCurves, hazard_source, with_age_tail
 from creditsurv.months import parse_month
 from creditsurv.validation import (
     PACK_COLUMNS,
@@ -121,6 +121,7 @@ def downturn_packs(opened, book):
     return {
         "truth": validation_pack(cfg_true, panel, TrueHazard()),
         "misspecified": validation_pack(cfg_mis, panel, misspecified),
+        "extrapolated": validation_pack(cfg_mis, panel, with_age_tail(misspecified, "extrapolate")),
         "cfg": cfg_true,
     }
 
@@ -248,11 +249,14 @@ def test_backtest_passes_the_true_hazard_and_fails_a_misspecified_model(downturn
         assert right["share_months_outside"] <= 0.20, cause
         assert abs(right["z_total"]) < 3.0, cause
         assert wrong.summary["backtest"][cause]["actual"] == right["actual"]  # same loan-months, same events
-    # Without unemployment, fitted before the 2020 spike: prepayment, which falls when
-    # unemployment rises, is over-predicted month after month.
-    bad = wrong.summary["backtest"]["prepay"]
-    assert bad["share_months_outside"] >= 0.5
-    assert bad["z_total"] < -5.0
+    # Without unemployment, fitted before the 2020 spike: over the downturn the model expects far too few
+    # defaults (the age tail held at the last supported age, the default).
+    bad = wrong.summary["backtest"]["default"]
+    assert bad["z_total"] > 3.0 and bad["actual"] > 1.4 * bad["expected"]
+    # With the age effect extrapolated past the supported ages (a spline beyond its last knot, over ages up to
+    # 24 months older than any the fit saw) prepayment is over-predicted month after month as well.
+    runaway = downturn_packs["extrapolated"].summary["backtest"]["prepay"]
+    assert runaway["share_months_outside"] >= 0.5 and runaway["z_total"] < -5.0
     # Defaults are too few (2-4 a month in this cohort) for a monthly interval to
     # catch the missing unemployment effect; what must hold is that the model does not
     # see the spike: its predicted default rate over 2020-05..2020-12 stays well

@@ -263,6 +263,17 @@ class Baseline:
     max_age: int | None = field(
         default=None, metadata=_doc("age_indicators: ages above this share the last indicator", min=1)
     )
+    tail: Literal["hold", "extrapolate"] = field(
+        default="hold",
+        metadata=_doc(
+            "ages the development data barely cover: hold (project them at the last supported age) or extrapolate "
+            "(let the baseline run on, e.g. a spline linear beyond its last knot)"
+        ),
+    )
+    tail_min_loan_months: int = field(
+        default=1000,
+        metadata=_doc("the supported ages: those up to the last with at least this many development loan-months (common practice)", min=1),
+    )
 
 
 def bin_labels(cuts) -> list[str]:

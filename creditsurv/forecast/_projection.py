@@ -325,6 +325,9 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
     raw_common = {}
     if "age" in spec.names or "log_age" in spec.names:
         ages = (age0[:, None] + u[None, :])[mask].astype(float)
+        cap = getattr(source, "age_cap", None)
+        if cap is not None:  # the age-tail rule hold: older months read the last supported age
+            ages = np.minimum(ages, float(cap))
         if "age" in spec.names:
             raw_common["age"] = ages
         if "log_age" in spec.names:

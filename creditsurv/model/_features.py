@@ -467,6 +467,7 @@ class FeatureSpec:
         problems = [self._name_loans(con, body, params, p, info["inputs"]) for p in problems]
         baseline_constants, found = self._learn_baseline(age_min, age_max)
         learned.update(baseline_constants)
+        learned["supported_age"] = self._supported_age(con, body, params)
         problems += found
         levels, found = self._learn_levels(con, body, params)
         learned["covariates"].update(levels)
@@ -646,6 +647,28 @@ class FeatureSpec:
         return x
 
     # ----------------------------------------------------------------- design
+
+    def _supported_age(self, con, body: str, params) -> int:
+        """The last loan age with at least ``tail_min_loan_months`` development loan-months (the youngest age
+        when none has that many: then only that age is supported)."""
+        need = int(self.baseline.get("tail_min_loan_months", 1))
+        rows = con.execute(
+            f"WITH data AS (\n{body}\n)\nSELECT age, count(*) AS n FROM data GROUP BY age ORDER BY age", list(params)
+        ).fetchall()
+        supported = [int(a) for a, n in rows if n >= need]
+        return max(supported) if supported else int(rows[0][0])
+
+    @property
+    def age_cap(self) -> int | None:
+        """The age the projection reads for every older month under ``tail: hold``: the last supported age
+        (:meth:`learn`); ``None`` under ``extrapolate`` and for a model saved before the rule existed."""
+        if self.baseline.get("tail") != "hold" or not self.learned or "supported_age" not in self.learned:
+            return None
+        return int(self.learned["supported_age"])
+
+    def with_tail(self, rule: str) -> "FeatureSpec":
+        """The same learned spec with the age-tail rule ``rule`` (``hold`` or ``extrapolate``)."""
+        return dataclasses.replace(self, baseline={**self.baseline, "tail": rule})
 
     @property
     def derived_lags(self) -> dict[str, int]:
@@ -986,7 +1009,10 @@ def feature_spec(model, collateral=None) -> FeatureSpec:
                 d["before_first_column"] = c.before_first_column
         covs.append(d)
     b = model.baseline
-    baseline = {"kind": b.kind, "edges": [int(e) for e in b.edges], "knots": [float(k) for k in b.knots], "max_age": b.max_age}
+    baseline = {
+        "kind": b.kind, "edges": [int(e) for e in b.edges], "knots": [float(k) for k in b.knots], "max_age": b.max_age,
+        "tail": b.tail, "tail_min_loan_months": int(b.tail_min_loan_months),
+    }  # fmt: skip
     coll = {}
     if collateral is not None:
         coll = {

@@ -245,6 +245,11 @@ class HazardResults:
         """The lags of the index and rate behind current LTV and the rate incentive (see :attr:`FeatureSpec.derived_lags`)."""
         return self.spec.derived_lags
 
+    @property
+    def age_cap(self) -> int | None:
+        """The oldest age the projection reads (see :attr:`FeatureSpec.age_cap`); ``None`` to extrapolate."""
+        return self.spec.age_cap
+
     def hazards(self, raw) -> tuple[np.ndarray, np.ndarray]:
         """Alias of :meth:`predict_hazards` (the projection's hazard-source protocol)."""
         return self.predict_hazards(raw)

@@ -123,6 +123,11 @@ class MultiStateResults:
         return self.spec.derived_lags
 
     @property
+    def age_cap(self) -> int | None:
+        """The oldest age the projection reads (see :attr:`FeatureSpec.age_cap`); ``None`` to extrapolate."""
+        return self.spec.age_cap
+
+    @property
     def n_rows(self) -> int:
         return int(sum(m.n_rows for m in self.origins.values()))
 

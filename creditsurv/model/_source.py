@@ -21,7 +21,7 @@ from ._hazard import (
 from ._multistate import MultiStateResults, fit_multi_state
 from ._speeds import BenchmarkCurves, HazardTable
 
-__all__ = ["HazardSource", "development_window", "hazard_source", "load_model"]
+__all__ = ["HazardSource", "development_window", "hazard_source", "load_model", "with_age_tail"]
 
 
 @runtime_checkable
@@ -51,6 +51,16 @@ def load_model(path) -> HazardResults | MultiStateResults:
     if isinstance(data, dict) and data.get("format") == MULTI_STATE_FORMAT:
         return MultiStateResults.from_dict(data, path)
     return results_from_dict(data, path)
+
+
+def with_age_tail(model, rule: str):
+    """The fitted ``model`` with its age-tail rule set to ``rule`` (``hold`` or ``extrapolate``); other sources
+    (benchmark curves, tables) are returned as they are."""
+    import dataclasses
+
+    if not isinstance(model, (HazardResults, MultiStateResults)):
+        return model
+    return dataclasses.replace(model, spec=model.spec.with_tail(rule))
 
 
 def development_window(cfg) -> tuple[str, tuple[int, int]]:

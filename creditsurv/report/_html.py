@@ -828,6 +828,27 @@ def _ecl(tables, meta) -> str:
                 "note",
             )
         )
+    tail = tables.get("age_tail_sensitivity")
+    if tail is not None:
+        cols = [
+            ("tail", "Age tail rule", fmt_text),
+            ("supported_age", "Last supported age (months)", fmt_int),
+            ("share_of_defaults_beyond", "Expected defaults at older ages", fmt_pct),
+            ("stage_2_loans", "Stage 2 loans", fmt_int),
+            ("ecl_lifetime", "Lifetime ECL, all loans", fmt_money),
+            ("ecl_reported", "Reported ECL", fmt_money),
+            ("ecl_change", "Change against the rule in use", fmt_money),
+        ]
+        out.append(_table(tail, cols, caption="Loan ages beyond the development data", name="age_tail_sensitivity"))
+        used = tail.loc[tail["in_use"].astype(bool), "tail"]
+        out.append(_p(
+            "The supported ages run to the last with enough development loan-months "
+            "(model.baseline.tail_min_loan_months); older months are projected at the last supported age (hold) "
+            "or by the baseline carried on (extrapolate). Expected defaults: the scenario-weighted defaulted "
+            f"balance. The run uses {used.iloc[0] if len(used) else 'the first row'}; the other row is the same "
+            "run with the other rule.",
+            "note",
+        ))  # fmt: skip
     seg = tables.get("segment_summary")
     if seg is None:
         out.append(_absent("segment_summary"))

@@ -121,6 +121,7 @@ class _UpToAge:
         self.panel_rules = list(getattr(source, "panel_rules", []))
         if hasattr(source, "derived_lags"):
             self.derived_lags = source.derived_lags
+        self.age_cap = getattr(source, "age_cap", None)
         if hasattr(source, "transition_probabilities"):  # a multi-state model: its chain runs whole
             self.labels, self.states = source.labels, source.states
             self.transition_probabilities = source.transition_probabilities
