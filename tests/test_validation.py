@@ -185,8 +185,15 @@ def test_hosmer_lemeshow_matches_hand_computation(pd_book):
     np.testing.assert_array_equal(table["actual"], O)
     np.testing.assert_allclose(table["expected"], E, rtol=1e-12)
     assert summary["hl_statistic"] == pytest.approx(hl, rel=1e-12)
-    assert summary["hl_df"] == 8
+    assert summary["hl_df"] == 8 and summary["hl_sample"] == "development"
     assert summary["hl_p_value"] == pytest.approx(stats.chi2.sf(hl, 8), rel=1e-10)
+    # on an external sample no parameter came from these outcomes: groups degrees of freedom, not groups - 2
+    # (Hosmer, Lemeshow & Sturdivant 2013, Applied Logistic Regression, external validation; from memory)
+    _, external = v.calibration(p, y, groups=10, sample="external")
+    assert external["hl_statistic"] == summary["hl_statistic"] and external["hl_df"] == 10
+    assert external["hl_p_value"] == pytest.approx(stats.chi2.sf(hl, 10), rel=1e-10)
+    with pytest.raises(DataError, match="sample must be one of"):
+        v.calibration(p, y, sample="holdout")
     assert summary["actual"] == y.sum() and summary["expected"] == pytest.approx(p.sum())
     assert table.index.name == "group" and list(table.index) == list(range(1, 11))
 

@@ -981,6 +981,11 @@ def _calibration_part(tables, meta) -> str:
             _p(
                 f"Hosmer-Lemeshow statistic {fmt_stat(hl.get('hl_statistic'))} on {fmt_text(hl.get('hl_df'))} "
                 f"degrees of freedom, p-value {fmt_p(hl.get('hl_p_value'))}."
+                + (
+                    " The outcomes fall after the development window, an external sample: the statistic is "
+                    "referred to as many degrees of freedom as groups (none estimated from these outcomes)."
+                    if hl.get("hl_sample") == "external" else ""
+                )
             )
         )
     if not cal.empty:

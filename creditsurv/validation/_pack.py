@@ -995,7 +995,8 @@ def _score_tables(cfg, engine, cohort, proj, month: int, summary: dict, notes: l
         seg = cfg.segments
         graded = bool(seg.band_column and seg.band_edges and seg.band_column in cohort.columns)
         grade = known["band"].to_numpy() if graded else None
-        table, cal = calibration(p, y, groups=cfg.validation.pd_groups, grade=grade)
+        # the 12 months after the development window: outcomes the fit never saw (an external sample)
+        table, cal = calibration(p, y, groups=cfg.validation.pd_groups, grade=grade, sample="external")
         table = table.reset_index().rename(columns={"grade": "group"})
         out["calibration"] = table[list(PACK_COLUMNS["calibration"])]
         summary["calibration"] = cal

@@ -461,7 +461,14 @@ def _quantile_groups(x: np.ndarray, groups: int) -> np.ndarray:
     return np.floor(pos * groups / len(x)).astype(np.int64) + 1
 
 
-def calibration(predicted, default, *, groups: int = 10, grade=None, level: float = 0.95):
+HL_DEGREES_OF_FREEDOM = {"development": 2, "external": 0}
+"""Degrees of freedom the Hosmer-Lemeshow statistic loses, by sample: ``groups - 2`` on the sample the model
+was fitted on, ``groups`` on an external (out-of-sample or out-of-time) one, where no parameter was estimated
+from the outcomes (Hosmer, Lemeshow & Sturdivant 2013, *Applied Logistic Regression*, 3rd ed., the chapter on
+external validation; cited from memory)."""
+
+
+def calibration(predicted, default, *, groups: int = 10, grade=None, level: float = 0.95, sample: str = "development"):
     """Predicted PD against realised default rates, by PD group or by grade.
 
     Parameters
@@ -488,17 +495,19 @@ def calibration(predicted, default, *, groups: int = 10, grade=None, level: floa
         ``pd_mean``, scipy.stats.binomtest) and ``hl_term``.
     summary : dict
         ``n``, ``groups``, ``expected``, ``actual``, ``hl_statistic``
-        = sum (O - E)^2 / (E (1 - E / n)), ``hl_df`` = groups - 2 and
-        ``hl_p_value`` (chi-square upper tail; NaN when hl_df < 1).  The
-        groups - 2 degrees of freedom are Hosmer and Lemeshow's for the
-        sample the model was fitted on; out of sample the statistic is often
-        referred to ``groups`` degrees of freedom instead, which a reader can
-        apply from ``hl_statistic``.
+        = sum (O - E)^2 / (E (1 - E / n)), ``hl_df`` and ``hl_p_value``
+        (chi-square upper tail; NaN when hl_df < 1), and ``hl_sample``.
+    sample : {"development", "external"}, default "development"
+        Where the outcomes come from: the sample the model was fitted on
+        (``hl_df`` = groups - 2) or an external one, e.g. outcomes after the
+        development window (``hl_df`` = groups); see :data:`HL_DEGREES_OF_FREEDOM`.
     """
-    return _calibration(predicted, default, groups=groups, grade=grade, level=level)
+    if sample not in HL_DEGREES_OF_FREEDOM:
+        raise DataError(f"sample must be one of {list(HL_DEGREES_OF_FREEDOM)}, got {sample!r}")
+    return _calibration(predicted, default, groups=groups, grade=grade, level=level, sample=sample)
 
 
-def _calibration(pred, default, *, groups, grade, level):
+def _calibration(pred, default, *, groups, grade, level, sample="development"):
     p = as_1d(pred, "pd")
     y = _check_binary(default, "default")
     _check_same_length(pd=p, default=y)
@@ -542,7 +551,7 @@ def _calibration(pred, default, *, groups, grade, level):
     with np.errstate(divide="ignore", invalid="ignore"):
         table["hl_term"] = (o - e) ** 2 / (e * (1 - e / m))
     stat = float(table["hl_term"].sum())
-    dof = len(table) - 2
+    dof = len(table) - HL_DEGREES_OF_FREEDOM[sample]
     summary = {
         "n": int(len(p)),
         "groups": int(len(table)),
@@ -551,6 +560,7 @@ def _calibration(pred, default, *, groups, grade, level):
         "hl_statistic": stat,
         "hl_df": dof,
         "hl_p_value": float(stats.chi2.sf(stat, dof)) if dof >= 1 else float("nan"),
+        "hl_sample": sample,
     }
     return table, summary
 
