@@ -458,7 +458,7 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         "past_term": int(((book["age"] >= book["term"]) & ~book["in_default"].astype(bool)).sum()),
         "age_tail": age_tail,
     }
-    return result, report_tables, {k: v for k, v in totals.items() if v is not None}
+    return result, report_tables, totals
 
 
 def age_tail_sensitivity(engine, book, model, paths, result, ecl_options: dict):
