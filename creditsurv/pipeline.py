@@ -405,6 +405,8 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     states = state_distribution(book, cfg.arrears.labels(cfg.default_definition.days_past_due))
     run.add_table(states, "arrears_states.csv")
     paths = scenario_paths(ctx, engine, model, book, loaded)
+    routes = default_routes_of(engine, cfg)
+    ecl_options = {**ctx.ecl_options(), "days_past_due_share": routes["days_past_due_share"]}
     options = {"compression": "zstd"}
     monthly = cfg.outputs.monthly_tables
     with (
@@ -414,7 +416,7 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     ):
         writers = {"schedule": schedule, "curve": curves, "term": annual} if monthly else {"term": annual}
         result = expected_credit_loss_by_partition(
-            engine, book, model, paths, writers=writers, progress=progress, **ctx.ecl_options()
+            engine, book, model, paths, writers=writers, progress=progress, **ecl_options
         )
     result.raise_for_non_finite()
     run.outputs["pd_annual_by_loan.parquet"]["rows"] = annual.rows
@@ -426,7 +428,7 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     run.add_table(loan_table, "loan_ecl.parquet", csv=csv)
     sensitivity = sicr_sensitivity(result.loans, book, cfg.staging)
     run.add_table(sensitivity, "sicr_sensitivity.csv")
-    age_tail, tail_table = age_tail_sensitivity(engine, book, model, paths, result, ctx.ecl_options())
+    age_tail, tail_table = age_tail_sensitivity(engine, book, model, paths, result, ecl_options)
     if tail_table is not None:
         run.add_table(tail_table, "age_tail_sensitivity.csv")
     run.add_table(result.segments, "segment_summary.csv")
@@ -457,8 +459,37 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         # loans at or past their term with a balance left, projected as due next month (forecast.remaining_term)
         "past_term": int(((book["age"] >= book["term"]) & ~book["in_default"].astype(bool)).sum()),
         "age_tail": age_tail,
+        "default_routes": routes,
     }
     return result, report_tables, totals
+
+
+def default_routes_of(engine, cfg) -> dict:
+    """The routes into default behind the projected exposure at default (``loss.exposure``).
+
+    The share of defaults on days past due is the config's, else that of the default events of the
+    development window (the rest defaulted on a status code alone); with no days-past-due definition it
+    is 0, and with no default in the window 1. Returns the share, where it came from, the window's default
+    events and the instalments each route has missed.
+    """
+    from .data import DEFAULT_ROUTES_SQL
+
+    exposure = cfg.loss.exposure
+    out = {"onset_months": exposure.onset_months, "onset_months_status": exposure.onset_months_status}
+    if exposure.days_past_due_share is not None:
+        return {"days_past_due_share": float(exposure.days_past_due_share), "source": "loss.exposure.days_past_due_share", **out}
+    dpd = cfg.default_definition.days_past_due
+    if dpd is None:
+        return {"days_past_due_share": 0.0, "source": "no days-past-due default definition", **out}
+    dev = cfg.windows.development
+    counts = engine.frame(DEFAULT_ROUTES_SQL, {"dpd": int(dpd), "first": int(dev.start), "last": int(dev.end)})
+    defaults, on_dpd = int(counts["defaults"].iloc[0]), int(counts["on_days_past_due"].iloc[0])
+    if defaults == 0:
+        return {"days_past_due_share": 1.0, "source": "no default in the development window", **out}
+    return {
+        "days_past_due_share": on_dpd / defaults, "source": "development window", "defaults": defaults,
+        "defaults_on_days_past_due": on_dpd, **out,
+    }  # fmt: skip
 
 
 def age_tail_sensitivity(engine, book, model, paths, result, ecl_options: dict):
@@ -672,6 +703,8 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
         "synthetic": cfg.synthetic_data,
         "sicr_history": (manifest.totals or {}).get("sicr_history"),
         "past_term": (manifest.totals or {}).get("past_term"),
+        "default_routes": (manifest.totals or {}).get("default_routes"),
+        "arrears_fee": cfg.loss.exposure.arrears_fee,
         **({"calibration": manifest.calibration} if manifest.calibration is not None else {}),
     }
     write_report(run.add_file("report.html"), tables, meta)

@@ -87,6 +87,16 @@ EXPECTED_OUTCOMES = {
     "workout": (1, ORIG + 1, 12, AS_OF, "default", 4, ORIG + 4, None, True, False, 330, 988.0, AS_OF),
 }
 
+# loan_id: months_in_arrears_at_default, balance_at_onset: from the last row under 30 days past due up to the
+# default's start (instalments missed), and that row's balance (1000 - age unless given)
+EXPECTED_ONSETS = {
+    "both": (3, 999.0),  # paid at age 1, default at 4
+    "chargeoff": (3, 999.0),
+    "default90": (3, 998.0),  # paid at age 2, default at 5
+    "status": (2, 999.0),  # paid at age 1, default on the status code at 3
+    "workout": (3, 999.0),
+}
+
 # loan_id: outcome of each risk-set row, from its first row on
 EXPECTED_RISK_SET = {
     "both": [0, 0, 0, 1],
@@ -133,7 +143,7 @@ def test_loan_outcomes_match_hand_labels(events_book_panel):
         expected = EXPECTED_OUTCOMES[row[0]]
         # with no cure period the default a loan is in began at its first default: its event month
         start = expected[6] if expected[4] == "default" else None
-        assert tuple(row[1:]) == (*expected, start), row[0]
+        assert tuple(row[1:]) == (*expected, start, *EXPECTED_ONSETS.get(row[0], (None, None))), row[0]
 
 
 def test_loan_outcomes_types(events_book_panel):
@@ -144,6 +154,7 @@ def test_loan_outcomes_types(events_book_panel):
         "censor_reason": "VARCHAR", "in_default_at_as_of": "BOOLEAN", "in_cure_period_at_as_of": "BOOLEAN",
         "days_past_due_at_as_of": "INTEGER",
         "balance_at_as_of": "DOUBLE", "last_arrears_month_idx": "INTEGER", "default_start_month_idx": "INTEGER",
+        "months_in_arrears_at_default": "INTEGER", "balance_at_onset": "DOUBLE",
     }
 
 
@@ -245,6 +256,10 @@ def test_a_cured_loan_is_at_risk_again_in_a_new_spell(tmp_path):
     # age 11 (not its first at 4), workout from age 4; none for the cured loans
     assert book.loc[["incure", "redefault", "workout"], "months_in_default"].tolist() == [2, 1, 8]
     assert book.loc[["recure", "relapse"], "months_in_default"].isna().all()
+    # the delinquency before that default: incure paid at age 7, redefault at age 8 (after its cure), workout at 1
+    assert book.loc[["incure", "redefault", "workout"], "months_in_arrears_at_default"].tolist() == [3, 3, 3]
+    assert book.loc[["incure", "redefault", "workout"], "balance_at_onset"].tolist() == [993.0, 992.0, 999.0]
+    assert book.loc[["recure", "relapse"], ["months_in_arrears_at_default", "balance_at_onset"]].isna().all().all()
     # with no cure period the same loans stop at their first default, and default is absorbing
     config = _config(tmp_path, panel, loans, default_definition={"days_past_due": 90, "status_codes": ["default"]})
     with open_panel(config) as p:
@@ -475,3 +490,25 @@ def test_state_distribution_at_the_reporting_month():
     assert got["loans"].tolist() == [2, 1, 1, 2]
     assert got["balance"].tolist() == [150.0, 30.0, 20.0, 15.0]
     assert got["balance_share"].sum() == pytest.approx(1.0, abs=1e-15)
+
+
+def test_the_routes_into_default_are_counted_on_the_development_window(events_book_panel):
+    # The hand-labelled book's default events: four reach 90 days past due (both, chargeoff, default90,
+    # workout), one defaults on its status code at 30 days past due (status). The projected exposure mixes
+    # the two routes by that share (README, exposure at default).
+    import dataclasses
+
+    from creditsurv.pipeline import default_routes_of
+
+    cfg = events_book_panel.cfg
+    routes = default_routes_of(events_book_panel, cfg)
+    assert (routes["defaults"], routes["defaults_on_days_past_due"]) == (5, 4)
+    assert routes["days_past_due_share"] == 0.8 and routes["source"] == "development window"
+    # a configured share wins; a window with no default leaves every default on days past due
+    configured = dataclasses.replace(cfg, loss=dataclasses.replace(
+        cfg.loss, exposure=dataclasses.replace(cfg.loss.exposure, days_past_due_share=0.5)))
+    assert default_routes_of(events_book_panel, configured)["days_past_due_share"] == 0.5
+    late = dataclasses.replace(cfg.windows.development, start=cfg.windows.development.start + 6)  # 2020-07 on
+    quiet = dataclasses.replace(cfg, windows=dataclasses.replace(cfg.windows, development=late))
+    assert default_routes_of(events_book_panel, quiet)["days_past_due_share"] == 1.0
+    assert default_routes_of(events_book_panel, quiet)["source"] == "no default in the development window"

@@ -15,7 +15,7 @@ import pandas as pd
 import pyarrow as pa
 import pytest
 
-from creditsurv.config import Lgd, Loss, Staging
+from creditsurv.config import Exposure, Lgd, Loss, Staging
 from creditsurv.errors import ProjectionError
 from creditsurv.forecast import WEIGHTED, origination_pd
 from creditsurv.loss import (
@@ -23,6 +23,7 @@ from creditsurv.loss import (
     collateral_lgd,
     discount_factors,
     expected_credit_loss,
+    exposure_at_default,
 )
 from creditsurv.model import HazardTable
 from creditsurv.months import parse_month
@@ -61,17 +62,25 @@ def _small_book():
     )
 
 
-def _hand_ecl(balance, rate, rem, lgd, horizon, discount=True, accrued=False):
-    """sum_{u<=H} S(u-1) hD LGD EAD(u) DF(u), written out month by month."""
+def _hand_ecl(balance, rate, rem, lgd, horizon, discount=True, accrued=False, missed=3, fee=0.0):
+    """sum_{u<=H} S(u-1) hD LGD EAD(u) DF(u), written out month by month.
+
+    A default in month u has missed ``missed`` instalments: EAD is the balance after the last one paid
+    (month u - missed; today's balance when that is before now) with interest for the missed months
+    (IFRS 9 Appendix A, cash shortfalls at the effective rate), plus ``fee`` per missed instalment.
+    """
     r = rate / 12
     payment = -npf.pmt(r, rem, balance) if r > 0 else balance / rem
-    b, s, total = balance, 1.0, 0.0
+    after = [balance]  # after[k]: the balance after k more payments
+    for _ in range(rem):
+        after.append(after[-1] * (1 + r) - payment)
+    s, total = 1.0, 0.0
     for u in range(1, min(horizon, rem) + 1):
-        ead = b * (1 + r) if accrued else b
+        onset = after[max(u - missed, 0)]
+        ead = onset * (1 + r) ** (missed + (1 if accrued else 0)) + fee * missed
         df = (1 + r) ** (-u) if discount else 1.0
         total += s * HD * lgd * ead * df
         s *= 1 - HD - HP
-        b = b * (1 + r) - payment
     return total
 
 
@@ -137,7 +146,8 @@ def test_collateral_lgd_in_the_schedule_uses_the_scenario_hpi_at_the_sale_month(
     sched = pa.concat_tables(tables).to_pandas()
     a = sched[(sched.loan_id == "A") & (sched.scenario == "base")].set_index("month_ahead")
     u, r = 5, 0.06 / 12
-    ead = -npf.fv(r, u - 1, npf.pmt(r, 20, 10_000.0), 10_000.0)
+    # three instalments missed by the default (months 3-5): the balance after two payments, with interest
+    ead = -npf.fv(r, u - 3, npf.pmt(r, 20, 10_000.0), 10_000.0) * (1 + r) ** 3
     value = 20_000.0 * hpi(AS_OF + u + 6) / hpi(AS_OF - 4) * (1 - 0.25)
     expected = max(1 - value / (1 + r) ** 6 / ead, 0.02)
     assert a.loc[u, "ead"] == pytest.approx(ead, rel=1e-10)
@@ -162,7 +172,8 @@ def test_a_loan_past_its_term_with_a_balance_left_is_due_next_month():
         book, _table_source(), {"base": _flat_macro()}, as_of_idx=AS_OF, loss=_loss(), staging=STAGING
     ).loan_table().set_index("loan_id")
     for lid, balance, rate in (("A", 10_000.0, 0.06), ("B", 4_000.0, 0.0)):
-        expected = HD * 0.3 * balance * (1 + rate / 12) ** -1  # marginal PD of month 1 x LGD x EAD x DF(1)
+        # marginal PD of month 1 x LGD x EAD x DF(1); EAD: the balance with three missed months' interest
+        expected = HD * 0.3 * balance * (1 + rate / 12) ** 3 * (1 + rate / 12) ** -1
         assert res.loc[lid, "pd_12m"] == pytest.approx(HD, rel=1e-12)
         assert res.loc[lid, "pd_lifetime"] == pytest.approx(HD, rel=1e-12)
         assert res.loc[lid, "ecl_12m"] == pytest.approx(expected, rel=1e-12)
@@ -189,8 +200,85 @@ def test_stage_3_sale_is_counted_from_the_default_date(months_in_default, to_sal
     ).loan_table().set_index("loan_id")
     assert res.loc["A", "stage"] == 3
     recovery = 12_000.0 * hpi(AS_OF + to_sale) / hpi(AS_OF - 4) * 0.69 / (1 + 0.06 / 12) ** to_sale
-    assert res.loc["A", "lgd"] == pytest.approx(1 - recovery / 10_000.0, rel=1e-12)
-    assert res.loc["A", "ecl_reported"] == pytest.approx(10_000.0 - recovery, rel=1e-12)
+    # no delinquency history in the book: today's balance and three missed months' interest
+    ead = 10_000.0 * (1 + 0.06 / 12) ** 3
+    assert res.loc["A", "lgd"] == pytest.approx(1 - recovery / ead, rel=1e-12)
+    assert res.loc["A", "ecl_reported"] == pytest.approx(ead - recovery, rel=1e-12)
+
+
+# --------------------------------------------------------------------------- exposure at default
+
+
+def test_exposure_at_default_is_every_contractual_flow_still_owed():
+    # IFRS 9 Appendix A, "credit loss" (from memory): the cash shortfall is every contractual cash flow due
+    # less the flows expected, at the original effective interest rate. A loan defaulting on 90 days past
+    # due has missed its last three instalments: at the end of the default month it owes those three,
+    # each grown at the effective rate, and the scheduled balance after the default month's instalment
+    # (numpy-financial's fv on both). That equals the balance after the last paid instalment grown three
+    # months; discounted from the default month it is that balance discounted from the onset.
+    B, r, n = 150_000.0, 0.048 / 12, 300
+    payment = -npf.pmt(r, n, B)
+    for u in (4, 17, 120):
+        onset = -npf.fv(r, u - 3, -payment, B)  # after u - 3 payments
+        owed = npf.fv(r, 3, -payment, 0.0) + -npf.fv(r, u, -payment, B)
+        assert exposure_at_default(onset, 0.048, 3) == pytest.approx(owed, rel=1e-12)
+        assert exposure_at_default(onset, 0.048, 3) * (1 + r) ** -u == pytest.approx(onset * (1 + r) ** -(u - 3), rel=1e-12)
+    # a fee per missed instalment, and one more month's interest
+    assert exposure_at_default(1_000.0, 0.12, 3, arrears_fee=25.0) == pytest.approx(1_000.0 * 1.01**3 + 75.0, rel=1e-15)
+    assert exposure_at_default(1_000.0, 0.12, 3, extra_month=True) == pytest.approx(1_000.0 * 1.01**4, rel=1e-15)
+
+
+@pytest.mark.parametrize("missed, fee", [(0, 0.0), (3, 0.0), (3, 40.0), (5, 10.0)])
+def test_projected_ecl_takes_the_balance_at_the_onset_of_delinquency(missed, fee):
+    # Against the month-by-month sum of _hand_ecl: a default in month u owes the balance after payment
+    # u - missed (today's when that is before now) with the missed months' interest and fees. On main before
+    # this rule EAD was the balance at the start of month u with no arrears interest (missed 3 then raised
+    # this book's lifetime ECL by about 6%).
+    book = _small_book()
+    loss = _loss(exposure=Exposure(onset_months=missed, arrears_fee=fee))
+    res = expected_credit_loss(
+        book, _table_source(), {"base": _flat_macro()}, as_of_idx=AS_OF, loss=loss, staging=STAGING
+    ).loan_table().set_index("loan_id")
+    for lid, lgd in (("A", 0.3), ("B", 0.3), ("C", 0.5)):
+        row = book.set_index("loan_id").loc[lid]
+        rem = row.term - row.age
+        life = _hand_ecl(row.balance, row.note_rate, rem, lgd, rem, missed=missed, fee=fee)
+        assert res.loc[lid, "ecl_lifetime"] == pytest.approx(life, rel=1e-10)
+
+
+def test_routes_into_default_are_mixed_by_their_share():
+    # A quarter of defaults on a status code alone (no missed instalment), the rest on 90 days past due:
+    # the expected loss is the share-weighted loss of the two, each with its own EAD and LGD.
+    hpi = lambda idx: 100.0 * 0.99 ** (idx - AS_OF)  # noqa: E731 - falling prices: the collateral LGD bites
+    lgd_cfg = Lgd(kind="collateral", forced_sale_haircut=0.25, sale_costs=0.06, months_to_recovery=6, floor=0.0)
+    book = _small_book().assign(property_value=[12_000.0, 4_500.0, 7_000.0])
+
+    def lifetime(**kw):
+        loss = Loss(lgd=lgd_cfg, exposure=Exposure(onset_months=3, onset_months_status=0, **kw))
+        out = expected_credit_loss(book, _table_source(), {"base": _flat_macro(hpi=hpi)}, as_of_idx=AS_OF, loss=loss, staging=STAGING)
+        return out.loan_table()["ecl_lifetime"].to_numpy()
+
+    mixed = lifetime(days_past_due_share=0.75)
+    np.testing.assert_allclose(mixed, 0.75 * lifetime(days_past_due_share=1.0) + 0.25 * lifetime(days_past_due_share=0.0), rtol=1e-12)
+    assert (lifetime(days_past_due_share=1.0) > lifetime(days_past_due_share=0.0)).all()
+
+
+def test_stage_3_exposure_comes_from_the_loans_own_delinquency():
+    # Loan A defaulted after five missed instalments from a balance of 10,200 (book columns from the panel);
+    # loan B's panel has no month under 30 days past due before its default: today's balance, 3 missed.
+    book = _small_book()
+    book["days_past_due"] = [150, 120, 0]
+    book["balance_at_onset"] = [10_200.0, None, None]
+    book["months_in_arrears_at_default"] = [5, None, None]
+    t = expected_credit_loss(
+        book, _table_source(), {"base": _flat_macro()}, as_of_idx=AS_OF,
+        loss=_loss(exposure=Exposure(arrears_fee=15.0)), staging=STAGING,
+    ).loan_table().set_index("loan_id")
+    assert t["stage"].tolist() == [3, 3, 1]
+    assert t.loc["A", "ead"] == pytest.approx(10_200.0 * 1.005**5 + 75.0, rel=1e-14)
+    assert t.loc["B", "ead"] == pytest.approx(4_000.0 + 45.0, rel=1e-14)  # note rate 0: no interest
+    assert t.loc["A", "ecl_reported"] == pytest.approx(0.3 * t.loc["A", "ead"], rel=1e-14)
+    assert t.loc["C", "ead"] == 6_000.0  # a live loan's exposure column is today's balance
 
 
 # --------------------------------------------------------------------------- stages
@@ -322,14 +410,15 @@ def test_reported_ecl_is_12_month_for_stage_1_and_lifetime_for_stages_2_and_3():
     assert t.loc["A", "ecl_reported"] == t.loc["A", "ecl_12m"]  # IFRS 9 5.5.5
     assert t.loc["B", "ecl_reported"] == t.loc["B", "ecl_lifetime"]  # IFRS 9 5.5.3
     assert t.loc["B", "ecl_lifetime"] > t.loc["B", "ecl_12m"]
-    # stage 3: LGD x EAD on the as-of balance, PD 1
-    assert t.loc["C", "ecl_reported"] == pytest.approx(0.5 * 6_000.0, rel=1e-15)
+    # stage 3: LGD x EAD, PD 1; with no delinquency history, EAD is today's balance and 3 missed months' interest
+    ead = 6_000.0 * (1 + 0.12 / 12) ** 3
+    assert t.loc["C", "ecl_reported"] == pytest.approx(0.5 * ead, rel=1e-15)
     assert t.loc["C", "pd_lifetime"] == 1.0
     # loans in default are not projected
     assert "C" not in set(res.projection.loans["loan_id"])
     seg = res.segments.set_index(["segment", "stage"])
-    assert seg.loc[("subprime", 3), "ecl"] == pytest.approx(3_000.0)
-    assert seg.loc[("subprime", 3), "coverage_ratio"] == pytest.approx(0.5)
+    assert seg.loc[("subprime", 3), "ecl"] == pytest.approx(0.5 * ead)
+    assert seg.loc[("subprime", 3), "coverage_ratio"] == pytest.approx(0.5 * ead / 6_000.0)
     assert seg["n_loans"].sum() == 3
 
 
@@ -375,11 +464,11 @@ def test_probability_weighting_of_scenarios():
     for s, rate in (("base", 5.0), ("down", 8.0)):
         hd, hp, r = 0.002 * rate, 0.01, 0.06 / 12
         payment = -npf.pmt(r, 20, row.balance)
-        b, surv, total = row.balance, 1.0, 0.0
+        surv, total = 1.0, 0.0
         for u in range(1, 21):
-            total += surv * hd * 0.3 * b * (1 + r) ** (-u)
+            onset = -npf.fv(r, max(u - 3, 0), -payment, row.balance)  # after the last paid instalment
+            total += surv * hd * 0.3 * onset * (1 + r) ** 3 * (1 + r) ** (-u)
             surv *= 1 - hd - hp
-            b = b * (1 + r) - payment
         assert t.loc[0, f"ecl_lifetime_{s}"] == pytest.approx(total, rel=1e-10)
 
 

@@ -12,7 +12,7 @@ import numpy_financial as npf
 import pandas as pd
 import pytest
 
-from creditsurv.config import Lgd, Loss, Staging
+from creditsurv.config import Exposure, Lgd, Loss, Staging
 from creditsurv.errors import ProjectionError
 from creditsurv.forecast import project_loans
 from creditsurv.loss import expected_credit_loss
@@ -151,14 +151,16 @@ def test_pool_run_reproduces_the_standard_cumulative_default(age0, term, psa, sd
         }
     )
     macro = pd.DataFrame({"x": [0.0]}, index=pd.Index([AS_OF], name="month_idx"))
-    # expected defaulted balance sum S(u-1) hD(u) EAD(u): ECL with LGD 1, no discounting
-    loss = Loss(lgd=Lgd(kind="constant", constant=1.0, floor=0.0), discount="none")
+    # expected defaulted balance sum S(u-1) hD(u) EAD(u): ECL with LGD 1, no discounting. The standard's
+    # defaulted balance is the month's beginning balance; with one missed instalment our EAD is that balance
+    # with the month's interest, the same in every month, so the ratio is (1 + r/12) times the standard's
+    loss = Loss(lgd=Lgd(kind="constant", constant=1.0, floor=0.0), discount="none", exposure=Exposure(onset_months=1))
     loans = loans.assign(pd0=0.01)
     res = expected_credit_loss(
         loans, BenchmarkCurves(psa, sda), {"base": macro}, as_of_idx=AS_OF, loss=loss,
         staging=Staging(pd_at_origination_column="pd0"),
     )
-    assert res.loans["ecl_lifetime"].iloc[0] / b0 == pytest.approx(expected, rel=1e-10)
+    assert res.loans["ecl_lifetime"].iloc[0] / b0 == pytest.approx(expected * (1 + rate / 12), rel=1e-10)
 
 
 def test_pool_speeds_recover_the_benchmark_multiples():

@@ -15,6 +15,7 @@ from ._config import (
     DefaultDefinition,
     DuckdbSettings,
     Events,
+    Exposure,
     FitSettings,
     Inputs,
     Lgd,
@@ -50,7 +51,7 @@ from ._weights import WEIGHTED, ScenarioWeights, weight_problems
 
 __all__ = [
     "Arrears", "DATA_CHECK_NAMES", "WEIGHTED", "RunContext", "ScenarioWeights", "run_context", "weight_problems", "Baseline", "Checks", "Collateral", "Config", "Covariate", "DefaultDefinition", "DuckdbSettings",
-    "Events", "FitSettings", "Inputs", "LoanColumns", "LoanSource", "Loss", "Lgd", "MacroColumns",
+    "Events", "FitSettings", "Inputs", "LoanColumns", "LoanSource", "Loss", "Lgd", "Exposure", "MacroColumns",
     "MacroSource", "ModelSpec", "Outputs", "PanelColumns", "PanelSource", "Scenario", "ScenarioExtension",
     "Segments", "SparkSettings", "Staging", "ValidationSettings", "Window", "Windows",
     "bin_labels", "canonical_sha256", "config_files", "config_from_dict", "config_sha256", "config_to_dict", "load_config", "read_yaml", "schema_reference",

@@ -499,9 +499,30 @@ class Lgd:
 
 
 @dataclass(frozen=True)
+class Exposure:
+    """Exposure at default: the balance at the onset of delinquency plus the missed months' interest and fees."""
+
+    onset_months: int = field(
+        default=3,
+        metadata=_doc("instalments missed by a default on days past due (90 days: 3, common practice)", min=0),
+    )
+    onset_months_status: int = field(
+        default=0, metadata=_doc("instalments missed by a default on a status code alone", min=0)
+    )
+    days_past_due_share: float | None = field(
+        default=None,
+        metadata=_doc("share of defaults on days past due; empty: from the development window's defaults", min=0.0, max=1.0),
+    )
+    arrears_fee: float = field(default=0.0, metadata=_doc("fee charged per missed instalment, added to EAD", min=0.0))
+
+
+@dataclass(frozen=True)
 class Loss:
     lgd: Lgd = field(default_factory=Lgd, metadata=_doc("loss given default"))
-    accrued_interest: bool = field(default=False, metadata=_doc("add a month's accrued interest to EAD"))
+    exposure: Exposure = field(default_factory=Exposure, metadata=_doc("exposure at default"))
+    accrued_interest: bool = field(
+        default=False, metadata=_doc("add one more month's interest to EAD (the missed instalments carry theirs)")
+    )
     discount: Literal["effective_interest_rate", "none"] = field(
         default="effective_interest_rate", metadata=_doc("discount rate of expected losses (IFRS 9 B5.5.44)")
     )

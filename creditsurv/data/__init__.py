@@ -20,6 +20,7 @@ from ._checks import (
 from ._events import (
     ABSORBING_STATES,
     CAUSE_CODES,
+    DEFAULT_ROUTES_SQL,
     DESTINATION_MOVE,
     EVENTS,
     LOAN_OUTCOMES_SQL,
@@ -56,7 +57,7 @@ from ._transitions import (
 )
 
 __all__ = [
-    "ABSORBING_STATES", "CAUSE_CODES", "CHECKS", "CHECK_COLUMNS", "Check", "DESTINATION_MOVE", "EVENTS", "LOAN_COLUMNS",
+    "ABSORBING_STATES", "CAUSE_CODES", "CHECKS", "DEFAULT_ROUTES_SQL", "CHECK_COLUMNS", "Check", "DESTINATION_MOVE", "EVENTS", "LOAN_COLUMNS",
     "TRANSITION_COUNTS_SQL", "arrears_state_sql", "book_sql", "loan_months_sql", "panel_history_sql",
     "LOAN_OUTCOMES_SQL", "MACRO_COLUMNS", "OUTCOME_CONTINUE", "OUTCOME_DEFAULT", "OUTCOME_PREPAY", "PREVIOUSLY_DEFAULTED",
     "PANEL_COLUMNS", "PlannedCheck", "Source", "check_frame", "check_severity", "end_states", "event_params",

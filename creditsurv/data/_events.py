@@ -16,7 +16,11 @@ core, giving two tables:
                    meeting the default definition; NULL when none),
                    ``default_start_month_idx`` (the first month of the default the
                    loan is in at the reporting month, after any cured one; NULL when
-                   it has not defaulted by then). The event is
+                   it has not defaulted by then), ``months_in_arrears_at_default``
+                   (months from the last month under 30 days past due up to that
+                   default's start: the instalments it missed) and ``balance_at_onset``
+                   (that month's balance; both NULL when the panel has no such month).
+                   The event is
                    the loan's first: with cures, later spells are in ``loan_months``.
 ``loan_months``    the risk set: each panel row of a loan at risk (see Cures), up to
                    and including its closure, with ``loan_id``, ``month_idx``,
@@ -60,7 +64,7 @@ read from its days past due.
 from __future__ import annotations
 
 __all__ = [
-    "ABSORBING_STATES", "CAUSE_CODES", "DESTINATION_MOVE", "EVENTS", "LOAN_OUTCOMES_SQL", "OUTCOME_CONTINUE",
+    "ABSORBING_STATES", "CAUSE_CODES", "DEFAULT_ROUTES_SQL", "DESTINATION_MOVE", "EVENTS", "LOAN_OUTCOMES_SQL", "OUTCOME_CONTINUE",
     "OUTCOME_DEFAULT", "OUTCOME_PREPAY", "PREVIOUSLY_DEFAULTED", "TRANSITION_COUNTS_SQL", "arrears_state_sql", "book_sql", "event_params", "panel_history_sql",
     "loan_months_sql",
 ]  # fmt: skip
@@ -123,6 +127,15 @@ default_starts AS (
     WHERE prior_default_idx IS NULL OR coalesce(month_idx - 1 - prior_default_idx >= $cure, FALSE)
     GROUP BY loan_id
 ),
+onsets AS (
+    -- the delinquency before that default: the last month up to its start under 30 days past due (no
+    -- instalment a whole month overdue; common practice) is the last one paid, and its balance the exposure
+    SELECT f.loan_id, max(f.month_idx) AS paid_month_idx, arg_max(f.balance, f.month_idx) AS balance_at_onset
+    FROM flagged AS f
+    JOIN default_starts AS ds USING (loan_id)
+    WHERE f.month_idx <= ds.default_start_month_idx AND coalesce(f.days_past_due, 0) < 30
+    GROUP BY f.loan_id
+),
 per_loan AS (
     SELECT loan_id,
            arg_min(age, month_idx) AS entry_age, min(month_idx) AS entry_month_idx,
@@ -150,10 +163,12 @@ event_row AS (
                 THEN default_idx ELSE closed_idx END AS event_month_idx,
            CASE WHEN default_idx IS NOT NULL AND (closed_idx IS NULL OR default_idx <= closed_idx)
                 THEN default_age ELSE closed_age END AS event_age,
-           l.term, ds.default_start_month_idx
+           l.term, ds.default_start_month_idx,
+           ds.default_start_month_idx - os.paid_month_idx AS months_in_arrears_at_default, os.balance_at_onset
     FROM per_loan AS p
     LEFT JOIN (SELECT loan_id, any_value(term) AS term FROM loans GROUP BY loan_id) AS l USING (loan_id)
     LEFT JOIN default_starts AS ds USING (loan_id)
+    LEFT JOIN onsets AS os USING (loan_id)
 ),
 labelled AS (
     SELECT *,
@@ -233,6 +248,16 @@ ORDER BY month_idx, origin_state, destination
 """
 """Observed transitions: loan-months by calendar month, origin state and destination (small)."""
 
+DEFAULT_ROUTES_SQL = f"""
+SELECT count(*) AS defaults,
+       coalesce(sum(CASE WHEN p.days_past_due >= $dpd THEN 1 ELSE 0 END), 0) AS on_days_past_due
+FROM loan_months AS m
+JOIN panel AS p ON p.loan_id = m.loan_id AND p.month_idx = m.month_idx
+WHERE m.outcome = {OUTCOME_DEFAULT} AND m.month_idx BETWEEN $first AND $last
+"""
+"""Default events in months ``$first`` to ``$last``, and how many met the days-past-due threshold (the rest
+defaulted on a status code alone): the routes into default of the exposure at default."""
+
 
 LOAN_OUTCOMES_SQL = f"""
 CREATE OR REPLACE TABLE loan_outcomes AS
@@ -258,7 +283,9 @@ SELECT loan_id,
        CAST(days_past_due_at_as_of AS INTEGER) AS days_past_due_at_as_of,
        CAST(balance_at_as_of AS DOUBLE) AS balance_at_as_of,
        CAST(last_arrears_idx AS INTEGER) AS last_arrears_month_idx,
-       CAST(default_start_month_idx AS INTEGER) AS default_start_month_idx
+       CAST(default_start_month_idx AS INTEGER) AS default_start_month_idx,
+       CAST(months_in_arrears_at_default AS INTEGER) AS months_in_arrears_at_default,
+       CAST(balance_at_onset AS DOUBLE) AS balance_at_onset
 FROM labelled
 ORDER BY loan_id
 """
@@ -278,6 +305,10 @@ _BOOK_SQL = """
            -- months since the default the loan is in began (0 in its first month); NULL when not in default
            CAST(CASE WHEN o.in_default_at_as_of THEN $as_of - o.default_start_month_idx END AS INTEGER)
                AS months_in_default,
+           -- the delinquency before it: months from the last month paid to the default, and that month's balance
+           CAST(CASE WHEN o.in_default_at_as_of THEN o.months_in_arrears_at_default END AS INTEGER)
+               AS months_in_arrears_at_default,
+           CAST(CASE WHEN o.in_default_at_as_of THEN o.balance_at_onset END AS DOUBLE) AS balance_at_onset,
            CAST({arrears_state} AS TINYINT) AS arrears_state,
            {segment} AS segment
     FROM loan_outcomes AS o

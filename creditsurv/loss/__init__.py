@@ -2,6 +2,8 @@
 
 from ._combine import combine_partitions, expected_credit_loss_by_partition
 from ._ecl import (
+    BALANCE_AT_ONSET,
+    MONTHS_IN_ARREARS_AT_DEFAULT,
     MONTHS_IN_DEFAULT,
     SICR_HISTORY,
     SICR_MULTIPLIERS,
@@ -10,14 +12,18 @@ from ._ecl import (
     Stages,
     allocate_stages,
     collateral_lgd,
+    default_routes,
+    defaulted_exposure,
     discount_factors,
     expected_credit_loss,
+    exposure_at_default,
     months_to_sale,
     segment_summary,
     sicr_sensitivity,
 )
 
 __all__ = [
+    "BALANCE_AT_ONSET", "MONTHS_IN_ARREARS_AT_DEFAULT", "default_routes", "defaulted_exposure", "exposure_at_default",
     "MONTHS_IN_DEFAULT", "SICR_HISTORY", "SICR_MULTIPLIERS", "STAGE_REASONS", "EclResult", "Stages", "allocate_stages", "collateral_lgd", "combine_partitions", "discount_factors",
     "expected_credit_loss", "expected_credit_loss_by_partition", "months_to_sale", "segment_summary", "sicr_sensitivity",
 ]  # fmt: skip

@@ -4,9 +4,23 @@ For scenario s and horizon H (months ahead)::
 
     ECL_s(H) = sum_{u=1..H} S_s(u-1) hD_s(u) * LGD_s(u) * EAD(u) * DF(u)
 
-- EAD(u): scheduled level-payment balance at the start of month u (the
-  balance a default in month u leaves outstanding), plus one month's accrued
-  interest B r / 12 when ``loss.accrued_interest``.
+- EAD(u), the exposure at a default in month u (:func:`exposure_at_default`): a loan
+  defaulting on days past due has missed its last L = ``loss.exposure.onset_months``
+  instalments (3 for 90 days), so it owes the scheduled balance after its last paid
+  instalment, B_on = B(u - L + 1) at the start of month u - L + 1, plus interest on it for
+  the L unpaid months at the effective rate, plus ``loss.exposure.arrears_fee`` per missed
+  instalment: EAD(u) = B_on (1 + r/12)^(L + a) + fee x L, a = 1 when
+  ``loss.accrued_interest`` (one more month) else 0. A default on a status code alone misses
+  ``onset_months_status`` instalments (0: EAD is the balance after the default month's
+  payment). The two routes are mixed by the share of defaults on days past due
+  (``loss.exposure.days_past_due_share``, by default that of the development window's
+  defaults): expected loss = sum over routes of share x LGD(EAD) x EAD.
+  This is the cash shortfall of IFRS 9 Appendix A ("credit loss": all contractual cash
+  flows due less those expected, discounted at the original effective interest rate) and
+  B5.5.28 (from memory): the contractual flows from the first missed instalment on are worth
+  B_on at its start, so B_on (1 + r/12)^L at the end of the default month discounted from
+  there is B_on discounted from the onset; the shortfall is dated from the onset.
+  An onset before the reporting month (a loan already in arrears) takes today's balance.
 - DF(u) = (1 + r/12)^(-u), r the loan's effective interest rate (its note
   rate), IFRS 9 5.5.17 and B5.5.44; 1 when ``loss.discount`` is ``none``.
 - LGD: ``constant`` (per segment from ``loss.lgd.by_segment``, else
@@ -21,7 +35,10 @@ For scenario s and horizon H (months ahead)::
 Stages (:func:`allocate_stages`):
 stage 3 when in default at the reporting month (credit-impaired; IFRS 9
 B5.5.37, the 90 days past due presumption enters through the default
-definition): ECL = LGD x EAD on the as-of balance, PD = 1;
+definition): ECL = LGD x EAD, PD = 1, with EAD from the loan's own delinquency in the
+panel (the balance of its last month under 30 days past due and the instalments missed from
+then to the default's start; interest stops at default, common practice for credit-impaired
+loans) and the sale ``months_to_recovery`` after the default began;
 stage 2 at or above ``staging.dpd_backstop`` days past due (IFRS 9 5.5.11), on
 a significant increase in credit risk (lifetime PD now against lifetime PD at
 origination), on the watch list, or on probation after one of these (fewer than
@@ -40,7 +57,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from ..config import Collateral, Loss, ScenarioWeights, Staging
+from ..config import Collateral, Exposure, Loss, ScenarioWeights, Staging
 from ..errors import ProjectionError, problem_list
 from ..forecast import (
     WEIGHTED,
@@ -60,6 +77,11 @@ from ..model import hpi_series_name
 
 __all__ = [
     "MONTHS_IN_DEFAULT",
+    "MONTHS_IN_ARREARS_AT_DEFAULT",
+    "BALANCE_AT_ONSET",
+    "exposure_at_default",
+    "default_routes",
+    "defaulted_exposure",
     "months_to_sale",
     "discount_factors",
     "collateral_lgd",
@@ -119,8 +141,40 @@ def collateral_lgd(
     return np.clip(lgd, floor, 1.0)
 
 
+def exposure_at_default(balance_at_onset, note_rate, missed, *, extra_month: bool = False, arrears_fee: float = 0.0):
+    """EAD of a default after ``missed`` unpaid instalments: B_on (1 + r/12)^(missed + a) + fee x missed.
+
+    ``balance_at_onset`` is the balance after the last paid instalment, ``note_rate`` the effective
+    interest rate (decimal a year), a = 1 when ``extra_month``; the arguments broadcast. Interest
+    compounds monthly at the effective rate, so the EAD discounted at that rate from the default month
+    equals the onset balance discounted from the onset (IFRS 9 B5.5.44).
+    """
+    r = np.asarray(note_rate, dtype=float) / 12.0
+    m = np.asarray(missed, dtype=float)
+    return np.asarray(balance_at_onset, dtype=float) * (1.0 + r) ** (m + (1.0 if extra_month else 0.0)) + arrears_fee * m
+
+
+def default_routes(exposure: Exposure, days_past_due_share: float) -> tuple[tuple[float, int], ...]:
+    """The routes into default as ``(share, missed instalments)``: days past due, then status code alone.
+
+    Routes with no share are left out.
+    """
+    share = float(days_past_due_share)
+    if not 0.0 <= share <= 1.0:
+        raise ProjectionError(f"loss.exposure.days_past_due_share: {share} is not a share in [0, 1]")
+    routes = ((share, int(exposure.onset_months)), (1.0 - share, int(exposure.onset_months_status)))
+    return tuple((w, m) for w, m in routes if w > 0)
+
+
 MONTHS_IN_DEFAULT = "months_in_default"
 """Book column: months since the default a loan is in began (0 in its first month); empty when not in default."""
+
+MONTHS_IN_ARREARS_AT_DEFAULT = "months_in_arrears_at_default"
+"""Book column of a loan in default: months from its last month under 30 days past due to the default's start
+(the instalments missed); empty when the panel has no such month."""
+
+BALANCE_AT_ONSET = "balance_at_onset"
+"""Book column of a loan in default: the balance of its last month under 30 days past due before the default."""
 
 
 STAGE_REASONS = ("default", "cure_period", "backstop", "sicr_relative", "sicr_absolute", "watch_list", "probation")
@@ -392,8 +446,9 @@ def segment_summary(loans: pd.DataFrame) -> pd.DataFrame:
 class _EclAccumulator:
     """Consumes projection chunks: per-loan ECL by scenario, ECL schedule rows."""
 
-    def __init__(self, n, scenarios, weights, loss: Loss, lookups, region_column, hpi_names, as_of_idx, writer):
+    def __init__(self, n, scenarios, weights, loss: Loss, routes, lookups, region_column, hpi_names, as_of_idx, writer):
         self.scenarios = scenarios
+        self.routes = routes
         self.weights = weights
         self.loss = loss
         self.lookups = lookups
@@ -428,18 +483,39 @@ class _EclAccumulator:
             forced_sale_haircut=lgd.forced_sale_haircut, sale_costs=lgd.sale_costs, floor=lgd.floor,
         )
 
+    def _exposures(self, ch: ChunkProjection) -> list[tuple[float, np.ndarray]]:
+        """Per route, its share and EAD(u) (n, H): the balance after the last paid instalment, u - L + 1."""
+        n, H = ch.mask.shape
+        # column k: the scheduled balance at the start of month k + 1 (0 after the last instalment)
+        after = np.concatenate([ch.balance_start, ch.balance_end[:, -1:]], axis=1)
+        r = ch.note_rate[:, None]
+        out = []
+        for share, missed in self.routes:
+            # an onset before the reporting month (already in arrears) takes today's balance
+            col = np.maximum(np.arange(1, H + 1) - missed, 0)
+            ead = exposure_at_default(
+                after[:, col], r, missed, extra_month=self.loss.accrued_interest, arrears_fee=self.loss.exposure.arrears_fee
+            )
+            out.append((share, np.where(ch.mask, ead, 0.0)))
+        return out
+
     def __call__(self, ch: ChunkProjection) -> None:
         n, H = ch.mask.shape
         u = np.arange(1, H + 1)
         r = ch.note_rate[:, None]
-        ead = ch.balance_start * (1.0 + r / 12.0) if self.loss.accrued_interest else ch.balance_start
+        exposures = self._exposures(ch)
+        ead = sum(share * e for share, e in exposures)
         df = discount_factors(r, u[None, :], self.loss.discount)
         df = np.broadcast_to(df, (n, H))
         h12 = min(12, H)
         el, lgds = {}, {}
         for s in self.scenarios:
-            lgds[s] = self._lgd(s, ch, ead)
-            el[s] = ch.marginal_pd[s] * lgds[s] * ead * df
+            # the loss at default, mixed over the routes: sum share x LGD(EAD) x EAD; lgd = that / EAD
+            per_route = [self._lgd(s, ch, e) for _, e in exposures]
+            at_default = sum(share * lgd * e for (share, e), lgd in zip(exposures, per_route))
+            with np.errstate(invalid="ignore", divide="ignore"):
+                lgds[s] = np.where(ead > 0, at_default / np.where(ead > 0, ead, 1.0), per_route[0])
+            el[s] = ch.marginal_pd[s] * at_default * df
         el[WEIGHTED] = sum(self.weights[s] * el[s] for s in self.scenarios)
         mpd_w = ch.marginal_pd[WEIGHTED]
         num = sum(self.weights[s] * ch.marginal_pd[s] * lgds[s] for s in self.scenarios)
@@ -608,11 +684,34 @@ def _live_measures(n: int, live_rows, names, proj: ProjectionResult, acc: _EclAc
     return measures
 
 
-def _reporting_month_loss(frame, loss: Loss, lookups, region_column, hpi_names, as_of_idx, w) -> tuple[np.ndarray, dict]:
-    """EAD at the reporting month and, per scenario (then weighted), the LGD of a default then: the stage 3 basis."""
+def defaulted_exposure(frame: pd.DataFrame, loss: Loss) -> np.ndarray:
+    """EAD of loans in default from their own delinquency (:func:`exposure_at_default`).
+
+    The balance of the last month under 30 days past due before the default and the instalments missed from
+    then to the default's start (book columns :data:`BALANCE_AT_ONSET`, :data:`MONTHS_IN_ARREARS_AT_DEFAULT`);
+    where the panel has no such month, today's balance and ``loss.exposure.onset_months``.
+    """
+    balance = frame["balance"].to_numpy(dtype=float)
+    onset = _optional_column(frame, BALANCE_AT_ONSET)
+    missed = _optional_column(frame, MONTHS_IN_ARREARS_AT_DEFAULT)
+    known = np.isfinite(onset) & np.isfinite(missed)
+    return exposure_at_default(
+        np.where(known, onset, balance), frame["note_rate"].to_numpy(dtype=float),
+        np.where(known, missed, loss.exposure.onset_months), extra_month=loss.accrued_interest,
+        arrears_fee=loss.exposure.arrears_fee,
+    )  # fmt: skip
+
+
+def _reporting_month_loss(
+    frame, in_default, loss: Loss, lookups, region_column, hpi_names, as_of_idx, w
+) -> tuple[np.ndarray, dict]:
+    """Exposure at the reporting month (for loans in default, at their default) and, per scenario (then
+    weighted), the LGD of a default then: the stage 3 basis."""
     balance = frame["balance"].to_numpy(dtype=float)
     rate = frame["note_rate"].to_numpy(dtype=float)
     ead0 = balance * (1.0 + rate / 12.0) if loss.accrued_interest else balance
+    if in_default.any():
+        ead0 = np.where(in_default, defaulted_exposure(frame, loss), ead0)
     lgd0 = {
         s: _lgd_at_reporting_month(frame, ead0, rate, lookups[s], loss.lgd, region_column, hpi_names, as_of_idx)
         for s in w
@@ -648,6 +747,7 @@ def expected_credit_loss(
     segment_column: str = "segment",
     band_column: str | None = None,
     band_edges: Sequence[float] = (),
+    days_past_due_share: float | None = None,
     schedule_writer: Callable[[pa.Table], None] | None = None,
     curve_writer: Callable[[pa.Table], None] | None = None,
     term_writer: Callable[[pa.Table], None] | None = None,
@@ -673,6 +773,9 @@ def expected_credit_loss(
     loss, staging : config ``Loss`` and ``Staging``
     default_days_past_due : int or None
         Default definition when there is no ``in_default`` column.
+    days_past_due_share : float, optional
+        Share of defaults on days past due (the rest on a status code alone) for the projected EAD;
+        default ``loss.exposure.days_past_due_share``, else 1 with a days-past-due definition and 0 without.
     schedule_writer : callable(pyarrow.Table), optional
         ECL schedule, chunk by chunk: ``loan_id``, ``scenario``,
         ``month_ahead``, ``ead``, ``lgd``, ``marginal_pd``,
@@ -698,8 +801,13 @@ def expected_credit_loss(
     live_rows = np.flatnonzero(~in_default)
     live = frame.iloc[live_rows]
     w = scenario_weights(scenarios, weights)
+    if days_past_due_share is None:
+        days_past_due_share = loss.exposure.days_past_due_share
+    if days_past_due_share is None:
+        days_past_due_share = 1.0 if default_days_past_due is not None else 0.0
+    routes = default_routes(loss.exposure, days_past_due_share)
     acc = _EclAccumulator(
-        len(live), scenarios, w, loss, lookups, collateral.region_column, hpi_names, as_of_idx, schedule_writer
+        len(live), scenarios, w, loss, routes, lookups, collateral.region_column, hpi_names, as_of_idx, schedule_writer
     )
     on_chunk = acc
     if progress is not None:
@@ -727,7 +835,7 @@ def expected_credit_loss(
     )
     stage = stages.stage
 
-    ead0, lgd0 = _reporting_month_loss(frame, loss, lookups, collateral.region_column, hpi_names, as_of_idx, w)
+    ead0, lgd0 = _reporting_month_loss(frame, in_default, loss, lookups, collateral.region_column, hpi_names, as_of_idx, w)
     _fill_defaulted_and_weighted(measures, in_default, ead0, lgd0, names, w)
     ecl_12m, ecl_life = measures["ecl_12m"][:, weighted].copy(), measures["ecl_lifetime"][:, weighted].copy()
     table = pd.DataFrame(

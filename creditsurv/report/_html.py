@@ -413,12 +413,31 @@ def _summary(tables, meta) -> str:
         out.append(_table(_by_reason(loans), _REASON_COLUMNS, caption="Stages 2 and 3 by reason"))
     if meta.get("sicr_history"):
         out.append(_p(f"Staging: {meta['sicr_history']}."))
+    routes = meta.get("default_routes")
+    if routes:
+        out.append(_p(_exposure_text(routes, meta.get("arrears_fee") or 0.0)))
     if meta.get("past_term"):
         out.append(_p(
             f"{meta['past_term']:,d} live loans are at or past their contractual term with a balance left; each is "
             "treated as due now: projected over one month, its whole balance the exposure."
         ))  # fmt: skip
     return "".join(out)
+
+
+def _exposure_text(routes: dict, fee: float) -> str:
+    """The exposure-at-default basis of the run, in one paragraph."""
+    share = routes.get("days_past_due_share", 1.0)
+    basis = {
+        "development window": f"{fmt_pct(share)} of the development window's {fmt_int(routes.get('defaults', 0))} defaults",
+    }.get(routes.get("source"), f"{fmt_pct(share)} of defaults ({routes.get('source')})")
+    text = (
+        "Exposure at default: the balance after the last paid instalment plus interest at the effective rate for "
+        f"the instalments missed before default ({routes.get('onset_months')} for a default on days past due, "
+        f"{routes.get('onset_months_status')} on a status code alone; {basis} were on days past due)"
+    )
+    if fee:
+        text += f", plus a fee of {fee:,.2f} per missed instalment"
+    return text + ". Loans in default take the balance and missed instalments of their own delinquency in the panel."
 
 
 _REASON_COLUMNS = [
