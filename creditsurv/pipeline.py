@@ -460,8 +460,34 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         "past_term": int(((book["age"] >= book["term"]) & ~book["in_default"].astype(bool)).sum()),
         "age_tail": age_tail,
         "default_routes": routes,
+        "origination_view": origination_view_of(cfg, book, paths),
     }
     return result, report_tables, totals
+
+
+def origination_view_of(cfg, book, paths) -> dict:
+    """How the SICR test compared today's lifetime PD with the PD at origination, for the record and report.
+
+    ``basis`` ``single_path`` (both projected on one path: today's ``scenario``, the origination month's
+    values reverting over ``reversion_months``) or ``stored`` (the loan-table column against the weighted
+    PD, with the ``model`` that made it); ``before_macro_history``: loans originated before the macro history
+    starts, whose origination view reads its first month.
+    """
+    from .loss import staging_scenario
+
+    staging = cfg.staging
+    first_month = int(min(p.index.min() for p in paths.values()))
+    before = int((book["origination_idx"] < first_month).sum()) if "origination_idx" in book.columns else 0
+    if staging.pd_at_origination_column:
+        return {
+            "basis": "stored", "column": staging.pd_at_origination_column, "model": staging.pd_at_origination_model,
+            "scenario": staging_scenario(staging, list(paths)),
+        }  # fmt: skip
+    return {
+        "basis": "single_path", "scenario": staging_scenario(staging, list(paths)),
+        "reversion_months": int(cfg.scenario_extension.months), "hold_last_series": list(cfg.scenario_extension.hold_last_series),
+        "before_macro_history": before,
+    }  # fmt: skip
 
 
 def default_routes_of(engine, cfg) -> dict:
@@ -704,6 +730,7 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
         "sicr_history": (manifest.totals or {}).get("sicr_history"),
         "past_term": (manifest.totals or {}).get("past_term"),
         "default_routes": (manifest.totals or {}).get("default_routes"),
+        "origination_view": (manifest.totals or {}).get("origination_view"),
         "arrears_fee": cfg.loss.exposure.arrears_fee,
         **({"calibration": manifest.calibration} if manifest.calibration is not None else {}),
     }

@@ -125,8 +125,10 @@ def demo_loans(tmp_path_factory):
 
 def test_the_demo_staging_responds_to_arrears_and_deterioration(demo_loans):
     # Targets for the simulated book (not rules of the tool): a loan 30-89 days past due has a 12-month PD at
-    # least 3 times a current loan's; stage 2 holds 3-15% of the live loans, at least a quarter through the
+    # least 3 times a current loan's; stage 2 holds 2-15% of the live loans, at least a quarter through the
     # SICR test (common practice for a prime mortgage book; the values are from memory of published reports).
+    # The floor was 3% while the SICR test compared the weighted PD with a macro-held origination view; one
+    # path against one path (README, SICR) puts the demo at about 2.5%.
     loans, manifest = demo_loans
     live = loans[loans["stage"] < 3]
     current = live[live["days_past_due"] < 30]
@@ -134,7 +136,7 @@ def test_the_demo_staging_responds_to_arrears_and_deterioration(demo_loans):
     assert len(arrears) >= 30
     assert arrears["pd_12m"].median() >= 3 * current["pd_12m"].median()
     stage2 = live[live["stage"] == 2]
-    assert 0.03 <= len(stage2) / len(live) <= 0.15, len(stage2) / len(live)
+    assert 0.02 <= len(stage2) / len(live) <= 0.15, len(stage2) / len(live)
     assert stage2["stage_reason"].str.contains("sicr").mean() >= 0.25
     # every reason the demo can give is one of the documented values, and the record counts them
     from creditsurv.loss import STAGE_REASONS

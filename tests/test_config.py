@@ -55,6 +55,13 @@ def _problems(change, tmp_path) -> list[str]:
             "floor, cap, bins, reference, before_first, before_first_column, projection, revert_to, revert_months); did you mean 'transform'?",
             id="unknown-in-list-item",
         ),
+        pytest.param(
+            lambda d: d.update(
+                scenarios=[{"name": "baseline", "weight": 1.0, "path": "b.csv"}], staging={"sicr_scenario": "baseine"}
+            ),
+            "staging.sicr_scenario: 'baseine' is not a configured scenario; did you mean 'baseline'?",
+            id="sicr-scenario-unknown",
+        ),
         pytest.param(lambda d: d.update(seed="abc"), "seed: expected an integer, got 'abc'", id="wrong-type"),
         pytest.param(lambda d: d.update(seed=True), "seed: expected an integer, got True", id="bool-is-not-int"),
         pytest.param(lambda d: d.update(seed=-1), "seed: -1 is below the minimum 0", id="below-minimum"),

@@ -9,6 +9,8 @@ interest rate), B5.5.37 (default definition, 90 days past due).
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import numpy_financial as npf
 import pandas as pd
@@ -499,6 +501,79 @@ def test_pd_at_origination_covers_the_same_remaining_life_as_today():
     # Without an age column the whole term from origination is covered.
     full = origination_pd(book.drop(columns=["age"]), source, _flat_macro())
     np.testing.assert_allclose(full.loc[["A", "B", "C"]].to_numpy(), hd / (hd + hp) * (1 - (1 - hd - hp) ** book["term"].to_numpy()), rtol=1e-12)
+
+
+def _spiking_macro():
+    """Market rate 5% but 9% in loan A's origination month (AS_OF - 4)."""
+    macro = _flat_macro()
+    macro.loc[AS_OF - 4, "mortgage_rate"] = 9.0
+    return macro
+
+
+def _origination_view_by_hand(macro, o, term, age, months=24, hold=False):
+    """Lifetime PD after ``age`` given survival to it, from origination month ``o``: the market rate moves
+    from its value at o to its mean up to o over ``months`` (README, SICR), hD = 0.002 x rate, hP = 0.01."""
+    history = macro.loc[:o, "mortgage_rate"]
+    x0, mean = history.loc[o], history.mean()
+    s, f, f_at_age, s_at_age = 1.0, 0.0, 0.0, 1.0
+    for u in range(1, term + 1):
+        rate = x0 if hold else x0 + (mean - x0) * min(u, months) / months
+        hd = 0.002 * rate
+        f += s * hd
+        s *= 1 - hd - 0.01
+        if u == age:
+            f_at_age, s_at_age = f, s
+    return (f - f_at_age) / s_at_age
+
+
+def test_the_origination_view_reverts_from_the_origination_months_values():
+    # Loan A was granted in a month of a 9% market rate: its origination view is one path from 9% back to the
+    # history's mean up to then over 24 months (scenario_extension.months), not 9% for its whole life. On main
+    # before this rule every series was held at its origination value.
+    from creditsurv.config import ScenarioExtension
+
+    book = _small_book()
+    macro = _spiking_macro()
+    po = origination_pd(book, _MacroSource(), macro)
+    for lid, o, term, age in (("A", AS_OF - 4, 24, 4), ("B", AS_OF - 10, 30, 10), ("C", AS_OF, 6, 0)):
+        assert po[lid] == pytest.approx(_origination_view_by_hand(macro, o, term, age), rel=1e-12), lid
+    # a series listed in hold_last_series holds its origination value
+    held = origination_pd(book, _MacroSource(), macro, extension=ScenarioExtension(hold_last_series=("mortgage_*",)))
+    assert held["A"] == pytest.approx(_origination_view_by_hand(macro, AS_OF - 4, 24, 4, hold=True), rel=1e-12)
+    assert held["A"] > po["A"]
+    # a loan originated before the macro history starts reads its first month
+    early = book.assign(origination_idx=[int(macro.index.min()) - 30, AS_OF - 10, AS_OF])
+    at_first = book.assign(origination_idx=[int(macro.index.min()), AS_OF - 10, AS_OF])
+    np.testing.assert_allclose(origination_pd(early, _MacroSource(), macro).to_numpy(), origination_pd(at_first, _MacroSource(), macro).to_numpy(), rtol=1e-15)
+
+
+def test_the_sicr_test_compares_one_path_with_one_path():
+    # Today's view in the SICR test is one scenario's lifetime PD (the first, or staging.sicr_scenario), like
+    # the projected origination view; the weighted PD would mix a downside the origination view never saw.
+    # Loan C was granted this month at 5%: baseline PD / origination PD is about 1, the weighted one about 1.3.
+    base, down = _flat_macro(), _flat_macro()
+    down.loc[AS_OF + 1:, "mortgage_rate"] = 8.0
+    book = _small_book()
+    staging = Staging(sicr_relative=1.2, sicr_absolute=0.0)
+
+    def run(**kw):
+        return expected_credit_loss(
+            book, _MacroSource(), {"base": base, "down": down}, as_of_idx=AS_OF, weights={"base": 0.5, "down": 0.5},
+            loss=_loss(), staging=dataclasses.replace(staging, **kw),
+        ).loan_table().set_index("loan_id")
+
+    t = run()
+    assert t.loc["C", "pd_lifetime"] / t.loc["C", "pd_lifetime_origination"] > 1.2  # the weighted view would trigger
+    np.testing.assert_array_equal(t["pd_lifetime_staging"], t["pd_lifetime_base"])
+    assert t.loc["C", "stage"] == 1
+    down_view = run(sicr_scenario="down")
+    np.testing.assert_array_equal(down_view["pd_lifetime_staging"], down_view["pd_lifetime_down"])
+    assert down_view.loc["C", "stage"] == 2
+    # a stored PD at origination is compared with today's weighted PD
+    stored = run(pd_at_origination_column="pd0")
+    np.testing.assert_array_equal(stored["pd_lifetime_staging"], stored["pd_lifetime"])
+    with pytest.raises(ProjectionError, match="staging.sicr_scenario: 'up'"):
+        run(sicr_scenario="up")
 
 
 def test_staging_errors_are_clear():

@@ -321,18 +321,24 @@ def test_a_source_with_an_age_cap_is_projected_at_the_cap_beyond_it():
     np.testing.assert_allclose(raw["log_age"], np.log(np.minimum(true_age, 20)), rtol=1e-15)
 
 
-def test_origination_pd_holds_macro_at_the_origination_month():
+def test_origination_pd_reads_one_path_from_the_origination_month():
+    # With every series held (rule hold_last) the path is the origination month's value from then on: a
+    # lag-1 input reads month o in the first month on book (its start) and the held value after it.
+    from creditsurv.config import ScenarioExtension
+
     src = LogitSource()
     loans = _loans()
     hist = _history()
-    po = origination_pd(loans, src, hist, chunk_size=3)
+    po = origination_pd(loans, src, hist, chunk_size=3, extension=ScenarioExtension(rule="hold_last"))
     assert list(po.index) == sorted(loans["loan_id"])
     raw = src.calls[0]
-    ordered = loans.sort_values("loan_id").reset_index(drop=True).iloc[:3]
+    # loans are projected by origination month: the first call holds the first month's first loans
+    ordered = loans.sort_values(["origination_idx", "loan_id"]).reset_index(drop=True)
+    ordered = ordered[ordered["origination_idx"] == ordered["origination_idx"].iloc[0]].iloc[:3]
     counts = ordered["term"].to_numpy()
     orig = np.repeat(ordered["origination_idx"].to_numpy(), counts)
-    np.testing.assert_array_equal(raw["macro:unemployment_rate:1"], hist["unemployment_rate"].loc[orig - 1].to_numpy())
-    np.testing.assert_allclose(raw["rate_incentive"], 100 * np.repeat(ordered["note_rate"].to_numpy(), counts) - hist["mortgage_rate"].loc[orig - 1].to_numpy())
+    np.testing.assert_array_equal(raw["macro:unemployment_rate:1"], hist["unemployment_rate"].loc[orig].to_numpy())
+    np.testing.assert_allclose(raw["rate_incentive"], 100 * np.repeat(ordered["note_rate"].to_numpy(), counts) - hist["mortgage_rate"].loc[orig].to_numpy())
     first = ordered.iloc[0]
     assert raw["age"][0] == 1
     assert raw["current_ltv"][0] == pytest.approx(first["original_balance"] / first["property_value"], rel=1e-12)

@@ -515,3 +515,19 @@ def test_long_tables_are_cut_with_a_note(meta):
     text = parse(render_report({"stability": stability}, meta)).text("validation")
     assert "v059" in text and "v060" not in text
     assert "First 60 of 75 rows shown (full table: stability in the run folder)." in text
+
+
+def test_the_summary_states_the_exposure_and_sicr_basis(tables, meta):
+    # The run's bases in words: the routes into default behind EAD, and what the SICR test compared.
+    routes = {"days_past_due_share": 0.8, "source": "development window", "defaults": 5, "onset_months": 3,
+              "onset_months_status": 0}  # fmt: skip
+    view = {"basis": "single_path", "scenario": "baseline", "reversion_months": 24, "hold_last_series": ["hpi_*"],
+            "before_macro_history": 7}  # fmt: skip
+    text = parse(render_report(tables, {**meta, "default_routes": routes, "origination_view": view, "arrears_fee": 25.0})).text("summary")
+    assert "3 for a default on days past due" in text and "80.00% of the development window's 5 defaults" in text
+    assert "a fee of 25.00 per missed instalment" in text
+    assert "under the baseline scenario" in text and "over 24 months (hpi_* held)" in text
+    assert "7 loans were originated before the macro history starts" in text
+    stored = {"basis": "stored", "column": "pd0", "model": "PD model 2019.2"}
+    text = parse(render_report(tables, {**meta, "origination_view": stored})).text("summary")
+    assert "stored PD at origination (loan-table column pd0, made by PD model 2019.2)" in text

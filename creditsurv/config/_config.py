@@ -535,7 +535,18 @@ class Staging:
     sicr_rule: Literal["both", "either"] = field(default="both", metadata=_doc("combine the two thresholds"))
     dpd_backstop: int = field(default=30, metadata=_doc("stage 2 at or above these days past due (IFRS 9 5.5.11)", min=1))
     pd_at_origination_column: str | None = field(
-        default=None, metadata=_doc("loan-table column of lifetime PD at origination; else projected")
+        default=None,
+        metadata=_doc(
+            "loan-table column of a stored lifetime PD at origination, compared with today's weighted PD; "
+            "else both are projected on one path"
+        ),
+    )
+    pd_at_origination_model: str | None = field(
+        default=None, metadata=_doc("the model version that made the stored PD at origination (recorded, reported)")
+    )
+    sicr_scenario: str | None = field(
+        default=None,
+        metadata=_doc("scenario of today's single-path PD in the SICR test; empty: the first scenario"),
     )
     probation_months: int = field(
         default=3,
@@ -721,6 +732,10 @@ class Config:
             if text:
                 problems.append(f"scenarios: {text}")
             problems += weight_problems({s.name: s.weight for s in self.scenarios})
+        names = [s.name for s in self.scenarios]
+        if self.staging.sicr_scenario is not None and self.staging.sicr_scenario not in names:
+            hint = did_you_mean(self.staging.sicr_scenario, names) or f" (scenarios: {', '.join(names) or 'none'})"
+            problems.append(f"staging.sicr_scenario: {self.staging.sicr_scenario!r} is not a configured scenario{hint}")
         return problems
 
 

@@ -51,6 +51,7 @@ class RunContext:
             "collateral": cfg.collateral,
             "band_column": cfg.segments.band_column,
             "band_edges": cfg.segments.band_edges,
+            "extension": cfg.scenario_extension,
         }
 
 

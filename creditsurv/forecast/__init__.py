@@ -27,10 +27,16 @@ from ._projection import (
     term_structure_frame,
     with_panel_history,
 )
-from ._scenarios import extend_path, extend_paths, load_scenario_paths, prepare_paths
+from ._scenarios import (
+    extend_path,
+    extend_paths,
+    load_scenario_paths,
+    origination_path,
+    prepare_paths,
+)
 
 __all__ = [
-    "ChainResult", "markov_chain", "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "ProjectionResult", "SegmentSums", "TableWriter", "check_coverage",
+    "ChainResult", "markov_chain", "origination_path", "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "ProjectionResult", "SegmentSums", "TableWriter", "check_coverage",
     "extend_path", "extend_paths", "load_scenario_paths", "loan_list_text", "origination_pd", "panel_history_columns", "panel_history_name", "prepare_paths", "with_panel_history", "project_loans", "remaining_term",
     "repeat_ids", "scenario_column", "scenario_weights", "score_band_labels",
     "segment_level", "segment_pd_tables", "segment_speeds", "speeds_frames", "term_structure_frame",

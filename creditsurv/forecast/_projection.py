@@ -65,6 +65,7 @@ from ..model import (
 )
 from ..months import month_ranges
 from ._chain import markov_chain
+from ._scenarios import origination_path
 
 __all__ = [
     "remaining_term",
@@ -594,7 +595,7 @@ def scenario_weights(scenarios, weights) -> ScenarioWeights:
     return weights.in_order(scenarios)
 
 
-def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination: bool):
+def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination: bool, order=("loan_id",)):
     region_column = collateral.region_column
     if spec.ltv and (collateral.hpi_series is None or region_column is None):
         raise ProjectionError(
@@ -612,7 +613,7 @@ def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination
         balance_col="original_balance" if origination else "balance",
         age_col=None if origination else "age",
     )
-    frame = loans.sort_values("loan_id", kind="stable").reset_index(drop=True)
+    frame = loans.sort_values(list(order), kind="stable").reset_index(drop=True)
     n = len(frame)
     term = frame["term"].to_numpy(dtype=np.int64)
     if origination:
@@ -771,6 +772,8 @@ def _coverage_needs(book: _Book, spec: _Spec, hpi_names, market_rate, hold: bool
         if spec.ltv:
             for c, name in enumerate(hpi_names):
                 rows = book.region_code == c
+                if not rows.any():
+                    continue
                 orig = book.orig_idx[rows]
                 # months max(start + u - lag, origination) for u = 1 ... remaining
                 first = int(np.maximum(book.start_idx[rows] + 1 - spec.hpi_lag, orig).min())
@@ -1192,17 +1195,23 @@ def origination_pd(
     source,
     macro: pd.DataFrame,
     *,
+    extension=None,
     chunk_size: int = 2000,
     collateral: Collateral = Collateral(),
 ) -> pd.Series:
     """Lifetime PD of each loan as it could be projected at its origination month.
 
     The same machinery as :func:`project_loans`, from age 0 with the original
-    balance amortised over the full term, and every macro series *held at its
-    value in the origination month* (at its lag): the information available
-    when the loan was granted, with no forecast.  The house-price index is
-    held too, so current LTV is the scheduled balance over the original
-    property value.
+    balance amortised over the full term, on one macro path per origination
+    month (:func:`~creditsurv.forecast.origination_path`): the history up to
+    the origination month, then each series moving in a straight line from its
+    value then to the history's mean up to then over ``extension.months`` (the
+    shape of today's scenarios after their last month), trending series of
+    ``extension.hold_last_series`` held. So the origination view is one
+    reverting path from what was known then, comparable with today's view on
+    one scenario path; holding every series at its origination value for the
+    whole life would compare a static view with a reverting one. A loan
+    originated before the history starts reads the history's first month.
 
     When ``loans`` has an ``age`` column (the age at the reporting month ``a``),
     the PD returned covers the same remaining life as today's lifetime PD:
@@ -1218,35 +1227,57 @@ def origination_pd(
         ``loan_id``, ``origination_idx``, ``term``, ``note_rate``,
         ``original_balance`` and what the source needs.
     macro : DataFrame
-        Macro history indexed by month index, covering the origination months.
+        Macro history indexed by month index, covering the origination months
+        (months after a loan's origination are not read).
+    extension : config ``ScenarioExtension``, optional
+        The reversion's months and held series (default: 24 months, none held).
 
     Returns
     -------
     Series of lifetime PD indexed by loan_id (sorted).
     """
     spec = _parse_inputs(list(source.required_inputs), loans.columns, source)
-    book, hpi_names = _prepare_book(loans, spec, as_of_idx=0, collateral=collateral, origination=True)
-    lookups = {"origination": MacroLookup(macro)}
+    book, hpi_names = _prepare_book(
+        loans, spec, as_of_idx=0, collateral=collateral, origination=True, order=("origination_idx", "loan_id")
+    )
     n_all = len(book.loan_id)
-    if n_all:
-        check_coverage(lookups, _coverage_needs(book, spec, hpi_names, collateral.market_rate_series, hold=True))
     out = np.zeros(n_all)
     if "age" in loans.columns:
         ages = loans.set_index("loan_id")["age"].reindex(book.loan_id).to_numpy(dtype=np.int64)
     else:
         ages = np.zeros(n_all, dtype=np.int64)
-    for start in range(0, n_all, chunk_size):
-        sl = slice(start, min(start + chunk_size, n_all))
-        haz, *_ = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=True)
-        curves = Curves.from_hazards(*haz["origination"])
-        s, f_d = curves.survival, curves.cum_default
-        # a loan at or past its term is compared over its last contractual month (see remaining_term)
-        a = np.clip(ages[sl], 0, book.remaining[sl] - 1)
-        rows = np.arange(len(a))
-        f_a = np.where(a > 0, f_d[rows, np.maximum(a - 1, 0)], 0.0)
-        s_a = np.where(a > 0, s[rows, np.maximum(a - 1, 0)], 1.0)
-        out[sl] = np.where(s_a > 0, (f_d[:, -1] - f_a) / np.where(s_a > 0, s_a, 1.0), 0.0)
-    return pd.Series(out, index=pd.Index(book.loan_id, name="loan_id"), name="pd_lifetime_origination")
+    # loans sorted by origination month: each month's loans are one run of rows, projected on that month's path
+    bounds = np.flatnonzero(np.diff(book.start_idx)) + 1
+    for first, stop in zip(np.r_[0, bounds], np.r_[bounds, n_all]):
+        group = slice(int(first), int(stop))
+        o = int(book.start_idx[first])
+        path = origination_path(macro, o, o + int(book.remaining[group].max()) + 1, extension)
+        lookups = {"origination": MacroLookup(path)}
+        sub = _Book(**{f.name: _rows(getattr(book, f.name), group) for f in dataclasses.fields(_Book)})
+        check_coverage(lookups, _coverage_needs(sub, spec, hpi_names, collateral.market_rate_series, hold=False))
+        for start in range(group.start, group.stop, chunk_size):
+            sl = slice(start, min(start + chunk_size, group.stop))
+            haz, *_ = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=False)
+            curves = Curves.from_hazards(*haz["origination"])
+            s, f_d = curves.survival, curves.cum_default
+            # a loan at or past its term is compared over its last contractual month (see remaining_term)
+            a = np.clip(ages[sl], 0, book.remaining[sl] - 1)
+            rows = np.arange(len(a))
+            f_a = np.where(a > 0, f_d[rows, np.maximum(a - 1, 0)], 0.0)
+            s_a = np.where(a > 0, s[rows, np.maximum(a - 1, 0)], 1.0)
+            out[sl] = np.where(s_a > 0, (f_d[:, -1] - f_a) / np.where(s_a > 0, s_a, 1.0), 0.0)
+    return pd.Series(out, index=pd.Index(book.loan_id, name="loan_id"), name="pd_lifetime_origination").sort_index()
+
+
+def _rows(value, rows: slice):
+    """``value`` restricted to ``rows`` when it holds one entry per loan (arrays, dicts of arrays, frames)."""
+    if isinstance(value, np.ndarray):
+        return value[rows]
+    if isinstance(value, dict):
+        return {k: _rows(v, rows) for k, v in value.items()}
+    if isinstance(value, pd.DataFrame):
+        return value.iloc[rows]
+    return value
 
 
 def segment_pd_tables(term_structure: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:

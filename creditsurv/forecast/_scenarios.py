@@ -20,7 +20,7 @@ import pandas as pd
 from ..errors import DataCheckWarning, ProjectionError, problem_list
 from ..months import format_month, month_ranges, parse_month
 
-__all__ = ["extend_path", "extend_paths", "load_scenario_paths", "prepare_paths"]
+__all__ = ["extend_path", "extend_paths", "load_scenario_paths", "origination_path", "prepare_paths"]
 
 
 # --------------------------------------------------------------------------- months
@@ -249,6 +249,47 @@ def extend_path(
     if end > p1:
         _fill_after_path(out, path, hist_upto, p1, end, rule, months, long_run, hold_last_series, name)
     return out.loc[: int(until_idx)] if until_idx >= start else out.iloc[:0]
+
+
+def origination_path(history: pd.DataFrame, origination_idx: int, until_idx: int, extension=None) -> pd.DataFrame:
+    """The single macro path a loan's lifetime PD at origination is projected on.
+
+    Up to the origination month o, the history; after it, each series moves in a straight line from its
+    value at o to the mean of the history up to o over ``extension.months`` months (then stays), as the
+    scenario paths do after their last month (:func:`extend_path`), except that the long-run value is
+    what was known at o, never ``extension.long_run``. Series of ``extension.hold_last_series`` (and
+    every series with ``extension.rule`` ``hold_last``) hold their value at o. An origination month
+    before the history's first month takes that first month's values, as do the months before it.
+
+    Parameters
+    ----------
+    history : DataFrame
+        Indexed by month index without gaps (only its months up to o are read).
+    origination_idx, until_idx : int
+    extension : config ``ScenarioExtension``, optional
+        Default: revert to the mean over 24 months.
+
+    Returns
+    -------
+    DataFrame indexed by ``month_idx`` from ``min(o, first month) - 1`` to ``until_idx``.
+    """
+    rule = getattr(extension, "rule", "revert_to_mean")
+    months = getattr(extension, "months", 24)
+    hold = getattr(extension, "hold_last_series", ())
+    hist, _, first = _checked_history(history, None, "origination view")
+    o = int(origination_idx)
+    known = hist.loc[first: max(o, first)]
+    start = min(o, first) - 1
+    end = max(int(until_idx), o + 1, first)
+    out = pd.DataFrame(np.nan, index=pd.Index(np.arange(start, end + 1), name="month_idx"), columns=list(hist.columns))
+    out.loc[known.index] = known.to_numpy(dtype=float)
+    before = out.index < first
+    out.loc[before] = known.iloc[0].to_numpy(dtype=float)[None, :]
+    if o < first:
+        out.loc[o] = known.iloc[0].to_numpy(dtype=float)
+    at_o = pd.DataFrame([known.iloc[-1].to_numpy(dtype=float)], index=pd.Index([o], name="month_idx"), columns=hist.columns)
+    _fill_after_path(out, at_o, known, o, end, rule, months, {}, hold, "origination view")
+    return out.loc[: max(int(until_idx), o + 1)]
 
 
 def _checked_history(history: pd.DataFrame, as_of_idx: int | None, name: str) -> tuple[pd.DataFrame, int, int]:

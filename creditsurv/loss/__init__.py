@@ -20,10 +20,11 @@ from ._ecl import (
     months_to_sale,
     segment_summary,
     sicr_sensitivity,
+    staging_scenario,
 )
 
 __all__ = [
     "BALANCE_AT_ONSET", "MONTHS_IN_ARREARS_AT_DEFAULT", "default_routes", "defaulted_exposure", "exposure_at_default",
     "MONTHS_IN_DEFAULT", "SICR_HISTORY", "SICR_MULTIPLIERS", "STAGE_REASONS", "EclResult", "Stages", "allocate_stages", "collateral_lgd", "combine_partitions", "discount_factors",
-    "expected_credit_loss", "expected_credit_loss_by_partition", "months_to_sale", "segment_summary", "sicr_sensitivity",
+    "expected_credit_loss", "expected_credit_loss_by_partition", "months_to_sale", "segment_summary", "sicr_sensitivity", "staging_scenario",
 ]  # fmt: skip

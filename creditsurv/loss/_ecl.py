@@ -82,6 +82,7 @@ __all__ = [
     "exposure_at_default",
     "default_routes",
     "defaulted_exposure",
+    "staging_scenario",
     "months_to_sale",
     "discount_factors",
     "collateral_lgd",
@@ -298,8 +299,8 @@ def sicr_sensitivity(loans: pd.DataFrame, book: pd.DataFrame, staging: Staging =
     Parameters
     ----------
     loans : DataFrame
-        The loan table of :class:`EclResult` (``loan_id``, ``stage``, ``pd_lifetime``,
-        ``pd_lifetime_origination``, ``days_past_due``, ``ecl_12m``, ``ecl_lifetime``).
+        The loan table of :class:`EclResult` (``loan_id``, ``stage``, ``pd_lifetime_staging`` (else
+        ``pd_lifetime``), ``pd_lifetime_origination``, ``days_past_due``, ``ecl_12m``, ``ecl_lifetime``).
     book : DataFrame
         The book the stages were allocated on (its staging history columns and watch-list flag).
 
@@ -321,9 +322,8 @@ def sicr_sensitivity(loans: pd.DataFrame, book: pd.DataFrame, staging: Staging =
     rows = []
     for m in multipliers:
         changed = dataclasses.replace(staging, sicr_relative=staging.sicr_relative * float(m))
-        stages = allocate_stages(
-            table["pd_lifetime"], table["pd_lifetime_origination"], table["days_past_due"], in_default, changed, **history
-        )
+        now = table["pd_lifetime_staging"] if "pd_lifetime_staging" in table.columns else table["pd_lifetime"]
+        stages = allocate_stages(now, table["pd_lifetime_origination"], table["days_past_due"], in_default, changed, **history)
         stage2 = stages.stage == 2
         reported = np.where(stages.stage == 1, table["ecl_12m"], table["ecl_lifetime"])
         live = int((~in_default).sum())
@@ -352,7 +352,9 @@ class EclResult:
     loans : DataFrame
         One row per loan, sorted by loan_id: ``loan_id``, ``segment``,
         ``stage``, ``stage_reason``, ``days_past_due``, ``pd_12m``,
-        ``pd_lifetime``, ``pd_lifetime_origination``, ``balance``, ``ead``,
+        ``pd_lifetime``, ``pd_lifetime_origination``, ``pd_lifetime_staging`` (today's lifetime PD the
+        SICR test compared with it: one scenario's, or the weighted one against a stored origination PD;
+        see :func:`staging_scenario`), ``balance``, ``ead``,
         ``lgd``, ``ecl_12m``, ``ecl_lifetime``, ``ecl_reported``. The PD and
         ECL columns are probability weighted.  ``ead`` is the as-of exposure
         and ``lgd`` the weighted LGD of a default in the reporting month (the
@@ -553,7 +555,7 @@ class _EclAccumulator:
 
 
 def _pd_at_origination(
-    frame, in_default, staging, source, first_path, *, chunk_size, collateral: Collateral
+    frame, in_default, staging, source, first_path, *, chunk_size, collateral: Collateral, extension
 ) -> np.ndarray:
     """Lifetime PD at origination per loan: the configured column, or projected with the origination month's information."""
     if staging.pd_at_origination_column:
@@ -569,7 +571,24 @@ def _pd_at_origination(
     # every loan, those in default too: the origination view does not depend on today's state
     if not len(frame):
         return np.zeros(0)
-    return origination_pd(frame, source, first_path, chunk_size=chunk_size, collateral=collateral).to_numpy()
+    return origination_pd(
+        frame, source, first_path, extension=extension, chunk_size=chunk_size, collateral=collateral
+    ).to_numpy()
+
+
+def staging_scenario(staging: Staging, scenarios: Sequence[str]) -> str:
+    """The scenario whose lifetime PD the SICR test compares with the PD at origination.
+
+    With a stored PD at origination (``staging.pd_at_origination_column``) the probability-weighted PD
+    (``weighted``); else one path, like the projected origination view: ``staging.sicr_scenario``, by
+    default the first scenario.
+    """
+    if staging.pd_at_origination_column:
+        return WEIGHTED
+    name = staging.sicr_scenario or scenarios[0]
+    if name not in scenarios:
+        raise ProjectionError(f"staging.sicr_scenario: {name!r} is not one of the scenarios {list(scenarios)}")
+    return name
 
 
 def _optional_column(frame, column: str) -> np.ndarray:
@@ -748,6 +767,7 @@ def expected_credit_loss(
     band_column: str | None = None,
     band_edges: Sequence[float] = (),
     days_past_due_share: float | None = None,
+    extension=None,
     schedule_writer: Callable[[pa.Table], None] | None = None,
     curve_writer: Callable[[pa.Table], None] | None = None,
     term_writer: Callable[[pa.Table], None] | None = None,
@@ -773,6 +793,9 @@ def expected_credit_loss(
     loss, staging : config ``Loss`` and ``Staging``
     default_days_past_due : int or None
         Default definition when there is no ``in_default`` column.
+    extension : config ``ScenarioExtension``, optional
+        The reversion of the origination view's macro path
+        (:func:`~creditsurv.forecast.origination_path`); default 24 months.
     days_past_due_share : float, optional
         Share of defaults on days past due (the rest on a status code alone) for the projected EAD;
         default ``loss.exposure.days_past_due_share``, else 1 with a days-past-due definition and 0 without.
@@ -826,13 +849,12 @@ def expected_credit_loss(
 
     pd_orig = _pd_at_origination(
         frame, in_default, staging, source, paths[scenarios[0]],
-        chunk_size=chunk_size, collateral=collateral,
+        chunk_size=chunk_size, collateral=collateral, extension=extension,
     )
 
     weighted = len(names) - 1
-    stages = allocate_stages(
-        measures["pd_lifetime"][:, weighted], pd_orig, dpd, in_default, staging, **_staging_history(frame, staging)
-    )
+    pd_staging = measures["pd_lifetime"][:, names.index(staging_scenario(staging, scenarios))].copy()
+    stages = allocate_stages(pd_staging, pd_orig, dpd, in_default, staging, **_staging_history(frame, staging))
     stage = stages.stage
 
     ead0, lgd0 = _reporting_month_loss(frame, in_default, loss, lookups, collateral.region_column, hpi_names, as_of_idx, w)
@@ -851,6 +873,7 @@ def expected_credit_loss(
             "pd_12m": measures["pd_12m"][:, weighted].copy(),
             "pd_lifetime": measures["pd_lifetime"][:, weighted].copy(),
             "pd_lifetime_origination": pd_orig,
+            "pd_lifetime_staging": pd_staging,
             "balance": frame["balance"].to_numpy(dtype=float),
             "ead": ead0,
             "lgd": lgd0[WEIGHTED],

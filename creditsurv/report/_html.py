@@ -411,6 +411,8 @@ def _summary(tables, meta) -> str:
     out.append(_table(_by_stage(loans), _STAGE_COLUMNS, caption="Reported ECL by stage"))
     if "stage_reason" in loans.columns:
         out.append(_table(_by_reason(loans), _REASON_COLUMNS, caption="Stages 2 and 3 by reason"))
+    if meta.get("origination_view"):
+        out.append(_p(_origination_view_text(meta["origination_view"])))
     if meta.get("sicr_history"):
         out.append(_p(f"Staging: {meta['sicr_history']}."))
     routes = meta.get("default_routes")
@@ -422,6 +424,28 @@ def _summary(tables, meta) -> str:
             "treated as due now: projected over one month, its whole balance the exposure."
         ))  # fmt: skip
     return "".join(out)
+
+
+def _origination_view_text(view: dict) -> str:
+    """The basis of the SICR test's comparison, in one paragraph."""
+    if view.get("basis") == "stored":
+        model = view.get("model") or "a model version the config does not state"
+        return (
+            f"SICR basis: today's probability-weighted lifetime PD against the stored PD at origination "
+            f"(loan-table column {view.get('column')}, made by {model})."
+        )
+    held = ", ".join(view.get("hold_last_series") or [])
+    text = (
+        f"SICR basis: like with like on one path each. Today's lifetime PD under the {view.get('scenario')} scenario "
+        f"against the PD at origination projected from the origination month's macro values, moving in a straight "
+        f"line to the history's mean up to then over {view.get('reversion_months')} months"
+        + (f" ({held} held)" if held else "")
+        + "; the reported PD and ECL stay probability-weighted."
+    )
+    before = view.get("before_macro_history") or 0
+    if before:
+        text += f" {fmt_int(before)} loans were originated before the macro history starts: their origination view reads its first month."
+    return text
 
 
 def _exposure_text(routes: dict, fee: float) -> str:
