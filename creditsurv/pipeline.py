@@ -461,8 +461,21 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         "age_tail": age_tail,
         "default_routes": routes,
         "origination_view": origination_view_of(cfg, book, paths),
+        "low_credit_risk": _low_credit_risk_totals(cfg, result.loans),
     }
     return result, report_tables, totals
+
+
+def _low_credit_risk_totals(cfg, loans):
+    """The IFRS 9 5.5.10 exemption of the run: its threshold and the live loans at or below it (None when off)."""
+    from .loss import low_credit_risk
+
+    threshold = cfg.staging.low_credit_risk_pd
+    if threshold is None:
+        return None
+    live = loans["stage"].to_numpy() < 3
+    low = low_credit_risk(loans["pd_12m"], cfg.staging)
+    return {"pd_12m_at_most": float(threshold), "live_loans": int((low & live).sum())}
 
 
 def origination_view_of(cfg, book, paths) -> dict:
@@ -731,7 +744,10 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
         "past_term": (manifest.totals or {}).get("past_term"),
         "default_routes": (manifest.totals or {}).get("default_routes"),
         "origination_view": (manifest.totals or {}).get("origination_view"),
+        "low_credit_risk": (manifest.totals or {}).get("low_credit_risk"),
         "arrears_fee": cfg.loss.exposure.arrears_fee,
+        "asset_correlation": cfg.validation.asset_correlation,
+        "fit_on": cfg.windows.fit_on,
         **({"calibration": manifest.calibration} if manifest.calibration is not None else {}),
     }
     write_report(run.add_file("report.html"), tables, meta)

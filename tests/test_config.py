@@ -62,6 +62,11 @@ def _problems(change, tmp_path) -> list[str]:
             "staging.sicr_scenario: 'baseine' is not a configured scenario; did you mean 'baseline'?",
             id="sicr-scenario-unknown",
         ),
+        pytest.param(
+            lambda d: d["windows"].update(fit_on="development_and_out_of_time"),
+            "windows.fit_on: development_and_out_of_time needs windows.out_of_time",
+            id="fit-on-both-without-out-of-time",
+        ),
         pytest.param(lambda d: d.update(seed="abc"), "seed: expected an integer, got 'abc'", id="wrong-type"),
         pytest.param(lambda d: d.update(seed=True), "seed: expected an integer, got True", id="bool-is-not-int"),
         pytest.param(lambda d: d.update(seed=-1), "seed: -1 is below the minimum 0", id="below-minimum"),
@@ -251,3 +256,20 @@ def test_the_executors_python_is_named_once_and_the_driver_python_cannot_change(
             "spark.pyspark.driver.python": sys.executable}  # fmt: skip
     data = {**MINIMAL, "spark": {"settings": same}}
     assert config_from_dict(data, base_dir=tmp_path).spark.settings == same
+
+
+def test_a_model_refitted_on_both_windows_reads_them_and_says_its_backtest_is_in_sample(tmp_path):
+    # Once validated the production model may be refitted on the development and out-of-time windows together:
+    # the fit's row filter reaches the out-of-time end, and the validation pack labels the backtest in-sample.
+    from creditsurv.model import development_window
+    from creditsurv.validation import out_of_time_in_sample
+
+    data = copy.deepcopy(MINIMAL)
+    data["as_of"] = "2022-06"
+    data["windows"]["out_of_time"] = {"start": "2021-01", "end": "2022-06"}
+    held_out = config_from_dict(data, base_dir=tmp_path)
+    data["windows"]["fit_on"] = "development_and_out_of_time"
+    both = config_from_dict(data, base_dir=tmp_path)
+    assert development_window(held_out)[1] == (held_out.windows.development.start, held_out.windows.development.end)
+    assert development_window(both)[1] == (both.windows.development.start, both.windows.out_of_time.end)
+    assert not out_of_time_in_sample(held_out) and out_of_time_in_sample(both)

@@ -283,6 +283,38 @@ def test_stage_3_exposure_comes_from_the_loans_own_delinquency():
     assert t.loc["C", "ead"] == 6_000.0  # a live loan's exposure column is today's balance
 
 
+def test_lgd_ecl_is_the_lgd_the_reported_ecl_applies():
+    # The lgd column is the LGD of a default now (stage 3's); lgd_ecl is what the reported ECL applies:
+    # sum u<=H S(u-1) hD LGD(u) EAD(u) DF(u) / sum S(u-1) hD EAD(u) DF(u), H = 12 in stage 1. Written out
+    # month by month here with numpy-financial balances and the collateral formula by hand; on main before this
+    # column there was no way to read it from the loan table.
+    hpi = lambda idx: 100.0 * 0.99 ** (idx - AS_OF)  # noqa: E731 - falling prices: LGD rises with u
+    lgd_cfg = Lgd(kind="collateral", forced_sale_haircut=0.25, sale_costs=0.06, months_to_recovery=6, floor=0.0)
+    book = _small_book().assign(property_value=[12_000.0, 4_500.0, 7_000.0])
+    t = expected_credit_loss(
+        book, _table_source(), {"base": _flat_macro(hpi=hpi)}, as_of_idx=AS_OF, loss=Loss(lgd=lgd_cfg), staging=STAGING,
+    ).loan_table().set_index("loan_id")
+    r, n = 0.06 / 12, 20
+    payment = -npf.pmt(r, n, 10_000.0)
+    num = den = 0.0
+    s_prev = 1.0
+    for u in range(1, 13):
+        ead = -npf.fv(r, max(u - 3, 0), -payment, 10_000.0) * (1 + r) ** 3
+        recovery = 12_000.0 * hpi(AS_OF + u + 6) / hpi(AS_OF - 4) * 0.69 / (1 + r) ** 6
+        lgd = max(1 - recovery / ead, 0.0)
+        weight = s_prev * HD * ead * (1 + r) ** -u
+        num, den = num + weight * lgd, den + weight
+        s_prev *= 1 - HD - HP
+    assert t.loc["A", "stage"] == 1
+    assert t.loc["A", "lgd_ecl"] == pytest.approx(num / den, rel=1e-10)
+    assert t.loc["A", "lgd_ecl"] != pytest.approx(t.loc["A", "lgd"], rel=1e-3)
+    # with a constant LGD the two agree
+    flat = expected_credit_loss(
+        book, _table_source(), {"base": _flat_macro()}, as_of_idx=AS_OF, loss=_loss(), staging=STAGING
+    ).loan_table()
+    np.testing.assert_allclose(flat["lgd_ecl"], flat["lgd"], rtol=1e-12)
+
+
 # --------------------------------------------------------------------------- stages
 
 
@@ -574,6 +606,32 @@ def test_the_sicr_test_compares_one_path_with_one_path():
     np.testing.assert_array_equal(stored["pd_lifetime_staging"], stored["pd_lifetime"])
     with pytest.raises(ProjectionError, match="staging.sicr_scenario: 'up'"):
         run(sicr_scenario="up")
+
+
+def test_low_credit_risk_loans_are_exempt_from_the_sicr_test_only():
+    # IFRS 9 5.5.10: an entity may assume credit risk has not increased significantly when the instrument has
+    # low credit risk at the reporting date. The SICR test does not fire for such a loan; the 30 days past due
+    # backstop (5.5.11) and the watch list still do. Without the exemption (main before it) both are stage 2.
+    pd_now, pd0 = np.array([0.04, 0.04, 0.04, 0.04]), np.array([0.01, 0.01, 0.01, 0.01])
+    dpd = np.array([0, 0, 30, 0])
+    low = np.array([True, False, True, True])
+    watch = np.array([False, False, False, True])
+    got = allocate_stages(pd_now, pd0, dpd, np.zeros(4, bool), Staging(), watch_list=watch, low_credit_risk=low)
+    assert got.stage.tolist() == [1, 2, 2, 2]
+    assert got.reason.tolist() == ["", "sicr_relative+sicr_absolute", "backstop", "watch_list"]
+    assert allocate_stages(pd_now, pd0, dpd, np.zeros(4, bool), Staging()).stage.tolist() == [2, 2, 2, 2]
+    # through the ECL: a 12-month PD at or below staging.low_credit_risk_pd (weighted) exempts the loan
+    book = _small_book().assign(pd0=[0.001, 0.001, 0.001])
+    staging = Staging(pd_at_origination_column="pd0", sicr_relative=1.5, sicr_absolute=0.0)
+    res = expected_credit_loss(book, _table_source(), {"base": _flat_macro()}, as_of_idx=AS_OF, loss=_loss(), staging=staging)
+    t = res.loan_table().set_index("loan_id")
+    assert (t["stage"] == 2).all()
+    threshold = float(t["pd_12m"].min())  # the lowest 12-month PD: exactly that loan is low credit risk
+    exempt = expected_credit_loss(
+        book, _table_source(), {"base": _flat_macro()}, as_of_idx=AS_OF, loss=_loss(),
+        staging=dataclasses.replace(staging, low_credit_risk_pd=threshold),
+    ).loan_table().set_index("loan_id")
+    assert (exempt["stage"] == np.where(t["pd_12m"] <= threshold, 1, 2)).all() and (exempt["stage"] == 1).sum() == 1
 
 
 def test_staging_errors_are_clear():

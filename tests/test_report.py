@@ -528,6 +528,16 @@ def test_the_summary_states_the_exposure_and_sicr_basis(tables, meta):
     assert "a fee of 25.00 per missed instalment" in text
     assert "under the baseline scenario" in text and "over 24 months (hpi_* held)" in text
     assert "7 loans were originated before the macro history starts" in text
+    text = parse(render_report(tables, {**meta, "low_credit_risk": {"pd_12m_at_most": 0.001, "live_loans": 42}})).text("summary")
+    assert "Low credit risk (IFRS 9 5.5.10): 42 live loans with a 12-month PD at or below 0.100%" in text
     stored = {"basis": "stored", "column": "pd0", "model": "PD model 2019.2"}
     text = parse(render_report(tables, {**meta, "origination_view": stored})).text("summary")
     assert "stored PD at origination (loan-table column pd0, made by PD model 2019.2)" in text
+
+
+def test_expected_drift_is_explained_beside_the_stability_table(meta):
+    stability = pd.DataFrame({"variable": ["macro:unemployment_rate:1", "dti"], "psi": [12.5, 0.01], "flag": ["expected drift", "stable"]})
+    text = parse(render_report({"stability": stability}, meta)).text("validation")
+    assert "expected drift" in text and "no signal about the model" in text
+    calm = pd.DataFrame({"variable": ["dti"], "psi": [0.01], "flag": ["stable"]})
+    assert "no signal about the model" not in parse(render_report({"stability": calm}, meta)).text("validation")

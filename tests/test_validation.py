@@ -283,6 +283,18 @@ def test_psi_missing_values_get_their_own_bin():
 )
 def test_psi_flag_thresholds(value, flag):
     assert v.psi_flag(value) == flag
+    # a loan-level input reads the same; PSI 0.10 and 0.25 are the customary thresholds (common practice)
+    assert v.psi_flag(value, "current_ltv") == flag
+
+
+@pytest.mark.parametrize("variable", ["macro:unemployment_rate:1", "age", "log_age"])
+def test_inputs_that_move_with_the_calendar_read_expected_drift(variable):
+    # A macro series, or the age of a book one window older, differs between windows by construction:
+    # a PSI of 12.5 on unemployment is expected drift, not a signal about the model; below 0.10 it is stable.
+    assert v.psi_flag(12.5, variable) == v.EXPECTED_DRIFT == "expected drift"
+    assert v.psi_flag(0.12, variable) == "expected drift"
+    assert v.psi_flag(0.05, variable) == "stable"
+    assert not v.moves_with_calendar("current_ltv") and not v.moves_with_calendar("panel:refreshed_score:1")
 
 
 # --------------------------------------------------------------------------- backtest
@@ -312,7 +324,7 @@ def test_backtest_columns_and_sums_by_hand():
     pd.testing.assert_frame_equal(frame, before)  # input untouched
     assert list(out.columns) == [
         "month", "age_band", "cause", "n", "expected", "actual",
-        "predicted_rate", "observed_rate", "observed_lo", "observed_hi", "outside", "z",
+        "predicted_rate", "observed_rate", "observed_lo", "observed_hi", "outside", "z", "z_factor",
     ]
     row = out[(out["month"] == 1) & (out["age_band"] == "a") & (out["cause"] == "default")].iloc[0]
     # Hand computation: n 2, expected 0.3, actual 1, variance 0.1*0.9 + 0.2*0.8.
@@ -522,3 +534,40 @@ def test_state_occupation_names_bad_input():
         v.aalen_johansen_states([1, 2], [0, 1], [0, 5], n_transient=3, n_states=5)
     with pytest.raises(DataError, match="age must hold whole months from 1"):
         v.aalen_johansen_states([0, 2], [0, 1], [0, 1], n_transient=3, n_states=5)
+
+
+# --------------------------------------------------------------------------- one-factor backtest
+
+
+@pytest.mark.parametrize("p", [0.0003, 0.004, 0.05])
+def test_one_factor_variance_against_the_bivariate_normal_and_simulation(p):
+    # Vasicek's one-factor model (Vasicek 2002; BCBS Working Paper 14, 2005; from memory): two exposures both
+    # default with probability Phi_2(c, c; rho), c = Phi^-1(p). Reference: scipy's bivariate normal CDF.
+    from scipy import stats as st
+
+    rho, n = 0.15, 5_000
+    c = st.norm.ppf(p)
+    p2 = st.multivariate_normal(mean=[0, 0], cov=[[1, rho], [rho, 1]], abseps=1e-13, releps=1e-10).cdf([c, c])
+    expected = n * p * (1 - p) + n * (n - 1) * (p2 - p * p)
+    assert v.one_factor_variance(n, p, rho) == pytest.approx(expected, rel=1e-5)
+    assert v.one_factor_variance(n, p, 0.0) == pytest.approx(n * p * (1 - p), rel=1e-15)  # independence: binomial
+    # Simulation: draw the factor, then the count given it (binomial); 100,000 draws, seeded.
+    rng = np.random.default_rng(7)
+    z = rng.standard_normal(100_000)
+    counts = rng.binomial(n, st.norm.cdf((c - np.sqrt(rho) * z) / np.sqrt(1 - rho)))
+    assert counts.var() == pytest.approx(v.one_factor_variance(n, p, rho), rel=0.05)
+
+
+def test_backtest_z_factor_shrinks_a_common_surprise():
+    # One month where every loan-month's default probability was 0.5% but 1.5% defaulted: z under independence
+    # is about 14 (a model failure), the one-factor z about 1.4 (a bad month, as a macro shock gives).
+    n = 10_000
+    frame = pd.DataFrame({"month": "2023-01", "h_default": np.full(n, 0.005), "h_prepay": 0.01,
+                          "outcome": np.r_[np.ones(150), np.zeros(n - 150)].astype(int)})  # fmt: skip
+    t = v.backtest(frame, by="month", asset_correlation=0.15).set_index("cause")
+    var = v.one_factor_variance(n, 0.005, 0.15)
+    assert t.loc["default", "z"] == pytest.approx(100 / np.sqrt(n * 0.005 * 0.995), rel=1e-12)
+    assert t.loc["default", "z_factor"] == pytest.approx(100 / np.sqrt(var), rel=1e-12)
+    assert t.loc["default", "z"] > 10 and abs(t.loc["default", "z_factor"]) < 2
+    same = v.backtest(frame, by="month", asset_correlation=0.0)
+    np.testing.assert_allclose(same["z_factor"], same["z"], rtol=1e-12)

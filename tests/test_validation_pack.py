@@ -406,3 +406,53 @@ def test_benchmark_curves_without_out_of_time_window_skip_with_notes(opened, boo
     assert pack.tables["stability"]["variable"].tolist() == ["age"]
     assert pack.summary["out_of_time"] is None
     assert parse_month(pack.summary["cohort_month"]) == int(cfg.windows.development.end)
+
+
+def test_late_entrants_count_in_the_vintage_comparison_by_left_truncation(book, tmp_path):
+    # A third of the loans are first seen at age 13 (their earlier rows cut from the panel): they enter the
+    # vintage's risk set at age 13 instead of being left out. Reference: statsmodels SurvfuncRight with
+    # entry (not at risk on or before the entry age); with two causes the all-cause survival is
+    # 1 - F_default - F_prepay of the pack's observed curves.
+    import shutil
+
+    from statsmodels.duration.survfunc import SurvfuncRight
+
+    late_book = tmp_path / "late_book"
+    shutil.copytree(book, late_book)
+    panel = pd.read_parquet(book / "panel.parquet")
+    ids = np.sort(panel["loan_id"].unique())[:1500]
+    panel = panel[panel["loan_id"].isin(ids)]
+    late = panel["loan_id"].isin(ids[::3])
+    panel = panel[~late | (panel["age"] >= 13)]
+    panel.to_parquet(late_book / "panel.parquet", index=False)
+    loans = pd.read_parquet(book / "loans.parquet")
+    loans[loans["loan_id"].isin(panel["loan_id"].unique())].to_parquet(late_book / "loans.parquet", index=False)
+    cfg = _config(late_book, tmp_path, validation={"bootstrap": 0})
+    engine, _ = pipeline.open_checked(cfg)
+    try:
+        pack = validation_pack(cfg, engine, TrueHazard())
+        outcomes = engine.con.execute(
+            """
+            SELECT l.origination_idx // 12 AS vintage, o.entry_age - 1 AS entry,
+                   CASE WHEN o.event = 'censored' THEN o.last_age ELSE o.event_age END AS time,
+                   CAST(o.event IN ('default', 'prepay') AS INTEGER) AS status
+            FROM loan_outcomes AS o JOIN loans AS l USING (loan_id)
+            """
+        ).df()
+    finally:
+        engine.close()
+    assert (outcomes["entry"] == 12).sum() > 100 and not any("left out" in n for n in pack.summary["notes"])
+    inc = pack.tables["incidence_by_vintage"]
+    for vintage, group in outcomes[outcomes["time"] > outcomes["entry"]].groupby("vintage"):
+        ref = SurvfuncRight(group["time"].to_numpy(float), group["status"].to_numpy(float), entry=group["entry"].to_numpy(float))
+        mine = inc[inc["vintage"] == vintage].pivot(index="age", columns="cause", values="observed")
+        at = np.asarray(ref.surv_times, dtype=int)
+        at = at[at <= mine.index.max()]
+        np.testing.assert_allclose(
+            1 - mine.loc[at, "default"] - mine.loc[at, "prepay"], ref.surv_prob[: len(at)], rtol=0, atol=1e-10
+        )
+        # the loans seen from origination are at risk at age 1; the late entrants join at 13
+        n_risk = inc[(inc["vintage"] == vintage) & (inc["cause"] == "default")].set_index("age")["n_risk"]
+        assert n_risk.loc[1] == int((group["entry"] == 0).sum())
+        if 13 in n_risk.index and (group["entry"] == 12).any():
+            assert n_risk.loc[13] > n_risk.loc[12]

@@ -240,6 +240,13 @@ class Window:
 class Windows:
     development: Window = field(metadata=_doc("months whose loan-months the model is fitted on"))
     out_of_time: Window | None = field(default=None, metadata=_doc("months held out for the backtest"))
+    fit_on: Literal["development", "development_and_out_of_time"] = field(
+        default="development",
+        metadata=_doc(
+            "the months the model is fitted on; development_and_out_of_time once validated (the out-of-time "
+            "results are then in-sample)"
+        ),
+    )
 
 
 # --------------------------------------------------------------------------- model
@@ -544,6 +551,14 @@ class Staging:
     pd_at_origination_model: str | None = field(
         default=None, metadata=_doc("the model version that made the stored PD at origination (recorded, reported)")
     )
+    low_credit_risk_pd: float | None = field(
+        default=None,
+        metadata=_doc(
+            "IFRS 9 5.5.10: a loan with 12-month PD at or below this is low credit risk, exempt from the SICR test "
+            "(the backstop and watch list still apply); empty: no exemption",
+            min=0.0, max=1.0,
+        ),
+    )
     sicr_scenario: str | None = field(
         default=None,
         metadata=_doc("scenario of today's single-path PD in the SICR test; empty: the first scenario"),
@@ -578,6 +593,13 @@ class ValidationSettings:
     bootstrap: int = field(default=200, metadata=_doc("bootstrap resamples for the AUC interval", min=0))
     pd_groups: int = field(default=10, metadata=_doc("groups for calibration", min=2))
     psi_bins: int = field(default=10, metadata=_doc("bins for stability indices", min=2))
+    asset_correlation: float = field(
+        default=0.15,
+        metadata=_doc(
+            "one-factor asset correlation of the backtest's adjusted z (0.15: Basel II residential mortgages)",
+            min=0.0, max=0.99,
+        ),
+    )
     prior_model: FilePath | None = field(default=None, metadata=_doc("a prior model JSON to compare"))
 
 
@@ -711,6 +733,8 @@ class Config:
         dev, oot = self.windows.development, self.windows.out_of_time
         if dev.end > self.as_of:
             problems.append(f"windows.development.end: {dev.end} is after as_of {self.as_of}")
+        if oot is None and self.windows.fit_on == "development_and_out_of_time":
+            problems.append("windows.fit_on: development_and_out_of_time needs windows.out_of_time")
         if oot is not None:
             if oot.start <= dev.end:
                 problems.append(f"windows.out_of_time.start: {oot.start} must be after development.end {dev.end}")

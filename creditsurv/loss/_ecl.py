@@ -83,6 +83,7 @@ __all__ = [
     "default_routes",
     "defaulted_exposure",
     "staging_scenario",
+    "low_credit_risk",
     "months_to_sale",
     "discount_factors",
     "collateral_lgd",
@@ -210,6 +211,7 @@ def allocate_stages(
     months_since_arrears=None,
     months_since_sicr_before=None,
     watch_list=None,
+    low_credit_risk=None,
 ) -> Stages:
     """Stage of each loan, the reason, and the months since its last SICR or watch-list trigger.
 
@@ -239,6 +241,9 @@ def allocate_stages(
         In default only because the cure period has not run out (the reason ``cure_period``).
     months_since_arrears, months_since_sicr_before : array of float, optional
     watch_list : array of bool, optional
+    low_credit_risk : array of bool, optional
+        Low credit risk at the reporting date (IFRS 9 5.5.10): the SICR test does not fire (nor count in the
+        SICR history); the backstop and the watch list still do.
 
     Returns
     -------
@@ -254,6 +259,7 @@ def allocate_stages(
     rel = ratio >= staging.sicr_relative
     absolute = (now - orig) >= staging.sicr_absolute
     sicr = (rel & absolute) if staging.sicr_rule == "both" else (rel | absolute)
+    sicr &= ~_optional(low_credit_risk, n, False).astype(bool)
     watch = _optional(watch_list, n, False).astype(bool)
     triggers = {
         "backstop": dpd >= staging.dpd_backstop,
@@ -323,7 +329,10 @@ def sicr_sensitivity(loans: pd.DataFrame, book: pd.DataFrame, staging: Staging =
     for m in multipliers:
         changed = dataclasses.replace(staging, sicr_relative=staging.sicr_relative * float(m))
         now = table["pd_lifetime_staging"] if "pd_lifetime_staging" in table.columns else table["pd_lifetime"]
-        stages = allocate_stages(now, table["pd_lifetime_origination"], table["days_past_due"], in_default, changed, **history)
+        stages = allocate_stages(
+            now, table["pd_lifetime_origination"], table["days_past_due"], in_default, changed, **history,
+            low_credit_risk=low_credit_risk(table["pd_12m"], staging) if "pd_12m" in table.columns else None,
+        )
         stage2 = stages.stage == 2
         reported = np.where(stages.stage == 1, table["ecl_12m"], table["ecl_lifetime"])
         live = int((~in_default).sum())
@@ -355,10 +364,13 @@ class EclResult:
         ``pd_lifetime``, ``pd_lifetime_origination``, ``pd_lifetime_staging`` (today's lifetime PD the
         SICR test compared with it: one scenario's, or the weighted one against a stored origination PD;
         see :func:`staging_scenario`), ``balance``, ``ead``,
-        ``lgd``, ``ecl_12m``, ``ecl_lifetime``, ``ecl_reported``. The PD and
+        ``lgd``, ``lgd_ecl``, ``ecl_12m``, ``ecl_lifetime``, ``ecl_reported``. The PD and
         ECL columns are probability weighted.  ``ead`` is the as-of exposure
-        and ``lgd`` the weighted LGD of a default in the reporting month (the
-        stage 3 LGD).
+        (for a loan in default, at its default); ``lgd`` the weighted LGD of a
+        default in the reporting month (the stage 3 LGD; for a live loan only a
+        reference point), ``lgd_ecl`` the LGD its reported ECL applies: reported
+        ECL / sum over the horizon of weighted marginal PD x EAD x DF (equal to
+        ``lgd`` in stage 3).
     by_scenario : DataFrame
         The tidy per-scenario measures: one row per loan and scenario
         (scenario by scenario in ``scenarios`` order, then ``weighted``; loans
@@ -460,6 +472,9 @@ class _EclAccumulator:
         self.writer = writer
         self.ecl_12m = {s: np.zeros(n) for s in (*scenarios, WEIGHTED)}
         self.ecl_life = {s: np.zeros(n) for s in (*scenarios, WEIGHTED)}
+        # probability-weighted sum of marginal PD x EAD x DF: the exposure the ECL's LGD applies to
+        self.exposure_12m = np.zeros(n)
+        self.exposure_life = np.zeros(n)
 
     def _lgd(self, s, ch: ChunkProjection, ead):
         lgd = self.loss.lgd
@@ -527,6 +542,9 @@ class _EclAccumulator:
         for s, e in el.items():
             self.ecl_12m[s][ch.rows] = e[:, :h12].sum(axis=1)
             self.ecl_life[s][ch.rows] = e.sum(axis=1)
+        exposed = mpd_w * ead * df
+        self.exposure_12m[ch.rows] = exposed[:, :h12].sum(axis=1)
+        self.exposure_life[ch.rows] = exposed.sum(axis=1)
         if self.writer is not None:
             names = (*self.scenarios, WEIGHTED)
             K = len(names)
@@ -574,6 +592,14 @@ def _pd_at_origination(
     return origination_pd(
         frame, source, first_path, extension=extension, chunk_size=chunk_size, collateral=collateral
     ).to_numpy()
+
+
+def low_credit_risk(pd_12m, staging: Staging) -> np.ndarray | None:
+    """Which loans are low credit risk at the reporting date (IFRS 9 5.5.10): probability-weighted 12-month PD at
+    or below ``staging.low_credit_risk_pd``; ``None`` when the exemption is not configured."""
+    if staging.low_credit_risk_pd is None:
+        return None
+    return np.asarray(pd_12m, dtype=float) <= float(staging.low_credit_risk_pd)
 
 
 def staging_scenario(staging: Staging, scenarios: Sequence[str]) -> str:
@@ -739,6 +765,19 @@ def _reporting_month_loss(
     return ead0, lgd0
 
 
+def _ecl_weighted_lgd(reported, stage, live_rows, acc: _EclAccumulator, lgd_now, in_default) -> np.ndarray:
+    """The LGD the reported ECL applies: reported ECL over the probability-weighted sum of marginal PD x EAD x DF
+    over the same horizon (12 months in stage 1, the remaining life else); for a loan in default, its LGD now.
+    A loan with no expected default over the horizon takes its LGD now."""
+    out = np.asarray(lgd_now, dtype=float).copy()
+    stage_live = stage[live_rows]
+    exposure = np.where(stage_live == 1, acc.exposure_12m, acc.exposure_life)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out[live_rows] = np.where(exposure > 0, reported[live_rows] / np.where(exposure > 0, exposure, 1.0), out[live_rows])
+    out[in_default] = np.asarray(lgd_now, dtype=float)[in_default]
+    return out
+
+
 def _fill_defaulted_and_weighted(measures, in_default, ead0, lgd0, names, w) -> None:
     """Stage 3 rows get ECL = LGD x EAD at the reporting month in every scenario; then the weighted column
     is sum_s w_s x (IFRS 9 5.5.17), recomputed so that it includes them."""
@@ -854,12 +893,17 @@ def expected_credit_loss(
 
     weighted = len(names) - 1
     pd_staging = measures["pd_lifetime"][:, names.index(staging_scenario(staging, scenarios))].copy()
-    stages = allocate_stages(pd_staging, pd_orig, dpd, in_default, staging, **_staging_history(frame, staging))
+    stages = allocate_stages(
+        pd_staging, pd_orig, dpd, in_default, staging, **_staging_history(frame, staging),
+        low_credit_risk=low_credit_risk(measures["pd_12m"][:, weighted], staging),
+    )
     stage = stages.stage
 
     ead0, lgd0 = _reporting_month_loss(frame, in_default, loss, lookups, collateral.region_column, hpi_names, as_of_idx, w)
     _fill_defaulted_and_weighted(measures, in_default, ead0, lgd0, names, w)
     ecl_12m, ecl_life = measures["ecl_12m"][:, weighted].copy(), measures["ecl_lifetime"][:, weighted].copy()
+    reported = np.where(stage == 1, ecl_12m, ecl_life)  # IFRS 9 5.5.5 (stage 1: 12-month), 5.5.3 (2, 3: lifetime)
+    lgd_ecl = _ecl_weighted_lgd(reported, stage, live_rows, acc, lgd0[WEIGHTED], in_default)
     table = pd.DataFrame(
         {
             "loan_id": frame["loan_id"].to_numpy(),
@@ -877,10 +921,10 @@ def expected_credit_loss(
             "balance": frame["balance"].to_numpy(dtype=float),
             "ead": ead0,
             "lgd": lgd0[WEIGHTED],
+            "lgd_ecl": lgd_ecl,
             "ecl_12m": ecl_12m,
             "ecl_lifetime": ecl_life,
-            # IFRS 9 5.5.5 (stage 1: 12-month) and 5.5.3 (stages 2, 3: lifetime)
-            "ecl_reported": np.where(stage == 1, ecl_12m, ecl_life),
+            "ecl_reported": reported,
         }
     )
     return EclResult(

@@ -64,9 +64,14 @@ def with_age_tail(model, rule: str):
 
 
 def development_window(cfg) -> tuple[str, tuple[int, int]]:
-    """The row filter of the development window over the raw inputs, and its bounds."""
-    dev = cfg.windows.development
-    return "month_idx BETWEEN ? AND ?", (int(dev.start), int(dev.end))
+    """The row filter of the months the model is fitted on over the raw inputs, and its bounds.
+
+    The development window, or with ``windows.fit_on: development_and_out_of_time`` the development window
+    through the end of the out-of-time window (a model refitted on both once validated).
+    """
+    dev, oot = cfg.windows.development, cfg.windows.out_of_time
+    end = oot.end if cfg.windows.fit_on == "development_and_out_of_time" and oot is not None else dev.end
+    return "month_idx BETWEEN ? AND ?", (int(dev.start), int(end))
 
 
 def hazard_source(cfg, engine, temp_dir=None) -> HazardResults | MultiStateResults | BenchmarkCurves | HazardTable:

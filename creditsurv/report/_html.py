@@ -413,6 +413,13 @@ def _summary(tables, meta) -> str:
         out.append(_table(_by_reason(loans), _REASON_COLUMNS, caption="Stages 2 and 3 by reason"))
     if meta.get("origination_view"):
         out.append(_p(_origination_view_text(meta["origination_view"])))
+    low = meta.get("low_credit_risk")
+    if low:
+        out.append(_p(
+            f"Low credit risk (IFRS 9 5.5.10): {fmt_int(low.get('live_loans', 0))} live loans with a 12-month PD at or "
+            f"below {fmt_pct(low.get('pd_12m_at_most', 0.0), 3)} are exempt from the SICR test; the 30 days past due "
+            "backstop and the watch list still apply to them."
+        ))  # fmt: skip
     if meta.get("sicr_history"):
         out.append(_p(f"Staging: {meta['sicr_history']}."))
     routes = meta.get("default_routes")
@@ -953,6 +960,7 @@ _BACKTEST_KNOWN = {
     "observed_hi",
     "outside",
     "z",
+    "z_factor",
 }
 
 
@@ -1080,6 +1088,12 @@ def _backtest_part(tables, meta) -> str:
         out.append(_backtest_plot(bt, groups[0]))
     elif not bt.empty:
         out.append(_p("The plot is drawn when the backtest is grouped by one column.", "note"))
+    if meta.get("fit_on") == "development_and_out_of_time":
+        out.append(_p(
+            "In-sample: the model was fitted on the development and out-of-time windows together, so this backtest "
+            "(and the discrimination and calibration on the 12 months after the development window) tests the "
+            "model on months it was fitted to."
+        ))  # fmt: skip
     cols = [(g, str(g).replace("_", " ").capitalize(), fmt_text) for g in groups] + [
         ("cause", "Cause", fmt_text),
         ("n", "Loan-months", fmt_int),
@@ -1091,9 +1105,19 @@ def _backtest_part(tables, meta) -> str:
         ("observed_hi", "Observed high", fmt_pct3),
         ("outside", "Outside interval", fmt_text),
         ("z", "z", fmt_stat),
+        ("z_factor", "z, one factor", fmt_stat),
     ]
     flag = bt["outside"].eq(True) if "outside" in bt.columns else None
     out.append(_table(bt, cols, name="backtest", flag=flag))
+    if "z_factor" in bt.columns:
+        rho = meta.get("asset_correlation")
+        out.append(_p(
+            "z treats every loan-month as independent; z, one factor lets the loan-months of a row share one "
+            "economic factor (Vasicek's one-factor model"
+            + (f", asset correlation {rho:g}" if rho is not None else "")
+            + "), so a common surprise of the period, such as a macro shock the scenario did not have, is not "
+            "read as model failure.", "note",
+        ))  # fmt: skip
     moves = tables.get("backtest_transitions")
     if moves is not None:
         cols = [
@@ -1123,7 +1147,14 @@ def _stability_part(tables, meta) -> str:
     if st is None:
         return _absent("stability")
     cols = [("variable", "Variable", fmt_text), ("psi", "PSI", fmt_num), ("flag", "Flag", fmt_text)]
-    return _table(st, cols, name="stability")
+    out = _table(st, cols, name="stability")
+    if "flag" in st.columns and (st["flag"] == "expected drift").any():
+        out += _p(
+            "Inputs that move with the calendar (macro series, loan age) read expected drift at a PSI of 0.10 or "
+            "more: they differ between the development window and the reporting month by construction, so their "
+            "PSI is no signal about the model. PSI 0.10 and 0.25 are the customary thresholds (common practice)."
+        )
+    return out
 
 
 def _validation(tables, meta) -> str:

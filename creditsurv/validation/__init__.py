@@ -4,10 +4,13 @@ from ._pack import (
     PACK_COLUMNS,
     ValidationPack,
     input_stability,
+    out_of_time_in_sample,
     transition_backtest,
     validation_pack,
 )
 from ._statistics import (
+    ASSET_CORRELATION,
+    EXPECTED_DRIFT,
     aalen_johansen,
     aalen_johansen_states,
     age_band,
@@ -17,13 +20,15 @@ from ._statistics import (
     coefficient_changes,
     discrimination,
     model_vs_nonparametric,
+    moves_with_calendar,
+    one_factor_variance,
     psi,
     psi_flag,
     twelve_month_cohort,
 )
 
 __all__ = [
-    "PACK_COLUMNS", "ValidationPack", "aalen_johansen", "aalen_johansen_states", "age_band", "backtest", "binomial_interval", "calibration",
-    "coefficient_changes", "discrimination", "input_stability", "model_vs_nonparametric", "psi", "psi_flag",
+    "ASSET_CORRELATION", "EXPECTED_DRIFT", "one_factor_variance", "PACK_COLUMNS", "ValidationPack", "moves_with_calendar", "aalen_johansen", "aalen_johansen_states", "age_band", "backtest", "binomial_interval", "calibration",
+    "coefficient_changes", "discrimination", "input_stability", "out_of_time_in_sample", "model_vs_nonparametric", "psi", "psi_flag",
     "transition_backtest", "twelve_month_cohort", "validation_pack",
 ]  # fmt: skip

@@ -26,6 +26,7 @@ from ..forecast import panel_history_columns, with_panel_history
 from ..model import HazardResults, MultiStateResults
 from ._statistics import (
     CAUSES,
+    EXPECTED_DRIFT,
     aalen_johansen_states,
     age_band,
     as_1d,
@@ -35,12 +36,15 @@ from ._statistics import (
     coefficient_changes,
     discrimination,
     model_vs_nonparametric,
+    one_factor_variance,
     psi,
     psi_flag,
     twelve_month_cohort,
 )
 
-__all__ = ["PACK_COLUMNS", "ValidationPack", "input_stability", "transition_backtest", "validation_pack"]
+__all__ = [
+    "PACK_COLUMNS", "ValidationPack", "input_stability", "out_of_time_in_sample", "transition_backtest", "validation_pack",
+]
 
 PACK_AGE_BAND_EDGES = (12, 24, 36, 60)
 """Age bands of ``backtest_by_age_band`` (see :func:`age_band`)."""
@@ -53,7 +57,7 @@ REALISED = "realised"
 
 _BACKTEST_COLUMNS = (
     "cause", "n", "expected", "actual", "predicted_rate", "observed_rate",
-    "observed_lo", "observed_hi", "outside", "z",
+    "observed_lo", "observed_hi", "outside", "z", "z_factor",
 )  # fmt: skip
 
 PACK_COLUMNS: dict[str, tuple[str, ...]] = {
@@ -149,6 +153,12 @@ alive AS (
     WHERE (o.event_month_idx IS NULL OR o.event_month_idx > $month)
       AND p.balance > $paid_off
 )"""
+
+
+def out_of_time_in_sample(cfg) -> bool:
+    """Whether the model was fitted on the out-of-time window too (``windows.fit_on``): its out-of-time backtest,
+    and the 12-month outcomes after the development window, are then in-sample."""
+    return cfg.windows.fit_on == "development_and_out_of_time" and cfg.windows.out_of_time is not None
 
 
 def _has_spec(model) -> bool:
@@ -338,21 +348,26 @@ def _backtest_tables(cfg, engine, cohort, hd_grid, hp_grid, month: int, notes: l
     tables = {}
     for by in ("month", "age_band", "vintage"):
         name = f"backtest_by_{by}"
-        t = backtest(frame, by=by)
+        t = backtest(frame, by=by, asset_correlation=cfg.validation.asset_correlation)
         if by == "age_band":
             t["age_band"] = t["age_band"].astype(str)
         tables[name] = t[list(PACK_COLUMNS[name])]
     by_month = tables["backtest_by_month"]
-    summary = {"loan_months": int(len(frame)), "months": int(by_month["month"].nunique())}
+    rho = cfg.validation.asset_correlation
+    summary = {"loan_months": int(len(frame)), "months": int(by_month["month"].nunique()), "asset_correlation": rho}
     y = frame["outcome"].to_numpy()
     for k, cause in CAUSES.items():
         h = frame["h_default" if k == 1 else "h_prepay"].to_numpy()
         var = float(np.sum(h * (1 - h)))
         part = by_month[by_month["cause"] == cause]
+        diff = float((y == k).sum()) - float(h.sum())
+        # the window's loan-months share one factor (as each row of the tables does)
+        factor = float(one_factor_variance(len(h), float(h.mean()) if len(h) else 0.0, rho))
         summary[cause] = {
             "expected": float(h.sum()),
             "actual": int((y == k).sum()),
-            "z_total": (float((y == k).sum()) - float(h.sum())) / np.sqrt(var) if var > 0 else float("nan"),
+            "z_total": diff / np.sqrt(var) if var > 0 else float("nan"),
+            "z_total_factor": diff / np.sqrt(factor) if factor > 0 else float("nan"),
             "share_months_outside": float(part["outside"].mean()) if len(part) else float("nan"),
         }
     return tables, summary
@@ -453,7 +468,7 @@ def _input_stability(engine, model, development, current, *, bins, max_rows):
         value, _ = psi(e.to_numpy() if categorical else e.to_numpy(dtype=float),
                        a.to_numpy() if categorical else a.to_numpy(dtype=float),
                        bins=bins, categorical=categorical)  # fmt: skip
-        rows.append({"variable": name, "psi": value, "flag": psi_flag(value),
+        rows.append({"variable": name, "psi": value, "flag": psi_flag(value, name),
                      "n_development": int(len(e)), "n_current": int(len(a))})  # fmt: skip
     table = pd.DataFrame(rows, columns=list(PACK_COLUMNS["stability"]))
     info = {"sampled_every": {"development": k_dev, "current": k_cur}, "skipped": skipped, "n_current": len(cur)}
@@ -569,13 +584,12 @@ def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list
         f"WHERE {_FROM_ORIGINATION}\n"
         "ORDER BY l.origination_idx, loan_id",
     )
-    late = (loans["_entry_age"] > 1).to_numpy() | (loans["_time"] < 1).to_numpy()
-    if late.any():
-        notes.append(
-            f"incidence_by_vintage: {int(late.sum())} loans not observed from their first month (or with no "
-            "month at risk) were left out; the comparison is on loans seen from origination"
-        )
-        loans = loans[~late].reset_index(drop=True)
+    # a loan first seen at age e > 1 is in the risk set from age e on (left truncation): it counts from there
+    loans["_entry"] = np.maximum(loans["_entry_age"].to_numpy(dtype=np.int64) - 1, 0)
+    empty = (loans["_time"] <= loans["_entry"]).to_numpy()
+    if empty.any():
+        notes.append(f"incidence_by_vintage: {int(empty.sum())} loans with no month at risk were left out")
+        loans = loans[~empty].reset_index(drop=True)
     if loans.empty:
         return None, None
     multi = isinstance(model, MultiStateResults)
@@ -619,18 +633,37 @@ def _incidence_by_vintage(cfg, engine, model, path, chunk_size: int, notes: list
     if not curves:
         return None, None
     obs = loans[keep]
+    first_entry = obs.groupby("_vintage")["_entry"].min()
+    late = {int(v): int(e) for v, e in first_entry.items() if e > 0}
+    if late:
+        notes.append(
+            f"incidence_by_vintage: vintages {sorted(late)} have no loan seen from origination: their curves are "
+            "conditional on survival to the vintage's first age observed, the model's too"
+        )
     parts = []
     for k, cause in CAUSES.items():
         key = "d" if k == 1 else "p"
         t = model_vs_nonparametric(
-            {v: c[key] for v, c in curves.items()},
+            {v: _conditional_on_survival(c, key, late.get(v, 0)) for v, c in curves.items()},
             obs["_time"].to_numpy(), obs["_cause"].to_numpy(), obs["_vintage"].to_numpy(), cause=k,
+            entry=obs["_entry"].to_numpy(),
         )
         t.insert(1, "cause", cause)
         parts.append(t)
     out = pd.concat(parts, ignore_index=True).sort_values(["vintage", "cause", "age"], kind="stable")
     incidence = out.reset_index(drop=True)[list(PACK_COLUMNS["incidence_by_vintage"])]
-    return incidence, (_states_by_vintage(engine, model, curves) if multi else None)
+    from_origination = {v: c for v, c in curves.items() if v not in late}
+    return incidence, (_states_by_vintage(engine, model, from_origination) if multi and from_origination else None)
+
+
+def _conditional_on_survival(curve: dict, key: str, age: int) -> np.ndarray:
+    """The vintage's model incidence of ``key`` by age, conditional on survival to ``age`` (as is the observed
+    curve of a vintage first seen at that age): (F(a) - F(age)) / S(age), S = 1 - F_default - F_prepay."""
+    F = curve[key]
+    if age <= 0:
+        return F
+    survival = 1.0 - curve["d"][age - 1] - curve["p"][age - 1]
+    return (F - F[age - 1]) / survival if survival > 0 else np.full_like(F, np.nan)
 
 
 # Loans the vintage comparisons can follow from their first month on book.
@@ -641,15 +674,18 @@ def _states_by_vintage(engine, model, curves: dict) -> pd.DataFrame:
     """Each state's model occupation probability by age against the Aalen-Johansen estimate, per vintage.
 
     The observed side is every first-spell loan-month (before any cured default, as the projection
-    from origination) of the loans seen from their first month, in the vintages of ``curves``.
+    from origination) with a known origin state, in the vintages of ``curves``: a loan first seen at
+    age e counts from its first transition, e + 1 (the product of the monthly transition matrices
+    estimated from the loans under observation at each age is the left-truncated Aalen-Johansen
+    estimate). Every vintage of ``curves`` has loans seen from origination.
     """
     from ..data import end_states
 
     counts = _sql(
         engine,
         "SELECT l.origination_idx, m.age, m.origin_state, m.destination, count(*) AS loan_months\n"
-        "FROM loan_months AS m JOIN loans AS l USING (loan_id) JOIN loan_outcomes AS o USING (loan_id)\n"
-        f"WHERE {_FROM_ORIGINATION} AND o.entry_age <= 1 AND m.origin_state IS NOT NULL\n"
+        "FROM loan_months AS m JOIN loans AS l USING (loan_id)\n"
+        f"WHERE {_FROM_ORIGINATION} AND m.origin_state IS NOT NULL\n"
         f"  AND m.{PREVIOUSLY_DEFAULTED} = 0 AND m.age >= 1\n"
         "GROUP BY l.origination_idx, m.age, m.origin_state, m.destination",
     )
@@ -784,7 +820,8 @@ def _stability_section(cfg, engine, model, cohort_pd, current_pd_12m, tables, su
         notes.append("stability: the development cohort has no 12-month PD, so the PSI of pd_12m is not reported")
     tables["stability"] = stab[list(PACK_COLUMNS["stability"])]
     summary["stability"] = {
-        flag: stab.loc[stab["flag"] == flag, "variable"].tolist() for flag in ("watch", "shift")
+        flag.replace(" ", "_"): stab.loc[stab["flag"] == flag, "variable"].tolist()
+        for flag in ("watch", "shift", EXPECTED_DRIFT)
     }
 
 
@@ -891,6 +928,12 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
     tables: dict[str, pd.DataFrame] = {}
     summary = _summary_header(cfg)
     fitted = _has_spec(model)
+    if out_of_time_in_sample(cfg) and fitted:
+        notes.append(
+            "the model was fitted on the development and out-of-time windows together (windows.fit_on): the "
+            "out-of-time backtest, discrimination and calibration are in-sample, and Hosmer-Lemeshow takes groups - 2 "
+            "degrees of freedom"
+        )
     if not fitted:
         notes.append(
             f"the hazard source ({type(model).__name__}) is not a fitted model: coefficient changes are not "
@@ -929,6 +972,8 @@ def _summary_header(cfg) -> dict:
         "development": {"start": _fmt_month(dev.start), "end": _fmt_month(dev.end)},
         "out_of_time": None if oot is None else {"start": _fmt_month(oot.start), "end": _fmt_month(oot.end)},
         "cohort_month": _fmt_month(int(dev.end)),
+        "fit_on": cfg.windows.fit_on,
+        "out_of_time_in_sample": out_of_time_in_sample(cfg),
     }
 
 
@@ -995,8 +1040,10 @@ def _score_tables(cfg, engine, cohort, proj, month: int, summary: dict, notes: l
         seg = cfg.segments
         graded = bool(seg.band_column and seg.band_edges and seg.band_column in cohort.columns)
         grade = known["band"].to_numpy() if graded else None
-        # the 12 months after the development window: outcomes the fit never saw (an external sample)
-        table, cal = calibration(p, y, groups=cfg.validation.pd_groups, grade=grade, sample="external")
+        # the 12 months after the development window: outcomes the fit never saw (an external sample), unless
+        # the model was fitted on the out-of-time window too
+        sample = "development" if out_of_time_in_sample(cfg) else "external"
+        table, cal = calibration(p, y, groups=cfg.validation.pd_groups, grade=grade, sample=sample)
         table = table.reset_index().rename(columns={"grade": "group"})
         out["calibration"] = table[list(PACK_COLUMNS["calibration"])]
         summary["calibration"] = cal
