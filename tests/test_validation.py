@@ -571,3 +571,16 @@ def test_backtest_z_factor_shrinks_a_common_surprise():
     assert t.loc["default", "z"] > 10 and abs(t.loc["default", "z_factor"]) < 2
     same = v.backtest(frame, by="month", asset_correlation=0.0)
     np.testing.assert_allclose(same["z_factor"], same["z"], rtol=1e-12)
+
+
+def test_backtest_z_factor_draws_the_factor_once_per_period():
+    # Two months of 5,000 loan-months each: with a month column the one-factor variance of the pair is the
+    # sum of each month's (independent draws); without it the 10,000 loan-months share one draw.
+    n = 5_000
+    frame = pd.DataFrame({"month": np.repeat(["2023-01", "2023-02"], n), "band": "all", "h_default": 0.004,
+                          "h_prepay": 0.01, "outcome": np.r_[np.ones(60), np.zeros(2 * n - 60)].astype(int)})  # fmt: skip
+    t = v.backtest(frame, by="band").set_index("cause")
+    monthly = 2 * v.one_factor_variance(n, 0.004, v.ASSET_CORRELATION)
+    assert t.loc["default", "z_factor"] == pytest.approx(20 / np.sqrt(monthly), rel=1e-9)
+    pooled = v.backtest(frame.drop(columns="month"), by="band").set_index("cause")
+    assert pooled.loc["default", "z_factor"] == pytest.approx(20 / np.sqrt(v.one_factor_variance(2 * n, 0.004, 0.15)), rel=1e-9)

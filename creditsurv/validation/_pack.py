@@ -361,8 +361,8 @@ def _backtest_tables(cfg, engine, cohort, hd_grid, hp_grid, month: int, notes: l
         var = float(np.sum(h * (1 - h)))
         part = by_month[by_month["cause"] == cause]
         diff = float((y == k).sum()) - float(h.sum())
-        # the window's loan-months share one factor (as each row of the tables does)
-        factor = float(one_factor_variance(len(h), float(h.mean()) if len(h) else 0.0, rho))
+        # each calendar month one draw of the factor, as in the tables: the months' variances add
+        factor = float(np.sum(_month_factor_variance(frame, k, rho)))
         summary[cause] = {
             "expected": float(h.sum()),
             "actual": int((y == k).sum()),
@@ -371,6 +371,13 @@ def _backtest_tables(cfg, engine, cohort, hd_grid, hp_grid, month: int, notes: l
             "share_months_outside": float(part["outside"].mean()) if len(part) else float("nan"),
         }
     return tables, summary
+
+
+def _month_factor_variance(frame: pd.DataFrame, k: int, rho: float) -> np.ndarray:
+    """Per calendar month of ``frame``, the one-factor variance of the events of cause ``k``."""
+    h = frame["h_default" if k == 1 else "h_prepay"]
+    g = h.groupby(frame["month"], sort=True).agg(["size", "mean"])
+    return one_factor_variance(g["size"].to_numpy(dtype=float), g["mean"].to_numpy(dtype=float), rho)
 
 
 def _cohort_outcomes(cfg, engine, month: int) -> pd.DataFrame:

@@ -230,7 +230,9 @@ def one_factor_variance(n, p, rho: float) -> np.ndarray:
     return flat_out.reshape(out.shape)
 
 
-def backtest(frame: pd.DataFrame, by, *, level: float = 0.95, asset_correlation: float = ASSET_CORRELATION) -> pd.DataFrame:
+def backtest(
+    frame: pd.DataFrame, by, *, level: float = 0.95, asset_correlation: float = ASSET_CORRELATION, period: str = "month",
+) -> pd.DataFrame:
     """Out-of-time backtest of monthly hazards, per group and cause.
 
     Parameters
@@ -256,9 +258,10 @@ def backtest(frame: pd.DataFrame, by, *, level: float = 0.95, asset_correlation:
         = (actual - expected) / sqrt(sum h (1 - h)), the standardised
         difference under the Poisson-binomial law of independent loan-months
         (NaN when that variance is 0), and ``z_factor``, the same difference over the standard deviation of
-        the one-factor model (:func:`one_factor_variance`, ``asset_correlation``): the group's loan-months
-        share one economic factor, so a common surprise of the period (a macro shock the scenario did not
-        have) is not read as model failure.
+        the one-factor model (:func:`one_factor_variance`, ``asset_correlation``): the loan-months of one
+        ``period`` (a column of ``frame``, e.g. the calendar month; without it, the whole group) share one
+        draw of an economic factor, periods independent, so a common surprise of a month (a macro shock the
+        scenario did not have) is not read as model failure.
     """
     level = _check_level(level)
     by = [by] if isinstance(by, str) else list(by)
@@ -285,6 +288,7 @@ def backtest(frame: pd.DataFrame, by, *, level: float = 0.95, asset_correlation:
         work[f"a{k}"] = (y == k).astype(float)
     work["n"] = 1
     sums = work.groupby(by, sort=True, observed=True, dropna=False).sum().reset_index()
+    factor_var = _factor_variances(frame, work, by, period, asset_correlation, sums)
 
     parts = []
     for k, cause in CAUSES.items():
@@ -302,7 +306,7 @@ def backtest(frame: pd.DataFrame, by, *, level: float = 0.95, asset_correlation:
         var = sums[f"v{k}"].to_numpy()
         with np.errstate(divide="ignore", invalid="ignore"):
             t["z"] = np.where(var > 0, (t["actual"] - t["expected"]) / np.sqrt(var), np.nan)
-            factor = one_factor_variance(t["n"].to_numpy(), t["predicted_rate"].to_numpy(), asset_correlation)
+            factor = factor_var[k]
             t["z_factor"] = np.where(factor > 0, (t["actual"] - t["expected"]) / np.sqrt(factor), np.nan)
         parts.append(t)
     out = pd.concat(parts, ignore_index=True)
@@ -310,6 +314,23 @@ def backtest(frame: pd.DataFrame, by, *, level: float = 0.95, asset_correlation:
     out["_cause_order"] = out["cause"].map(order)
     out = out.sort_values([*by, "_cause_order"], kind="stable").drop(columns="_cause_order")
     return out.reset_index(drop=True)
+
+
+def _factor_variances(frame, work, by, period, rho, sums) -> dict[int, np.ndarray]:
+    """Per cause, the one-factor variance of each group of ``sums``: summed over the group's periods (one
+    factor draw each) when ``frame`` has the ``period`` column, else one draw for the group."""
+    cells = list(by)
+    if period in frame.columns and period not in cells:
+        work = work.assign(**{"_period": frame[period].to_numpy()})
+        cells = [*by, "_period"]
+    per_cell = work.groupby(cells, sort=True, observed=True, dropna=False)[["n", "e1", "e2"]].sum().reset_index()
+    out = {}
+    for k in (1, 2):
+        n = per_cell["n"].to_numpy(dtype=float)
+        per_cell[f"f{k}"] = one_factor_variance(n, per_cell[f"e{k}"].to_numpy() / n, rho)
+        total = per_cell.groupby(list(by), sort=True, observed=True, dropna=False)[f"f{k}"].sum().reset_index()
+        out[k] = sums[list(by)].merge(total, on=list(by), how="left")[f"f{k}"].to_numpy()
+    return out
 
 
 # --------------------------------------------------------------------------- discrimination
