@@ -283,10 +283,8 @@ def origination_path(history: pd.DataFrame, origination_idx: int, until_idx: int
     end = max(int(until_idx), o + 1, first)
     out = pd.DataFrame(np.nan, index=pd.Index(np.arange(start, end + 1), name="month_idx"), columns=list(hist.columns))
     out.loc[known.index] = known.to_numpy(dtype=float)
-    before = out.index < first
-    out.loc[before] = known.iloc[0].to_numpy(dtype=float)[None, :]
-    if o < first:
-        out.loc[o] = known.iloc[0].to_numpy(dtype=float)
+    # months before the history (an origination month among them) take its first month
+    out.loc[out.index < first] = known.iloc[0].to_numpy(dtype=float)[None, :]
     at_o = pd.DataFrame([known.iloc[-1].to_numpy(dtype=float)], index=pd.Index([o], name="month_idx"), columns=hist.columns)
     _fill_after_path(out, at_o, known, o, end, rule, months, {}, hold, "origination view")
     return out.loc[: max(int(until_idx), o + 1)]

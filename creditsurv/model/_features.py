@@ -67,6 +67,7 @@ from ._schedule import scheduled_balance_sql
 __all__ = [
     "FeatureSpec",
     "RawInput",
+    "SpecInputs",
     "feature_spec",
     "natural_spline_basis",
 ]
@@ -1028,3 +1029,30 @@ def feature_spec(model, collateral=None) -> FeatureSpec:
         interactions=tuple(tuple(p) for p in model.interactions),
         collateral=coll,
     )
+
+
+class SpecInputs:
+    """What a fitted model tells the projection about its inputs, read from its ``spec`` (a :class:`FeatureSpec`):
+    the hazard-source protocol's ``required_inputs``, ``panel_rules``, ``derived_lags`` and ``age_cap``."""
+
+    spec: FeatureSpec
+
+    @property
+    def required_inputs(self) -> list[str]:
+        """Raw input names the model reads (the projection's hazard-source protocol)."""
+        return self.spec.required_inputs
+
+    @property
+    def panel_rules(self) -> list[dict]:
+        """How each panel input is filled and projected (see :attr:`FeatureSpec.panel_rules`)."""
+        return self.spec.panel_rules
+
+    @property
+    def derived_lags(self) -> dict[str, int]:
+        """The lags of the index and rate behind current LTV and the rate incentive (see :attr:`FeatureSpec.derived_lags`)."""
+        return self.spec.derived_lags
+
+    @property
+    def age_cap(self) -> int | None:
+        """The oldest age the projection reads (see :attr:`FeatureSpec.age_cap`); ``None`` to extrapolate."""
+        return self.spec.age_cap

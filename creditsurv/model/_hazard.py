@@ -67,7 +67,7 @@ from ..errors import (
     problem_list,
 )
 from ..sql import quote_ident
-from ._features import FeatureSpec
+from ._features import FeatureSpec, SpecInputs
 
 __all__ = [
     "CAUSES", "MULTI_STATE_FORMAT", "N_CODES", "STABLE_EVENTS_PER_PARAMETER", "TRUST_LIMITS", "HazardResults", "check_saved_model", "fit_hazard",
@@ -132,7 +132,7 @@ def loosened_limits(limits: dict) -> dict:
 
 
 @dataclass
-class HazardResults:
+class HazardResults(SpecInputs):
     """A fitted hazard model.
 
     Attributes
@@ -229,26 +229,6 @@ class HazardResults:
     def _linear_predictors(self, raw) -> np.ndarray:
         X, _ = self.spec.design(raw)
         return X @ self.params[list(self.causes)].to_numpy()
-
-    @property
-    def required_inputs(self) -> list[str]:
-        """Raw input names the model reads (the projection's hazard-source protocol)."""
-        return self.spec.required_inputs
-
-    @property
-    def panel_rules(self) -> list[dict]:
-        """How each panel input is filled and projected (see :attr:`FeatureSpec.panel_rules`)."""
-        return self.spec.panel_rules
-
-    @property
-    def derived_lags(self) -> dict[str, int]:
-        """The lags of the index and rate behind current LTV and the rate incentive (see :attr:`FeatureSpec.derived_lags`)."""
-        return self.spec.derived_lags
-
-    @property
-    def age_cap(self) -> int | None:
-        """The oldest age the projection reads (see :attr:`FeatureSpec.age_cap`); ``None`` to extrapolate."""
-        return self.spec.age_cap
 
     def hazards(self, raw) -> tuple[np.ndarray, np.ndarray]:
         """Alias of :meth:`predict_hazards` (the projection's hazard-source protocol)."""

@@ -35,7 +35,7 @@ import pandas as pd
 
 from ..data import ABSORBING_STATES, DESTINATION_MOVE
 from ..errors import CreditsurvError, ModelError
-from ._features import FeatureSpec
+from ._features import FeatureSpec, SpecInputs
 from ._hazard import (
     MULTI_STATE_FORMAT,
     STABLE_EVENTS_PER_PARAMETER,
@@ -76,7 +76,7 @@ def _end_codes(labels, origin: int) -> dict[str, int]:
 
 
 @dataclass
-class MultiStateResults:
+class MultiStateResults(SpecInputs):
     """A fitted multi-state model.
 
     Attributes
@@ -108,24 +108,6 @@ class MultiStateResults:
     def states(self) -> list[str]:
         """Every state: the transient ones, then ``default`` and ``prepaid``."""
         return [*self.labels, *ABSORBING_STATES]
-
-    @property
-    def required_inputs(self) -> list[str]:
-        return self.spec.required_inputs
-
-    @property
-    def panel_rules(self) -> list[dict]:
-        return self.spec.panel_rules
-
-    @property
-    def derived_lags(self) -> dict[str, int]:
-        """The lags of the index and rate behind current LTV and the rate incentive (see :attr:`FeatureSpec.derived_lags`)."""
-        return self.spec.derived_lags
-
-    @property
-    def age_cap(self) -> int | None:
-        """The oldest age the projection reads (see :attr:`FeatureSpec.age_cap`); ``None`` to extrapolate."""
-        return self.spec.age_cap
 
     @property
     def n_rows(self) -> int:

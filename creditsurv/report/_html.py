@@ -457,10 +457,11 @@ def _origination_view_text(view: dict) -> str:
 
 def _exposure_text(routes: dict, fee: float) -> str:
     """The exposure-at-default basis of the run, in one paragraph."""
-    share = routes.get("days_past_due_share", 1.0)
-    basis = {
-        "development window": f"{fmt_pct(share)} of the development window's {fmt_int(routes.get('defaults', 0))} defaults",
-    }.get(routes.get("source"), f"{fmt_pct(share)} of defaults ({routes.get('source')})")
+    share = fmt_pct(routes.get("days_past_due_share", 1.0))
+    if routes.get("source") == "development window":
+        basis = f"{share} of the development window's {fmt_int(routes.get('defaults', 0))} defaults"
+    else:
+        basis = f"{share} of defaults ({routes.get('source')})"
     text = (
         "Exposure at default: the balance after the last paid instalment plus interest at the effective rate for "
         f"the instalments missed before default ({routes.get('onset_months')} for a default on days past due, "
