@@ -42,6 +42,7 @@ from creditsurv import StaleRunWarning
 from creditsurv.cli import main
 from creditsurv.runs import remove_stale_incomplete
 
+
 @dataclass(frozen=True)
 class Case:
     """One bad input or fault and what the command line must do about it."""

@@ -18,11 +18,14 @@ from creditsurv.errors import ConfigError, ModelError, ProjectionError
 from creditsurv.forecast import (
     WEIGHTED,
     TableWriter,
+    band_codes,
+    band_labels,
     extend_path,
     load_scenario_paths,
     origination_pd,
     prepare_paths,
     project_loans,
+    sort_with_bands,
 )
 from creditsurv.model import (
     BenchmarkCurves,
@@ -380,8 +383,35 @@ def test_band_groups_follow_the_edges():
     res = project_loans(_loans(), LogitSource(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS,
                         band_column="credit_score", band_edges=(680, 760))
     got = dict(zip(res.loans["loan_id"], res.loans["band"]))
-    assert got == {"L01": "<680", "L02": "680-760", "L03": ">=760", "L04": ">=760", "L05": "680-760", "L06": "<680", "L07": "680-760"}
-    assert set(res.term_structure["band"]) == {"<680", "680-760", ">=760"}
+    low, mid, high = "(-inf, 680)", "[680, 760)", "[760, inf)"
+    assert got == {"L01": low, "L02": mid, "L03": high, "L04": high, "L05": mid, "L06": low, "L07": mid}
+    assert set(res.term_structure["band"]) == {low, mid, high}
+
+
+def test_a_score_on_an_edge_lands_in_the_band_that_starts_there():
+    # the documented rule (band_labels): bands are closed on the left, [a, b)
+    edges = (640, 700, 760)
+    labels = band_labels(edges)
+    assert labels == ["(-inf, 640)", "[640, 700)", "[700, 760)", "[760, inf)"]
+    scores = np.array([639.999, 640.0, 699.0, 700.0, 760.0, 759.5, 900.0, 300.0])
+    got = [labels[c] for c in band_codes(scores, edges)]
+    assert got == ["(-inf, 640)", "[640, 700)", "[640, 700)", "[700, 760)", "[760, inf)", "[700, 760)", "[760, inf)", "(-inf, 640)"]
+    loans = _loans().assign(credit_score=[640.0, 700.0, 760.0, 639.0, 700.0, 760.0, 641.0])
+    res = project_loans(loans, LogitSource(), _paths(), as_of_idx=AS_OF, weights=WEIGHTS,
+                        band_column="credit_score", band_edges=edges)
+    expected = dict(zip(loans["loan_id"], ["[640, 700)", "[700, 760)", "[760, inf)", "(-inf, 640)", "[700, 760)", "[760, inf)", "[640, 700)"]))
+    assert dict(zip(res.loans["loan_id"], res.loans["band"])) == expected
+
+
+def test_bands_sort_in_numeric_order_not_as_text():
+    # as text "(-inf, 640)" < "[640, 700)" < "[700, 760)" < "[760, inf)" happens to hold, but
+    # "[1000, inf)" sorts before "[640, 700)" as text: the sort must read the edges
+    labels = band_labels((640, 1000))
+    frame = pd.DataFrame({"band": [labels[2], labels[0], labels[1], labels[2]], "x": [1, 2, 3, 4]})
+    out = sort_with_bands(frame, ["band"])
+    assert list(out["band"]) == [labels[0], labels[1], labels[2], labels[2]]
+    assert list(out["x"]) == [2, 3, 1, 4]
+    assert sorted(labels, key=str) != labels  # the case a text sort gets wrong
 
 
 def test_table_writer_writes_one_parquet_file(tmp_path):

@@ -7,7 +7,15 @@ import pandas as pd
 import pytest
 
 from creditsurv.errors import RunError
-from creditsurv.runs import MANIFEST, SCHEMA_VERSION, RunFolder, folder_differences, read_manifest, sha256_file, start_manifest
+from creditsurv.runs import (
+    MANIFEST,
+    SCHEMA_VERSION,
+    RunFolder,
+    folder_differences,
+    read_manifest,
+    sha256_file,
+    start_manifest,
+)
 
 
 def _frame():

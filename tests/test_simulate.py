@@ -13,11 +13,11 @@ import pytest
 from creditsurv.demo import (
     DEFAULT_MIN_AGE,
     OUTPUT_FILES,
+    arrears_behaviour,
     make_macro,
     psa_hazard,
     scheduled_balance,
     simulate_book,
-    arrears_behaviour,
     simulate_small_book,
     write_demo_book,
 )

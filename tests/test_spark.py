@@ -32,7 +32,13 @@ from test_events import _config as events_config  # noqa: E402
 from test_panel import BAD_BOOKS, MACRO_COVARIATE  # noqa: E402 - the crafted bad books of the DuckDB tests
 
 from creditsurv import pipeline  # noqa: E402
-from creditsurv.config import Baseline, Covariate, SparkSettings, load_config, run_context  # noqa: E402
+from creditsurv.config import (  # noqa: E402
+    Baseline,
+    Covariate,
+    SparkSettings,
+    load_config,
+    run_context,
+)
 from creditsurv.engines import Engine, open_engine, spark_session, spark_sql  # noqa: E402
 from creditsurv.errors import DataCheckError  # noqa: E402
 from creditsurv.loss import expected_credit_loss_by_partition  # noqa: E402

@@ -567,11 +567,39 @@ class TableWriter:
         self.close()
 
 
-def score_band_labels(edges) -> list[str]:
+def band_labels(edges) -> list[str]:
+    """Labels of the bands that inner ``edges`` cut a score into, each closed on the left.
+
+    ``(640, 700)`` as edges give ``(-inf, 640)``, ``[640, 700)``, ``[700, inf)``: a score
+    exactly on an edge belongs to the band that starts there (:func:`band_codes`). No edges:
+    one band, ``all``. Every table and the report use these labels, in this (numeric) order.
+    """
     if not edges:
         return ["all"]
     e = [f"{x:g}" for x in edges]
-    return [f"<{e[0]}"] + [f"{a}-{b}" for a, b in zip(e, e[1:])] + [f">={e[-1]}"]
+    return [f"(-inf, {e[0]})"] + [f"[{a}, {b})" for a, b in zip(e, e[1:])] + [f"[{e[-1]}, inf)"]
+
+
+def band_codes(values, edges) -> np.ndarray:
+    """The band (0, 1, ...; positions in :func:`band_labels`) of each value: a value on an edge goes up."""
+    return np.searchsorted(np.asarray(edges, dtype=float), np.asarray(values, dtype=float), side="right")
+
+
+def band_order(labels) -> np.ndarray:
+    """A sort key of band labels (:func:`band_labels`): each band's lower edge, ``all`` as 0."""
+    def lower(label) -> float:
+        text = str(label)
+        return float(text[1:].split(",")[0]) if text[:1] in "[(" and "," in text else 0.0
+
+    return np.array([lower(x) for x in labels], dtype=float)
+
+
+def sort_with_bands(frame: pd.DataFrame, keys) -> pd.DataFrame:
+    """``frame`` sorted by ``keys`` (stable), a ``band`` key in numeric order rather than as text."""
+    def key(col):
+        return pd.Series(band_order(col), index=col.index) if col.name == "band" else col
+
+    return frame.sort_values(list(keys), kind="stable", key=key, ignore_index=True)
 
 
 def scenario_weights(scenarios, weights) -> ScenarioWeights:
@@ -798,9 +826,9 @@ class _SegmentPool:
     def __init__(self, book, frame, names, segment_column, band_column, band_edges):
         n_all = len(frame)
         seg_code, seg_levels = pd.factorize(frame[segment_column].astype(str), sort=True)
-        self.labels = score_band_labels(tuple(band_edges))
+        self.labels = band_labels(tuple(band_edges))
         if band_column is not None and band_edges:
-            self.band_code = np.searchsorted(np.asarray(band_edges, float), frame[band_column].to_numpy(float), side="right")
+            self.band_code = band_codes(frame[band_column].to_numpy(float), band_edges)
         else:
             self.band_code = np.zeros(n_all, dtype=np.int64)
         n_band = len(self.labels)
@@ -1308,7 +1336,7 @@ def segment_pd_tables(term_structure: pd.DataFrame) -> tuple[pd.DataFrame, pd.Da
         part["survival"] = term_structure[f"survival_{weighting}"].to_numpy()
         parts.append(part)
     tidy = pd.concat(parts, ignore_index=True).rename(columns={"year_ahead": "year"})
-    tidy = tidy.sort_values(keys + ["weighting", "year"], kind="stable", ignore_index=True)
+    tidy = sort_with_bands(tidy, keys + ["weighting", "year"])
     wide = tidy.pivot_table(
         index=keys + ["weighting"], columns="year", values="cumulative_pd", sort=False, observed=True
     )

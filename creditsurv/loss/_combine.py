@@ -18,7 +18,7 @@ from ..forecast import (
     WEIGHTED,
     ProjectionResult,
     SegmentSums,
-    score_band_labels,
+    band_labels,
     speeds_frames,
     term_structure_frame,
 )
@@ -80,7 +80,7 @@ def combine_partitions(results: list[EclResult]) -> EclResult:
     scenarios, weights = first.scenarios, first.weights
     band_edges = first.projection.band_edges
     names = (*scenarios, WEIGHTED)
-    labels = score_band_labels(tuple(band_edges))
+    labels = band_labels(tuple(band_edges))
     loans = pd.concat([r.loans for r in results], ignore_index=True)
     proj_loans = pd.concat([r.projection.loans for r in results], ignore_index=True)
     seg_names = sorted({str(s) for s in proj_loans["segment"]})

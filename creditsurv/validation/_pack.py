@@ -22,7 +22,7 @@ from ..data import (
     panel_history_sql,
 )
 from ..errors import DataError
-from ..forecast import panel_history_columns, with_panel_history
+from ..forecast import band_labels, panel_history_columns, with_panel_history
 from ..model import HazardResults, MultiStateResults
 from ._statistics import (
     CAUSES,
@@ -1046,7 +1046,7 @@ def _score_tables(cfg, engine, cohort, proj, month: int, summary: dict, notes: l
     if len(known):
         seg = cfg.segments
         graded = bool(seg.band_column and seg.band_edges and seg.band_column in cohort.columns)
-        grade = known["band"].to_numpy() if graded else None
+        grade = pd.Categorical(known["band"], categories=band_labels(seg.band_edges), ordered=True) if graded else None
         # the 12 months after the development window: outcomes the fit never saw (an external sample), unless
         # the model was fitted on the out-of-time window too
         sample = "development" if out_of_time_in_sample(cfg) else "external"

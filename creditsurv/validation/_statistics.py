@@ -540,7 +540,8 @@ def calibration(predicted, default, *, groups: int = 10, grade=None, level: floa
         Quantile groups of the predicted PD when ``grade`` is not given.
         Loans with tied PDs share a group, so heavy ties can give fewer groups.
     grade : array_like, shape (n,), optional
-        Group loans by this (e.g. a rating grade) instead of PD quantiles.
+        Group loans by this (e.g. a rating grade) instead of PD quantiles; an ordered
+        ``pandas.Categorical`` keeps its order in the table, other values sort.
     level : float, default 0.95
         Coverage of the Jeffreys interval.
 
@@ -581,7 +582,7 @@ def _calibration(pred, default, *, groups, grade, level, sample="development"):
             raise DataError(f"groups must be 2 or more, got {groups!r}")
         key, name = _quantile_groups(p, int(groups)), "group"
     else:
-        key = np.asarray(grade)
+        key = grade if isinstance(grade, pd.Categorical) else np.asarray(grade)  # a Categorical keeps its order
         if key.shape != p.shape:
             raise DataError(f"grade must have one value per loan: {key.shape} vs {p.shape}")
         name = "grade"
