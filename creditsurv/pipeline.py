@@ -14,6 +14,9 @@ import threading
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
+import pandas as pd
+
 from .config import Config, config_from_dict, config_to_dict, load_config, read_yaml
 from .errors import DataError, OutputError, RunError
 from .model import (
@@ -168,7 +171,6 @@ def preflight(ctx, engine) -> dict:
     dict of str to DataFrame
         The scenario paths as read, for :func:`scenario_paths`.
     """
-    import pandas as pd
 
     from .data import check_severity
     from .forecast import load_scenario_paths
@@ -225,7 +227,6 @@ def arrears_tables(cfg, engine) -> dict:
         ``arrears_transitions.csv`` (tidy, every month of the panel) and ``arrears_matrix.csv``
         (one matrix per window: ``development``, ``out_of_time`` when configured, ``all``).
     """
-    import pandas as pd
 
     from .data import TRANSITION_COUNTS_SQL, transition_matrix, transition_table
 
@@ -296,16 +297,33 @@ def macro_series_needed(model, cfg) -> list[str]:
     return sorted(set(needed))
 
 
-class _NoWriter:
-    """Stands in for a table writer when a table is switched off."""
+LOAN_PERIOD_TABLES = {
+    "curve": "pd_term_structure.parquet", "term": "pd_annual_by_loan.parquet", "schedule": "ecl_schedule.parquet",
+}  # fmt: skip
+"""The loan-by-period tables by writer role: a run writes them with ``outputs.loan_period_tables``, and
+``export`` recomputes them for chosen loans."""
 
-    rows = 0
+
+class LoanPeriodWriters:
+    """The three loan-by-period Parquet tables, written chunk by chunk through ``path_of(file)``."""
+
+    def __init__(self, path_of):
+        from .forecast import TableWriter
+
+        self.writers = {role: TableWriter(path_of(file), compression="zstd") for role, file in LOAN_PERIOD_TABLES.items()}
+
+    def callbacks(self) -> dict:
+        return dict(self.writers)
+
+    def rows(self) -> dict[str, int]:
+        return {LOAN_PERIOD_TABLES[role]: w.rows for role, w in self.writers.items()}
 
     def __enter__(self):
         return self
 
     def __exit__(self, *exc):
-        return None
+        for w in self.writers.values():
+            w.close()
 
 
 def scenario_paths(ctx, engine, model, book, loaded) -> dict:
@@ -355,8 +373,6 @@ def with_sicr_history(cfg, as_of: int, book):
     From ``staging.sicr_history_column`` when set, else from ``outputs.prior_run``; with neither, probation
     applies to arrears exits only, and the sentence says so.
     """
-    import numpy as np
-    import pandas as pd
 
     from .errors import DataError
     from .forecast import loan_list_text
@@ -393,10 +409,10 @@ def with_sicr_history(cfg, as_of: int, book):
 
 def project_book(ctx, engine, model, run, loaded, *, progress=None):
     """Projection, ECL and the exported tables of one run, written into ``run``."""
-    import numpy as np
 
     from .data import state_distribution
-    from .forecast import TableWriter, segment_level, segment_pd_tables, segment_speeds
+    from .exporting import save_projection_inputs
+    from .forecast import segment_level, segment_pd_tables, segment_speeds
     from .loss import expected_credit_loss_by_partition, sicr_sensitivity
 
     cfg = ctx.cfg
@@ -407,24 +423,19 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     paths = scenario_paths(ctx, engine, model, book, loaded)
     routes = default_routes_of(engine, cfg)
     ecl_options = {**ctx.ecl_options(), "days_past_due_share": routes["days_past_due_share"]}
-    options = {"compression": "zstd"}
-    monthly = cfg.outputs.monthly_tables
-    with (
-        TableWriter(run.add_file("pd_term_structure.parquet"), **options) if monthly else _NoWriter() as curves,
-        TableWriter(run.add_file("pd_annual_by_loan.parquet"), **options) as annual,
-        TableWriter(run.add_file("ecl_schedule.parquet"), **options) if monthly else _NoWriter() as schedule,
-    ):
-        writers = {"schedule": schedule, "curve": curves, "term": annual} if monthly else {"term": annual}
-        result = expected_credit_loss_by_partition(
-            engine, book, model, paths, writers=writers, progress=progress, **ecl_options
-        )
+    save_projection_inputs(run, book, paths, cfg.model.table if cfg.model.source == "table" else None)
+    if cfg.outputs.loan_period_tables:
+        with LoanPeriodWriters(run.add_file) as writers:
+            result = expected_credit_loss_by_partition(
+                engine, book, model, paths, writers=writers.callbacks(), progress=progress, **ecl_options
+            )
+        for file, rows in writers.rows().items():
+            run.outputs[file]["rows"] = rows
+    else:
+        result = expected_credit_loss_by_partition(engine, book, model, paths, progress=progress, **ecl_options)
     result.raise_for_non_finite()
-    run.outputs["pd_annual_by_loan.parquet"]["rows"] = annual.rows
-    if monthly:
-        run.outputs["pd_term_structure.parquet"]["rows"] = curves.rows
-        run.outputs["ecl_schedule.parquet"]["rows"] = schedule.rows
     csv = cfg.outputs.csv_copies
-    loan_table = result.loan_table()
+    loan_table = with_cut_columns(result.loan_table(), book, cfg)
     run.add_table(loan_table, "loan_ecl.parquet", csv=csv)
     sensitivity = sicr_sensitivity(result.loans, book, cfg.staging)
     run.add_table(sensitivity, "sicr_sensitivity.csv")
@@ -464,6 +475,56 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         "low_credit_risk": _low_credit_risk_totals(cfg, result.loans),
     }
     return result, report_tables, totals
+
+
+CUT_COLUMNS = (
+    "region", "band", "vintage", "origination_month", "age", "age_band", "remaining_term", "arrears_state",
+)  # fmt: skip
+"""The columns :func:`with_cut_columns` adds to the loan table, after ``segment``: what a loan-level cut groups by."""
+
+
+def age_band_labels(age) -> np.ndarray:
+    """Loan age in whole years as intervals closed on the left: ``[0, 12)``, ``[12, 24)``, ... (months)."""
+    start = (np.asarray(age, dtype=np.int64) // 12) * 12
+    return np.array([f"[{a}, {a + 12})" for a in start], dtype=object)
+
+
+def with_cut_columns(loan_table, book, cfg):
+    """The loan table with the columns a loan-level cut needs, from the book at the reporting month.
+
+    After ``segment``: ``region`` (``collateral.region_column``, when the loan table has it), ``band`` (the
+    score band of ``segments.band_column``, :func:`creditsurv.forecast.band_labels`; ``all`` without one),
+    ``vintage`` (origination year), ``origination_month`` (YYYY-MM), ``age`` (months on book), ``age_band``
+    (whole years), ``remaining_term`` (months left, :func:`creditsurv.forecast.remaining_term`) and
+    ``arrears_state`` (the arrears state at the reporting month, ``default`` for a loan in default).
+    """
+    from .forecast import band_codes, band_labels, remaining_term
+    from .months import format_month
+
+    b = book.set_index("loan_id").loc[loan_table["loan_id"].to_numpy()]
+    cuts = {}
+    region = cfg.collateral.region_column
+    if region is not None and region in b.columns:
+        cuts["region"] = b[region].astype(str).to_numpy()
+    seg = cfg.segments
+    labels = np.array(band_labels(seg.band_edges if seg.band_column else ()), dtype=object)
+    if seg.band_column and seg.band_edges:
+        cuts["band"] = labels[band_codes(b[seg.band_column].to_numpy(dtype=float), seg.band_edges)]
+    else:
+        cuts["band"] = np.repeat(labels[:1], len(b))
+    orig = b["origination_idx"].to_numpy(dtype=np.int64)
+    cuts["vintage"] = orig // 12
+    cuts["origination_month"] = np.array([format_month(int(m)) for m in orig], dtype=object)
+    age = b["age"].to_numpy(dtype=np.int64)
+    cuts["age"] = age
+    cuts["age_band"] = age_band_labels(age)
+    cuts["remaining_term"] = remaining_term(age, b["term"].to_numpy())
+    states = np.array([*cfg.arrears.labels(cfg.default_definition.days_past_due), "default"], dtype=object)
+    codes = np.where(b["in_default"].to_numpy(dtype=bool), len(states) - 1, b["arrears_state"].to_numpy(dtype=np.int64))
+    cuts["arrears_state"] = states[codes]
+    at = list(loan_table.columns).index("segment") + 1
+    head, tail = loan_table.iloc[:, :at], loan_table.iloc[:, at:]
+    return pd.concat([head, pd.DataFrame(cuts, index=loan_table.index), tail], axis=1)
 
 
 def _low_credit_risk_totals(cfg, loans):
@@ -541,7 +602,6 @@ def age_tail_sensitivity(engine, book, model, paths, result, ecl_options: dict):
     lifetime and reported ECL and the stage-2 loans. Returns ``(summary, table)``, both ``None`` for a
     source with no fitted age baseline (benchmark curves, a table).
     """
-    import pandas as pd
 
     from .config import WEIGHTED
     from .loss import expected_credit_loss_by_partition
@@ -823,3 +883,206 @@ def compare(run_a, run_b, out=None) -> Outcome:
         lines.append(f"  {row.step:<24} {int(row.loans):>8,} loans  {value:>18,.2f}")
     lines.append(f"wrote {final}")
     return Outcome("\n".join(lines), path=final)
+
+
+# --------------------------------------------------------------------------- export
+
+
+def _run_hazard_source(cfg, run_dir: Path, hazard_table):
+    """The hazard source a finished run projected with, from its folder: its model file, its benchmark
+    speeds (config) or its copy of the hazard table."""
+    from .model import BenchmarkCurves, HazardTable, load_model
+
+    if cfg.model.source == "benchmark":
+        return BenchmarkCurves(psa=cfg.model.psa, sda=cfg.model.sda)
+    if cfg.model.source == "table":
+        return HazardTable(pd.read_csv(hazard_table))
+    return load_model(run_dir / "hazard_model.json")
+
+
+def _export_name(parent: Path, run_name: str) -> str:
+    for i in range(1, 10_000):
+        candidate = f"export_{run_name}" + (f"_{i}" if i > 1 else "")
+        if not (parent / candidate).exists():
+            return candidate
+    raise RunError(f"{parent}: no free folder name for an export of {run_name}")  # pragma: no cover
+
+
+def _loan_ids(loans, table: pd.DataFrame, run_dir: Path) -> np.ndarray:
+    """The chosen loan ids, every one checked against the run's loan table."""
+    ids = pd.Index(pd.unique(np.asarray([str(x) for x in loans], dtype=object)))
+    known = pd.Index(table["loan_id"].astype(str))
+    unknown = ids[~ids.isin(known)]
+    if len(unknown):
+        from .forecast import loan_list_text
+
+        raise DataError(f"{run_dir / 'loan_ecl.parquet'}: no loan {loan_list_text(unknown)} in the run (--loans)")
+    return table["loan_id"].to_numpy()[known.isin(ids)]
+
+
+def export(
+    run_dir,
+    out=None,
+    *,
+    by=(("segment",),),
+    scenarios=("weighted",),
+    weightings=("count", "balance"),
+    measures=("cumulative", "marginal", "conditional", "survival"),
+    period: str = "year",
+    fmt: str = "csv",
+    loans=None,
+) -> Outcome:
+    """``creditsurv export``: PD term structures of a finished run, grouped by loan attributes, and the
+    loan-by-period tables of chosen loans.
+
+    The run folder is first checked against its manifest (every output's SHA-256; a changed folder is
+    refused with ``ReproduceMismatch``); nothing in it is changed. The curves are recomputed from what the
+    run kept (``projection_inputs/``, its model and config), so they are the run's own, and written as one
+    new folder under ``out`` (default: ``exports/`` beside the run folder), never inside the run folder.
+
+    Parameters
+    ----------
+    run_dir : path
+        A folder written by ``creditsurv run``.
+    out : path, optional
+        The folder to create the export folder in.
+    by : sequence of sequence of str
+        One table per entry: the loan-table columns to group by (``segment``, ``band``, ``vintage``,
+        ``stage``, ``age_band``, ``arrears_state``, ``region``, ...); ``()`` is the whole book.
+    scenarios : sequence of str
+        Scenario names of the run, or ``weighted``.
+    weightings : ``count`` and/or ``balance`` (balance at the reporting month).
+    measures : ``cumulative``, ``marginal``, ``conditional``, ``survival``.
+    period : ``year`` or ``month``.
+    fmt : ``csv``, ``parquet`` or ``xlsx`` (one workbook, a sheet per table).
+    loans : sequence of str, optional
+        Loan ids whose loan-by-period tables (``pd_term_structure``, ``pd_annual_by_loan``,
+        ``ecl_schedule``) are written too, equal to the ones the run writes with
+        ``outputs.loan_period_tables``.
+
+    Conventions: the grouped curves cover the loans the run projected (loans not in default); past its
+    maturity a loan keeps its final cumulative PD and survival and adds no marginal PD.
+    """
+    from .config import WEIGHTED, run_context
+    from .exporting import (
+        FORMATS,
+        MEASURES,
+        PERIODS,
+        WEIGHTINGS,
+        GroupedCurves,
+        check_fits_a_sheet,
+        read_projection_inputs,
+        write_tables,
+    )
+    from .forecast import remaining_term
+    from .loss import expected_credit_loss
+    from .runs import RunFolder, check_folder_on_disk, read_manifest, sha256_file
+
+    run_dir = Path(run_dir)
+    manifest = read_manifest(run_dir)
+    if manifest["kind"] != "run":
+        raise RunError(f"{run_dir}: not a run folder made by creditsurv run (kind {manifest['kind']!r})")
+    problems = []
+    for name, given, allowed in (
+        ("--format", [fmt], FORMATS), ("--period", [period], PERIODS),
+        ("--weighting", list(weightings), WEIGHTINGS), ("--measure", list(measures), tuple(MEASURES)),
+    ):  # fmt: skip
+        bad = [v for v in given if v not in allowed]
+        if bad or not given:
+            problems.append(f"{name}: {bad or 'nothing given'}; choose from {list(allowed)}")
+    cfg = config_from_dict(manifest["config_resolved"], run_dir)
+    ctx = run_context(cfg)
+    names = (*ctx.scenarios, WEIGHTED)  # config order (the manifest's mappings are written with sorted keys)
+    bad = [s for s in scenarios if s not in names]
+    if bad or not scenarios:
+        problems.append(f"--scenario: {bad or 'nothing given'}; the run has {list(names)}")
+    if problems:
+        from .errors import ConfigError, problem_list
+
+        raise ConfigError(problem_list(problems, "the export options"))
+    parent = Path(out) if out is not None else run_dir.parent / "exports"
+    if parent.resolve().is_relative_to(run_dir.resolve()):
+        raise OutputError(f"{parent}: inside the run folder {run_dir}; a finished run never changes. Choose another --out")
+    check_folder_on_disk(run_dir, manifest)
+
+    table = pd.read_parquet(run_dir / "loan_ecl.parquet")
+    groupings = [tuple(b) for b in by]
+    missing = sorted({c for b in groupings for c in b} - set(table.columns))
+    if missing:
+        raise DataError(f"{run_dir / 'loan_ecl.parquet'}: no column {missing} to group by (--by); have {list(table.columns)}")
+    chosen = _loan_ids(loans, table, run_dir) if loans is not None else None
+
+    inputs = read_projection_inputs(run_dir, ctx.scenarios)
+    source = _run_hazard_source(cfg, run_dir, inputs.hazard_table)
+    share = manifest["totals"]["default_routes"]["days_past_due_share"]
+    options = {**ctx.ecl_options(), "days_past_due_share": share}
+
+    tables = {}
+    if groupings:
+        live = table[table["stage"] != 3]
+        book = inputs.book
+        horizon = int(remaining_term(book["age"], book["term"]).max()) if len(book) else 0
+        grouped = GroupedCurves(live, groupings, scenarios, horizon)
+        expected_credit_loss(inputs.book, source, inputs.paths, on_chunk=grouped, **options)
+        tables = grouped.tables(period=period, weightings=weightings, measures=measures)
+        if fmt == "xlsx":
+            check_fits_a_sheet(tables)
+    with RunFolder(parent, _export_name(parent, run_dir.name)) as folder:
+        loan_rows = {}
+        if chosen is not None:
+            subset = inputs.book[inputs.book["loan_id"].isin(chosen)]
+            loan_rows, loan_frames = _loan_period_tables(subset, source, inputs.paths, options, folder, fmt)
+            tables = {**loan_frames, **tables}
+        write_tables(folder, tables, fmt)
+        record = {
+            "schema_version": 1, "kind": "export", "creditsurv": __version__,
+            "run": run_dir.name, "run_id": manifest["run_id"], "as_of": manifest["as_of"],
+            "run_manifest_sha256": sha256_file(run_dir / "manifest.json"),
+            "options": {
+                "by": [list(b) for b in groupings], "scenarios": list(scenarios), "weightings": list(weightings),
+                "measures": list(measures), "period": period, "format": fmt,
+                "loans": None if chosen is None else [str(x) for x in chosen],
+            },
+            "conventions": "grouped curves over the loans the run projected (not in default); past its maturity "
+            "a loan keeps its final cumulative PD and survival and adds no marginal PD",
+        }  # fmt: skip
+        final = folder.commit(record)
+    lines = [f"export of {run_dir.name} ({manifest['as_of']})"]
+    if chosen is not None:
+        lines.append(f"  loan-by-period tables of {len(chosen):,} loans: " + ", ".join(f"{k} {v:,} rows" for k, v in loan_rows.items()))
+    for name, t in tables.items():
+        if name not in loan_rows:
+            lines.append(f"  {name}: {len(t):,} rows")
+    lines.append(f"wrote {final}")
+    return Outcome("\n".join(lines), path=final)
+
+
+def _loan_period_tables(book, source, paths, options, folder, fmt) -> tuple[dict[str, int], dict[str, pd.DataFrame]]:
+    """The loan-by-period tables of the loans of ``book``: rows per table, and the tables to write.
+
+    Parquet: written here chunk by chunk, exactly as a run writes them (nothing left to write); CSV and
+    Excel: returned as frames, written with the other tables.
+    """
+    import pyarrow as pa
+
+    from .loss import expected_credit_loss
+
+    if fmt == "parquet":
+        with LoanPeriodWriters(folder.add_file) as writers:
+            expected_credit_loss(book, source, paths, **options, **_writer_arguments(writers.callbacks()))
+        rows = {}
+        for file, n in writers.rows().items():
+            folder.outputs[file]["rows"] = n
+            rows[file.removesuffix(".parquet")] = n
+        return rows, {}
+    parts = {role: [] for role in LOAN_PERIOD_TABLES}
+    expected_credit_loss(book, source, paths, **options, **_writer_arguments({r: parts[r].append for r in parts}))
+    frames = {
+        LOAN_PERIOD_TABLES[r].removesuffix(".parquet"): pa.concat_tables(p).to_pandas() if p else pd.DataFrame()
+        for r, p in parts.items()
+    }
+    return {k: len(v) for k, v in frames.items()}, frames
+
+
+def _writer_arguments(writers: dict) -> dict:
+    return {"schedule_writer": writers["schedule"], "curve_writer": writers["curve"], "term_writer": writers["term"]}
