@@ -8,6 +8,7 @@ The public API, what the command line calls::
     print(creditsurv.check(cfg).text)            # the data checks
     result = creditsurv.run(cfg, as_of="2024-11") # the monthly job, one new run folder
     creditsurv.reproduce(result.path)            # re-run it from its record and compare
+    creditsurv.export(result.path, by=[("segment", "band")])  # lifetime PD tables by segment and band
 
 Each command takes a config path or a :class:`Config` and returns an
 :class:`Outcome` (text, failed, path). The stages are packages with public
@@ -41,7 +42,7 @@ from .errors import (
 )
 from .loss import EclResult
 from .model import HazardResults
-from .pipeline import Outcome, check, compare, fit, reproduce, run
+from .pipeline import Outcome, check, compare, export, fit, reproduce, run
 from .runs import MovementResult
 from .validation import ValidationPack
 from .version import __version__
@@ -75,6 +76,7 @@ __all__ = [
     "ValidationPack",
     "check",
     "compare",
+    "export",
     "config_from_dict",
     "fit",
     "load_config",

@@ -111,6 +111,46 @@ def _cmd_compare(args) -> int:
     return 0
 
 
+def _comma_list(text: str) -> tuple[str, ...]:
+    return tuple(x.strip() for x in text.split(",") if x.strip())
+
+
+def _cmd_export(args) -> int:
+    from .pipeline import export
+
+    by = [_comma_list(b) for b in args.by] if args.by else [("segment",)]
+    loans = None
+    if args.loans is not None:
+        loans = list(_comma_list(args.loans))
+    if args.loans_file is not None:
+        loans = (loans or []) + _read_loan_list(args.loans_file)
+    outcome = export(
+        args.run_dir, out=args.out, by=by, scenarios=tuple(args.scenario or ("weighted",)),
+        weightings=_comma_list(args.weighting), measures=_comma_list(args.measures), period=args.period,
+        fmt=args.format, loans=loans,
+    )  # fmt: skip
+    print(outcome.text)
+    return 0
+
+
+def _read_loan_list(path: Path) -> list[str]:
+    """Loan ids from a text file, one per line, or a CSV file with a ``loan_id`` column."""
+    from .errors import DataError
+
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise DataError(f"{path}: cannot read the loan list (--loans-file): {exc.strerror or exc}") from None
+    lines = [line.strip() for line in text.splitlines() if line.strip()]
+    if lines and "," in lines[0]:
+        header = [c.strip() for c in lines[0].split(",")]
+        if "loan_id" not in header:
+            raise DataError(f"{path}: a CSV loan list needs a loan_id column; has {header} (--loans-file)")
+        at = header.index("loan_id")
+        return [line.split(",")[at].strip() for line in lines[1:]]
+    return [x for x in lines if x != "loan_id"]
+
+
 def _cmd_init(args) -> int:
     from .pipeline import init_project
 
@@ -173,6 +213,41 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("run_b", type=Path, metavar="RUN_B")
     p.add_argument("--out", type=Path, default=None, help="folder for the movement tables (default: beside RUN_B)")
     p.set_defaults(func=_cmd_compare)
+
+    p = sub.add_parser(
+        "export", help="PD term structures of a finished run by any loan attributes, and chosen loans' tables",
+        description="Recompute a finished run's PD term structures from what the run kept and write them, grouped "
+        "by loan attributes, outside the run folder (which is checked against its manifest first and never "
+        "changes). Example: creditsurv export reports/2024-12_1a2b3c4d5e --by segment --by band --by segment,vintage "
+        "--scenario weighted --scenario downside --format xlsx",
+    )  # fmt: skip
+    p.add_argument("run_dir", type=Path, metavar="RUN_DIR", help="a folder written by creditsurv run, e.g. reports/2024-12_1a2b3c4d5e")
+    p.add_argument(
+        "--by", action="append", metavar="COLUMNS",
+        help="one table per use: loan-table columns to group by, comma separated (segment, band, vintage, stage, "
+        "age_band, arrears_state, region, stage_reason, ...), e.g. --by segment,band; an empty value is the "
+        "whole book; default --by segment",
+    )  # fmt: skip
+    p.add_argument(
+        "--scenario", action="append", metavar="NAME",
+        help="a scenario of the run, or weighted (the probability-weighted curves); repeat for several; default weighted",
+    )
+    p.add_argument("--weighting", default="count,balance", metavar="count,balance",
+                   help="average over loans (count) and/or by balance at the reporting month (balance); default both")  # fmt: skip
+    p.add_argument(
+        "--measures", default="cumulative,marginal,conditional,survival", metavar="LIST",
+        help="cumulative PD, marginal PD of the period, conditional PD (given survival to the period's start), "
+        "survival; default all four, e.g. --measures cumulative,conditional",
+    )  # fmt: skip
+    p.add_argument("--period", choices=("year", "month"), default="year", help="years or months ahead (default year)")
+    p.add_argument("--format", choices=("csv", "parquet", "xlsx"), default="csv",
+                   help="csv, parquet, or xlsx (one workbook, a sheet per table); default csv")  # fmt: skip
+    p.add_argument("--loans", default=None, metavar="IDS",
+                   help="also write the loan-by-period tables of these loans, comma separated, e.g. --loans Q000123,Q004567")  # fmt: skip
+    p.add_argument("--loans-file", type=Path, default=None, metavar="FILE",
+                   help="as --loans, the ids read from a file: one per line, or a CSV with a loan_id column")  # fmt: skip
+    p.add_argument("--out", type=Path, default=None, help="folder to create the export folder in (default: exports/ beside RUN_DIR)")
+    p.set_defaults(func=_cmd_export)
     return parser
 
 

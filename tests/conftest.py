@@ -250,7 +250,6 @@ class Workspace:
         shutil.copytree(book, root / "book")
         ws = cls(root)
         ws.data = demo_config_data(Path("book"), Path("reports"))
-        ws.data["outputs"]["monthly_tables"] = False
         ws.save()
         return ws
 

@@ -39,7 +39,7 @@ def _config(book: Path, tmp: Path, outputs=None, **model) -> Path:
 @pytest.fixture(scope="module")
 def demo_run(small_book, tmp_path_factory):
     tmp = tmp_path_factory.mktemp("run")
-    outcome = creditsurv.run(_config(small_book, tmp), argv=["creditsurv", "run"])
+    outcome = creditsurv.run(_config(small_book, tmp, outputs={"loan_period_tables": True}), argv=["creditsurv", "run"])
     return outcome.path
 
 
@@ -141,15 +141,16 @@ def test_benchmark_curves_run_reports_their_own_speeds(small_book, tmp_path):
     # A run on the PSA / SDA standard's own assumptions reports those speeds back:
     # SMM = prepaid / exposure recovers the standard's SMM exactly, so the
     # equivalent multiple is the one configured.
-    cfg = _config(small_book, tmp_path, outputs={"monthly_tables": False}, source="benchmark", psa=150.0, sda=200.0)
+    cfg = _config(small_book, tmp_path, source="benchmark", psa=150.0, sda=200.0)
     outcome = creditsurv.run(cfg)
     speeds = pd.read_csv(outcome.path / "equivalent_speeds.csv")
     np.testing.assert_allclose(speeds["psa"], 150.0, rtol=1e-9)
     np.testing.assert_allclose(speeds["sda"], 200.0, rtol=1e-9)
     assert not (outcome.path / "coefficients.csv").exists()
-    # outputs.monthly_tables: false leaves out the two loan-by-month tables.
+    # by default (outputs.loan_period_tables: false) no loan-by-period table is written
     assert not (outcome.path / "pd_term_structure.parquet").exists()
     assert not (outcome.path / "ecl_schedule.parquet").exists()
+    assert not (outcome.path / "pd_annual_by_loan.parquet").exists()
     assert (outcome.path / "loan_ecl.parquet").exists()
 
 
@@ -357,7 +358,11 @@ def test_fit_command_fits_the_multi_state_model_and_a_run_projects_it(small_book
     late = loans[(loans["days_past_due"] >= 30) & (loans["stage"] != 3)]
     current = loans[loans["days_past_due"] < 30]
     assert len(late) > 5 and late["pd_12m"].median() > 3 * current["pd_12m"].median()
-    pf = pd.read_parquet(run / "pd_term_structure.parquet", columns=["survival", "cumulative_pd", "cumulative_prepay"])
+    # the loan-level curves of a multi-state run, from export (a compact run keeps no loan-by-period table)
+    chosen = loans.loc[loans["stage"] != 3, "loan_id"].iloc[::50].tolist()
+    exported = creditsurv.export(run, tmp_path / "exports", by=[], loans=chosen, fmt="parquet").path
+    pf = pd.read_parquet(exported / "pd_term_structure.parquet", columns=["survival", "cumulative_pd", "cumulative_prepay"])
+    assert len(pf) > 1000
     np.testing.assert_allclose(pf.sum(axis=1), 1.0, rtol=0, atol=1e-12)
     assert len(pd.read_csv(run / "validation" / "hazard_by_age.csv")) > 0
     # the out-of-time moves one month ahead: each state's rows add up to its months on both sides, and the actual

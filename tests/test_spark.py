@@ -329,7 +329,7 @@ def cluster_workspace(corpus_book, tmp_path_factory):
     data["model"]["covariates"] = [{"name": "credit_score", "column": "credit_score", "transform": "standardise"}]
     data["checks"] = {"severity": {name: "off" for name in DATA_CHECK_NAMES}}
     data["validation"] = {"bootstrap": 10}
-    data["outputs"]["monthly_tables"] = False
+    data["outputs"]["loan_period_tables"] = True  # the loan-level annual table is compared across engines
     duck = pipeline.execute_run(config_from_dict(data, base_dir=folder), folder / "duckdb").path
     return folder, data, duck
 

@@ -609,9 +609,12 @@ class Outputs:
         default=None, metadata=_doc("folder that holds run folders; default reports/ beside the config")
     )
     csv_copies: bool = field(default=False, metadata=_doc("also write CSV copies of Parquet tables"))
-    monthly_tables: bool = field(
-        default=True,
-        metadata=_doc("write the loan-by-month tables (pd_term_structure, ecl_schedule); they are most of a run's size"),
+    loan_period_tables: bool = field(
+        default=False,
+        metadata=_doc(
+            "also write the loan-by-period tables (pd_term_structure, pd_annual_by_loan, ecl_schedule: a row per loan "
+            "and month or year, most of a run's size); off, creditsurv export recomputes them from the run"
+        ),
     )
     prior_run: FilePath | None = field(default=None, metadata=_doc("previous run folder: the movement against it, and the staging's SICR history"))
 

@@ -810,6 +810,7 @@ def expected_credit_loss(
     schedule_writer: Callable[[pa.Table], None] | None = None,
     curve_writer: Callable[[pa.Table], None] | None = None,
     term_writer: Callable[[pa.Table], None] | None = None,
+    on_chunk: Callable[[ChunkProjection], None] | None = None,
     progress: Callable[[int, int], None] | None = None,
 ) -> EclResult:
     """Stage every loan and compute its 12-month, lifetime and reported ECL.
@@ -844,6 +845,8 @@ def expected_credit_loss(
         ``discount_factor``, ``expected_loss`` (sorted like the curves; the
         ``weighted`` row's lgd is the marginal-PD-weighted mean LGD, so that
         expected_loss = marginal_pd x lgd x ead x discount_factor holds there too).
+    on_chunk : callable(ChunkProjection), optional
+        A further consumer of each chunk's projection (a loan-level cut of the curves), after the ECL's own.
     progress : callable(done, total), optional
         Called after each chunk with the loans projected so far.
 
@@ -871,17 +874,18 @@ def expected_credit_loss(
     acc = _EclAccumulator(
         len(live), scenarios, w, loss, routes, lookups, collateral.region_column, hpi_names, as_of_idx, schedule_writer
     )
-    on_chunk = acc
-    if progress is not None:
+    consumers = [acc] + ([on_chunk] if on_chunk is not None else [])
 
-        def on_chunk(ch):
-            acc(ch)
+    def each_chunk(ch):
+        for consume in consumers:
+            consume(ch)
+        if progress is not None:
             progress(ch.rows.stop, len(live))
 
     proj = project_loans(
         live, source, paths, as_of_idx=as_of_idx, weights=w, chunk_size=chunk_size, collateral=collateral, segment_column="segment",
         band_column=band_column, band_edges=band_edges, curve_writer=curve_writer, term_writer=term_writer,
-        on_chunk=on_chunk,
+        on_chunk=each_chunk,
     )
     names = (*scenarios, WEIGHTED)
     measures = _live_measures(len(frame), live_rows, names, proj, acc)
