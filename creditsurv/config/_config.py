@@ -627,7 +627,7 @@ class VerdictThresholds:
         metadata=_doc("an AUC below this is fail (common practice 0.60, Gini 0.20); at most auc_watch", min=0.0, max=1.0),
     )
     ages_outside_watch: float = field(
-        default=0.25,
+        default=0.15,
         metadata=_doc(
             "model against Aalen-Johansen by vintage: a share of ages with the model outside the 95% interval at or "
             "above this is watch (our own rule: about 0.05 for a model that fits); below it passes",
@@ -635,7 +635,7 @@ class VerdictThresholds:
         ),
     )
     ages_outside_fail: float = field(
-        default=0.50,
+        default=0.30,
         metadata=_doc(
             "model against Aalen-Johansen by vintage: a share of ages outside at or above this is fail (our own "
             "rule); at least ages_outside_watch",
