@@ -6,14 +6,17 @@ where Hosmer, Lemeshow & Sturdivant's Applied Logistic Regression starts calling
 verdict below follows from those levels and the closed side the rule states, written beside the check.
 """
 
+import json
 import math
 
 import pandas as pd
 import pytest
+from test_report import parse
 
 from creditsurv import validation as v
 from creditsurv.config import config_from_dict
 from creditsurv.errors import ConfigError, DataError
+from creditsurv.report import render_report
 
 # --------------------------------------------------------------------------- the rules at their thresholds
 
@@ -208,3 +211,60 @@ def test_equal_levels_are_allowed_and_a_level_out_of_range_is_refused():
         _config({"p_value_watch": 1.5})
     with pytest.raises(ConfigError, match=r"validation\.thresholds\.psi_warn: unknown key .*did you mean"):
         _config({"psi_warn": 0.1})
+
+
+# --------------------------------------------------------------------------- the report
+
+
+def test_the_report_summary_prints_each_areas_verdict_and_what_was_seen():
+    summary = _backtest_summary(762, 673.4, 3.43, 2.9)  # one-factor p = erfc(2.9 / sqrt 2) = 0.004: fail
+    stability = pd.DataFrame({"variable": ["macro:unemployment_rate:1", "dti"], "psi": [12.47, 0.13]})
+    verdicts = v.verdict_table(summary, {"stability": stability})
+    html = render_report({"verdicts": verdicts, "stability": stability.assign(verdict=["expected drift", "watch"])}, {})
+    doc = parse(html)
+    text = doc.text("summary")
+    # the words are printed, not carried by colour alone: a marked row still reads fail or watch
+    assert '<tr class="flag"><td>Backtest, prepayment</td><td>fail</td>' in html
+    assert '<tr class="flag"><td>Stability</td><td>watch</td>' in html
+    assert "Prepayment backtest, out of time, 2023-01 to 2024-06: 762 actual against 673.4 expected" in text
+    assert "Stability of dti: PSI 0.1300" in text and "watch (PSI below 0.10 passes, at or above 0.10 is watch" in text
+    assert "Not judged, expected drift" in text and "macro:unemployment_rate:1 (PSI 12.4700)" in text
+    validation = doc.text("validation")
+    assert "Stability: verdict watch." in validation and "Backtest, prepayment: verdict fail." in validation
+
+
+# --------------------------------------------------------------------------- a finished run: record and report
+
+
+def test_a_runs_manifest_table_and_report_carry_the_verdicts(corpus_book):
+    run = corpus_book.earlier_run
+    record = json.loads((run / "manifest.json").read_text())["validation"]["verdicts"]
+    table = pd.read_csv(run / "validation" / "verdicts.csv")
+    assert list(table.columns) == list(v.VERDICT_COLUMNS)
+    words = {"pass", "watch", "fail", "expected drift"}
+    assert set(table["verdict"]) <= words and set(record["areas"].values()) <= words
+    # the competing-risk run judges these areas; each is the worst of its items (fail over watch over pass,
+    # expected drift left out), recomputed here from the table
+    assert set(record["areas"]) == {"discrimination", "calibration", "backtest_default", "backtest_prepay",
+                                    "stability", "vintage_curves"}  # fmt: skip
+    rank = {"pass": 0, "watch": 1, "fail": 2}
+    for area, rows in table.groupby("area"):
+        judged = [w for w in rows["verdict"] if w != "expected drift"]
+        assert record["areas"][area] == max(judged, key=rank.get), area
+    assert record["thresholds"] == v.THRESHOLDS
+    assert [item["sentence"] for item in record["items"]] == table["sentence"].tolist()
+    # the macro series of the demo model moves with the calendar
+    assert table.set_index("item").loc["macro:unemployment_rate:1", "verdict"] == "expected drift"
+    # each verdict follows from its value and the rule
+    for r in table.itertuples():
+        if r.statistic == "PSI" and r.verdict != "expected drift":
+            assert r.verdict == v.psi_verdict(r.value, watch=r.watch_threshold, fail=r.fail_threshold)
+        if r.statistic.endswith("p-value") or r.statistic.startswith("p-value"):
+            assert r.verdict == v.p_value_verdict(r.value, watch=r.watch_threshold, fail=r.fail_threshold)
+    html = (run / "report.html").read_text(encoding="utf-8")
+    summary = parse(html).text("summary")
+    assert "Validation verdicts" in summary
+    for area, verdict in record["areas"].items():
+        assert f"<td>{v.AREAS[area]}</td><td>{verdict}</td>" in html, area
+    for r in table[table["verdict"].isin(["watch", "fail"])].itertuples():
+        assert r.sentence in summary
