@@ -758,7 +758,7 @@ def execute_run(
 
 _REPORTED_VALIDATION = (
     "discrimination", "calibration", "stability", "coefficient_changes", "incidence_by_vintage", "hazard_by_age",
-    "backtest_transitions", "transitions_development", "states_by_vintage",
+    "backtest_transitions", "transitions_development", "states_by_vintage", "verdicts",
 )  # fmt: skip
 
 

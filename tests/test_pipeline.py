@@ -371,6 +371,12 @@ def test_fit_command_fits_the_multi_state_model_and_a_run_projects_it(small_book
     for origin, rows in moves.groupby("origin"):
         assert rows["expected"].sum() == pytest.approx(rows["n"].iloc[0], rel=1e-9)
         assert rows["actual"].sum() == rows["n"].iloc[0]
+    # a common factor only adds variance (Vasicek: P(both) >= p^2 for a correlation >= 0): |z_factor| <= |z|; each
+    # move (not staying) has a verdict read from it
+    seen = moves.dropna(subset=["z"])
+    assert (seen["z_factor"].abs() <= seen["z"].abs() + 1e-12).all()
+    judged = pd.read_csv(run / "validation" / "verdicts.csv").query("area == 'backtest_transitions'")
+    assert sorted(judged["item"]) == sorted(f"{o} to {d}" for o, d in zip(moves["origin"], moves["destination"]) if o != d)
     counted = pd.read_csv(run / "arrears_transitions.csv")
     oot = counted[(counted["month"] >= "2023-01") & (counted["month"] <= "2024-06")]
     by_move = oot.groupby(["origin", "destination"])["loan_months"].sum()

@@ -280,7 +280,7 @@ def tables():
                 "p_value": [0.4, 0.6, 0.8, 0.5, 0.7],
             }
         ),
-        "stability": pd.DataFrame({"variable": ["ltv", "score"], "psi": [0.031, 0.14], "flag": ["stable", "watch"]}),
+        "stability": pd.DataFrame({"variable": ["ltv", "score"], "psi": [0.031, 0.14], "verdict": ["pass", "watch"]}),
         "coefficient_changes": pd.DataFrame(
             {"cause": ["default"], "term": ["ltv"], "previous": [1.8], "current": [1.9]}
         ),
@@ -511,7 +511,7 @@ def test_missing_columns_named_in_one_error(tables, meta):
 
 
 def test_long_tables_are_cut_with_a_note(meta):
-    stability = pd.DataFrame({"variable": [f"v{i:03d}" for i in range(75)], "psi": 0.01, "flag": "stable"})
+    stability = pd.DataFrame({"variable": [f"v{i:03d}" for i in range(75)], "psi": 0.01, "verdict": "pass"})
     text = parse(render_report({"stability": stability}, meta)).text("validation")
     assert "v059" in text and "v060" not in text
     assert "First 60 of 75 rows shown (full table: stability in the run folder)." in text
@@ -536,8 +536,8 @@ def test_the_summary_states_the_exposure_and_sicr_basis(tables, meta):
 
 
 def test_expected_drift_is_explained_beside_the_stability_table(meta):
-    stability = pd.DataFrame({"variable": ["macro:unemployment_rate:1", "dti"], "psi": [12.5, 0.01], "flag": ["expected drift", "stable"]})
+    stability = pd.DataFrame({"variable": ["macro:unemployment_rate:1", "dti"], "psi": [12.5, 0.01], "verdict": ["expected drift", "pass"]})
     text = parse(render_report({"stability": stability}, meta)).text("validation")
     assert "expected drift" in text and "no signal about the model" in text
-    calm = pd.DataFrame({"variable": ["dti"], "psi": [0.01], "flag": ["stable"]})
+    calm = pd.DataFrame({"variable": ["dti"], "psi": [0.01], "verdict": ["pass"]})
     assert "no signal about the model" not in parse(render_report({"stability": calm}, meta)).text("validation")

@@ -381,6 +381,10 @@ def test_a_standalone_cluster_runs_a_small_book_as_duckdb_does(standalone_cluste
             assert list(va["variable"]) == list(vb["variable"])
             _close(va[["variable", "n_current"]], vb[["variable", "n_current"]])
             continue
+        if name == "verdicts.csv":
+            # the stability rows read those sampled PSIs (above); every other verdict agrees whole
+            assert list(va[["area", "item"]].itertuples(index=False)) == list(vb[["area", "item"]].itertuples(index=False))
+            va, vb = (t[t["area"] != "stability"].reset_index(drop=True) for t in (va, vb))
         _close(va, vb, atol=PROB_ATOL)
 
 

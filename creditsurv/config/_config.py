@@ -589,6 +589,79 @@ class Segments:
 
 
 @dataclass(frozen=True)
+class VerdictThresholds:
+    """Where a validation statistic turns from pass to watch and from watch to fail.
+
+    The defaults are common practice (PSI 0.10 and 0.25 of credit scoring; the 5% and 1% test levels; AUC 0.70,
+    acceptable discrimination, and 0.60), except the vintage curves' share of ages outside, our own rule. The
+    side of each threshold that is closed is stated in its text and in ``creditsurv.validation``'s verdict rules.
+    """
+
+    psi_watch: float = field(
+        default=0.10, metadata=_doc("PSI at or above this is watch (common practice 0.10); below it passes", gt=0.0)
+    )
+    psi_fail: float = field(
+        default=0.25, metadata=_doc("PSI at or above this is fail (common practice 0.25); at least psi_watch", gt=0.0)
+    )
+    p_value_watch: float = field(
+        default=0.05,
+        metadata=_doc(
+            "a p-value at or below this is watch (common practice 0.05): the backtest of each cause and each move "
+            "between arrears states (two-sided, of the one-factor z) and Hosmer-Lemeshow; above it passes",
+            gt=0.0, max=1.0,
+        ),
+    )
+    p_value_fail: float = field(
+        default=0.01,
+        metadata=_doc("a p-value at or below this is fail (common practice 0.01); at most p_value_watch", gt=0.0, max=1.0),
+    )
+    auc_watch: float = field(
+        default=0.70,
+        metadata=_doc(
+            "an AUC of the 12-month PD below this is watch (common practice 0.70, Gini 0.40); at or above it passes",
+            min=0.0, max=1.0,
+        ),
+    )
+    auc_fail: float = field(
+        default=0.60,
+        metadata=_doc("an AUC below this is fail (common practice 0.60, Gini 0.20); at most auc_watch", min=0.0, max=1.0),
+    )
+    ages_outside_watch: float = field(
+        default=0.15,
+        metadata=_doc(
+            "model against Aalen-Johansen by vintage: a share of ages with the model outside the 95% interval at or "
+            "above this is watch (our own rule: about 0.05 for a model that fits); below it passes",
+            min=0.0, max=1.0,
+        ),
+    )
+    ages_outside_fail: float = field(
+        default=0.30,
+        metadata=_doc(
+            "model against Aalen-Johansen by vintage: a share of ages outside at or above this is fail (our own "
+            "rule); at least ages_outside_watch",
+            min=0.0, max=1.0,
+        ),
+    )
+
+    def _validate(self) -> list:
+        # A larger PSI or share of ages outside is worse; a smaller p-value or AUC is worse.
+        problems = []
+        for name, label, worse in (
+            ("psi", "PSI", "higher"), ("p_value", "p-value", "lower"), ("auc", "AUC", "lower"),
+            ("ages_outside", "share of ages outside", "higher"),
+        ):  # fmt: skip
+            watch, fail = getattr(self, f"{name}_watch"), getattr(self, f"{name}_fail")
+            if (worse == "higher" and fail < watch) or (worse == "lower" and fail > watch):
+                side = "at or above" if worse == "higher" else "at or below"
+                problems.append((
+                    f"{name}_fail",
+                    f"{fail:g} is {'below' if worse == 'higher' else 'above'} {name}_watch {watch:g}: a {worse} "
+                    f"{label} is worse, so fail must be {side} watch (swap the two?)",
+                ))  # fmt: skip
+        return problems
+
+
+@dataclass(frozen=True)
 class ValidationSettings:
     bootstrap: int = field(default=200, metadata=_doc("bootstrap resamples for the AUC interval", min=0))
     pd_groups: int = field(default=10, metadata=_doc("groups for calibration", min=2))
@@ -601,6 +674,10 @@ class ValidationSettings:
         ),
     )
     prior_model: FilePath | None = field(default=None, metadata=_doc("a prior model JSON to compare"))
+    thresholds: VerdictThresholds = field(
+        default_factory=VerdictThresholds,
+        metadata=_doc("levels of the validation verdicts (pass, watch, fail) of every statistic of the pack"),
+    )
 
 
 @dataclass(frozen=True)

@@ -13,7 +13,8 @@ metadata adds constraints:
 Supported annotations: ``str``, ``int``, ``float``, ``bool``, ``Month``,
 ``FilePath``, ``Literal[...]``, ``X | None``, ``tuple[X, ...]``,
 ``dict[str, X]``, and nested frozen dataclasses. A dataclass may define
-``_validate(self) -> list[str]`` for checks across fields.
+``_validate(self) -> list`` for checks across fields: each problem is text about
+the dataclass, or a pair ``(key, text)`` about one of its keys.
 
 All problems are collected in one pass and raised together as one
 ``ConfigError``.
@@ -195,7 +196,10 @@ class _Builder:
             return None
         obj = cls(**kwargs)
         for text in getattr(obj, "_validate", lambda: [])():
-            self.problem(path, text)
+            if isinstance(text, tuple):  # (key, text): a problem of one key, named by its full path
+                self.problem(_join(path, text[0]), text[1])
+            else:
+                self.problem(path, text)
         return obj
 
     def check_field(self, f: dataclasses.Field, value, path: str) -> None:

@@ -12,7 +12,8 @@ column the section needs is an error (all such problems are raised at once).
 Sections, in order, each an HTML ``<section>`` with the ``id`` given:
 
 ==========================  ====================================================
-``summary``                 ``meta`` run fields; headline numbers from ``loan_ecl``
+``summary``                 ``meta`` run fields; headline numbers from ``loan_ecl``;
+                            the validation verdicts from ``verdicts``
 ``cautions``                fixed text (plus a line when ``meta["synthetic"]``)
 ``data-checks``             ``data_checks``
 ``events``                  ``event_counts``
@@ -22,9 +23,9 @@ Sections, in order, each an HTML ``<section>`` with the ``id`` given:
 ``pd-term-structure``       ``segment_pd_table``
 ``ecl``                     ``loan_ecl``, ``segment_summary``
 ``speeds``                  ``segment_speeds``, ``equivalent_speeds``
-``validation``              ``backtest``, ``discrimination``, ``calibration``,
-                            ``stability``, ``coefficient_changes``;
-                            ``meta["calibration"]``
+``validation``              ``verdicts``, ``backtest``, ``discrimination``,
+                            ``calibration``, ``stability``,
+                            ``coefficient_changes``; ``meta["calibration"]``
 ``movement``                ``movement_walk``, ``stage_migration``
 ``run-record``              ``meta["inputs"]``, ``meta["versions"]``, config hash
 ==========================  ====================================================
@@ -52,6 +53,7 @@ from matplotlib.ticker import FuncFormatter, MaxNLocator, PercentFormatter
 
 from ..config import WEIGHTED
 from ..errors import DataError
+from ..validation import AREAS, EXPECTED_DRIFT, FAIL, WATCH, area_verdicts
 
 __all__ = ["REQUIRED_COLUMNS", "SECTIONS", "render_report", "write_report"]
 
@@ -77,6 +79,7 @@ REQUIRED_COLUMNS: dict[str, tuple[str, ...]] = {
     "movement_walk": ("step", "ecl_change"),
     "stage_migration": (),
     "coefficient_changes": (),
+    "verdicts": ("area", "item", "value", "verdict", "sentence"),
 }
 
 # Other names in use for the same column (the first name is the one the report uses).
@@ -395,7 +398,7 @@ def _summary(tables, meta) -> str:
     loans = tables.get("loan_ecl")
     if loans is None:
         out.append(_absent("loan_ecl"))
-        return "".join(out)
+        return "".join(out) + _verdict_summary(tables)
     ead, ecl = loans["ead"].sum(), loans["ecl_reported"].sum()
     out.append(
         _pairs(
@@ -430,6 +433,79 @@ def _summary(tables, meta) -> str:
             f"{meta['past_term']:,d} live loans are at or past their contractual term with a balance left; each is "
             "treated as due now: projected over one month, its whole balance the exposure."
         ))  # fmt: skip
+    return "".join(out) + _verdict_summary(tables)
+
+
+def _not_judged(items: pd.DataFrame) -> str:
+    """One sentence naming the inputs that move with the calendar, with their PSI."""
+    names = ", ".join(f"{r.item} (PSI {fmt_num(r.value)})" for r in items.itertuples(index=False))
+    return (
+        f"Not judged, {EXPECTED_DRIFT} (inputs that move with the calendar, left out of the stability verdict): "
+        f"{names}."
+    )
+
+
+def _verdict_summary(tables) -> str:
+    """The verdict of every validation area, and what was seen for every item that is fail or watch."""
+    v = tables.get("verdicts")
+    if v is None:
+        return ""
+    if v.empty:
+        return _p("Validation verdicts: no statistic of the validation pack could be judged in this run.")
+    areas = area_verdicts(v)
+    rows = []
+    for area, verdict in areas.items():
+        items = v[v["area"] == area]
+        counts = items["verdict"].value_counts()
+        parts = [f"{int(counts[w])} {w}" for w in ("pass", WATCH, FAIL, EXPECTED_DRIFT) if w in counts]
+        rows.append({"area": AREAS.get(area, area), "verdict": verdict, "items": ", ".join(parts)})
+    frame = pd.DataFrame(rows)
+    out = [
+        _table(
+            frame, [("area", "Area", fmt_text), ("verdict", "Verdict", fmt_text), ("items", "Items", fmt_text)],
+            caption="Validation verdicts", flag=frame["verdict"].isin([WATCH, FAIL]),
+        ),
+        _p(
+            "Each area's verdict is the worst of its items (fail over watch over pass). The thresholds are in the "
+            "config (validation.thresholds; common practice by default) and each sentence states its rule; the "
+            "table validation/verdicts.csv has every item.",
+            "note",
+        ),
+    ]
+    seen = [v[v["verdict"] == w] for w in (FAIL, WATCH)]
+    if any(len(x) for x in seen):
+        out.append("<p>What was seen, for every item that is fail or watch:</p>")
+        out.append(_sentences(pd.concat(seen)))
+    drift = v[v["verdict"] == EXPECTED_DRIFT]
+    if len(drift):
+        out.append(_p(_not_judged(drift), "note"))
+    return "".join(out)
+
+
+def _sentences(items: pd.DataFrame) -> str:
+    """A list of the items' sentences; each carries its verdict in words."""
+    return '<ul class="verdicts">' + "".join(f"<li>{_e(s)}</li>" for s in items["sentence"]) + "</ul>"
+
+
+def _area_verdicts(tables, *areas: str) -> str:
+    """Under a validation heading: each area's verdict in words, and its items' sentences (every item of a small
+    area; in a larger one those that are not pass)."""
+    v = tables.get("verdicts")
+    if v is None:
+        return ""
+    out = []
+    for area in areas:
+        items = v[v["area"] == area]
+        if items.empty:
+            continue
+        verdict = area_verdicts(items)[area]
+        out.append(f'<p class="verdict">{_e(AREAS.get(area, area))}: verdict <strong>{_e(verdict)}</strong>.</p>')
+        judged = items[items["verdict"] != EXPECTED_DRIFT]
+        shown = judged if len(judged) <= 3 else judged[judged["verdict"] != "pass"]
+        if len(shown):
+            out.append(_sentences(shown))
+        if len(judged) > len(shown):
+            out.append(_p(f"The other {_plural(len(judged) - len(shown), 'item')} pass.", "note"))
     return "".join(out)
 
 
@@ -1130,30 +1206,46 @@ def _backtest_part(tables, meta) -> str:
             ("predicted_rate", "Predicted rate", fmt_pct3),
             ("observed_rate", "Observed rate", fmt_pct3),
             ("z", "z", fmt_stat),
+            ("z_factor", "z, one factor", fmt_stat),
+            ("verdict", "Verdict", fmt_text),
         ]
+        moves = _with_move_verdicts(moves, tables.get("verdicts"))
+        flag = moves["verdict"].isin([WATCH, FAIL]) if "verdict" in moves.columns else moves["z"].abs().gt(2)
         out.append(_table(moves, cols, caption="Out-of-time moves between arrears states, one month ahead",
-                          name="backtest_transitions", flag=moves["z"].abs().gt(2)))  # fmt: skip
+                          name="backtest_transitions", flag=flag))  # fmt: skip
         out.append(
             _p(
                 "Each month's move against the model's probabilities given the state and inputs at its start: "
-                "roll, cure, default and prepayment rates per state. Rows with |z| above 2 are marked.",
+                "roll, cure, default and prepayment rates per state. Each move's verdict reads the two-sided "
+                "p-value of its one-factor z; rows that are watch or fail are marked (staying is the rest of the "
+                "state's months and has no verdict of its own).",
                 "note",
             )
         )
     return "".join(out)
 
 
+def _with_move_verdicts(moves: pd.DataFrame, verdicts: pd.DataFrame | None) -> pd.DataFrame:
+    """``moves`` with the verdict of each move (``verdicts`` items of ``backtest_transitions``), when known."""
+    if verdicts is None:
+        return moves
+    mine = verdicts[verdicts["area"] == "backtest_transitions"].set_index("item")["verdict"]
+    items = moves["origin"].astype(str) + " to " + moves["destination"].astype(str)
+    return moves.assign(verdict=items.map(mine).where(moves["origin"] != moves["destination"], "").to_numpy())
+
+
 def _stability_part(tables, meta) -> str:
     st = tables.get("stability")
     if st is None:
         return _absent("stability")
-    cols = [("variable", "Variable", fmt_text), ("psi", "PSI", fmt_num), ("flag", "Flag", fmt_text)]
-    out = _table(st, cols, name="stability")
-    if "flag" in st.columns and (st["flag"] == "expected drift").any():
+    cols = [("variable", "Variable", fmt_text), ("psi", "PSI", fmt_num), ("verdict", "Verdict", fmt_text)]
+    flag = st["verdict"].isin([WATCH, FAIL]) if "verdict" in st.columns else None
+    out = _area_verdicts(tables, "stability") + _table(st, cols, name="stability", flag=flag)
+    if "verdict" in st.columns and (st["verdict"] == EXPECTED_DRIFT).any():
         out += _p(
-            "Inputs that move with the calendar (macro series, loan age) read expected drift at a PSI of 0.10 or "
-            "more: they differ between the development window and the reporting month by construction, so their "
-            "PSI is no signal about the model. PSI 0.10 and 0.25 are the customary thresholds (common practice)."
+            "Inputs that move with the calendar (macro series, loan age) are not judged: their verdict is expected "
+            "drift whatever their PSI, and they are left out of the stability verdict. They differ between the "
+            "development window and the reporting month by construction, so their PSI is no signal about the model."
         )
     return out
 
@@ -1161,15 +1253,25 @@ def _stability_part(tables, meta) -> str:
 def _validation(tables, meta) -> str:
     out = [
         _h3("Discrimination"),
+        _area_verdicts(tables, "discrimination"),
         _discrimination_part(tables, meta),
         _h3("Calibration"),
+        _area_verdicts(tables, "calibration"),
         _calibration_part(tables, meta),
         _h3("Backtest"),
+        _area_verdicts(tables, "backtest_default", "backtest_prepay", "backtest_transitions"),
         _transition_matrices(tables),
         _backtest_part(tables, meta),
         _h3("Stability"),
         _stability_part(tables, meta),
     ]
+    curves = _area_verdicts(tables, "vintage_curves")
+    if curves:
+        out += [
+            _h3("Vintage curves against Aalen-Johansen"),
+            curves,
+            _p("The curves are drawn in the section on cumulative incidence by vintage.", "note"),
+        ]
     changes = tables.get("coefficient_changes")
     if changes is not None:
         out += [_h3("Coefficient changes"), _table(changes, name="coefficient_changes")]
@@ -1285,6 +1387,7 @@ thead th { border-bottom: 1.5px solid var(--ink); background: var(--shade); }
 table.pairs th { font-weight: normal; color: var(--muted); }
 .num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
 tr.flag td { background: var(--mark); font-weight: bold; }
+ul.verdicts li { margin-bottom: .3rem; }
 figure { margin: .8rem 0; }
 figure img { max-width: 100%; height: auto; display: block; }
 ul.cautions li { margin-bottom: .35rem; }

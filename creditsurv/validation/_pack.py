@@ -8,6 +8,7 @@ statistics of ``_statistics.py``.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping
 from dataclasses import dataclass
 
@@ -25,8 +26,8 @@ from ..errors import DataError
 from ..forecast import band_labels, panel_history_columns, with_panel_history
 from ..model import HazardResults, MultiStateResults
 from ._statistics import (
+    ASSET_CORRELATION,
     CAUSES,
-    EXPECTED_DRIFT,
     aalen_johansen_states,
     age_band,
     as_1d,
@@ -38,8 +39,17 @@ from ._statistics import (
     model_vs_nonparametric,
     one_factor_variance,
     psi,
-    psi_flag,
     twelve_month_cohort,
+)
+from ._verdicts import (
+    EXPECTED_DRIFT,
+    FAIL,
+    THRESHOLDS,
+    VERDICT_COLUMNS,
+    WATCH,
+    area_verdicts,
+    psi_verdict,
+    verdict_table,
 )
 
 __all__ = [
@@ -72,9 +82,13 @@ PACK_COLUMNS: dict[str, tuple[str, ...]] = {
         "group", "n", "pd_mean", "pd_min", "pd_max", "expected", "actual", "observed_rate",
         "observed_lo", "observed_hi", "p_value", "hl_term",
     ),
-    "stability": ("variable", "psi", "flag", "n_development", "n_current"),
-    "backtest_transitions": ("origin", "destination", "n", "expected", "actual", "predicted_rate", "observed_rate", "z"),
-    "transitions_development": ("origin", "destination", "n", "expected", "actual", "predicted_rate", "observed_rate", "z"),
+    "stability": ("variable", "psi", "verdict", "n_development", "n_current"),
+    "backtest_transitions": (
+        "origin", "destination", "n", "expected", "actual", "predicted_rate", "observed_rate", "z", "z_factor",
+    ),
+    "transitions_development": (
+        "origin", "destination", "n", "expected", "actual", "predicted_rate", "observed_rate", "z", "z_factor",
+    ),
     "coefficient_changes": (
         "cause", "term", "estimate_current", "estimate_prior", "std_error_current", "std_error_prior",
         "change", "change_in_se", "present",
@@ -88,6 +102,7 @@ PACK_COLUMNS: dict[str, tuple[str, ...]] = {
         "difference", "outside", "n_risk",
     ),
     "hazard_by_age": ("age", "cause", "n", "events", "observed", "observed_lo", "observed_hi", "model"),
+    "verdicts": VERDICT_COLUMNS,
 }  # fmt: skip
 """Columns of every table the pack can produce, in order."""
 
@@ -429,7 +444,8 @@ def _read_inputs(engine, model, start: int, end: int, max_rows: int):
 
 
 def input_stability(
-    engine, model, development, current, *, bins: int = 10, max_rows: int = PACK_SAMPLE_ROWS
+    engine, model, development, current, *, bins: int = 10, max_rows: int = PACK_SAMPLE_ROWS,
+    psi_watch: float = THRESHOLDS["psi_watch"], psi_fail: float = THRESHOLDS["psi_fail"],
 ) -> pd.DataFrame:
     """PSI of every raw model input: the risk-set rows of one window against another.
 
@@ -450,18 +466,23 @@ def input_stability(
     max_rows : int, default 200,000
         Rows read at most per window: when a window has more, every k-th row
         by a hash of loan and month is read (the same rows on every run).
+    psi_watch, psi_fail : float, default 0.10 and 0.25
+        The levels of :func:`psi_verdict` (common practice): a PSI at or
+        above ``psi_watch`` is watch, at or above ``psi_fail`` fail.
 
     Returns
     -------
     DataFrame
-        ``variable``, ``psi``, ``flag`` (:func:`psi_flag`), ``n_development``
-        and ``n_current`` (rows read).
+        ``variable``, ``psi``, ``verdict`` (:func:`psi_verdict`: an input
+        that moves with the calendar reads ``expected drift``),
+        ``n_development`` and ``n_current`` (rows read).
     """
-    table, _ = _input_stability(engine, model, development, current, bins=bins, max_rows=max_rows)
+    table, _ = _input_stability(engine, model, development, current, bins=bins, max_rows=max_rows,
+                                levels=(psi_watch, psi_fail))  # fmt: skip
     return table
 
 
-def _input_stability(engine, model, development, current, *, bins, max_rows):
+def _input_stability(engine, model, development, current, *, bins, max_rows, levels):
     dev, k_dev, skipped = _read_inputs(engine, model, int(development[0]), int(development[1]), max_rows)
     cur, k_cur, _ = _read_inputs(engine, model, int(current[0]), int(current[1]), max_rows)
     rows = []
@@ -475,7 +496,8 @@ def _input_stability(engine, model, development, current, *, bins, max_rows):
         value, _ = psi(e.to_numpy() if categorical else e.to_numpy(dtype=float),
                        a.to_numpy() if categorical else a.to_numpy(dtype=float),
                        bins=bins, categorical=categorical)  # fmt: skip
-        rows.append({"variable": name, "psi": value, "flag": psi_flag(value, name),
+        verdict = psi_verdict(value, name, watch=levels[0], fail=levels[1])
+        rows.append({"variable": name, "psi": value, "verdict": verdict,
                      "n_development": int(len(e)), "n_current": int(len(a))})  # fmt: skip
     table = pd.DataFrame(rows, columns=list(PACK_COLUMNS["stability"]))
     info = {"sampled_every": {"development": k_dev, "current": k_cur}, "skipped": skipped, "n_current": len(cur)}
@@ -761,19 +783,23 @@ def _cohort_section(cfg, engine, model, path, month, chunk_size, tables, summary
     return cohort_pd
 
 
-def transition_backtest(engine, model, start: int, end: int) -> pd.DataFrame:
+def transition_backtest(
+    engine, model, start: int, end: int, *, asset_correlation: float = ASSET_CORRELATION
+) -> pd.DataFrame:
     """Each move of a multi-state model in months ``start..end``: the model's expected count against the actual.
 
     For the months starting in each arrears state, with the months' own inputs (one month ahead, the state
     known): expected = the sum of the model's probabilities of each end state, actual = the months that
     ended there, z = (actual - expected) / sqrt(sum p (1 - p)). Staying is a row too; a state's rows add
-    up to its months on both sides.
+    up to its months on both sides. ``z_factor`` is the same difference over the standard deviation of the
+    one-factor model (:func:`one_factor_variance`, ``asset_correlation``), the loan-months of one calendar
+    month sharing one draw of the factor, as in the backtest of each cause.
 
     Returns
     -------
     DataFrame
         ``origin``, ``destination``, ``n`` (months starting in the origin), ``expected``, ``actual``,
-        ``predicted_rate``, ``observed_rate``, ``z``.
+        ``predicted_rate``, ``observed_rate``, ``z``, ``z_factor``.
     """
     from ..data import end_states
 
@@ -787,13 +813,18 @@ def transition_backtest(engine, model, start: int, end: int) -> pd.DataFrame:
             continue
         probabilities = model.transition_probabilities({c: frame[c].to_numpy() for c in frame.columns}, origin)
         ended = end_states(np.full(n, j), frame["destination"].to_numpy(dtype=np.int64), len(labels))
+        month, at, month_n = np.unique(frame["month_idx"].to_numpy(dtype=np.int64), return_inverse=True, return_counts=True)
         for k, name in enumerate(states):
             p = probabilities[:, k]
             expected, actual, var = float(p.sum()), int((ended == k).sum()), float(np.sum(p * (1.0 - p)))
+            # each calendar month one draw of the factor: the months' one-factor variances add
+            month_mean = np.bincount(at, weights=p, minlength=len(month)) / month_n
+            factor = float(np.sum(one_factor_variance(month_n.astype(float), month_mean, asset_correlation)))
             rows.append({
                 "origin": origin, "destination": name, "n": n, "expected": expected, "actual": actual,
                 "predicted_rate": expected / n, "observed_rate": actual / n,
                 "z": (actual - expected) / np.sqrt(var) if var > 0 else float("nan"),
+                "z_factor": (actual - expected) / np.sqrt(factor) if factor > 0 else float("nan"),
             })  # fmt: skip
     return pd.DataFrame(rows, columns=list(PACK_COLUMNS["backtest_transitions"]))
 
@@ -801,9 +832,10 @@ def transition_backtest(engine, model, start: int, end: int) -> pd.DataFrame:
 def _stability_section(cfg, engine, model, cohort_pd, current_pd_12m, tables, summary, notes) -> None:
     """Stability (PSI) of every model input and of the 12-month PD against the development cohort."""
     dev, as_of = cfg.windows.development, int(cfg.as_of)
+    levels = (cfg.validation.thresholds.psi_watch, cfg.validation.thresholds.psi_fail)
     stab, info = _input_stability(
         engine, model, (int(dev.start), int(dev.end)), (as_of, as_of),
-        bins=cfg.validation.psi_bins, max_rows=PACK_SAMPLE_ROWS,
+        bins=cfg.validation.psi_bins, max_rows=PACK_SAMPLE_ROWS, levels=levels,
     )
     k_dev = info["sampled_every"]["development"]
     if k_dev > 1:
@@ -818,7 +850,7 @@ def _stability_section(cfg, engine, model, cohort_pd, current_pd_12m, tables, su
     if current_pd_12m is not None and cohort_pd is not None and len(cohort_pd):
         cur = as_1d(current_pd_12m, "current_pd_12m")
         value, _ = psi(cohort_pd, cur, bins=cfg.validation.psi_bins)
-        row = {"variable": "pd_12m", "psi": value, "flag": psi_flag(value),
+        row = {"variable": "pd_12m", "psi": value, "verdict": psi_verdict(value, watch=levels[0], fail=levels[1]),
                "n_development": int(len(cohort_pd)), "n_current": int(len(cur))}  # fmt: skip
         stab = pd.concat([stab, pd.DataFrame([row])], ignore_index=True) if len(stab) else pd.DataFrame([row])
     elif current_pd_12m is None:
@@ -827,8 +859,8 @@ def _stability_section(cfg, engine, model, cohort_pd, current_pd_12m, tables, su
         notes.append("stability: the development cohort has no 12-month PD, so the PSI of pd_12m is not reported")
     tables["stability"] = stab[list(PACK_COLUMNS["stability"])]
     summary["stability"] = {
-        flag.replace(" ", "_"): stab.loc[stab["flag"] == flag, "variable"].tolist()
-        for flag in ("watch", "shift", EXPECTED_DRIFT)
+        verdict.replace(" ", "_"): stab.loc[stab["verdict"] == verdict, "variable"].tolist()
+        for verdict in (WATCH, FAIL, EXPECTED_DRIFT)
     }
 
 
@@ -929,6 +961,15 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
             In-sample fit: observed monthly hazard (events / at risk, with its
             Jeffreys interval) and mean model hazard by loan age over the
             development window.
+        ``verdicts``
+            :func:`verdict_table`: every statistic read as ``pass``,
+            ``watch`` or ``fail`` (``expected drift`` for an input that moves
+            with the calendar) against ``validation.thresholds``, with a
+            sentence saying what was seen.
+
+        The summary's ``verdicts`` holds ``areas`` (each area's verdict, the
+        worst of its items: :func:`area_verdicts`), ``thresholds`` (the
+        levels used) and ``items`` (the rows of the ``verdicts`` table).
     """
     as_of, month = int(cfg.as_of), int(cfg.windows.development.end)
     notes: list[str] = []
@@ -957,18 +998,40 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
     oot, dev = cfg.windows.out_of_time, cfg.windows.development
     if isinstance(model, MultiStateResults):
         # on the rows it was fitted to, a logit with a free intercept per move reproduces each move's count
-        tables["transitions_development"] = transition_backtest(engine, model, int(dev.start), int(dev.end))
+        tables["transitions_development"] = transition_backtest(
+            engine, model, int(dev.start), int(dev.end), asset_correlation=cfg.validation.asset_correlation
+        )
     if isinstance(model, MultiStateResults) and oot is not None:
-        moves = transition_backtest(engine, model, int(oot.start), int(oot.end))
+        moves = transition_backtest(
+            engine, model, int(oot.start), int(oot.end), asset_correlation=cfg.validation.asset_correlation
+        )
         tables["backtest_transitions"] = moves
         seen = moves[moves["origin"] != moves["destination"]]
         summary["backtest_transitions"] = {
             "moves": int(len(seen)), "outside_2_se": seen.loc[seen["z"].abs() > 2, ["origin", "destination"]].values.tolist(),
         }  # fmt: skip
 
+    _verdict_section(cfg, tables, summary, notes)
     summary["tables"] = sorted(tables)
     summary["notes"] = notes
     return ValidationPack(tables=tables, summary=_json_safe(summary))
+
+
+def _verdict_section(cfg, tables, summary, notes) -> None:
+    """The verdict of every statistic (``verdicts`` table) and of every area (``summary["verdicts"]``)."""
+    levels = dataclasses.asdict(cfg.validation.thresholds)
+    table = verdict_table(_json_safe(summary), tables, levels)
+    cal = summary.get("calibration")
+    if cal and not np.isfinite(cal.get("hl_p_value", np.nan)):
+        notes.append(
+            f"verdicts: calibration has no verdict: Hosmer-Lemeshow has {cal.get('hl_df')} degrees of freedom"
+        )
+    tables["verdicts"] = table
+    summary["verdicts"] = {
+        "areas": area_verdicts(table),
+        "thresholds": levels,
+        "items": table.to_dict(orient="records"),
+    }
 
 
 def _summary_header(cfg) -> dict:

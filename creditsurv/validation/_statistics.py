@@ -42,7 +42,6 @@ __all__ = [
     "twelve_month_cohort",
     "calibration",
     "psi",
-    "psi_flag",
     "coefficient_changes",
     "aalen_johansen",
     "aalen_johansen_states",
@@ -720,42 +719,6 @@ def _psi_categorical(expected, actual) -> pd.DataFrame:
             "actual_n": ca.reindex(levels, fill_value=0).to_numpy(dtype=np.int64),
         }
     )
-
-
-# Thresholds 0.10 and 0.25 are the customary rule of thumb in credit scoring;
-# they have no single published source and no statistical derivation, so treat
-# the flag as a prompt to look, not a test.
-PSI_WATCH = 0.10
-PSI_SHIFT = 0.25
-
-
-EXPECTED_DRIFT = "expected drift"
-"""The PSI flag of an input that moves with the calendar (:func:`moves_with_calendar`) and has moved."""
-
-
-def moves_with_calendar(name: str) -> bool:
-    """Whether a model input changes between two windows by construction: a macro series (``macro:...``)
-    or the loan's age (``age``, ``log_age``), which a book ageing from one window to the next shifts."""
-    return name in ("age", "log_age") or name.startswith("macro:")
-
-
-def psi_flag(value: float, variable: str | None = None) -> str:
-    """Verbal reading of a PSI: ``stable`` below 0.10, ``watch`` below 0.25, else ``shift``.
-
-    For an input that moves with the calendar (``variable``, see :func:`moves_with_calendar`) any value at or
-    above 0.10 reads ``expected drift``: a macro series or the book's age differs between windows whether or
-    not the model still fits, so the PSI is no signal about the model there.
-    """
-    v = float(value)
-    if np.isnan(v):
-        raise DataError("psi_flag got NaN; compute the PSI on non-empty samples first")
-    if v < PSI_WATCH:
-        return "stable"
-    if variable is not None and moves_with_calendar(variable):
-        return EXPECTED_DRIFT
-    if v < PSI_SHIFT:
-        return "watch"
-    return "shift"
 
 
 # --------------------------------------------------------------------------- model movement
