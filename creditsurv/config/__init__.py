@@ -5,9 +5,11 @@ all of them in one error, each with its key path and the closest valid choice.
 """
 
 from ._config import (
+    ACCOUNTING_BASES,
     DATA_CHECK_NAMES,
     Arrears,
     Baseline,
+    Cecl,
     Checks,
     Collateral,
     Config,
@@ -42,6 +44,7 @@ from ._config import (
     config_from_dict,
     config_sha256,
     config_to_dict,
+    discount_method,
     load_config,
     read_yaml,
     schema_reference,
@@ -50,7 +53,7 @@ from ._context import RunContext, run_context
 from ._weights import WEIGHTED, ScenarioWeights, weight_problems
 
 __all__ = [
-    "Arrears", "DATA_CHECK_NAMES", "WEIGHTED", "RunContext", "ScenarioWeights", "run_context", "weight_problems", "Baseline", "Checks", "Collateral", "Config", "Covariate", "DefaultDefinition", "DuckdbSettings",
+    "ACCOUNTING_BASES", "Cecl", "discount_method", "Arrears", "DATA_CHECK_NAMES", "WEIGHTED", "RunContext", "ScenarioWeights", "run_context", "weight_problems", "Baseline", "Checks", "Collateral", "Config", "Covariate", "DefaultDefinition", "DuckdbSettings",
     "Events", "FitSettings", "Inputs", "LoanColumns", "LoanSource", "Loss", "Lgd", "Exposure", "MacroColumns",
     "MacroSource", "ModelSpec", "Outputs", "PanelColumns", "PanelSource", "Scenario", "ScenarioExtension",
     "Segments", "SparkSettings", "Staging", "ValidationSettings", "Window", "Windows",

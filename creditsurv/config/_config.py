@@ -30,7 +30,10 @@ from ._schema import FilePath, Month, build, describe, is_key
 from ._weights import weight_problems
 
 __all__ = [
+    "ACCOUNTING_BASES",
+    "Cecl",
     "Config",
+    "discount_method",
     "load_config",
     "config_from_dict",
     "config_to_dict",
@@ -481,10 +484,19 @@ class Scenario:
 
 @dataclass(frozen=True)
 class ScenarioExtension:
-    """How a scenario path is extended beyond its last month."""
+    """How a scenario path is extended beyond its last month.
 
-    rule: Literal["revert_to_mean", "hold_last"] = field(default="revert_to_mean", metadata=_doc("extension rule"))
-    months: int = field(default=24, metadata=_doc("revert_to_mean: months to reach the long-run value", min=1))
+    Under ``accounting: cecl`` the ``cecl`` section's periods replace ``rule`` and ``months``; ``long_run`` and
+    ``hold_last_series`` apply on both bases.
+    """
+
+    rule: Literal["revert_to_mean", "hold_last"] = field(
+        default="revert_to_mean", metadata=_doc("extension rule (accounting ifrs9; under cecl the cecl periods apply)")
+    )
+    months: int = field(
+        default=24,
+        metadata=_doc("revert_to_mean: months to reach the long-run value (accounting ifrs9; under cecl: cecl.reversion_months)", min=1),
+    )
     long_run: dict[str, float] = field(
         default_factory=dict, metadata=_doc("long-run value per series; default the history's mean")
     )
@@ -530,8 +542,69 @@ class Loss:
     accrued_interest: bool = field(
         default=False, metadata=_doc("add one more month's interest to EAD (the missed instalments carry theirs)")
     )
-    discount: Literal["effective_interest_rate", "none"] = field(
-        default="effective_interest_rate", metadata=_doc("discount rate of expected losses (IFRS 9 B5.5.44)")
+    discount: Literal["effective_interest_rate", "none"] | None = field(
+        default=None,
+        metadata=_doc(
+            "discounting of expected losses: effective_interest_rate (each month's loss discounted at the loan's "
+            "effective interest rate: IFRS 9 5.5.17 and B5.5.44; under cecl a discounted cash flow method, "
+            "ASC 326-20-30-4) or none (discount factors 1: under cecl a method that does not discount); empty: "
+            "effective_interest_rate under accounting ifrs9, none under cecl"
+        ),
+    )
+
+
+ACCOUNTING_BASES = ("ifrs9", "cecl")
+"""The accounting bases a run computes its allowance on: IFRS 9 (stages) or CECL (ASC 326, no stages)."""
+
+
+def discount_method(discount: str | None, accounting: str) -> str:
+    """The discounting a run applies: ``loss.discount`` when given, else the accounting basis's default.
+
+    IFRS 9 measures expected credit losses at their present value at the effective interest rate (5.5.17(c) and
+    B5.5.44, cited from memory): ``effective_interest_rate``. Under CECL discounting belongs to a discounted cash
+    flow method only (ASC 326-20-30-4, cited from memory); a PD x LGD x EAD method such as ours is commonly
+    applied without it, so the default is ``none``.
+
+    Parameters
+    ----------
+    discount : {"effective_interest_rate", "none"} or None
+    accounting : {"ifrs9", "cecl"}
+
+    Returns
+    -------
+    str
+        ``effective_interest_rate`` or ``none``.
+    """
+    if discount is not None:
+        return discount
+    return "none" if accounting == "cecl" else "effective_interest_rate"
+
+
+@dataclass(frozen=True)
+class Cecl:
+    """The CECL basis (ASC 326): the reasonable and supportable forecast period and the reversion after it.
+
+    The scenario paths are used for ``forecast_months`` months after the reporting month; over the next
+    ``reversion_months`` months every macro input moves in a straight line from its value at the end of the
+    forecast period to its long-run value, which it holds after (ASC 326-20-30-9, cited from memory: beyond the
+    reasonable and supportable forecasts, revert to historical loss information; reverting the model's inputs to
+    their long-run values is our reading of it).
+    """
+
+    forecast_months: int = field(
+        metadata=_doc(
+            "the reasonable and supportable forecast period: months after the reporting month over which the "
+            "scenario paths are used (ASC 326-20-30-9); every scenario path must reach its end",
+            min=1,
+        )
+    )
+    reversion_months: int = field(
+        metadata=_doc(
+            "the reversion period: months over which every macro input then moves in a straight line to its long-run "
+            "value (scenario_extension.long_run, else the history's mean; series of "
+            "scenario_extension.hold_last_series hold their value at the forecast's end), held after; 0 reverts at once",
+            min=0,
+        )
     )
 
 
@@ -780,7 +853,17 @@ class Config:
     scenarios: tuple[Scenario, ...] = field(default=(), metadata=_doc("forward macro scenarios"))
     scenario_extension: ScenarioExtension = field(default_factory=ScenarioExtension, metadata=_doc("beyond a path's end"))
     loss: Loss = field(default_factory=Loss, metadata=_doc("EAD, LGD and discounting"))
-    staging: Staging = field(default_factory=Staging, metadata=_doc("stage allocation rules"))
+    accounting: Literal["ifrs9", "cecl"] = field(
+        default="ifrs9",
+        metadata=_doc(
+            "accounting basis: ifrs9 (stages: 12-month ECL in stage 1, lifetime in stages 2 and 3) or cecl "
+            "(ASC 326: the lifetime expected credit loss of every loan is its allowance, no stages)"
+        ),
+    )
+    cecl: Cecl | None = field(
+        default=None, metadata=_doc("accounting cecl: the forecast and reversion periods (required under cecl)")
+    )
+    staging: Staging = field(default_factory=Staging, metadata=_doc("stage allocation rules (accounting ifrs9)"))
     segments: Segments = field(default_factory=Segments, metadata=_doc("segment and grade definitions"))
     validation: ValidationSettings = field(default_factory=ValidationSettings, metadata=_doc("validation settings"))
     outputs: Outputs = field(default_factory=Outputs, metadata=_doc("where runs are written"))
@@ -798,6 +881,13 @@ class Config:
     # The folder relative paths were resolved against (set by config_from_dict; the working folder for a
     # Config built directly). Not a key; an ordinary field so that dataclasses.replace keeps it.
     folder: Path = field(default_factory=Path.cwd, compare=False, repr=False, metadata={"loader_state": True})
+
+    def __post_init__(self):
+        # The documented default of loss.discount depends on the basis: filled here, so the resolved config a run
+        # records states the discounting it applied.
+        if self.loss is not None and self.loss.discount is None:
+            method = discount_method(None, self.accounting)
+            object.__setattr__(self, "loss", dataclasses.replace(self.loss, discount=method))
 
     def relative(self, path) -> str:
         """``path`` relative to the config's folder, with ``/`` separators: how outputs name files.
@@ -836,6 +926,13 @@ class Config:
             if text:
                 problems.append(f"scenarios: {text}")
             problems += weight_problems({s.name: s.weight for s in self.scenarios})
+        if self.accounting == "cecl" and self.cecl is None:
+            problems.append(
+                "cecl: accounting cecl needs the reasonable and supportable forecast period and the reversion period, "
+                "e.g. cecl: {forecast_months: 24, reversion_months: 12}"
+            )
+        if self.accounting != "cecl" and self.cecl is not None:
+            problems.append(f"cecl: given but accounting is {self.accounting}; set accounting: cecl or remove the cecl section")
         names = [s.name for s in self.scenarios]
         if self.staging.sicr_scenario is not None and self.staging.sicr_scenario not in names:
             hint = did_you_mean(self.staging.sicr_scenario, names) or f" (scenarios: {', '.join(names) or 'none'})"
