@@ -181,6 +181,7 @@ def preflight(ctx, engine) -> dict:
     return load_scenario_paths(
         ctx.cfg.scenarios, history, as_of_idx=ctx.as_of, non_negative=checks.non_negative_series,
         negative_severity=checks.severity.get("macro_values_negative", check_severity("macro_values_negative")),
+        forecast_months=ctx.cfg.cecl.forecast_months if ctx.cfg.cecl is not None else None,
     )
 
 
@@ -329,7 +330,8 @@ class LoanPeriodWriters:
 def scenario_paths(ctx, engine, model, book, loaded) -> dict:
     """Every scenario's macro path from the month after the reporting month to the book's last month of recovery.
 
-    ``loaded`` are the paths :func:`preflight` read; the history extends them.
+    ``loaded`` are the paths :func:`preflight` read; the history extends them (on the CECL basis, after the
+    forecast period, with the reversion of the ``cecl`` section).
     """
     from .forecast import extend_paths, remaining_term
 
@@ -342,6 +344,7 @@ def scenario_paths(ctx, engine, model, book, loaded) -> dict:
         extension=ctx.cfg.scenario_extension,
         required_series=macro_series_needed(model, ctx.cfg),
         history_source=f"macro history ({ctx.cfg.inputs.macro.path})" if ctx.cfg.inputs.macro else "macro history",
+        cecl=ctx.cfg.cecl,
     )
 
 

@@ -5,6 +5,14 @@ series. :func:`prepare_paths` reads every configured scenario, checks that it
 covers the series the model needs from the month after the reporting month,
 and extends it with the macro history before and the configured reversion rule
 after (:func:`extend_path`).
+
+On the CECL basis (ASC 326) a path is used only over the reasonable and
+supportable forecast period, ``forecast_months`` after the reporting month, and
+every series then reverts in a straight line to its long-run value over the
+reversion period (ASC 326-20-30-9, cited from memory: beyond reasonable and
+supportable forecasts an entity reverts to historical loss information; we
+revert the model's macro inputs to their long-run values, from which the
+model gives long-run loss rates).
 """
 
 from __future__ import annotations
@@ -68,6 +76,7 @@ def load_scenario_paths(
     as_of_idx: int | None = None,
     non_negative: Sequence[str] = (),
     negative_severity: str = "error",
+    forecast_months: int | None = None,
 ) -> dict[str, pd.DataFrame]:
     """Read and check each scenario's monthly macro path.
 
@@ -91,6 +100,9 @@ def load_scenario_paths(
         rates, house-price indices); a negative value is a problem, a ``DataCheckWarning`` or nothing as
         ``negative_severity`` is ``"error"``, ``"warning"`` or ``"off"`` (the severity of the history's
         check ``macro_values_negative``).
+    forecast_months : int, optional
+        CECL: the reasonable and supportable forecast period (``cecl.forecast_months``); with ``as_of_idx``,
+        each path must reach its last month.
 
     Returns
     -------
@@ -103,7 +115,8 @@ def load_scenario_paths(
         Listing every problem in one message, each naming the scenario and file:
         unreadable file, no month column, bad or duplicate months, missing
         months inside the path, missing series, non-numeric or missing values,
-        a path that does not carry on from the reporting month.
+        a path that does not carry on from the reporting month, a path that ends
+        before the forecast period does.
     """
     needed = list(dict.fromkeys([*history.columns, *required_series]))
     out, problems = {}, []
@@ -169,6 +182,10 @@ def load_scenario_paths(
             reach = None if as_of_idx is None else _reach_problem(out[sc.name], history, int(as_of_idx))
             if reach:
                 problems.append(f"{where}: {reach}")
+            elif as_of_idx is not None and forecast_months is not None:
+                short = _forecast_problem(out[sc.name], int(as_of_idx), int(forecast_months))
+                if short:
+                    problems.append(f"{where}: {short}")
     if problems:
         raise ProjectionError(problem_list(problems, "the scenario paths"))
     return out
@@ -185,6 +202,7 @@ def extend_path(
     as_of_idx: int | None = None,
     name: str = "scenario",
     hold_last_series: Sequence[str] = (),
+    forecast_months: int | None = None,
 ) -> pd.DataFrame:
     """One continuous monthly series per column, from the history's start to ``until_idx``.
 
@@ -209,6 +227,12 @@ def extend_path(
        Series matching a shell pattern of ``hold_last_series`` (e.g. ``hpi_*``)
        hold their last value whatever ``rule`` says.
 
+    With ``forecast_months`` F (the CECL basis) the path is used up to the end of
+    the reasonable and supportable forecast period, T = as-of month + F, and
+    ignored after it; after T the series revert as ``revert_to_mean`` says with
+    ``months`` the reversion period R (``rule`` is not read), R = 0 reaching L in
+    the first month after T. A path ending before T is an error.
+
     Parameters
     ----------
     history, path : DataFrame
@@ -217,24 +241,41 @@ def extend_path(
         Last month index wanted.
     rule : {"revert_to_mean", "hold_last"}
     months : int, default 24
+        Months to reach the long-run value (with ``forecast_months``: the reversion period, 0 allowed).
     long_run : mapping of series -> float, optional
     as_of_idx : int, optional
     name : str
         Scenario name used in error messages.
+    hold_last_series : sequence of str
+    forecast_months : int, optional
+        The reasonable and supportable forecast period in months (``cecl.forecast_months``).
 
     Returns
     -------
     DataFrame indexed by ``month_idx`` without gaps.
     """
-    if rule not in ("revert_to_mean", "hold_last"):
+    if forecast_months is not None:
+        rule = "revert_to_mean"
+        if months < 0:
+            raise ProjectionError(f"scenario {name!r}: the reversion period needs months >= 0, got {months}")
+    elif rule not in ("revert_to_mean", "hold_last"):
         raise ProjectionError(f"scenario {name!r}: unknown extension rule {rule!r}; use revert_to_mean or hold_last")
-    if months < 1:
+    elif months < 1:
         raise ProjectionError(f"scenario {name!r}: revert_to_mean needs months >= 1, got {months}")
     long_run = dict(long_run or {})
     hist, as_of, start = _checked_history(history, as_of_idx, name)
     problem = _reach_problem(path, hist, as_of)
+    if problem is None and forecast_months is not None:
+        problem = _forecast_problem(path, as_of, int(forecast_months))
     if problem:
         raise ProjectionError(f"scenario {name!r}: {problem}")
+    if forecast_months is not None:
+        # CECL: the scenario is read over the reasonable and supportable forecast period only (ASC 326-20-30-9)
+        forecast_end = as_of + int(forecast_months)
+        if int(path.index.min()) > forecast_end:  # the history's months before the path cover the whole period
+            path = hist.reindex(range(as_of + 1, forecast_end + 1))[list(path.columns)]
+        else:
+            path = path.loc[:forecast_end]
     p0, p1 = int(path.index.min()), int(path.index.max())
     columns = list(dict.fromkeys([*hist.columns, *path.columns]))
     end = max(int(until_idx), as_of)
@@ -329,6 +370,18 @@ def _reach_problem(path: pd.DataFrame, hist: pd.DataFrame, as_of: int) -> str | 
     return None
 
 
+def _forecast_problem(path: pd.DataFrame, as_of: int, forecast_months: int) -> str | None:
+    """Why ``path`` does not cover the reasonable and supportable forecast period (None when it does)."""
+    last, needed = int(path.index.max()), as_of + int(forecast_months)
+    if last >= needed:
+        return None
+    return (
+        f"the path ends at {format_month(last)}, before the end of the reasonable and supportable forecast period: "
+        f"cecl.forecast_months {forecast_months} after the reporting month {format_month(as_of)} needs the path to "
+        f"reach {format_month(needed)} (extend the path, or shorten the forecast period)"
+    )
+
+
 def _fill_bridge(out: pd.DataFrame, hist: pd.DataFrame, path: pd.DataFrame, as_of: int, p0: int) -> None:
     """Fill the months after the as-of month and before the path starts from the history, in place."""
     bridge = list(range(as_of + 1, p0))
@@ -351,7 +404,8 @@ def _fill_after_path(
 
     A series holds its last value (``hold_last``, or a match in
     ``hold_last_series``) or moves in a straight line to its long-run value
-    over ``months`` months (``revert_to_mean``); see :func:`extend_path`.
+    over ``months`` months (``revert_to_mean``; 0 months: the long-run value at
+    once); see :func:`extend_path`.
     """
     k = np.arange(1, end - p1 + 1, dtype=float)
     after = np.arange(p1 + 1, end + 1)
@@ -368,7 +422,8 @@ def _fill_after_path(
                         "give scenario_extension.long_run"
                     )
                 target = float(hist_upto[col].mean())
-            values = last + (target - last) * np.minimum(k, months) / months
+            share = np.minimum(k, months) / months if months > 0 else np.ones(len(k))
+            values = last + (target - last) * share
         out.loc[after, col] = values
 
 
@@ -395,25 +450,38 @@ def prepare_paths(
     until_idx: int,
     extension=None,
     required_series: Sequence[str] = (),
+    cecl=None,
 ) -> dict[str, pd.DataFrame]:
     """Load every scenario path and extend it with the history (see :func:`extend_path`).
 
     ``extension`` is a config ``ScenarioExtension`` (rule, months, long_run);
-    default revert to the history mean over 24 months.
+    default revert to the history mean over 24 months. ``cecl`` (a config ``Cecl``,
+    the CECL basis) uses each path over its forecast period, then reverts (see
+    :func:`extend_paths`).
     """
-    paths = load_scenario_paths(cfg_scenarios, history, required_series=required_series)
-    return extend_paths(paths, history, as_of_idx=as_of_idx, until_idx=until_idx, extension=extension)
+    forecast = getattr(cecl, "forecast_months", None)
+    paths = load_scenario_paths(
+        cfg_scenarios, history, required_series=required_series, as_of_idx=as_of_idx if cecl is not None else None,
+        forecast_months=forecast,
+    )  # fmt: skip
+    return extend_paths(paths, history, as_of_idx=as_of_idx, until_idx=until_idx, extension=extension, cecl=cecl)
 
 
 def extend_paths(
     paths: Mapping[str, pd.DataFrame], history: pd.DataFrame, *, as_of_idx: int, until_idx: int, extension=None,
-    required_series: Sequence[str] = (), history_source: str = "macro history",
+    required_series: Sequence[str] = (), history_source: str = "macro history", cecl=None,
 ) -> dict[str, pd.DataFrame]:
     """Extend paths already read by :func:`load_scenario_paths` with the history (see :func:`extend_path`).
 
     ``required_series`` not in every path is a ``ProjectionError`` naming them; so is an infinite value
     in the months the projection uses: the history up to ``as_of_idx`` (named ``history_source``, e.g.
     its file) and each path after it.
+
+    With ``cecl`` (a config ``Cecl``: the CECL basis) each path is used for ``cecl.forecast_months`` months
+    after ``as_of_idx``, the reasonable and supportable forecast period, and every series then moves in a
+    straight line to its long-run value over ``cecl.reversion_months`` months and holds it (ASC 326-20-30-9,
+    cited from memory); ``extension`` gives the long-run values (``long_run``, else the history's mean) and
+    the series that hold their value instead (``hold_last_series``); its ``rule`` and ``months`` are not read.
     """
     missing = {name: [s for s in required_series if s not in p.columns] for name, p in paths.items()}
     missing = {name: m for name, m in missing.items() if m}
@@ -427,9 +495,13 @@ def extend_paths(
     months = getattr(extension, "months", 24)
     long_run = getattr(extension, "long_run", {})
     hold = getattr(extension, "hold_last_series", ())
+    forecast = None
+    if cecl is not None:
+        rule, months, forecast = "revert_to_mean", int(cecl.reversion_months), int(cecl.forecast_months)
     return {
         name: extend_path(
-            history, p, until_idx, rule, months, long_run, as_of_idx=as_of_idx, name=name, hold_last_series=hold
+            history, p, until_idx, rule, months, long_run, as_of_idx=as_of_idx, name=name, hold_last_series=hold,
+            forecast_months=forecast,
         )
         for name, p in paths.items()
     }
