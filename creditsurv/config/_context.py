@@ -52,6 +52,7 @@ class RunContext:
             "band_column": cfg.segments.band_column,
             "band_edges": cfg.segments.band_edges,
             "extension": cfg.scenario_extension,
+            "accounting": cfg.accounting,
         }
 
 

@@ -95,7 +95,7 @@ def combine_partitions(results: list[EclResult]) -> EclResult:
     )
     by_scenario = pd.concat([r.by_scenario for r in results], ignore_index=True)
     return EclResult(loans=loans, by_scenario=by_scenario, segments=segment_summary(loans), projection=projection,
-                     scenarios=tuple(scenarios), weights=weights)  # fmt: skip
+                     scenarios=tuple(scenarios), weights=weights, accounting=first.accounting)  # fmt: skip
 
 
 def expected_credit_loss_by_partition(engine, loans, source, paths, *, writers=None, progress=None, **options) -> EclResult:

@@ -45,10 +45,23 @@ origination), on the watch list, or on probation after one of these (fewer than
 ``staging.probation_months`` months without a trigger); stage 1 otherwise.
 Reported ECL: 12-month for stage 1 (IFRS 9 5.5.5), lifetime for stages 2 and 3
 (IFRS 9 5.5.3).
+
+The CECL basis (``accounting="cecl"``; ASC 326, paragraphs cited from memory): no
+stages; the allowance of every loan is its probability-weighted lifetime expected
+credit loss over the contractual term as the hazards shorten it by prepayment
+(326-20-30-6), computed per loan by the same formula (a pool's loss is the sum of
+its loans', 326-20-30-2 permits pooling); a loan in default carries LGD x EAD, as in
+stage 3. The scenario paths reach it already extended by the forecast and reversion
+periods (:func:`creditsurv.forecast.extend_paths`, 326-20-30-9). Discounting follows
+``loss.discount``: at the effective interest rate for a discounted cash flow method
+(326-20-30-4), DF = 1 otherwise, the CECL default (:func:`creditsurv.config.discount_method`).
+``ecl_reported`` and ``allowance`` are both the allowance; ``stage``, ``stage_reason``,
+``months_since_sicr``, ``pd_lifetime_origination`` and ``pd_lifetime_staging`` are empty.
 """
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import NamedTuple
@@ -57,7 +70,14 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from ..config import Collateral, Exposure, Loss, ScenarioWeights, Staging
+from ..config import (
+    Collateral,
+    Exposure,
+    Loss,
+    ScenarioWeights,
+    Staging,
+    discount_method,
+)
 from ..errors import ProjectionError, problem_list
 from ..forecast import (
     WEIGHTED,
@@ -94,8 +114,10 @@ __all__ = [
     "SICR_MULTIPLIERS",
     "sicr_sensitivity",
     "expected_credit_loss",
+    "loans_in_default",
     "segment_summary",
     "EclResult",
+    "STAGING_COLUMNS",
 ]
 
 
@@ -291,6 +313,10 @@ def allocate_stages(
 
 _MAY_BE_EMPTY = ("loan_id", "pd_lifetime_origination", "months_since_arrears", MONTHS_IN_DEFAULT, "months_since_sicr")
 
+STAGING_COLUMNS = ("stage", "stage_reason", "months_since_sicr", "pd_lifetime_origination", "pd_lifetime_staging")
+"""The loan table's columns that serve staging only: empty on the CECL basis (the columns stay, so the tables of
+both bases have the same columns)."""
+
 SICR_MULTIPLIERS = (0.5, 1.0, 1.5, 2.0)
 """The multiples of ``staging.sicr_relative`` of :func:`sicr_sensitivity` (common practice for such a table)."""
 
@@ -317,7 +343,6 @@ def sicr_sensitivity(loans: pd.DataFrame, book: pd.DataFrame, staging: Staging =
         ``stage_2_share`` (of the loans not in default), ``stage_2_sicr_loans`` (stage 2 through the
         SICR test), ``ecl_reported``, ``ecl_change`` (against the configured threshold).
     """
-    import dataclasses
 
     frame = book.sort_values("loan_id", kind="stable").reset_index(drop=True)
     table = loans.sort_values("loan_id", kind="stable").reset_index(drop=True)
@@ -383,6 +408,9 @@ class EclResult:
         Of the loans not in default.
     scenarios : tuple of str
     weights : ScenarioWeights
+    accounting : {"ifrs9", "cecl"}
+        The basis: on ``cecl`` the columns of :data:`STAGING_COLUMNS` are empty and ``ecl_reported`` (and
+        ``allowance``) is the lifetime ECL of every loan.
     """
 
     loans: pd.DataFrame
@@ -391,13 +419,14 @@ class EclResult:
     projection: ProjectionResult
     scenarios: tuple[str, ...]
     weights: ScenarioWeights
+    accounting: str = "ifrs9"
 
     def raise_for_non_finite(self) -> None:
         """Raise when a reported figure is NaN or infinite: such a total is never written as a result.
 
         The figures are every number of :meth:`loan_table` but the PD at origination (a loan in default may
         leave the configured column empty) and the staging history (empty: no trigger known), and the segment
-        summary's numbers.
+        summary's numbers. On the CECL basis the staging columns (:data:`STAGING_COLUMNS`) are empty by design.
 
         Raises
         ------
@@ -406,17 +435,19 @@ class EclResult:
         """
         problems = []
         table = self.loan_table()
+        empty = _MAY_BE_EMPTY + (STAGING_COLUMNS if self.accounting == "cecl" else ())
         for col in table.columns:
-            if col in _MAY_BE_EMPTY or not pd.api.types.is_numeric_dtype(table[col]):
+            if col in empty or not pd.api.types.is_numeric_dtype(table[col]):
                 continue
-            bad = ~np.isfinite(table[col].to_numpy(dtype=float))
+            bad = ~np.isfinite(table[col].to_numpy(dtype=float, na_value=np.nan))
             if bad.any():
                 problems.append(f"{col}: not finite for {loan_list_text(table['loan_id'][bad])}")
         for col in self.segments.columns:
-            if pd.api.types.is_numeric_dtype(self.segments[col]) and not col.startswith("pd_lifetime_origination"):
-                bad = ~np.isfinite(self.segments[col].to_numpy(dtype=float))
-                if bad.any():
-                    problems.append(f"segment summary {col}: not finite in {int(bad.sum())} rows")
+            if col in empty or col.startswith("pd_lifetime_origination") or not pd.api.types.is_numeric_dtype(self.segments[col]):
+                continue
+            bad = ~np.isfinite(self.segments[col].to_numpy(dtype=float, na_value=np.nan))
+            if bad.any():
+                problems.append(f"segment summary {col}: not finite in {int(bad.sum())} rows")
         if problems:
             raise ProjectionError(problem_list(problems, "the projected figures (nothing was written as a result)"))
 
@@ -448,7 +479,19 @@ def _tidy(loan_ids: np.ndarray, names: tuple[str, ...], measures: dict[str, np.n
 
 def segment_summary(loans: pd.DataFrame) -> pd.DataFrame:
     """By ``segment`` and ``stage``: ``n_loans``, ``balance``, ``ead``, ``ecl``
-    (reported), ``coverage_ratio`` = ecl / balance (NaN for zero balance)."""
+    (reported), ``coverage_ratio`` = ecl / balance (NaN for zero balance).
+
+    With no stages (the CECL basis: ``stage`` empty) one row per segment with ``stage`` empty; ``ecl`` is then
+    the allowance and ``coverage_ratio`` the lifetime loss rate (allowance over the amortised cost basis, the
+    balance)."""
+    if len(loans) and loans["stage"].isna().all():
+        g = loans.groupby(["segment"], sort=True, observed=True)
+        out = g.agg(
+            n_loans=("loan_id", "size"), balance=("balance", "sum"), ead=("ead", "sum"), ecl=("ecl_reported", "sum")
+        ).reset_index()
+        out.insert(1, "stage", pd.array([pd.NA] * len(out), dtype=loans["stage"].dtype))
+        out["coverage_ratio"] = np.where(out["balance"] > 0, out["ecl"] / out["balance"].where(out["balance"] > 0, 1.0), np.nan)
+        return out
     g = loans.groupby(["segment", "stage"], sort=True, observed=True)
     out = g.agg(
         n_loans=("loan_id", "size"), balance=("balance", "sum"), ead=("ead", "sum"), ecl=("ecl_reported", "sum")
@@ -688,10 +731,24 @@ def _book_frame(loans: pd.DataFrame, segment_column: str, default_days_past_due)
     frame = loans.sort_values("loan_id", kind="stable").reset_index(drop=True)
     if segment_column != "segment":
         frame = frame.assign(segment=frame[segment_column])
-    if "in_default" in frame.columns:
-        return frame, frame["in_default"].to_numpy(dtype=bool)
+    return frame, loans_in_default(frame, default_days_past_due)
+
+
+def loans_in_default(loans: pd.DataFrame, default_days_past_due: int | None = 90) -> np.ndarray:
+    """Which loans of a book are in default at the reporting month, the loans the ECL does not project.
+
+    The book's ``in_default`` column when it has one, else ``days_past_due`` at or above
+    ``default_days_past_due``. The same on either accounting basis (stage 3 under IFRS 9).
+
+    Returns
+    -------
+    numpy.ndarray of bool
+        In the book's row order.
+    """
+    if "in_default" in loans.columns:
+        return loans["in_default"].to_numpy(dtype=bool)
     if default_days_past_due is not None:
-        return frame, frame["days_past_due"].to_numpy() >= default_days_past_due
+        return loans["days_past_due"].to_numpy() >= default_days_past_due
     raise ProjectionError("loans: no in_default column and no days-past-due default threshold")
 
 
@@ -765,13 +822,12 @@ def _reporting_month_loss(
     return ead0, lgd0
 
 
-def _ecl_weighted_lgd(reported, stage, live_rows, acc: _EclAccumulator, lgd_now, in_default) -> np.ndarray:
+def _ecl_weighted_lgd(reported, twelve_months, live_rows, acc: _EclAccumulator, lgd_now, in_default) -> np.ndarray:
     """The LGD the reported ECL applies: reported ECL over the probability-weighted sum of marginal PD x EAD x DF
-    over the same horizon (12 months in stage 1, the remaining life else); for a loan in default, its LGD now.
-    A loan with no expected default over the horizon takes its LGD now."""
+    over the same horizon (12 months where ``twelve_months``, stage 1; the remaining life else); for a loan in
+    default, its LGD now. A loan with no expected default over the horizon takes its LGD now."""
     out = np.asarray(lgd_now, dtype=float).copy()
-    stage_live = stage[live_rows]
-    exposure = np.where(stage_live == 1, acc.exposure_12m, acc.exposure_life)
+    exposure = np.where(twelve_months[live_rows], acc.exposure_12m, acc.exposure_life)
     with np.errstate(invalid="ignore", divide="ignore"):
         out[live_rows] = np.where(exposure > 0, reported[live_rows] / np.where(exposure > 0, exposure, 1.0), out[live_rows])
     out[in_default] = np.asarray(lgd_now, dtype=float)[in_default]
@@ -807,13 +863,15 @@ def expected_credit_loss(
     band_edges: Sequence[float] = (),
     days_past_due_share: float | None = None,
     extension=None,
+    accounting: str = "ifrs9",
     schedule_writer: Callable[[pa.Table], None] | None = None,
     curve_writer: Callable[[pa.Table], None] | None = None,
     term_writer: Callable[[pa.Table], None] | None = None,
     on_chunk: Callable[[ChunkProjection], None] | None = None,
     progress: Callable[[int, int], None] | None = None,
 ) -> EclResult:
-    """Stage every loan and compute its 12-month, lifetime and reported ECL.
+    """Stage every loan and compute its 12-month, lifetime and reported ECL (on the CECL basis: no stages, the
+    lifetime ECL of every loan is its allowance).
 
     Parameters
     ----------
@@ -839,6 +897,11 @@ def expected_credit_loss(
     days_past_due_share : float, optional
         Share of defaults on days past due (the rest on a status code alone) for the projected EAD;
         default ``loss.exposure.days_past_due_share``, else 1 with a days-past-due definition and 0 without.
+    accounting : {"ifrs9", "cecl"}, default "ifrs9"
+        The basis. ``ifrs9``: stages, the reported ECL at each stage's horizon. ``cecl`` (ASC 326): no stages
+        and no PD at origination (``staging`` is not read); the reported ECL, and the ``allowance``, is the
+        lifetime ECL of every loan. An empty ``loss.discount`` takes the basis's default
+        (:func:`creditsurv.config.discount_method`).
     schedule_writer : callable(pyarrow.Table), optional
         ECL schedule, chunk by chunk: ``loan_id``, ``scenario``,
         ``month_ahead``, ``ead``, ``lgd``, ``marginal_pd``,
@@ -854,6 +917,10 @@ def expected_credit_loss(
     -------
     EclResult
     """
+    if accounting not in ("ifrs9", "cecl"):
+        raise ProjectionError(f"accounting: unknown basis {accounting!r}; use ifrs9 or cecl")
+    cecl = accounting == "cecl"
+    loss = dataclasses.replace(loss, discount=discount_method(loss.discount, accounting))
     scenarios = tuple(paths)
     frame, in_default = _book_frame(loans, segment_column, default_days_past_due)
     dpd = frame["days_past_due"].to_numpy()
@@ -889,25 +956,35 @@ def expected_credit_loss(
     )
     names = (*scenarios, WEIGHTED)
     measures = _live_measures(len(frame), live_rows, names, proj, acc)
-
-    pd_orig = _pd_at_origination(
-        frame, in_default, staging, source, paths[scenarios[0]],
-        chunk_size=chunk_size, collateral=collateral, extension=extension,
-    )
-
     weighted = len(names) - 1
-    pd_staging = measures["pd_lifetime"][:, names.index(staging_scenario(staging, scenarios))].copy()
-    stages = allocate_stages(
-        pd_staging, pd_orig, dpd, in_default, staging, **_staging_history(frame, staging),
-        low_credit_risk=low_credit_risk(measures["pd_12m"][:, weighted], staging),
-    )
-    stage = stages.stage
+    n = len(frame)
+
+    if cecl:
+        # ASC 326: no stages; nothing of the staging is computed (no PD at origination), its columns stay empty
+        stage = pd.array(np.full(n, None), dtype="Int8")
+        stages = Stages(stage, np.full(n, None, dtype=object), np.full(n, np.nan))
+        pd_orig, pd_staging = np.full(n, np.nan), np.full(n, np.nan)
+        twelve_months = np.zeros(n, dtype=bool)
+    else:
+        pd_orig = _pd_at_origination(
+            frame, in_default, staging, source, paths[scenarios[0]],
+            chunk_size=chunk_size, collateral=collateral, extension=extension,
+        )  # fmt: skip
+        pd_staging = measures["pd_lifetime"][:, names.index(staging_scenario(staging, scenarios))].copy()
+        stages = allocate_stages(
+            pd_staging, pd_orig, dpd, in_default, staging, **_staging_history(frame, staging),
+            low_credit_risk=low_credit_risk(measures["pd_12m"][:, weighted], staging),
+        )
+        stage = stages.stage
+        twelve_months = stage == 1  # IFRS 9 5.5.5 (stage 1: 12-month), 5.5.3 (2, 3: lifetime)
 
     ead0, lgd0 = _reporting_month_loss(frame, in_default, loss, lookups, collateral.region_column, hpi_names, as_of_idx, w)
     _fill_defaulted_and_weighted(measures, in_default, ead0, lgd0, names, w)
     ecl_12m, ecl_life = measures["ecl_12m"][:, weighted].copy(), measures["ecl_lifetime"][:, weighted].copy()
-    reported = np.where(stage == 1, ecl_12m, ecl_life)  # IFRS 9 5.5.5 (stage 1: 12-month), 5.5.3 (2, 3: lifetime)
-    lgd_ecl = _ecl_weighted_lgd(reported, stage, live_rows, acc, lgd0[WEIGHTED], in_default)
+    # CECL: the allowance is the lifetime ECL of every loan (ASC 326-20-30-6: over the contractual term, prepayments
+    # considered, which the competing-risk hazards do)
+    reported = np.where(twelve_months, ecl_12m, ecl_life)
+    lgd_ecl = _ecl_weighted_lgd(reported, twelve_months, live_rows, acc, lgd0[WEIGHTED], in_default)
     table = pd.DataFrame(
         {
             "loan_id": frame["loan_id"].to_numpy(),
@@ -929,9 +1006,11 @@ def expected_credit_loss(
             "ecl_12m": ecl_12m,
             "ecl_lifetime": ecl_life,
             "ecl_reported": reported,
+            # the loss allowance: the reported ECL on either basis (a column of both, so their tables match)
+            "allowance": reported.copy(),
         }
     )
     return EclResult(
         loans=table, by_scenario=_tidy(table["loan_id"].to_numpy(), names, measures), segments=segment_summary(table),
-        projection=proj, scenarios=scenarios, weights=w,
+        projection=proj, scenarios=scenarios, weights=w, accounting=accounting,
     )  # fmt: skip
