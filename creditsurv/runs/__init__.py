@@ -1,5 +1,6 @@
 """Runs: the run folder (written whole or not at all), its manifest, output comparison and the ECL movement."""
 
+from ._basis import BASIS_NAMES, accounting_basis, check_same_basis
 from ._folder import (
     MANIFEST,
     RUN_FILES_READ,
@@ -40,7 +41,7 @@ from ._reproduce import (
 )
 
 __all__ = [
-    "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "RunManifest", "start_manifest", "WALK_STEPS", "check_walk_reconciles",
+    "BASIS_NAMES", "accounting_basis", "check_same_basis", "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "RunManifest", "start_manifest", "WALK_STEPS", "check_walk_reconciles",
     "check_folder_on_disk", "locate_inputs", "stage_inputs", "compare_outputs", "compare_run_folders", "describe_inputs", "judge_reproduction",
     "movement", "movement_against_run", "sicr_history_of_run", "reproduction_name", "package_versions",
     "read_manifest", "run_identity", "sha256_file", "write_table", "READABLE_VERSIONS", "SCHEMA_VERSION", "RUN_FILES_READ",

@@ -137,11 +137,14 @@ class MovementResult:
 
     def to_tables(self) -> dict[str, pd.DataFrame]:
         """The tables to write, keyed by file name."""
-        return {
+        tables = {
             "movement_walk.csv": self.walk,
             "stage_migration.csv": self.migration,
             "pd_change_by_segment.csv": self.pd_change,
         }
+        if len(self.by_loan) and not self.migration["loans"].any():  # loans with no stage (CECL): no migration
+            del tables["stage_migration.csv"]
+        return tables
 
 
 # --------------------------------------------------------------------------- checks
@@ -169,7 +172,7 @@ def _check_loans(df: pd.DataFrame, weights: Mapping[str, float], label: str, seg
             problems.append(f"{label}: loan_id is not unique: {rows(dup)}")
     if segment_column in have and df[segment_column].isna().any():
         problems.append(f"{label}: {segment_column!r} is missing in {rows(df[segment_column].isna())}")
-    if "stage" in have:
+    if "stage" in have and not df["stage"].isna().all():  # all empty: no stages (CECL), every loan at lifetime
         stage = pd.to_numeric(df["stage"], errors="coerce")
         bad = ~stage.isin(STAGES)
         if bad.any():
@@ -209,7 +212,7 @@ def _raise(problems: list[str], what: str) -> None:
 
 def _horizon_ecl(df: pd.DataFrame, scenario: str) -> np.ndarray:
     """ECL of ``scenario`` at the horizon of each loan's stage (12 months for stage 1)."""
-    stage1 = pd.to_numeric(df["stage"]).to_numpy() == 1
+    stage1 = pd.to_numeric(df["stage"]).eq(1).to_numpy(dtype=bool, na_value=False)
     return np.where(
         stage1,
         df[f"ecl_12m_{scenario}"].to_numpy(dtype=np.float64),
@@ -370,7 +373,7 @@ def _run_arrays(df: pd.DataFrame, weights: Mapping[str, float], segment_column: 
     return {
         "id": df["loan_id"].to_numpy(),
         "segment": df[segment_column].to_numpy(),
-        "stage": pd.to_numeric(df["stage"]).to_numpy().astype(np.int64),
+        "stage": pd.to_numeric(df["stage"]).fillna(0).to_numpy().astype(np.int64),  # 0: no stage (CECL)
         "pd": df["pd_lifetime"].to_numpy(dtype=np.float64),
         "ead": df["ead"].to_numpy(dtype=np.float64),
         "ecl": df["ecl_reported"].to_numpy(dtype=np.float64),
