@@ -419,8 +419,9 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     from .loss import expected_credit_loss_by_partition, sicr_sensitivity
 
     cfg = ctx.cfg
+    cecl = cfg.accounting == "cecl"
     book = loans_with_panel_history(engine, engine.book_at_as_of(cfg.segments.column), model, ctx.as_of)
-    book, sicr_history = with_sicr_history(cfg, ctx.as_of, book)
+    book, sicr_history = (book, None) if cecl else with_sicr_history(cfg, ctx.as_of, book)
     states = state_distribution(book, cfg.arrears.labels(cfg.default_definition.days_past_due))
     run.add_table(states, "arrears_states.csv")
     paths = scenario_paths(ctx, engine, model, book, loaded)
@@ -440,8 +441,9 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     csv = cfg.outputs.csv_copies
     loan_table = with_cut_columns(result.loan_table(), book, cfg)
     run.add_table(loan_table, "loan_ecl.parquet", csv=csv)
-    sensitivity = sicr_sensitivity(result.loans, book, cfg.staging)
-    run.add_table(sensitivity, "sicr_sensitivity.csv")
+    sensitivity = None if cecl else sicr_sensitivity(result.loans, book, cfg.staging)  # staging: IFRS 9 only
+    if sensitivity is not None:
+        run.add_table(sensitivity, "sicr_sensitivity.csv")
     age_tail, tail_table = age_tail_sensitivity(engine, book, model, paths, result, ecl_options)
     if tail_table is not None:
         run.add_table(tail_table, "age_tail_sensitivity.csv")
@@ -454,30 +456,57 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     report_tables = {
         "loan_ecl": loan_table,
         "arrears_states": states,
-        "sicr_sensitivity": sensitivity,
         "segment_summary": result.segments,
         "segment_pd_table": segment_level(tidy),
     }
+    if sensitivity is not None:
+        report_tables["sicr_sensitivity"] = sensitivity
     report_tables["segment_speeds"], report_tables["equivalent_speeds"] = segment_speeds(result.projection.speeds)
     if tail_table is not None:
         report_tables["age_tail_sensitivity"] = tail_table
+    balance, allowance = float(np.sum(result.loans["balance"])), float(np.sum(result.loans["allowance"]))
     totals = {
+        "accounting": cfg.accounting,
         "loans": int(len(result.loans)),
+        "balance": balance,
         "ead": float(np.sum(result.loans["ead"])),
         "ecl_reported": float(np.sum(result.loans["ecl_reported"])),
-        "by_stage": {
+        "allowance": allowance,
+        # the stage figures of IFRS 9; empty on the CECL basis, which has no stages
+        "by_stage": {} if cecl else {
             int(k): float(v) for k, v in result.loans.groupby("stage")["ecl_reported"].sum().items()
         },
-        "stage_reasons": stage_reasons(result.loans),
+        "stage_reasons": {} if cecl else stage_reasons(result.loans),
         "sicr_history": sicr_history,
         # loans at or past their term with a balance left, projected as due next month (forecast.remaining_term)
         "past_term": int(((book["age"] >= book["term"]) & ~book["in_default"].astype(bool)).sum()),
         "age_tail": age_tail,
         "default_routes": routes,
-        "origination_view": origination_view_of(cfg, book, paths),
-        "low_credit_risk": _low_credit_risk_totals(cfg, result.loans),
-    }
+        "origination_view": None if cecl else origination_view_of(cfg, book, paths),
+        "low_credit_risk": None if cecl else _low_credit_risk_totals(cfg, result.loans),
+    }  # fmt: skip
+    if cecl:
+        totals["cecl"] = cecl_totals(ctx, balance, allowance)
     return result, report_tables, totals
+
+
+def cecl_totals(ctx, balance: float, allowance: float) -> dict:
+    """The CECL basis of a run, for the record and the report: the periods, the months they end, the discounting
+    and the lifetime loss rate (the allowance over the amortised cost basis, the book's balance; NaN for none)."""
+    from .months import format_month
+
+    cecl, cfg = ctx.cfg.cecl, ctx.cfg
+    forecast_end = ctx.as_of + cecl.forecast_months
+    return {
+        "forecast_months": int(cecl.forecast_months),
+        "forecast_end": format_month(forecast_end),
+        "reversion_months": int(cecl.reversion_months),
+        "reversion_end": format_month(forecast_end + cecl.reversion_months),
+        "long_run": dict(cfg.scenario_extension.long_run),
+        "hold_last_series": list(cfg.scenario_extension.hold_last_series),
+        "discount": cfg.loss.discount,
+        "lifetime_loss_rate": allowance / balance if balance > 0 else float("nan"),
+    }
 
 
 CUT_COLUMNS = (
@@ -602,7 +631,7 @@ def age_tail_sensitivity(engine, book, model, paths, result, ecl_options: dict):
     The supported ages run to the last one with ``model.baseline.tail_min_loan_months`` development
     loan-months. For the run's rule and the other one (``hold`` / ``extrapolate``, the ECL recomputed with
     it): the share of the book's expected defaulted balance (scenario-weighted) falling at older ages, the
-    lifetime and reported ECL and the stage-2 loans. Returns ``(summary, table)``, both ``None`` for a
+    lifetime and reported ECL and the stage-2 loans (empty on the CECL basis). Returns ``(summary, table)``, both ``None`` for a
     source with no fitted age baseline (benchmark curves, a table).
     """
 
@@ -617,6 +646,7 @@ def age_tail_sensitivity(engine, book, model, paths, result, ecl_options: dict):
     other = "extrapolate" if rule == "hold" else "hold"
     alternative = expected_credit_loss_by_partition(engine, book, with_age_tail(model, other), paths, **ecl_options)
     rows = []
+    staged = result.accounting != "cecl"  # the stage 2 count is IFRS 9's; empty on the CECL basis
     for name, res in ((rule, result), (other, alternative)):
         speeds = res.projection.speeds
         weighted = speeds[speeds["scenario"].astype(str) == WEIGHTED]
@@ -627,9 +657,10 @@ def age_tail_sensitivity(engine, book, model, paths, result, ecl_options: dict):
             "tail": name, "in_use": name == rule, "supported_age": supported,
             "share_of_defaults_beyond": beyond / total if total > 0 else 0.0,
             "ecl_lifetime": float(loans["ecl_lifetime"].sum()), "ecl_reported": float(loans["ecl_reported"].sum()),
-            "stage_2_loans": int((loans["stage"] == 2).sum()),
+            "stage_2_loans": int((loans["stage"] == 2).sum()) if staged else None,
         })  # fmt: skip
     table = pd.DataFrame(rows)
+    table["stage_2_loans"] = table["stage_2_loans"].astype("Int64")
     table["ecl_change"] = table["ecl_reported"] - table["ecl_reported"].iloc[0]
     summary = {
         "rule": rule, "supported_age": supported,
@@ -698,6 +729,8 @@ def execute_run(
     from .runs import RunFolder, movement_against_run
 
     ctx = run_context(cfg)
+    if cfg.outputs.prior_run is not None:
+        _check_prior_run_basis(cfg)
     _say(progress, "data checks and events")
     with open_engine(cfg) as engine:
         loaded = preflight(ctx, engine)
@@ -743,20 +776,49 @@ def execute_run(
                 for file, table in movement.to_tables().items():
                     run.add_table(table, file)
                 report_tables["movement_walk"] = movement.walk
-                report_tables["stage_migration"] = movement.migration_matrix("loans").reset_index()
+                if cfg.accounting != "cecl":  # no stages, no migration
+                    report_tables["stage_migration"] = movement.migration_matrix("loans").reset_index()
                 manifest.prior_run = str(cfg.outputs.prior_run)
             _say(progress, "report")
             kill_point("report")
             _write_report(run, cfg, manifest, report_tables)
             final = run.commit(manifest)
-    stage = ", ".join(f"stage {k}: {v:,.2f}" for k, v in totals["by_stage"].items())
+    if cfg.accounting == "cecl":
+        rate = totals["cecl"]["lifetime_loss_rate"]
+        figures = f"allowance {totals['allowance']:,.2f} (CECL, lifetime for every loan; lifetime loss rate {rate:.2%})"
+    else:
+        stage = ", ".join(f"stage {k}: {v:,.2f}" for k, v in totals["by_stage"].items())
+        figures = f"reported ECL {totals['ecl_reported']:,.2f} ({stage})"
     text = (
-        f"reporting month {manifest.as_of}: {totals['loans']:,} loans, EAD {totals['ead']:,.2f}, "
-        f"reported ECL {totals['ecl_reported']:,.2f} ({stage})\n"
+        f"reporting month {manifest.as_of}: {totals['loans']:,} loans, EAD {totals['ead']:,.2f}, {figures}\n"
         f"hazards: {model.describe()}\n"
         f"wrote {final}"
     )
     return Outcome(text, path=final)
+
+
+def _refuse_mixed_bases(run_a, run_b) -> None:
+    """``compare``: ``RunError`` naming both runs when one is on IFRS 9 and the other on CECL
+    (:func:`creditsurv.runs.check_same_basis`)."""
+    from .runs import check_same_basis
+
+    check_same_basis(run_a, run_b)
+
+
+def _check_prior_run_basis(cfg) -> None:
+    """``outputs.prior_run`` on another accounting basis than this run: ``RunError`` before any work."""
+    from .runs import BASIS_NAMES, accounting_basis, read_manifest
+
+    try:
+        prior = accounting_basis(read_manifest(cfg.outputs.prior_run))
+    except RunError:  # not a readable run: the preflight names that problem with the others
+        return
+    if prior != cfg.accounting:
+        raise RunError(
+            f"outputs.prior_run: {cfg.outputs.prior_run} is on the {BASIS_NAMES[prior]} basis (accounting: {prior}) "
+            f"and this run on {BASIS_NAMES[cfg.accounting]} (accounting: {cfg.accounting}); the movement between "
+            "allowances of two bases would show the change of basis as a change of risk. Name a prior run of this basis"
+        )
 
 
 _REPORTED_VALIDATION = (
@@ -771,7 +833,7 @@ def _validate_run(cfg, engine, model, result, run, manifest, report_tables: dict
 
     _say(progress, "validation")
     kill_point("validation")
-    live = (result.loans["stage"] != 3).to_numpy()
+    live = result.loans["loan_id"].isin(result.projection.loans["loan_id"]).to_numpy()  # not in default: projected
     pack = validation_pack(cfg, engine, model, current_pd_12m=result.loans.loc[live, "pd_12m"].to_numpy())
     for name, table in pack.tables.items():
         suffix = ".parquet" if name == "development_cohort" else ".csv"
@@ -811,6 +873,9 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
         "arrears_fee": cfg.loss.exposure.arrears_fee,
         "asset_correlation": cfg.validation.asset_correlation,
         "fit_on": cfg.windows.fit_on,
+        "accounting": cfg.accounting,
+        "discount": cfg.loss.discount,
+        **({"cecl": (manifest.totals or {}).get("cecl")} if cfg.accounting == "cecl" else {}),
         **({"calibration": manifest.calibration} if manifest.calibration is not None else {}),
     }
     write_report(run.add_file("report.html"), tables, meta)
@@ -872,6 +937,7 @@ def compare(run_a, run_b, out=None) -> Outcome:
     """``creditsurv compare``: the ECL walk, stage migration and PD change from run A to run B."""
     from .runs import SCHEMA_VERSION, RunFolder, compare_run_folders, read_manifest
 
+    _refuse_mixed_bases(run_a, run_b)
     result = compare_run_folders(run_a, run_b)
     a, b = read_manifest(run_a), read_manifest(run_b)
     parent = Path(out) if out is not None else Path(run_b).parent
@@ -978,8 +1044,14 @@ def export(
         write_tables,
     )
     from .forecast import remaining_term
-    from .loss import expected_credit_loss
-    from .runs import RunFolder, check_folder_on_disk, read_manifest, sha256_file
+    from .loss import STAGING_COLUMNS, expected_credit_loss, loans_in_default
+    from .runs import (
+        RunFolder,
+        accounting_basis,
+        check_folder_on_disk,
+        read_manifest,
+        sha256_file,
+    )
 
     run_dir = Path(run_dir)
     manifest = read_manifest(run_dir)
@@ -1013,6 +1085,12 @@ def export(
     missing = sorted({c for b in groupings for c in b} - set(table.columns))
     if missing:
         raise DataError(f"{run_dir / 'loan_ecl.parquet'}: no column {missing} to group by (--by); have {list(table.columns)}")
+    staged = sorted({c for b in groupings for c in b} & set(STAGING_COLUMNS))
+    if staged and accounting_basis(manifest) == "cecl":
+        raise DataError(
+            f"{run_dir / 'loan_ecl.parquet'}: {staged} are empty on the CECL basis of this run (no stages); "
+            "group by other columns (--by)"
+        )
     chosen = _loan_ids(loans, table, run_dir) if loans is not None else None
 
     inputs = read_projection_inputs(run_dir, ctx.scenarios)
@@ -1022,8 +1100,10 @@ def export(
 
     tables = {}
     if groupings:
-        live = table[table["stage"] != 3]
         book = inputs.book
+        # the loans the run projected: not in default (stage 3 under IFRS 9; on the CECL basis there is no stage)
+        projected = book.loc[~loans_in_default(book, cfg.default_definition.days_past_due), "loan_id"]
+        live = table[table["loan_id"].isin(projected)]
         horizon = int(remaining_term(book["age"], book["term"]).max()) if len(book) else 0
         grouped = GroupedCurves(live, groupings, scenarios, horizon)
         expected_credit_loss(inputs.book, source, inputs.paths, on_chunk=grouped, **options)
