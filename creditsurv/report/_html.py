@@ -32,6 +32,13 @@ Sections, in order, each an HTML ``<section>`` with the ``id`` given:
 
 The columns each table needs are in :data:`REQUIRED_COLUMNS`; other columns
 are ignored unless a section says otherwise. Money is in the run's currency.
+
+On the CECL basis (``meta["accounting"]`` ``cecl``, with ``meta["cecl"]``: the
+forecast and reversion periods, the discounting and the lifetime loss rate) the
+report speaks CECL's words: the allowance for credit losses, the lifetime loss
+rate (allowance over the amortised cost basis, the balance), the reasonable and
+supportable forecast period and the reversion; it has no stage tables and says
+that the IFRS 9 staging tables are not produced. The IFRS 9 report is unchanged.
 """
 
 from __future__ import annotations
@@ -192,6 +199,59 @@ def _stage_label(x) -> str:
         return str(int(f)) if f.is_integer() else str(x)
     except (TypeError, ValueError):
         return str(x)
+
+
+def _is_cecl(meta) -> bool:
+    """Whether the run is on the CECL basis (ASC 326): no stages, the lifetime ECL of every loan its allowance."""
+    return meta.get("accounting") == "cecl"
+
+
+def _allowance(loans: pd.DataFrame) -> pd.Series:
+    """Each loan's allowance (``ecl_reported`` for a table written before the ``allowance`` column)."""
+    return loans["allowance"] if "allowance" in loans.columns else loans["ecl_reported"]
+
+
+def _loss_rate(allowance: float, balance: float) -> str:
+    """The lifetime loss rate: allowance over the amortised cost basis (the balance), in percent."""
+    return fmt_pct(allowance / balance) if balance else "n/a"
+
+
+_DISCOUNT_TEXT = {
+    "none": "not discounted (discount factors 1: a method that does not discount)",
+    "effective_interest_rate": "a discounted cash flow method: each month's expected loss discounted at the loan's "
+    "effective interest rate (ASC 326-20-30-4)",
+}
+
+
+def _cecl_basis_text(meta) -> str:
+    """The CECL basis of the run in one paragraph: the periods, the reversion, the discounting."""
+    c = meta.get("cecl") or {}
+    held = ", ".join(c.get("hold_last_series") or [])
+    long_run = c.get("long_run") or {}
+    given = ", ".join(f"{k} {v:g}" for k, v in sorted(long_run.items()))
+    reversion = (
+        f"then every macro input moves in a straight line to its long-run value over the reversion period of "
+        f"{fmt_int(c.get('reversion_months'))} months (to {c.get('reversion_end')}) and holds it after"
+        if c.get("reversion_months")
+        else "then every macro input takes its long-run value at once (no reversion period) and holds it"
+    )
+    discount = _DISCOUNT_TEXT.get(meta.get("discount") or c.get("discount"), str(meta.get("discount")))
+    return (
+        "Accounting basis: CECL (ASC 326). The allowance of every loan is its probability-weighted lifetime expected "
+        "credit loss over the contractual term, shortened by expected prepayment; there are no stages. The scenario "
+        f"paths are used over the reasonable and supportable forecast period of {fmt_int(c.get('forecast_months'))} "
+        f"months (to {c.get('forecast_end')}); {reversion}. Long-run values: "
+        + (f"{given}; others " if given else "")
+        + "the mean of the macro history up to the reporting month"
+        + (f"; {held} hold their value at the end of the forecast period" if held else "")
+        + f". Discounting: {discount}."
+    )
+
+
+_NOT_STAGED = (
+    "IFRS 9 staging does not apply on the CECL basis: the SICR sensitivity, the stage counts of the age-tail "
+    "sensitivity, the PD at origination (origination view) and the stage migration are not produced."
+)
 
 
 # --------------------------------------------------------------------------
@@ -399,6 +459,9 @@ def _summary(tables, meta) -> str:
     if loans is None:
         out.append(_absent("loan_ecl"))
         return "".join(out) + _verdict_summary(tables)
+    if _is_cecl(meta):
+        out.append(_cecl_headline(loans, meta))
+        return "".join(out) + _verdict_summary(tables)
     ead, ecl = loans["ead"].sum(), loans["ecl_reported"].sum()
     out.append(
         _pairs(
@@ -434,6 +497,61 @@ def _summary(tables, meta) -> str:
             "treated as due now: projected over one month, its whole balance the exposure."
         ))  # fmt: skip
     return "".join(out) + _verdict_summary(tables)
+
+
+def _cecl_headline(loans: pd.DataFrame, meta) -> str:
+    """The CECL summary: the allowance and the lifetime loss rate, the basis, the exposure notes; no stages."""
+    allowance = float(_allowance(loans).sum())
+    balance = float(loans["balance"].sum()) if "balance" in loans.columns else float("nan")
+    out = [
+        _pairs(
+            [
+                ("Accounting basis", "CECL (ASC 326)"),
+                ("Loans", fmt_int(len(loans))),
+                ("Amortised cost basis (balance)", fmt_money(balance)),
+                ("Total EAD", fmt_money(loans["ead"].sum())),
+                ("Allowance for credit losses", fmt_money(allowance)),
+                ("Lifetime loss rate (allowance / amortised cost basis)", _loss_rate(allowance, balance)),
+            ],
+            caption="Headline numbers",
+        ),
+        _p(_cecl_basis_text(meta)),
+    ]
+    if "arrears_state" in loans.columns:
+        out.append(_table(_by_arrears_state(loans), _ARREARS_COLUMNS, caption="Allowance by arrears state"))
+    routes = meta.get("default_routes")
+    if routes:
+        out.append(_p(_exposure_text(routes, meta.get("arrears_fee") or 0.0)))
+    if meta.get("past_term"):
+        out.append(_p(
+            f"{meta['past_term']:,d} live loans are at or past their contractual term with a balance left; each is "
+            "treated as due now: projected over one month, its whole balance the exposure."
+        ))  # fmt: skip
+    out.append(_p(_NOT_STAGED, "note"))
+    return "".join(out)
+
+
+_ARREARS_COLUMNS = [
+    ("arrears_state", "Arrears state", fmt_text),
+    ("loans", "Loans", fmt_int),
+    ("balance", "Amortised cost basis", fmt_money),
+    ("allowance", "Allowance", fmt_money),
+    ("loss_rate", "Lifetime loss rate", fmt_pct),
+]
+
+
+def _by_arrears_state(loans: pd.DataFrame) -> pd.DataFrame:
+    """Loans, balance and allowance by arrears state at the reporting month (in the table's order of first
+    appearance of each state, sorted), with an ``all`` row."""
+    frame = pd.DataFrame({"arrears_state": loans["arrears_state"].astype(str), "balance": loans["balance"],
+                          "allowance": _allowance(loans)})  # fmt: skip
+    g = frame.groupby("arrears_state", sort=True)
+    out = g.agg(loans=("balance", "size"), balance=("balance", "sum"), allowance=("allowance", "sum")).reset_index()
+    total = pd.DataFrame({"arrears_state": ["all"], "loans": [len(frame)], "balance": [frame["balance"].sum()],
+                          "allowance": [frame["allowance"].sum()]})  # fmt: skip
+    out = pd.concat([out, total], ignore_index=True)
+    out["loss_rate"] = out["allowance"] / out["balance"].where(out["balance"] != 0)
+    return out
 
 
 def _not_judged(items: pd.DataFrame) -> str:
@@ -593,6 +711,12 @@ def _cautions(tables, meta) -> str:
         "Accounting judgement and local supervisory rules prevail over anything in this report, "
         "including stage allocation, scenario weights and overlays.",
     ]
+    if _is_cecl(meta):
+        lines[1] = (
+            "Accounting judgement and local supervisory rules prevail over anything in this report, including the "
+            "reasonable and supportable forecast period, the reversion to long-run values, the scenario weights, "
+            "the discounting basis and overlays."
+        )
     loosened = (meta.get("model") or {}).get("limits_loosened")
     if loosened:
         text = ", ".join(f"model.fit.{k} = {v:g}" for k, v in loosened.items())
@@ -896,10 +1020,45 @@ def _ecl_plot(stages: pd.DataFrame, scen: pd.DataFrame) -> str:
     return _img(fig, "ECL by stage and by scenario")
 
 
+def _cecl_allowance(loans: pd.DataFrame, meta) -> str:
+    """The CECL allowance by segment and by scenario (lifetime for every loan), with the basis."""
+    weights = {str(k): v for k, v in (meta.get("scenario_weights") or {}).items()}
+    scen = _ecl_by_scenario(loans, _scenarios(loans), weights)  # lifetime for every loan: the weighted row's is the allowance
+    out = []
+    if not loans.empty:
+        seg = pd.DataFrame({"segment": loans["segment"].astype(str), "allowance": _allowance(loans)})
+        seg = seg.groupby("segment", sort=True)["allowance"].sum().reset_index()
+        fig, (ax1, ax2) = _figure(2, height=3.0)
+        ax1.bar(seg["segment"], seg["allowance"], color=_COLORS[0], width=0.6)
+        ax1.tick_params(axis="x", labelrotation=30)
+        _style_axes(ax1, xlabel="Segment", ylabel="Allowance (currency)", title="By segment")
+        colors = [_COLORS[4] if s == WEIGHTED else _COLORS[1] for s in scen["scenario"]]
+        ax2.bar([str(s) for s in scen["scenario"]], scen["ecl_lifetime"], color=colors, width=0.6)
+        ax2.tick_params(axis="x", labelrotation=30)
+        _style_axes(ax2, xlabel="Scenario", ylabel="Lifetime expected credit loss (currency)", title="By scenario")
+        for ax in (ax1, ax2):
+            ax.yaxis.set_major_formatter(_thousands())
+        out.append(_img(fig, "Allowance by segment and by scenario"))
+    out.append(_p(_cecl_basis_text(meta)))
+    cols = [
+        ("scenario", "Scenario", fmt_text),
+        ("weight", "Weight", fmt_pct),
+        ("ecl_lifetime", "Lifetime expected credit loss, all loans", fmt_money),
+    ]
+    if not weights:
+        cols = [c for c in cols if c[0] != "weight"]
+    out.append(_table(scen, cols, caption="Lifetime expected credit loss by scenario"))
+    out.append(_p("The weighted row is the allowance: the probability-weighted lifetime expected credit loss.", "note"))
+    return "".join(out)
+
+
 def _ecl(tables, meta) -> str:
     loans = tables.get("loan_ecl")
+    cecl = _is_cecl(meta)
     out = []
-    if loans is None:
+    if loans is not None and cecl:
+        out.append(_cecl_allowance(loans, meta))
+    elif loans is None:
         out.append(_absent("loan_ecl"))
     else:
         stages = _by_stage(loans)
@@ -937,7 +1096,9 @@ def _ecl(tables, meta) -> str:
         ]
         out.append(_table(states, cols, caption="Arrears states at the reporting month", name="arrears_states"))
     sens = tables.get("sicr_sensitivity")
-    if sens is not None:
+    if cecl:
+        out.append(_p(_NOT_STAGED, "note"))
+    elif sens is not None:
         cols = [
             ("multiplier", "Relative threshold, x configured", fmt_stat),
             ("sicr_relative", "Lifetime PD now / at origination at least", fmt_stat),
@@ -966,6 +1127,9 @@ def _ecl(tables, meta) -> str:
             ("ecl_reported", "Reported ECL", fmt_money),
             ("ecl_change", "Change against the rule in use", fmt_money),
         ]
+        if cecl:  # no stages; the reported ECL is the allowance
+            cols = [c for c in cols if c[0] not in ("stage_2_loans", "ecl_lifetime")]
+            cols = [(c, "Allowance", f) if c == "ecl_reported" else (c, h, f) for c, h, f in cols]
         out.append(_table(tail, cols, caption="Loan ages beyond the development data", name="age_tail_sensitivity"))
         used = tail.loc[tail["in_use"].astype(bool), "tail"]
         out.append(_p(
@@ -979,6 +1143,20 @@ def _ecl(tables, meta) -> str:
     seg = tables.get("segment_summary")
     if seg is None:
         out.append(_absent("segment_summary"))
+    elif cecl:
+        cols = [
+            ("segment", "Segment", fmt_text),
+            ("loans", "Loans", fmt_int),
+            ("balance", "Amortised cost basis", fmt_money),
+            ("ead", "EAD", fmt_money),
+            ("ecl", "Allowance", fmt_money),
+            ("coverage", "Lifetime loss rate", fmt_pct),
+        ]
+        out.append(_table(seg, cols, caption="By segment", name="segment_summary"))
+        out.append(_p(
+            "Lifetime loss rate: the allowance divided by the amortised cost basis (the balance at the reporting "
+            "month).", "note",
+        ))  # fmt: skip
     else:
         cols = [
             ("segment", "Segment", fmt_text),
@@ -1280,7 +1458,11 @@ def _validation(tables, meta) -> str:
 
 def _movement(tables, meta) -> str:
     out = []
+    cecl = _is_cecl(meta)
     walk = tables.get("movement_walk")
+    if walk is not None and cecl:  # no stages: no transfer between them
+        walk = walk[~walk["step"].astype(str).str.startswith("stage_transfer_")]
+    what = "the allowance" if cecl else "reported ECL"
     if walk is None:
         out.append(_absent("movement_walk"))
     else:
@@ -1293,17 +1475,20 @@ def _movement(tables, meta) -> str:
             ax.set_yticks(y, [str(s).replace("_", " ") for s in steps["step"]])
             ax.axvline(0, color=_INK, linewidth=0.8)
             ax.xaxis.set_major_formatter(_thousands())
-            _style_axes(ax, xlabel="Change in reported ECL (currency)", ylabel="")
-            out.append(_img(fig, "ECL movement by step"))
+            _style_axes(ax, xlabel=f"Change in {what} (currency)", ylabel="")
+            out.append(_img(fig, "Allowance movement by step" if cecl else "ECL movement by step"))
         cols = [
             ("step", "Step", fmt_text),
             ("loans", "Loans", fmt_int),
-            ("ecl_change", "ECL change", fmt_money),
-            ("ecl_balance", "ECL after step", fmt_money),
+            ("ecl_change", "Allowance change" if cecl else "ECL change", fmt_money),
+            ("ecl_balance", "Allowance after step" if cecl else "ECL after step", fmt_money),
         ]
-        out.append(_table(walk, cols, caption="ECL walk from the previous run", name="movement_walk"))
+        caption = "Allowance walk from the previous run" if cecl else "ECL walk from the previous run"
+        out.append(_table(walk, cols, caption=caption, name="movement_walk"))
     mig = tables.get("stage_migration")
-    if mig is None:
+    if cecl:
+        out.append(_p("No stage migration: the CECL basis has no stages.", "note"))
+    elif mig is None:
         out.append(_absent("stage_migration"))
     elif {"stage_from", "stage_to", "loans"} <= set(mig.columns):
         wide = mig.pivot_table(
@@ -1359,6 +1544,9 @@ SECTIONS: tuple[tuple[str, str, Callable[[dict, dict], str]], ...] = (
     ("run-record", "Run record", _run_record),
 )
 """Sections in report order: ``(id, title, function(tables, meta) -> body HTML)``."""
+
+_CECL_TITLES = {"ecl": "Allowance for credit losses (CECL)", "movement": "Movement of the allowance since the previous run"}
+"""The sections' titles on the CECL basis, where they differ."""
 
 
 # --------------------------------------------------------------------------
@@ -1448,7 +1636,10 @@ def render_report(tables: Mapping[str, pd.DataFrame], meta: Mapping) -> str:
         ``hl_df``, ``hl_p_value``), ``scenario_weights`` (scenario -> weight),
         ``inputs`` (list of dicts with ``input``, ``path``,
         ``bytes``, ``sha256``), ``versions`` (package -> version),
-        ``config_sha256`` (or ``config_hash``), ``seed``. All optional.
+        ``config_sha256`` (or ``config_hash``), ``seed``, ``accounting``
+        (``ifrs9``, the default, or ``cecl``), ``discount``, ``cecl``
+        (``forecast_months``, ``forecast_end``, ``reversion_months``,
+        ``reversion_end``, ``long_run``, ``hold_last_series``). All optional.
 
     Returns
     -------
@@ -1466,10 +1657,12 @@ def render_report(tables: Mapping[str, pd.DataFrame], meta: Mapping) -> str:
     run_id = meta.get("run_id")
     title = "creditsurv run report" + (f": {run_id}" if run_id else "")
     month = meta.get("reporting_month", meta.get("as_of"))
-    nav = "".join(f'<li><a href="#{sid}">{_e(t)}</a></li>' for sid, t, _ in SECTIONS)
+    titles = {sid: (_CECL_TITLES.get(sid, t) if _is_cecl(meta) else t) for sid, t, _ in SECTIONS}
+    nav = "".join(f'<li><a href="#{sid}">{_e(titles[sid])}</a></li>' for sid, _, _ in SECTIONS)
     body = []
     with matplotlib.rc_context(_RC):  # plot style for this call only; global rcParams untouched
-        for i, (sid, heading, fn) in enumerate(SECTIONS, start=1):
+        for i, (sid, _, fn) in enumerate(SECTIONS, start=1):
+            heading = titles[sid]
             body.append(f'<section id="{sid}">\n<h2>{i}. {_e(heading)}</h2>\n{fn(tables, meta)}\n</section>')
     sub = f'<p class="sub">Reporting month {_e(month)}</p>' if month else ""
     return (
