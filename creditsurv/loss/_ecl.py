@@ -962,7 +962,7 @@ def expected_credit_loss(
     if cecl:
         # ASC 326: no stages; nothing of the staging is computed (no PD at origination), its columns stay empty
         stage = pd.array(np.full(n, None), dtype="Int8")
-        stages = Stages(stage, np.full(n, None, dtype=object), np.full(n, np.nan))
+        stages = Stages(stage, pd.array(np.full(n, None, dtype=object), dtype="string"), np.full(n, np.nan))
         pd_orig, pd_staging = np.full(n, np.nan), np.full(n, np.nan)
         twelve_months = np.zeros(n, dtype=bool)
     else:
