@@ -541,12 +541,18 @@ _ARREARS_COLUMNS = [
 
 
 def _by_arrears_state(loans: pd.DataFrame) -> pd.DataFrame:
-    """Loans, balance and allowance by arrears state at the reporting month (in the table's order of first
-    appearance of each state, sorted), with an ``all`` row."""
+    """Loans, balance and allowance by arrears state at the reporting month (current first, default last, the
+    arrears states between by days past due), with an ``all`` row."""
     frame = pd.DataFrame({"arrears_state": loans["arrears_state"].astype(str), "balance": loans["balance"],
                           "allowance": _allowance(loans)})  # fmt: skip
-    g = frame.groupby("arrears_state", sort=True)
+    g = frame.groupby("arrears_state", sort=False)
     out = g.agg(loans=("balance", "size"), balance=("balance", "sum"), allowance=("allowance", "sum")).reset_index()
+
+    def order(state: str):
+        days = re.match(r"\d+", state)
+        return (0, 0) if state == "current" else (2, 0) if state == "default" else (1, int(days.group()) if days else 0)
+
+    out = out.iloc[sorted(range(len(out)), key=lambda i: order(out["arrears_state"].iloc[i]))]
     total = pd.DataFrame({"arrears_state": ["all"], "loans": [len(frame)], "balance": [frame["balance"].sum()],
                           "allowance": [frame["allowance"].sum()]})  # fmt: skip
     out = pd.concat([out, total], ignore_index=True)
