@@ -348,6 +348,34 @@ def scenario_without_a_series_the_model_reads(ws):
 
 
 
+# ====================================================================== the CECL basis (issue 14, item 6)
+
+
+def _on_cecl(d, forecast_months=24):
+    d["accounting"] = "cecl"
+    d["cecl"] = {"forecast_months": forecast_months, "reversion_months": 12}
+
+
+@case("14.6", 2, r"^ConfigError: .*config\.yaml.*cecl: accounting cecl needs the reasonable and supportable forecast period")
+def cecl_without_its_periods(ws):
+    return ["run", str(ws.edit_config(lambda d: d.update(accounting="cecl")))]
+
+
+@case("14.6", 1, r"^ProjectionError: 1 problem with the scenario paths: scenario 'downside' \(\S*downside\.csv\): the path ends at 2026-06, before the end of the reasonable and supportable forecast period: cecl\.forecast_months 24 after the reporting month 2024-12 needs the path to reach 2026-12")
+def cecl_forecast_period_beyond_a_scenario_path(ws):
+    ws.edit_table("scenarios/downside.csv", lambda m: m[m["month"] <= "2026-06"])
+    return ["run", str(ws.edit_config(_on_cecl))]
+
+
+@case("14.6", 1, r"^RunError: outputs\.prior_run: \S+ is on the IFRS 9 basis \(accounting: ifrs9\) and this run on CECL")
+def cecl_run_after_an_ifrs9_prior_run(ws):
+    def change(d):
+        _on_cecl(d)
+        d["outputs"]["prior_run"] = f"reports/{ws.earlier_run.name}"
+
+    return ["run", str(ws.edit_config(change))]
+
+
 # ====================================================================== faults leave nothing behind (items 9-12)
 
 
