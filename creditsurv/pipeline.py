@@ -448,7 +448,9 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     run.add_table(wide, "segment_pd_matrix.csv")
     run.add_table(result.projection.speeds, "segment_speeds.csv")
     run.add_table(result.projection.speed_multiples, "equivalent_speeds.csv")
+    shown = sorted({c for p in paths.values() for c in p.columns})
     report_tables = {
+        "scenario_paths": scenario_path_table(paths, loaded, ctx.weights, ctx.as_of, shown),
         "loan_ecl": loan_table,
         "arrears_states": states,
         "sicr_sensitivity": sensitivity,
@@ -475,6 +477,36 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
         "low_credit_risk": _low_credit_risk_totals(cfg, result.loans),
     }
     return result, report_tables, totals
+
+
+SCENARIO_MONTHS_SHOWN = (24, 120)
+"""The report's scenario chart: months of history before the reporting month, and at most this many ahead."""
+
+
+def scenario_path_table(paths: dict, loaded: dict, weights, as_of: int, series) -> pd.DataFrame:
+    """The macro paths the run projected with, tidy, for the report: ``scenario``, ``weight``, ``month``,
+    ``series``, ``value`` and ``part`` (``history`` up to the reporting month, ``scenario`` while the scenario
+    file gives the month, then ``extension``), from 24 months before the reporting month to the end of the
+    longest scenario file plus the extension, at most 120 months ahead."""
+    from .months import format_month
+
+    rows = []
+    for name, frame in paths.items():
+        given = loaded.get(name)
+        last_given = int(max(given.index)) if given is not None and len(given) else as_of
+        end = min(int(frame.index.max()), as_of + SCENARIO_MONTHS_SHOWN[1])
+        window = frame.loc[(frame.index >= as_of - SCENARIO_MONTHS_SHOWN[0]) & (frame.index <= end)]
+        month = window.index.to_numpy(dtype=np.int64)
+        part = np.where(month <= as_of, "history", np.where(month <= last_given, "scenario", "extension"))
+        for col in series:
+            if col in window.columns:
+                rows.append(pd.DataFrame({
+                    "scenario": name, "weight": float(weights[name]), "month": [format_month(int(m)) for m in month],
+                    "series": col, "value": window[col].to_numpy(dtype=float), "part": part,
+                }))  # fmt: skip
+    return pd.concat(rows, ignore_index=True) if rows else pd.DataFrame(
+        columns=["scenario", "weight", "month", "series", "value", "part"]
+    )
 
 
 CUT_COLUMNS = (
@@ -732,7 +764,7 @@ def execute_run(
             manifest.model = model.record()
             manifest.data_check_warnings = _fired_warnings(checks)
             manifest.scenario_weights = dict(ctx.weights)
-            manifest.totals = totals
+            manifest.totals = {**totals, "input_rows": input_row_counts(cfg, engine, loaded)}
             _validate_run(cfg, engine, model, result, run, manifest, report_tables, progress)
             if cfg.outputs.prior_run is not None:
                 _say(progress, "movement against the prior run")
@@ -781,6 +813,20 @@ def _validate_run(cfg, engine, model, result, run, manifest, report_tables: dict
         report_tables["backtest"] = pack.tables["backtest_by_month"]
 
 
+def input_row_counts(cfg, engine, loaded: dict) -> dict[str, int]:
+    """Rows read from each input, by config key: the panel, loan and macro tables as the engine opened them (every
+    file of a glob together) and each scenario file."""
+    counts = {}
+    for key, table, source in (("inputs.panel", "panel", cfg.inputs.panel), ("inputs.loans", "loans", cfg.inputs.loans),
+                               ("inputs.macro", "macro", cfg.inputs.macro)):  # fmt: skip
+        if source is not None:
+            counts[f"{key}.path"] = int(engine.frame(f"SELECT count(*) AS n FROM {table}")["n"].iloc[0])
+    for i, scenario in enumerate(cfg.scenarios):
+        if scenario.name in loaded:
+            counts[f"scenarios[{i}].path"] = int(len(loaded[scenario.name]))
+    return counts
+
+
 def _write_report(run, cfg, manifest, tables: dict) -> None:
     """``report.html``: the run's tables and record in one self-contained page.
 
@@ -797,6 +843,8 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
         "model": manifest.model,
         "scenario_weights": manifest.scenario_weights,
         "inputs": manifest.inputs,
+        "input_rows": (manifest.totals or {}).get("input_rows"),
+        "currency": cfg.currency,
         "config_sha256": manifest.config_sha256,
         "seed": manifest.seed,
         "synthetic": cfg.synthetic_data,

@@ -58,6 +58,12 @@ def _increasing(values) -> str | None:
     return None
 
 
+def _currency_code(value) -> str | None:
+    if value is not None and not (len(value) == 3 and value.isascii() and value.isalpha() and value.isupper()):
+        return f"must be a three-letter currency code in capitals (ISO 4217), e.g. GBP, USD or EUR; got {value!r}"
+    return None
+
+
 # --------------------------------------------------------------------------- inputs
 
 InputFormat = Literal["auto", "parquet", "csv", "duckdb"]
@@ -772,6 +778,10 @@ class Config:
     inputs: Inputs = field(metadata=_doc("where the data are and how columns map"))
     windows: Windows = field(metadata=_doc("development and out-of-time windows"))
     name: str = field(default="creditsurv", metadata=_doc("a label for the run"))
+    currency: str | None = field(
+        default=None,
+        metadata=_doc("reporting currency of every amount (ISO 4217 code, e.g. GBP), shown beside each amount in the report", check=_currency_code),
+    )
     default_definition: DefaultDefinition = field(default_factory=DefaultDefinition, metadata=_doc("default definition"))
     events: Events = field(default_factory=Events, metadata=_doc("closure rules"))
     arrears: Arrears = field(default_factory=Arrears, metadata=_doc("arrears states before default"))
