@@ -864,6 +864,16 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
 # --------------------------------------------------------------------------- reproduce and compare
 
 
+def _run_manifest(run_dir: Path) -> dict:
+    """The manifest of a folder written by ``creditsurv run`` (read against its schema); another folder is refused."""
+    from .runs import read_manifest
+
+    manifest = read_manifest(run_dir)
+    if manifest["kind"] != "run":
+        raise RunError(f"{run_dir}: not a run folder made by creditsurv run (kind {manifest['kind']!r})")
+    return manifest
+
+
 def reproduce(run_dir, out=None, inputs=None, progress=None) -> Outcome:
     """``creditsurv reproduce``: re-run a past run from its record and compare every output.
 
@@ -884,15 +894,12 @@ def reproduce(run_dir, out=None, inputs=None, progress=None) -> Outcome:
         check_folder_on_disk,
         judge_reproduction,
         locate_inputs,
-        read_manifest,
         reproduction_name,
         stage_inputs,
     )
 
     run_dir = Path(run_dir)
-    manifest = read_manifest(run_dir)
-    if manifest["kind"] != "run":
-        raise RunError(f"{run_dir}: not a run folder made by creditsurv run (kind {manifest['kind']!r})")
+    manifest = _run_manifest(run_dir)
     check_folder_on_disk(run_dir, manifest)
     if manifest.get("schema_version", 1) < 2:
         raise RunError(
@@ -1024,12 +1031,10 @@ def export(
     )
     from .forecast import remaining_term
     from .loss import expected_credit_loss
-    from .runs import RunFolder, check_folder_on_disk, read_manifest, sha256_file
+    from .runs import RunFolder, check_folder_on_disk, sha256_file
 
     run_dir = Path(run_dir)
-    manifest = read_manifest(run_dir)
-    if manifest["kind"] != "run":
-        raise RunError(f"{run_dir}: not a run folder made by creditsurv run (kind {manifest['kind']!r})")
+    manifest = _run_manifest(run_dir)
     problems = []
     for name, given, allowed in (
         ("--format", [fmt], FORMATS), ("--period", [period], PERIODS),

@@ -562,7 +562,7 @@ def test_scenario_paths_are_drawn_with_their_weights(tables, meta):
     c = parse(render_report(tables, meta))
     text = c.text("scenarios")
     assert NOT_PRODUCED not in text and "base 60%" in text and "downside 40%" in text
-    assert "dotted: its extension" in text
+    assert "faded: its extension" in text
     without = {k: v for k, v in tables.items() if k != "scenario_paths"}
     assert NOT_PRODUCED in parse(render_report(without, meta)).text("scenarios")
 

@@ -844,14 +844,14 @@ def _scenario_paths(tables, meta) -> str:
             ax.plot([x_of[m] for m in given["month"]], given["value"], label=f"{sc} ({fmt_pct(weight, 0)})", **style)
             ext = own[own["part"] == "extension"]
             if len(ext):
-                ax.plot([x_of[m] for m in ext["month"]], ext["value"], **{**style, "linestyle": ":"})
+                ax.plot([x_of[m] for m in ext["month"]], ext["value"], alpha=0.4, linewidth=2.5, **style)
         months = list(x_of)
         ticks = list(range(0, len(months), max(len(months) // 5, 1)))
         ax.set_xticks(ticks, [months[t] for t in ticks])
         _style_axes(ax, xlabel="Month", ylabel=str(name), title=str(name), legend=False)
     _figure_legend(fig, axes)
     weights = meta.get("scenario_weights") or {}
-    text = "Black: history up to the reporting month; coloured: each scenario's path as given, dotted: its extension"
+    text = "Black: history up to the reporting month; coloured: each scenario's path as given, faded: its extension"
     text += " by the config's rule. Weights: " + ", ".join(f"{k} {fmt_pct(v, 0)}" for k, v in weights.items()) + "."
     return _img(fig, "Macro series by scenario") + _p(text, "note")
 
