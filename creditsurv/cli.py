@@ -159,16 +159,23 @@ def _cmd_init(args) -> int:
     return 0
 
 
+VERBOSE_HELP = "on an error, show the traceback too (before or after the command's name)"
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="creditsurv",
         description="Lifetime PD and ECL from loan-month panels, with prepayment as a competing risk.",
     )
     parser.add_argument("--version", action="version", version=f"creditsurv {__version__}")
-    parser.add_argument("--verbose", action="store_true", help="show tracebacks and more detail")
+    parser.add_argument("--verbose", action="store_true", help=VERBOSE_HELP)
+    # Every command takes --verbose after its name too. The parent's default is suppressed, so a command that
+    # is not given it leaves the top-level value (set by `creditsurv --verbose COMMAND`) as it is.
+    verbose = argparse.ArgumentParser(add_help=False)
+    verbose.add_argument("--verbose", action="store_true", default=argparse.SUPPRESS, help=VERBOSE_HELP)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
 
-    p = sub.add_parser("make-demo-data", help="simulate a synthetic loan book (fictional lender)")
+    p = sub.add_parser("make-demo-data", parents=[verbose], help="simulate a synthetic loan book (fictional lender)")
     p.add_argument("out_dir", type=Path, metavar="OUT_DIR")
     p.add_argument("--loans", type=int, default=20_000, help="number of loans (default 20000)")
     p.add_argument("--seed", type=int, default=20261202, help="random seed (default 20261202)")
@@ -179,27 +186,27 @@ def build_parser() -> argparse.ArgumentParser:
     )  # fmt: skip
     p.set_defaults(func=_cmd_make_demo_data)
 
-    p = sub.add_parser("init", help="write a commented starter config and folder layout")
+    p = sub.add_parser("init", parents=[verbose], help="write a commented starter config and folder layout")
     p.add_argument("dir", type=Path, metavar="DIR")
     p.set_defaults(func=_cmd_init)
 
-    p = sub.add_parser("check", help="run the data checks on the config's inputs")
+    p = sub.add_parser("check", parents=[verbose], help="run the data checks on the config's inputs")
     p.add_argument("config", type=Path, metavar="CONFIG")
     p.add_argument("--out", type=Path, default=None, help="also write the check table to this CSV file")
     p.set_defaults(func=_cmd_check)
 
-    p = sub.add_parser("fit", help="fit the hazard model and write its JSON and coefficient table")
+    p = sub.add_parser("fit", parents=[verbose], help="fit the hazard model and write its JSON and coefficient table")
     p.add_argument("config", type=Path, metavar="CONFIG")
     p.add_argument("--out", type=Path, default=None, help="folder to write into (must not exist)")
     p.set_defaults(func=_cmd_fit)
 
-    p = sub.add_parser("run", help="the monthly job: checks, fit, projection, ECL, report")
+    p = sub.add_parser("run", parents=[verbose], help="the monthly job: checks, fit, projection, ECL, report")
     p.add_argument("config", type=Path, metavar="CONFIG")
     p.add_argument("--as-of", default=None, metavar="YYYY-MM", help="reporting month (overrides the config)")
     p.add_argument("--out", type=Path, default=None, help="folder that holds run folders")
     p.set_defaults(func=_cmd_run)
 
-    p = sub.add_parser("reproduce", help="re-run a past run from its manifest and compare every output")
+    p = sub.add_parser("reproduce", parents=[verbose], help="re-run a past run from its manifest and compare every output")
     p.add_argument("run_dir", type=Path, metavar="RUN_DIR")
     p.add_argument("--out", type=Path, default=None, help="folder for the fresh run (default: reproductions/ beside it)")
     p.add_argument(
@@ -208,14 +215,14 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.set_defaults(func=_cmd_reproduce)
 
-    p = sub.add_parser("compare", help="ECL movement from run A to run B: walk, stage migration, PD change")
+    p = sub.add_parser("compare", parents=[verbose], help="ECL movement from run A to run B: walk, stage migration, PD change")
     p.add_argument("run_a", type=Path, metavar="RUN_A")
     p.add_argument("run_b", type=Path, metavar="RUN_B")
     p.add_argument("--out", type=Path, default=None, help="folder for the movement tables (default: beside RUN_B)")
     p.set_defaults(func=_cmd_compare)
 
     p = sub.add_parser(
-        "export", help="PD term structures of a finished run by any loan attributes, and chosen loans' tables",
+        "export", parents=[verbose], help="PD term structures of a finished run by any loan attributes, and chosen loans' tables",
         description="Recompute a finished run's PD term structures from what the run kept and write them, grouped "
         "by loan attributes, outside the run folder (which is checked against its manifest first and never "
         "changes). Example: creditsurv export reports/2024-12_1a2b3c4d5e --by segment --by band --by segment,vintage "

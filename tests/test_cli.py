@@ -28,6 +28,25 @@ def test_config_error_prints_one_line_without_traceback_and_exits_2(tmp_path, ca
     assert "  - inputs: missing required key" in err and "  - windows: missing required key" in err
 
 
+@pytest.mark.parametrize("where", ["before the command", "after the command"])
+def test_verbose_shows_the_traceback_before_or_after_the_command(tmp_path, capsys, where):
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("as_of: 2024-12\n")
+    argv = ["--verbose", "check", str(bad)] if where == "before the command" else ["check", str(bad), "--verbose"]
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    # The traceback first, then the message as it prints without --verbose (the cli docstring).
+    assert err.startswith("Traceback (most recent call last):")
+    assert f"\nConfigError: {bad}: 2 problems with the config:\n" in err
+
+
+def test_without_verbose_anywhere_there_is_no_traceback(tmp_path, capsys):
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("as_of: 2024-12\n")
+    assert main(["check", str(bad)]) == 2
+    assert "Traceback" not in capsys.readouterr().err
+
+
 def test_yaml_syntax_error_names_the_line(tmp_path, capsys):
     bad = tmp_path / "bad.yaml"
     bad.write_text("as_of: 2024-12\ninputs:\n  panel: [unclosed\n")
