@@ -679,14 +679,16 @@ def kill_point(stage: str) -> None:
 
 
 def execute_run(
-    cfg, parent: Path, *, argv=None, name: str | None = None, config_text: str | None = None, progress=None
+    cfg, parent: Path, *, argv=None, name: str | None = None, config_text: str | None = None, progress=None,
+    exists_hint: str | None = None,
 ) -> Outcome:
     """Run the monthly job of ``cfg`` into a new folder under ``parent``.
 
     ``name`` overrides the folder name; the run id stays ``YYYY-MM_<hash of
     config and inputs>``, so a reproduction carries the id of the run it
     reproduces. ``config_text`` is the config text recorded as given (default:
-    the config file's).
+    the config file's). ``exists_hint`` is what the error says to do when the
+    folder exists (default: a run's remedy; ``RunFolder``'s ``hint``).
     """
     import shutil
 
@@ -701,7 +703,7 @@ def execute_run(
         checks = check_and_label(engine)
         manifest = _manifest_start(cfg, argv, "run", config_text)
         folder = name or manifest.run_id
-        with RunFolder(parent, folder) as run:
+        with RunFolder(parent, folder, hint=exists_hint) as run:
             work = run.path / "_work"
             work.mkdir()
             _say(progress, "hazard model")
@@ -816,6 +818,16 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
 # --------------------------------------------------------------------------- reproduce and compare
 
 
+REPRODUCTION_EXISTS_HINT = (
+    "Reproductions are numbered (<run>_repro1, _repro2, ...), so another reproduction of this run took the "
+    "number at the same moment: run the command again for the next one."
+)
+EXPORT_EXISTS_HINT = (
+    "Exports are numbered (export_<run>, export_<run>_2, ...), so another export of this run took the name "
+    "at the same moment: run the command again for the next one."
+)
+
+
 def reproduce(run_dir, out=None, inputs=None, progress=None) -> Outcome:
     """``creditsurv reproduce``: re-run a past run from its record and compare every output.
 
@@ -860,7 +872,7 @@ def reproduce(run_dir, out=None, inputs=None, progress=None) -> Outcome:
         argv = ["creditsurv", "reproduce", str(run_dir)] + (["--inputs", str(inputs)] if inputs is not None else [])
         fresh = execute_run(
             cfg, parent, argv=argv, name=reproduction_name(parent, run_dir.name),
-            config_text=manifest.get("config_as_given"), progress=progress,
+            config_text=manifest.get("config_as_given"), progress=progress, exists_hint=REPRODUCTION_EXISTS_HINT,
         ).path
     return Outcome(judge_reproduction(run_dir, fresh), path=fresh)
 
@@ -872,7 +884,8 @@ def compare(run_a, run_b, out=None) -> Outcome:
     result = compare_run_folders(run_a, run_b)
     a, b = read_manifest(run_a), read_manifest(run_b)
     parent = Path(out) if out is not None else Path(run_b).parent
-    with RunFolder(parent, f"movement_{Path(run_a).name}_to_{Path(run_b).name}") as folder:
+    hint = "It holds the movement between these two runs, made by an earlier compare: remove it, or use --out for another folder."
+    with RunFolder(parent, f"movement_{Path(run_a).name}_to_{Path(run_b).name}", hint=hint) as folder:
         for file, table in result.to_tables().items():
             folder.add_table(table, file)
         final = folder.commit({"schema_version": SCHEMA_VERSION, "kind": "movement", "run_a": str(run_a), "run_b": str(run_b), "as_of_a": a["as_of"], "as_of_b": b["as_of"]})
@@ -1027,7 +1040,7 @@ def export(
         tables = grouped.tables(period=period, weightings=weightings, measures=measures)
         if fmt == "xlsx":
             check_fits_a_sheet(tables)
-    with RunFolder(parent, _export_name(parent, run_dir.name)) as folder:
+    with RunFolder(parent, _export_name(parent, run_dir.name), hint=EXPORT_EXISTS_HINT) as folder:
         loan_rows = {}
         if chosen is not None:
             subset = inputs.book[inputs.book["loan_id"].isin(chosen)]

@@ -1,5 +1,7 @@
 """The command line: errors as one line, exit codes, help, init."""
 
+from pathlib import Path
+
 import pytest
 
 from creditsurv.cli import main
@@ -150,3 +152,61 @@ def test_creditsurv_warnings_print_as_one_line():
     assert format_warning("not ours", RuntimeWarning, "/somewhere/else.py", 7, "x = 1").startswith(
         "/somewhere/else.py:7: RuntimeWarning: not ours"
     )
+
+
+# --------------------------------------------------------------------------- a folder that already exists
+
+
+@pytest.fixture
+def workspace(corpus_book, tmp_path):
+    """A copy of the small book's workspace with its one finished run (``conftest.corpus_book``)."""
+    return corpus_book.copy_to(tmp_path / "ws")
+
+
+def _folder_taken_at_the_last_moment(monkeypatch):
+    """Make every new output folder's name taken just before the command creates it, as another process would."""
+    import creditsurv.runs
+
+    real = creditsurv.runs.RunFolder
+
+    def racing(parent, name, **kwargs):
+        (Path(parent) / name).mkdir(parents=True)
+        return real(parent, name, **kwargs)
+
+    monkeypatch.setattr(creditsurv.runs, "RunFolder", racing)
+
+
+def test_compare_into_an_existing_movement_folder_says_remove_it_or_use_out(workspace, capsys):
+    run = str(workspace.earlier_run)
+    assert main(["compare", run, run]) == 0
+    (movement,) = [p for p in workspace.reports.iterdir() if p.name.startswith("movement_")]
+    capsys.readouterr()
+    assert main(["compare", run, run]) == 1
+    first = capsys.readouterr().err.splitlines()[0]
+    assert first == (
+        f"RunError: {movement}: already exists, and creditsurv never overwrites an output folder. It holds the movement "
+        "between these two runs, made by an earlier compare: remove it, or use --out for another folder."
+    )
+    assert main(["compare", run, run, "--out", str(workspace.root / "elsewhere")]) == 0
+
+
+def test_a_run_into_an_existing_run_folder_names_the_runs_remedy(workspace, capsys):
+    # The run's remedy (the RunFolder default): its folder name is the hash of month, config and inputs.
+    assert main(["run", str(workspace.config)]) == 1
+    first = capsys.readouterr().err.splitlines()[0]
+    assert first.startswith(f"RunError: {workspace.earlier_run}: already exists, and creditsurv never overwrites")
+    assert first.endswith("same config and inputs: use --out for another folder, or change the config or inputs.")
+
+
+def test_reproduce_and_export_number_their_folders_and_say_so_when_one_is_taken(workspace, monkeypatch, capsys):
+    run = workspace.earlier_run
+    _folder_taken_at_the_last_moment(monkeypatch)
+    assert main(["reproduce", str(run)]) == 1
+    first = capsys.readouterr().err.splitlines()[0]
+    assert first.startswith(f"RunError: {run.parent / 'reproductions' / (run.name + '_repro1')}: already exists")
+    assert first.endswith("another reproduction of this run took the number at the same moment: run the command again for the next one.")
+
+    assert main(["export", str(run), "--by", ""]) == 1
+    first = capsys.readouterr().err.splitlines()[0]
+    assert first.startswith(f"RunError: {run.parent / 'exports' / ('export_' + run.name)}: already exists")
+    assert first.endswith("another export of this run took the name at the same moment: run the command again for the next one.")
