@@ -8,7 +8,8 @@ Exit codes (the project's one statement of them; every ``CreditsurvError`` subcl
   evaluated on the data, model, projection, engine (a failed Spark step) and run errors, an output the operating system refuses
   to write (``OutputError``).
 * 2 -- usage or config errors: the command line or the YAML config is wrong (``ConfigError``,
-  argparse's own usage errors), or bad arguments to the demo simulator.
+  argparse's own usage errors), a command pointed at a user's file it would have to overwrite
+  (``UsageError``: ``init`` where a config exists), or bad arguments to the demo simulator.
 * 3 -- a reproduced run does not match its record (``ReproduceMismatch``).
 * 128 + N -- stopped by signal N (130 for Ctrl-C, SIGINT; 143 for SIGTERM, what a scheduler sends;
   129 for SIGHUP). All three clean up alike: no ``.incomplete-*`` folder and no temporary folder

@@ -74,17 +74,59 @@ def _refuse_existing(path: Path, what: str) -> None:
 def init_project(folder) -> list[Path]:
     """Write a commented starter config and an empty folder layout into ``folder``.
 
-    Refuses to write over anything that exists.
+    Everything is checked before anything is made. A ``config.yaml`` already in ``folder``, or a file where a
+    folder of the layout goes, is a :class:`~creditsurv.errors.UsageError` (exit 2: the command was pointed at
+    a place it will not write over) and nothing is written. Folders of the layout that exist (a ``data/``
+    holding the user's files) are kept as they are. If the system refuses a write, what this call made is
+    removed again (:class:`~creditsurv.errors.OutputError`).
+
+    Parameters
+    ----------
+    folder : path
+        The project folder, made if missing.
+
+    Returns
+    -------
+    list of pathlib.Path
+        The config written, the data folder and the reports folder.
     """
+    import contextlib
     from importlib import resources
+
+    from .errors import UsageError
 
     folder = Path(folder)
     config = folder / "config.yaml"
-    _refuse_existing(config, "a config")
-    for sub in ("data", "data/scenarios", "reports"):
-        (folder / sub).mkdir(parents=True, exist_ok=True)
+    layout = [folder, folder / "data", folder / "data" / "scenarios", folder / "reports"]
+    if config.exists() or config.is_symlink():
+        raise UsageError(
+            f"{config}: a config already exists there, and creditsurv never overwrites a file; nothing was "
+            "written. Edit that config, or give init a folder without one."
+        )
+    in_the_way = [p for p in (*reversed(folder.parents), *layout) if (p.exists() or p.is_symlink()) and not p.is_dir()]
+    if in_the_way:
+        raise UsageError(
+            f"{in_the_way[0]}: a file where init makes a folder, and creditsurv never overwrites a file; nothing "
+            "was written. Give init another folder."
+        )
     text = resources.files("creditsurv.config").joinpath("starter.yaml").read_text(encoding="utf-8")
-    config.write_text(text, encoding="utf-8")
+    made = []
+    try:
+        for p in (*reversed(folder.parents), *layout):
+            if not p.is_dir():
+                p.mkdir()
+                made.append(p)
+        with open(config, "x", encoding="utf-8") as fh:
+            made.append(config)
+            fh.write(text)
+    except OSError as exc:
+        for p in reversed(made):  # the config first, then the folders this call made, innermost first
+            with contextlib.suppress(OSError):
+                if p == config:
+                    p.unlink()
+                else:
+                    p.rmdir()
+        raise OutputError(f"{exc.filename or folder}: cannot write the starter layout ({exc.strerror or exc}); nothing was left behind") from None
     return [config, folder / "data", folder / "reports"]
 
 

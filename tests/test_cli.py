@@ -63,13 +63,67 @@ def test_usage_error_exits_2(capsys):
     assert exc.value.code == 2
 
 
+def _tree(folder: Path) -> dict[str, bytes | None]:
+    """Every path under ``folder`` with a file's bytes (None for a folder)."""
+    return {str(p.relative_to(folder)): (p.read_bytes() if p.is_file() else None) for p in sorted(folder.rglob("*"))}
+
+
 def test_init_writes_a_valid_starter_config_and_refuses_to_overwrite(tmp_path, capsys):
     assert main(["init", str(tmp_path / "book")]) == 0
     cfg = load_config(tmp_path / "book" / "config.yaml")
     assert cfg.inputs.panel.path == tmp_path / "book" / "data" / "panel.parquet"
     assert (tmp_path / "book" / "reports").is_dir()
-    assert main(["init", str(tmp_path / "book")]) == 1
-    assert "never overwrites" in capsys.readouterr().err
+    before = _tree(tmp_path)
+    # Refusing to write over the user's file because of where the command was pointed is a usage error: exit 2
+    # (the creditsurv.cli docstring), the same as make-demo-data over an existing book.
+    assert main(["init", str(tmp_path / "book")]) == 2
+    assert capsys.readouterr().err.splitlines() == [
+        f"UsageError: {tmp_path / 'book' / 'config.yaml'}: a config already exists there, and creditsurv never "
+        "overwrites a file; nothing was written. Edit that config, or give init a folder without one."
+    ]
+    assert _tree(tmp_path) == before
+
+
+def test_init_over_a_config_makes_no_half_layout(tmp_path, capsys):
+    # A folder holding only the user's config: init must not add data/ or reports/ before refusing.
+    (tmp_path / "book").mkdir()
+    (tmp_path / "book" / "config.yaml").write_text("as_of: 2024-12  # mine\n")
+    assert main(["init", str(tmp_path / "book")]) == 2
+    assert capsys.readouterr().err.startswith("UsageError: ")
+    assert _tree(tmp_path) == {"book": None, "book/config.yaml": b"as_of: 2024-12  # mine\n"}
+
+
+def test_init_with_a_file_where_a_folder_goes_writes_nothing(tmp_path, capsys):
+    (tmp_path / "book").mkdir()
+    (tmp_path / "book" / "reports").write_text("notes\n")
+    assert main(["init", str(tmp_path / "book")]) == 2
+    assert capsys.readouterr().err.startswith(f"UsageError: {tmp_path / 'book' / 'reports'}: a file where init makes a folder")
+    assert _tree(tmp_path) == {"book": None, "book/reports": b"notes\n"}
+
+
+def test_init_refused_by_the_system_midway_leaves_nothing_behind(tmp_path, monkeypatch, capsys):
+    import errno
+    import os
+
+    real_mkdir = Path.mkdir
+
+    def mkdir(self, *args, **kwargs):
+        if self.name == "reports":  # made after book/, book/data/ and book/data/scenarios/
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(self))
+        return real_mkdir(self, *args, **kwargs)
+
+    monkeypatch.setattr(Path, "mkdir", mkdir)
+    assert main(["init", str(tmp_path / "new" / "book")]) == 1
+    assert capsys.readouterr().err.startswith(f"OutputError: {tmp_path / 'new' / 'book' / 'reports'}: cannot write the starter layout")
+    assert _tree(tmp_path) == {}
+
+
+def test_init_into_a_folder_that_holds_data_keeps_it(tmp_path):
+    (tmp_path / "book" / "data").mkdir(parents=True)
+    (tmp_path / "book" / "data" / "panel.parquet").write_bytes(b"the user's")
+    assert main(["init", str(tmp_path / "book")]) == 0
+    assert (tmp_path / "book" / "data" / "panel.parquet").read_bytes() == b"the user's"
+    assert (tmp_path / "book" / "config.yaml").is_file() and (tmp_path / "book" / "data" / "scenarios").is_dir()
 
 
 def test_make_demo_data_refuses_to_overwrite(tmp_path, capsys):
@@ -131,7 +185,7 @@ def test_every_error_class_exits_as_the_cli_docstring_states():
 
     # The rules of the creditsurv.cli docstring: 2 usage or config, 3 a reproduction that does not match
     # its record, 1 every other problem (data, features, model, projection, run, output).
-    usage_or_config = {errors.ConfigError, errors.SimulationError}
+    usage_or_config = {errors.ConfigError, errors.SimulationError, errors.UsageError}
     mismatch = {errors.ReproduceMismatch}
     found = list(_subclasses(errors.CreditsurvError))
     assert set(found) >= usage_or_config | mismatch | {errors.DataError, errors.FeatureError, errors.OutputError}
