@@ -8,8 +8,9 @@ Exit codes (the project's one statement of them; every ``CreditsurvError`` subcl
   evaluated on the data, model, projection, engine (a failed Spark step) and run errors, an output the operating system refuses
   to write (``OutputError``).
 * 2 -- usage or config errors: the command line or the YAML config is wrong (``ConfigError``,
-  argparse's own usage errors), a command pointed at a user's file it would have to overwrite
-  (``UsageError``: ``init`` where a config exists), or bad arguments to the demo simulator.
+  argparse's own usage errors), a command pointed at a user's file it would have to overwrite or
+  asked for a config key that does not exist (``UsageError``: ``init`` where a config exists,
+  ``config-reference --key`` with no such key), or bad arguments to the demo simulator.
 * 3 -- a reproduced run does not match its record (``ReproduceMismatch``).
 * 128 + N -- stopped by signal N (130 for Ctrl-C, SIGINT; 143 for SIGTERM, what a scheduler sends;
   129 for SIGHUP). All three clean up alike: no ``.incomplete-*`` folder and no temporary folder
@@ -152,6 +153,13 @@ def _read_loan_list(path: Path) -> list[str]:
     return [x for x in lines if x != "loan_id"]
 
 
+def _cmd_config_reference(args) -> int:
+    from .pipeline import config_reference
+
+    print(config_reference(args.key).text)
+    return 0
+
+
 def _cmd_init(args) -> int:
     from .pipeline import init_project
 
@@ -190,6 +198,10 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("init", parents=[verbose], help="write a commented starter config and folder layout")
     p.add_argument("dir", type=Path, metavar="DIR")
     p.set_defaults(func=_cmd_init)
+
+    p = sub.add_parser("config-reference", parents=[verbose], help="print every config key: type, default and meaning")
+    p.add_argument("--key", default=None, metavar="PREFIX", help="only the keys that start with PREFIX, e.g. --key staging")
+    p.set_defaults(func=_cmd_config_reference)
 
     p = sub.add_parser("check", parents=[verbose], help="run the data checks on the config's inputs")
     p.add_argument("config", type=Path, metavar="CONFIG")

@@ -130,6 +130,25 @@ def init_project(folder) -> list[Path]:
     return [config, folder / "data", folder / "reports"]
 
 
+def config_reference(key: str | None = None) -> Outcome:
+    """``creditsurv config-reference``: every config key, its type, default and meaning, as a Markdown table.
+
+    Parameters
+    ----------
+    key : str, optional
+        Only the keys that start with it (``staging``, ``model.fit``). A prefix no key has is a
+        :class:`~creditsurv.errors.UsageError` naming the closest key.
+    """
+    from .config import schema_reference
+    from .errors import UsageError, did_you_mean
+
+    table = schema_reference(prefix=key)
+    if key is not None and len(table.splitlines()) <= 2:
+        keys = [row.split("`")[1] for row in schema_reference().splitlines()[2:]]
+        raise UsageError(f"--key {key}: no config key starts with {key!r}{did_you_mean(key, keys)}")
+    return Outcome(table)
+
+
 def check(config, out: Path | None = None) -> Outcome:
     """Run the data checks of a config; optionally write the check table as CSV to ``out``.
 

@@ -264,3 +264,41 @@ def test_reproduce_and_export_number_their_folders_and_say_so_when_one_is_taken(
     first = capsys.readouterr().err.splitlines()[0]
     assert first.startswith(f"RunError: {run.parent / 'exports' / ('export_' + run.name)}: already exists")
     assert first.endswith("another export of this run took the name at the same moment: run the command again for the next one.")
+
+
+# --------------------------------------------------------------------------- config-reference
+
+
+def _documented_rows() -> list[str]:
+    """The config reference table of DEVELOPERS.md (tests/test_docs.py keeps it equal to the schema)."""
+    text = (Path(__file__).resolve().parents[1] / "DEVELOPERS.md").read_text()
+    return text.split("<!-- config-reference:start -->\n", 1)[1].split("\n<!-- config-reference:end -->", 1)[0].splitlines()
+
+
+def test_config_reference_prints_the_documented_table(capsys):
+    assert main(["config-reference"]) == 0
+    assert capsys.readouterr().out.splitlines() == _documented_rows()
+
+
+def test_config_reference_of_one_section(capsys):
+    assert main(["config-reference", "--key", "staging"]) == 0
+    rows = capsys.readouterr().out.splitlines()
+    documented = _documented_rows()
+    assert rows == documented[:2] + [r for r in documented[2:] if r.startswith("| `staging")]
+    assert len(rows) > 5
+
+
+def test_config_reference_of_a_key_that_does_not_exist_is_a_usage_error(capsys):
+    assert main(["config-reference", "--key", "stagng"]) == 2
+    assert capsys.readouterr().err.splitlines() == [
+        "UsageError: --key stagng: no config key starts with 'stagng'; did you mean 'staging'?"
+    ]
+
+
+def test_the_starter_config_points_at_the_reference_a_pip_install_has():
+    # DEVELOPERS.md is not in the installed package; the config-reference command is.
+    import creditsurv.config
+
+    starter = (Path(creditsurv.config.__file__).parent / "starter.yaml").read_text()
+    assert "# creditsurv config-reference (--key staging for one section).\n" in starter
+    assert "DEVELOPERS.md" not in starter
