@@ -17,6 +17,41 @@ def test_help_lists_every_command(capsys):
         assert command in out
 
 
+def _commands(parser) -> dict:
+    """Every command's parser by name. argparse has no public way to list a parser's arguments: its
+    ``_actions`` list is the one place they are."""
+    (commands,) = [a for a in parser._actions if isinstance(a.choices, dict)]
+    return dict(commands.choices)
+
+
+def test_every_command_describes_each_argument_and_gives_an_example():
+    import argparse
+
+    from creditsurv.cli import build_parser
+
+    parser = build_parser()
+    commands = _commands(parser)
+    assert {"make-demo-data", "init", "config-reference", "check", "fit", "run", "reproduce", "compare", "export"} <= set(commands)
+    for name, command in {"creditsurv": parser, **commands}.items():
+        assert "Example: creditsurv " in (command.description or ""), f"{name}: no example in its description"
+        for action in command._actions:
+            shown = action.option_strings or [action.metavar or action.dest]
+            assert action.help and action.help != argparse.SUPPRESS, f"{name} {shown}: no help text"
+
+
+def test_every_example_in_the_help_parses():
+    # Each description's example is a command line the parser accepts, for the command it describes.
+    import shlex
+
+    from creditsurv.cli import build_parser
+
+    parser = build_parser()
+    for name, command in _commands(parser).items():
+        example = shlex.split(command.description.split("Example: ", 1)[1])
+        assert example[:2] == ["creditsurv", name], command.description
+        assert parser.parse_args(example[1:]).command == name
+
+
 def test_config_error_prints_one_line_without_traceback_and_exits_2(tmp_path, capsys):
     bad = tmp_path / "bad.yaml"
     bad.write_text("as_of: 2024-12\nas_off: 2024-11\n")
