@@ -939,22 +939,35 @@ def reproduce(run_dir, out=None, inputs=None, progress=None) -> Outcome:
 
 
 def compare(run_a, run_b, out=None) -> Outcome:
-    """``creditsurv compare``: the ECL walk, stage migration and PD change from run A to run B."""
+    """``creditsurv compare``: the ECL walk, stage migration and PD change from run A to run B.
+
+    Run A is normally the earlier month. A later run A is compared all the same and the text's first line
+    says the walk runs backwards; two runs of one month are said to be so. A change of model, method or
+    package versions between the runs is named with the steps of the walk that hold it
+    (:class:`~creditsurv.runs.RunDifferences`). The movement folder's ``manifest.json`` records both
+    (``direction``, ``model_and_method``).
+    """
     from .runs import SCHEMA_VERSION, RunFolder, compare_run_folders, read_manifest
 
     result = compare_run_folders(run_a, run_b)
     a, b = read_manifest(run_a), read_manifest(run_b)
+    differences = result.differences
     parent = Path(out) if out is not None else Path(run_b).parent
     hint = "It holds the movement between these two runs, made by an earlier compare: remove it, or use --out for another folder."
     with RunFolder(parent, f"movement_{Path(run_a).name}_to_{Path(run_b).name}", hint=hint) as folder:
         for file, table in result.to_tables().items():
             folder.add_table(table, file)
-        final = folder.commit({"schema_version": SCHEMA_VERSION, "kind": "movement", "run_a": str(run_a), "run_b": str(run_b), "as_of_a": a["as_of"], "as_of_b": b["as_of"]})
+        record = {
+            "schema_version": SCHEMA_VERSION, "kind": "movement", "run_a": str(run_a), "run_b": str(run_b),
+            "as_of_a": a["as_of"], "as_of_b": b["as_of"], **differences.to_dict(),
+        }  # fmt: skip
+        final = folder.commit(record)
     walk = result.walk
-    lines = [f"ECL movement {a['as_of']} -> {b['as_of']}"]
+    lines = [differences.headline()]
     for row in walk.itertuples():
         value = row.ecl_balance if row.step in ("opening", "closing") else row.ecl_change
         lines.append(f"  {row.step:<24} {int(row.loans):>8,} loans  {value:>18,.2f}")
+    lines += differences.summary()
     lines.append(f"wrote {final}")
     return Outcome("\n".join(lines), path=final)
 
