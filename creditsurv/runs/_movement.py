@@ -270,16 +270,16 @@ class RunDifferences:
 
     def summary(self) -> list[str]:
         """Lines for the screen: what changed and where the walk holds it, or that nothing did."""
+        names = {"model": "model", "method": "method", "versions": "package versions"}
         lines = []
         if self.changed:
             lines.append(f"model and method changed between the runs: {self.what_changed()}")
             lines.append(f"  not a step of its own: {_not_separable(self.steps)}")
-        elif len(self.not_recorded) < 3:
+        elif told := [shown for part, shown in names.items() if part not in self.not_recorded]:
             fingerprint = f" (model fingerprint {self.fingerprints[0]})" if self.fingerprints[0] else ""
-            told = [w for w in ("model", "method", "package versions") if w.split()[-1] not in self.not_recorded]
             lines.append(f"{_and(told)}: unchanged between the runs{fingerprint}")
         if self.not_recorded:
-            lines.append(f"  not recorded in both runs, so not compared: {_and(self.not_recorded)}")
+            lines.append(f"{_and(names[p] for p in self.not_recorded)}: not recorded in both runs, so not compared")
         return lines
 
     def notes(self) -> dict[str, str]:
