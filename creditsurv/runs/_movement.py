@@ -160,7 +160,7 @@ class MovementResult:
     migration: pd.DataFrame
     pd_change: pd.DataFrame
     by_loan: pd.DataFrame
-    differences: "RunDifferences | None" = None
+    differences: RunDifferences | None = None
 
     def migration_matrix(self, value: str = "loans") -> pd.DataFrame:
         """Wide stage migration matrix.
@@ -297,7 +297,7 @@ class RunDifferences:
                 if step.startswith("stage_transfer_"):
                     out[step] = "includes the change of model and method for these loans (see risk_parameters)"
             if self.ead_changed:
-                ead = "; ".join(m for m in self.method if m.startswith(EAD_KEYS))
+                ead = "; ".join(m for m in self.method if _is_ead_key(m.split(" ", 1)[0]))
                 out["exposure"] = f"includes the change of the EAD settings ({ead})"
         return out
 
@@ -342,6 +342,13 @@ def _short(value) -> str:
     return text if len(text) <= 40 else text[:37] + "..."
 
 
+_ABSENT = object()  # a key one record has and the other lacks
+
+
+def _shown(value) -> str:
+    return "absent" if value is _ABSENT else _short(value)
+
+
 def _flat(value, key: str) -> dict[str, object]:
     """A nested config section as ``{dotted key: value}``; lists of mappings by index (``model.covariates[2].lag``)."""
     if isinstance(value, dict):
@@ -358,7 +365,7 @@ def _flat(value, key: str) -> dict[str, object]:
 
 
 def _method_changes(config_a: dict, config_b: dict) -> list[str]:
-    """``key: a -> b`` for every key of :data:`METHOD_SECTIONS` whose value differs (``absent`` where missing)."""
+    """``key a -> b`` for every key of :data:`METHOD_SECTIONS` whose value differs (``absent`` where missing)."""
     changes = []
     for section in METHOD_SECTIONS:
         flat_a, flat_b = _flat(config_a.get(section), section), _flat(config_b.get(section), section)
@@ -369,11 +376,8 @@ def _method_changes(config_a: dict, config_b: dict) -> list[str]:
     return changes
 
 
-_ABSENT = object()
-
-
-def _shown(value) -> str:
-    return "absent" if value is _ABSENT else _short(value)
+def _is_ead_key(key: str) -> bool:
+    return any(key == k or key.startswith(f"{k}.") for k in EAD_KEYS)
 
 
 def _model_changes(record_a: dict, record_b: dict, fingerprints, inputs_a, inputs_b) -> list[str]:
@@ -451,7 +455,7 @@ def _differences(manifest_a: dict, manifest_b: dict, fingerprints) -> RunDiffere
                 versions.append(f"{name} {versions_a.get(name, 'absent')} -> {versions_b.get(name, 'absent')}")
     else:
         not_recorded.append("versions")
-    ead = any(m.split(" ", 1)[0].startswith(EAD_KEYS) for m in method)
+    ead = any(_is_ead_key(m.split(" ", 1)[0]) for m in method)
     return RunDifferences(
         as_of_a=manifest_a.get("as_of"), as_of_b=manifest_b.get("as_of"), model=tuple(model), method=tuple(method),
         versions=tuple(versions), not_recorded=tuple(not_recorded), fingerprints=tuple(fingerprints), ead_changed=ead,
