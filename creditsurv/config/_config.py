@@ -1000,11 +1000,18 @@ def config_files(cfg: Config) -> list[tuple[str, Path]]:
     return found
 
 
-def schema_reference() -> str:
-    """A Markdown table of every config key, its type, default and meaning."""
+def schema_reference(prefix: str | None = None) -> str:
+    """A Markdown table of every config key, its type, default and meaning.
+
+    Parameters
+    ----------
+    prefix : str, optional
+        Only the keys that start with it (``loss`` for the loss section, ``model.fit.`` for the fit's
+        settings); with none that do, the table has its header rows only.
+    """
     rows = ["| key | type | default | meaning |", "| --- | --- | --- | --- |"]
     for path, tp, default, doc in describe(Config):
-        if path == "source":
+        if path == "source" or (prefix is not None and not path.startswith(prefix)):
             continue
         rows.append(f"| `{path}` | {tp} | {default} | {doc} |")
     return "\n".join(rows)
