@@ -39,6 +39,7 @@ from .errors import (
     SimulationError,
     SingularDesignError,
     StaleRunWarning,
+    UsageError,
 )
 from .loss import EclResult
 from .model import HazardResults
@@ -73,6 +74,7 @@ __all__ = [
     "SimulationError",
     "SingularDesignError",
     "StaleRunWarning",
+    "UsageError",
     "ValidationPack",
     "check",
     "compare",

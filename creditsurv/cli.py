@@ -8,7 +8,9 @@ Exit codes (the project's one statement of them; every ``CreditsurvError`` subcl
   evaluated on the data, model, projection, engine (a failed Spark step) and run errors, an output the operating system refuses
   to write (``OutputError``).
 * 2 -- usage or config errors: the command line or the YAML config is wrong (``ConfigError``,
-  argparse's own usage errors), or bad arguments to the demo simulator.
+  argparse's own usage errors), a command pointed at a user's file it would have to overwrite or
+  asked for a config key that does not exist (``UsageError``: ``init`` where a config exists,
+  ``config-reference --key`` with no such key), or bad arguments to the demo simulator.
 * 3 -- a reproduced run does not match its record (``ReproduceMismatch``).
 * 128 + N -- stopped by signal N (130 for Ctrl-C, SIGINT; 143 for SIGTERM, what a scheduler sends;
   129 for SIGHUP). All three clean up alike: no ``.incomplete-*`` folder and no temporary folder
@@ -151,6 +153,13 @@ def _read_loan_list(path: Path) -> list[str]:
     return [x for x in lines if x != "loan_id"]
 
 
+def _cmd_config_reference(args) -> int:
+    from .pipeline import config_reference
+
+    print(config_reference(args.key).text)
+    return 0
+
+
 def _cmd_init(args) -> int:
     from .pipeline import init_project
 
@@ -159,19 +168,35 @@ def _cmd_init(args) -> int:
     return 0
 
 
+VERBOSE_HELP = "on an error, show the traceback too (before or after the command's name)"
+CONFIG_HELP = "the YAML config, e.g. configs/demo.yaml"
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="creditsurv",
-        description="Lifetime PD and ECL from loan-month panels, with prepayment as a competing risk.",
+        description="Lifetime PD and ECL from loan-month panels, with prepayment as a competing risk. "
+        "Example: creditsurv run configs/demo.yaml",
     )
     parser.add_argument("--version", action="version", version=f"creditsurv {__version__}")
-    parser.add_argument("--verbose", action="store_true", help="show tracebacks and more detail")
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    parser.add_argument("--verbose", action="store_true", help=VERBOSE_HELP)
+    # Every command takes --verbose after its name too. The parent's default is suppressed, so a command that
+    # is not given it leaves the top-level value (set by `creditsurv --verbose COMMAND`) as it is.
+    verbose = argparse.ArgumentParser(add_help=False)
+    verbose.add_argument("--verbose", action="store_true", default=argparse.SUPPRESS, help=VERBOSE_HELP)
+    sub = parser.add_subparsers(
+        dest="command", metavar="COMMAND", required=True, help="one of these; creditsurv COMMAND --help describes it"
+    )
 
-    p = sub.add_parser("make-demo-data", help="simulate a synthetic loan book (fictional lender)")
-    p.add_argument("out_dir", type=Path, metavar="OUT_DIR")
-    p.add_argument("--loans", type=int, default=20_000, help="number of loans (default 20000)")
-    p.add_argument("--seed", type=int, default=20261202, help="random seed (default 20261202)")
+    p = sub.add_parser(
+        "make-demo-data", parents=[verbose], help="simulate a synthetic loan book (fictional lender)",
+        description="Simulate the book of a fictional lender: a loan-month panel, a loan table, macro history, "
+        "three scenarios and the true parameters they were drawn from, written into a folder (files already "
+        "there are never overwritten). Example: creditsurv make-demo-data data_small --loans 2000 --seed 7",
+    )  # fmt: skip
+    p.add_argument("out_dir", type=Path, metavar="OUT_DIR", help="folder to write the book into, made if missing, e.g. data_small")
+    p.add_argument("--loans", type=int, default=20_000, help="number of loans (default 20000), e.g. --loans 2000")
+    p.add_argument("--seed", type=int, default=20261202, help="random seed (default 20261202): the same seed, the same book")
     p.add_argument(
         "--kind", choices=("arrears", "competing"), default="arrears",
         help="arrears: loans move between arrears states, with cures and a refreshed score (the shipped demo); "
@@ -179,43 +204,86 @@ def build_parser() -> argparse.ArgumentParser:
     )  # fmt: skip
     p.set_defaults(func=_cmd_make_demo_data)
 
-    p = sub.add_parser("init", help="write a commented starter config and folder layout")
-    p.add_argument("dir", type=Path, metavar="DIR")
+    p = sub.add_parser(
+        "init", parents=[verbose], help="write a commented starter config and folder layout",
+        description="Write a commented starter config (config.yaml) and the folders it names (data/, "
+        "data/scenarios/, reports/) into a folder. A config already there is never overwritten: the command "
+        "stops (exit 2) and writes nothing. Example: creditsurv init my-book",
+    )  # fmt: skip
+    p.add_argument("dir", type=Path, metavar="DIR", help="the project folder, made if missing, e.g. my-book")
     p.set_defaults(func=_cmd_init)
 
-    p = sub.add_parser("check", help="run the data checks on the config's inputs")
-    p.add_argument("config", type=Path, metavar="CONFIG")
-    p.add_argument("--out", type=Path, default=None, help="also write the check table to this CSV file")
+    p = sub.add_parser(
+        "config-reference", parents=[verbose], help="print every config key: type, default and meaning",
+        description="Print every key of the YAML config with its type, default and meaning, as a Markdown table. "
+        "Example: creditsurv config-reference --key staging",
+    )  # fmt: skip
+    p.add_argument("--key", default=None, metavar="PREFIX", help="only the keys that start with PREFIX, e.g. --key staging or --key model.fit")
+    p.set_defaults(func=_cmd_config_reference)
+
+    p = sub.add_parser(
+        "check", parents=[verbose], help="run the data checks on the config's inputs",
+        description="Run the data checks on the config's inputs and print each check's severity, count and "
+        "examples; exits 1 when a check of severity error fired. Example: creditsurv check configs/demo.yaml "
+        "--out checks.csv",
+    )  # fmt: skip
+    p.add_argument("config", type=Path, metavar="CONFIG", help=CONFIG_HELP)
+    p.add_argument("--out", type=Path, default=None, metavar="FILE",
+                   help="also write the check table to this CSV file, which must not exist, e.g. --out checks.csv")  # fmt: skip
     p.set_defaults(func=_cmd_check)
 
-    p = sub.add_parser("fit", help="fit the hazard model and write its JSON and coefficient table")
-    p.add_argument("config", type=Path, metavar="CONFIG")
-    p.add_argument("--out", type=Path, default=None, help="folder to write into (must not exist)")
+    p = sub.add_parser(
+        "fit", parents=[verbose], help="fit the hazard model and write its JSON and coefficient table",
+        description="Check the data, label the events and fit the hazard model; write the model JSON, its "
+        "coefficient table and the data checks into a new folder. Example: creditsurv fit configs/demo.yaml --out fits",
+    )  # fmt: skip
+    p.add_argument("config", type=Path, metavar="CONFIG", help=CONFIG_HELP)
+    p.add_argument("--out", type=Path, default=None, metavar="DIR",
+                   help="folder to create the fit's folder in (default: outputs.dir of the config, else reports/ beside it)")  # fmt: skip
     p.set_defaults(func=_cmd_fit)
 
-    p = sub.add_parser("run", help="the monthly job: checks, fit, projection, ECL, report")
-    p.add_argument("config", type=Path, metavar="CONFIG")
-    p.add_argument("--as-of", default=None, metavar="YYYY-MM", help="reporting month (overrides the config)")
-    p.add_argument("--out", type=Path, default=None, help="folder that holds run folders")
+    p = sub.add_parser(
+        "run", parents=[verbose], help="the monthly job: checks, fit, projection, ECL, report",
+        description="The monthly job: data checks, events, the hazard model, projection under the scenarios, "
+        "staging, ECL, validation and the report, written as one new run folder. Example: creditsurv run "
+        "configs/demo.yaml --as-of 2024-11",
+    )  # fmt: skip
+    p.add_argument("config", type=Path, metavar="CONFIG", help=CONFIG_HELP)
+    p.add_argument("--as-of", default=None, metavar="YYYY-MM", help="reporting month in place of the config's as_of, e.g. --as-of 2024-11")
+    p.add_argument("--out", type=Path, default=None, metavar="DIR",
+                   help="folder to create the run folder in (default: outputs.dir of the config, else reports/ beside it)")  # fmt: skip
     p.set_defaults(func=_cmd_run)
 
-    p = sub.add_parser("reproduce", help="re-run a past run from its manifest and compare every output")
-    p.add_argument("run_dir", type=Path, metavar="RUN_DIR")
-    p.add_argument("--out", type=Path, default=None, help="folder for the fresh run (default: reproductions/ beside it)")
+    p = sub.add_parser(
+        "reproduce", parents=[verbose], help="re-run a past run from its manifest and compare every output",
+        description="Check a finished run folder against its record, find its inputs by SHA-256, re-run the "
+        "month into a new numbered folder and compare every output; exits 3 when they differ. Example: "
+        "creditsurv reproduce reports/2024-12_1a2b3c4d5e --inputs /data/archive",
+    )  # fmt: skip
+    p.add_argument("run_dir", type=Path, metavar="RUN_DIR", help="a folder written by creditsurv run, e.g. reports/2024-12_1a2b3c4d5e")
+    p.add_argument("--out", type=Path, default=None, metavar="DIR",
+                   help="folder to create the fresh run in (default: reproductions/ beside RUN_DIR)")  # fmt: skip
     p.add_argument(
         "--inputs", type=Path, default=None, metavar="DIR",
         help="where the run's input files are now: any file under DIR whose SHA-256 matches a recorded input is used",
     )
     p.set_defaults(func=_cmd_reproduce)
 
-    p = sub.add_parser("compare", help="ECL movement from run A to run B: walk, stage migration, PD change")
-    p.add_argument("run_a", type=Path, metavar="RUN_A")
-    p.add_argument("run_b", type=Path, metavar="RUN_B")
-    p.add_argument("--out", type=Path, default=None, help="folder for the movement tables (default: beside RUN_B)")
+    p = sub.add_parser(
+        "compare", parents=[verbose], help="ECL movement from run A to run B: walk, stage migration, PD change",
+        description="The ECL walk from run A's total to run B's, the stage migration and the lifetime PD change, "
+        "written into a new movement folder. Run A is normally the earlier month; the first line of the output "
+        "says when it is not, and a change of model, method or package versions between the runs is named. "
+        "Example: creditsurv compare reports/2024-11_0a1b2c3d4e reports/2024-12_1a2b3c4d5e",
+    )  # fmt: skip
+    p.add_argument("run_a", type=Path, metavar="RUN_A", help="the opening run folder, normally last month's, e.g. reports/2024-11_0a1b2c3d4e")
+    p.add_argument("run_b", type=Path, metavar="RUN_B", help="the closing run folder, normally this month's, e.g. reports/2024-12_1a2b3c4d5e")
+    p.add_argument("--out", type=Path, default=None, metavar="DIR",
+                   help="folder to create the movement folder in (default: the folder holding RUN_B)")  # fmt: skip
     p.set_defaults(func=_cmd_compare)
 
     p = sub.add_parser(
-        "export", help="PD term structures of a finished run by any loan attributes, and chosen loans' tables",
+        "export", parents=[verbose], help="PD term structures of a finished run by any loan attributes, and chosen loans' tables",
         description="Recompute a finished run's PD term structures from what the run kept and write them, grouped "
         "by loan attributes, outside the run folder (which is checked against its manifest first and never "
         "changes). Example: creditsurv export reports/2024-12_1a2b3c4d5e --by segment --by band --by segment,vintage "
@@ -246,7 +314,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="also write the loan-by-period tables of these loans, comma separated, e.g. --loans Q000123,Q004567")  # fmt: skip
     p.add_argument("--loans-file", type=Path, default=None, metavar="FILE",
                    help="as --loans, the ids read from a file: one per line, or a CSV with a loan_id column")  # fmt: skip
-    p.add_argument("--out", type=Path, default=None, help="folder to create the export folder in (default: exports/ beside RUN_DIR)")
+    p.add_argument("--out", type=Path, default=None, metavar="DIR",
+                   help="folder to create the export folder in (default: exports/ beside RUN_DIR)")  # fmt: skip
     p.set_defaults(func=_cmd_export)
     return parser
 

@@ -7,6 +7,7 @@ One root class, one subclass per stage::
     ├── DataError            (ValueError)  an input file or column cannot be used
     │   └── DataCheckError                  data checks of severity "error" failed
     ├── SimulationError      (ValueError)  bad arguments to the synthetic book
+    ├── UsageError           (ValueError)  the command line asks for what creditsurv will not do (write over a file)
     ├── FeatureError         (ValueError)  the feature spec cannot be evaluated on the data
     ├── ModelError                          the hazard fit failed
     │   ├── ConvergenceError                Newton did not converge
@@ -36,7 +37,7 @@ __all__ = [
     "ConfigError", "ConvergenceError", "ConvergenceWarning", "CreditsurvError", "CreditsurvWarning",
     "DataCheckError", "DataCheckWarning", "DataError", "EngineError", "FeatureError", "FewEventsWarning", "ModelError",
     "OutputError", "ProjectionError", "ReproduceMismatch", "RunError", "SeparationError", "SimulationError",
-    "SingularDesignError", "StaleRunWarning", "did_you_mean", "problem_list",
+    "SingularDesignError", "StaleRunWarning", "UsageError", "did_you_mean", "problem_list",
 ]  # fmt: skip
 
 
@@ -74,6 +75,13 @@ class DataCheckError(DataError):
 
 class SimulationError(CreditsurvError, ValueError):
     """Bad arguments to the synthetic-book simulator."""
+
+
+class UsageError(CreditsurvError, ValueError):
+    """The command line asks for something creditsurv will not do: write over a user's file (``init`` where a
+    config exists), or print config keys under a prefix no key has. Nothing is written (exit 2)."""
+
+    exit_code = 2
 
 
 class FeatureError(CreditsurvError, ValueError):

@@ -74,18 +74,79 @@ def _refuse_existing(path: Path, what: str) -> None:
 def init_project(folder) -> list[Path]:
     """Write a commented starter config and an empty folder layout into ``folder``.
 
-    Refuses to write over anything that exists.
+    Everything is checked before anything is made. A ``config.yaml`` already in ``folder``, or a file where a
+    folder of the layout goes, is a :class:`~creditsurv.errors.UsageError` (exit 2: the command was pointed at
+    a place it will not write over) and nothing is written. Folders of the layout that exist (a ``data/``
+    holding the user's files) are kept as they are. If the system refuses a write, what this call made is
+    removed again (:class:`~creditsurv.errors.OutputError`).
+
+    Parameters
+    ----------
+    folder : path
+        The project folder, made if missing.
+
+    Returns
+    -------
+    list of pathlib.Path
+        The config written, the data folder and the reports folder.
     """
+    import contextlib
     from importlib import resources
+
+    from .errors import UsageError
 
     folder = Path(folder)
     config = folder / "config.yaml"
-    _refuse_existing(config, "a config")
-    for sub in ("data", "data/scenarios", "reports"):
-        (folder / sub).mkdir(parents=True, exist_ok=True)
+    layout = [folder, folder / "data", folder / "data" / "scenarios", folder / "reports"]
+    if config.exists() or config.is_symlink():
+        raise UsageError(
+            f"{config}: a config already exists there, and creditsurv never overwrites a file; nothing was "
+            "written. Edit that config, or give init a folder without one."
+        )
+    in_the_way = [p for p in (*reversed(folder.parents), *layout) if (p.exists() or p.is_symlink()) and not p.is_dir()]
+    if in_the_way:
+        raise UsageError(
+            f"{in_the_way[0]}: a file where init makes a folder, and creditsurv never overwrites a file; nothing "
+            "was written. Give init another folder."
+        )
     text = resources.files("creditsurv.config").joinpath("starter.yaml").read_text(encoding="utf-8")
-    config.write_text(text, encoding="utf-8")
+    made = []
+    try:
+        for p in (*reversed(folder.parents), *layout):
+            if not p.is_dir():
+                p.mkdir()
+                made.append(p)
+        with open(config, "x", encoding="utf-8") as fh:
+            made.append(config)
+            fh.write(text)
+    except OSError as exc:
+        for p in reversed(made):  # the config first, then the folders this call made, innermost first
+            with contextlib.suppress(OSError):
+                if p == config:
+                    p.unlink()
+                else:
+                    p.rmdir()
+        raise OutputError(f"{exc.filename or folder}: cannot write the starter layout ({exc.strerror or exc}); nothing was left behind") from None
     return [config, folder / "data", folder / "reports"]
+
+
+def config_reference(key: str | None = None) -> Outcome:
+    """``creditsurv config-reference``: every config key, its type, default and meaning, as a Markdown table.
+
+    Parameters
+    ----------
+    key : str, optional
+        Only the keys that start with it (``staging``, ``model.fit``). A prefix no key has is a
+        :class:`~creditsurv.errors.UsageError` naming the closest key.
+    """
+    from .config import schema_reference
+    from .errors import UsageError, did_you_mean
+
+    table = schema_reference(prefix=key)
+    if key is not None and len(table.splitlines()) <= 2:
+        keys = [row.split("`")[1] for row in schema_reference().splitlines()[2:]]
+        raise UsageError(f"--key {key}: no config key starts with {key!r}{did_you_mean(key, keys)}")
+    return Outcome(table)
 
 
 def check(config, out: Path | None = None) -> Outcome:
@@ -453,7 +514,11 @@ def project_book(ctx, engine, model, run, loaded, *, progress=None):
     run.add_table(wide, "segment_pd_matrix.csv")
     run.add_table(result.projection.speeds, "segment_speeds.csv")
     run.add_table(result.projection.speed_multiples, "equivalent_speeds.csv")
+    shown = sorted({c for p in paths.values() for c in p.columns})
     report_tables = {
+        "scenario_paths": scenario_path_table(
+            paths, loaded, ctx.weights, ctx.as_of, shown, forecast_months=cfg.cecl.forecast_months if cecl else None
+        ),
         "loan_ecl": loan_table,
         "arrears_states": states,
         "segment_summary": result.segments,
@@ -507,6 +572,39 @@ def cecl_totals(ctx, balance: float, allowance: float) -> dict:
         "discount": cfg.loss.discount,
         "lifetime_loss_rate": allowance / balance if balance > 0 else float("nan"),
     }
+
+
+SCENARIO_MONTHS_SHOWN = (24, 120)
+"""The report's scenario chart: months of history before the reporting month, and at most this many ahead."""
+
+
+def scenario_path_table(paths: dict, loaded: dict, weights, as_of: int, series, forecast_months=None) -> pd.DataFrame:
+    """The macro paths the run projected with, tidy, for the report: ``scenario``, ``weight``, ``month``,
+    ``series``, ``value`` and ``part`` (``history`` up to the reporting month, ``scenario`` while the scenario
+    file gives the month, then ``extension``), from 24 months before the reporting month to the end of the
+    longest scenario file plus the extension, at most 120 months ahead. On the CECL basis (``forecast_months``)
+    the scenario part ends with the forecast period: the reversion after it is the extension."""
+    from .months import format_month
+
+    rows = []
+    for name, frame in paths.items():
+        given = loaded.get(name)
+        last_given = int(max(given.index)) if given is not None and len(given) else as_of
+        if forecast_months is not None:
+            last_given = min(last_given, as_of + int(forecast_months))
+        end = min(int(frame.index.max()), as_of + SCENARIO_MONTHS_SHOWN[1])
+        window = frame.loc[(frame.index >= as_of - SCENARIO_MONTHS_SHOWN[0]) & (frame.index <= end)]
+        month = window.index.to_numpy(dtype=np.int64)
+        part = np.where(month <= as_of, "history", np.where(month <= last_given, "scenario", "extension"))
+        for col in series:
+            if col in window.columns:
+                rows.append(pd.DataFrame({
+                    "scenario": name, "weight": float(weights[name]), "month": [format_month(int(m)) for m in month],
+                    "series": col, "value": window[col].to_numpy(dtype=float), "part": part,
+                }))  # fmt: skip
+    return pd.concat(rows, ignore_index=True) if rows else pd.DataFrame(
+        columns=["scenario", "weight", "month", "series", "value", "part"]
+    )
 
 
 CUT_COLUMNS = (
@@ -713,14 +811,16 @@ def kill_point(stage: str) -> None:
 
 
 def execute_run(
-    cfg, parent: Path, *, argv=None, name: str | None = None, config_text: str | None = None, progress=None
+    cfg, parent: Path, *, argv=None, name: str | None = None, config_text: str | None = None, progress=None,
+    exists_hint: str | None = None,
 ) -> Outcome:
     """Run the monthly job of ``cfg`` into a new folder under ``parent``.
 
     ``name`` overrides the folder name; the run id stays ``YYYY-MM_<hash of
     config and inputs>``, so a reproduction carries the id of the run it
     reproduces. ``config_text`` is the config text recorded as given (default:
-    the config file's).
+    the config file's). ``exists_hint`` is what the error says to do when the
+    folder exists (default: a run's remedy; ``RunFolder``'s ``hint``).
     """
     import shutil
 
@@ -737,7 +837,7 @@ def execute_run(
         checks = check_and_label(engine)
         manifest = _manifest_start(cfg, argv, "run", config_text)
         folder = name or manifest.run_id
-        with RunFolder(parent, folder) as run:
+        with RunFolder(parent, folder, hint=exists_hint) as run:
             work = run.path / "_work"
             work.mkdir()
             _say(progress, "hazard model")
@@ -768,7 +868,7 @@ def execute_run(
             manifest.model = model.record()
             manifest.data_check_warnings = _fired_warnings(checks)
             manifest.scenario_weights = dict(ctx.weights)
-            manifest.totals = totals
+            manifest.totals = {**totals, "input_rows": input_row_counts(cfg, engine, loaded)}
             _validate_run(cfg, engine, model, result, run, manifest, report_tables, progress)
             if cfg.outputs.prior_run is not None:
                 _say(progress, "movement against the prior run")
@@ -846,6 +946,20 @@ def _validate_run(cfg, engine, model, result, run, manifest, report_tables: dict
         report_tables["backtest"] = pack.tables["backtest_by_month"]
 
 
+def input_row_counts(cfg, engine, loaded: dict) -> dict[str, int]:
+    """Rows read from each input, by config key: the panel, loan and macro tables as the engine opened them (every
+    file of a glob together) and each scenario file."""
+    counts = {}
+    for key, table, source in (("inputs.panel", "panel", cfg.inputs.panel), ("inputs.loans", "loans", cfg.inputs.loans),
+                               ("inputs.macro", "macro", cfg.inputs.macro)):  # fmt: skip
+        if source is not None:
+            counts[f"{key}.path"] = int(engine.frame(f"SELECT count(*) AS n FROM {table}")["n"].iloc[0])
+    for i, scenario in enumerate(cfg.scenarios):
+        if scenario.name in loaded:
+            counts[f"scenarios[{i}].path"] = int(len(loaded[scenario.name]))
+    return counts
+
+
 def _write_report(run, cfg, manifest, tables: dict) -> None:
     """``report.html``: the run's tables and record in one self-contained page.
 
@@ -862,6 +976,8 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
         "model": manifest.model,
         "scenario_weights": manifest.scenario_weights,
         "inputs": manifest.inputs,
+        "input_rows": (manifest.totals or {}).get("input_rows"),
+        "currency": cfg.currency,
         "config_sha256": manifest.config_sha256,
         "seed": manifest.seed,
         "synthetic": cfg.synthetic_data,
@@ -884,6 +1000,26 @@ def _write_report(run, cfg, manifest, tables: dict) -> None:
 # --------------------------------------------------------------------------- reproduce and compare
 
 
+def _run_manifest(run_dir: Path) -> dict:
+    """The manifest of a folder written by ``creditsurv run`` (read against its schema); another folder is refused."""
+    from .runs import read_manifest
+
+    manifest = read_manifest(run_dir)
+    if manifest["kind"] != "run":
+        raise RunError(f"{run_dir}: not a run folder made by creditsurv run (kind {manifest['kind']!r})")
+    return manifest
+
+
+REPRODUCTION_EXISTS_HINT = (
+    "Reproductions are numbered (<run>_repro1, _repro2, ...), so another reproduction of this run took the "
+    "number at the same moment: run the command again for the next one."
+)
+EXPORT_EXISTS_HINT = (
+    "Exports are numbered (export_<run>, export_<run>_2, ...), so another export of this run took the name "
+    "at the same moment: run the command again for the next one."
+)
+
+
 def reproduce(run_dir, out=None, inputs=None, progress=None) -> Outcome:
     """``creditsurv reproduce``: re-run a past run from its record and compare every output.
 
@@ -904,15 +1040,12 @@ def reproduce(run_dir, out=None, inputs=None, progress=None) -> Outcome:
         check_folder_on_disk,
         judge_reproduction,
         locate_inputs,
-        read_manifest,
         reproduction_name,
         stage_inputs,
     )
 
     run_dir = Path(run_dir)
-    manifest = read_manifest(run_dir)
-    if manifest["kind"] != "run":
-        raise RunError(f"{run_dir}: not a run folder made by creditsurv run (kind {manifest['kind']!r})")
+    manifest = _run_manifest(run_dir)
     check_folder_on_disk(run_dir, manifest)
     if manifest.get("schema_version", 1) < 2:
         raise RunError(
@@ -928,28 +1061,42 @@ def reproduce(run_dir, out=None, inputs=None, progress=None) -> Outcome:
         argv = ["creditsurv", "reproduce", str(run_dir)] + (["--inputs", str(inputs)] if inputs is not None else [])
         fresh = execute_run(
             cfg, parent, argv=argv, name=reproduction_name(parent, run_dir.name),
-            config_text=manifest.get("config_as_given"), progress=progress,
+            config_text=manifest.get("config_as_given"), progress=progress, exists_hint=REPRODUCTION_EXISTS_HINT,
         ).path
     return Outcome(judge_reproduction(run_dir, fresh), path=fresh)
 
 
 def compare(run_a, run_b, out=None) -> Outcome:
-    """``creditsurv compare``: the ECL walk, stage migration and PD change from run A to run B."""
+    """``creditsurv compare``: the ECL walk, stage migration and PD change from run A to run B.
+
+    Run A is normally the earlier month. A later run A is compared all the same and the text's first line
+    says the walk runs backwards; two runs of one month are said to be so. A change of model, method or
+    package versions between the runs is named with the steps of the walk that hold it
+    (:class:`~creditsurv.runs.RunDifferences`). The movement folder's ``manifest.json`` records both
+    (``direction``, ``model_and_method``).
+    """
     from .runs import SCHEMA_VERSION, RunFolder, compare_run_folders, read_manifest
 
     _refuse_mixed_bases(run_a, run_b)
     result = compare_run_folders(run_a, run_b)
     a, b = read_manifest(run_a), read_manifest(run_b)
+    differences = result.differences
     parent = Path(out) if out is not None else Path(run_b).parent
-    with RunFolder(parent, f"movement_{Path(run_a).name}_to_{Path(run_b).name}") as folder:
+    hint = "It holds the movement between these two runs, made by an earlier compare: remove it, or use --out for another folder."
+    with RunFolder(parent, f"movement_{Path(run_a).name}_to_{Path(run_b).name}", hint=hint) as folder:
         for file, table in result.to_tables().items():
             folder.add_table(table, file)
-        final = folder.commit({"schema_version": SCHEMA_VERSION, "kind": "movement", "run_a": str(run_a), "run_b": str(run_b), "as_of_a": a["as_of"], "as_of_b": b["as_of"]})
+        record = {
+            "schema_version": SCHEMA_VERSION, "kind": "movement", "run_a": str(run_a), "run_b": str(run_b),
+            "as_of_a": a["as_of"], "as_of_b": b["as_of"], **differences.to_dict(),
+        }  # fmt: skip
+        final = folder.commit(record)
     walk = result.walk
-    lines = [f"ECL movement {a['as_of']} -> {b['as_of']}"]
+    lines = [differences.headline()]
     for row in walk.itertuples():
         value = row.ecl_balance if row.step in ("opening", "closing") else row.ecl_change
         lines.append(f"  {row.step:<24} {int(row.loans):>8,} loans  {value:>18,.2f}")
+    lines += differences.summary()
     lines.append(f"wrote {final}")
     return Outcome("\n".join(lines), path=final)
 
@@ -1045,18 +1192,10 @@ def export(
     )
     from .forecast import remaining_term
     from .loss import STAGING_COLUMNS, expected_credit_loss, loans_in_default
-    from .runs import (
-        RunFolder,
-        accounting_basis,
-        check_folder_on_disk,
-        read_manifest,
-        sha256_file,
-    )
+    from .runs import RunFolder, accounting_basis, check_folder_on_disk, sha256_file
 
     run_dir = Path(run_dir)
-    manifest = read_manifest(run_dir)
-    if manifest["kind"] != "run":
-        raise RunError(f"{run_dir}: not a run folder made by creditsurv run (kind {manifest['kind']!r})")
+    manifest = _run_manifest(run_dir)
     problems = []
     for name, given, allowed in (
         ("--format", [fmt], FORMATS), ("--period", [period], PERIODS),
@@ -1110,7 +1249,7 @@ def export(
         tables = grouped.tables(period=period, weightings=weightings, measures=measures)
         if fmt == "xlsx":
             check_fits_a_sheet(tables)
-    with RunFolder(parent, _export_name(parent, run_dir.name)) as folder:
+    with RunFolder(parent, _export_name(parent, run_dir.name), hint=EXPORT_EXISTS_HINT) as folder:
         loan_rows = {}
         if chosen is not None:
             subset = inputs.book[inputs.book["loan_id"].isin(chosen)]

@@ -39,7 +39,7 @@ def _problems(change, tmp_path) -> list[str]:
     [
         pytest.param(
             lambda d: d.update(as_f="2021-01"),
-            "as_f: unknown key (valid keys: as_of, inputs, windows, name, default_definition, events, arrears, model, "
+            "as_f: unknown key (valid keys: as_of, inputs, windows, name, currency, default_definition, events, arrears, model, "
             "collateral, scenarios, scenario_extension, loss, accounting, cecl, staging, segments, validation, outputs, engine, "
             "duckdb, spark, checks, seed, synthetic_data); did you mean 'as_of'?",
             id="unknown-top-level",

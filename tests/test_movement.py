@@ -333,3 +333,156 @@ def test_a_run_without_configured_scenarios_uses_its_single_scenario(tmp_path):
     run_b = _write_run(tmp_path, "b", _book([loan[:2] + (150.0, {"central": 3.0}, {"central": 7.0})], one), {})
     # 2 -> 3 with EAD 100 -> 150: all exposure, 2 x 0.5 = 1.
     _only(compare_run_folders(run_a, run_b), {"exposure": 1.0})
+
+
+# --------------------------------------------------------------------------- what the records say differs
+
+# A run record as far as compare reads it: the month, the model record, the resolved config's method sections and
+# the package versions (the keys of creditsurv.runs.RunManifest).
+RECORD = {
+    "as_of": "2024-11",
+    "model": {"kind": "multinomial", "terms": 10, "n_rows": 54_385, "data_fingerprint": "d1", "loglik": -3487.9},
+    "config_resolved": {
+        "windows": {"development": {"start": "2016-01", "end": "2022-12"}},
+        "model": {"kind": "multinomial", "ridge": 0.0, "covariates": [{"name": "dti", "lag": 0}]},
+        "staging": {"sicr_relative": 2.0},
+        "loss": {"exposure": {"onset_months": 3}, "lgd": {"kind": "collateral"}},
+        "outputs": {"loan_period_tables": False},
+    },
+    "versions": {"creditsurv": "0.2.0", "numpy": "2.4.6"},
+}
+MODEL_JSON = {"creditsurv_version": "0.2.0", "kind": "multinomial", "coefficients": {"default": {"intercept": -6.0}}}
+
+
+def _record(**changes):
+    record = json.loads(json.dumps(RECORD))
+    for dotted, value in changes.items():
+        *path, last = dotted.split("__")
+        target = record
+        for part in path:
+            target = target[part]
+        target[last] = value
+    return record
+
+
+def _write_recorded_run(parent, name, loans, weights, record, model_json=None):
+    scenarios = [{"name": s, "weight": w, "path": f"scenarios/{s}.csv"} for s, w in weights.items()]
+    record = {**record, "run_id": name, "config_resolved": {**record["config_resolved"], "scenarios": scenarios}}
+    with RunFolder(parent, name) as run:
+        run.add_table(loans, "loan_ecl.parquet")
+        if model_json is not None:
+            run.add_file("hazard_model.json").write_text(json.dumps(model_json))
+        return run.commit(record)
+
+
+def _fingerprint(model_json):
+    # The definition in RunDifferences: SHA-256 of the canonical JSON (sorted keys, no spaces) without the
+    # version that wrote the file, 12 hex digits; computed here with hashlib.
+    import hashlib
+
+    data = {k: v for k, v in model_json.items() if k != "creditsurv_version"}
+    return hashlib.sha256(json.dumps(data, sort_keys=True, separators=(",", ":")).encode()).hexdigest()[:12]
+
+
+# L1 again in B, 12-month ECL up by half: reported 3 -> 4.5, all of it risk parameters (EAD unchanged).
+L1_LATER = ("L1", 1, 100.0, {"base": 3.0, "down": 6.0}, {"base": 9.0, "down": 11.0})
+
+
+def _pair(tmp_path, record_a, record_b, model_a=MODEL_JSON, model_b=MODEL_JSON):
+    run_a = _write_recorded_run(tmp_path, "a", _book([L1], EVEN), EVEN, record_a, model_a)
+    run_b = _write_recorded_run(tmp_path, "b", _book([L1_LATER], EVEN), EVEN, record_b, model_b)
+    return compare_run_folders(run_a, run_b)
+
+
+def _notes(result) -> dict:
+    walk = result.walk.set_index("step")
+    return {step: note for step, note in walk["note"].items() if note}
+
+
+def test_the_same_model_method_and_versions_say_nothing_changed(tmp_path):
+    r = _pair(tmp_path, RECORD, _record(as_of="2024-12"))
+    d = r.differences
+    assert (d.direction, d.changed, d.model, d.method, d.versions, d.not_recorded) == ("forward", False, (), (), (), ())
+    assert d.headline() == "ECL movement 2024-11 -> 2024-12"
+    assert d.summary() == [f"model, method and package versions: unchanged between the runs (model fingerprint {_fingerprint(MODEL_JSON)})"]
+    assert _notes(r) == {}
+    _only(r, {"risk_parameters": 1.5})  # 4.5 - 3
+
+
+def test_a_later_run_a_is_compared_backwards_and_says_so(tmp_path):
+    r = _pair(tmp_path, _record(as_of="2024-12"), RECORD)
+    assert r.differences.direction == "backwards"
+    assert r.differences.headline().startswith(
+        "ECL movement 2024-12 -> 2024-11: comparing backwards, from a later month to an earlier one"
+    )
+    assert _notes(r) == {"opening": r.differences.headline().split(": ", 1)[1]}
+    assert r.differences.to_dict()["direction"] == "backwards"
+    _only(r, {"risk_parameters": 1.5})  # the walk itself is the same: B's ECL less A's
+
+
+def test_two_runs_of_one_month_are_said_to_be(tmp_path):
+    r = _pair(tmp_path, RECORD, RECORD)
+    assert r.differences.direction == "same_month"
+    assert "both runs are of the same month" in r.differences.headline()
+
+
+def test_a_change_of_model_method_and_version_is_named_where_the_walk_holds_it(tmp_path):
+    model_b = {**MODEL_JSON, "coefficients": {"default": {"intercept": -5.5}}}
+    record_b = _record(as_of="2024-12", model__data_fingerprint="d2", model__n_rows=60_000, versions__creditsurv="0.3.0")
+    record_b["config_resolved"]["model"]["ridge"] = 1.0
+    record_b["config_resolved"]["windows"]["development"]["end"] = "2023-06"
+    record_b["config_resolved"]["outputs"]["loan_period_tables"] = True  # not a method section: not named
+    r = _pair(tmp_path, RECORD, record_b, model_b=model_b)
+    d = r.differences
+    assert d.model == (
+        f"coefficients changed (fingerprint {_fingerprint(MODEL_JSON)} -> {_fingerprint(model_b)})",
+        "fitted on other loan-months (54,385 -> 60,000)",
+    )
+    assert d.method == ('windows.development.end "2022-12" -> "2023-06"', "model.ridge 0.0 -> 1.0")
+    assert d.versions == ("creditsurv 0.2.0 -> 0.3.0",)
+    summary = "\n".join(d.summary())
+    assert summary.startswith("model and method changed between the runs: model: coefficients changed")
+    assert "package versions: creditsurv 0.2.0 -> 0.3.0" in summary
+    assert "cannot separate the change" in summary and "inside risk_parameters for loans in the same stage" in summary
+    notes = _notes(r)
+    assert set(notes) == {"risk_parameters"}  # no stage transfer has loans; the EAD settings did not change
+    assert "model.ridge 0.0 -> 1.0" in notes["risk_parameters"] and "creditsurv 0.2.0 -> 0.3.0" in notes["risk_parameters"]
+    recorded = d.to_dict()["model_and_method"]
+    assert recorded["changed"] and recorded["method"] == list(d.method) and "risk_parameters" in recorded["inside_steps"]
+    # The steps and their reconciliation are those of the loan tables alone.
+    pd.testing.assert_frame_equal(r.walk.drop(columns="note"), movement(_book([L1], EVEN), _book([L1_LATER], EVEN), EVEN, EVEN).walk.drop(columns="note"))
+
+
+def test_a_model_file_written_by_another_version_is_the_same_model(tmp_path):
+    r = _pair(tmp_path, RECORD, _record(as_of="2024-12", versions__creditsurv="0.3.0"), model_b={**MODEL_JSON, "creditsurv_version": "0.3.0"})
+    assert r.differences.model == ()
+    assert r.differences.versions == ("creditsurv 0.2.0 -> 0.3.0",)
+
+
+def test_a_change_of_the_ead_settings_is_inside_the_exposure_step_too(tmp_path):
+    record_b = _record(as_of="2024-12")
+    record_b["config_resolved"]["loss"]["exposure"]["onset_months"] = 2
+    r = _pair(tmp_path, RECORD, record_b)
+    assert r.differences.method == ("loss.exposure.onset_months 3 -> 2",)
+    assert r.differences.steps[:2] == ("exposure", "risk_parameters")
+    assert _notes(r)["exposure"] == "includes the change of the EAD settings (loss.exposure.onset_months 3 -> 2)"
+
+
+def test_a_change_of_hazard_source_and_a_stage_transfer_carry_the_note(tmp_path):
+    benchmark = {"source": "BenchmarkCurves", "psa": 100.0, "sda": 150.0}
+    moved = ("L1", 2, 100.0, {"base": 3.0, "down": 6.0}, {"base": 9.0, "down": 11.0})
+    run_a = _write_recorded_run(tmp_path, "a", _book([L1], EVEN), EVEN, RECORD, MODEL_JSON)
+    run_b = _write_recorded_run(tmp_path, "b", _book([moved], EVEN), EVEN, _record(as_of="2024-12", model=benchmark))
+    r = compare_run_folders(run_a, run_b)
+    assert r.differences.model[0] == 'kind "multinomial" -> "BenchmarkCurves"'
+    assert f"coefficients changed (fingerprint {_fingerprint(MODEL_JSON)} -> none)" in r.differences.model
+    assert 'psa absent -> 100.0' in r.differences.model and 'sda absent -> 150.0' in r.differences.model
+    assert set(_notes(r)) == {"risk_parameters", "stage_transfer_1_to_2"}
+
+
+def test_records_without_model_or_versions_say_what_was_not_compared(tmp_path):
+    bare = {"as_of": "2024-11", "config_resolved": {}}
+    r = _pair(tmp_path, bare, {**bare, "as_of": "2024-12"}, model_a=None, model_b=None)
+    assert r.differences.not_recorded == ("model", "method", "versions")
+    assert not r.differences.changed
+    assert r.differences.summary() == ["model, method and package versions: not recorded in both runs, so not compared"]

@@ -252,6 +252,25 @@ def test_two_month_refresh_walk_reconciles_and_the_sicr_history_runs_on(small_bo
         assert (outcome.path / name).exists()
     # the run with outputs.prior_run wrote the same walk itself
     pd.testing.assert_frame_equal(pd.read_csv(this / "movement_walk.csv"), walk)
+    # November then December, one config: the months in order and nothing changed but the data
+    lines = outcome.text.splitlines()
+    assert lines[0] == "ECL movement 2024-11 -> 2024-12"
+    assert "model, method and package versions: unchanged between the runs (model fingerprint " in outcome.text
+    movement_record = json.loads((outcome.path / "manifest.json").read_text())
+    assert movement_record["direction"] == "forward" and movement_record["model_and_method"]["changed"] is False
+
+    # December against November: compared all the same, backwards, and said so first; the walk's steps are the
+    # forward walk's with the sign turned for the loans in both runs (closed and new swap places).
+    backwards = creditsurv.compare(this, prev)
+    assert backwards.text.splitlines()[0].startswith(
+        "ECL movement 2024-12 -> 2024-11: comparing backwards, from a later month to an earlier one"
+    )
+    assert json.loads((backwards.path / "manifest.json").read_text())["direction"] == "backwards"
+    back = pd.read_csv(backwards.path / "movement_walk.csv").set_index("step")
+    assert back.loc["opening", "note"].startswith("comparing backwards")
+    fwd = walk.set_index("step")
+    assert back.loc["new_loans", "ecl_change"] == pytest.approx(-fwd.loc["closed_or_repaid", "ecl_change"], rel=1e-12)
+    assert back.loc["closing", "ecl_balance"] == pytest.approx(fwd.loc["opening", "ecl_balance"], rel=1e-12)
 
     totals = json.loads((this / "manifest.json").read_text())["totals"]
     assert totals["sicr_history"] == f"SICR history from the prior run {prev}"
@@ -268,6 +287,30 @@ def test_two_month_refresh_walk_reconciles_and_the_sicr_history_runs_on(small_bo
     assert {(int(k[0]), k[1]): int(v) for k, v in counts.items()} == {
         (int(st), r): n for st, by in totals["stage_reasons"].items() for r, n in by.items()
     }
+
+
+def test_compare_names_a_change_of_model_and_where_the_walk_holds_it(demo_run, small_book, tmp_path):
+    # The same book and month with a ridge penalty: another model (coefficients) by another method (model.ridge).
+    ridge = creditsurv.run(_config(small_book, tmp_path, ridge=5.0), argv=["creditsurv", "run"]).path
+    outcome = creditsurv.compare(demo_run, ridge, out=tmp_path / "movement")
+    lines = outcome.text.splitlines()
+    assert lines[0].startswith("ECL movement 2024-12 -> 2024-12: both runs are of the same month")
+    (changed,) = [line for line in lines if line.startswith("model and method changed between the runs: ")]
+    assert "model: coefficients changed (fingerprint " in changed
+    assert "method: model.ridge 0.0 -> 5.0" in changed and "package versions" not in changed
+    assert "it is inside risk_parameters for loans in the same stage" in outcome.text
+
+    walk = pd.read_csv(outcome.path / "movement_walk.csv").set_index("step")
+    assert "model.ridge 0.0 -> 5.0" in walk.loc["risk_parameters", "note"]
+    # It still reconciles: the steps sum to the move between the loan tables' totals.
+    a = pd.read_parquet(demo_run / "loan_ecl.parquet")["ecl_reported"].sum()
+    b = pd.read_parquet(ridge / "loan_ecl.parquet")["ecl_reported"].sum()
+    steps = walk.drop(index=["opening", "closing"])["ecl_change"]
+    assert steps.sum() == pytest.approx(b - a, rel=1e-9)
+    assert abs(walk.loc["risk_parameters", "ecl_change"]) > 0
+    record = json.loads((outcome.path / "manifest.json").read_text())["model_and_method"]
+    assert record["changed"] and record["method"] == ["model.ridge 0.0 -> 5.0"]
+    assert record["model_fingerprints"]["run_a"] != record["model_fingerprints"]["run_b"]
 
 
 def test_report_is_self_contained_and_shows_the_runs_numbers(demo_run):

@@ -721,3 +721,19 @@ def test_a_loan_without_recent_panel_values_is_named():
     history = pd.DataFrame({"loan_id": ["z"], "month_idx": [AS_OF], "months_in_arrears": [1.0], "score_now": [700.0]})
     with pytest.raises(ProjectionError, match=r"panel column 'months_in_arrears': no value in the last 1 month\(s\) for 1 loan \(a\)"):
         project_loans(with_panel_history(loans, history, source, AS_OF), source, {"base": _history()}, as_of_idx=AS_OF)
+
+
+def test_speed_curves_end_at_the_last_age_with_loans():
+    # ages with no loan exposed have no rate: the pooled curve stops there instead of dropping to zero
+    from creditsurv.forecast import segment_speeds
+
+    speeds = pd.DataFrame({
+        "segment": "A", "band": "all", "scenario": WEIGHTED, "loan_age": [1, 2, 3, 4],
+        "default_exposure": [100.0, 90.0, 0.0, 0.0], "defaulted": [1.0, 0.9, 0.0, 0.0],
+        "prepay_exposure": [99.0, 89.0, 80.0, 0.0], "prepaid": [2.0, 1.8, 1.6, 0.0],
+    })  # fmt: skip
+    by_age, _ = segment_speeds(speeds)
+    assert by_age["age"].tolist() == [1, 2, 3]
+    assert by_age["mdr"].iloc[:2].tolist() == pytest.approx([0.01, 0.01], rel=1e-12)  # defaulted / exposure
+    assert np.isnan(by_age["mdr"].iloc[2])  # nothing exposed to default at age 3: no rate, not 0
+    assert by_age["smm"].iloc[2] == pytest.approx(1.6 / 80.0, rel=1e-12)

@@ -28,6 +28,7 @@ SECTION_IDS = [
     "model",
     "hazard-curves",
     "cumulative-incidence",
+    "scenarios",
     "pd-term-structure",
     "ecl",
     "speeds",
@@ -292,6 +293,7 @@ def tables():
                 "ecl_balance": [10_000.0, 11_500.0, 11_199.5, 11_199.5],
             }
         ),
+        "scenario_paths": _scenario_paths(),
         "stage_migration": pd.DataFrame(
             {
                 "stage_from": ["1", "1", "2", "new"],
@@ -419,8 +421,10 @@ def test_nothing_given_every_section_says_not_produced():
     assert c.errors == [] and c.imgs == []
     assert [s for s in c.ids if s in SECTION_IDS] == SECTION_IDS
     for sid in SECTION_IDS:
-        if sid != "cautions":
+        if sid not in ("cautions", "movement"):
             assert NOT_PRODUCED in c.text(sid), sid
+    # no previous run: the movement section says why there is none and how to get one
+    assert "outputs.prior_run is not set" in c.text("movement") and "creditsurv compare" in c.text("movement")
 
 
 def test_missing_tables_say_not_produced(tables, meta):
@@ -442,7 +446,7 @@ def test_missing_tables_say_not_produced(tables, meta):
     assert "segment_summary" not in c.text("ecl")  # the table that was given is shown, not reported absent
     assert c.text("validation").count(NOT_PRODUCED) == 4
     assert "Coefficient changes" not in c.text("validation")
-    assert c.text("movement").count(NOT_PRODUCED) == 2
+    assert "outputs.prior_run is not set" in c.text("movement")  # no movement tables: the reason, not two absences
     assert NOT_PRODUCED in c.text("hazard-curves")
     assert NOT_PRODUCED not in c.text("cumulative-incidence")
 
@@ -541,3 +545,71 @@ def test_expected_drift_is_explained_beside_the_stability_table(meta):
     assert "expected drift" in text and "no signal about the model" in text
     calm = pd.DataFrame({"variable": ["dti"], "psi": [0.01], "verdict": ["pass"]})
     assert "no signal about the model" not in parse(render_report({"stability": calm}, meta)).text("validation")
+
+
+def _scenario_paths() -> pd.DataFrame:
+    months = [f"2021-{m:02d}" for m in range(1, 13)] + [f"2022-{m:02d}" for m in range(1, 13)]
+    rows = []
+    for name, weight, shift in (("base", 0.6, 0.0), ("downside", 0.4, 1.5)):
+        for i, month in enumerate(months):
+            part = "history" if i < 12 else ("scenario" if i < 20 else "extension")
+            rows.append({"scenario": name, "weight": weight, "month": month, "series": "unemployment_rate",
+                         "value": 4.0 + (shift * (i - 11) / 12 if i >= 12 else 0.0), "part": part})  # fmt: skip
+    return pd.DataFrame(rows)
+
+
+def test_scenario_paths_are_drawn_with_their_weights(tables, meta):
+    c = parse(render_report(tables, meta))
+    text = c.text("scenarios")
+    assert NOT_PRODUCED not in text and "base 60%" in text and "downside 40%" in text
+    assert "faded: its extension" in text
+    without = {k: v for k, v in tables.items() if k != "scenario_paths"}
+    assert NOT_PRODUCED in parse(render_report(without, meta)).text("scenarios")
+
+
+def test_every_amount_carries_the_reporting_currency(tables, meta):
+    c = parse(render_report(tables, {**meta, "currency": "GBP"}))
+    summary = c.text("summary")
+    total = tables["loan_ecl"]["ecl_reported"].sum()
+    assert f"GBP {total:,.2f}" in summary  # the headline amount, written with its currency
+    doc = render_report(tables, {**meta, "currency": "GBP"})
+    assert "EAD (GBP)" in doc and "Reported ECL (GBP)" in doc  # table headers: the currency once per column
+    assert "Amounts in GBP" in doc
+    # in a table the cells of an amount column hold the number alone (its header names the currency); a label
+    # and value pair (the headline numbers) carries the code beside the number
+    assert not re.search(r'<td class="num">GBP ', doc) and re.search(r'<td class="num">[\d,]+\.\d\d</td>', doc)
+    # without a currency in the config the page says so, and amounts are plain numbers
+    plain = re.sub(r"<img[^>]*>", "", render_report(tables, meta))  # (base64 images may hold any three letters)
+    assert "set <code>currency</code>" in plain and "GBP" not in plain
+    # the currency of one call does not leak into the next
+    assert fmt_money(1234.5) == "1,234.50"
+
+
+def test_the_config_takes_a_currency_code_only():
+    from conftest import demo_config_data
+
+    from creditsurv.config import config_from_dict
+    from creditsurv.errors import ConfigError
+
+    data = demo_config_data("book", "reports")
+    assert config_from_dict({**data, "currency": "USD"}).currency == "USD"
+    with pytest.raises(ConfigError, match="currency.*three-letter currency code"):
+        config_from_dict({**data, "currency": "dollars"})
+
+
+def test_run_record_shows_rows_read_and_created(tables, meta):
+    rows = {"inputs.panel.path": 250_000}
+    inputs = [{"input": "inputs.panel.path", "path": "data/panel.parquet", "bytes": 1024, "sha256": "ab" * 32}]
+    c = parse(render_report(tables, {**meta, "inputs": inputs, "input_rows": rows}))
+    assert "250,000" in c.text("run-record")
+    unset = parse(render_report(tables, {k: v for k, v in meta.items() if k != "created"}))
+    assert "recorded in manifest.json" in unset.text("summary")
+    assert "Seed11" in c.text("run-record").replace(" ", "")  # a seed, not a count: no thousands separator
+
+
+def test_calibration_by_band_is_labelled_by_band(tables, meta):
+    cal = pd.DataFrame({"group": ["(-inf, 640)", "[640, 700)"], "n": [10, 20], "pd_mean": [0.05, 0.01],
+                        "observed_rate": [0.1, 0.0], "expected": [0.5, 0.2], "actual": [1, 0]})  # fmt: skip
+    m = {**meta, "calibration": {**meta["calibration"], "grouping": "grades of credit_score"}}
+    c = parse(render_report({**tables, "calibration": cal}, m))
+    assert "Band of credit_score" in c.text("validation") and "[640, 700)" in c.text("validation")

@@ -50,8 +50,21 @@ def test_exception_mid_run_leaves_no_folder_and_existing_runs_untouched(tmp_path
 def test_a_run_never_overwrites_an_existing_one(tmp_path):
     with RunFolder(tmp_path, "same") as run:
         run.commit({})
-    with pytest.raises(RunError, match="never overwrites"):
+    with pytest.raises(RunError, match="never overwrites") as info:
         RunFolder(tmp_path, "same")
+    # By default the remedy of a run or a fit, whose folder name is the hash of its month, config and inputs.
+    assert str(info.value).startswith(f"{tmp_path / 'same'}: already exists")
+    assert str(info.value).endswith("use --out for another folder, or change the config or inputs.")
+
+
+def test_the_caller_names_its_own_remedy_when_the_folder_exists(tmp_path):
+    (tmp_path / "taken").mkdir()
+    with pytest.raises(RunError) as info:
+        RunFolder(tmp_path, "taken", hint="Remove it and try again.")
+    assert str(info.value) == (
+        f"{tmp_path / 'taken'}: already exists, and creditsurv never overwrites an output folder. Remove it and try again."
+    )
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["taken"]
 
 
 def test_parquet_writing_is_byte_deterministic(tmp_path):

@@ -61,6 +61,12 @@ def _increasing(values) -> str | None:
     return None
 
 
+def _currency_code(value) -> str | None:
+    if value is not None and not (len(value) == 3 and value.isascii() and value.isalpha() and value.isupper()):
+        return f"must be a three-letter currency code in capitals (ISO 4217), e.g. GBP, USD or EUR; got {value!r}"
+    return None
+
+
 # --------------------------------------------------------------------------- inputs
 
 InputFormat = Literal["auto", "parquet", "csv", "duckdb"]
@@ -845,6 +851,10 @@ class Config:
     inputs: Inputs = field(metadata=_doc("where the data are and how columns map"))
     windows: Windows = field(metadata=_doc("development and out-of-time windows"))
     name: str = field(default="creditsurv", metadata=_doc("a label for the run"))
+    currency: str | None = field(
+        default=None,
+        metadata=_doc("reporting currency of every amount (ISO 4217 code, e.g. GBP), shown beside each amount in the report", check=_currency_code),
+    )
     default_definition: DefaultDefinition = field(default_factory=DefaultDefinition, metadata=_doc("default definition"))
     events: Events = field(default_factory=Events, metadata=_doc("closure rules"))
     arrears: Arrears = field(default_factory=Arrears, metadata=_doc("arrears states before default"))
@@ -1087,11 +1097,18 @@ def config_files(cfg: Config) -> list[tuple[str, Path]]:
     return found
 
 
-def schema_reference() -> str:
-    """A Markdown table of every config key, its type, default and meaning."""
+def schema_reference(prefix: str | None = None) -> str:
+    """A Markdown table of every config key, its type, default and meaning.
+
+    Parameters
+    ----------
+    prefix : str, optional
+        Only the keys that start with it (``loss`` for the loss section, ``model.fit.`` for the fit's
+        settings); with none that do, the table has its header rows only.
+    """
     rows = ["| key | type | default | meaning |", "| --- | --- | --- | --- |"]
     for path, tp, default, doc in describe(Config):
-        if path == "source":
+        if path == "source" or (prefix is not None and not path.startswith(prefix)):
             continue
         rows.append(f"| `{path}` | {tp} | {default} | {doc} |")
     return "\n".join(rows)

@@ -1381,17 +1381,20 @@ def segment_speeds(speeds: pd.DataFrame, scenario: str = WEIGHTED) -> tuple[pd.D
     sub = speeds[speeds["scenario"] == scenario]
     cols = ["default_exposure", "defaulted", "prepay_exposure", "prepaid"]
     g = sub.groupby(["segment", "loan_age"], sort=True, observed=True)[cols].sum().reset_index()
-    g["mdr"] = np.where(g["default_exposure"] > 0, g["defaulted"] / g["default_exposure"].where(g["default_exposure"] > 0, 1.0), 0.0)
-    g["smm"] = np.where(g["prepay_exposure"] > 0, g["prepaid"] / g["prepay_exposure"].where(g["prepay_exposure"] > 0, 1.0), 0.0)
+    # an age with no loans exposed has no rate (NaN, not 0): a curve ends at the last age with loans
+    g = g[(g["default_exposure"] > 0) | (g["prepay_exposure"] > 0)].reset_index(drop=True)
+    g["mdr"] = np.where(g["default_exposure"] > 0, g["defaulted"] / g["default_exposure"].where(g["default_exposure"] > 0, 1.0), np.nan)
+    g["smm"] = np.where(g["prepay_exposure"] > 0, g["prepaid"] / g["prepay_exposure"].where(g["prepay_exposure"] > 0, 1.0), np.nan)
     g["cdr"] = mdr_to_cdr(g["mdr"].to_numpy())
     g["cpr"] = smm_to_cpr(g["smm"].to_numpy())
     rows = []
     for seg, d in g.groupby("segment", sort=True, observed=True):
+        p, q = d[d["prepay_exposure"] > 0], d[d["default_exposure"] > 0]
         rows.append(
             {
                 "segment": seg,
-                "psa": equivalent_psa(d["loan_age"].to_numpy(), d["cpr"].to_numpy(), d["prepay_exposure"].to_numpy()),
-                "sda": equivalent_sda(d["loan_age"].to_numpy(), d["cdr"].to_numpy(), d["default_exposure"].to_numpy()),
+                "psa": equivalent_psa(p["loan_age"].to_numpy(), p["cpr"].to_numpy(), p["prepay_exposure"].to_numpy()),
+                "sda": equivalent_sda(q["loan_age"].to_numpy(), q["cdr"].to_numpy(), q["default_exposure"].to_numpy()),
             }
         )
     return g.rename(columns={"loan_age": "age"}), pd.DataFrame(rows, columns=["segment", "psa", "sda"])

@@ -20,6 +20,7 @@ Sections, in order, each an HTML ``<section>`` with the ``id`` given:
 ``model``                   ``coefficients``, ``meta["model"]``
 ``hazard-curves``           ``hazard_by_age``
 ``cumulative-incidence``    ``incidence_by_vintage``, ``states_by_vintage``
+``scenarios``               ``scenario_paths``, ``meta["scenario_weights"]``
 ``pd-term-structure``       ``segment_pd_table``
 ``ecl``                     ``loan_ecl``, ``segment_summary``
 ``speeds``                  ``segment_speeds``, ``equivalent_speeds``
@@ -31,7 +32,8 @@ Sections, in order, each an HTML ``<section>`` with the ``id`` given:
 ==========================  ====================================================
 
 The columns each table needs are in :data:`REQUIRED_COLUMNS`; other columns
-are ignored unless a section says otherwise. Money is in the run's currency.
+are ignored unless a section says otherwise. Money is in the run's currency (``meta["currency"]``,
+the config's ``currency``), written beside every amount.
 
 On the CECL basis (``meta["accounting"]`` ``cecl``, with ``meta["cecl"]``: the
 forecast and reversion periods, the discounting and the lifetime loss rate) the
@@ -44,6 +46,7 @@ that the IFRS 9 staging tables are not produced. The IFRS 9 report is unchanged.
 from __future__ import annotations
 
 import base64
+import contextvars
 import html
 import io
 import math
@@ -87,6 +90,7 @@ REQUIRED_COLUMNS: dict[str, tuple[str, ...]] = {
     "stage_migration": (),
     "coefficient_changes": (),
     "verdicts": ("area", "item", "value", "verdict", "sentence"),
+    "scenario_paths": ("scenario", "weight", "month", "series", "value", "part"),
 }
 
 # Other names in use for the same column (the first name is the one the report uses).
@@ -117,9 +121,25 @@ def _unsign_zero(text: str) -> str:
     return text
 
 
-def fmt_money(x) -> str:
-    """Amount with thousands separators and 2 decimals: ``1,234,567.89``."""
+_CURRENCY: contextvars.ContextVar[str | None] = contextvars.ContextVar("report_currency", default=None)
+"""The reporting currency of the page being rendered (the config's ``currency``), set by :func:`render_report`."""
+
+
+def _amount(x) -> str:
     return "n/a" if _is_missing(x) else _unsign_zero(f"{float(x):,.2f}")
+
+
+def fmt_money(x) -> str:
+    """Amount with thousands separators and 2 decimals, after the reporting currency: ``GBP 1,234,567.89``.
+
+    In a table the currency goes into the column's header once and the cells show the number alone."""
+    text = _amount(x)
+    currency = _CURRENCY.get()
+    return f"{currency} {text}" if currency and text != "n/a" else text
+
+
+def _currency_label() -> str:
+    return _CURRENCY.get() or "currency"
 
 
 def fmt_int(x) -> str:
@@ -289,6 +309,9 @@ def _table(
     n = len(df)
     shown = df.iloc[:max_rows]
     align = [' class="num"' if fmt in _NUMERIC_FORMATS else "" for _, _, fmt in columns]
+    currency = _CURRENCY.get()
+    if currency:  # amounts: the currency once in the header, the numbers alone in the cells
+        columns = [(c, f"{h} ({currency})", _amount) if fmt is fmt_money else (c, h, fmt) for c, h, fmt in columns]
     head = "".join(f'<th scope="col"{a}>{_e(h)}</th>' for (_, h, _), a in zip(columns, align))
     flags = (
         np.zeros(len(shown), dtype=bool) if flag is None else np.asarray(flag.iloc[:max_rows].fillna(False), dtype=bool)
@@ -450,7 +473,8 @@ def _summary(tables, meta) -> str:
         ("Run id", meta.get("run_id")),
         ("Reporting month", meta.get("reporting_month", meta.get("as_of"))),
         ("Config", meta.get("config_name", meta.get("config"))),
-        ("Created", meta.get("created")),
+        ("Created", meta.get("created") or "recorded in manifest.json (created); the page holds no clock time, so a "
+         "reproduction of the run gives the same bytes"),
         ("creditsurv version", version),
         ("Model", model.get("kind")),
     ]
@@ -773,7 +797,7 @@ def _events(tables, meta) -> str:
         return _absent("event_counts")
     cols = [
         ("event", "Outcome", fmt_text),
-        ("censor_reason", "Censoring reason", fmt_text),
+        ("censor_reason", "Censoring reason", lambda x: "" if _is_missing(x) else fmt_text(x)),  # events have none
         ("loans", "Loans", fmt_int),
     ]
     total = ev["loans"].sum()
@@ -927,6 +951,50 @@ def _pick_weighting(pdt: pd.DataFrame) -> tuple[pd.DataFrame, str | None]:
 _MAX_SEGMENT_PANELS = 6
 
 
+def _scenario_paths(tables, meta) -> str:
+    """One panel per macro series: the history, then each scenario's path (weight in the legend) and its extension."""
+    paths = tables.get("scenario_paths")
+    if paths is None:
+        return _absent("scenario_paths")
+    if paths.empty:
+        return _p("The run read no macro series.")
+    series = _ordered(paths["series"])
+    fig, axes = _figure(len(series))
+    scenarios = _ordered(paths["scenario"])
+    for ax, name in zip(axes, series):
+        d = paths[paths["series"] == name]
+        history = d[(d["part"] == "history") & (d["scenario"] == scenarios[0])]
+        x_of = {m: i for i, m in enumerate(_ordered(d["month"]))}
+        ax.plot([x_of[m] for m in history["month"]], history["value"], color=_INK, linewidth=1.2, label="history")
+        for i, sc in enumerate(scenarios):
+            own = d[(d["scenario"] == sc) & (d["part"] != "history")]
+            weight = float(own["weight"].iloc[0]) if len(own) else 0.0
+            style = _style(i + 1)
+            given = own[own["part"] == "scenario"]
+            ax.plot([x_of[m] for m in given["month"]], given["value"], label=f"{sc} ({fmt_pct(weight, 0)})", **style)
+            ext = own[own["part"] == "extension"]
+            if len(ext):
+                ax.plot([x_of[m] for m in ext["month"]], ext["value"], alpha=0.4, linewidth=2.5, **style)
+        months = list(x_of)
+        ticks = list(range(0, len(months), max(len(months) // 5, 1)))
+        ax.set_xticks(ticks, [months[t] for t in ticks])
+        _style_axes(ax, xlabel="Month", ylabel=str(name), title=str(name), legend=False)
+    _figure_legend(fig, axes)
+    weights = meta.get("scenario_weights") or {}
+    text = "Black: history up to the reporting month; coloured: each scenario's path as given, faded: its extension"
+    if _is_cecl(meta):
+        c = meta.get("cecl") or {}
+        text = (
+            "Black: history up to the reporting month; coloured: each scenario's path over the reasonable and "
+            f"supportable forecast period (to {c.get('forecast_end')}), faded: the reversion to the long-run values "
+            f"over {fmt_int(c.get('reversion_months'))} months, then the long-run values"
+        )
+    else:
+        text += " by the config's rule"
+    text += ". Weights: " + ", ".join(f"{k} {fmt_pct(v, 0)}" for k, v in weights.items()) + "."
+    return _img(fig, "Macro series by scenario") + _p(text, "note")
+
+
 def _pd_term_structure(tables, meta) -> str:
     pdt = tables.get("segment_pd_table")
     if pdt is None:
@@ -1016,11 +1084,11 @@ def _ecl_by_scenario(loans: pd.DataFrame, scenarios: list[str], weights: Mapping
 def _ecl_plot(stages: pd.DataFrame, scen: pd.DataFrame) -> str:
     fig, (ax1, ax2) = _figure(2, height=3.0)
     ax1.bar(stages["stage"].astype(str), stages["ecl"], color=_COLORS[0], width=0.6)
-    _style_axes(ax1, xlabel="Stage", ylabel="Reported ECL (currency)", title="By stage")
+    _style_axes(ax1, xlabel="Stage", ylabel=f"Reported ECL ({_currency_label()})", title="By stage")
     colors = [_COLORS[4] if s == WEIGHTED else _COLORS[1] for s in scen["scenario"]]
     ax2.bar([str(s) for s in scen["scenario"]], scen["ecl_stage"], color=colors, width=0.6)
     ax2.tick_params(axis="x", labelrotation=30)
-    _style_axes(ax2, xlabel="Scenario", ylabel="ECL at stage horizon (currency)", title="By scenario")
+    _style_axes(ax2, xlabel="Scenario", ylabel=f"ECL at stage horizon ({_currency_label()})", title="By scenario")
     for ax in (ax1, ax2):
         ax.yaxis.set_major_formatter(_thousands())
     return _img(fig, "ECL by stage and by scenario")
@@ -1037,11 +1105,11 @@ def _cecl_allowance(loans: pd.DataFrame, meta) -> str:
         fig, (ax1, ax2) = _figure(2, height=3.0)
         ax1.bar(seg["segment"], seg["allowance"], color=_COLORS[0], width=0.6)
         ax1.tick_params(axis="x", labelrotation=30)
-        _style_axes(ax1, xlabel="Segment", ylabel="Allowance (currency)", title="By segment")
+        _style_axes(ax1, xlabel="Segment", ylabel=f"Allowance ({_currency_label()})", title="By segment")
         colors = [_COLORS[4] if s == WEIGHTED else _COLORS[1] for s in scen["scenario"]]
         ax2.bar([str(s) for s in scen["scenario"]], scen["ecl_lifetime"], color=colors, width=0.6)
         ax2.tick_params(axis="x", labelrotation=30)
-        _style_axes(ax2, xlabel="Scenario", ylabel="Lifetime expected credit loss (currency)", title="By scenario")
+        _style_axes(ax2, xlabel="Scenario", ylabel=f"Lifetime expected credit loss ({_currency_label()})", title="By scenario")
         for ax in (ax1, ax2):
             ax.yaxis.set_major_formatter(_thousands())
         out.append(_img(fig, "Allowance by segment and by scenario"))
@@ -1275,6 +1343,9 @@ def _calibration_plot(cal: pd.DataFrame) -> str:
     top = top if np.isfinite(top) and top > 0 else 1.0
     ax.plot([0, top], [0, top], color=_COLORS[4], linestyle="--", linewidth=1, label="predicted = observed")
     ax.errorbar(x, y, yerr=yerr, fmt="o", markersize=3.5, color=_COLORS[0], capsize=2, label="group")
+    if "group" in cal.columns:  # each point named by its group: the score band, or the PD group's number
+        for xi, yi, g in zip(x, y, cal["group"]):
+            ax.annotate(str(g), (xi, yi), textcoords="offset points", xytext=(5, -9), fontsize=7, color=_INK)
     ax.set_xlim(0, top)
     ax.set_ylim(0, top)
     ax.xaxis.set_major_formatter(PercentFormatter(xmax=1.0, decimals=None))
@@ -1302,8 +1373,10 @@ def _calibration_part(tables, meta) -> str:
         )
     if not cal.empty:
         out.append(_calibration_plot(cal))
+    grouping = str(hl.get("grouping", ""))
+    group = f"Band of {grouping.removeprefix('grades of ')}" if grouping.startswith("grades of ") else "PD group"
     cols = [
-        ("group", "Group", fmt_text),
+        ("group", group, fmt_text),
         ("n", "Loans", fmt_int),
         ("pd_mean", "Mean PD", fmt_pct),
         ("expected", "Expected defaults", fmt_num),
@@ -1466,6 +1539,20 @@ def _movement(tables, meta) -> str:
     out = []
     cecl = _is_cecl(meta)
     walk = tables.get("movement_walk")
+    if walk is None and cecl:
+        return _p(
+            "No previous run was named (outputs.prior_run is not set), so this report has no movement: the walk of the "
+            "allowance from the previous month's total to this one needs the previous run's loan table. Set "
+            "outputs.prior_run to the previous month's run folder, or compare two finished runs with creditsurv "
+            "compare RUN_A RUN_B."
+        )
+    if walk is None and tables.get("stage_migration") is None:
+        return _p(
+            "No previous run was named (outputs.prior_run is not set), so this report has no movement: the ECL walk "
+            "from the previous month's total to this one and the stage migration need the previous run's loan "
+            "table. Set outputs.prior_run to the previous month's run folder, or compare two finished runs with "
+            "creditsurv compare RUN_A RUN_B."
+        )
     if walk is not None and cecl:  # no stages: no transfer between them
         walk = walk[~walk["step"].astype(str).str.startswith("stage_transfer_")]
     what = "the allowance" if cecl else "reported ECL"
@@ -1481,7 +1568,7 @@ def _movement(tables, meta) -> str:
             ax.set_yticks(y, [str(s).replace("_", " ") for s in steps["step"]])
             ax.axvline(0, color=_INK, linewidth=0.8)
             ax.xaxis.set_major_formatter(_thousands())
-            _style_axes(ax, xlabel=f"Change in {what} (currency)", ylabel="")
+            _style_axes(ax, xlabel=f"Change in {what} ({_currency_label()})", ylabel="")
             out.append(_img(fig, "Allowance movement by step" if cecl else "ECL movement by step"))
         cols = [
             ("step", "Step", fmt_text),
@@ -1519,12 +1606,19 @@ def _run_record(tables, meta) -> str:
             ("bytes", "Bytes", fmt_int),
             ("sha256", "SHA-256", fmt_text),
         ]
+        rows = meta.get("input_rows") or {}
+        if rows:  # rows read per config key; a glob's files share their key's count
+            df["rows"] = [rows.get(k) if k in rows and (df["input"] == k).sum() == 1 else None for k in df["input"]]
+            cols.insert(2, ("rows", "Rows", lambda x: "" if _is_missing(x) else fmt_int(x)))
         caption = "Every file the run read"
         out.append(_table(df, cols, caption=caption, max_rows=max(MAX_ROWS, len(df))))
+        shared = sorted(k for k in rows if (df["input"] == k).sum() > 1)
+        if shared:
+            out.append(_p("Rows of the files of one glob, together: " + "; ".join(f"{k} {fmt_int(rows[k])}" for k in shared) + ".", "note"))
     else:
         out.append(_absent('meta["inputs"]'))
     config_hash = meta.get("config_sha256", meta.get("config_hash"))
-    items = [("Config SHA-256", config_hash), ("Seed", meta.get("seed"))]
+    items = [("Config SHA-256", config_hash), ("Seed", None if meta.get("seed") is None else str(meta.get("seed")))]
     out.append(_pairs([(k, fmt_text(v)) for k, v in items if v is not None], caption="Config"))
     versions = meta.get("versions")
     if versions:
@@ -1542,6 +1636,7 @@ SECTIONS: tuple[tuple[str, str, Callable[[dict, dict], str]], ...] = (
     ("model", "Hazard model", _model),
     ("hazard-curves", "Hazard by loan age", _hazard_curves),
     ("cumulative-incidence", "Cumulative incidence by vintage", _cumulative_incidence),
+    ("scenarios", "Macro scenarios", _scenario_paths),
     ("pd-term-structure", "PD term structure", _pd_term_structure),
     ("ecl", "Expected credit loss", _ecl),
     ("speeds", "Prepayment and default speeds", _speeds),
@@ -1642,10 +1737,10 @@ def render_report(tables: Mapping[str, pd.DataFrame], meta: Mapping) -> str:
         ``hl_df``, ``hl_p_value``), ``scenario_weights`` (scenario -> weight),
         ``inputs`` (list of dicts with ``input``, ``path``,
         ``bytes``, ``sha256``), ``versions`` (package -> version),
-        ``config_sha256`` (or ``config_hash``), ``seed``, ``accounting``
-        (``ifrs9``, the default, or ``cecl``), ``discount``, ``cecl``
-        (``forecast_months``, ``forecast_end``, ``reversion_months``,
-        ``reversion_end``, ``long_run``, ``hold_last_series``). All optional.
+        ``config_sha256`` (or ``config_hash``), ``seed``, ``currency`` (ISO 4217 code written beside every
+        amount), ``accounting`` (``ifrs9``, the default, or ``cecl``), ``discount``, ``cecl``
+        (``forecast_months``, ``forecast_end``, ``reversion_months``, ``reversion_end``, ``long_run``,
+        ``hold_last_series``). All optional.
 
     Returns
     -------
@@ -1666,11 +1761,19 @@ def render_report(tables: Mapping[str, pd.DataFrame], meta: Mapping) -> str:
     titles = {sid: (_CECL_TITLES.get(sid, t) if _is_cecl(meta) else t) for sid, t, _ in SECTIONS}
     nav = "".join(f'<li><a href="#{sid}">{_e(titles[sid])}</a></li>' for sid, _, _ in SECTIONS)
     body = []
-    with matplotlib.rc_context(_RC):  # plot style for this call only; global rcParams untouched
-        for i, (sid, _, fn) in enumerate(SECTIONS, start=1):
-            heading = titles[sid]
-            body.append(f'<section id="{sid}">\n<h2>{i}. {_e(heading)}</h2>\n{fn(tables, meta)}\n</section>')
+    token = _CURRENCY.set(meta.get("currency"))
+    try:
+        with matplotlib.rc_context(_RC):  # plot style for this call only; global rcParams untouched
+            for i, (sid, _, fn) in enumerate(SECTIONS, start=1):
+                heading = titles[sid]
+                body.append(f'<section id="{sid}">\n<h2>{i}. {_e(heading)}</h2>\n{fn(tables, meta)}\n</section>')
+    finally:
+        _CURRENCY.reset(token)
     sub = f'<p class="sub">Reporting month {_e(month)}</p>' if month else ""
+    if meta.get("currency"):
+        sub += f'<p class="sub">Amounts in {_e(meta["currency"])}</p>'
+    else:
+        sub += '<p class="sub">Amounts in the book\'s currency (the config names none: set <code>currency</code>)</p>'
     return (
         "<!DOCTYPE html>\n"
         '<html lang="en">\n<head>\n<meta charset="utf-8">\n'

@@ -24,8 +24,11 @@ from ._manifest import (
     start_manifest,
 )
 from ._movement import (
+    EAD_KEYS,
+    METHOD_SECTIONS,
     WALK_STEPS,
     MovementResult,
+    RunDifferences,
     check_walk_reconciles,
     compare_run_folders,
     movement,
@@ -41,8 +44,9 @@ from ._reproduce import (
 )
 
 __all__ = [
-    "BASIS_NAMES", "accounting_basis", "check_same_basis", "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "RunManifest", "start_manifest", "WALK_STEPS", "check_walk_reconciles",
-    "check_folder_on_disk", "locate_inputs", "stage_inputs", "compare_outputs", "compare_run_folders", "describe_inputs", "judge_reproduction",
+    "BASIS_NAMES", "accounting_basis", "check_same_basis",
+    "MANIFEST", "MovementResult", "OutputComparison", "RunFolder", "RunManifest", "start_manifest", "WALK_STEPS", "check_walk_reconciles",
+    "EAD_KEYS", "METHOD_SECTIONS", "RunDifferences", "check_folder_on_disk", "locate_inputs", "stage_inputs", "compare_outputs", "compare_run_folders", "describe_inputs", "judge_reproduction",
     "movement", "movement_against_run", "sicr_history_of_run", "reproduction_name", "package_versions",
     "read_manifest", "run_identity", "sha256_file", "write_table", "READABLE_VERSIONS", "SCHEMA_VERSION", "RUN_FILES_READ",
     "check_manifest", "folder_differences", "remove_stale_incomplete",

@@ -56,15 +56,34 @@ def write_table(df: pd.DataFrame, path: Path) -> None:
     pq.write_table(table, path, compression="zstd", use_dictionary=True, write_statistics=True)
 
 
+RUN_EXISTS_HINT = (
+    "Its name is the reporting month and a hash of the config and inputs, so this month was run before with the "
+    "same config and inputs: use --out for another folder, or change the config or inputs."
+)
+"""What to do when the folder of a run or a fit exists (the default of :class:`RunFolder`)."""
+
+
 @dataclass
 class RunFolder:
     """A run being built: write outputs into ``.path``, then :meth:`commit`.
 
     Use as a context manager; on an exception the temporary folder is removed.
+
+    Parameters
+    ----------
+    parent : path
+        The folder to create the run folder in (made if missing).
+    name : str
+        The run folder's name.
+    hint : str, optional
+        What the user can do when ``parent / name`` already exists: the ``RunError`` says the folder exists
+        and is never overwritten, then this. Each command passes the remedy that fits its own folders; by
+        default the one of a run or a fit (:data:`RUN_EXISTS_HINT`).
     """
 
     parent: Path
     name: str
+    hint: str | None = None
     path: Path = field(init=False)
     outputs: dict[str, dict] = field(default_factory=dict, init=False)
 
@@ -72,10 +91,8 @@ class RunFolder:
         self.parent = Path(self.parent)
         self.final = self.parent / self.name
         if self.final.exists():
-            raise RunError(
-                f"{self.final}: a run folder of this name already exists; creditsurv never "
-                "overwrites a run. Change the config or inputs, or use --out for another folder."
-            )
+            hint = self.hint or RUN_EXISTS_HINT
+            raise RunError(f"{self.final}: already exists, and creditsurv never overwrites an output folder. {hint}")
         if self.parent.exists() and not self.parent.is_dir():
             raise OutputError(f"{self.parent}: is a file, not a folder; the run folders go in a folder (outputs.dir or --out)")
         try:

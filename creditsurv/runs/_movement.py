@@ -33,10 +33,32 @@ each a row of :attr:`MovementResult.walk`:
 
 The steps sum to ``ECL_B_total - ECL_A_total``; the walk checks this to a
 relative 1e-6 of the larger total and raises :class:`RunError` otherwise.
+
+Between two run folders (:func:`compare_run_folders`)
+------------------------------------------------------
+Each folder's ``manifest.json`` tells more than its loan table, and
+:class:`RunDifferences` holds it:
+
+* the order of the months: A is normally the earlier; when A is later the walk
+  runs backwards (from a later month to an earlier one), and when both are of
+  one month it shows how two runs of that month differ;
+* a change of model (the model record: kind or source, the coefficients by the
+  fingerprint of ``hazard_model.json``, the loan-months it was fitted on, a
+  saved model file or rate table), of method (a key of the resolved config's
+  sections in :data:`METHOD_SECTIONS`) or of package versions.
+
+Such a change cannot be a step of its own: separating it exactly needs run B's
+book projected under run A's model and method, which two finished folders do
+not hold. It stays inside ``risk_parameters`` for loans in the same stage and
+inside the stage transfers for loans whose stage moved (some may have moved
+because of it); a change of the EAD settings (:data:`EAD_KEYS`) also moves the
+``exposure`` step. The walk's ``note`` column says so on those rows, so the
+steps and their reconciliation are the same as without it.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import json
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -45,13 +67,14 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..config import WEIGHTED, weight_problems
+from ..config import WEIGHTED, canonical_sha256, weight_problems
 from ..errors import RunError, problem_list
+from ..months import parse_month
 from ._folder import MANIFEST, read_manifest
 
 __all__ = [
-    "MovementResult", "check_walk_reconciles", "compare_run_folders", "movement", "movement_against_run",
-    "sicr_history_of_run",
+    "EAD_KEYS", "METHOD_SECTIONS", "MovementResult", "RunDifferences", "check_walk_reconciles", "compare_run_folders",
+    "movement", "movement_against_run", "sicr_history_of_run",
 ]  # fmt: skip
 
 LOAN_TABLE = "loan_ecl.parquet"
@@ -64,6 +87,23 @@ WALK_STEPS = (
     + SAME_STAGE_STEPS
 )
 """Step names of the walk, in order (without the opening and closing rows)."""
+
+METHOD_SECTIONS = (
+    "windows", "default_definition", "events", "arrears", "model", "collateral", "scenario_extension", "loss",
+    "staging", "cecl",
+)  # fmt: skip
+"""Sections of the resolved config that set how ECL is computed from the same data: a change is a change of method."""
+
+EAD_KEYS = ("loss.exposure", "loss.accrued_interest")
+"""Method keys (and the keys under them) that set the EAD at the reporting month: a change moves ``exposure`` too."""
+
+MODEL_FILE = "hazard_model.json"
+_MAX_LISTED = 8  # changes of method named in the text; the manifest of the movement holds them all
+# Record entries that follow from the fit (a new fit changes them with its coefficients): not named one by one.
+_FIT_STATISTICS = frozenset(
+    {"aic", "bic", "loglik", "iterations", "converged", "events", "terms", "causes", "states", "references",
+     "transitions", "limits_loosened", "n_rows", "data_fingerprint", "kind", "source"}
+)  # fmt: skip
 
 RECONCILE_RTOL = 1e-6
 _REPORTED_RTOL = 1e-6  # ecl_reported against sum_s w_s ECL_s
@@ -78,12 +118,16 @@ class MovementResult:
     Attributes
     ----------
     walk : DataFrame
-        Columns ``step``, ``loans``, ``ecl_change``, ``ecl_balance``. First row
-        ``opening`` (loans of A, ``ecl_change`` NaN, A's total reported ECL),
-        then the steps of :data:`WALK_STEPS` in order (every step present, zero
-        when no loan falls in it; ``loans`` for the three same-stage steps is
-        the number of same-stage loans), then ``closing`` (loans of B, NaN,
-        B's total). ``ecl_balance`` is the running total after each step.
+        Columns ``step``, ``loans``, ``ecl_change``, ``ecl_balance``, ``note``.
+        First row ``opening`` (loans of A, ``ecl_change`` NaN, A's total
+        reported ECL), then the steps of :data:`WALK_STEPS` in order (every
+        step present, zero when no loan falls in it; ``loans`` for the three
+        same-stage steps is the number of same-stage loans), then ``closing``
+        (loans of B, NaN, B's total). ``ecl_balance`` is the running total
+        after each step. ``note`` is empty unless :attr:`differences` has
+        something to say on the row: months compared backwards or of one
+        month (``opening``), a change of model, method or versions inside the
+        step (see the module docstring).
     migration : DataFrame
         Tidy stage migration: ``stage_from`` ("1", "2", "3", "new"),
         ``stage_to`` ("1", "2", "3", "closed"), ``loans``, ``ead``. ``ead`` is
@@ -106,12 +150,17 @@ class MovementResult:
         ``stage_transfer_<i>_to_<j>`` or ``same_stage``), ``exposure``,
         ``scenario_weights``, ``risk_parameters`` (zero outside same-stage
         loans) and ``ecl_change``, the loan's whole contribution to the walk.
+    differences : RunDifferences or None
+        What the runs' records say differs besides the loans (the order of
+        the months, model, method, versions); set by
+        :func:`compare_run_folders`, None from loan tables alone.
     """
 
     walk: pd.DataFrame
     migration: pd.DataFrame
     pd_change: pd.DataFrame
     by_loan: pd.DataFrame
+    differences: RunDifferences | None = None
 
     def migration_matrix(self, value: str = "loans") -> pd.DataFrame:
         """Wide stage migration matrix.
@@ -145,6 +194,275 @@ class MovementResult:
         if len(self.by_loan) and not self.migration["loans"].any():  # loans with no stage (CECL): no migration
             del tables["stage_migration.csv"]
         return tables
+
+
+@dataclass(frozen=True)
+class RunDifferences:
+    """What the records of run A and run B say differs between them besides their loans.
+
+    Attributes
+    ----------
+    as_of_a, as_of_b : str or None
+        The reporting months ``YYYY-MM``; None when a record has none.
+    model : tuple of str
+        Each change of the hazard model, in words: its kind or source, its coefficients (the fingerprint
+        of ``hazard_model.json``), the loan-months it was fitted on, a saved model file or rate table.
+    method : tuple of str
+        Each key of :data:`METHOD_SECTIONS` whose resolved value changed, ``"key a -> b"`` (JSON values,
+        ``absent`` where a config lacks the key).
+    versions : tuple of str
+        Each package whose version changed, ``"name a -> b"``.
+    not_recorded : tuple of str
+        What a record lacks, so that its change cannot be told: ``"model"``, ``"method"``, ``"versions"``.
+    fingerprints : tuple of (str or None, str or None)
+        The model fingerprints of A and B (12 hex digits of the SHA-256 of ``hazard_model.json`` without the
+        writing version); None for a run without a fitted model.
+    ead_changed : bool
+        Whether a key of :data:`EAD_KEYS` changed (the change then moves the ``exposure`` step too).
+    """
+
+    as_of_a: str | None
+    as_of_b: str | None
+    model: tuple[str, ...] = ()
+    method: tuple[str, ...] = ()
+    versions: tuple[str, ...] = ()
+    not_recorded: tuple[str, ...] = ()
+    fingerprints: tuple[str | None, str | None] = (None, None)
+    ead_changed: bool = False
+
+    @property
+    def direction(self) -> str:
+        """``forward`` (A is the earlier month), ``backwards`` (A is the later), ``same_month`` or ``unknown``."""
+        a, b = _month_index(self.as_of_a), _month_index(self.as_of_b)
+        if a is None or b is None:
+            return "unknown"
+        return "forward" if a < b else "backwards" if a > b else "same_month"
+
+    @property
+    def changed(self) -> bool:
+        """Whether the model, the method or a package version changed."""
+        return bool(self.model or self.method or self.versions)
+
+    @property
+    def steps(self) -> tuple[str, ...]:
+        """The walk steps that hold the change of model, method or versions (empty when none changed)."""
+        if not self.changed:
+            return ()
+        transfers = tuple(f"stage_transfer_{i}_to_{j}" for i, j in TRANSFERS)
+        return (*(("exposure",) if self.ead_changed else ()), "risk_parameters", *transfers)
+
+    def headline(self) -> str:
+        """The first line of the movement's text: the months, and which way the walk runs."""
+        a, b = self.as_of_a or "?", self.as_of_b or "?"
+        return {
+            "forward": f"ECL movement {a} -> {b}",
+            "backwards": f"ECL movement {a} -> {b}: comparing backwards, from a later month to an earlier one "
+            f"(run A is {a}, run B {b}); normally run A is the earlier",
+            "same_month": f"ECL movement {a} -> {b}: both runs are of the same month, so the walk shows how the two "
+            "runs differ, not a month's movement",
+            "unknown": f"ECL movement {a} -> {b}: a run records no reporting month, so which is the earlier is not known",
+        }[self.direction]  # fmt: skip
+
+    def what_changed(self) -> str:
+        """The changes in one line: ``model: ...; method: ...; package versions: ...`` (empty when none)."""
+        method = list(self.method[:_MAX_LISTED])
+        if len(self.method) > _MAX_LISTED:
+            method.append(f"and {len(self.method) - _MAX_LISTED} more keys of the config")
+        groups = (("model", self.model), ("method", method), ("package versions", self.versions))
+        return "; ".join(f"{name}: {', '.join(items)}" for name, items in groups if items)
+
+    def summary(self) -> list[str]:
+        """Lines for the screen: what changed and where the walk holds it, or that nothing did."""
+        names = {"model": "model", "method": "method", "versions": "package versions"}
+        lines = []
+        if self.changed:
+            lines.append(f"model and method changed between the runs: {self.what_changed()}")
+            lines.append(f"  not a step of its own: {_not_separable(self.steps)}")
+        elif told := [shown for part, shown in names.items() if part not in self.not_recorded]:
+            fingerprint = f" (model fingerprint {self.fingerprints[0]})" if self.fingerprints[0] else ""
+            lines.append(f"{_and(told)}: unchanged between the runs{fingerprint}")
+        if self.not_recorded:
+            lines.append(f"{_and(names[p] for p in self.not_recorded)}: not recorded in both runs, so not compared")
+        return lines
+
+    def notes(self) -> dict[str, str]:
+        """The walk's ``note`` of each step that has one."""
+        out = {}
+        if self.direction in ("backwards", "same_month"):
+            out["opening"] = self.headline().split(": ", 1)[1]
+        if self.changed:
+            what = self.what_changed()
+            out["risk_parameters"] = (
+                "includes the change of model and method for loans in the same stage, which a compare of two "
+                f"finished runs cannot separate: {what}"
+            )
+            for step in self.steps:
+                if step.startswith("stage_transfer_"):
+                    out[step] = "includes the change of model and method for these loans (see risk_parameters)"
+            if self.ead_changed:
+                ead = "; ".join(m for m in self.method if _is_ead_key(m.split(" ", 1)[0]))
+                out["exposure"] = f"includes the change of the EAD settings ({ead})"
+        return out
+
+    def to_dict(self) -> dict:
+        """The record of the movement folder: direction and what changed, where the walk holds it."""
+        return {
+            "direction": self.direction,
+            "model_and_method": {
+                "changed": self.changed, "model": list(self.model), "method": list(self.method),
+                "versions": list(self.versions), "not_recorded": list(self.not_recorded),
+                "model_fingerprints": {"run_a": self.fingerprints[0], "run_b": self.fingerprints[1]},
+                "inside_steps": list(self.steps),
+            },
+        }  # fmt: skip
+
+
+def _not_separable(steps) -> str:
+    """Where the walk holds a change it cannot separate, in words."""
+    transfers = [s for s in steps if s.startswith("stage_transfer_")]
+    inside = [s for s in steps if not s.startswith("stage_transfer_")]
+    return (
+        "a compare of two finished runs cannot separate the change (that needs run B's book projected under "
+        f"run A's model and method); it is inside {_and(inside)} for loans in the same stage"
+        + (", and inside the stage transfers for loans whose stage moved" if transfers else "")
+    )
+
+
+def _and(words) -> str:
+    words = list(words)
+    return ", ".join(words[:-1]) + (" and " if len(words) > 1 else "") + (words[-1] if words else "")
+
+
+def _month_index(text) -> int | None:
+    try:
+        return parse_month(text) if isinstance(text, str) else None
+    except (TypeError, ValueError):
+        return None
+
+
+def _short(value) -> str:
+    text = json.dumps(value, sort_keys=True, default=str)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+_ABSENT = object()  # a key one record has and the other lacks
+
+
+def _shown(value) -> str:
+    return "absent" if value is _ABSENT else _short(value)
+
+
+def _flat(value, key: str) -> dict[str, object]:
+    """A nested config section as ``{dotted key: value}``; lists of mappings by index (``model.covariates[2].lag``)."""
+    if isinstance(value, dict):
+        out = {}
+        for k in sorted(value):
+            out.update(_flat(value[k], f"{key}.{k}"))
+        return out
+    if isinstance(value, list) and value and all(isinstance(v, dict) for v in value):
+        out = {f"{key}[]": len(value)}
+        for i, v in enumerate(value):
+            out.update(_flat(v, f"{key}[{i}]"))
+        return out
+    return {key: value}
+
+
+def _method_changes(config_a: dict, config_b: dict) -> list[str]:
+    """``key a -> b`` for every key of :data:`METHOD_SECTIONS` whose value differs (``absent`` where missing)."""
+    changes = []
+    for section in METHOD_SECTIONS:
+        flat_a, flat_b = _flat(config_a.get(section), section), _flat(config_b.get(section), section)
+        for key in [*flat_a, *(k for k in flat_b if k not in flat_a)]:
+            a, b = flat_a.get(key, _ABSENT), flat_b.get(key, _ABSENT)
+            if a != b:
+                changes.append(f"{key} {_shown(a)} -> {_shown(b)}")
+    return changes
+
+
+def _is_ead_key(key: str) -> bool:
+    return any(key == k or key.startswith(f"{k}.") for k in EAD_KEYS)
+
+
+def _model_changes(record_a: dict, record_b: dict, fingerprints, inputs_a, inputs_b) -> list[str]:
+    """The changes of the hazard model between two runs' records, in words."""
+    changes = []
+    kind_a = record_a.get("kind", record_a.get("source"))
+    kind_b = record_b.get("kind", record_b.get("source"))
+    if kind_a != kind_b:
+        changes.append(f"kind {_short(kind_a)} -> {_short(kind_b)}")
+    fa, fb = fingerprints
+    if fa != fb:
+        changes.append(f"coefficients changed (fingerprint {fa or 'none'} -> {fb or 'none'})")
+    if record_a.get("data_fingerprint") != record_b.get("data_fingerprint"):
+        rows = [record_a.get("n_rows"), record_b.get("n_rows")]
+        shown = " -> ".join(f"{n:,}" if isinstance(n, int) else "?" for n in rows)
+        changes.append(f"fitted on other loan-months ({shown})")
+    for key in sorted((set(record_a) | set(record_b)) - _FIT_STATISTICS):
+        if record_a.get(key, _ABSENT) != record_b.get(key, _ABSENT):
+            changes.append(f"{key} {_shown(record_a.get(key, _ABSENT))} -> {_shown(record_b.get(key, _ABSENT))}")
+    files_a, files_b = _model_inputs(inputs_a), _model_inputs(inputs_b)
+    for key in sorted(set(files_a) | set(files_b)):
+        if files_a.get(key) != files_b.get(key):
+            a, b = files_a.get(key), files_b.get(key)
+            changes.append(f"file {key} changed (SHA-256 {a[:12] if a else 'none'} -> {b[:12] if b else 'none'})")
+    return changes
+
+
+def _model_inputs(inputs) -> dict[str, str]:
+    """The SHA-256 of each file a run's model was read from (``model.path``, ``model.table``), by config key."""
+    out = {}
+    for item in inputs if isinstance(inputs, list) else []:
+        if isinstance(item, dict) and str(item.get("input", "")).startswith("model."):
+            out[str(item["input"])] = str(item.get("sha256"))
+    return out
+
+
+def _model_fingerprint(run_dir: Path) -> str | None:
+    """12 hex digits of the SHA-256 of the run's ``hazard_model.json`` with the writing version left out, or None."""
+    path = Path(run_dir) / MODEL_FILE
+    if not path.is_file():
+        return None
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+        return None
+    return canonical_sha256(_without_version(data))[:12]
+
+
+def _without_version(value):
+    """The model JSON without the version that wrote it (a new version alone does not change the model)."""
+    if isinstance(value, dict):
+        return {k: _without_version(v) for k, v in value.items() if k != "creditsurv_version"}
+    if isinstance(value, list):
+        return [_without_version(v) for v in value]
+    return value
+
+
+def _differences(manifest_a: dict, manifest_b: dict, fingerprints) -> RunDifferences:
+    """What the two runs' records say differs (see :class:`RunDifferences`)."""
+    not_recorded, model, method, versions = [], [], [], []
+    record_a, record_b = manifest_a.get("model"), manifest_b.get("model")
+    if isinstance(record_a, dict) and isinstance(record_b, dict):
+        model = _model_changes(record_a, record_b, fingerprints, manifest_a.get("inputs"), manifest_b.get("inputs"))
+    else:
+        not_recorded.append("model")
+    config_a, config_b = manifest_a.get("config_resolved") or {}, manifest_b.get("config_resolved") or {}
+    if all(any(s in c for s in METHOD_SECTIONS) for c in (config_a, config_b)):
+        method = _method_changes(config_a, config_b)
+    else:
+        not_recorded.append("method")
+    versions_a, versions_b = manifest_a.get("versions"), manifest_b.get("versions")
+    if isinstance(versions_a, dict) and isinstance(versions_b, dict):
+        for name in [*versions_a, *(n for n in versions_b if n not in versions_a)]:
+            if versions_a.get(name) != versions_b.get(name):
+                versions.append(f"{name} {versions_a.get(name, 'absent')} -> {versions_b.get(name, 'absent')}")
+    else:
+        not_recorded.append("versions")
+    ead = any(_is_ead_key(m.split(" ", 1)[0]) for m in method)
+    return RunDifferences(
+        as_of_a=manifest_a.get("as_of"), as_of_b=manifest_b.get("as_of"), model=tuple(model), method=tuple(method),
+        versions=tuple(versions), not_recorded=tuple(not_recorded), fingerprints=tuple(fingerprints), ead_changed=ead,
+    )  # fmt: skip
 
 
 # --------------------------------------------------------------------------- checks
@@ -490,6 +808,7 @@ def _walk_table(m: _Matched, exposure, sw, risk) -> pd.DataFrame:
     walk = pd.DataFrame(rows, columns=["step", "loans", "ecl_change"])
     steps = walk["ecl_change"].to_numpy()[1:-1]
     walk["ecl_balance"] = np.concatenate([[total_a], total_a + np.cumsum(steps), [total_b]])
+    walk["note"] = ""
 
     check_walk_reconciles(steps, total_a, total_b)
     return walk
@@ -520,10 +839,10 @@ def _migration_table(m: _Matched) -> pd.DataFrame:
 # --------------------------------------------------------------------------- run folders
 
 
-def _read_run(path: Path) -> tuple[pd.DataFrame | None, dict | None, list[str]]:
-    """A run's loan table and scenario weights, or the problems that stop reading them."""
+def _read_run(path: Path) -> tuple[pd.DataFrame | None, dict | None, dict | None, list[str]]:
+    """A run's loan table, scenario weights and manifest, or the problems that stop reading them."""
     if not path.is_dir():
-        return None, None, [f"{path}: no such run folder"]
+        return None, None, None, [f"{path}: no such run folder"]
     problems = []
     manifest_path, table_path = path / MANIFEST, path / LOAN_TABLE
     if not manifest_path.is_file():
@@ -533,19 +852,19 @@ def _read_run(path: Path) -> tuple[pd.DataFrame | None, dict | None, list[str]]:
     if not table_path.is_file():
         problems.append(f"{path}: the run has no {LOAN_TABLE}")
     if problems:
-        return None, None, problems
+        return None, None, None, problems
     try:
         manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        return None, None, [f"{manifest_path}: cannot be read as JSON ({exc})"]
+        return None, None, None, [f"{manifest_path}: cannot be read as JSON ({exc})"]
     try:
         loans = pd.read_parquet(table_path)
     except Exception as exc:  # pyarrow raises several types for a damaged file
-        return None, None, [f"{table_path}: cannot be read as Parquet ({type(exc).__name__}: {exc})"]
+        return None, None, None, [f"{table_path}: cannot be read as Parquet ({type(exc).__name__}: {exc})"]
 
     scenarios = (manifest.get("config_resolved") or {}).get("scenarios") if isinstance(manifest, dict) else None
     if scenarios is None:
-        return None, None, [f"{manifest_path}: no config_resolved.scenarios"]
+        return None, None, None, [f"{manifest_path}: no config_resolved.scenarios"]
     weights = {}
     for k, sc in enumerate(scenarios):
         if not isinstance(sc, dict) or "name" not in sc or "weight" not in sc:
@@ -562,14 +881,20 @@ def _read_run(path: Path) -> tuple[pd.DataFrame | None, dict | None, list[str]]:
                 f"{manifest_path}: config_resolved.scenarios is empty and {LOAN_TABLE} has "
                 f"{len(found)} scenarios {found}; cannot tell their weights"
             )
-    return loans, weights, problems
+    return loans, weights, manifest, problems
 
 
 def compare_run_folders(run_a: Path, run_b: Path, *, segment_column: str = "segment") -> MovementResult:
-    """:func:`movement` between two run folders, A the earlier.
+    """:func:`movement` between two run folders, A normally the earlier, with what their records say differs.
 
-    Reads each run's ``loan_ecl.parquet`` and its scenario weights from
-    ``manifest.json`` (``config_resolved.scenarios``).
+    Reads each run's ``loan_ecl.parquet``, its scenario weights from
+    ``manifest.json`` (``config_resolved.scenarios``) and what else the
+    record holds: the reporting month, the model record and
+    ``hazard_model.json``, the resolved config and the package versions. The
+    result's :attr:`~MovementResult.differences` tell whether A is the earlier
+    month and what changed in model, method or versions; the walk's ``note``
+    column says where such a change sits (the module docstring). A run A later
+    than run B is compared all the same: the walk then runs backwards.
 
     Raises
     ------
@@ -580,11 +905,24 @@ def compare_run_folders(run_a: Path, run_b: Path, *, segment_column: str = "segm
         :func:`movement`, with each problem naming its folder.
     """
     run_a, run_b = Path(run_a), Path(run_b)
-    loans_a, weights_a, problems_a = _read_run(run_a)
-    loans_b, weights_b, problems_b = _read_run(run_b)
+    loans_a, weights_a, manifest_a, problems_a = _read_run(run_a)
+    loans_b, weights_b, manifest_b, problems_b = _read_run(run_b)
     _raise(problems_a + problems_b, "the runs to compare")
     labels = (f"{run_a / LOAN_TABLE} (run A)", f"{run_b / LOAN_TABLE} (run B)")
-    return _movement(loans_a, loans_b, weights_a, weights_b, segment_column, labels)
+    result = _movement(loans_a, loans_b, weights_a, weights_b, segment_column, labels)
+    differences = _differences(manifest_a, manifest_b, (_model_fingerprint(run_a), _model_fingerprint(run_b)))
+    return _with_differences(result, differences)
+
+
+def _with_differences(result: MovementResult, differences: RunDifferences) -> MovementResult:
+    """The result carrying ``differences``, with their notes on the walk's rows (a transfer row only with loans)."""
+    walk = result.walk.copy()
+    loans = dict(zip(walk["step"], walk["loans"]))
+    for step, note in differences.notes().items():
+        if step.startswith("stage_transfer_") and not loans[step]:
+            continue
+        walk.loc[walk["step"] == step, "note"] = note
+    return dataclasses.replace(result, walk=walk, differences=differences)
 
 
 def movement_against_run(prior_run, loans_b: pd.DataFrame, weights_b: Mapping[str, float]) -> MovementResult:
