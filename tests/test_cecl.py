@@ -339,6 +339,7 @@ def test_the_report_speaks_cecl_on_cecl_and_ifrs9_on_ifrs9(cecl_run, ifrs9_run):
         "reasonable and supportable forecast period of 24 months (to 2026-12)",
         "reversion period of 12 months (to 2027-12)", "Discounting: not discounted",
         "IFRS 9 staging does not apply on the CECL basis", "must be validated independently",
+        "path over the reasonable and supportable forecast period (to 2026-12), faded: the reversion",
         "Accounting judgement and local supervisory rules prevail",
     ):
         assert text in cecl, text
