@@ -34,16 +34,23 @@ ROOT = Path(__file__).resolve().parents[1]
 DATA = ROOT / "benchmarks" / "_data"
 
 
-def _demo():
-    """The demo config, its book at the reporting month, the scenario paths and the fitted model."""
+def _demo(kind: str = "multinomial"):
+    """The demo config, its book at the reporting month, the scenario paths and the demo model fitted as ``kind``."""
+    import dataclasses
+
     from creditsurv.config import load_config
     from creditsurv.forecast import prepare_paths
     from creditsurv.model import hazard_source, load_model
-    from creditsurv.pipeline import macro_series_needed, open_checked
+    from creditsurv.pipeline import (
+        loans_with_panel_history,
+        macro_series_needed,
+        open_checked,
+    )
 
     cfg = load_config(ROOT / "configs" / "demo.yaml")
+    cfg = dataclasses.replace(cfg, model=dataclasses.replace(cfg.model, kind=kind))
     DATA.mkdir(parents=True, exist_ok=True)
-    model_path = DATA / "demo_model.json"
+    model_path = DATA / f"demo_model_{kind}.json"
     engine, _ = open_checked(cfg)
     with engine:
         if model_path.exists():
@@ -51,7 +58,7 @@ def _demo():
         else:
             model = hazard_source(cfg, engine, temp_dir=DATA)
             model.save(model_path)
-        book = engine.book_at_as_of(cfg.segments.column)
+        book = loans_with_panel_history(engine, engine.book_at_as_of(cfg.segments.column), model, int(cfg.as_of))
         history = engine.macro_history()
     until = int(cfg.as_of) + 360 + cfg.loss.lgd.months_to_recovery + 1
     paths = prepare_paths(

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["ChainResult", "markov_chain"]
+__all__ = ["ChainResult", "chain_of_moves", "markov_chain"]
 
 
 @dataclass(frozen=True)
@@ -87,3 +87,53 @@ def markov_chain(P: np.ndarray, start: np.ndarray) -> ChainResult:
         transient[:, u + 1] = pi
         entered[:, u] = step[:, T:]
     return ChainResult(transient=transient, entered=entered)
+
+
+def chain_of_moves(moves, start: np.ndarray, states: int) -> ChainResult:
+    """Run the chain of each loan from the probabilities of the moves that can happen.
+
+    The same chain as :func:`markov_chain`, without the moves that cannot happen, and faster: each
+    month reads every move's probabilities of all loans in one contiguous row.
+
+    Parameters
+    ----------
+    moves : mapping of (origin j, destination s) -> ndarray, shape (n, H)
+        Loans' probabilities of moving from transient state j to state s (``s`` in 0 ... states - 1,
+        the first T transient) in month u + 1 ahead; a move that is not given has probability 0.
+        For each origin the probabilities sum to 1.
+    start : ndarray of int, shape (n,)
+        Each loan's transient state at the start.
+    states : int
+        T + A, the number of states.
+
+    Returns
+    -------
+    ChainResult
+        Its arrays are views in the (n, H + 1, T) and (n, H, A) shapes :func:`markov_chain` gives.
+    """
+    start = np.asarray(start, dtype=np.int64)
+    T = int(start.max()) + 1 if start.size else 1
+    T = max([T, *(j + 1 for j, _ in moves)])
+    n, H = next(iter(moves.values())).shape if moves else (start.shape[0], 0)
+    if start.shape != (n,) or ((start < 0) | (start >= T)).any():
+        raise ValueError(f"start states must be {n} integers in 0..{T - 1}")
+    rows = {key: np.ascontiguousarray(value.T) for key, value in moves.items()}  # (H, n): month u is one row
+    into = [sorted((key[0], key) for key in rows if key[1] == s) for s in range(states)]  # moves into s, by origin
+    transient = np.empty((H + 1, T, n))
+    entered = np.empty((H, states - T, n))
+    transient[0] = 0.0
+    transient[0][start, np.arange(n)] = 1.0
+    tmp = np.empty(n)
+    for u in range(H):
+        pi = transient[u]
+        for s in range(states):
+            out = transient[u + 1, s] if s < T else entered[u, s - T]
+            if not into[s]:
+                out[:] = 0.0
+                continue
+            (j, key), *rest = into[s]
+            np.multiply(pi[j], rows[key][u], out=out)
+            for j, key in rest:
+                np.multiply(pi[j], rows[key][u], out=tmp)
+                out += tmp
+    return ChainResult(transient=transient.transpose(2, 0, 1), entered=entered.transpose(2, 0, 1))

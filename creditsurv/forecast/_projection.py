@@ -17,6 +17,14 @@ Any object with
 - ``hazards(raw: dict[str, ndarray]) -> (h_default, h_prepay)``: monthly
   probabilities, flat arrays as long as the inputs.
 
+Chunks of loans are projected in several threads at once, so ``hazards`` must be
+a function of its inputs alone (safe to call from two threads). A fitted model
+also offers a fast route, ``grid_hazards(grid)`` (or ``grid_transitions`` for a
+multi-state model): the inputs as an :class:`~creditsurv.model.InputGrid`, each
+held at the grain it varies at (per age, loan, month or loan-month), so that most
+of the linear predictor is evaluated once per age, loan or month instead of once
+per loan-month. A source without it gets the flat arrays above.
+
 Covariates of future month u
 ----------------------------
 - age ``a + u``; ``log_age = log(a + u)``;
@@ -40,8 +48,12 @@ segment aggregates stay in memory.
 from __future__ import annotations
 
 import dataclasses
+import itertools
 import math
+import os
+from collections import deque
 from collections.abc import Callable, Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -54,6 +66,7 @@ from ..config import WEIGHTED, Collateral, ScenarioWeights
 from ..data import PREVIOUSLY_DEFAULTED
 from ..errors import ConfigError, ModelError, ProjectionError, problem_list
 from ..model import (
+    InputGrid,
     equivalent_psa,
     equivalent_sda,
     hpi_series_name,
@@ -64,7 +77,7 @@ from ..model import (
     smm_to_cpr,
 )
 from ..months import month_ranges
-from ._chain import markov_chain
+from ._chain import chain_of_moves, markov_chain
 from ._scenarios import origination_path
 
 __all__ = [
@@ -309,8 +322,15 @@ class _Book:
     panel: dict  # panel input key -> (n, lag) values at months 0 ... lag - 1 before month_ahead 0
 
 
+def _on_grid(source) -> bool:
+    """Whether ``source`` takes the fast route: its inputs as an :class:`~creditsurv.model.InputGrid`."""
+    return hasattr(source, "grid_transitions") if hasattr(source, "transition_probabilities") else hasattr(source, "grid_hazards")
+
+
 def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names, market_rate, hold: bool):
     """Hazards (n, H) per scenario for the loans in ``sl``; also the chunk's geometry."""
+    if _on_grid(source) and not hold:
+        return _grid_chunk(book, sl, spec, source, lookups, hpi_names, market_rate)
     rem = book.remaining[sl]
     n = len(rem)
     H = int(rem.max())
@@ -387,6 +407,117 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
         hp[mask] = hp_flat
         out[scen] = (hd, hp)
     return out, mask, bal_start, bal_end, cal, states or None
+
+
+def _grid_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names, market_rate):
+    """:func:`_hazards_chunk` for a source that reads an :class:`~creditsurv.model.InputGrid`.
+
+    Each input is held at the grain it varies at: static loan columns (and a panel input that is held
+    from the first month) once per loan; macro series once per month when the chunk's loans share
+    their start month (always, here: the reporting month, or one origination month); current LTV, the
+    rate incentive and panel paths per loan and month. Cells past a loan's maturity get valid values
+    (its first month's) and zero hazards, as on the general route.
+    """
+    rem = book.remaining[sl]
+    n = len(rem)
+    H = int(rem.max())
+    u = np.arange(1, H + 1)
+    mask = u[None, :] <= rem[:, None]
+    rate = book.rate[sl]
+    bal = scheduled_balance(book.balance[sl][:, None], rate[:, None], rem[:, None], np.arange(0, H + 1)[None, :])
+    bal_start, bal_end = bal[:, :-1], bal[:, 1:]
+    start = book.start_idx[sl]
+    cal = start[:, None] + u[None, :]
+    shared_start = bool((start == start[0]).all())
+    ages = book.age[sl][:, None] + u[None, :]
+    cap = getattr(source, "age_cap", None)
+    if cap is not None:  # the age-tail rule hold: older months read the last supported age
+        np.minimum(ages, int(cap), out=ages)
+    loan = {col: book.static[col][sl] for col in spec.static}
+    cell = {}
+    for rule in spec.panel:
+        if rule.get("projection", "hold") == "hold" and rule["lag"] <= 1:  # every month reads the last value
+            loan[rule["key"]] = book.panel[rule["key"]][sl][:, 0]
+        else:
+            cell[rule["key"]] = _panel_path(rule, book.panel[rule["key"]][sl], H)
+    beyond = ~mask
+
+    def macro(lk, series, lag):
+        if shared_start:
+            return "month", lk.get(series, int(start[0]) + u - lag)
+        values = lk.get(series, cal - lag)
+        np.copyto(values, values[:, :1], where=beyond)
+        return "cell", values
+
+    out, states = {}, {}
+    for scen, lk in lookups.items():
+        grains = {"loan": loan, "month": {}, "cell": dict(cell)}
+        for name, series, lag in spec.macro:
+            g, values = macro(lk, series, lag)
+            grains[g][name] = values
+        if spec.ltv:
+            codes = book.region_code[sl]
+            hpi_now = np.empty((n, H))
+            hpi_orig = np.empty(n)
+            orig = book.orig_idx[sl]
+            # the index as of the start of the month (spec.hpi_lag earlier), never before the valuation at origination
+            hpi_months = np.maximum(cal - spec.hpi_lag, orig[:, None])
+            for c in np.unique(codes):
+                rows = codes == c
+                hpi_now[rows] = lk.get(hpi_names[c], hpi_months[rows])
+                hpi_orig[rows] = lk.get(hpi_names[c], orig[rows])
+            value_now = book.value[sl][:, None] * hpi_now / hpi_orig[:, None]
+            ltv = bal_start / value_now
+            np.copyto(ltv, ltv[:, :1], where=beyond)
+            grains["cell"]["current_ltv"] = ltv
+        if spec.incentive:
+            g, market = macro(lk, market_rate, spec.rate_lag)
+            grains["cell"]["rate_incentive"] = 100.0 * rate[:, None] - (market[None, :] if g == "month" else market)
+        grid = InputGrid(ages=ages, **grains)
+        if hasattr(source, "grid_transitions"):
+            hd, hp, states[scen] = _grid_chain_hazards(source, grid, mask, book.state[sl])
+        else:
+            hd, hp = source.grid_hazards(grid)
+        ok = (hd >= 0) & (hp >= 0) & (hd + hp <= 1.0 + 1e-12)  # False for NaN
+        if not ok[mask].all():
+            bad = mask & ~ok
+            raise ModelError(
+                f"scenario {scen!r}: the model gave hazards that are not finite, outside [0, 1] or summing above 1 "
+                f"for {loan_list_text(book.loan_id[sl][bad.any(axis=1)])} in months {month_ranges(np.unique(cal[bad]))}; "
+                "the model cannot be trusted for these loans (check its coefficients and the inputs of those months)"
+            )
+        np.copyto(hd, 0.0, where=beyond)
+        np.copyto(hp, 0.0, where=beyond)
+        out[scen] = (hd, hp)
+    return out, mask, bal_start, bal_end, cal, states or None
+
+
+def _grid_chain_hazards(source, grid, mask, start) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`_chain_hazards` on the fast route: each origin state's moves from the source's grid, then the chain."""
+    states = list(source.states)
+    T, S = len(source.labels), len(states)
+    if start.size and int(start.max()) >= T:
+        raise ProjectionError(f"a loan starts in arrears state {int(start.max())} but the model has {T} states ({', '.join(source.labels)})")
+    beyond = ~mask
+    finite = np.ones(mask.shape, dtype=bool)
+    moves = {}
+    for j, origin in enumerate(source.labels):
+        rows = source.grid_transitions(grid, origin)
+        for s, p in rows.items():
+            finite &= np.isfinite(p) & (p >= 0)
+            # after a loan's term nothing moves
+            np.copyto(p, 1.0 if s == j else 0.0, where=beyond)
+            moves[(j, s)] = p
+        if j not in rows:
+            moves[(j, j)] = beyond.astype(float)
+    finite |= beyond
+    for p in moves.values():
+        np.copyto(p, 0.0, where=~np.isfinite(p))
+    chain = chain_of_moves(moves, start, S)
+    hazards = chain.hazards()
+    hd, hp = hazards[:, :, states.index("default") - T], hazards[:, :, states.index("prepaid") - T]
+    # a month whose transition probabilities are not finite probabilities must not pass as a hazard
+    return np.where(finite, hd, np.nan), np.where(finite, hp, np.nan), chain.transient
 
 
 @dataclass(frozen=True)
@@ -906,6 +1037,7 @@ def project_loans(
     curve_writer: Callable[[pa.Table], None] | None = None,
     term_writer: Callable[[pa.Table], None] | None = None,
     on_chunk: Callable[[ChunkProjection], None] | None = None,
+    threads: int | None = None,
 ) -> ProjectionResult:
     """Project every live loan under every scenario, chunk by chunk.
 
@@ -950,6 +1082,9 @@ def project_loans(
         start: the year's marginal PDs added up, divided by S(12(y-1)).
     on_chunk : callable(ChunkProjection), optional
         Further consumer of each chunk (used by loss).
+    threads : int, optional
+        Threads that project chunks at the same time (default: one per available core). The writers,
+        ``on_chunk`` and the sums receive the chunks in order, so every result is the same for any number.
 
     Returns
     -------
@@ -972,10 +1107,14 @@ def project_loans(
     )
     n_all = len(book.frame)
     pooled = _SegmentPool(book, book.frame, (*scenarios, WEIGHTED), segment_column, band_column, band_edges)
-    for start in range(0, n_all, chunk_size):
-        sl = slice(start, min(start + chunk_size, n_all))
+
+    def work(sl):
         chunk = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=False)
-        _project_chunk(book, sl, chunk, scenarios, w, pooled, curve_writer, term_writer, on_chunk)
+        return chunk, _chunk_curves(chunk, scenarios, w)
+
+    slices = [slice(start, min(start + chunk_size, n_all)) for start in range(0, n_all, chunk_size)]
+    for sl, (chunk, curves) in in_order(work, slices, threads):
+        _project_chunk(book, sl, chunk, curves, scenarios, w, pooled, curve_writer, term_writer, on_chunk)
     sums = pooled.finish(w, scenarios)
     return _projection_result(book, pooled, sums, segment_column, scenarios, w, as_of_idx, band_edges)
 
@@ -1010,20 +1149,66 @@ def _live_book(loans, source, paths, as_of_idx, collateral: Collateral):
     return spec, book, hpi_names, lookups
 
 
-def _project_chunk(book, sl, chunk, scenarios, w, pooled, curve_writer, term_writer, on_chunk) -> None:
-    """Curves of one chunk under each scenario and weighted, added to the pool and handed to the writers.
+def in_order(work, items, threads: int | None = None):
+    """``(item, work(item))`` for each of ``items``, in their order, computed in ``threads`` threads.
 
-    ``chunk`` is what :func:`_hazards_chunk` returns for the loans ``sl``. The
-    weighted scenario's hazards are the ones its curves imply.
+    ``work`` must be a pure function of its item (numpy releases the interpreter lock in its loops, so
+    chunks of arrays run in parallel). At most ``threads + 1`` results wait at a time, so memory stays
+    bounded by a few chunks; whatever adds the results up does so in the items' order, so the sums are
+    the same for any number of threads. ``None``: one thread per available core.
     """
-    haz, mask, bal_start, bal_end, cal, states = chunk
-    H = mask.shape[1]
-    names = (*scenarios, WEIGHTED)
+    threads = available_cores() if threads is None else int(threads)
+    if threads < 1:
+        raise ProjectionError(f"threads must be at least 1, got {threads}")
+    if threads == 1 or len(items) < 2:
+        for item in items:
+            yield item, work(item)
+        return
+    with ThreadPoolExecutor(max_workers=threads) as pool:
+        pending = deque()
+        queue = iter(items)
+        for item in itertools.islice(queue, threads + 1):
+            pending.append((item, pool.submit(work, item)))
+        try:
+            while pending:
+                item, future = pending.popleft()
+                following = next(queue, None)
+                if following is not None:
+                    pending.append((following, pool.submit(work, following)))
+                yield item, future.result()
+        finally:
+            for _, future in pending:
+                future.cancel()
+
+
+def available_cores() -> int:
+    """The cores this process may run on."""
+    try:
+        return max(len(os.sched_getaffinity(0)), 1)
+    except AttributeError:  # not on Linux
+        return max(os.cpu_count() or 1, 1)
+
+
+def _chunk_curves(chunk, scenarios, w) -> dict:
+    """Curves of one chunk under each scenario and weighted; adds the weighted hazards (the ones its curves imply)
+    and state probabilities to ``chunk``."""
+    haz, states = chunk[0], chunk[-1]
     curves = {s: Curves.from_hazards(*haz[s]) for s in scenarios}
     curves[WEIGHTED] = Curves.weighted(curves, {s: w[s] for s in scenarios})
     haz[WEIGHTED] = curves[WEIGHTED].hazards()
     if states is not None:  # state probabilities mix linearly over scenarios
         states[WEIGHTED] = sum(w[s] * states[s] for s in scenarios)
+    return curves
+
+
+def _project_chunk(book, sl, chunk, curves, scenarios, w, pooled, curve_writer, term_writer, on_chunk) -> None:
+    """One chunk's curves (:func:`_chunk_curves`) added to the pool and handed to the writers, in the chunks' order.
+
+    ``chunk`` is what :func:`_hazards_chunk` returns for the loans ``sl``.
+    """
+    haz, mask, bal_start, bal_end, cal, states = chunk
+    H = mask.shape[1]
+    names = (*scenarios, WEIGHTED)
 
     ages = book.age[sl][:, None] + np.arange(1, H + 1)[None, :]
     pooled.add(sl, curves, haz, mask, bal_start, bal_end, ages)
@@ -1226,6 +1411,7 @@ def origination_pd(
     extension=None,
     chunk_size: int = 2000,
     collateral: Collateral = Collateral(),
+    threads: int | None = None,
 ) -> pd.Series:
     """Lifetime PD of each loan as it could be projected at its origination month.
 
@@ -1259,6 +1445,8 @@ def origination_pd(
         (months after a loan's origination are not read).
     extension : config ``ScenarioExtension``, optional
         The reversion's months and held series (default: 24 months, none held).
+    threads : int, optional
+        As for :func:`project_loans`.
 
     Returns
     -------
@@ -1276,24 +1464,30 @@ def origination_pd(
         ages = np.zeros(n_all, dtype=np.int64)
     # loans sorted by origination month: each month's loans are one run of rows, projected on that month's path
     bounds = np.flatnonzero(np.diff(book.start_idx)) + 1
+    lookups, chunks = {}, []
     for first, stop in zip(np.r_[0, bounds], np.r_[bounds, n_all]):
         group = slice(int(first), int(stop))
         o = int(book.start_idx[first])
         path = origination_path(macro, o, o + int(book.remaining[group].max()) + 1, extension)
-        lookups = {"origination": MacroLookup(path)}
+        lookups[o] = {"origination": MacroLookup(path)}
         sub = _Book(**{f.name: _rows(getattr(book, f.name), group) for f in dataclasses.fields(_Book)})
-        check_coverage(lookups, _coverage_needs(sub, spec, hpi_names, collateral.market_rate_series, hold=False))
-        for start in range(group.start, group.stop, chunk_size):
-            sl = slice(start, min(start + chunk_size, group.stop))
-            haz, *_ = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=False)
-            curves = Curves.from_hazards(*haz["origination"])
-            s, f_d = curves.survival, curves.cum_default
-            # a loan at or past its term is compared over its last contractual month (see remaining_term)
-            a = np.clip(ages[sl], 0, book.remaining[sl] - 1)
-            rows = np.arange(len(a))
-            f_a = np.where(a > 0, f_d[rows, np.maximum(a - 1, 0)], 0.0)
-            s_a = np.where(a > 0, s[rows, np.maximum(a - 1, 0)], 1.0)
-            out[sl] = np.where(s_a > 0, (f_d[:, -1] - f_a) / np.where(s_a > 0, s_a, 1.0), 0.0)
+        check_coverage(lookups[o], _coverage_needs(sub, spec, hpi_names, collateral.market_rate_series, hold=False))
+        chunks += [(slice(start, min(start + chunk_size, group.stop)), o) for start in range(group.start, group.stop, chunk_size)]
+
+    def work(item):
+        sl, o = item
+        haz, *_ = _hazards_chunk(book, sl, spec, source, lookups[o], hpi_names, collateral.market_rate_series, hold=False)
+        curves = Curves.from_hazards(*haz["origination"])
+        s, f_d = curves.survival, curves.cum_default
+        # a loan at or past its term is compared over its last contractual month (see remaining_term)
+        a = np.clip(ages[sl], 0, book.remaining[sl] - 1)
+        rows = np.arange(len(a))
+        f_a = np.where(a > 0, f_d[rows, np.maximum(a - 1, 0)], 0.0)
+        s_a = np.where(a > 0, s[rows, np.maximum(a - 1, 0)], 1.0)
+        return np.where(s_a > 0, (f_d[:, -1] - f_a) / np.where(s_a > 0, s_a, 1.0), 0.0)
+
+    for (sl, _), values in in_order(work, chunks, threads):
+        out[sl] = values
     return pd.Series(out, index=pd.Index(book.loan_id, name="loan_id"), name="pd_lifetime_origination").sort_index()
 
 

@@ -616,7 +616,7 @@ class _EclAccumulator:
 
 
 def _pd_at_origination(
-    frame, in_default, staging, source, first_path, *, chunk_size, collateral: Collateral, extension
+    frame, in_default, staging, source, first_path, *, chunk_size, collateral: Collateral, extension, threads
 ) -> np.ndarray:
     """Lifetime PD at origination per loan: the configured column, or projected with the origination month's information."""
     if staging.pd_at_origination_column:
@@ -633,7 +633,7 @@ def _pd_at_origination(
     if not len(frame):
         return np.zeros(0)
     return origination_pd(
-        frame, source, first_path, extension=extension, chunk_size=chunk_size, collateral=collateral
+        frame, source, first_path, extension=extension, chunk_size=chunk_size, collateral=collateral, threads=threads
     ).to_numpy()
 
 
@@ -869,6 +869,7 @@ def expected_credit_loss(
     term_writer: Callable[[pa.Table], None] | None = None,
     on_chunk: Callable[[ChunkProjection], None] | None = None,
     progress: Callable[[int, int], None] | None = None,
+    threads: int | None = None,
 ) -> EclResult:
     """Stage every loan and compute its 12-month, lifetime and reported ECL (on the CECL basis: no stages, the
     lifetime ECL of every loan is its allowance).
@@ -912,6 +913,8 @@ def expected_credit_loss(
         A further consumer of each chunk's projection (a loan-level cut of the curves), after the ECL's own.
     progress : callable(done, total), optional
         Called after each chunk with the loans projected so far.
+    threads : int, optional
+        Threads of the projection (default: one per available core); every result is the same for any number.
 
     Returns
     -------
@@ -952,7 +955,7 @@ def expected_credit_loss(
     proj = project_loans(
         live, source, paths, as_of_idx=as_of_idx, weights=w, chunk_size=chunk_size, collateral=collateral, segment_column="segment",
         band_column=band_column, band_edges=band_edges, curve_writer=curve_writer, term_writer=term_writer,
-        on_chunk=each_chunk,
+        on_chunk=each_chunk, threads=threads,
     )
     names = (*scenarios, WEIGHTED)
     measures = _live_measures(len(frame), live_rows, names, proj, acc)
@@ -968,7 +971,7 @@ def expected_credit_loss(
     else:
         pd_orig = _pd_at_origination(
             frame, in_default, staging, source, paths[scenarios[0]],
-            chunk_size=chunk_size, collateral=collateral, extension=extension,
+            chunk_size=chunk_size, collateral=collateral, extension=extension, threads=threads,
         )  # fmt: skip
         pd_staging = measures["pd_lifetime"][:, names.index(staging_scenario(staging, scenarios))].copy()
         stages = allocate_stages(

@@ -6,7 +6,13 @@ loan-month (``required_inputs``) and the monthly default and prepayment
 probabilities for them (``hazards(raw)``).
 """
 
-from ._features import FeatureSpec, RawInput, feature_spec, natural_spline_basis
+from ._features import (
+    FeatureSpec,
+    InputGrid,
+    RawInput,
+    feature_spec,
+    natural_spline_basis,
+)
 from ._hazard import (
     CAUSES,
     MULTI_STATE_FORMAT,
@@ -61,7 +67,7 @@ from ._speeds import (
 
 __all__ = [
     "DESIGNS", "MULTI_STATE_FORMAT", "MultiStateResults", "N_CODES", "fit_multi_state", "fit_outcomes", "read_model_file", "results_from_dict",
-    "state_codes", "BenchmarkCurves", "CAUSES", "TRUST_LIMITS", "FeatureSpec", "HazardSource", "FirstPass", "batch_design", "batch_sums", "check_fit_arguments",
+    "state_codes", "BenchmarkCurves", "CAUSES", "TRUST_LIMITS", "FeatureSpec", "InputGrid", "HazardSource", "FirstPass", "batch_design", "batch_sums", "check_fit_arguments",
     "development_window", "fit_fingerprint", "fit_from_sums", "hazard_source", "hpi_series_name", "with_age_tail", "macro_key", "panel_key", "parse_macro_key", "parse_panel_key", "scheduled_balance", "scheduled_balance_sql", "raw_design_sql", "resolve_collapse", "symmetric", "HazardResults", "HazardTable", "RawInput",
     "cdr_to_mdr", "cpr_to_smm", "equivalent_psa", "equivalent_sda", "feature_spec", "fit_hazard", "fit_model",
     "load_model", "loosened_limits", "mdr_to_cdr", "natural_spline_basis", "psa_cpr", "sda_cdr", "smm_to_cpr", "speeds_to_hazards",

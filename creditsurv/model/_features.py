@@ -66,6 +66,7 @@ from ._schedule import scheduled_balance_sql
 
 __all__ = [
     "FeatureSpec",
+    "InputGrid",
     "RawInput",
     "SpecInputs",
     "feature_spec",
@@ -895,6 +896,108 @@ class FeatureSpec:
             st = lrn["covariates"][name]
             x = (x - st["mean"]) / st["sd"]
         return x[:, None]
+
+
+    # ----------------------------------------------------------------- projection grids
+
+    def grid_predictors(self, beta, grid: "InputGrid") -> np.ndarray:
+        """Linear predictors of a block of loans x months ahead, shape (K, n, H): the design times ``beta`` (p, K).
+
+        Each term is evaluated at the grain its input varies at (:class:`InputGrid`): the intercept, the age
+        baseline and age terms once per distinct age, loan inputs once per loan, month inputs once per month,
+        and only the rest per cell; an interaction of two grains is evaluated per cell. The parts are then
+        added cell by cell. Equal to ``design(raw) @ beta`` on the cells up to rounding (the order of the
+        sum differs), with the same errors for missing or bad values.
+        """
+        lrn = self._require_learned()
+        beta = np.asarray(beta, dtype=np.float64)
+        ages = np.asarray(grid.ages, dtype=np.int64)
+        n, H = ages.shape
+        if beta.shape[0] != len(self.columns):
+            raise FeatureError(f"coefficients have {beta.shape[0]} rows for {len(self.columns)} design columns")
+        lo = int(ages.min()) if ages.size else 0
+        table = np.arange(lo, (int(ages.max()) if ages.size else 0) + 1, dtype=np.float64)
+        raw = {
+            "age": {"age": table},
+            "loan": dict(grid.loan),
+            "month": dict(grid.month),
+            "cell": {k: np.asarray(v).reshape(-1) for k, v in grid.cell.items()},
+        }
+        size = {"age": table.shape[0], "loan": n, "month": H, "cell": n * H}
+        index = ages - lo
+
+        def grain(key: str) -> str:
+            if key in ("age", "log_age"):
+                return "age"
+            for g in ("loan", "month", "cell"):
+                if key in raw[g]:
+                    return g
+            raise FeatureError(f"grid inputs lack {key!r} (have: {', '.join(sorted(k for g in raw.values() for k in g))})")
+
+        def per_cell(g: str, values: np.ndarray) -> np.ndarray:
+            if g == "age":
+                return values[index.reshape(-1)]
+            if g == "loan":
+                return np.repeat(values, H, axis=0)
+            if g == "month":
+                return np.tile(values, (n, 1))
+            return values
+
+        blocks = {g: ([], []) for g in size}  # grain -> (column indices, value blocks)
+        base = self.baseline_design(table)
+        blocks["age"][0].extend(range(base.shape[1]))
+        blocks["age"][1].append(base)
+        col = base.shape[1]
+        terms = {}
+        for c in self.covariates:
+            g = grain(input_key(c))
+            values = self._term_values(c, raw[g], size[g], lrn)
+            terms[c["name"]] = (g, values)
+            blocks[g][0].extend(range(col, col + values.shape[1]))
+            blocks[g][1].append(values)
+            col += values.shape[1]
+        for a, b in self.interactions:
+            (ga, A), (gb, B) = terms[a], terms[b]
+            g = ga
+            if ga != gb:
+                A, B, g = per_cell(ga, A), per_cell(gb, B), "cell"
+            for i in range(A.shape[1]):
+                blocks[g][0].extend(range(col, col + B.shape[1]))
+                blocks[g][1].append(A[:, i : i + 1] * B)
+                col += B.shape[1]
+        parts = {
+            g: np.concatenate(vals, axis=1) @ beta[cols] for g, (cols, vals) in blocks.items() if cols and g != "cell"
+        }  # (size of the grain, K)
+        K = beta.shape[1]
+        out = np.empty((K, n, H))
+        for k in range(K):
+            np.take(parts["age"][:, k], index, out=out[k])
+            if "loan" in parts:
+                out[k] += parts["loan"][:, k, None]
+            if "month" in parts:
+                out[k] += parts["month"][None, :, k]
+        cols, vals = blocks["cell"]
+        if cols:
+            X = vals[0] if len(vals) == 1 else np.concatenate(vals, axis=1)
+            out += (beta[cols].T @ X.T).reshape(K, n, H)
+        return out
+
+
+@dataclass(frozen=True)
+class InputGrid:
+    """The raw inputs of a block of ``n`` loans x ``H`` months ahead, each held at the grain it varies at.
+
+    ``ages`` (n, H) int is the loan age of each cell (the inputs ``age`` and ``log_age`` are read from it);
+    ``loan`` holds the inputs constant over a loan's months, arrays (n,); ``month`` the inputs common to
+    every loan of the block, arrays (H,) by month ahead; ``cell`` the inputs that vary by loan and month,
+    arrays (n, H). Every cell must hold a valid value, also cells past a loan's maturity (they are
+    evaluated, then left out by the caller).
+    """
+
+    ages: np.ndarray
+    loan: Mapping[str, np.ndarray] = field(default_factory=dict)
+    month: Mapping[str, np.ndarray] = field(default_factory=dict)
+    cell: Mapping[str, np.ndarray] = field(default_factory=dict)
 
 
 def _example_loans(con, body: str, params, condition: str, limit: int = 5) -> str:

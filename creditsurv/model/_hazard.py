@@ -96,6 +96,28 @@ def _multinomial(eta: np.ndarray) -> np.ndarray:
     return e / (np.exp(-m) + e.sum(axis=1))[:, None]
 
 
+def outcome_probabilities(eta: np.ndarray, kind: str) -> np.ndarray:
+    """Probabilities of the outcomes from linear predictors ``eta`` (K, ...), outcome on the first axis, in place.
+
+    ``multinomial``: exp(eta_k) / (1 + sum_j exp(eta_j)) (as :func:`_multinomial`); ``cause_specific``:
+    each outcome's own logistic 1 / (1 + exp(-eta_k)).
+    """
+    if kind != "multinomial":
+        np.negative(eta, out=eta)
+        np.exp(eta, out=eta)
+        eta += 1.0
+        return np.reciprocal(eta, out=eta)
+    m = np.maximum(eta.max(axis=0), 0.0)
+    np.subtract(eta, m, out=eta)
+    np.exp(eta, out=eta)
+    np.negative(m, out=m)
+    den = np.exp(m, out=m)
+    for k in range(eta.shape[0]):
+        den += eta[k]
+    eta /= den
+    return eta
+
+
 def check_saved_model(model, limits: dict, path) -> None:
     """Raise ``ModelError`` when a saved model (``model.path``) has fewer events per parameter than ``limits``.
 
@@ -233,6 +255,24 @@ class HazardResults(SpecInputs):
     def hazards(self, raw) -> tuple[np.ndarray, np.ndarray]:
         """Alias of :meth:`predict_hazards` (the projection's hazard-source protocol)."""
         return self.predict_hazards(raw)
+
+    def grid_probabilities(self, grid) -> np.ndarray:
+        """Probabilities of the :attr:`causes` for a block of loans x months ahead, shape (K, n, H).
+
+        ``grid`` is an :class:`~creditsurv.model.InputGrid`; each term is evaluated at its own grain
+        (:meth:`FeatureSpec.grid_predictors`). Equal to :meth:`predict_hazards` (and :meth:`probabilities`)
+        on the cells up to rounding.
+        """
+        eta = self.spec.grid_predictors(self.params[list(self.causes)].to_numpy(), grid)
+        return outcome_probabilities(eta, self.kind)
+
+    def grid_hazards(self, grid) -> tuple[np.ndarray, np.ndarray]:
+        """Hazards of default and prepayment, each (n, H), for a block of loans x months ahead (the projection's fast
+        route; see :meth:`grid_probabilities`)."""
+        h = self.grid_probabilities(grid)
+        out = {c: h[i] for i, c in enumerate(self.causes)}
+        zero = np.zeros(h.shape[1:])
+        return out.get("default", zero), out.get("prepay", zero)
 
     def to_dict(self) -> dict:
         """The model as JSON-safe plain data (the layout :meth:`save` writes)."""

@@ -184,6 +184,20 @@ class MultiStateResults(SpecInputs):
         out[:, states.index(self.references[origin])] = 1.0 - fitted.sum(axis=1)
         return out
 
+    def grid_transitions(self, grid, origin: str) -> dict[int, np.ndarray]:
+        """Monthly probabilities (n, H) of each end state reachable from ``origin``, for a block of loans x months ahead.
+
+        The projection's fast route (see :meth:`HazardResults.grid_probabilities`): keyed by the end state's
+        position in :attr:`states`; an end state never reached from ``origin`` is left out (probability 0).
+        Equal to :meth:`transition_probabilities` on the cells up to rounding.
+        """
+        model = self.origins[origin]
+        fitted = model.grid_probabilities(grid)
+        states = self.states
+        out = {states.index(name): fitted[i] for i, name in enumerate(model.causes)}
+        out[states.index(self.references[origin])] = 1.0 - fitted.sum(axis=0)
+        return out
+
     def summary(self, alpha: float = 0.05) -> pd.DataFrame:
         """Tidy coefficients: origin, destination, cause (the move, ``<origin> to <destination>``), term, estimate,
         std_error, z, p_value, ci_lo, ci_hi; terms held at zero are left out."""
