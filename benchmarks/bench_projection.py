@@ -1,21 +1,34 @@
-"""Benchmark: projection and ECL of a large book, time and peak memory, side by side.
+"""Benchmark: projection and ECL of a large book beside the arithmetic floor, time and peak memory, side by side.
 
 The book is the demo book at its reporting month (12,903 live loans of the
 fictional lender, ages 3 to 105 months, terms up to 360), replicated under new
 loan ids to N loans, projected under the demo's three scenarios with the demo
-model (fitted once on the development window). Each route runs in its own
-subprocess so that its peak memory (``ru_maxrss``) is its own:
+model fitted once on the development window as a competing-risk multinomial
+logit (``--model multinomial``, the default) or as the demo's multi-state model
+(``--model multi_state``). Each route runs in its own subprocess so that its
+peak memory (``ru_maxrss``) is its own:
 
-``ecl``        ``expected_credit_loss``: projection, staging, collateral LGD,
-               discounting, 12-month and lifetime ECL, PD at origination;
-``ecl+tables`` the same, also writing the two loan-by-month Parquet tables;
-``hazards``    only the model's hazards for the same loan-months (the design
-               and the logit, nothing else): the floor the others are compared to.
+``ecl``         ``expected_credit_loss``: projection, staging (with the PD at
+                origination, a second projection of every loan from its
+                origination month), collateral LGD, discounting, 12-month and
+                lifetime ECL, on every available core;
+``ecl+tables``  the same, also writing the three loan-by-month Parquet tables;
+``floor``       the arithmetic floor on one core: for the same loans and months,
+                chunk by chunk, each cause's linear predictor as a per-age, a
+                per-loan, a per-scenario-month and one per-loan-and-month term
+                added up, the multinomial probabilities, the survival
+                ``cumprod`` and the incidence ``cumsum`` of both causes. For
+                ``--model multi_state`` the same per origin state and move of the
+                demo model (9 linear predictors), then the chain's
+                vector-matrix step per loan-month and the absorbed mass.
+
+The table's last column is each route's time over the floor's.
 
 Run::
 
     python benchmarks/bench_projection.py --loans 100000,1000000
-    python benchmarks/bench_projection.py --loans 100000 --routes ecl,ecl+tables,hazards
+    python benchmarks/bench_projection.py --loans 100000 --model multi_state
+    python benchmarks/bench_projection.py --loans 100000 --routes ecl,ecl+tables,floor
 
 Prints a table of time, peak memory and ratios; paste it into the README.
 """
@@ -32,6 +45,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 DATA = ROOT / "benchmarks" / "_data"
+CHUNK = 256  # loans per chunk of the floor: the projection's default
 
 
 def _demo(kind: str = "multinomial"):
@@ -64,7 +78,7 @@ def _demo(kind: str = "multinomial"):
     paths = prepare_paths(
         cfg.scenarios, history, as_of_idx=int(cfg.as_of), until_idx=until,
         extension=cfg.scenario_extension, required_series=macro_series_needed(model, cfg),
-    )
+    )  # fmt: skip
     return cfg, book, paths, model
 
 
@@ -77,67 +91,105 @@ def _replicate(book, n: int):
     return big.reset_index(drop=True)
 
 
-def route(name: str, n: int) -> dict:
+def _floor(age0, remaining, scenarios: int, moves: dict | None) -> None:
+    """The arithmetic floor (module docstring) over the loans' remaining months, in chunks of ``CHUNK`` loans.
+
+    ``moves``: None for the competing-risk model (two causes), else per origin state the end states its
+    multinomial logit gives (the rest of the row, staying, is the reference).
+    """
     import numpy as np
 
+    rng = np.random.default_rng(0)
+    origins = moves or {0: (1, 2)}
+    K = sum(len(v) for v in origins.values())  # linear predictors
+    T = len(origins)
+    H_all = int(remaining.max())
+    max_age = int(age0.max()) + H_all + 1
+    per_age = rng.normal(-5.0, 0.3, (K, max_age))
+    per_month = rng.normal(0.0, 0.1, (scenarios, K, H_all))
+    for start in range(0, len(age0), CHUNK):
+        rem = remaining[start : start + CHUNK]
+        n, H = len(rem), int(rem.max())
+        ages = age0[start : start + CHUNK, None] + np.arange(1, H + 1)[None, :]
+        per_loan = rng.normal(0.0, 0.3, (K, n))
+        cell = rng.uniform(0.2, 1.0, (n, H))  # a loan-by-month input (current LTV)
+        for sc in range(scenarios):
+            eta = np.empty((K, n, H))
+            for k in range(K):
+                np.take(per_age[k], ages, out=eta[k])
+                eta[k] += per_loan[k][:, None]
+                eta[k] += per_month[sc, k, None, :H]
+                eta[k] += 0.8 * cell
+            np.exp(eta, out=eta)
+            if moves is None:
+                den = 1.0 + eta[0] + eta[1]
+                hd, hp = eta[0] / den, eta[1] / den
+                surv = np.cumprod(1.0 - hd - hp, axis=1)
+                prev = np.concatenate([np.ones((n, 1)), surv[:, :-1]], axis=1)
+                np.cumsum(prev * hd, axis=1)
+                np.cumsum(prev * hp, axis=1)
+                continue
+            rows, k = {}, 0
+            for j, ends in origins.items():
+                den = 1.0 + eta[k : k + len(ends)].sum(axis=0)
+                for s in ends:
+                    rows[(j, s)] = (eta[k] / den).T.copy()  # (H, n): month u of every loan in one row
+                    k += 1
+                rows[(j, j)] = (1.0 / den).T.copy()
+            pi = np.zeros((H + 1, T, n))
+            pi[0, 0] = 1.0
+            entered = np.zeros((H, 2, n))
+            for u in range(H):
+                for (j, s), p in rows.items():
+                    step = pi[u, j] * p[u]
+                    if s < T:
+                        pi[u + 1, s] += step
+                    else:
+                        entered[u, s - T] += step
+            np.cumsum(entered, axis=0)
+
+
+def route(name: str, n: int, kind: str) -> dict:
+    from creditsurv.config import run_context
     from creditsurv.forecast import TableWriter
     from creditsurv.loss import expected_credit_loss
 
-    cfg, book, paths, model = _demo()
+    cfg, book, paths, model = _demo(kind)
     loans = _replicate(book, n)
-    weights = {s.name: s.weight for s in cfg.scenarios}
-    kwargs = dict(
-        as_of_idx=int(cfg.as_of), weights=weights, loss=cfg.loss, staging=cfg.staging,
-        collateral=cfg.collateral,
-        band_column=cfg.segments.band_column, band_edges=cfg.segments.band_edges,
-    )
-    live = int((~loans["in_default"]).sum())
-    months = int((loans.loc[~loans["in_default"], "term"] - loans.loc[~loans["in_default"], "age"]).sum())
+    options = run_context(cfg).ecl_options()
+    live = loans.loc[~loans["in_default"]]
+    months = int((live["term"] - live["age"]).clip(lower=1).sum())
     t0 = time.perf_counter()
     if name == "ecl":
-        expected_credit_loss(loans, model, paths, **kwargs)
-        rows = 0
+        expected_credit_loss(loans, model, paths, **options)
     elif name == "ecl+tables":
-        with TableWriter(DATA / "bench_curves.parquet", compression="zstd") as c, TableWriter(
-            DATA / "bench_schedule.parquet", compression="zstd"
-        ) as s:
-            expected_credit_loss(loans, model, paths, curve_writer=c, schedule_writer=s, **kwargs)
-        rows = c.rows + s.rows
-        (DATA / "bench_curves.parquet").unlink()
-        (DATA / "bench_schedule.parquet").unlink()
-    elif name == "hazards":
-        # The same loan-months through the model's design and logit, scenario by
-        # scenario, in the same chunks of 2,000 loans, with raw inputs drawn from
-        # the book (ages, LTVs and macro values of realistic ranges).
-        rng = np.random.default_rng(0)
-        per_loan = (loans["term"] - loans["age"]).clip(lower=0).to_numpy()
-        inputs = model.required_inputs
-        rows = 0
-        for start in range(0, n, 2000):
-            m = int(per_loan[start : start + 2000].sum())
-            raw = {}
-            for key in inputs:
-                if key in ("age", "log_age"):
-                    a = rng.integers(1, 360, m).astype(float)
-                    raw[key] = np.log(a) if key == "log_age" else a
-                elif key.startswith("macro:"):
-                    raw[key] = rng.uniform(3, 9, m)
-                elif key == "current_ltv":
-                    raw[key] = rng.uniform(0.2, 1.0, m)
-                elif key == "rate_incentive":
-                    raw[key] = rng.uniform(-3, 2, m)
-                else:
-                    raw[key] = rng.choice(loans[key].to_numpy(), m)
-            for _ in cfg.scenarios:
-                model.hazards(raw)
-            rows += m * len(cfg.scenarios)
+        files = {role: DATA / f"bench_{role}.parquet" for role in ("curve", "term", "schedule")}
+        writers = {role: TableWriter(path, compression="zstd") for role, path in files.items()}
+        try:
+            expected_credit_loss(loans, model, paths, **{f"{r}_writer": w for r, w in writers.items()}, **options)
+        finally:
+            for w in writers.values():
+                w.close()
+            for path in files.values():
+                path.unlink(missing_ok=True)
+    elif name == "floor":
+        moves = None
+        if kind == "multi_state":
+            states = list(model.states)
+            moves = {j: tuple(states.index(c) for c in model.origins[o].causes) for j, o in enumerate(model.labels)}
+        age0 = live["age"].to_numpy(dtype="int64")
+        remaining = (live["term"] - live["age"]).clip(lower=1).to_numpy(dtype="int64")
+        _floor(age0, remaining, len(cfg.scenarios), moves)
     else:
         raise SystemExit(f"unknown route {name}")
-    return {"seconds": time.perf_counter() - t0, "live_loans": live, "loan_months": months * len(cfg.scenarios), "rows_written": rows}
+    seconds = time.perf_counter() - t0
+    return {"seconds": seconds, "live_loans": len(live), "loan_months": months * len(cfg.scenarios)}
 
 
-def run_child(name: str, n: int) -> dict:
-    proc = subprocess.run([sys.executable, __file__, "--child", name, "--n", str(n)], capture_output=True, text=True)
+def run_child(name: str, n: int, kind: str) -> dict:
+    proc = subprocess.run(
+        [sys.executable, __file__, "--child", name, "--n", str(n), "--model", kind], capture_output=True, text=True
+    )
     if proc.returncode != 0:
         return {"error": (proc.stderr.strip().splitlines() or ["failed"])[-1]}
     return json.loads(proc.stdout.strip().splitlines()[-1])
@@ -146,33 +198,36 @@ def run_child(name: str, n: int) -> dict:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--loans", default="100000,1000000")
-    ap.add_argument("--routes", default="ecl,hazards")
+    ap.add_argument("--routes", default="ecl,floor")
+    ap.add_argument("--model", default="multinomial", choices=["multinomial", "multi_state"])
     ap.add_argument("--child")
     ap.add_argument("--n", type=int)
     args = ap.parse_args()
     if args.child:
-        result = route(args.child, args.n)
+        result = route(args.child, args.n, args.model)
         result["peak_mib"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
         print(json.dumps(result))
         return
-    _demo()  # fit and cache the model once, outside the timed routes
+    _demo(args.model)  # fit and cache the model once, outside the timed routes
     table = []
     for n in (int(x) for x in args.loans.split(",")):
-        results = {r: run_child(r, n) for r in args.routes.split(",")}
+        results = {r: run_child(r, n, args.model) for r in args.routes.split(",")}
         for r, res in results.items():
-            print(json.dumps({"loans": n, "route": r, **res}), flush=True)
+            print(json.dumps({"loans": n, "model": args.model, "route": r, **res}), flush=True)
         table.append((n, results))
     print()
-    print("| loans | route | scenario loan-months | time s | peak MiB | time / hazards-only |")
-    print("|---|---|---|---|---|---|")
+    print(f"model: {args.model}")
+    print("| loans | route | scenario loan-months | time s | M loan-months/s | peak MiB | time / floor |")
+    print("|---|---|---|---|---|---|---|")
     for n, results in table:
-        floor = results.get("hazards", {}).get("seconds")
+        floor = results.get("floor", {}).get("seconds")
         for r, res in results.items():
             if "error" in res:
-                print(f"| {n:,} | {r} | failed: {res['error']} | | | |")
+                print(f"| {n:,} | {r} | failed: {res['error']} | | | | |")
                 continue
             ratio = f"{res['seconds'] / floor:.1f}" if floor else ""
-            print(f"| {n:,} | {r} | {res['loan_months']:,} | {res['seconds']:.1f} | {res['peak_mib']:,.0f} | {ratio} |")
+            rate = res["loan_months"] / res["seconds"] / 1e6
+            print(f"| {n:,} | {r} | {res['loan_months']:,} | {res['seconds']:.1f} | {rate:.1f} | {res['peak_mib']:,.0f} | {ratio} |")
 
 
 if __name__ == "__main__":

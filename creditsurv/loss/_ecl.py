@@ -80,6 +80,7 @@ from ..config import (
 )
 from ..errors import ProjectionError, problem_list
 from ..forecast import (
+    CHUNK_SIZE,
     WEIGHTED,
     ChunkProjection,
     MacroLookup,
@@ -559,7 +560,8 @@ class _EclAccumulator:
             out.append((share, np.where(ch.mask, ead, 0.0)))
         return out
 
-    def __call__(self, ch: ChunkProjection) -> None:
+    def prepare(self, ch: ChunkProjection) -> dict:
+        """The chunk's ECL by scenario and its schedule rows: a pure function of the chunk (any thread)."""
         n, H = ch.mask.shape
         u = np.arange(1, H + 1)
         r = ch.note_rate[:, None]
@@ -582,12 +584,13 @@ class _EclAccumulator:
         plain = sum(self.weights[s] * lgds[s] for s in self.scenarios)
         with np.errstate(invalid="ignore", divide="ignore"):
             lgds[WEIGHTED] = np.where(mpd_w > 0, num / np.where(mpd_w > 0, mpd_w, 1.0), plain)
-        for s, e in el.items():
-            self.ecl_12m[s][ch.rows] = e[:, :h12].sum(axis=1)
-            self.ecl_life[s][ch.rows] = e.sum(axis=1)
+        out = {
+            "ecl_12m": {s: e[:, :h12].sum(axis=1) for s, e in el.items()},
+            "ecl_life": {s: e.sum(axis=1) for s, e in el.items()},
+        }
         exposed = mpd_w * ead * df
-        self.exposure_12m[ch.rows] = exposed[:, :h12].sum(axis=1)
-        self.exposure_life[ch.rows] = exposed.sum(axis=1)
+        out["exposure_12m"] = exposed[:, :h12].sum(axis=1)
+        out["exposure_life"] = exposed.sum(axis=1)
         if self.writer is not None:
             names = (*self.scenarios, WEIGHTED)
             K = len(names)
@@ -597,22 +600,32 @@ class _EclAccumulator:
             def stack(d):
                 return np.stack([np.broadcast_to(d[s], (n, H)) for s in names], axis=1)[m3]
 
-            self.writer(
-                pa.table(
-                    {
-                        "loan_id": repeat_ids(ch.loans["loan_id"].to_numpy(), counts * K),
-                        "scenario": scenario_column(
-                            names, np.broadcast_to(np.arange(K, dtype=np.int32)[None, :, None], (n, K, H))[m3]
-                        ),
-                        "month_ahead": np.broadcast_to(u.astype(np.int32)[None, None, :], (n, K, H))[m3],
-                        "ead": stack({s: ead for s in names}),
-                        "lgd": stack(lgds),
-                        "marginal_pd": stack(ch.marginal_pd),
-                        "discount_factor": stack({s: df for s in names}),
-                        "expected_loss": stack(el),
-                    }
-                )
+            out["schedule"] = pa.table(
+                {
+                    "loan_id": repeat_ids(ch.loans["loan_id"].to_numpy(), counts * K),
+                    "scenario": scenario_column(
+                        names, np.broadcast_to(np.arange(K, dtype=np.int32)[None, :, None], (n, K, H))[m3]
+                    ),
+                    "month_ahead": np.broadcast_to(u.astype(np.int32)[None, None, :], (n, K, H))[m3],
+                    "ead": stack({s: ead for s in names}),
+                    "lgd": stack(lgds),
+                    "marginal_pd": stack(ch.marginal_pd),
+                    "discount_factor": stack({s: df for s in names}),
+                    "expected_loss": stack(el),
+                }
             )
+        return out
+
+    def __call__(self, ch: ChunkProjection) -> None:
+        """Store the chunk's :meth:`prepare` results (computed here when the projection did not) and write its rows."""
+        done = ch.prepared if ch.prepared is not None else self.prepare(ch)
+        for s in done["ecl_life"]:
+            self.ecl_12m[s][ch.rows] = done["ecl_12m"][s]
+            self.ecl_life[s][ch.rows] = done["ecl_life"][s]
+        self.exposure_12m[ch.rows] = done["exposure_12m"]
+        self.exposure_life[ch.rows] = done["exposure_life"]
+        if self.writer is not None:
+            self.writer(done["schedule"])
 
 
 def _pd_at_origination(
@@ -856,7 +869,7 @@ def expected_credit_loss(
     loss: Loss = Loss(),
     staging: Staging = Staging(),
     default_days_past_due: int | None = 90,
-    chunk_size: int = 2000,
+    chunk_size: int = CHUNK_SIZE,
     collateral: Collateral = Collateral(),
     segment_column: str = "segment",
     band_column: str | None = None,
@@ -955,7 +968,7 @@ def expected_credit_loss(
     proj = project_loans(
         live, source, paths, as_of_idx=as_of_idx, weights=w, chunk_size=chunk_size, collateral=collateral, segment_column="segment",
         band_column=band_column, band_edges=band_edges, curve_writer=curve_writer, term_writer=term_writer,
-        on_chunk=each_chunk, threads=threads,
+        on_chunk=each_chunk, prepare=acc.prepare, threads=threads,
     )
     names = (*scenarios, WEIGHTED)
     measures = _live_measures(len(frame), live_rows, names, proj, acc)

@@ -23,7 +23,12 @@ from ..data import (
     panel_history_sql,
 )
 from ..errors import DataError
-from ..forecast import band_labels, panel_history_columns, with_panel_history
+from ..forecast import (
+    CHUNK_SIZE,
+    band_labels,
+    panel_history_columns,
+    with_panel_history,
+)
 from ..model import HazardResults, MultiStateResults
 from ._statistics import (
     ASSET_CORRELATION,
@@ -895,7 +900,7 @@ def _incidence_section(cfg, engine, model, path, chunk_size, tables, summary, no
         }
 
 
-def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int = 2000) -> ValidationPack:
+def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int = CHUNK_SIZE) -> ValidationPack:
     """Out-of-time backtest, discrimination, calibration, stability and curves of one model.
 
     Parameters
@@ -913,7 +918,7 @@ def validation_pack(cfg, engine, model, *, current_pd_12m=None, chunk_size: int 
     current_pd_12m : array_like, optional
         The current book's probability-weighted 12-month PD; when given, its
         PSI against the development cohort's 12-month PD is reported.
-    chunk_size : int, default 2000
+    chunk_size : int, default 256
         Loans per projection chunk (memory grows with it).
 
     Returns
