@@ -737,3 +737,24 @@ def test_speed_curves_end_at_the_last_age_with_loans():
     assert by_age["mdr"].iloc[:2].tolist() == pytest.approx([0.01, 0.01], rel=1e-12)  # defaulted / exposure
     assert np.isnan(by_age["mdr"].iloc[2])  # nothing exposed to default at age 3: no rate, not 0
     assert by_age["smm"].iloc[2] == pytest.approx(1.6 / 80.0, rel=1e-12)
+
+
+def test_origination_path_is_the_history_then_a_straight_line_to_the_mean_known_then():
+    # Worked by hand: after month o each series moves from its value at o to the mean of its history up to o
+    # in a straight line over 12 months, then stays; house-price series hold their value at o.
+    from creditsurv.config import ScenarioExtension
+    from creditsurv.forecast import origination_path
+
+    hist = _history()
+    o = int(hist.index[40])
+    path = origination_path(hist, o, o + 30, ScenarioExtension(months=12, hold_last_series=("hpi_*",)))
+    assert path.index[0] == hist.index[0] - 1 and path.index[-1] == o + 30
+    pd.testing.assert_frame_equal(path.loc[hist.index[0] : o], hist.loc[: o], check_names=False)
+    for col in ("unemployment_rate", "mortgage_rate"):
+        at_o, mean = hist.loc[o, col], hist.loc[:o, col].mean()
+        k = np.arange(1, 31)
+        np.testing.assert_allclose(path.loc[o + 1 :, col], at_o + (mean - at_o) * np.minimum(k, 12) / 12, rtol=1e-14)
+    assert (path.loc[o + 1 :, "hpi_north"] == hist.loc[o, "hpi_north"]).all()
+    # an origination month before the history takes the history's first month, before and after it
+    early = origination_path(hist, int(hist.index[0]) - 5, int(hist.index[0]) + 3, ScenarioExtension(rule="hold_last"))
+    assert (early.to_numpy() == hist.iloc[0].to_numpy()[None, :]).all()

@@ -19,6 +19,7 @@ import pytest
 from test_projection import AS_OF, WEIGHTS, _paths
 
 from creditsurv.config import Baseline, Collateral, Covariate, ModelSpec
+from creditsurv.errors import ModelError
 from creditsurv.forecast import (
     chain_of_moves,
     markov_chain,
@@ -236,3 +237,11 @@ def test_the_chain_of_the_moves_that_happen_is_the_full_chain():
     moves = {(j, s): P[j, :, :, s].copy() for j in range(T) for s in range(S) if not (j == 0 and s == 2)}
     fast, full = chain_of_moves(moves, start, S), markov_chain(P, start)
     assert np.array_equal(fast.transient, full.transient) and np.array_equal(fast.entered, full.entered)
+
+
+def test_hazards_summing_above_one_on_the_fast_route_name_the_loans():
+    # two cause-specific logits of +10: each hazard near 1, their sum near 2; the first chunk (7 loans) is named
+    model = _model(_spec(), kind="cause_specific")
+    model.params.loc["intercept"] = 10.0
+    with pytest.raises(ModelError, match=r"summing above 1 for 7 loans \(L000, L001"):
+        _projected(model)

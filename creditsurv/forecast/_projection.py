@@ -78,7 +78,7 @@ from ..model import (
 )
 from ..months import month_ranges
 from ._chain import chain_of_moves, markov_chain
-from ._scenarios import origination_path
+from ._scenarios import OriginationPaths
 
 __all__ = [
     "CHUNK_SIZE",
@@ -114,6 +114,14 @@ class MacroLookup:
         self.stop = int(idx.max()) + 1 if len(idx) else 0
         dense = frame.reindex(np.arange(self.start, self.stop))
         self._values = {c: dense[c].to_numpy(dtype=float) for c in frame.columns}
+
+    @classmethod
+    def from_values(cls, start: int, values: np.ndarray, columns) -> MacroLookup:
+        """The lookup of dense values (months x series) whose first row is month ``start``."""
+        out = cls.__new__(cls)
+        out.start, out.stop = int(start), int(start) + values.shape[0]
+        out._values = {c: np.ascontiguousarray(values[:, j]) for j, c in enumerate(columns)}
+        return out
 
     def __contains__(self, series: str) -> bool:
         return series in self._values
@@ -483,9 +491,10 @@ def _grid_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names,
             hd, hp, states[scen] = _grid_chain_hazards(source, grid, mask, book.state[sl])
         else:
             hd, hp = source.grid_hazards(grid)
-        ok = (hd >= 0) & (hp >= 0) & (hd + hp <= 1.0 + 1e-12)  # False for NaN
-        if not ok[mask].all():
-            bad = mask & ~ok
+        # every cell within [0, 1] and summing to at most 1 (min and max are NaN when a cell is): cheap when all are
+        fine = hd.min() >= 0 and hp.min() >= 0 and np.add(hd, hp).max() <= 1.0 + 1e-12
+        if not fine and not ((hd >= 0) & (hp >= 0) & (hd + hp <= 1.0 + 1e-12) | beyond).all():
+            bad = mask & ~((hd >= 0) & (hp >= 0) & (hd + hp <= 1.0 + 1e-12))
             raise ModelError(
                 f"scenario {scen!r}: the model gave hazards that are not finite, outside [0, 1] or summing above 1 "
                 f"for {loan_list_text(book.loan_id[sl][bad.any(axis=1)])} in months {month_ranges(np.unique(cal[bad]))}; "
@@ -1498,11 +1507,11 @@ def origination_pd(
     # loans sorted by origination month: each month's loans are one run of rows, projected on that month's path
     bounds = np.flatnonzero(np.diff(book.start_idx)) + 1
     lookups, chunks = {}, []
+    paths = OriginationPaths(macro, extension)
     for first, stop in zip(np.r_[0, bounds], np.r_[bounds, n_all]):
         group = slice(int(first), int(stop))
         o = int(book.start_idx[first])
-        path = origination_path(macro, o, o + int(book.remaining[group].max()) + 1, extension)
-        lookups[o] = {"origination": MacroLookup(path)}
+        lookups[o] = {"origination": MacroLookup.from_values(*paths.values(o, o + int(book.remaining[group].max()) + 1), paths.columns)}
         sub = _Book(**{f.name: _rows(getattr(book, f.name), group) for f in dataclasses.fields(_Book)})
         check_coverage(lookups[o], _coverage_needs(sub, spec, hpi_names, collateral.market_rate_series, hold=False))
         chunks += [(slice(start, min(start + chunk_size, group.stop)), o) for start in range(group.start, group.stop, chunk_size)]

@@ -312,23 +312,56 @@ def origination_path(history: pd.DataFrame, origination_idx: int, until_idx: int
 
     Returns
     -------
-    DataFrame indexed by ``month_idx`` from ``min(o, first month) - 1`` to ``until_idx``.
+    DataFrame indexed by ``month_idx`` from ``min(o, first month) - 1`` to ``max(until_idx, o + 1)``.
     """
-    rule = getattr(extension, "rule", "revert_to_mean")
-    months = getattr(extension, "months", 24)
-    hold = getattr(extension, "hold_last_series", ())
-    hist, _, first = _checked_history(history, None, "origination view")
-    o = int(origination_idx)
-    known = hist.loc[first: max(o, first)]
-    start = min(o, first) - 1
-    end = max(int(until_idx), o + 1, first)
-    out = pd.DataFrame(np.nan, index=pd.Index(np.arange(start, end + 1), name="month_idx"), columns=list(hist.columns))
-    out.loc[known.index] = known.to_numpy(dtype=float)
-    # months before the history (an origination month among them) take its first month
-    out.loc[out.index < first] = known.iloc[0].to_numpy(dtype=float)[None, :]
-    at_o = pd.DataFrame([known.iloc[-1].to_numpy(dtype=float)], index=pd.Index([o], name="month_idx"), columns=hist.columns)
-    _fill_after_path(out, at_o, known, o, end, rule, months, {}, hold, "origination view")
-    return out.loc[: max(int(until_idx), o + 1)]
+    paths = OriginationPaths(history, extension)
+    start, values = paths.values(origination_idx, until_idx)
+    index = pd.Index(np.arange(start, start + len(values)), name="month_idx")
+    return pd.DataFrame(values, index=index, columns=list(paths.columns))
+
+
+class OriginationPaths:
+    """The paths of :func:`origination_path` for many origination months, from one checked history.
+
+    ``values(o, until_idx)`` gives the first month and the values (months x series) of month o's path.
+    """
+
+    def __init__(self, history: pd.DataFrame, extension=None):
+        self.rule = getattr(extension, "rule", "revert_to_mean")
+        self.months = getattr(extension, "months", 24)
+        hold = getattr(extension, "hold_last_series", ())
+        hist, _, self.first = _checked_history(history, None, "origination view")
+        self.columns = tuple(hist.columns)
+        self.history = hist.to_numpy(dtype=float)
+        self.held = np.array(
+            [self.rule == "hold_last" or any(fnmatch.fnmatchcase(c, pat) for pat in hold) for c in self.columns], dtype=bool
+        )
+
+    def values(self, origination_idx: int, until_idx: int) -> tuple[int, np.ndarray]:
+        o, first = int(origination_idx), self.first
+        known = self.history[: max(o, first) - first + 1]
+        start = min(o, first) - 1
+        end = max(int(until_idx), o + 1, first)
+        out = np.full((end - start + 1, len(self.columns)), np.nan)
+        out[first - start : first - start + len(known)] = known
+        # months before the history (an origination month among them) take its first month
+        out[: first - start] = known[0]
+        last = known[-1]
+        k = np.arange(1, end - o + 1, dtype=float)
+        share = np.minimum(k, self.months) / self.months if self.months > 0 else np.ones(len(k))
+        for j, col in enumerate(self.columns):
+            if self.held[j]:
+                out[o + 1 - start :, j] = last[j]
+                continue
+            present = ~np.isnan(known[:, j])
+            if not present.any():
+                raise ProjectionError(
+                    f"scenario 'origination view': series {col!r} has no history to take a long-run mean from; "
+                    "give scenario_extension.long_run"
+                )
+            target = float(np.where(present, known[:, j], 0.0).sum() / present.sum())  # the mean of the values there
+            out[o + 1 - start :, j] = last[j] + (target - last[j]) * share
+        return start, out[: max(int(until_idx), o + 1) - start + 1]
 
 
 def _checked_history(history: pd.DataFrame, as_of_idx: int | None, name: str) -> tuple[pd.DataFrame, int, int]:

@@ -156,14 +156,29 @@ def collateral_lgd(
     default month at r/12 a month. LGD is 1 where EAD <= 0 would make the
     ratio undefined (no exposure).
     """
-    ead = np.asarray(ead, dtype=float)
+    pv = discounted_recovery(
+        property_value, hpi_origination, hpi_sale, note_rate, months_to_recovery=months_to_recovery,
+        forced_sale_haircut=forced_sale_haircut, sale_costs=sale_costs,
+    )  # fmt: skip
+    return lgd_of_recovery(ead, pv, floor)
+
+
+def discounted_recovery(
+    property_value, hpi_origination, hpi_sale, note_rate, *, months_to_recovery, forced_sale_haircut: float, sale_costs: float
+) -> np.ndarray:
+    """PV(recovery) of :func:`collateral_lgd` at the default month; the arguments broadcast."""
     r = np.asarray(note_rate, dtype=float) / 12.0
     net = max(1.0 - forced_sale_haircut - sale_costs, 0.0)
     recovery = np.asarray(property_value, float) * np.asarray(hpi_sale, float) / np.asarray(hpi_origination, float) * net
-    pv = recovery * (1.0 + r) ** (-np.asarray(months_to_recovery, dtype=float))
+    return recovery * (1.0 + r) ** (-np.asarray(months_to_recovery, dtype=float))
+
+
+def lgd_of_recovery(ead, pv, floor: float) -> np.ndarray:
+    """clip(1 - pv / EAD, floor, 1), and 1 where EAD <= 0 (see :func:`collateral_lgd`)."""
+    ead = np.asarray(ead, dtype=float)
     with np.errstate(invalid="ignore", divide="ignore"):
         lgd = np.where(ead > 0, 1.0 - pv / np.where(ead > 0, ead, 1.0), 1.0)
-    return np.clip(lgd, floor, 1.0)
+    return np.clip(lgd, floor, 1.0, out=lgd)
 
 
 def exposure_at_default(balance_at_onset, note_rate, missed, *, extra_month: bool = False, arrears_fee: float = 0.0):
@@ -520,16 +535,15 @@ class _EclAccumulator:
         self.exposure_12m = np.zeros(n)
         self.exposure_life = np.zeros(n)
 
-    def _lgd(self, s, ch: ChunkProjection, ead):
+    def _lgd_of_routes(self, s, ch: ChunkProjection, exposures, columns: dict) -> list[np.ndarray]:
+        """Per route, the LGD (n, H) of its EAD under scenario ``s``: the recovery is the same for every route."""
         lgd = self.loss.lgd
-        n, H = ead.shape
+        n, H = ch.mask.shape
         if lgd.kind == "constant":
-            seg = ch.loans["segment"].astype(str).to_numpy()
-            per = np.array([lgd.by_segment.get(x, lgd.constant) for x in seg], dtype=float)
-            return np.broadcast_to(per[:, None], (n, H))
+            per = np.array([lgd.by_segment.get(x, lgd.constant) for x in columns["segment"]], dtype=float)
+            return [np.broadcast_to(per[:, None], (n, H))] * len(exposures)
         lk = self.lookups[s]
-        regions = ch.loans[self.region_column].to_numpy()
-        orig = ch.loans["origination_idx"].to_numpy(dtype=np.int64)
+        regions, orig = columns["region"], columns["origination_idx"]
         sale = ch.calendar_month + lgd.months_to_recovery
         hpi_sale = np.empty((n, H))
         hpi_orig = np.empty(n)
@@ -538,11 +552,21 @@ class _EclAccumulator:
             name = self.hpi_names[region]
             hpi_sale[rows] = lk.get(name, sale[rows])
             hpi_orig[rows] = lk.get(name, orig[rows])
-        return collateral_lgd(
-            ead, ch.loans["property_value"].to_numpy(float)[:, None], hpi_orig[:, None], hpi_sale,
-            ch.note_rate[:, None], months_to_recovery=lgd.months_to_recovery,
-            forced_sale_haircut=lgd.forced_sale_haircut, sale_costs=lgd.sale_costs, floor=lgd.floor,
-        )
+        pv = discounted_recovery(
+            columns["property_value"][:, None], hpi_orig[:, None], hpi_sale, ch.note_rate[:, None],
+            months_to_recovery=lgd.months_to_recovery, forced_sale_haircut=lgd.forced_sale_haircut, sale_costs=lgd.sale_costs,
+        )  # fmt: skip
+        return [lgd_of_recovery(e, pv, lgd.floor) for _, e in exposures]
+
+    def _columns(self, ch: ChunkProjection) -> dict:
+        """The loan columns the LGD reads, as arrays, once per chunk."""
+        if self.loss.lgd.kind == "constant":
+            return {"segment": ch.loans["segment"].astype(str).to_numpy()}
+        return {
+            "region": ch.loans[self.region_column].to_numpy(),
+            "origination_idx": ch.loans["origination_idx"].to_numpy(dtype=np.int64),
+            "property_value": ch.loans["property_value"].to_numpy(float),
+        }
 
     def _exposures(self, ch: ChunkProjection) -> list[tuple[float, np.ndarray]]:
         """Per route, its share and EAD(u) (n, H): the balance after the last paid instalment, u - L + 1."""
@@ -571,9 +595,10 @@ class _EclAccumulator:
         df = np.broadcast_to(df, (n, H))
         h12 = min(12, H)
         el, lgds = {}, {}
+        columns = self._columns(ch)
         for s in self.scenarios:
             # the loss at default, mixed over the routes: sum share x LGD(EAD) x EAD; lgd = that / EAD
-            per_route = [self._lgd(s, ch, e) for _, e in exposures]
+            per_route = self._lgd_of_routes(s, ch, exposures, columns)
             at_default = sum(share * lgd * e for (share, e), lgd in zip(exposures, per_route))
             with np.errstate(invalid="ignore", divide="ignore"):
                 lgds[s] = np.where(ead > 0, at_default / np.where(ead > 0, ead, 1.0), per_route[0])
