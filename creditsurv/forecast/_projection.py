@@ -142,6 +142,13 @@ class MacroLookup:
         pos = np.clip(months - self.start, 0, max(self.stop - self.start - 1, 0))
         return self._values[series][pos]
 
+    def get_by_row(self, series, codes: np.ndarray, months: np.ndarray) -> np.ndarray:
+        """Values at ``months`` (n, ...) of the series ``series[codes[i]]`` for row i: one series per row (a region's
+        index), read in one pass."""
+        table = np.stack([self._values[name] for name in series])
+        pos = np.clip(np.asarray(months, dtype=np.int64) - self.start, 0, max(self.stop - self.start - 1, 0))
+        return table[np.asarray(codes).reshape((-1,) + (1,) * (pos.ndim - 1)), pos]
+
 
 # --------------------------------------------------------------------------- inputs
 
@@ -432,7 +439,6 @@ def _grid_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names,
     (its first month's) and zero hazards, as on the general route.
     """
     rem = book.remaining[sl]
-    n = len(rem)
     H = int(rem.max())
     u = np.arange(1, H + 1)
     mask = u[None, :] <= rem[:, None]
@@ -470,15 +476,10 @@ def _grid_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names,
             grains[g][name] = values
         if spec.ltv:
             codes = book.region_code[sl]
-            hpi_now = np.empty((n, H))
-            hpi_orig = np.empty(n)
             orig = book.orig_idx[sl]
             # the index as of the start of the month (spec.hpi_lag earlier), never before the valuation at origination
-            hpi_months = np.maximum(cal - spec.hpi_lag, orig[:, None])
-            for c in np.unique(codes):
-                rows = codes == c
-                hpi_now[rows] = lk.get(hpi_names[c], hpi_months[rows])
-                hpi_orig[rows] = lk.get(hpi_names[c], orig[rows])
+            hpi_now = lk.get_by_row(hpi_names, codes, np.maximum(cal - spec.hpi_lag, orig[:, None]))
+            hpi_orig = lk.get_by_row(hpi_names, codes, orig)
             value_now = book.value[sl][:, None] * hpi_now / hpi_orig[:, None]
             ltv = bal_start / value_now
             np.copyto(ltv, ltv[:, :1], where=beyond)
@@ -1004,7 +1005,9 @@ class _SegmentPool:
         onehot[grp, np.arange(n)] = 1.0
         bal0 = self.balance[sl]
         onehot_b = onehot * bal0[None, :]
-        key = (grp[:, None] * (max_age + 1) + ages)[mask]
+        # every speed sum is zero past a loan's maturity (no hazard, no balance): those cells add 0 to the bin of the
+        # oldest age, so the cells need no selecting
+        key = grp[:, None] * (max_age + 1) + np.minimum(ages, max_age)
         out = {"summary": {}, "ts": [], "sp": []}
         for ki, s in enumerate(self.names):
             c = curves[s]
@@ -1028,7 +1031,7 @@ class _SegmentPool:
                     ("pexp", s_prev * (1.0 - hd) * bal_end),
                     ("ppay", marg_p * bal_end),
                 ):
-                    out["sp"].append((name, ki, np.bincount(key, weights=vals[mask], minlength=size).reshape(G, max_age + 1)))
+                    out["sp"].append((name, ki, np.bincount(key.ravel(), weights=vals.ravel(), minlength=size).reshape(G, max_age + 1)))
         return out
 
     def add(self, sl: slice, sums: dict) -> None:

@@ -543,15 +543,9 @@ class _EclAccumulator:
             per = np.array([lgd.by_segment.get(x, lgd.constant) for x in columns["segment"]], dtype=float)
             return [np.broadcast_to(per[:, None], (n, H))] * len(exposures)
         lk = self.lookups[s]
-        regions, orig = columns["region"], columns["origination_idx"]
-        sale = ch.calendar_month + lgd.months_to_recovery
-        hpi_sale = np.empty((n, H))
-        hpi_orig = np.empty(n)
-        for region in pd.unique(regions):
-            rows = regions == region
-            name = self.hpi_names[region]
-            hpi_sale[rows] = lk.get(name, sale[rows])
-            hpi_orig[rows] = lk.get(name, orig[rows])
+        codes, names, orig = columns["region_code"], columns["hpi_names"], columns["origination_idx"]
+        hpi_sale = lk.get_by_row(names, codes, ch.calendar_month + lgd.months_to_recovery)
+        hpi_orig = lk.get_by_row(names, codes, orig)
         pv = discounted_recovery(
             columns["property_value"][:, None], hpi_orig[:, None], hpi_sale, ch.note_rate[:, None],
             months_to_recovery=lgd.months_to_recovery, forced_sale_haircut=lgd.forced_sale_haircut, sale_costs=lgd.sale_costs,
@@ -562,8 +556,12 @@ class _EclAccumulator:
         """The loan columns the LGD reads, as arrays, once per chunk."""
         if self.loss.lgd.kind == "constant":
             return {"segment": ch.loans["segment"].astype(str).to_numpy()}
+        codes, regions = pd.factorize(ch.loans[self.region_column])
+        if (codes < 0).any():
+            raise ProjectionError(f"loans: no {self.region_column!r} for {loan_list_text(ch.loans['loan_id'][codes < 0])}")
         return {
-            "region": ch.loans[self.region_column].to_numpy(),
+            "region_code": codes,
+            "hpi_names": [self.hpi_names[r] for r in regions],
             "origination_idx": ch.loans["origination_idx"].to_numpy(dtype=np.int64),
             "property_value": ch.loans["property_value"].to_numpy(float),
         }
@@ -596,27 +594,31 @@ class _EclAccumulator:
         h12 = min(12, H)
         el, lgds = {}, {}
         columns = self._columns(ch)
+        rows = self.writer is not None  # the schedule's rows need the (n, H) arrays of every scenario and weighted
+        out = {"ecl_12m": {}, "ecl_life": {}}
         for s in self.scenarios:
             # the loss at default, mixed over the routes: sum share x LGD(EAD) x EAD; lgd = that / EAD
             per_route = self._lgd_of_routes(s, ch, exposures, columns)
             at_default = sum(share * lgd * e for (share, e), lgd in zip(exposures, per_route))
-            with np.errstate(invalid="ignore", divide="ignore"):
-                lgds[s] = np.where(ead > 0, at_default / np.where(ead > 0, ead, 1.0), per_route[0])
+            if rows:
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    lgds[s] = np.where(ead > 0, at_default / np.where(ead > 0, ead, 1.0), per_route[0])
             el[s] = ch.marginal_pd[s] * at_default * df
-        el[WEIGHTED] = sum(self.weights[s] * el[s] for s in self.scenarios)
+            out["ecl_12m"][s] = el[s][:, :h12].sum(axis=1)
+            out["ecl_life"][s] = el[s].sum(axis=1)
+        # the weighted ECL is linear in the scenarios' (IFRS 9 5.5.17)
+        for key in ("ecl_12m", "ecl_life"):
+            out[key][WEIGHTED] = sum(self.weights[s] * out[key][s] for s in self.scenarios)
         mpd_w = ch.marginal_pd[WEIGHTED]
-        num = sum(self.weights[s] * ch.marginal_pd[s] * lgds[s] for s in self.scenarios)
-        plain = sum(self.weights[s] * lgds[s] for s in self.scenarios)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            lgds[WEIGHTED] = np.where(mpd_w > 0, num / np.where(mpd_w > 0, mpd_w, 1.0), plain)
-        out = {
-            "ecl_12m": {s: e[:, :h12].sum(axis=1) for s, e in el.items()},
-            "ecl_life": {s: e.sum(axis=1) for s, e in el.items()},
-        }
         exposed = mpd_w * ead * df
         out["exposure_12m"] = exposed[:, :h12].sum(axis=1)
         out["exposure_life"] = exposed.sum(axis=1)
-        if self.writer is not None:
+        if rows:
+            el[WEIGHTED] = sum(self.weights[s] * el[s] for s in self.scenarios)
+            num = sum(self.weights[s] * ch.marginal_pd[s] * lgds[s] for s in self.scenarios)
+            plain = sum(self.weights[s] * lgds[s] for s in self.scenarios)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                lgds[WEIGHTED] = np.where(mpd_w > 0, num / np.where(mpd_w > 0, mpd_w, 1.0), plain)
             names = (*self.scenarios, WEIGHTED)
             K = len(names)
             m3 = np.broadcast_to(ch.mask[:, None, :], (n, K, H))

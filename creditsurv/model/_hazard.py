@@ -263,8 +263,9 @@ class HazardResults(SpecInputs):
         (:meth:`FeatureSpec.grid_predictors`). Equal to :meth:`predict_hazards` (and :meth:`probabilities`)
         on the cells up to rounding.
         """
-        eta = self.spec.grid_predictors(self.params[list(self.causes)].to_numpy(), grid)
-        return outcome_probabilities(eta, self.kind)
+        params = self.params
+        beta = params.to_numpy() if list(params.columns) == list(self.causes) else params[list(self.causes)].to_numpy()
+        return outcome_probabilities(self.spec.grid_predictors(beta, grid), self.kind)
 
     def grid_hazards(self, grid) -> tuple[np.ndarray, np.ndarray]:
         """Hazards of default and prepayment, each (n, H), for a block of loans x months ahead (the projection's fast
