@@ -14,7 +14,8 @@ peak memory (``ru_maxrss``) is its own:
                 lifetime ECL, on every available core;
 ``ecl+tables``  the same, also writing the three loan-by-month Parquet tables;
 ``floor``       the arithmetic floor on one core: for the same loans and months,
-                chunk by chunk, each cause's linear predictor as a per-age, a
+                in chunks of 256 loans of similar remaining term (as the
+                projection forms them), each cause's linear predictor as a per-age, a
                 per-loan, a per-scenario-month and one per-loan-and-month term
                 added up, the multinomial probabilities, the survival
                 ``cumprod`` and the incidence ``cumsum`` of both causes. For
@@ -177,9 +178,10 @@ def route(name: str, n: int, kind: str) -> dict:
         if kind == "multi_state":
             states = list(model.states)
             moves = {j: tuple(states.index(c) for c in model.origins[o].causes) for j, o in enumerate(model.labels)}
+        # the loans in chunks of similar remaining term, as the projection takes them
+        live = live.assign(remaining=(live["term"] - live["age"]).clip(lower=1)).sort_values("remaining", kind="stable")
         age0 = live["age"].to_numpy(dtype="int64")
-        remaining = (live["term"] - live["age"]).clip(lower=1).to_numpy(dtype="int64")
-        _floor(age0, remaining, len(cfg.scenarios), moves)
+        _floor(age0, live["remaining"].to_numpy(dtype="int64"), len(cfg.scenarios), moves)
     else:
         raise SystemExit(f"unknown route {name}")
     seconds = time.perf_counter() - t0

@@ -259,7 +259,7 @@ def test_covariates_of_each_future_month_are_built_as_documented():
     src = LogitSource()
     loans = _loans()
     paths = {"base": _paths()["base"]}
-    project_loans(loans, src, paths, as_of_idx=AS_OF, chunk_size=100)
+    project_loans(loans, src, paths, as_of_idx=AS_OF, chunk_size=100, keep_order=True)  # the loans in loan_id order
     raw = src.calls[0]
     p = paths["base"]
     ordered = loans.sort_values("loan_id").reset_index(drop=True)
@@ -292,7 +292,7 @@ def test_a_source_projects_with_the_lags_it_was_fitted_with():
     src.derived_lags = {"hpi": 3, "market_rate": 0}
     loans = _loans()
     p = _paths()["base"]
-    project_loans(loans, src, {"base": p}, as_of_idx=AS_OF, chunk_size=100)
+    project_loans(loans, src, {"base": p}, as_of_idx=AS_OF, chunk_size=100, keep_order=True)
     raw = src.calls[0]
     row = loans.sort_values("loan_id").iloc[0]
     r = row.note_rate / 12

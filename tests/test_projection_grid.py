@@ -245,3 +245,17 @@ def test_hazards_summing_above_one_on_the_fast_route_name_the_loans():
     model.params.loc["intercept"] = 10.0
     with pytest.raises(ModelError, match=r"summing above 1 for 7 loans \(L000, L001"):
         _projected(model)
+
+
+def test_chunks_of_similar_remaining_term_give_what_chunks_in_loan_order_give():
+    # without writers the chunks group loans by remaining term; each loan's numbers do not depend on its chunk
+    model = _model(_spec())
+    runs = {}
+    for keep in (True, False):
+        runs[keep] = project_loans(
+            _loans(), model, _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=COLLATERAL, chunk_size=7, keep_order=keep
+        )
+    pd.testing.assert_frame_equal(runs[True].loans, runs[False].loans, check_exact=True)
+    # the pooled sums add the same numbers in another order
+    pd.testing.assert_frame_equal(runs[True].term_structure, runs[False].term_structure, check_exact=False, rtol=1e-12, atol=1e-13)
+    pd.testing.assert_frame_equal(runs[True].speeds, runs[False].speeds, check_exact=False, rtol=1e-12)

@@ -124,12 +124,14 @@ class GroupedCurves:
             np.maximum.at(sums["months"], codes, months)
             for s, arrays in curves.items():
                 for w, wv in weights.items():
-                    for k, x in arrays.items():
-                        part = _group_sums(codes, x * wv[:, None], G)
+                    parts = {k: _group_sums(codes, x * wv[:, None], G) for k, x in arrays.items()}
+                    for k, part in parts.items():
                         target = sums["arrays"][(s, w, k)]
                         target[:, :H] += part
-                        if k != "M":  # past maturity a loan keeps its final values; its marginal PD is 0
-                            target[:, H:] += part[:, -1:]
+                        # past the chunk's last month every loan has matured: it keeps its final cumulative PD and
+                        # survival, its marginal PD is 0, and the survival to the start of a month is the final S(H)
+                        if k != "M":
+                            target[:, H:] += parts["S" if k == "Sp" else k][:, -1:]
 
     def tables(self, *, period: str = "year", weightings=WEIGHTINGS, measures=tuple(MEASURES)) -> dict[str, pd.DataFrame]:
         """One table per grouping, named by :func:`table_name`.

@@ -114,6 +114,7 @@ class MacroLookup:
         self.stop = int(idx.max()) + 1 if len(idx) else 0
         dense = frame.reindex(np.arange(self.start, self.stop))
         self._values = {c: dense[c].to_numpy(dtype=float) for c in frame.columns}
+        self._tables = {}  # series names -> their values stacked (get_by_row)
 
     @classmethod
     def from_values(cls, start: int, values: np.ndarray, columns) -> MacroLookup:
@@ -121,6 +122,7 @@ class MacroLookup:
         out = cls.__new__(cls)
         out.start, out.stop = int(start), int(start) + values.shape[0]
         out._values = {c: np.ascontiguousarray(values[:, j]) for j, c in enumerate(columns)}
+        out._tables = {}
         return out
 
     def __contains__(self, series: str) -> bool:
@@ -145,7 +147,10 @@ class MacroLookup:
     def get_by_row(self, series, codes: np.ndarray, months: np.ndarray) -> np.ndarray:
         """Values at ``months`` (n, ...) of the series ``series[codes[i]]`` for row i: one series per row (a region's
         index), read in one pass."""
-        table = np.stack([self._values[name] for name in series])
+        key = tuple(series)
+        table = self._tables.get(key)
+        if table is None:
+            table = self._tables[key] = np.stack([self._values[name] for name in series])
         pos = np.clip(np.asarray(months, dtype=np.int64) - self.start, 0, max(self.stop - self.start - 1, 0))
         return table[np.asarray(codes).reshape((-1,) + (1,) * (pos.ndim - 1)), pos]
 
@@ -585,7 +590,8 @@ class Curves:
 class ChunkProjection:
     """What one chunk of loans projects to; handed to ``on_chunk`` consumers.
 
-    Arrays are (n, H): n loans of the chunk (rows ``rows`` of ``ProjectionResult.loans``),
+    Arrays are (n, H): n loans of the chunk (rows ``rows`` of ``ProjectionResult.loans``: a slice, or an
+    index array when chunks group loans by remaining term),
     H the longest remaining term in the chunk; column j is month ahead j + 1.
     Cells past a loan's maturity have zero hazards and zero balance. For a multi-state
     source, ``arrears_states`` holds per scenario the probability of each transient arrears
@@ -593,7 +599,7 @@ class ChunkProjection:
     maturity the probabilities stay where they were. ``None`` for a competing-risk source.
     """
 
-    rows: slice
+    rows: slice | np.ndarray
     loans: pd.DataFrame
     mask: np.ndarray
     calendar_month: np.ndarray
@@ -1068,6 +1074,7 @@ def project_loans(
     term_writer: Callable[[pa.Table], None] | None = None,
     on_chunk: Callable[[ChunkProjection], None] | None = None,
     prepare: Callable[[ChunkProjection], object] | None = None,
+    keep_order: bool = False,
     threads: int | None = None,
 ) -> ProjectionResult:
     """Project every live loan under every scenario, chunk by chunk.
@@ -1117,6 +1124,10 @@ def project_loans(
         A pure function of a chunk, run in the thread that projected it; what it returns is the chunk's
         ``prepared`` when ``on_chunk`` receives it. The heavy part of a consumer goes here, so that it
         runs in parallel; ``on_chunk`` then only stores or writes.
+    keep_order : bool, default False
+        Chunks of loans in loan_id order, as the writers need (always so with ``curve_writer`` or
+        ``term_writer``); otherwise each chunk holds loans of similar remaining term (``ChunkProjection.rows``
+        is then an index array), which spares the months past the shorter loans' maturity.
     threads : int, optional
         Threads that project chunks at the same time (default: one per available core). The writers,
         ``on_chunk`` and the sums receive the chunks in order, so every result is the same for any number.
@@ -1140,7 +1151,6 @@ def project_loans(
     spec, book, hpi_names, lookups = _live_book(
         loans, source, paths, as_of_idx, collateral
     )
-    n_all = len(book.frame)
     pooled = _SegmentPool(book, book.frame, (*scenarios, WEIGHTED), segment_column, band_column, band_edges)
 
     tables = (curve_writer is not None, term_writer is not None)
@@ -1149,9 +1159,8 @@ def project_loans(
         chunk = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=False)
         return _chunk_results(book, sl, chunk, _chunk_curves(chunk, scenarios, w), scenarios, w, pooled, tables, prepare)
 
-    slices = [slice(start, min(start + chunk_size, n_all)) for start in range(0, n_all, chunk_size)]
-    for sl, results in in_order(work, slices, threads):
-        _take_chunk(sl, results, pooled, curve_writer, term_writer, on_chunk)
+    for rows, results in in_order(work, chunk_rows(book.remaining, chunk_size, keep_order or any(tables)), threads):
+        _take_chunk(rows, results, pooled, curve_writer, term_writer, on_chunk)
     sums = pooled.finish(w, scenarios)
     return _projection_result(book, pooled, sums, segment_column, scenarios, w, as_of_idx, band_edges)
 
@@ -1184,6 +1193,17 @@ def _live_book(loans, source, paths, as_of_idx, collateral: Collateral):
     if len(book.loan_id):
         check_coverage(lookups, _coverage_needs(book, spec, hpi_names, collateral.market_rate_series, hold=False))
     return spec, book, hpi_names, lookups
+
+
+def chunk_rows(remaining: np.ndarray, chunk_size: int, keep_order: bool) -> list:
+    """The loans of each chunk: slices of ``chunk_size`` loans in their order with ``keep_order``; else index arrays
+    of loans of similar remaining term (sorted by it, stable), so that a chunk's (loans x months) arrays hold few
+    months past its loans' maturity. Either way the chunks and their order depend on the book alone."""
+    n = len(remaining)
+    if keep_order:
+        return [slice(start, min(start + chunk_size, n)) for start in range(0, n, chunk_size)]
+    order = np.argsort(remaining, kind="stable")
+    return [order[start : start + chunk_size] for start in range(0, n, chunk_size)]
 
 
 def in_order(work, items, threads: int | None = None):
@@ -1499,7 +1519,7 @@ def origination_pd(
     """
     spec = _parse_inputs(list(source.required_inputs), loans.columns, source)
     book, hpi_names = _prepare_book(
-        loans, spec, as_of_idx=0, collateral=collateral, origination=True, order=("origination_idx", "loan_id")
+        loans, spec, as_of_idx=0, collateral=collateral, origination=True, order=("origination_idx", "term", "loan_id")
     )
     n_all = len(book.loan_id)
     out = np.zeros(n_all)
@@ -1522,8 +1542,12 @@ def origination_pd(
     def work(item):
         sl, o = item
         haz, *_ = _hazards_chunk(book, sl, spec, source, lookups[o], hpi_names, collateral.market_rate_series, hold=False)
-        curves = Curves.from_hazards(*haz["origination"])
-        s, f_d = curves.survival, curves.cum_default
+        hd, hp = haz["origination"]
+        # survival and cumulative PD as Curves.from_hazards gives them (the prepayment incidence is not needed)
+        s = np.cumprod(1.0 - hd - hp, axis=1)
+        marginal = hd.copy()
+        marginal[:, 1:] *= s[:, :-1]
+        f_d = np.cumsum(marginal, axis=1)
         # a loan at or past its term is compared over its last contractual month (see remaining_term)
         a = np.clip(ages[sl], 0, book.remaining[sl] - 1)
         rows = np.arange(len(a))

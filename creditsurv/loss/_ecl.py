@@ -986,16 +986,19 @@ def expected_credit_loss(
     )
     consumers = [acc] + ([on_chunk] if on_chunk is not None else [])
 
+    done = [0]
+
     def each_chunk(ch):
         for consume in consumers:
             consume(ch)
+        done[0] += len(ch.loans)
         if progress is not None:
-            progress(ch.rows.stop, len(live))
+            progress(done[0], len(live))
 
     proj = project_loans(
         live, source, paths, as_of_idx=as_of_idx, weights=w, chunk_size=chunk_size, collateral=collateral, segment_column="segment",
         band_column=band_column, band_edges=band_edges, curve_writer=curve_writer, term_writer=term_writer,
-        on_chunk=each_chunk, prepare=acc.prepare, threads=threads,
+        on_chunk=each_chunk, prepare=acc.prepare, keep_order=schedule_writer is not None, threads=threads,
     )
     names = (*scenarios, WEIGHTED)
     measures = _live_measures(len(frame), live_rows, names, proj, acc)
