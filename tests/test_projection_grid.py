@@ -259,3 +259,11 @@ def test_chunks_of_similar_remaining_term_give_what_chunks_in_loan_order_give():
     # the pooled sums add the same numbers in another order
     pd.testing.assert_frame_equal(runs[True].term_structure, runs[False].term_structure, check_exact=False, rtol=1e-12, atol=1e-13)
     pd.testing.assert_frame_equal(runs[True].speeds, runs[False].speeds, check_exact=False, rtol=1e-12)
+
+
+def test_a_multi_state_model_whose_moves_are_not_probabilities_is_refused():
+    model = _multi_state()
+    model.origins["30-59"].params.loc["intercept", "60-89"] = np.nan
+    loans = _loans().assign(arrears_state=1)
+    with pytest.raises(ModelError, match="not finite"):
+        project_loans(loans, model, _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=COLLATERAL, chunk_size=7)

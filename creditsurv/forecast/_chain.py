@@ -117,23 +117,21 @@ def chain_of_moves(moves, start: np.ndarray, states: int) -> ChainResult:
     n, H = next(iter(moves.values())).shape if moves else (start.shape[0], 0)
     if start.shape != (n,) or ((start < 0) | (start >= T)).any():
         raise ValueError(f"start states must be {n} integers in 0..{T - 1}")
-    rows = {key: np.ascontiguousarray(value.T) for key, value in moves.items()}  # (H, n): month u is one row
-    into = [sorted((key[0], key) for key in rows if key[1] == s) for s in range(states)]  # moves into s, by origin
-    transient = np.empty((H + 1, T, n))
-    entered = np.empty((H, states - T, n))
-    transient[0] = 0.0
-    transient[0][start, np.arange(n)] = 1.0
-    tmp = np.empty(n)
+    # P[u, j, s] holds every loan's probability of the move j -> s in month u + 1: one contiguous block a month
+    P = np.zeros((H, T, states, n))
+    for (j, s), value in moves.items():
+        P[:, j, s, :] = value.T
+    # mass[u, s]: every loan's probability of being in state s at the end of month u (absorbing: entering it in u)
+    mass = np.zeros((H + 1, states, n))
+    mass[0, start, np.arange(n)] = 1.0
+    product = np.empty((T, states, n))
     for u in range(H):
-        pi = transient[u]
-        for s in range(states):
-            out = transient[u + 1, s] if s < T else entered[u, s - T]
-            if not into[s]:
-                out[:] = 0.0
-                continue
-            (j, key), *rest = into[s]
-            np.multiply(pi[j], rows[key][u], out=out)
-            for j, key in rest:
-                np.multiply(pi[j], rows[key][u], out=tmp)
-                out += tmp
-    return ChainResult(transient=transient.transpose(2, 0, 1), entered=entered.transpose(2, 0, 1))
+        # pi(u) = pi(u - 1) P(u): the sum over origins runs j = 0, 1, ... as in markov_chain (a move left out adds 0)
+        np.multiply(mass[u, :T, None, :], P[u], out=product)
+        if T == 1:
+            mass[u + 1] = product[0]
+            continue
+        np.add(product[0], product[1], out=mass[u + 1])
+        for j in range(2, T):
+            mass[u + 1] += product[j]
+    return ChainResult(transient=mass[:, :T].transpose(2, 0, 1), entered=mass[1:, T:].transpose(2, 0, 1))

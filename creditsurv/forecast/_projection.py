@@ -519,20 +519,21 @@ def _grid_chain_hazards(source, grid, mask, start) -> tuple[np.ndarray, np.ndarr
     if start.size and int(start.max()) >= T:
         raise ProjectionError(f"a loan starts in arrears state {int(start.max())} but the model has {T} states ({', '.join(source.labels)})")
     beyond = ~mask
-    finite = np.ones(mask.shape, dtype=bool)
     moves = {}
     for j, origin in enumerate(source.labels):
         rows = source.grid_transitions(grid, origin)
-        for s, p in rows.items():
-            finite &= np.isfinite(p) & (p >= 0)
-            # after a loan's term nothing moves
-            np.copyto(p, 1.0 if s == j else 0.0, where=beyond)
-            moves[(j, s)] = p
+        moves |= {(j, s): p for s, p in rows.items()}
         if j not in rows:
-            moves[(j, j)] = beyond.astype(float)
-    finite |= beyond
-    for p in moves.values():
-        np.copyto(p, 0.0, where=~np.isfinite(p))
+            moves[(j, j)] = np.zeros(mask.shape)
+    # every probability finite and not negative (a NaN fails both): cheap when all are; else cell by cell
+    finite = np.ones(mask.shape, dtype=bool)
+    if not all(p.min() >= 0 and p.max() < np.inf for p in moves.values()):
+        for p in moves.values():
+            finite &= np.isfinite(p) & (p >= 0)
+            np.copyto(p, 0.0, where=~np.isfinite(p))
+        finite |= beyond
+    for (j, s), p in moves.items():
+        np.copyto(p, 1.0 if s == j else 0.0, where=beyond)  # after a loan's term nothing moves
     chain = chain_of_moves(moves, start, S)
     hazards = chain.hazards()
     hd, hp = hazards[:, :, states.index("default") - T], hazards[:, :, states.index("prepaid") - T]
