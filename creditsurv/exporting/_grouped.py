@@ -105,7 +105,7 @@ class GroupedCurves:
             )
 
     def __call__(self, ch) -> None:
-        pos = self.index.get_indexer(ch.loans["loan_id"].to_numpy())
+        pos = self.index.get_indexer(ch.loan_id)
         if (pos < 0).any():
             raise DataError("a projected loan has no attributes (the loan table and the book disagree)")
         self.seen[pos] = True

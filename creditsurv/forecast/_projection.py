@@ -48,6 +48,7 @@ segment aggregates stay in memory.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import itertools
 import math
 import os
@@ -601,7 +602,8 @@ class ChunkProjection:
     """
 
     rows: slice | np.ndarray
-    loans: pd.DataFrame
+    frame: pd.DataFrame  # the whole projected book; the chunk's rows are ``loans``
+    loan_id: np.ndarray
     mask: np.ndarray
     calendar_month: np.ndarray
     balance_start: np.ndarray
@@ -618,6 +620,12 @@ class ChunkProjection:
     marginal_pd: dict[str, np.ndarray]
     arrears_states: dict[str, np.ndarray] | None = None
     prepared: object = None  # what the projection's ``prepare`` computed from this chunk
+
+    @functools.cached_property
+    def loans(self) -> pd.DataFrame:
+        """The chunk's rows of the book (``frame.iloc[rows]``), taken when first read: most consumers need a few
+        columns (``loan_id`` is at hand), and taking every column of a chunk costs more than its arithmetic."""
+        return self.frame.iloc[self.rows]
 
 
 @dataclass
@@ -1272,7 +1280,7 @@ def _chunk_results(book, sl, chunk, curves, scenarios, w, pooled, tables: tuple[
     if tables[1]:
         out["terms"] = _term_table(book.loan_id[sl], names, curves, book.remaining[sl])
     ch = ChunkProjection(
-        rows=sl, loans=book.frame.iloc[sl], mask=mask, calendar_month=cal,
+        rows=sl, frame=book.frame, loan_id=book.loan_id[sl], mask=mask, calendar_month=cal,
         balance_start=bal_start, balance_end=bal_end, note_rate=book.rate[sl],
         scenarios=scenarios, weights=w,
         h_default={s: haz[s][0] for s in names}, h_prepay={s: haz[s][1] for s in names},

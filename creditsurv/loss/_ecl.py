@@ -553,17 +553,22 @@ class _EclAccumulator:
         return [lgd_of_recovery(e, pv, lgd.floor) for _, e in exposures]
 
     def _columns(self, ch: ChunkProjection) -> dict:
-        """The loan columns the LGD reads, as arrays, once per chunk."""
+        """The loan columns the LGD reads, the chunk's rows of :meth:`book_columns`."""
+        return {k: v[ch.rows] if isinstance(v, np.ndarray) else v for k, v in self.columns.items()}
+
+    def book_columns(self, live: pd.DataFrame) -> None:
+        """Take the loan columns the LGD reads out of the live book once (rows in the projection's order)."""
         if self.loss.lgd.kind == "constant":
-            return {"segment": ch.loans["segment"].astype(str).to_numpy()}
-        codes, regions = pd.factorize(ch.loans[self.region_column])
+            self.columns = {"segment": live["segment"].astype(str).to_numpy()}
+            return
+        codes, regions = pd.factorize(live[self.region_column])
         if (codes < 0).any():
-            raise ProjectionError(f"loans: no {self.region_column!r} for {loan_list_text(ch.loans['loan_id'][codes < 0])}")
-        return {
+            raise ProjectionError(f"loans: no {self.region_column!r} for {loan_list_text(live['loan_id'][codes < 0])}")
+        self.columns = {
             "region_code": codes,
             "hpi_names": [self.hpi_names[r] for r in regions],
-            "origination_idx": ch.loans["origination_idx"].to_numpy(dtype=np.int64),
-            "property_value": ch.loans["property_value"].to_numpy(float),
+            "origination_idx": live["origination_idx"].to_numpy(dtype=np.int64),
+            "property_value": live["property_value"].to_numpy(float),
         }
 
     def _exposures(self, ch: ChunkProjection) -> list[tuple[float, np.ndarray]]:
@@ -629,7 +634,7 @@ class _EclAccumulator:
 
             out["schedule"] = pa.table(
                 {
-                    "loan_id": repeat_ids(ch.loans["loan_id"].to_numpy(), counts * K),
+                    "loan_id": repeat_ids(ch.loan_id, counts * K),
                     "scenario": scenario_column(
                         names, np.broadcast_to(np.arange(K, dtype=np.int32)[None, :, None], (n, K, H))[m3]
                     ),
@@ -984,6 +989,7 @@ def expected_credit_loss(
     acc = _EclAccumulator(
         len(live), scenarios, w, loss, routes, lookups, collateral.region_column, hpi_names, as_of_idx, schedule_writer
     )
+    acc.book_columns(live)
     consumers = [acc] + ([on_chunk] if on_chunk is not None else [])
 
     done = [0]

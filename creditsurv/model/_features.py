@@ -976,10 +976,14 @@ class FeatureSpec:
                 out[k] += parts["loan"][:, k, None]
             if "month" in parts:
                 out[k] += parts["month"][None, :, k]
-        cols, vals = blocks["cell"]
-        if cols:
-            X = vals[0] if len(vals) == 1 else np.concatenate(vals, axis=1)
-            out += (beta[cols].T @ X.T).reshape(K, n, H)
+        # the per-cell columns one by one (a product with an inner dimension of a few columns is slow in BLAS)
+        flat = out.reshape(K, n * H)
+        cell_columns = iter(blocks["cell"][0])
+        for values in blocks["cell"][1]:
+            for v in values.T:
+                b = beta[next(cell_columns)]
+                for k in range(K):
+                    flat[k] += b[k] * v
         return out
 
 
