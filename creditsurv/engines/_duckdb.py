@@ -365,14 +365,18 @@ class DuckdbEngine:
         threads = int(self.con.execute("SELECT current_setting('threads')").fetchall()[0][0])
         store = _CellStore(design, temp_dir, weighted=collapse)
 
+        needed = {*spec.required_inputs, "outcome", "_cs_weight"}
+
         def stored_form(table):
-            raw = {name: table.column(name).to_numpy() for name in table.column_names}
+            raw = {name: table.column(name).to_numpy() for name in table.column_names if name in needed}
             block = design.block(raw, collapse, dropped)
             return block, None if block is None else block_first_sums(design, block)
 
         total = None
+        pool = pa.default_memory_pool()
+        pa.set_memory_pool(pa.system_memory_pool())  # a block's freed buffers go back at once, not to a cache
         try:
-            tables = _fixed_blocks(self.batches(sql, params, batch_size), block_rows)
+            tables = _fixed_blocks(self.batches(sql, params, min(batch_size, block_rows)), block_rows)
             for block, sums in ordered_map(stored_form, tables, threads):
                 if block is None:
                     continue
@@ -385,6 +389,8 @@ class DuckdbEngine:
         except BaseException:
             store.close()
             raise
+        finally:
+            pa.set_memory_pool(pool)
         first = FirstPass(design.p) if total is None else design.first_pass(total)
         return _CellSums(store, design, first, first.fingerprint(design.names, design.digest()), codes, kind, threads)
 

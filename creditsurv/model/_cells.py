@@ -34,6 +34,7 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from ..errors import DataError, ModelError
 
@@ -201,14 +202,14 @@ class CellDesign:
         for cols, size in zip(self._cell_term_cols, self.sizes[1:]):
             c = c + stride * (X[:, cols] @ np.arange(1, size, dtype=np.float64)).astype(np.int64)
             stride *= size
-        order = np.argsort(c, kind="stable")  # rows by cell: the sums by cell are sums over runs
-        X = X[order]
-        w = w[order] if w is not None else None
-        block = CellBlock(c[order].astype(np.uint16), y[order], w, np.ascontiguousarray(X[:, self.atom_cols].T))
-        same = np.array_equal(self.table[block.c], X[:, self.cell_cols]) and np.array_equal(self.rows(block), X[:, self.row_cols].T)
+        c = c.astype(np.uint16)
+        block = CellBlock(c, y, w, np.ascontiguousarray(X[:, self.atom_cols].T))
+        same = all(np.array_equal(self.table[c, k], X[:, j]) for k, j in enumerate(self.cell_cols))
+        same = same and all(np.array_equal(r, X[:, j]) for r, j in zip(self.rows(block), self.row_cols))
         if not same:  # pragma: no cover - a term whose columns are not what the cells assume
             raise ModelError("the cell form of the design differs from the design; this is a bug in creditsurv")
-        return block
+        order = np.argsort(c, kind="stable")  # rows by cell: the sums by cell are sums over runs
+        return CellBlock(c[order], y[order], None if w is None else w[order], block.Z[:, order])
 
     def rows(self, block: CellBlock) -> np.ndarray:
         """The row columns of a block, shape (len(row_cols), n), each row contiguous."""
@@ -426,17 +427,19 @@ def ordered_map(fn, items, threads: int):
     """``fn`` of each item, computed by ``threads`` threads, yielded in the items' order.
 
     NumPy's loops and BLAS release the GIL, so blocks are computed in parallel; the caller adds the
-    results in order, so the sums are the same bits for any number of threads. At most
-    ``2 * threads`` results wait, which bounds the memory.
+    results in order, so the sums are the same bits for any number of threads. BLAS runs on one
+    thread inside (the blocks are the parallel work, and a product then never depends on how BLAS
+    splits it). At most ``threads + 1`` results wait, which bounds the memory.
     """
-    if threads <= 1:
-        yield from map(fn, items)
-        return
-    with ThreadPoolExecutor(max_workers=threads) as pool:
-        waiting: deque = deque()
-        for item in items:
-            waiting.append(pool.submit(fn, item))
-            if len(waiting) >= 2 * threads:
+    with threadpool_limits(limits=1, user_api="blas"):
+        if threads <= 1:
+            yield from map(fn, items)
+            return
+        with ThreadPoolExecutor(max_workers=threads) as pool:
+            waiting: deque = deque()
+            for item in items:
+                waiting.append(pool.submit(fn, item))
+                if len(waiting) > threads:
+                    yield waiting.popleft().result()
+            while waiting:
                 yield waiting.popleft().result()
-        while waiting:
-            yield waiting.popleft().result()
