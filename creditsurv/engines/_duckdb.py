@@ -355,37 +355,39 @@ class DuckdbEngine:
             yield from reader
 
     def design_sums(self, spec, sql, params, *, collapse, dropped, codes, kind, batch_size, temp_dir, block_rows=FIT_BLOCK_ROWS):
-        """Keep the fit's rows in their cell form in a temporary Parquet file and sum over it block by block.
+        """Keep the fit's rows in their cell form in temporary Parquet files and sum over them block by block.
 
-        The rows are cut into fixed blocks of ``block_rows`` (whatever the batches of the read), each
-        block one row group of the file; every pass sums the blocks in as many threads as DuckDB has
-        (``duckdb.threads``) and adds their sums in block order. Memory is bounded by a few blocks.
+        The rows are cut into fixed blocks of ``block_rows`` (whatever the batches of the read), one
+        file each; the first pass and every Newton pass compute the blocks in as many threads as DuckDB
+        has (``duckdb.threads``) and add their sums in block order. Memory is bounded by a few blocks.
         """
         design = cell_design(spec)
         threads = int(self.con.execute("SELECT current_setting('threads')").fetchall()[0][0])
         store = _CellStore(design, temp_dir, weighted=collapse)
-
         needed = {*spec.required_inputs, "outcome", "_cs_weight"}
 
-        def stored_form(table):
+        def stored_form(item):
+            i, table = item
             raw = {name: table.column(name).to_numpy() for name in table.column_names if name in needed}
             block = design.block(raw, collapse, dropped)
-            return block, None if block is None else block_first_sums(design, block)
+            if block is None:
+                return i, None
+            store.write(i, block)
+            return i, block_first_sums(design, block)
 
         total = None
         pool = pa.default_memory_pool()
         pa.set_memory_pool(pa.system_memory_pool())  # a block's freed buffers go back at once, not to a cache
         try:
             tables = _fixed_blocks(self.batches(sql, params, min(batch_size, block_rows)), block_rows)
-            for block, sums in ordered_map(stored_form, tables, threads):
-                if block is None:
+            for i, sums in ordered_map(stored_form, enumerate(tables), threads):
+                if sums is None:
                     continue
-                store.append(block)
+                store.blocks.append(i)
                 if total is None:
                     total = sums
                 else:
                     total += sums
-            store.finish()
         except BaseException:
             store.close()
             raise
@@ -682,45 +684,41 @@ def _fixed_blocks(batches, rows: int):
 
 
 class _CellStore:
-    """The fit's rows in their cell form, one Parquet row group per block, in a temporary folder.
+    """The fit's rows in their cell form in a temporary folder: one small zstd Parquet file per block.
 
     Columns: the cell code (16 bits), the outcome (8 bits), the weight (collapsed rows only) and each
-    atom (float64, as evaluated). Row groups are read back one at a time, so memory is bounded by the
-    blocks in flight, not by the file.
+    atom (float64, as evaluated). Each block is written and read by the thread that computes it, so
+    compression runs in parallel too; memory is bounded by the blocks in flight, not by the folder.
     """
 
     def __init__(self, design, temp_dir=None, weighted=False):
         self.dir = Path(tempfile.mkdtemp(prefix="creditsurv-fit-", dir=temp_dir))
-        self.path = self.dir / "rows.parquet"
         self.weighted = weighted
         fields = [("c", pa.uint16()), ("y", pa.int8())] + ([("w", pa.float64())] if weighted else [])
         fields += [(f"z{k}", pa.float64()) for k in range(len(design.atom_cols))]
         self.schema = pa.schema(fields)
-        self._writer = pq.ParquetWriter(self.path, self.schema, compression="zstd")
-        self.blocks = 0
+        self.blocks: list[int] = []  # the numbers of the blocks stored, in order
 
-    def append(self, block: CellBlock) -> None:
+    def _path(self, i: int) -> Path:
+        return self.dir / f"block-{i:08d}.parquet"
+
+    def write(self, i: int, block: CellBlock) -> None:
         columns = [block.c, block.y] + ([block.w] if self.weighted else []) + list(block.Z)
-        self._writer.write_table(pa.Table.from_arrays(columns, schema=self.schema), row_group_size=block.n)
-        self.blocks += 1
-
-    def finish(self) -> None:
-        self._writer.close()
-
-    @property
-    def nbytes(self) -> int:
-        return self.path.stat().st_size
+        table = pa.Table.from_arrays(columns, schema=self.schema)
+        pq.write_table(table, self._path(i), compression="zstd", row_group_size=block.n)
 
     def read(self, i: int) -> CellBlock:
-        table = pq.ParquetFile(self.path).read_row_group(i, use_threads=False)
+        table = pq.read_table(self._path(i), use_threads=False)
         cols = [table.column(k).to_numpy() for k in range(table.num_columns)]
         start = 3 if self.weighted else 2
         Z = np.stack(cols[start:]) if len(cols) > start else np.zeros((0, len(cols[0])))
         return CellBlock(cols[0], cols[1], cols[2] if self.weighted else None, Z)
 
+    @property
+    def nbytes(self) -> int:
+        return sum(self._path(i).stat().st_size for i in self.blocks)
+
     def close(self) -> None:
-        if self._writer.is_open:
-            self._writer.close()
         shutil.rmtree(self.dir, ignore_errors=True)
 
 
@@ -739,7 +737,7 @@ class _CellSums:
             return block_sums(self.design, self.store.read(i), eta_cell, beta, self._codes, self._kind, need_hess)
 
         total = None
-        for part in ordered_map(sums, range(self.store.blocks), self._threads):
+        for part in ordered_map(sums, self.store.blocks, self._threads):
             if total is None:
                 total = part
             else:

@@ -18,7 +18,7 @@ per-cell sums (``np.bincount`` over the cell codes) and small products of the ro
 * the score likewise with the residuals for ``v``.
 
 :func:`block_sums` (a Newton pass) and :func:`block_first_sums` (the first pass: rows by cell and
-outcome, X'WX, the 0/1 columns, the fingerprint's streams) are the per-batch kernels both engines
+outcome, X'WX, the 0/1 columns, the fingerprint's digest) are the per-batch kernels both engines
 share; the partial sums of batches are added in batch order with ``+=`` and turned into the score
 and information by :meth:`CellDesign.finish` / :meth:`CellDesign.first_pass`. Summing a fixed
 sequence of blocks in a fixed order gives the same bits whatever the number of threads that
@@ -119,6 +119,8 @@ class CellDesign:
         age_table, self.age_code = np.unique(base, axis=0, return_inverse=True)
         self.age_code = self.age_code.ravel().astype(np.int64)
         sizes = [age_table.shape[0]]
+        if sizes[0] > MAX_CELLS:
+            raise ModelError(f"the loan ages {self.age_lo} to {self.age_hi} give {sizes[0]:,} baseline cells, more than {MAX_CELLS:,}")
         in_cell = []
         for name in discrete:  # spec order, while the cells stay few enough
             size = len(terms[name]) + 1
@@ -354,15 +356,16 @@ class FirstSums:
     """Partial sums of the first pass over some blocks; ``+=`` adds the next blocks' (in order).
 
     ``counts`` (n_cells, N_CODES) weighs the rows by cell and outcome; the rest is the row columns'
-    share of the events by column, X'WX and the 0/1 check, and the row count. ``streams`` holds the
-    block's stored bytes by stream, ``hashes`` one SHA-256 per stream over the blocks added so far
-    (so the fingerprint does not depend on where blocks or batches end).
+    share of the events by column, X'WX and the 0/1 check, and the row count. ``block_digest`` is the
+    SHA-256 of one block's stored bytes (computed where the block is, in parallel), ``hash`` the
+    SHA-256 of the blocks' digests in block order: the blocks are fixed, so it does not depend on the
+    batches of the read or on the threads.
     """
 
-    def __init__(self, counts, S_rows, x_cross, x_rows, is01_rows, n, streams):
+    def __init__(self, counts, S_rows, x_cross, x_rows, is01_rows, n, block_digest: bytes):
         self.counts, self.S_rows, self.x_cross, self.x_rows = counts, S_rows, x_cross, x_rows
-        self.is01_rows, self.n, self.streams = is01_rows, n, streams
-        self.hashes = {k: hashlib.sha256(v) for k, v in streams.items()}
+        self.is01_rows, self.n, self.block_digest = is01_rows, n, block_digest
+        self.hash = hashlib.sha256(block_digest)
 
     def __iadd__(self, other: "FirstSums") -> "FirstSums":
         self.counts += other.counts
@@ -371,13 +374,12 @@ class FirstSums:
         self.x_rows += other.x_rows
         self.is01_rows &= other.is01_rows
         self.n += other.n
-        for k, h in self.hashes.items():
-            h.update(other.streams[k])
+        self.hash.update(other.block_digest)
         return self
 
     @property
     def digests(self) -> list[str]:
-        return [h.hexdigest() for h in self.hashes.values()]
+        return [self.hash.hexdigest()]
 
 
 def block_first_sums(design: CellDesign, block: CellBlock) -> FirstSums:
@@ -391,18 +393,19 @@ def block_first_sums(design: CellDesign, block: CellBlock) -> FirstSums:
         rows = block.y == code
         S_rows[:, code] = R[:, rows] @ w[rows]
     _g, _r, _cell, x_cross, x_rows = _by_cell(block, R, np.zeros((0, block.n)), w[None, :], design.n_cells)
-    x_cross, x_rows = x_cross[0], x_rows[0]
     is01 = ((R == 0) | (R == 1)).all(axis=1)
-    streams = {"c": block.c.tobytes(), "y": block.y.tobytes(), "w": w.tobytes()}
-    streams.update({f"z{k}": block.Z[k].tobytes() for k in range(block.Z.shape[0])})
-    return FirstSums(counts, S_rows, x_cross, x_rows, is01, block.n, streams)
+    digest = hashlib.sha256(block.c.tobytes())
+    for stream in (block.y, block.w, *block.Z):
+        if stream is not None:
+            digest.update(np.ascontiguousarray(stream).tobytes())
+    return FirstSums(counts, S_rows, x_cross[0], x_rows[0], is01, block.n, digest.digest())
 
 
 class FirstPass:
     """Sums of the first pass over the design: events by column, X'WX, 0/1 columns, row count.
 
     ``S[j, c]`` is the weighted sum of column ``j`` over the rows with outcome code ``c``;
-    ``digests`` the SHA-256 of each stored stream (the fingerprint's input).
+    ``digests`` the SHA-256 of the stored blocks (the fingerprint's input).
     """
 
     def __init__(self, p: int):
