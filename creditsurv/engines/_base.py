@@ -41,7 +41,7 @@ class DesignSums(Protocol):
     first : creditsurv.model.FirstPass
         Events by column, X'WX, the 0/1 columns and the row count, summed over all rows.
     fingerprint : str
-        SHA-256 of the design streams (reproducible for the same data and engine settings).
+        SHA-256 of the stored streams and the cell table (reproducible for the same data and engine settings).
     """
 
     first: Any
@@ -113,9 +113,14 @@ class Engine(Protocol):
 
     def design_sums(
         self, spec: Any, sql: str, params: Sequence, *, collapse: bool, dropped: Sequence[int], codes: np.ndarray,
-        kind: str, batch_size: int, temp_dir: Path | None,
+        kind: str, batch_size: int, temp_dir: Path | None, block_rows: int | None = None,
     ) -> DesignSums:
-        """Evaluate the design of the raw rows of ``sql`` once and return its sums (see :class:`DesignSums`)."""
+        """Evaluate the design of the raw rows of ``sql`` once and return its sums (see :class:`DesignSums`).
+
+        The sums are those of :func:`creditsurv.model.block_sums` over the rows' cell form
+        (:class:`creditsurv.model.CellDesign`); ``block_rows`` fixes the blocks an engine that cuts
+        the rows itself adds in order (an engine whose partitions fix the order may ignore it).
+        """
         ...
 
     def map_book(

@@ -37,6 +37,8 @@ from pathlib import Path
 import duckdb
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 from ..config import Config
 from ..data import (
@@ -58,7 +60,15 @@ from ..data import (
     resolve_inputs,
 )
 from ..errors import ConfigError, DataError, did_you_mean
-from ..model import FirstPass, batch_design, batch_sums, symmetric
+from ..model import (
+    FIT_BLOCK_ROWS,
+    CellBlock,
+    FirstPass,
+    block_first_sums,
+    block_sums,
+    cell_design,
+    ordered_map,
+)
 from ..processes import process_running
 from ..sql import month_index_sql, quote_ident
 
@@ -344,27 +354,47 @@ class DuckdbEngine:
         with rel.to_arrow_reader(batch_size=batch_size) as reader:
             yield from reader
 
-    def design_sums(self, spec, sql, params, *, collapse, dropped, codes, kind, batch_size, temp_dir):
-        """Evaluate the design once into a temporary file and sum over it batch by batch.
+    def design_sums(self, spec, sql, params, *, collapse, dropped, codes, kind, batch_size, temp_dir, block_rows=FIT_BLOCK_ROWS):
+        """Keep the fit's rows in their cell form in temporary Parquet files and sum over them block by block.
 
-        Memory is bounded by one batch: the design goes to disk as it is
-        evaluated and is read back in batches for each Newton evaluation.
+        The rows are cut into fixed blocks of ``block_rows`` (whatever the batches of the read), one
+        file each; the first pass and every Newton pass compute the blocks in as many threads as DuckDB
+        has (``duckdb.threads``) and add their sums in block order. Memory is bounded by a few blocks.
         """
-        store = _DesignStore(len(spec.columns), temp_dir)
+        design = cell_design(spec)
+        threads = int(self.con.execute("SELECT current_setting('threads')").fetchall()[0][0])
+        store = _CellStore(design, temp_dir, weighted=collapse)
+        needed = {*spec.required_inputs, "outcome", "_cs_weight"}
+
+        def stored_form(item):
+            i, table = item
+            raw = {name: table.column(name).to_numpy() for name in table.column_names if name in needed}
+            block = design.block(raw, collapse, dropped)
+            if block is None:
+                return i, None
+            store.write(i, block)
+            return i, block_first_sums(design, block)
+
+        total = None
+        pool = pa.default_memory_pool()
+        pa.set_memory_pool(pa.system_memory_pool())  # a block's freed buffers go back at once, not to a cache
         try:
-            first = FirstPass(len(spec.columns))
-            for batch in self.batches(sql, params, batch_size):
-                raw = {nm: batch.column(i).to_numpy(zero_copy_only=False) for i, nm in enumerate(batch.schema.names)}
-                design = batch_design(raw, spec, collapse, dropped)
-                if design is None:
+            tables = _fixed_blocks(self.batches(sql, params, min(batch_size, block_rows)), block_rows)
+            for i, sums in ordered_map(stored_form, enumerate(tables), threads):
+                if sums is None:
                     continue
-                store.append(*design)
-                first.add(*design)
-            store.finish()
+                store.blocks.append(i)
+                if total is None:
+                    total = sums
+                else:
+                    total += sums
         except BaseException:
             store.close()
             raise
-        return _StoredSums(store, first, first.fingerprint(spec.columns), codes, kind, batch_size)
+        finally:
+            pa.set_memory_pool(pool)
+        first = FirstPass(design.p) if total is None else design.first_pass(total)
+        return _CellSums(store, design, first, first.fingerprint(design.names, design.digest()), codes, kind, threads)
 
     def map_book(self, fn, book, writers, progress=None) -> list:
         """One partition, the whole book, in this process: the writers receive the tables directly."""
@@ -634,77 +664,85 @@ def book_at_as_of(panel: DuckdbEngine, segment_column: str | None = None) -> pd.
         raise DataError(f"cannot build the book at {cfg.as_of}: {exc}") from None
 
 
-# --------------------------------------------------------------------------- the fit's design on disk
+# --------------------------------------------------------------------------- the fit's rows on disk
 
 
-class _DesignStore:
-    """The evaluated design, outcomes and weights in temporary files, read back in batches."""
+def _fixed_blocks(batches, rows: int):
+    """Arrow tables of exactly ``rows`` rows (the last one shorter) from record batches of any size."""
+    pending, count = [], 0
+    for batch in batches:
+        while batch.num_rows:
+            take = min(rows - count, batch.num_rows)
+            pending.append(batch.slice(0, take))
+            count += take
+            batch = batch.slice(take)
+            if count == rows:
+                yield pa.Table.from_batches(pending)
+                pending, count = [], 0
+    if count:
+        yield pa.Table.from_batches(pending)
 
-    def __init__(self, p: int, temp_dir=None):
-        self.p = p
+
+class _CellStore:
+    """The fit's rows in their cell form in a temporary folder: one small zstd Parquet file per block.
+
+    Columns: the cell code (16 bits), the outcome (8 bits), the weight (collapsed rows only) and each
+    atom (float64, as evaluated). Each block is written and read by the thread that computes it, so
+    compression runs in parallel too; memory is bounded by the blocks in flight, not by the folder.
+    """
+
+    def __init__(self, design, temp_dir=None, weighted=False):
         self.dir = Path(tempfile.mkdtemp(prefix="creditsurv-fit-", dir=temp_dir))
-        self._files = {k: open(self.dir / f"{k}.bin", "wb") for k in ("X", "y", "w")}
-        self.n = 0
+        self.weighted = weighted
+        fields = [("c", pa.uint16()), ("y", pa.int8())] + ([("w", pa.float64())] if weighted else [])
+        fields += [(f"z{k}", pa.float64()) for k in range(len(design.atom_cols))]
+        self.schema = pa.schema(fields)
+        self.blocks: list[int] = []  # the numbers of the blocks stored, in order
 
-    def append(self, X: np.ndarray, y: np.ndarray, w: np.ndarray) -> None:
-        self._files["X"].write(np.ascontiguousarray(X, dtype=np.float64).tobytes())
-        self._files["y"].write(np.ascontiguousarray(y, dtype=np.int8).tobytes())
-        self._files["w"].write(np.ascontiguousarray(w, dtype=np.float64).tobytes())
-        self.n += X.shape[0]
+    def _path(self, i: int) -> Path:
+        return self.dir / f"block-{i:08d}.parquet"
 
-    def finish(self) -> None:
-        for f in self._files.values():
-            f.close()
+    def write(self, i: int, block: CellBlock) -> None:
+        columns = [block.c, block.y] + ([block.w] if self.weighted else []) + list(block.Z)
+        table = pa.Table.from_arrays(columns, schema=self.schema)
+        pq.write_table(table, self._path(i), compression="zstd", row_group_size=block.n)
 
-    def batches(self, size: int):
-        """The stored rows in batches of ``size``, read into fresh arrays.
+    def read(self, i: int) -> CellBlock:
+        table = pq.read_table(self._path(i), use_threads=False)
+        cols = [table.column(k).to_numpy() for k in range(table.num_columns)]
+        start = 3 if self.weighted else 2
+        Z = np.stack(cols[start:]) if len(cols) > start else np.zeros((0, len(cols[0])))
+        return CellBlock(cols[0], cols[1], cols[2] if self.weighted else None, Z)
 
-        Plain reads rather than a memory map: a map's pages count as the
-        process's resident memory once touched, so memory would grow with the
-        number of loan-months; here it is bounded by one batch.
-        """
-        p = self.p
-        with open(self.dir / "X.bin", "rb") as fx, open(self.dir / "y.bin", "rb") as fy, open(self.dir / "w.bin", "rb") as fw:
-            for start in range(0, self.n, size):
-                m = min(size, self.n - start)
-                X = np.fromfile(fx, dtype=np.float64, count=m * p).reshape(m, p)
-                y = np.fromfile(fy, dtype=np.int8, count=m)
-                w = np.fromfile(fw, dtype=np.float64, count=m)
-                yield X, y, w
+    @property
+    def nbytes(self) -> int:
+        return sum(self._path(i).stat().st_size for i in self.blocks)
 
     def close(self) -> None:
-        for f in self._files.values():
-            if not f.closed:
-                f.close()
         shutil.rmtree(self.dir, ignore_errors=True)
 
 
-def _evaluate(store, beta, codes, kind, batch_size, need_hess):
-    """Log-likelihood, score (K, p) and observed information (K*p, K*p) at ``beta`` (K, p)."""
-    K, p = beta.shape
-    ll = 0.0
-    g = np.zeros((K, p))
-    H = np.zeros((K * p, K * p)) if need_hess else None
-    for X, y, w in store.batches(batch_size):
-        ll_b, g_b, H_b = batch_sums(X, y, w, beta, codes, kind, need_hess)
-        ll += ll_b
-        g += g_b
-        if need_hess:
-            H += H_b
-    if need_hess:
-        H = symmetric(H)
-    return ll, g, H
+class _CellSums:
+    """The engine's :class:`~creditsurv.engines.DesignSums`: the stored blocks and their first pass."""
 
-
-class _StoredSums:
-    """The engine's :class:`~creditsurv.engines.DesignSums`: the design file and its first pass."""
-
-    def __init__(self, store: _DesignStore, first, fingerprint: str, codes, kind: str, batch_size: int):
-        self.store, self.first, self.fingerprint = store, first, fingerprint
-        self._codes, self._kind, self._batch_size = codes, kind, batch_size
+    def __init__(self, store: _CellStore, design, first, fingerprint: str, codes, kind: str, threads: int):
+        self.store, self.design, self.first, self.fingerprint = store, design, first, fingerprint
+        self._codes, self._kind, self._threads = codes, kind, threads
 
     def evaluate(self, beta, need_hess):
-        return _evaluate(self.store, beta, self._codes, self._kind, self._batch_size, need_hess)
+        """Log-likelihood, score (K, p) and observed information (K*p, K*p) at ``beta`` (K, p)."""
+        eta_cell = self.design.prepare(beta)
+
+        def sums(i):
+            return block_sums(self.design, self.store.read(i), eta_cell, beta, self._codes, self._kind, need_hess)
+
+        total = None
+        for part in ordered_map(sums, self.store.blocks, self._threads):
+            if total is None:
+                total = part
+            else:
+                total += part
+        return self.design.finish(total, beta.shape[0], need_hess)
 
     def close(self) -> None:
         self.store.close()

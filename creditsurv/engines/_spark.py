@@ -3,7 +3,7 @@
 ``engine: spark`` in the config sends the panel, the data checks, the event
 labelling, the fit's likelihood passes and the projection with ECL to Spark.
 The statistics are not written twice: the design (:meth:`FeatureSpec.design`),
-the per-batch likelihood kernel (:func:`creditsurv.model.batch_sums`), the
+the per-batch likelihood kernel by cell (:func:`creditsurv.model.block_sums`), the
 Newton iterations, the checks on the design and the results object, the
 projection and the ECL arithmetic are the same functions the DuckDB engine's
 runs call. What is Spark's own:
@@ -36,6 +36,7 @@ import sys
 import warnings
 from contextlib import contextmanager
 from pathlib import Path
+from types import SimpleNamespace
 
 import duckdb
 import numpy as np
@@ -60,13 +61,7 @@ from ..data import (
     resolve_inputs,
 )
 from ..errors import ConfigError, DataError, EngineError
-from ..model import (
-    FirstPass,
-    batch_design,
-    batch_sums,
-    fit_fingerprint,
-    symmetric,
-)
+from ..model import CellBlock, FirstPass, block_first_sums, block_sums, cell_design
 from ..sql import month_index_sql, quote_ident, quote_literal
 
 __all__ = [
@@ -528,7 +523,7 @@ class SparkEngine:
             raise DataError(f"query failed: {_first_line(exc)}") from None
         yield from table.to_batches(max_chunksize=batch_size)
 
-    def design_sums(self, spec, sql, params, *, collapse, dropped, codes, kind, batch_size, temp_dir):
+    def design_sums(self, spec, sql, params, *, collapse, dropped, codes, kind, batch_size, temp_dir, block_rows=None):
         return _design_sums(self, spec, sql, params, collapse=collapse, dropped=dropped, codes=codes, kind=kind)
 
     def map_book(self, fn, book, writers, progress=None) -> list:
@@ -765,134 +760,135 @@ def macro_history(panel: SparkEngine) -> pd.DataFrame:
 # --------------------------------------------------------------------------- the fit
 
 
-def _design_blocks(spec, collapse, dropped, batches):
-    """Executor side, once: evaluate the design of each Arrow batch of raw rows."""
+def _design_blocks(design, collapse, dropped, batches):
+    """Executor side, once: the cell form of each Arrow batch of raw rows (see :class:`CellDesign`)."""
     for batch in batches:
         raw = {nm: batch.column(i).to_numpy(zero_copy_only=False) for i, nm in enumerate(batch.schema.names)}
-        design = batch_design(raw, spec, collapse, dropped)
-        if design is None:
+        block = design.block(raw, collapse, dropped)
+        if block is None:
             continue
-        X, y, w = design
+        w = b"" if block.w is None else block.w.tobytes()
         yield pa.RecordBatch.from_pydict(
-            {"X": [np.ascontiguousarray(X).tobytes()], "y": [y.tobytes()], "w": [w.tobytes()]},
-            schema=pa.schema([("X", pa.binary()), ("y", pa.binary()), ("w", pa.binary())]),
+            {"c": [block.c.tobytes()], "y": [block.y.tobytes()], "w": [w], "Z": [np.ascontiguousarray(block.Z).tobytes()]},
+            schema=pa.schema([("c", pa.binary()), ("y", pa.binary()), ("w", pa.binary()), ("Z", pa.binary())]),
         )
 
 
-def _decode_block(p, row):
-    X = np.frombuffer(row["X"], dtype=np.float64).reshape(-1, p)
-    return X, np.frombuffer(row["y"], dtype=np.int8), np.frombuffer(row["w"], dtype=np.float64)
+def _decode_block(row):
+    c = np.frombuffer(row["c"], dtype=np.uint16)
+    w = np.frombuffer(row["w"], dtype=np.float64) if row["w"] else None
+    return CellBlock(c, np.frombuffer(row["y"], dtype=np.int8), w, np.frombuffer(row["Z"], dtype=np.float64).reshape(-1, c.shape[0]))
 
 
-def _first_pass_partition(p, index, blocks):
-    first = FirstPass(p)
-    for X, y, w in blocks:
-        first.add(X, y, w)
-    yield index, first.S, first.xtx, first.is01, first.n, first.stream_digests()
+def _first_pass_partition(design, index, blocks):
+    total = None
+    for block in blocks:
+        sums = block_first_sums(design, block)
+        if total is None:
+            total = sums
+        else:
+            total += sums
+    if total is not None:
+        yield index, total.counts, total.S_rows, total.x_cross, total.x_rows, total.is01_rows, total.n, total.digests
 
 
-def _sums_partition(beta_bc, codes, kind, need_hess, index, blocks):
-    """Executor side, per Newton evaluation: this partition's log-likelihood, score and information.
-
-    The information comes back as the packed upper triangle (P(P+1)/2 doubles).
-    """
+def _sums_partition(design, beta_bc, codes, kind, need_hess, index, blocks):
+    """Executor side, per Newton evaluation: this partition's sums by cell (:class:`PassSums`), blocks added in order."""
     beta = beta_bc.value
-    K, p = beta.shape
-    P = K * p
-    ll, g = 0.0, np.zeros((K, p))
-    H = np.zeros((P, P)) if need_hess else None
-    for X, y, w in blocks:
-        ll_b, g_b, H_b = batch_sums(X, y, w, beta, codes, kind, need_hess)
-        ll += ll_b
-        g += g_b
-        if need_hess:
-            H += H_b
-    packed = H[np.triu_indices(P)] if need_hess else None
-    yield index, ll, g, packed
+    eta_cell = design.prepare(beta)
+    total = None
+    for block in blocks:
+        part = block_sums(design, block, eta_cell, beta, codes, kind, need_hess)
+        if total is None:
+            total = part
+        else:
+            total += part
+    if total is not None:
+        yield index, total
 
 
 class _CachedSums:
     """The Spark engine's :class:`~creditsurv.engines.DesignSums`.
 
-    The design is evaluated once per partition and cached on the executors;
-    each Newton evaluation runs one Spark job whose tasks return the
-    partition's log-likelihood, score and information (packed upper
-    triangle), added on the driver in partition order, so the driver holds
-    only parameter-sized arrays.
+    The rows' cell form is computed once per partition and cached on the executors;
+    each Newton evaluation runs one Spark job whose tasks return the partition's
+    sums by cell (:func:`creditsurv.model.block_sums`, the DuckDB engine's kernel),
+    added on the driver in partition order, so the driver holds only arrays of the
+    size of the cell table and the parameters.
 
     ``fingerprint`` hashes the partitions' stream digests in order; it is
     reproducible for the same data, spec and partitioning but is not the
     DuckDB engine's fingerprint.
     """
 
-    def __init__(self, engine, blocks, first, fingerprint: str, codes, kind: str):
+    def __init__(self, engine, blocks, design, first, fingerprint: str, codes, kind: str):
         self.first, self.fingerprint = first, fingerprint
-        self._blocks, self._codes, self._kind = blocks, codes, kind
+        self._blocks, self._design, self._codes, self._kind = blocks, design, codes, kind
         self._sc = engine.spark.sparkContext
 
     def evaluate(self, beta, need_hess):
-        P = beta.size
-        upper = np.triu_indices(P)
         bc = self._sc.broadcast(np.asarray(beta, dtype=np.float64))
         try:
-            fn = functools.partial(_sums_partition, bc, self._codes, self._kind, need_hess)
+            fn = functools.partial(_sums_partition, self._design, bc, self._codes, self._kind, need_hess)
             results = sorted(_collect(self._blocks.mapPartitionsWithIndex(fn), "the fit's Newton iterations"), key=lambda r: r[0])
         finally:
             bc.destroy()
-        ll, g = 0.0, np.zeros(beta.shape)
-        H = np.zeros((P, P)) if need_hess else None
-        packed = np.zeros(len(upper[0])) if need_hess else None
-        for _i, ll_k, g_k, h_k in results:
-            ll += ll_k
-            g += g_k
-            if need_hess:
-                packed += h_k
-        if need_hess:
-            H[upper] = packed
-            H = symmetric(H)
-        return ll, g, H
+        total = None
+        for _i, part in results:
+            if total is None:
+                total = part
+            else:
+                total += part
+        return self._design.finish(total, beta.shape[0], need_hess)
 
     def close(self) -> None:
         self._blocks.unpersist()
 
 
 def _design_sums(engine, spec, sql, params, *, collapse, dropped, codes, kind):
-    """Evaluate the design per partition on the executors (cached) and take the first pass.
+    """Compute the rows' cell form per partition on the executors (cached) and take the first pass.
 
     Spark's Arrow batches (``spark.sql.execution.arrow.maxRecordsPerBatch``)
-    bound a task's memory; the fit's ``batch_size`` is not used for the reads.
+    bound a task's memory; the fit's ``batch_size`` and ``block_rows`` are not used.
     """
     from pyspark import StorageLevel
 
-    p = len(spec.columns)
+    design = cell_design(spec)
     try:
         raw = engine.con.frame(sql, list(params) if params else None)
         if not collapse:
             # Whole loans per partition, rows in (loan, month) order within each.
             raw = raw.repartitionByRange(engine.partitions, "loan_id").sortWithinPartitions("loan_id", "month_idx")
-        schema = "X binary, y binary, w binary"
+        schema = "c binary, y binary, w binary, Z binary"
         with _quiet_pandas_notice():
             blocks = (
-                raw.mapInArrow(functools.partial(_design_blocks, spec, collapse, dropped), schema)
-                .rdd.map(functools.partial(_decode_block, p))
+                raw.mapInArrow(functools.partial(_design_blocks, design, collapse, dropped), schema)
+                .rdd.map(_decode_block)
                 .persist(StorageLevel.MEMORY_AND_DISK)
             )
     except Exception as exc:  # noqa: BLE001
         raise DataError(f"cannot read the risk set for the fit: {_first_line(exc)}") from None
     try:
-        first_pass = blocks.mapPartitionsWithIndex(functools.partial(_first_pass_partition, p))
+        first_pass = blocks.mapPartitionsWithIndex(functools.partial(_first_pass_partition, design))
         parts = sorted(_collect(first_pass, "the fit's first pass"), key=lambda r: r[0])
     except BaseException:
         blocks.unpersist()
         raise
-    first = FirstPass(p)
-    for _i, S, xtx, is01, n, _d in parts:
-        first.S += S
-        first.xtx += xtx
-        first.is01 &= is01
-        first.n += n
-    digests = [hashlib.sha256("|".join(part[5][k] for part in parts if part[4]).encode()).hexdigest() for k in range(3)]
-    return _CachedSums(engine, blocks, first, fit_fingerprint(first.n, spec.columns, digests), codes, kind)
+    if not parts:
+        first = FirstPass(design.p)
+        return _CachedSums(engine, blocks, design, first, first.fingerprint(design.names), codes, kind)
+    _i, counts, S_rows, x_cross, x_rows, is01_rows, n, _d = parts[0]
+    sums = SimpleNamespace(counts=counts, S_rows=S_rows, x_cross=x_cross, x_rows=x_rows, is01_rows=is01_rows, n=n)
+    for _i, counts, S_rows, x_cross, x_rows, is01_rows, n, _d in parts[1:]:
+        sums.counts += counts
+        sums.S_rows += S_rows
+        sums.x_cross += x_cross
+        sums.x_rows += x_rows
+        sums.is01_rows &= is01_rows
+        sums.n += n
+    sums.digests = [hashlib.sha256("|".join(part[7][k] for part in parts).encode()).hexdigest() for k in range(len(parts[0][7]))]
+    first = design.first_pass(sums)
+    return _CachedSums(engine, blocks, design, first, first.fingerprint(design.names, design.digest()), codes, kind)
 
 
 def _collect(rdd, step: str):

@@ -6,6 +6,20 @@ loan-month (``required_inputs``) and the monthly default and prepayment
 probabilities for them (``hazards(raw)``).
 """
 
+from ._cells import (
+    FIT_BLOCK_ROWS,
+    N_CODES,
+    CellBlock,
+    CellDesign,
+    FirstPass,
+    FirstSums,
+    PassSums,
+    block_first_sums,
+    block_sums,
+    cell_design,
+    fit_fingerprint,
+    ordered_map,
+)
 from ._features import (
     FeatureSpec,
     InputGrid,
@@ -16,14 +30,9 @@ from ._features import (
 from ._hazard import (
     CAUSES,
     MULTI_STATE_FORMAT,
-    N_CODES,
     TRUST_LIMITS,
-    FirstPass,
     HazardResults,
-    batch_design,
-    batch_sums,
     check_fit_arguments,
-    fit_fingerprint,
     fit_from_sums,
     fit_hazard,
     fit_model,
@@ -33,7 +42,6 @@ from ._hazard import (
     read_model_file,
     resolve_collapse,
     results_from_dict,
-    symmetric,
 )
 from ._multistate import DESIGNS, MultiStateResults, fit_multi_state, state_codes
 from ._names import (
@@ -67,8 +75,9 @@ from ._speeds import (
 
 __all__ = [
     "DESIGNS", "MULTI_STATE_FORMAT", "MultiStateResults", "N_CODES", "fit_multi_state", "fit_outcomes", "read_model_file", "results_from_dict",
-    "state_codes", "BenchmarkCurves", "CAUSES", "TRUST_LIMITS", "FeatureSpec", "InputGrid", "HazardSource", "FirstPass", "batch_design", "batch_sums", "check_fit_arguments",
-    "development_window", "fit_fingerprint", "fit_from_sums", "hazard_source", "hpi_series_name", "with_age_tail", "macro_key", "panel_key", "parse_macro_key", "parse_panel_key", "scheduled_balance", "scheduled_balance_sql", "raw_design_sql", "resolve_collapse", "symmetric", "HazardResults", "HazardTable", "RawInput",
+    "state_codes", "BenchmarkCurves", "CAUSES", "TRUST_LIMITS", "FeatureSpec", "InputGrid", "HazardSource", "FirstPass", "block_first_sums", "block_sums", "check_fit_arguments",
+    "development_window", "fit_fingerprint", "fit_from_sums", "hazard_source", "hpi_series_name", "with_age_tail", "macro_key", "panel_key", "parse_macro_key", "parse_panel_key", "scheduled_balance", "scheduled_balance_sql", "raw_design_sql", "resolve_collapse", "HazardResults", "HazardTable", "RawInput",
     "cdr_to_mdr", "cpr_to_smm", "equivalent_psa", "equivalent_sda", "feature_spec", "fit_hazard", "fit_model",
+    "CellBlock", "CellDesign", "FIT_BLOCK_ROWS", "FirstSums", "PassSums", "cell_design", "ordered_map",
     "load_model", "loosened_limits", "mdr_to_cdr", "natural_spline_basis", "psa_cpr", "sda_cdr", "smm_to_cpr", "speeds_to_hazards",
 ]  # fmt: skip

@@ -27,14 +27,17 @@ With ``causes=("default",)`` (or ``("prepay",)``) only that cause is modelled:
 rows of the other outcome are left out and both kinds reduce to one binary logit.
 
 The fit is Newton-Raphson with step halving on the (penalised)
-log-likelihood. A first pass streams the raw rows from DuckDB in batches,
-evaluates the design with :meth:`FeatureSpec.design` and writes it (float64)
-to a temporary file; each Newton iteration then streams that file in batches
-and accumulates the gradient and the observed information with BLAS, so memory
-is bounded by ``batch_size`` rows, not by the number of loan-months. When every
-term is discrete (age bands or indicators, bins, categoricals), the rows are
-first collapsed to covariate-pattern counts with SQL ``GROUP BY`` (exact,
-fewer rows) and fitted with frequency weights.
+log-likelihood. A first pass streams the raw rows from the engine, evaluates the
+design with :meth:`FeatureSpec.design` and keeps each row in its cell form
+(:class:`CellDesign`: a cell code for the discrete values, the
+numeric values as they are) in fixed blocks of ``block_rows`` rows; each Newton
+pass sums the likelihood, score and information over the blocks by cell, in
+parallel threads, and adds the blocks' sums in block order. Memory is bounded by
+a few blocks, not by the number of loan-months, and the results are the same
+bits for any batch size and number of threads. When every term is discrete (age
+bands or indicators, bins, categoricals), the rows are first collapsed to
+covariate-pattern counts with SQL ``GROUP BY`` (exact, fewer rows) and fitted
+with frequency weights.
 
 The ridge penalty ``ridge * ||beta||^2 / 2`` applies to every coefficient
 except the intercepts; with a penalty the reported covariance is the inverse of
@@ -43,10 +46,8 @@ the penalised information.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
-import threading
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -54,12 +55,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from scipy import linalg, stats
-from scipy.linalg import blas
 
 from ..data import CAUSE_CODES
 from ..errors import (
     ConvergenceError,
-    DataError,
     FewEventsWarning,
     ModelError,
     SeparationError,
@@ -67,10 +66,11 @@ from ..errors import (
     problem_list,
 )
 from ..sql import quote_ident
+from ._cells import FIT_BLOCK_ROWS
 from ._features import FeatureSpec, SpecInputs
 
 __all__ = [
-    "CAUSES", "MULTI_STATE_FORMAT", "N_CODES", "STABLE_EVENTS_PER_PARAMETER", "TRUST_LIMITS", "HazardResults", "check_saved_model", "fit_hazard",
+    "CAUSES", "MULTI_STATE_FORMAT", "STABLE_EVENTS_PER_PARAMETER", "TRUST_LIMITS", "HazardResults", "check_saved_model", "fit_hazard",
     "fit_model", "fit_outcomes", "loosened_limits", "read_model_file", "results_from_dict",
 ]  # fmt: skip
 
@@ -177,8 +177,10 @@ class HazardResults(SpecInputs):
         What was fitted: model kind, penalty, causes and the learned
         :class:`FeatureSpec`.
     data_fingerprint : str
-        SHA-256 of the evaluated training design, outcomes and weights in
-        read order: identical data and spec give the same fingerprint.
+        SHA-256 of the stored training rows (cell codes, outcomes, weights and
+        numeric values, each stream in read order) and of the cell table that
+        maps them to the design: identical data and spec give the same
+        fingerprint, whatever the batch size, block size or threads.
     """
 
     params: pd.DataFrame
@@ -396,89 +398,6 @@ def results_from_dict(data, path) -> HazardResults:
         raise ModelError(f"{path}: model JSON is missing or has a bad entry: {exc!r}") from None
 
 
-# --------------------------------------------------------------------------- design store
-
-
-# --------------------------------------------------------------------------- the likelihood
-
-
-def batch_sums(X, y, w, beta, codes, kind, need_hess):
-    """Log-likelihood, score (K, p) and the upper blocks of the information of one batch.
-
-    The kernel both engines share: the DuckDB engine sums it over the batches
-    of its design file, the Spark engine over the batches of each partition
-    and then over partitions. Per-cause quantities are held as (K, n) rows so
-    that every elementwise step runs over contiguous memory; the information
-    blocks are ``X' diag(v) X`` products done by BLAS. Only the blocks on and
-    above the diagonal (cause a <= cause b) are filled; :func:`symmetric`
-    completes the matrix once all batches are summed.
-    """
-    K, p = beta.shape
-    ll = 0.0
-    g = np.zeros((K, p))
-    H = np.zeros((K * p, K * p)) if need_hess else None
-    E = beta @ X.T  # (K, n)
-    Y = y[None, :] == codes[:, None]  # (K, n)
-    if kind == "multinomial":
-        m = np.maximum(E.max(axis=0), 0.0)
-        P = np.exp(E - m)
-        den = np.exp(-m) + P.sum(axis=0)
-        P /= den
-        ll += float(w @ (np.where(Y, E, 0.0).sum(axis=0) - m - np.log(den)))
-        g += ((Y - P) * w) @ X
-        if need_hess:
-            for a in range(K):
-                for b in range(a, K):
-                    v = w * P[a] * ((1.0 - P[b]) if a == b else -P[b])
-                    block = _xtvx(X, v, sign=1.0 if a == b else -1.0)
-                    if a != b:  # above the diagonal of H: the whole (symmetric) block
-                        block = block + np.triu(block, 1).T
-                    H[a * p:(a + 1) * p, b * p:(b + 1) * p] += block
-    else:
-        for a in range(K):  # every month is a trial of every cause (module docstring)
-            ea = E[a]
-            P = 0.5 * (1.0 + np.tanh(0.5 * ea))  # logistic, stable for large |eta|
-            ll += float(w @ (np.where(Y[a], ea, 0.0) - np.logaddexp(0.0, ea)))
-            g[a] += (w * (Y[a] - P)) @ X
-            if need_hess:
-                v = w * P * (1.0 - P)
-                H[a * p:(a + 1) * p, a * p:(a + 1) * p] += _xtvx(X, v, sign=1.0)
-    return ll, g, H
-
-
-_WORK = threading.local()
-
-
-def _work_buffer(shape) -> np.ndarray:
-    """A reusable scratch array of ``shape`` (one per thread).
-
-    Batches are tens of megabytes; allocating a fresh scratch array for every
-    block of every batch costs more in page faults than the arithmetic.
-    """
-    size = int(np.prod(shape))
-    buf = getattr(_WORK, "buf", None)
-    if buf is None or buf.size < size:
-        buf = np.empty(size)
-        _WORK.buf = buf
-    return buf[:size].reshape(shape)
-
-
-def _xtvx(X, v, sign):
-    """Upper triangle of ``X' diag(v) X`` for ``v`` of one sign (``sign * v >= 0``).
-
-    ``X' diag(v) X = sign * Z'Z`` with ``Z = sqrt(sign * v) X``: a symmetric
-    rank-k update (BLAS ``dsyrk``) does half the work of a general product.
-    ``Z.T`` of a C-ordered ``Z`` is Fortran-ordered, so BLAS reads it in place.
-    """
-    Z = np.multiply(X, np.sqrt(np.maximum(sign * v, 0.0))[:, None], out=_work_buffer(X.shape))
-    return sign * blas.dsyrk(1.0, Z.T, trans=0)
-
-
-def symmetric(H):
-    """The full information matrix from its summed upper blocks."""
-    return np.triu(H) + np.triu(H, 1).T
-
-
 # --------------------------------------------------------------------------- checks
 
 
@@ -563,6 +482,7 @@ def fit_hazard(
     collapse: bool | str = "auto",
     temp_dir=None,
     limits: dict | None = None,
+    block_rows: int = FIT_BLOCK_ROWS,
 ) -> HazardResults:
     """Fit a discrete-time competing-risk hazard model on the risk set.
 
@@ -583,7 +503,7 @@ def fit_hazard(
     ridge : float, default 0
         Penalty ``ridge * ||beta||^2 / 2`` on the non-intercept coefficients.
     batch_size : int
-        Rows per batch when reading and when accumulating the information.
+        Rows per batch read from the engine (no effect on the results).
     max_iter : int
         Newton iterations at most.
     tol : float
@@ -597,6 +517,9 @@ def fit_hazard(
         Limits a model must keep to be used, by the names of :data:`TRUST_LIMITS` (its defaults
         fill the names not given): fewer events per parameter of a cause, or a coefficient or
         standard error absurd for its column's scale, is a ``ModelError``.
+    block_rows : int
+        Rows per block of the fit's sums (:data:`FIT_BLOCK_ROWS`): the blocks are added in order,
+        which fixes the rounding of the sums.
 
     Returns
     -------
@@ -612,14 +535,14 @@ def fit_hazard(
     return fit_outcomes(
         engine, spec, causes=causes, codes=codes, dropped=dropped, kind=kind, where_sql=where_sql, params=params,
         ridge=ridge, batch_size=batch_size, max_iter=max_iter, tol=tol, collapse=collapse, temp_dir=temp_dir,
-        limits=limits, stacklevel=4,
+        limits=limits, stacklevel=4, block_rows=block_rows,
     )
 
 
 def fit_outcomes(
     engine, spec, *, causes, codes, dropped=(), kind="multinomial", where_sql="TRUE", params=(), ridge=0.0,
     batch_size=250_000, max_iter=50, tol=1e-8, collapse="auto", temp_dir=None, limits=None, origin_state=None, free=None,
-    reference=0, stacklevel=3,
+    reference=0, stacklevel=3, block_rows=FIT_BLOCK_ROWS,
 ) -> HazardResults:
     """Fit a learned ``spec`` to the outcomes ``codes`` (named ``causes``) against code 0, the reference.
 
@@ -633,7 +556,7 @@ def fit_outcomes(
     sql = raw_design_sql(engine.con, spec, where_sql, collapse, origin_state=origin_state, reference=reference)
     sums = engine.design_sums(
         spec, sql, list(params), collapse=collapse, dropped=list(dropped), codes=codes, kind=kind,
-        batch_size=batch_size, temp_dir=temp_dir,
+        batch_size=batch_size, temp_dir=temp_dir, block_rows=block_rows,
     )
     try:
         return fit_from_sums(
@@ -684,65 +607,6 @@ def raw_design_sql(
         group = ", ".join(quote_ident(k) for k in ["age", "outcome", *keys])
         sql = f"WITH data AS (\n{sql}\n)\nSELECT {group}, count(*) AS \"_cs_weight\"\nFROM data\nGROUP BY ALL\nORDER BY ALL"
     return sql
-
-
-def batch_design(raw: dict, spec: FeatureSpec, collapse: bool, dropped):
-    """Design ``X``, outcomes ``y`` (int8) and weights ``w`` of one batch of raw rows, or None if empty."""
-    y = np.asarray(raw["outcome"])
-    valid = np.arange(N_CODES)
-    if y.dtype.kind == "f" and np.isnan(y).any() or not np.isin(y, valid).all():
-        bad = sorted(set(np.unique(y[~np.isin(y, valid)]).tolist()))[:5]
-        raise DataError(f"loan_months outcome codes must be integers 0 to {N_CODES - 1}; found {bad}")
-    y = y.astype(np.int8)
-    w = np.asarray(raw["_cs_weight"], dtype=np.float64) if collapse else np.ones(y.shape[0])
-    if dropped:
-        keep = ~np.isin(y, dropped)
-        raw = {k: v[keep] for k, v in raw.items()}
-        y, w = y[keep], w[keep]
-    if y.shape[0] == 0:
-        return None
-    X, _ = spec.design(raw)
-    return X, y, w
-
-
-N_CODES = 16
-"""Outcome codes the fit accepts: 0 (the reference), 1 default, 2 prepay, 3 + k a move to arrears state k."""
-
-
-class FirstPass:
-    """Sums of the first pass over the design: events by column, X'WX, 0/1 columns, fingerprint.
-
-    ``S[j, c]`` is the weighted sum of column ``j`` over the rows with outcome code ``c``.
-    """
-
-    def __init__(self, p: int):
-        # One hash per stream so that the fingerprint does not depend on batch boundaries.
-        self.digests = {k: hashlib.sha256() for k in ("X", "y", "w")}
-        self.S = np.zeros((p, N_CODES))
-        self.xtx = np.zeros((p, p))
-        self.is01 = np.ones(p, dtype=bool)
-        self.n = 0
-
-    def add(self, X, y, w) -> None:
-        self.digests["X"].update(np.ascontiguousarray(X).tobytes())
-        self.digests["y"].update(y.tobytes())
-        self.digests["w"].update(w.tobytes())
-        for code in np.unique(y):  # column sums by outcome: integers for indicators, in any order
-            rows = y == code
-            self.S[:, code] += w[rows] @ X[rows]
-        self.xtx += (X * w[:, None]).T @ X
-        self.is01 &= ((X == 0) | (X == 1)).all(axis=0)
-        self.n += X.shape[0]
-
-    def stream_digests(self) -> list[str]:
-        return [d.hexdigest() for d in self.digests.values()]
-
-    def fingerprint(self, names) -> str:
-        return fit_fingerprint(self.n, names, self.stream_digests())
-
-
-def fit_fingerprint(n: int, names, digests) -> str:
-    return hashlib.sha256(f"creditsurv-design|{n}|{'|'.join(names)}|".encode() + "|".join(digests).encode()).hexdigest()
 
 
 def fit_from_sums(
