@@ -49,12 +49,9 @@ from __future__ import annotations
 
 import dataclasses
 import functools
-import itertools
 import math
 import os
-from collections import deque
 from collections.abc import Callable, Mapping, Sequence
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -72,6 +69,7 @@ from ..model import (
     equivalent_sda,
     hpi_series_name,
     mdr_to_cdr,
+    ordered_map,
     parse_macro_key,
     parse_panel_key,
     scheduled_balance,
@@ -1168,7 +1166,8 @@ def project_loans(
         chunk = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=False)
         return _chunk_results(book, sl, chunk, _chunk_curves(chunk, scenarios, w), scenarios, w, pooled, tables, prepare)
 
-    for rows, results in in_order(work, chunk_rows(book.remaining, chunk_size, keep_order or any(tables)), threads):
+    chunks = chunk_rows(book.remaining, chunk_size, keep_order or any(tables))
+    for rows, results in zip(chunks, ordered_map(work, chunks, thread_count(threads))):
         _take_chunk(rows, results, pooled, curve_writer, term_writer, on_chunk)
     sums = pooled.finish(w, scenarios)
     return _projection_result(book, pooled, sums, segment_column, scenarios, w, as_of_idx, band_edges)
@@ -1215,44 +1214,17 @@ def chunk_rows(remaining: np.ndarray, chunk_size: int, keep_order: bool) -> list
     return [order[start : start + chunk_size] for start in range(0, n, chunk_size)]
 
 
-def in_order(work, items, threads: int | None = None):
-    """``(item, work(item))`` for each of ``items``, in their order, computed in ``threads`` threads.
-
-    ``work`` must be a pure function of its item (numpy releases the interpreter lock in its loops, so
-    chunks of arrays run in parallel). At most ``threads + 1`` results wait at a time, so memory stays
-    bounded by a few chunks; whatever adds the results up does so in the items' order, so the sums are
-    the same for any number of threads. ``None``: one thread per available core.
-    """
-    threads = available_cores() if threads is None else int(threads)
-    if threads < 1:
-        raise ProjectionError(f"threads must be at least 1, got {threads}")
-    if threads == 1 or len(items) < 2:
-        for item in items:
-            yield item, work(item)
-        return
-    with ThreadPoolExecutor(max_workers=threads) as pool:
-        pending = deque()
-        queue = iter(items)
-        for item in itertools.islice(queue, threads + 1):
-            pending.append((item, pool.submit(work, item)))
+def thread_count(threads: int | None) -> int:
+    """The threads a projection runs its chunks in (:func:`creditsurv.model.ordered_map`): ``threads``, or one per
+    core this process may run on. Every result is the same for any number: the chunks are added up in order."""
+    if threads is None:
         try:
-            while pending:
-                item, future = pending.popleft()
-                following = next(queue, None)
-                if following is not None:
-                    pending.append((following, pool.submit(work, following)))
-                yield item, future.result()
-        finally:
-            for _, future in pending:
-                future.cancel()
-
-
-def available_cores() -> int:
-    """The cores this process may run on."""
-    try:
-        return max(len(os.sched_getaffinity(0)), 1)
-    except AttributeError:  # not on Linux
-        return max(os.cpu_count() or 1, 1)
+            return max(len(os.sched_getaffinity(0)), 1)
+        except AttributeError:  # not on Linux
+            return max(os.cpu_count() or 1, 1)
+    if int(threads) < 1:
+        raise ProjectionError(f"threads must be at least 1, got {threads}")
+    return int(threads)
 
 
 def _chunk_curves(chunk, scenarios, w) -> dict:
@@ -1564,7 +1536,7 @@ def origination_pd(
         s_a = np.where(a > 0, s[rows, np.maximum(a - 1, 0)], 1.0)
         return np.where(s_a > 0, (f_d[:, -1] - f_a) / np.where(s_a > 0, s_a, 1.0), 0.0)
 
-    for (sl, _), values in in_order(work, chunks, threads):
+    for (sl, _), values in zip(chunks, ordered_map(work, chunks, thread_count(threads))):
         out[sl] = values
     return pd.Series(out, index=pd.Index(book.loan_id, name="loan_id"), name="pd_lifetime_origination").sort_index()
 
