@@ -332,7 +332,7 @@ def test_origination_pd_reads_one_path_from_the_origination_month():
     src = LogitSource()
     loans = _loans()
     hist = _history()
-    po = origination_pd(loans, src, hist, chunk_size=3, extension=ScenarioExtension(rule="hold_last"), threads=1)
+    po = origination_pd(loans, src, hist, chunk_size=3, extension=ScenarioExtension(rule="hold_last"), workers=1)
     assert list(po.index) == sorted(loans["loan_id"])
     raw = src.calls[0]
     # loans are projected by origination month: the first call holds the first month's first loans

@@ -11,6 +11,7 @@ Thread counts are checked to give the same bytes.
 from __future__ import annotations
 
 import dataclasses
+import os
 
 import numpy as np
 import pandas as pd
@@ -18,15 +19,25 @@ import pyarrow as pa
 import pytest
 from test_projection import AS_OF, WEIGHTS, _paths
 
-from creditsurv.config import Baseline, Collateral, Covariate, ModelSpec
+from creditsurv.config import (
+    Baseline,
+    Collateral,
+    Covariate,
+    Lgd,
+    Loss,
+    ModelSpec,
+    Staging,
+)
 from creditsurv.errors import ModelError
 from creditsurv.forecast import (
+    can_fork,
     chain_of_moves,
     markov_chain,
     origination_pd,
     panel_history_name,
     project_loans,
 )
+from creditsurv.loss import expected_credit_loss
 from creditsurv.model import (
     FeatureSpec,
     HazardResults,
@@ -129,11 +140,11 @@ def _loans(n=40, seed=1) -> pd.DataFrame:
     return frame
 
 
-def _projected(source, threads=1, chunk_size=7):
+def _projected(source, workers=1, chunk_size=7):
     tables = []
     result = project_loans(
         _loans(), source, _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=COLLATERAL, chunk_size=chunk_size,
-        curve_writer=tables.append, threads=threads,
+        curve_writer=tables.append, workers=workers,
     )  # fmt: skip
     return result, pa.concat_tables(tables)
 
@@ -186,9 +197,9 @@ def test_the_fast_route_projects_what_the_general_route_projects(kind):
 
 def test_any_number_of_threads_gives_the_same_bytes():
     model = _model(_spec())
-    one, one_rows = _projected(model, threads=1)
-    for threads, chunk_size in ((2, 7), (3, 5)):
-        again, again_rows = _projected(model, threads=threads)
+    one, one_rows = _projected(model, workers=1)
+    for threads in (2, 3):  # the same chunks: another chunk size adds the pooled sums in another order
+        again, again_rows = _projected(model, workers=threads)
         pd.testing.assert_frame_equal(one.loans, again.loans, check_exact=True)
         pd.testing.assert_frame_equal(one.term_structure, again.term_structure, check_exact=True)
         pd.testing.assert_frame_equal(one.speeds, again.speeds, check_exact=True)
@@ -267,3 +278,60 @@ def test_a_multi_state_model_whose_moves_are_not_probabilities_is_refused():
     loans = _loans().assign(arrears_state=1)
     with pytest.raises(ModelError, match="not finite"):
         project_loans(loans, model, _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=COLLATERAL, chunk_size=7)
+
+
+needs_fork = pytest.mark.skipif(not can_fork(), reason="worker processes are forked, which this platform cannot do")
+
+
+def _pids(source, workers, **kw):
+    """A projection without writers, and the processes that computed its chunks."""
+    pids = []
+    result = project_loans(
+        _loans(), source, _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=COLLATERAL, chunk_size=5,
+        prepare=lambda ch: os.getpid(), on_prepared=lambda rows, pid: pids.append(pid), workers=workers, **kw,
+    )  # fmt: skip
+    return result, set(pids)
+
+
+@needs_fork
+@pytest.mark.parametrize("kind", ["multinomial", "multi_state"])
+def test_chunks_in_worker_processes_give_the_bytes_of_one_thread(kind):
+    model = _multi_state() if kind == "multi_state" else _model(_spec())
+    one, one_pids = _pids(model, 1)
+    two, two_pids = _pids(model, 2)
+    assert one_pids == {os.getpid()}
+    assert len(two_pids) == 2 and os.getpid() not in two_pids  # the chunks did run in two other processes
+    for name in ("loans", "term_structure", "speeds", "speed_multiples"):
+        pd.testing.assert_frame_equal(getattr(one, name), getattr(two, name), check_exact=True)
+    threads, pids = _pids(model, 2, processes=False)
+    assert pids == {os.getpid()}
+    pd.testing.assert_frame_equal(threads.term_structure, two.term_structure, check_exact=True)
+    loans = _loans()
+    base = _paths()["base"]
+    pd.testing.assert_series_equal(
+        origination_pd(loans, model, base, collateral=COLLATERAL, chunk_size=3, workers=1),
+        origination_pd(loans, model, base, collateral=COLLATERAL, chunk_size=3, workers=2),
+        check_exact=True,
+    )
+
+
+@needs_fork
+def test_the_ecl_in_worker_processes_is_the_ecl_of_one_thread():
+    loans = _loans().assign(days_past_due=0)
+    # the staging projects each loan's PD at origination: origination_pd runs in the workers too
+    kwargs = dict(
+        as_of_idx=AS_OF, weights=WEIGHTS, collateral=COLLATERAL, chunk_size=5, default_days_past_due=90,
+        loss=Loss(lgd=Lgd(kind="constant", constant=0.3, floor=0.0)), staging=Staging(),
+    )  # fmt: skip
+    one = expected_credit_loss(loans, _model(_spec()), _paths(), workers=1, **kwargs)
+    two = expected_credit_loss(loans, _model(_spec()), _paths(), workers=2, **kwargs)
+    pd.testing.assert_frame_equal(one.loan_table(), two.loan_table(), check_exact=True)
+    assert one.loan_table()["ecl_lifetime"].gt(0).all()
+
+
+@needs_fork
+def test_an_error_in_a_worker_process_reaches_the_caller():
+    model = _model(_spec(), kind="cause_specific")
+    model.params.loc["intercept"] = 10.0
+    with pytest.raises(ModelError, match=r"summing above 1 for 5 loans"):
+        _pids(model, 2)

@@ -17,8 +17,8 @@ Any object with
 - ``hazards(raw: dict[str, ndarray]) -> (h_default, h_prepay)``: monthly
   probabilities, flat arrays as long as the inputs.
 
-Chunks of loans are projected in several threads at once, so ``hazards`` must be
-a function of its inputs alone (safe to call from two threads). A fitted model
+Chunks of loans are projected in several threads or forked processes at once, so
+``hazards`` must be a function of its inputs alone (safe to call from two threads). A fitted model
 also offers a fast route, ``grid_hazards(grid)`` (or ``grid_transitions`` for a
 multi-state model): the inputs as an :class:`~creditsurv.model.InputGrid`, each
 held at the grain it varies at (per age, loan, month or loan-month), so that most
@@ -50,7 +50,6 @@ from __future__ import annotations
 import dataclasses
 import functools
 import math
-import os
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -69,7 +68,6 @@ from ..model import (
     equivalent_sda,
     hpi_series_name,
     mdr_to_cdr,
-    ordered_map,
     parse_macro_key,
     parse_panel_key,
     scheduled_balance,
@@ -78,6 +76,7 @@ from ..model import (
 from ..months import month_ranges
 from ._chain import chain_of_moves, markov_chain
 from ._scenarios import OriginationPaths
+from ._workers import chunk_map, worker_count
 
 __all__ = [
     "CHUNK_SIZE",
@@ -1081,8 +1080,10 @@ def project_loans(
     term_writer: Callable[[pa.Table], None] | None = None,
     on_chunk: Callable[[ChunkProjection], None] | None = None,
     prepare: Callable[[ChunkProjection], object] | None = None,
+    on_prepared: Callable[[slice | np.ndarray, object], None] | None = None,
     keep_order: bool = False,
-    threads: int | None = None,
+    workers: int | None = None,
+    processes: bool = True,
 ) -> ProjectionResult:
     """Project every live loan under every scenario, chunk by chunk.
 
@@ -1106,7 +1107,7 @@ def project_loans(
         Probability weights summing to 1 (a plain mapping is checked here);
         optional with one scenario.
     chunk_size : int, default 256 (:data:`CHUNK_SIZE`)
-        Loans per chunk; memory grows with chunk_size x longest remaining term x threads.
+        Loans per chunk; memory grows with chunk_size x longest remaining term x workers.
     collateral : config ``Collateral``
         How current LTV and the rate incentive are built: the region column,
         the house-price series and the market-rate series.
@@ -1128,16 +1129,23 @@ def project_loans(
     on_chunk : callable(ChunkProjection), optional
         Further consumer of each chunk (used by loss), called in the chunks' order.
     prepare : callable(ChunkProjection), optional
-        A pure function of a chunk, run in the thread that projected it; what it returns is the chunk's
-        ``prepared`` when ``on_chunk`` receives it. The heavy part of a consumer goes here, so that it
-        runs in parallel; ``on_chunk`` then only stores or writes.
+        A pure function of a chunk, run by the worker that projected it; what it returns is the chunk's
+        ``prepared`` (and goes to ``on_prepared``). The heavy part of a consumer goes here, so that it
+        runs in parallel; the consumer then only stores or writes.
+    on_prepared : callable(rows, prepared), optional
+        Receives, in the chunks' order, each chunk's rows (as ``ChunkProjection.rows``) and what ``prepare``
+        returned for it.
     keep_order : bool, default False
         Chunks of loans in loan_id order, as the writers need (always so with ``curve_writer`` or
         ``term_writer``); otherwise each chunk holds loans of similar remaining term (``ChunkProjection.rows``
         is then an index array), which spares the months past the shorter loans' maturity.
-    threads : int, optional
-        Threads that project chunks at the same time (default: one per available core). The writers,
-        ``on_chunk`` and the sums receive the chunks in order, so every result is the same for any number.
+    workers : int, optional
+        Chunks projected at the same time (default: one per available core). The writers, the consumers and
+        the sums receive the chunks in order, so every result is the same for any number.
+    processes : bool, default True
+        Run the chunks in worker processes forked from this one when nothing needs a chunk's whole projection
+        (no writer, no ``on_chunk``) and the platform can fork (:func:`creditsurv.forecast.chunk_map`): only the
+        pooled sums and ``prepared`` come back. Otherwise, or with False, in threads.
 
     Returns
     -------
@@ -1164,11 +1172,13 @@ def project_loans(
 
     def work(sl):
         chunk = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=False)
-        return _chunk_results(book, sl, chunk, _chunk_curves(chunk, scenarios, w), scenarios, w, pooled, tables, prepare)
+        curves = _chunk_curves(chunk, scenarios, w)
+        return _chunk_results(book, sl, chunk, curves, scenarios, w, pooled, tables, prepare, whole=on_chunk is not None)
 
     chunks = chunk_rows(book.remaining, chunk_size, keep_order or any(tables))
-    for rows, results in zip(chunks, ordered_map(work, chunks, thread_count(threads))):
-        _take_chunk(rows, results, pooled, curve_writer, term_writer, on_chunk)
+    in_processes = processes and not any(tables) and on_chunk is None
+    for rows, results in zip(chunks, chunk_map(work, chunks, worker_count(workers), processes=in_processes)):
+        _take_chunk(rows, results, pooled, curve_writer, term_writer, on_chunk, on_prepared)
     sums = pooled.finish(w, scenarios)
     return _projection_result(book, pooled, sums, segment_column, scenarios, w, as_of_idx, band_edges)
 
@@ -1214,19 +1224,6 @@ def chunk_rows(remaining: np.ndarray, chunk_size: int, keep_order: bool) -> list
     return [order[start : start + chunk_size] for start in range(0, n, chunk_size)]
 
 
-def thread_count(threads: int | None) -> int:
-    """The threads a projection runs its chunks in (:func:`creditsurv.model.ordered_map`): ``threads``, or one per
-    core this process may run on. Every result is the same for any number: the chunks are added up in order."""
-    if threads is None:
-        try:
-            return max(len(os.sched_getaffinity(0)), 1)
-        except AttributeError:  # not on Linux
-            return max(os.cpu_count() or 1, 1)
-    if int(threads) < 1:
-        raise ProjectionError(f"threads must be at least 1, got {threads}")
-    return int(threads)
-
-
 def _chunk_curves(chunk, scenarios, w) -> dict:
     """Curves of one chunk under each scenario and weighted; adds the weighted hazards (the ones its curves imply)
     and state probabilities to ``chunk``."""
@@ -1239,9 +1236,9 @@ def _chunk_curves(chunk, scenarios, w) -> dict:
     return curves
 
 
-def _chunk_results(book, sl, chunk, curves, scenarios, w, pooled, tables: tuple[bool, bool], prepare) -> dict:
-    """What one chunk's curves (:func:`_chunk_curves`) give: its pool sums, its tables, its
-    :class:`ChunkProjection` and what ``prepare`` computes from it. A pure function of the chunk."""
+def _chunk_results(book, sl, chunk, curves, scenarios, w, pooled, tables: tuple[bool, bool], prepare, whole: bool) -> dict:
+    """What one chunk's curves (:func:`_chunk_curves`) give: its pool sums, its tables, what ``prepare`` computes
+    from it and, when ``whole``, its :class:`ChunkProjection`. A pure function of the chunk."""
     haz, mask, bal_start, bal_end, cal, states = chunk
     H = mask.shape[1]
     names = (*scenarios, WEIGHTED)
@@ -1264,20 +1261,23 @@ def _chunk_results(book, sl, chunk, curves, scenarios, w, pooled, tables: tuple[
         arrears_states=states,
     )  # fmt: skip
     if prepare is not None:
-        ch.prepared = prepare(ch)
-    out["chunk"] = ch
+        ch.prepared = out["prepared"] = prepare(ch)
+    if whole:
+        out["chunk"] = ch
     return out
 
 
-def _take_chunk(sl, results, pooled, curve_writer, term_writer, on_chunk) -> None:
-    """One chunk's results added to the pool and handed to the writers and ``on_chunk``, in the chunks' order."""
-    pooled.add(sl, results["sums"])
+def _take_chunk(rows, results, pooled, curve_writer, term_writer, on_chunk, on_prepared) -> None:
+    """One chunk's results added to the pool and handed to the writers and consumers, in the chunks' order."""
+    pooled.add(rows, results["sums"])
     if curve_writer is not None:
         curve_writer(results["curves"])
     if term_writer is not None:
         term_writer(results["terms"])
     if on_chunk is not None:
         on_chunk(results["chunk"])
+    if on_prepared is not None:
+        on_prepared(rows, results.get("prepared"))
 
 
 def _projection_result(book, pooled, sums, segment_column, scenarios, w, as_of_idx, band_edges) -> ProjectionResult:
@@ -1457,7 +1457,7 @@ def origination_pd(
     extension=None,
     chunk_size: int = CHUNK_SIZE,
     collateral: Collateral = Collateral(),
-    threads: int | None = None,
+    workers: int | None = None,
 ) -> pd.Series:
     """Lifetime PD of each loan as it could be projected at its origination month.
 
@@ -1491,8 +1491,8 @@ def origination_pd(
         (months after a loan's origination are not read).
     extension : config ``ScenarioExtension``, optional
         The reversion's months and held series (default: 24 months, none held).
-    threads : int, optional
-        As for :func:`project_loans`.
+    workers : int, optional
+        As for :func:`project_loans`; the chunks run in worker processes where the platform can fork.
 
     Returns
     -------
@@ -1536,7 +1536,7 @@ def origination_pd(
         s_a = np.where(a > 0, s[rows, np.maximum(a - 1, 0)], 1.0)
         return np.where(s_a > 0, (f_d[:, -1] - f_a) / np.where(s_a > 0, s_a, 1.0), 0.0)
 
-    for (sl, _), values in zip(chunks, ordered_map(work, chunks, thread_count(threads))):
+    for (sl, _), values in zip(chunks, chunk_map(work, chunks, worker_count(workers), processes=True)):
         out[sl] = values
     return pd.Series(out, index=pd.Index(book.loan_id, name="loan_id"), name="pd_lifetime_origination").sort_index()
 

@@ -648,20 +648,19 @@ class _EclAccumulator:
             )
         return out
 
-    def __call__(self, ch: ChunkProjection) -> None:
-        """Store the chunk's :meth:`prepare` results (computed here when the projection did not) and write its rows."""
-        done = ch.prepared if ch.prepared is not None else self.prepare(ch)
+    def take(self, rows, done: dict) -> None:
+        """Store one chunk's :meth:`prepare` results (loans ``rows`` of the live book) and write its schedule rows."""
         for s in done["ecl_life"]:
-            self.ecl_12m[s][ch.rows] = done["ecl_12m"][s]
-            self.ecl_life[s][ch.rows] = done["ecl_life"][s]
-        self.exposure_12m[ch.rows] = done["exposure_12m"]
-        self.exposure_life[ch.rows] = done["exposure_life"]
+            self.ecl_12m[s][rows] = done["ecl_12m"][s]
+            self.ecl_life[s][rows] = done["ecl_life"][s]
+        self.exposure_12m[rows] = done["exposure_12m"]
+        self.exposure_life[rows] = done["exposure_life"]
         if self.writer is not None:
             self.writer(done["schedule"])
 
 
 def _pd_at_origination(
-    frame, in_default, staging, source, first_path, *, chunk_size, collateral: Collateral, extension, threads
+    frame, in_default, staging, source, first_path, *, chunk_size, collateral: Collateral, extension, workers
 ) -> np.ndarray:
     """Lifetime PD at origination per loan: the configured column, or projected with the origination month's information."""
     if staging.pd_at_origination_column:
@@ -678,7 +677,7 @@ def _pd_at_origination(
     if not len(frame):
         return np.zeros(0)
     return origination_pd(
-        frame, source, first_path, extension=extension, chunk_size=chunk_size, collateral=collateral, threads=threads
+        frame, source, first_path, extension=extension, chunk_size=chunk_size, collateral=collateral, workers=workers
     ).to_numpy()
 
 
@@ -914,7 +913,7 @@ def expected_credit_loss(
     term_writer: Callable[[pa.Table], None] | None = None,
     on_chunk: Callable[[ChunkProjection], None] | None = None,
     progress: Callable[[int, int], None] | None = None,
-    threads: int | None = None,
+    workers: int | None = None,
 ) -> EclResult:
     """Stage every loan and compute its 12-month, lifetime and reported ECL (on the CECL basis: no stages, the
     lifetime ECL of every loan is its allowance).
@@ -958,8 +957,10 @@ def expected_credit_loss(
         A further consumer of each chunk's projection (a loan-level cut of the curves), after the ECL's own.
     progress : callable(done, total), optional
         Called after each chunk with the loans projected so far.
-    threads : int, optional
-        Threads of the projection (default: one per available core); every result is the same for any number.
+    workers : int, optional
+        Threads or processes of the projection (default: one per available core); every result is the same for
+        any number. Without a writer or ``on_chunk`` the chunks run in worker processes where the platform can
+        fork (see :func:`~creditsurv.forecast.project_loans`).
 
     Returns
     -------
@@ -990,21 +991,20 @@ def expected_credit_loss(
         len(live), scenarios, w, loss, routes, lookups, collateral.region_column, hpi_names, as_of_idx, schedule_writer
     )
     acc.book_columns(live)
-    consumers = [acc] + ([on_chunk] if on_chunk is not None else [])
-
     done = [0]
 
-    def each_chunk(ch):
-        for consume in consumers:
-            consume(ch)
-        done[0] += len(ch.loans)
+    def each_chunk(rows, prepared):
+        acc.take(rows, prepared)
+        done[0] += len(prepared["exposure_life"])
         if progress is not None:
             progress(done[0], len(live))
 
+    # the schedule's rows are the size of the chunk's arrays: they stay in this process (threads)
     proj = project_loans(
         live, source, paths, as_of_idx=as_of_idx, weights=w, chunk_size=chunk_size, collateral=collateral, segment_column="segment",
         band_column=band_column, band_edges=band_edges, curve_writer=curve_writer, term_writer=term_writer,
-        on_chunk=each_chunk, prepare=acc.prepare, keep_order=schedule_writer is not None, threads=threads,
+        on_chunk=on_chunk, prepare=acc.prepare, on_prepared=each_chunk, keep_order=schedule_writer is not None,
+        workers=workers, processes=schedule_writer is None,
     )
     names = (*scenarios, WEIGHTED)
     measures = _live_measures(len(frame), live_rows, names, proj, acc)
@@ -1020,7 +1020,7 @@ def expected_credit_loss(
     else:
         pd_orig = _pd_at_origination(
             frame, in_default, staging, source, paths[scenarios[0]],
-            chunk_size=chunk_size, collateral=collateral, extension=extension, threads=threads,
+            chunk_size=chunk_size, collateral=collateral, extension=extension, workers=workers,
         )  # fmt: skip
         pd_staging = measures["pd_lifetime"][:, names.index(staging_scenario(staging, scenarios))].copy()
         stages = allocate_stages(
