@@ -169,8 +169,10 @@ def discounted_recovery(
     """PV(recovery) of :func:`collateral_lgd` at the default month; the arguments broadcast."""
     r = np.asarray(note_rate, dtype=float) / 12.0
     net = max(1.0 - forced_sale_haircut - sale_costs, 0.0)
-    recovery = np.asarray(property_value, float) * np.asarray(hpi_sale, float) / np.asarray(hpi_origination, float) * net
-    return recovery * (1.0 + r) ** (-np.asarray(months_to_recovery, dtype=float))
+    # the factors of a loan first (they broadcast against the months of hpi_sale), then one product per month
+    per_index_point = np.asarray(property_value, float) / np.asarray(hpi_origination, float) * net
+    per_index_point = per_index_point * (1.0 + r) ** (-np.asarray(months_to_recovery, dtype=float))
+    return per_index_point * np.asarray(hpi_sale, float)
 
 
 def lgd_of_recovery(ead, pv, floor: float) -> np.ndarray:
@@ -179,6 +181,13 @@ def lgd_of_recovery(ead, pv, floor: float) -> np.ndarray:
     with np.errstate(invalid="ignore", divide="ignore"):
         lgd = np.where(ead > 0, 1.0 - pv / np.where(ead > 0, ead, 1.0), 1.0)
     return np.clip(lgd, floor, 1.0, out=lgd)
+
+
+def loss_at_default(ead, pv, floor: float) -> np.ndarray:
+    """LGD x EAD of :func:`lgd_of_recovery` for EAD >= 0, without a division: clip(EAD - pv, floor x EAD, EAD)
+    (EAD x clip(1 - pv / EAD, floor, 1) with EAD > 0 taken inside; 0 at EAD = 0)."""
+    ead = np.asarray(ead, dtype=float)
+    return np.clip(ead - pv, floor * ead, ead)
 
 
 def exposure_at_default(balance_at_onset, note_rate, missed, *, extra_month: bool = False, arrears_fee: float = 0.0):
@@ -535,13 +544,13 @@ class _EclAccumulator:
         self.exposure_12m = np.zeros(n)
         self.exposure_life = np.zeros(n)
 
-    def _lgd_of_routes(self, s, ch: ChunkProjection, exposures, columns: dict) -> list[np.ndarray]:
-        """Per route, the LGD (n, H) of its EAD under scenario ``s``: the recovery is the same for every route."""
+    def _loss_at_default(self, s, ch: ChunkProjection, exposures, ead, columns: dict) -> tuple[np.ndarray, np.ndarray | float]:
+        """The loss at default (n, H) under scenario ``s``, mixed over the routes: sum share x LGD(EAD) x EAD; and the
+        LGD where no route has exposure (the constant, or 1). The recovery is the same for every route."""
         lgd = self.loss.lgd
-        n, H = ch.mask.shape
         if lgd.kind == "constant":
-            per = np.array([lgd.by_segment.get(x, lgd.constant) for x in columns["segment"]], dtype=float)
-            return [np.broadcast_to(per[:, None], (n, H))] * len(exposures)
+            per = np.array([lgd.by_segment.get(x, lgd.constant) for x in columns["segment"]], dtype=float)[:, None]
+            return per * ead, per
         lk = self.lookups[s]
         codes, names, orig = columns["region_code"], columns["hpi_names"], columns["origination_idx"]
         hpi_sale = lk.get_by_row(names, codes, ch.calendar_month + lgd.months_to_recovery)
@@ -550,7 +559,7 @@ class _EclAccumulator:
             columns["property_value"][:, None], hpi_orig[:, None], hpi_sale, ch.note_rate[:, None],
             months_to_recovery=lgd.months_to_recovery, forced_sale_haircut=lgd.forced_sale_haircut, sale_costs=lgd.sale_costs,
         )  # fmt: skip
-        return [lgd_of_recovery(e, pv, lgd.floor) for _, e in exposures]
+        return sum(share * loss_at_default(e, pv, lgd.floor) for share, e in exposures), 1.0
 
     def _columns(self, ch: ChunkProjection) -> dict:
         """The loan columns the LGD reads, the chunk's rows of :meth:`book_columns`."""
@@ -602,12 +611,11 @@ class _EclAccumulator:
         rows = self.writer is not None  # the schedule's rows need the (n, H) arrays of every scenario and weighted
         out = {"ecl_12m": {}, "ecl_life": {}}
         for s in self.scenarios:
-            # the loss at default, mixed over the routes: sum share x LGD(EAD) x EAD; lgd = that / EAD
-            per_route = self._lgd_of_routes(s, ch, exposures, columns)
-            at_default = sum(share * lgd * e for (share, e), lgd in zip(exposures, per_route))
+            # the loss at default, mixed over the routes; the LGD of the schedule is that / EAD
+            at_default, no_exposure = self._loss_at_default(s, ch, exposures, ead, columns)
             if rows:
                 with np.errstate(invalid="ignore", divide="ignore"):
-                    lgds[s] = np.where(ead > 0, at_default / np.where(ead > 0, ead, 1.0), per_route[0])
+                    lgds[s] = np.where(ead > 0, at_default / np.where(ead > 0, ead, 1.0), no_exposure)
             el[s] = ch.marginal_pd[s] * at_default * df
             out["ecl_12m"][s] = el[s][:, :h12].sum(axis=1)
             out["ecl_life"][s] = el[s].sum(axis=1)
