@@ -31,7 +31,9 @@ def scheduled_balance(balance, note_rate, n_remaining, k):
     gn = np.expm1(n * lr)  # (1+r)^n - 1, accurate for small r
     gk = np.expm1(k * lr)
     with np.errstate(invalid="ignore", divide="ignore"):
-        annuity = b0 * (gn - gk) / gn
+        annuity = (b0 / gn) * (gn - gk)  # B0 / ((1+r)^n - 1) once per loan when the arguments are (loans, 1)
+    if not (r == 0.0).any():
+        return annuity
     linear = b0 * (n - k) / np.where(n > 0, n, 1.0)
     return np.where(r == 0.0, linear, annuity)
 
