@@ -571,8 +571,17 @@ class Curves:
     @classmethod
     def weighted(cls, curves: Mapping[str, Curves], weights: Mapping[str, float]) -> Curves:
         """The probability-weighted curves sum_s w_s curve_s (linear in probabilities, IFRS 9 5.5.17)."""
-        names = [f.name for f in dataclasses.fields(cls)]
-        return cls(**{f: sum(weights[s] * getattr(curves[s], f) for s in weights) for f in names})
+
+        def mix(field: str) -> np.ndarray:
+            out = None
+            for s, w in weights.items():
+                if out is None:
+                    out = w * getattr(curves[s], field)
+                else:
+                    out += w * getattr(curves[s], field)
+            return out
+
+        return cls(**{f.name: mix(f.name) for f in dataclasses.fields(cls)})
 
     def hazards(self) -> tuple[np.ndarray, np.ndarray]:
         """The hazards these curves imply: marginal / S(u-1), 0 where S(u-1) is 0."""
@@ -596,6 +605,8 @@ class ChunkProjection:
     source, ``arrears_states`` holds per scenario the probability of each transient arrears
     state at the end of month u ahead, (n, H + 1, T) with u = 0 the start; past a loan's
     maturity the probabilities stay where they were. ``None`` for a competing-risk source.
+    ``h_default`` and ``h_prepay`` hold the weighted scenario's implied hazards only when the chunk goes to
+    ``on_chunk`` or the curve writer (a ``prepare`` of a chunk that goes to neither sees the scenarios').
     """
 
     rows: slice | np.ndarray
@@ -1172,8 +1183,9 @@ def project_loans(
 
     def work(sl):
         chunk = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=False)
-        curves = _chunk_curves(chunk, scenarios, w)
-        return _chunk_results(book, sl, chunk, curves, scenarios, w, pooled, tables, prepare, whole=on_chunk is not None)
+        whole = on_chunk is not None
+        curves = _chunk_curves(chunk, scenarios, w, weighted_hazards=whole or tables[0])
+        return _chunk_results(book, sl, chunk, curves, scenarios, w, pooled, tables, prepare, whole)
 
     chunks = chunk_rows(book.remaining, chunk_size, keep_order or any(tables))
     in_processes = processes and not any(tables) and on_chunk is None
@@ -1224,13 +1236,14 @@ def chunk_rows(remaining: np.ndarray, chunk_size: int, keep_order: bool) -> list
     return [order[start : start + chunk_size] for start in range(0, n, chunk_size)]
 
 
-def _chunk_curves(chunk, scenarios, w) -> dict:
-    """Curves of one chunk under each scenario and weighted; adds the weighted hazards (the ones its curves imply)
-    and state probabilities to ``chunk``."""
+def _chunk_curves(chunk, scenarios, w, weighted_hazards: bool) -> dict:
+    """Curves of one chunk under each scenario and weighted; adds the state probabilities and, when
+    ``weighted_hazards``, the weighted hazards (the ones its curves imply) to ``chunk``."""
     haz, states = chunk[0], chunk[-1]
     curves = {s: Curves.from_hazards(*haz[s]) for s in scenarios}
     curves[WEIGHTED] = Curves.weighted(curves, {s: w[s] for s in scenarios})
-    haz[WEIGHTED] = curves[WEIGHTED].hazards()
+    if weighted_hazards:
+        haz[WEIGHTED] = curves[WEIGHTED].hazards()
     if states is not None:  # state probabilities mix linearly over scenarios
         states[WEIGHTED] = sum(w[s] * states[s] for s in scenarios)
     return curves
@@ -1252,7 +1265,7 @@ def _chunk_results(book, sl, chunk, curves, scenarios, w, pooled, tables: tuple[
         rows=sl, frame=book.frame, loan_id=book.loan_id[sl], mask=mask, calendar_month=cal,
         balance_start=bal_start, balance_end=bal_end, note_rate=book.rate[sl],
         scenarios=scenarios, weights=w,
-        h_default={s: haz[s][0] for s in names}, h_prepay={s: haz[s][1] for s in names},
+        h_default={s: h[0] for s, h in haz.items()}, h_prepay={s: h[1] for s, h in haz.items()},
         survival_prev={s: curves[s].survival_prev for s in names},
         survival={s: curves[s].survival for s in names},
         cum_default={s: curves[s].cum_default for s in names},
