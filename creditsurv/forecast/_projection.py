@@ -417,13 +417,9 @@ def _hazards_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_nam
             )
         ok = (hd_flat >= 0) & (hp_flat >= 0) & (hd_flat + hp_flat <= 1.0 + 1e-12)  # False for NaN
         if not ok.all():
-            bad_rows = np.repeat(np.arange(n), counts)[~ok]
-            bad_months = cal[mask][~ok]
-            raise ModelError(
-                f"scenario {scen!r}: the model gave hazards that are not finite, outside [0, 1] or summing above 1 "
-                f"for {loan_list_text(book.loan_id[sl][np.unique(bad_rows)])} in months {month_ranges(np.unique(bad_months))}; "
-                "the model cannot be trusted for these loans (check its coefficients and the inputs of those months)"
-            )
+            bad = np.zeros((n, H), dtype=bool)
+            bad[mask] = ~ok
+            raise _bad_hazards(scen, book.loan_id[sl], bad, cal)
         hd = np.zeros((n, H))
         hp = np.zeros((n, H))
         hd[mask] = hd_flat
@@ -498,16 +494,20 @@ def _grid_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names,
         # every cell within [0, 1] and summing to at most 1 (min and max are NaN when a cell is): cheap when all are
         fine = hd.min() >= 0 and hp.min() >= 0 and np.add(hd, hp).max() <= 1.0 + 1e-12
         if not fine and not ((hd >= 0) & (hp >= 0) & (hd + hp <= 1.0 + 1e-12) | beyond).all():
-            bad = mask & ~((hd >= 0) & (hp >= 0) & (hd + hp <= 1.0 + 1e-12))
-            raise ModelError(
-                f"scenario {scen!r}: the model gave hazards that are not finite, outside [0, 1] or summing above 1 "
-                f"for {loan_list_text(book.loan_id[sl][bad.any(axis=1)])} in months {month_ranges(np.unique(cal[bad]))}; "
-                "the model cannot be trusted for these loans (check its coefficients and the inputs of those months)"
-            )
+            raise _bad_hazards(scen, book.loan_id[sl], mask & ~((hd >= 0) & (hp >= 0) & (hd + hp <= 1.0 + 1e-12)), cal)
         np.copyto(hd, 0.0, where=beyond)
         np.copyto(hp, 0.0, where=beyond)
         out[scen] = (hd, hp)
     return out, mask, bal_start, bal_end, cal, states or None
+
+
+def _bad_hazards(scenario: str, loan_id: np.ndarray, bad: np.ndarray, cal: np.ndarray) -> ModelError:
+    """The error for the cells ``bad`` (loans x months) whose hazards are not probabilities, naming loans and months."""
+    return ModelError(
+        f"scenario {scenario!r}: the model gave hazards that are not finite, outside [0, 1] or summing above 1 "
+        f"for {loan_list_text(loan_id[bad.any(axis=1)])} in months {month_ranges(np.unique(cal[bad]))}; "
+        "the model cannot be trusted for these loans (check its coefficients and the inputs of those months)"
+    )
 
 
 def _grid_chain_hazards(source, grid, mask, start) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
