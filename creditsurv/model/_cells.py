@@ -201,7 +201,6 @@ class CellDesign:
             w = w[keep] if w is not None else None
         if y.shape[0] == 0:
             return None
-        X, _ = self.spec.design(raw)
         age = np.asarray(raw["age"], dtype=np.float64)
         a = age.astype(np.int64)
         outside = (a != age) | (a < self.age_lo) | (a > self.age_hi)
@@ -210,19 +209,26 @@ class CellDesign:
                 f"loan age {age[outside][0]:g} is outside the whole ages {self.age_lo} to {self.age_hi} the feature spec was "
                 "learned on; learn the spec on the rows of the fit"
             )
+        X, _ = self.spec.design(raw)
+        c, Z = self._cell_form(X, a)
+        order = np.argsort(c, kind="stable")  # rows by cell: the sums by cell are sums over runs
+        return CellBlock(c[order], y[order], None if w is None else w[order], Z[:, order])
+
+    def _cell_form(self, X: np.ndarray, a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The cell codes (n,) and atoms (A, n) of the dense design ``X`` of rows of whole loan ages ``a``,
+        checked to give every column of ``X`` back bit for bit."""
         c = self.age_code[a - self.age_lo]
         stride = self.sizes[0]
         for cols, size in zip(self._cell_term_cols, self.sizes[1:]):
             c = c + stride * (X[:, cols] @ np.arange(1, size, dtype=np.float64)).astype(np.int64)
             stride *= size
         c = c.astype(np.uint16)
-        block = CellBlock(c, y, w, np.ascontiguousarray(X[:, self.atom_cols].T))
-        same = all(np.array_equal(self.table[c, k], X[:, j]) for k, j in enumerate(self.cell_cols))
-        same = same and all(np.array_equal(r, X[:, j]) for r, j in zip(self.rows(block), self.row_cols))
+        Z = np.ascontiguousarray(np.take(X, self.atom_cols, axis=1).T)
+        same = np.array_equal(self.table[c], np.take(X, self.cell_cols, axis=1))
+        same = same and np.array_equal(self.rows(CellBlock(c, None, None, Z)), np.take(X, self.row_cols, axis=1).T)
         if not same:  # pragma: no cover - a term whose columns are not what the cells assume
             raise ModelError("the cell form of the design differs from the design; this is a bug in creditsurv")
-        order = np.argsort(c, kind="stable")  # rows by cell: the sums by cell are sums over runs
-        return CellBlock(c[order], y[order], None if w is None else w[order], block.Z[:, order])
+        return c, Z
 
     def rows(self, block: CellBlock) -> np.ndarray:
         """The row columns of a block, shape (len(row_cols), n), each row contiguous."""
