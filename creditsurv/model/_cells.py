@@ -39,7 +39,7 @@ from threadpoolctl import threadpool_limits
 from ..errors import DataError, ModelError
 
 __all__ = [
-    "FIT_BLOCK_ROWS", "MAX_CELLS", "N_CODES", "CellBlock", "CellDesign", "FirstPass", "FirstSums", "PassSums",
+    "FIT_BLOCK_ROWS", "KERNEL_ROWS", "MAX_CELLS", "N_CODES", "CellBlock", "CellDesign", "FirstPass", "FirstSums", "PassSums",
     "block_first_sums", "block_sums", "cell_design", "fit_fingerprint", "ordered_map",
 ]  # fmt: skip
 
@@ -49,6 +49,11 @@ N_CODES = 16
 FIT_BLOCK_ROWS = 65_536
 """Rows per block of the fit's sums: the blocks are summed in order, so the results depend on this
 number but not on the batch size of the reads or on the number of threads."""
+
+KERNEL_ROWS = 8_192
+"""Rows the kernels take at a time within a block: their temporaries (a few dozen float64 a row) then stay
+in the processor's cache and are reused, instead of megabytes of fresh memory for every block. The
+chunks' sums are added in order, so the results depend on this number too, not on the threads."""
 
 MAX_CELLS = 65_536
 """Most cells a design keeps: discrete terms that would make more stay out of the cell (their indicators
@@ -71,6 +76,12 @@ class CellBlock:
 
     def weights(self) -> np.ndarray:
         return np.ones(self.n) if self.w is None else self.w
+
+    def chunks(self, rows: int = KERNEL_ROWS):
+        """The block in consecutive pieces of ``rows`` rows (views; the last one shorter)."""
+        for lo in range(0, self.n, rows):
+            hi = lo + rows
+            yield CellBlock(self.c[lo:hi], self.y[lo:hi], None if self.w is None else self.w[lo:hi], self.Z[:, lo:hi])
 
     def runs(self) -> tuple[np.ndarray, np.ndarray]:
         """The cells present in the block and where each one's run of rows starts."""
@@ -190,7 +201,6 @@ class CellDesign:
             w = w[keep] if w is not None else None
         if y.shape[0] == 0:
             return None
-        X, _ = self.spec.design(raw)
         age = np.asarray(raw["age"], dtype=np.float64)
         a = age.astype(np.int64)
         outside = (a != age) | (a < self.age_lo) | (a > self.age_hi)
@@ -199,19 +209,26 @@ class CellDesign:
                 f"loan age {age[outside][0]:g} is outside the whole ages {self.age_lo} to {self.age_hi} the feature spec was "
                 "learned on; learn the spec on the rows of the fit"
             )
+        X, _ = self.spec.design(raw)
+        c, Z = self._cell_form(X, a)
+        order = np.argsort(c, kind="stable")  # rows by cell: the sums by cell are sums over runs
+        return CellBlock(c[order], y[order], None if w is None else w[order], Z[:, order])
+
+    def _cell_form(self, X: np.ndarray, a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The cell codes (n,) and atoms (A, n) of the dense design ``X`` of rows of whole loan ages ``a``,
+        checked to give every column of ``X`` back bit for bit."""
         c = self.age_code[a - self.age_lo]
         stride = self.sizes[0]
         for cols, size in zip(self._cell_term_cols, self.sizes[1:]):
             c = c + stride * (X[:, cols] @ np.arange(1, size, dtype=np.float64)).astype(np.int64)
             stride *= size
         c = c.astype(np.uint16)
-        block = CellBlock(c, y, w, np.ascontiguousarray(X[:, self.atom_cols].T))
-        same = all(np.array_equal(self.table[c, k], X[:, j]) for k, j in enumerate(self.cell_cols))
-        same = same and all(np.array_equal(r, X[:, j]) for r, j in zip(self.rows(block), self.row_cols))
+        Z = np.ascontiguousarray(np.take(X, self.atom_cols, axis=1).T)
+        same = np.array_equal(self.table[c], np.take(X, self.cell_cols, axis=1))
+        same = same and np.array_equal(self.rows(CellBlock(c, None, None, Z)), np.take(X, self.row_cols, axis=1).T)
         if not same:  # pragma: no cover - a term whose columns are not what the cells assume
             raise ModelError("the cell form of the design differs from the design; this is a bug in creditsurv")
-        order = np.argsort(c, kind="stable")  # rows by cell: the sums by cell are sums over runs
-        return CellBlock(c[order], y[order], None if w is None else w[order], block.Z[:, order])
+        return c, Z
 
     def rows(self, block: CellBlock) -> np.ndarray:
         """The row columns of a block, shape (len(row_cols), n), each row contiguous."""
@@ -299,54 +316,69 @@ class PassSums:
         return self
 
 
-def _by_cell(block: CellBlock, R, resid, V, n_cells):
-    """Sums by cell of the residuals (K, n), the weights ``V`` (P, n) and ``V`` times each row column, and the
-    row columns' own products: ``(g_cell (K, n_cells), g_rows (K, r), h_cell (P, n_cells), h_cross (P, r,
-    n_cells), h_rows (P, r, r))``.
+def _by_cell(chunk: CellBlock, R, resid, V, by_cell, g_rows, h_rows) -> None:
+    """Add a chunk's sums by cell of the residuals (K, n), the weights ``V`` (P, n) and ``V`` times each row
+    column to ``by_cell`` (K + P + P*r, n_cells), and the row columns' own products to ``g_rows`` (K, r) and
+    ``h_rows`` (P, r, r).
 
     The rows of a block are sorted by cell, so a cell's sum is the sum over its run of rows
     (``np.add.reduceat``, in row order); the products of the row columns are one matrix product.
     """
     K, P, r = resid.shape[0], V.shape[0], R.shape[0]
-    M = np.empty((K + P + P * r, block.n))
+    M = np.empty((K + P + P * r, chunk.n))
     M[:K] = resid
     M[K:K + P] = V
-    np.multiply(V[:, None, :], R[None, :, :], out=M[K + P:].reshape(P, r, block.n))
-    cells, starts = block.runs()
-    by_cell = np.zeros((M.shape[0], n_cells))
-    by_cell[:, cells] = np.add.reduceat(M, starts, axis=1)
-    g_rows, h_rows = M[:K] @ R.T, (M[K + P:] @ R.T).reshape(P, r, r)
-    return by_cell[:K], g_rows, by_cell[K:K + P], by_cell[K + P:].reshape(P, r, n_cells), h_rows
+    np.multiply(V[:, None, :], R[None, :, :], out=M[K + P:].reshape(P, r, chunk.n))
+    cells, starts = chunk.runs()
+    by_cell[:, cells] += np.add.reduceat(M, starts, axis=1)  # each cell once in a chunk
+    g_rows += M[:K] @ R.T
+    h_rows += (M[K + P:] @ R.T).reshape(P, r, r)
 
 
 def block_sums(design: CellDesign, block: CellBlock, eta_cell, beta, codes, kind, need_hess) -> PassSums:
     """Log-likelihood, score and information sums of one block at ``beta`` (K, p), by cell.
 
-    ``eta_cell`` is :meth:`CellDesign.prepare` of ``beta``. The kernel both engines share. Per-cause
-    quantities are (K, n) rows so that each elementwise step runs over contiguous memory.
+    ``eta_cell`` is :meth:`CellDesign.prepare` of ``beta``. The kernel both engines share. The block is
+    taken :data:`KERNEL_ROWS` rows at a time; per-cause quantities are (K, n) rows so that each
+    elementwise step runs over contiguous memory.
     """
-    K = beta.shape[0]
-    c = block.c.astype(np.intp)
-    w = block.weights()
-    R = design.rows(block)
-    E = eta_cell[:, c] + beta[:, design.row_cols] @ R  # (K, n)
-    Y = block.y[None, :] == codes[:, None]
+    K, r = beta.shape[0], len(design.row_cols)
     if kind == "multinomial":
-        m = np.maximum(E.max(axis=0), 0.0)
-        P = np.exp(E - m)
-        den = np.exp(-m) + P.sum(axis=0)
-        P /= den
-        ll = float(w @ (np.where(Y, E, 0.0).sum(axis=0) - m - np.log(den)))
         pairs = [(a, b) for a in range(K) for b in range(a, K)]
     else:  # every month is a trial of every cause
-        P = 0.5 * (1.0 + np.tanh(0.5 * E))  # logistic, stable for large |eta|
-        ll = float(sum(w @ (np.where(Y[a], E[a], 0.0) - np.logaddexp(0.0, E[a])) for a in range(K)))
         pairs = [(a, a) for a in range(K)]
-    resid = (Y - P) * w
-    V = np.empty((len(pairs) if need_hess else 0, block.n))
-    for k, (a, b) in enumerate(pairs if need_hess else []):
-        np.multiply(w * P[a], (1.0 - P[b]) if a == b else -P[b], out=V[k])
-    g_cell, g_rows, h_cell, h_cross, h_rows = _by_cell(block, R, resid, V, design.n_cells)
+    P = len(pairs) if need_hess else 0
+    by_cell = np.zeros((K + P + P * r, design.n_cells))
+    g_rows, h_rows = np.zeros((K, r)), np.zeros((P, r, r))
+    beta_rows = beta[:, design.row_cols]
+    ll = 0.0
+    for chunk in block.chunks():
+        c = chunk.c.astype(np.intp)
+        w = chunk.w
+        R = design.rows(chunk)
+        E = beta_rows @ R  # (K, n), rows contiguous (``eta_cell[:, c]`` alone would be column-major)
+        E += eta_cell[:, c]
+        Y = chunk.y[None, :] == codes[:, None]
+        if kind == "multinomial":
+            m = np.maximum(E.max(axis=0), 0.0)
+            Pr = np.exp(E - m)
+            den = np.exp(-m) + Pr.sum(axis=0)
+            Pr /= den
+            part = np.where(Y, E, 0.0).sum(axis=0) - m - np.log(den)
+        else:
+            Pr = 0.5 * (1.0 + np.tanh(0.5 * E))  # logistic, stable for large |eta|
+            part = (np.where(Y, E, 0.0) - np.logaddexp(0.0, E)).sum(axis=0)
+        ll += float(part.sum() if w is None else w @ part)
+        resid = Y - Pr
+        if w is not None:
+            resid *= w
+        V = np.empty((P, chunk.n))
+        for k, (a, b) in enumerate(pairs[:P]):
+            np.multiply(Pr[a], (1.0 - Pr[b]) if a == b else -Pr[b], out=V[k])
+            if w is not None:
+                V[k] *= w
+        _by_cell(chunk, R, resid, V, by_cell, g_rows, h_rows)
+    g_cell, h_cell, h_cross = by_cell[:K], by_cell[K:K + P], by_cell[K + P:].reshape(P, r, design.n_cells)
     if not need_hess:
         return PassSums(ll, g_cell, g_rows, pairs, None, None, None)
     return PassSums(ll, g_cell, g_rows, pairs, h_cell, h_cross, h_rows)
@@ -383,22 +415,26 @@ class FirstSums:
 
 
 def block_first_sums(design: CellDesign, block: CellBlock) -> FirstSums:
-    """The first pass's sums of one block (see :class:`FirstSums`)."""
-    c = block.c.astype(np.intp)
-    w = block.weights()
-    R = design.rows(block)
-    counts = np.bincount(c * N_CODES + block.y, w, minlength=design.n_cells * N_CODES).reshape(design.n_cells, N_CODES)
-    S_rows = np.zeros((len(design.row_cols), N_CODES))
-    for code in np.unique(block.y):
-        rows = block.y == code
-        S_rows[:, code] = R[:, rows] @ w[rows]
-    _g, _r, _cell, x_cross, x_rows = _by_cell(block, R, np.zeros((0, block.n)), w[None, :], design.n_cells)
-    is01 = ((R == 0) | (R == 1)).all(axis=1)
+    """The first pass's sums of one block (see :class:`FirstSums`), :data:`KERNEL_ROWS` rows at a time."""
+    r = len(design.row_cols)
+    counts = np.bincount(block.c.astype(np.intp) * N_CODES + block.y, block.w, minlength=design.n_cells * N_CODES)
+    S_rows = np.zeros((r, N_CODES))
+    by_cell, x_rows = np.zeros((1 + r, design.n_cells)), np.zeros((1, r, r))
+    is01 = np.ones(r, dtype=bool)
+    for chunk in block.chunks():
+        w = chunk.weights()
+        R = design.rows(chunk)
+        for code in np.unique(chunk.y):
+            rows = chunk.y == code
+            S_rows[:, code] += R[:, rows] @ w[rows]
+        _by_cell(chunk, R, np.zeros((0, chunk.n)), w[None, :], by_cell, np.zeros((0, r)), x_rows)
+        is01 &= ((R == 0) | (R == 1)).all(axis=1)
     digest = hashlib.sha256(block.c.tobytes())
     for stream in (block.y, block.w, *block.Z):
         if stream is not None:
             digest.update(np.ascontiguousarray(stream).tobytes())
-    return FirstSums(counts, S_rows, x_cross[0], x_rows[0], is01, block.n, digest.digest())
+    counts = counts.reshape(design.n_cells, N_CODES)
+    return FirstSums(counts, S_rows, by_cell[1:], x_rows[0], is01, block.n, digest.digest())
 
 
 class FirstPass:

@@ -861,12 +861,15 @@ class FeatureSpec:
         kind = c.get("kind", "numeric")
         if kind == "categorical":
             lv = lrn["covariates"][name]
-            missing = pd.isna(values)
+            # The distinct values are matched to the levels, not every row: rows repeat few values.
+            seen, distinct = pd.factorize(values)  # -1 where a row has no value
+            missing = seen < 0
             if missing.any():
                 raise FeatureError(f"covariate {name!r}: {int(missing.sum())} rows have no value for {key!r}")
-            text = values.astype(object) if values.dtype.kind in "OUS" else values.astype(str).astype(object)
-            codes = pd.Index(lv["levels"], dtype=object).get_indexer(text)
-            bad = codes < 0
+            text = distinct.astype(object) if distinct.dtype.kind in "OUS" else distinct.astype(str).astype(object)
+            level = pd.Index(lv["levels"], dtype=object).get_indexer(text)
+            codes = level[seen]
+            bad = level < 0
             if bad.any():
                 unknown = sorted({str(v) for v in text[bad]})
                 raise FeatureError(
