@@ -11,6 +11,7 @@ what a chunk reduces to (per-loan values and pooled sums, about a hundredth of t
 
 from __future__ import annotations
 
+import ctypes
 import itertools
 import multiprocessing
 import os
@@ -63,7 +64,7 @@ def chunk_map(fn, items, workers: int, *, processes: bool):
         # (DuckDB's and Arrow's pools sit idle), which is the hazard Python's fork warning is about.
         with warnings.catch_warnings():
             warnings.filterwarnings("ignore", message=r".*fork\(\) may lead to deadlocks", category=DeprecationWarning)
-            pool = multiprocessing.get_context("fork").Pool(workers, initializer=_one_blas_thread)
+            pool = multiprocessing.get_context("fork").Pool(workers, initializer=_start_worker)
         with pool:
             waiting: deque = deque()  # at most two chunks a worker in flight, which bounds the memory
             for i in range(len(items)):
@@ -76,9 +77,24 @@ def chunk_map(fn, items, workers: int, *, processes: bool):
         del _TASKS[number]
 
 
-def _one_blas_thread() -> None:
-    """Each worker is one core's worth: BLAS inside it stays on one thread (as in :func:`ordered_map`)."""
-    _one_blas_thread.limits = threadpool_limits(limits=1, user_api="blas")
+def _start_worker() -> None:
+    """Each worker is one core's worth: BLAS inside it stays on one thread (as in :func:`ordered_map`). And its
+    chunks' arrays (a few hundred kB to a few MB each, allocated and freed many times a chunk) come from the
+    C heap it keeps, not from fresh pages of the system every time: glibc hands blocks above its mmap threshold
+    (128 kB until it adapts) to the system on every free, and every new one then starts with page faults."""
+    _start_worker.limits = threadpool_limits(limits=1, user_api="blas")
+    _keep_freed_memory()
+
+
+def _keep_freed_memory() -> None:
+    """Raise glibc's mmap and trim thresholds for this process (a worker's lifetime); nothing elsewhere."""
+    try:
+        libc = ctypes.CDLL("libc.so.6")
+    except OSError:  # not glibc
+        return
+    m_trim_threshold, m_mmap_threshold = -1, -3  # mallopt parameters of glibc's malloc.h
+    libc.mallopt(m_mmap_threshold, 32 * 2**20)  # the largest glibc allows
+    libc.mallopt(m_trim_threshold, 256 * 2**20)
 
 
 def _run(task: tuple[int, int]):
