@@ -138,9 +138,9 @@ class MacroLookup:
 
     def get(self, series: str, months) -> np.ndarray:
         """Values of ``series`` at month indices ``months`` (any shape; checked beforehand)."""
-        months = np.asarray(months, dtype=np.int64)
-        pos = np.clip(months - self.start, 0, max(self.stop - self.start - 1, 0))
-        return self._values[series][pos]
+        pos = np.asarray(months, dtype=np.int64) - self.start
+        np.clip(pos, 0, max(self.stop - self.start - 1, 0), out=pos)
+        return self._values[series].take(pos)
 
     def get_by_row(self, series, codes: np.ndarray, months: np.ndarray) -> np.ndarray:
         """Values at ``months`` (n, ...) of the series ``series[codes[i]]`` for row i: one series per row (a region's
@@ -149,8 +149,12 @@ class MacroLookup:
         table = self._tables.get(key)
         if table is None:
             table = self._tables[key] = np.stack([self._values[name] for name in series])
-        pos = np.clip(np.asarray(months, dtype=np.int64) - self.start, 0, max(self.stop - self.start - 1, 0))
-        return table[np.asarray(codes).reshape((-1,) + (1,) * (pos.ndim - 1)), pos]
+        pos = np.asarray(months, dtype=np.int64) - self.start
+        np.clip(pos, 0, max(self.stop - self.start - 1, 0), out=pos)
+        # one gather from the stacked table (a row per series, a column per month) at flat positions: twice as
+        # fast as indexing it with two index arrays
+        pos += (np.asarray(codes, dtype=np.int64) * table.shape[1]).reshape((-1,) + (1,) * (pos.ndim - 1))
+        return table.ravel().take(pos)
 
 
 # --------------------------------------------------------------------------- inputs
