@@ -815,7 +815,7 @@ def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination
         balance_col="original_balance" if origination else "balance",
         age_col=None if origination else "age",
     )
-    frame = loans.sort_values(list(order), kind="stable").reset_index(drop=True)
+    frame = _sorted_by(loans, list(order))
     n = len(frame)
     term = frame["term"].to_numpy(dtype=np.int64)
     if origination:
@@ -846,6 +846,20 @@ def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination
         panel=_panel_history(frame, spec, origination),
     )
     return book, hpi_names
+
+
+def _sorted_by(loans: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
+    """``loans`` sorted by ``keys`` (stable), the last of which is ``loan_id``. A book that is already in loan id
+    order (the ECL's is) is sorted by its other keys, whole numbers, with :func:`numpy.lexsort`: the same order,
+    without comparing strings (a tenth of the time)."""
+    ids = loans["loan_id"]
+    others = [loans[k] for k in keys[:-1]]
+    if keys[-1] == "loan_id" and all(pd.api.types.is_integer_dtype(c) and not c.hasnans for c in others) and ids.is_monotonic_increasing:
+        order = np.lexsort([np.arange(len(loans))] + [c.to_numpy(dtype=np.int64) for c in reversed(others)])
+        if (order == np.arange(len(loans))).all():
+            return loans.reset_index(drop=True)
+        return loans.take(order).reset_index(drop=True)
+    return loans.sort_values(keys, kind="stable").reset_index(drop=True)
 
 
 def _panel_history(frame: pd.DataFrame, spec: _Spec, origination: bool) -> dict:
