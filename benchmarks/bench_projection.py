@@ -132,7 +132,8 @@ class _PeakMemory:
             self.peak_kib = max(self.peak_kib, sum(self._pss_kib(p) for p in self._tree(os.getpid())))
 
     def stop(self) -> dict:
-        from creditsurv.forecast import can_fork, worker_count
+        from creditsurv.forecast import worker_count
+        from creditsurv.model import can_fork
 
         self._stop.set()
         self._thread.join()

@@ -30,7 +30,6 @@ from creditsurv.config import (
 )
 from creditsurv.errors import ModelError
 from creditsurv.forecast import (
-    can_fork,
     chain_of_moves,
     markov_chain,
     origination_pd,
@@ -43,6 +42,7 @@ from creditsurv.model import (
     HazardResults,
     InputGrid,
     MultiStateResults,
+    can_fork,
     feature_spec,
 )
 

@@ -30,6 +30,7 @@ from ._projection import (
     speeds_frames,
     term_structure_frame,
     with_panel_history,
+    worker_count,
 )
 from ._scenarios import (
     extend_path,
@@ -38,12 +39,11 @@ from ._scenarios import (
     origination_path,
     prepare_paths,
 )
-from ._workers import can_fork, chunk_map, worker_count
 
 __all__ = [
     "CHUNK_SIZE", "ChainResult", "chain_of_moves", "markov_chain", "origination_path", "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "ProjectionResult", "SegmentSums", "TableWriter", "check_coverage",
     "extend_path", "extend_paths", "load_scenario_paths", "loan_list_text", "origination_pd", "panel_history_columns", "panel_history_name", "prepare_paths", "with_panel_history", "project_loans", "remaining_term",
     "repeat_ids", "scenario_column", "scenario_weights", "band_codes", "band_labels", "band_order", "sort_with_bands",
     "segment_level", "segment_pd_tables", "segment_speeds", "speeds_frames", "term_structure_frame",
-    "can_fork", "chunk_map", "worker_count",
+    "worker_count",
 ]  # fmt: skip

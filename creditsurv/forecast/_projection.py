@@ -50,6 +50,7 @@ from __future__ import annotations
 import dataclasses
 import functools
 import math
+import os
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -64,6 +65,7 @@ from ..data import PREVIOUSLY_DEFAULTED
 from ..errors import ConfigError, ModelError, ProjectionError, problem_list
 from ..model import (
     InputGrid,
+    chunk_map,
     equivalent_psa,
     equivalent_sda,
     hpi_series_name,
@@ -76,7 +78,6 @@ from ..model import (
 from ..months import month_ranges
 from ._chain import chain_of_moves, markov_chain
 from ._scenarios import OriginationPaths
-from ._workers import chunk_map, worker_count
 
 __all__ = [
     "CHUNK_SIZE",
@@ -1173,7 +1174,7 @@ def project_loans(
         the sums receive the chunks in order, so every result is the same for any number.
     processes : bool, default True
         Run the chunks in worker processes forked from this one when nothing needs a chunk's whole projection
-        (no writer, no ``on_chunk``) and the platform can fork (:func:`creditsurv.forecast.chunk_map`): only the
+        (no writer, no ``on_chunk``) and the platform can fork (:func:`creditsurv.model.chunk_map`): only the
         pooled sums and ``prepared`` come back. Otherwise, or with False, in threads.
 
     Returns
@@ -1241,6 +1242,18 @@ def _live_book(loans, source, paths, as_of_idx, collateral: Collateral):
     if len(book.loan_id):
         check_coverage(lookups, _coverage_needs(book, spec, hpi_names, collateral.market_rate_series, hold=False))
     return spec, book, hpi_names, lookups
+
+
+def worker_count(workers: int | None) -> int:
+    """Threads or processes a projection runs its chunks in: ``workers``, or one per core this process may use."""
+    if workers is None:
+        try:
+            return max(len(os.sched_getaffinity(0)), 1)
+        except AttributeError:  # not on Linux
+            return max(os.cpu_count() or 1, 1)
+    if int(workers) < 1:
+        raise ProjectionError(f"workers must be at least 1, got {workers}")
+    return int(workers)
 
 
 def chunk_rows(remaining: np.ndarray, chunk_size: int, keep_order: bool) -> list:

@@ -22,25 +22,22 @@ outcome, X'WX, the 0/1 columns, the fingerprint's digest) are the per-batch kern
 share; the partial sums of batches are added in batch order with ``+=`` and turned into the score
 and information by :meth:`CellDesign.finish` / :meth:`CellDesign.first_pass`. Summing a fixed
 sequence of blocks in a fixed order gives the same bits whatever the number of threads that
-computed them (see :func:`ordered_map`).
+computed them (see :func:`creditsurv.model.ordered_map`).
 """
 
 from __future__ import annotations
 
 import hashlib
 import math
-from collections import deque
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
 from ..errors import DataError, ModelError
 
 __all__ = [
     "FIT_BLOCK_ROWS", "KERNEL_ROWS", "MAX_CELLS", "N_CODES", "CellBlock", "CellDesign", "FirstPass", "FirstSums", "PassSums",
-    "block_first_sums", "block_sums", "cell_design", "fit_fingerprint", "ordered_map",
+    "block_first_sums", "block_sums", "cell_design", "fit_fingerprint",
 ]  # fmt: skip
 
 N_CODES = 16
@@ -457,28 +454,3 @@ class FirstPass:
 
 def fit_fingerprint(n: int, names, digests) -> str:
     return hashlib.sha256(f"creditsurv-design|{n}|{'|'.join(names)}|".encode() + "|".join(digests).encode()).hexdigest()
-
-
-# --------------------------------------------------------------------------- threads
-
-
-def ordered_map(fn, items, threads: int):
-    """``fn`` of each item, computed by ``threads`` threads, yielded in the items' order.
-
-    NumPy's loops and BLAS release the GIL, so blocks are computed in parallel; the caller adds the
-    results in order, so the sums are the same bits for any number of threads. BLAS runs on one
-    thread inside (the blocks are the parallel work, and a product then never depends on how BLAS
-    splits it). At most ``threads + 1`` results wait, which bounds the memory.
-    """
-    with threadpool_limits(limits=1, user_api="blas"):
-        if threads <= 1:
-            yield from map(fn, items)
-            return
-        with ThreadPoolExecutor(max_workers=threads) as pool:
-            waiting: deque = deque()
-            for item in items:
-                waiting.append(pool.submit(fn, item))
-                if len(waiting) > threads:
-                    yield waiting.popleft().result()
-            while waiting:
-                yield waiting.popleft().result()

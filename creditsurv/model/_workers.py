@@ -1,12 +1,14 @@
-"""Where a projection's chunks run: in threads, or in worker processes forked from this one.
+"""Where the pieces of a large computation run: in threads, or in worker processes forked from this one.
 
-A chunk is a pure function of the book, so it can run anywhere; its results are taken in the
-chunks' order, so every sum is the same bits whatever ran it. Threads suit a chunk whose whole
-projection must come back (writers, ``on_chunk`` consumers); but much of a chunk's time goes to
-NumPy calls that keep the interpreter lock (``cumsum``, ``cumprod``, ``bincount``, small
-elementwise passes), so two threads barely beat one. Processes do scale: a worker forked from
-this process shares the book's arrays copy-on-write, computes its chunks, and sends back only
-what a chunk reduces to (per-loan values and pooled sums, about a hundredth of the chunk).
+The fit's blocks of rows and the projection's chunks of loans are pure functions of data this
+process holds, so they can run anywhere; their results are taken in the items' order, so every
+sum is the same bits whatever ran it (:func:`ordered_map` in threads, :func:`chunk_map` in
+threads or processes). Threads suit a piece whose whole result must come back (the projection's
+writers and ``on_chunk`` consumers) or whose input arrives as it is read (the fit's first pass);
+but much of a piece's time goes to NumPy calls that keep the interpreter lock (``cumsum``,
+``cumprod``, ``bincount``, many small elementwise passes), so two threads barely beat one.
+Processes do scale: a worker forked from this process shares its arrays and files copy-on-write,
+computes its pieces, and sends back only what a piece reduces to (pooled sums, per-loan values).
 """
 
 from __future__ import annotations
@@ -14,34 +16,19 @@ from __future__ import annotations
 import ctypes
 import itertools
 import multiprocessing
-import os
 import sys
 import warnings
 from collections import deque
+from concurrent.futures import ThreadPoolExecutor
 
 from threadpoolctl import threadpool_limits
 
-from ..errors import ProjectionError
-from ..model import ordered_map
-
-__all__ = ["can_fork", "chunk_map", "worker_count"]
+__all__ = ["can_fork", "chunk_map", "ordered_map"]
 
 _TASKS: dict[int, tuple] = {}
 """The work of each running :func:`chunk_map`, by number: a forked worker finds it here (it was copied
-with the process), so only a chunk's number crosses to the worker."""
+with the process), so only an item's number crosses to the worker."""
 _numbers = itertools.count()
-
-
-def worker_count(workers: int | None) -> int:
-    """Threads or processes a projection runs its chunks in: ``workers``, or one per core this process may use."""
-    if workers is None:
-        try:
-            return max(len(os.sched_getaffinity(0)), 1)
-        except AttributeError:  # not on Linux
-            return max(os.cpu_count() or 1, 1)
-    if int(workers) < 1:
-        raise ProjectionError(f"workers must be at least 1, got {workers}")
-    return int(workers)
 
 
 def can_fork() -> bool:
@@ -66,7 +53,7 @@ def chunk_map(fn, items, workers: int, *, processes: bool):
             warnings.filterwarnings("ignore", message=r".*fork\(\) may lead to deadlocks", category=DeprecationWarning)
             pool = multiprocessing.get_context("fork").Pool(workers, initializer=_start_worker)
         with pool:
-            waiting: deque = deque()  # at most two chunks a worker in flight, which bounds the memory
+            waiting: deque = deque()  # at most two items a worker in flight, which bounds the memory
             for i in range(len(items)):
                 waiting.append(pool.apply_async(_run, ((number, i),)))
                 if len(waiting) >= 2 * workers:
@@ -77,10 +64,32 @@ def chunk_map(fn, items, workers: int, *, processes: bool):
         del _TASKS[number]
 
 
+def ordered_map(fn, items, threads: int):
+    """``fn`` of each item, computed by ``threads`` threads, yielded in the items' order.
+
+    NumPy's large loops and BLAS release the GIL, so pieces are computed partly in parallel; the caller adds
+    the results in order, so the sums are the same bits for any number of threads. BLAS runs on one
+    thread inside (the blocks are the parallel work, and a product then never depends on how BLAS
+    splits it). At most ``threads + 1`` results wait, which bounds the memory.
+    """
+    with threadpool_limits(limits=1, user_api="blas"):
+        if threads <= 1:
+            yield from map(fn, items)
+            return
+        with ThreadPoolExecutor(max_workers=threads) as pool:
+            waiting: deque = deque()
+            for item in items:
+                waiting.append(pool.submit(fn, item))
+                if len(waiting) > threads:
+                    yield waiting.popleft().result()
+            while waiting:
+                yield waiting.popleft().result()
+
+
 def _start_worker() -> None:
     """Each worker is one core's worth: BLAS inside it stays on one thread (as in :func:`ordered_map`). And its
-    chunks' arrays (a few hundred kB to a few MB each, allocated and freed many times a chunk) come from the
-    C heap it keeps, not from fresh pages of the system every time: glibc hands blocks above its mmap threshold
+    arrays (a few hundred kB to a few MB each, allocated and freed many times a piece) come from the C heap
+    it keeps, not from fresh pages of the system every time: glibc hands blocks above its mmap threshold
     (128 kB until it adapts) to the system on every free, and every new one then starts with page faults."""
     _start_worker.limits = threadpool_limits(limits=1, user_api="blas")
     _keep_freed_memory()
