@@ -279,12 +279,21 @@ def loan_list_text(values) -> str:
     return f"{len(values)} loan{'s' if len(values) != 1 else ''} ({head}{', ...' if len(values) > 5 else ''})"
 
 
+def _has_repeats(ids: pd.Series) -> bool:
+    """Whether a loan id appears twice. Books come sorted by loan id (the ECL's is): then neighbours are compared,
+    which is many times faster than hashing Arrow-backed strings (``duplicated``, ``is_unique``)."""
+    if ids.is_monotonic_increasing:
+        values = ids.to_numpy()
+        return bool((values[1:] == values[:-1]).any())
+    return not ids.is_unique
+
+
 def _check_loans(loans: pd.DataFrame, needed: Sequence[str], *, balance_col: str, age_col: str | None) -> None:
     missing = [c for c in needed if c not in loans.columns]
     if missing:
         raise ProjectionError(f"loans: missing column(s) {missing}; have {list(loans.columns)}")
     ids = loans["loan_id"]
-    if ids.duplicated().any():
+    if _has_repeats(ids):
         raise ProjectionError(f"loans: loan_id repeated for {loan_list_text(ids[ids.duplicated()].unique())}")
     problems = []
     for col in needed:
@@ -1050,7 +1059,10 @@ class _SegmentPool:
         # every speed sum is zero past a loan's maturity (no hazard, no balance): those cells add 0 to the bin of the
         # oldest age, so the cells need no selecting
         key = grp[:, None] * (max_age + 1) + np.minimum(ages, max_age)
-        out = {"summary": {}, "ts": [], "sp": []}
+        K = len(self.names)
+        ts = {name: np.empty((K, G, self.years)) for name in self.ts}
+        sp = {name: np.empty((K - 1, G, max_age + 1)) for name in self.sp}  # the scenarios' (weighted: see finish)
+        out = {"summary": {}, "ts": ts, "sp": sp}
         for ki, s in enumerate(self.names):
             c = curves[s]
             s_prev, surv, F_d, F_p, marg_d, marg_p = (
@@ -1062,8 +1074,11 @@ class _SegmentPool:
             Fy, Sy = F_d[:, yidx], surv[:, yidx]
             Sy_prev = np.concatenate([np.ones((n, 1)), Sy[:, :-1]], axis=1)
             for tag, oh in (("n", onehot), ("b", onehot_b)):
-                out["ts"] += [("F_" + tag, ki, oh @ Fy), ("S_" + tag, ki, oh @ Sy), ("Sp_" + tag, ki, oh @ Sy_prev)]
-            out["ts"] += [("n", ki, onehot.sum(axis=1)[:, None]), ("bal", ki, onehot_b.sum(axis=1)[:, None])]
+                np.matmul(oh, Fy, out=ts["F_" + tag][ki])
+                np.matmul(oh, Sy, out=ts["S_" + tag][ki])
+                np.matmul(oh, Sy_prev, out=ts["Sp_" + tag][ki])
+            ts["n"][ki] = onehot.sum(axis=1)[:, None]
+            ts["bal"][ki] = onehot_b.sum(axis=1)[:, None]
             if s != WEIGHTED:
                 hd, hp = haz[s]
                 size = G * (max_age + 1)
@@ -1073,7 +1088,7 @@ class _SegmentPool:
                     ("pexp", s_prev * (1.0 - hd) * bal_end),
                     ("ppay", marg_p * bal_end),
                 ):
-                    out["sp"].append((name, ki, np.bincount(key.ravel(), weights=vals.ravel(), minlength=size).reshape(G, max_age + 1)))
+                    sp[name][ki] = np.bincount(key.ravel(), weights=vals.ravel(), minlength=size).reshape(G, max_age + 1)
         return out
 
     def add(self, sl: slice, sums: dict) -> None:
@@ -1081,10 +1096,10 @@ class _SegmentPool:
         depend on how many threads computed them."""
         for name, values in sums["summary"].items():
             self.summary[name][sl] = values
-        for name, ki, values in sums["ts"]:
-            self.ts[name][ki] += values
-        for name, ki, values in sums["sp"]:
-            self.sp[name][ki] += values
+        for name, values in sums["ts"].items():
+            self.ts[name] += values
+        for name, values in sums["sp"].items():
+            self.sp[name][: len(values)] += values
 
     def finish(self, weights, scenarios) -> SegmentSums:
         """The pooled sums, the weighted speeds computed from the scenarios' (linear in the expected balances)."""

@@ -490,13 +490,14 @@ class EclResult:
         return table
 
 
-def _tidy(loan_ids: np.ndarray, names: tuple[str, ...], measures: dict[str, np.ndarray]) -> pd.DataFrame:
+def _tidy(loan_ids: pd.Series, names: tuple[str, ...], measures: dict[str, np.ndarray]) -> pd.DataFrame:
     """One row per loan and scenario from ``(n_loans, n_scenarios)`` arrays, scenario by scenario."""
     n, k = len(loan_ids), len(names)
     return pd.DataFrame(
         {
-            "loan_id": np.tile(loan_ids, k),
-            "scenario": pd.Categorical(np.repeat(np.array(names, dtype=object), n), categories=list(names)),
+            # the ids taken in their own array type (Arrow-backed strings are not rebuilt one by one)
+            "loan_id": loan_ids.array.take(np.tile(np.arange(n), k)),
+            "scenario": pd.Categorical.from_codes(np.repeat(np.arange(k), n), categories=list(names)),
             **{m: np.ascontiguousarray(measures[m].T).ravel() for m in SCENARIO_MEASURES},
         }
     )
@@ -1071,6 +1072,6 @@ def expected_credit_loss(
         }
     )
     return EclResult(
-        loans=table, by_scenario=_tidy(table["loan_id"].to_numpy(), names, measures), segments=segment_summary(table),
+        loans=table, by_scenario=_tidy(table["loan_id"], names, measures), segments=segment_summary(table),
         projection=proj, scenarios=scenarios, weights=w, accounting=accounting,
     )  # fmt: skip
