@@ -335,3 +335,13 @@ def test_an_error_in_a_worker_process_reaches_the_caller():
     model.params.loc["intercept"] = 10.0
     with pytest.raises(ModelError, match=r"summing above 1 for 5 loans"):
         _pids(model, 2)
+
+
+def test_the_origination_pd_does_not_depend_on_the_order_of_the_loans():
+    # a book in loan id order takes the fast sort and puts the values back by row; any other order is sorted
+    model, base = _model(_spec()), _paths()["base"]
+    loans = _loans()
+    in_order = origination_pd(loans, model, base, collateral=COLLATERAL, chunk_size=3, workers=1)
+    shuffled = origination_pd(loans.sample(frac=1.0, random_state=7), model, base, collateral=COLLATERAL, chunk_size=3, workers=1)
+    assert list(in_order.index) == sorted(loans["loan_id"])
+    pd.testing.assert_series_equal(in_order, shuffled, check_exact=True)
