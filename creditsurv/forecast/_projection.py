@@ -1342,14 +1342,21 @@ def _take_chunk(rows, results, pooled, curve_writer, term_writer, on_chunk, on_p
         on_prepared(rows, results.get("prepared"))
 
 
+def _as_given(column: pd.Series):
+    """A column's values for a new frame: its own array when it holds strings (Arrow-backed, taken as they are),
+    else as NumPy values (a categorical becomes its labels)."""
+    return column.array if isinstance(column.dtype, pd.StringDtype) else column.to_numpy()
+
+
 def _projection_result(book, pooled, sums, segment_column, scenarios, w, as_of_idx, band_edges) -> ProjectionResult:
     """The per-loan summaries and the segment tables built from the pooled sums."""
     names = (*scenarios, WEIGHTED)
     loans_out = pd.DataFrame(
         {
-            "loan_id": book.loan_id,
-            "segment": book.frame[segment_column].to_numpy(),
-            "band": np.asarray(sums.labels, dtype=object)[pooled.band_code],
+            # the book's own string columns and the labels taken by code: no million strings rebuilt one by one
+            "loan_id": _as_given(book.frame["loan_id"]),
+            "segment": _as_given(book.frame[segment_column]),
+            "band": pd.array(list(sums.labels), dtype="str").take(pooled.band_code),
             "age": book.age,
             "remaining_term": book.remaining,
             "balance": book.balance,
