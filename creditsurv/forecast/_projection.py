@@ -826,6 +826,9 @@ def _prepare_book(loans, spec, *, as_of_idx, collateral: Collateral, origination
         balance_col="original_balance" if origination else "balance",
         age_col=None if origination else "age",
     )
+    if origination:  # the origination view reads these columns alone: the others are not carried into its order
+        read = [*needed, "age", *(r["before_first_column"] for r in spec.panel if r.get("before_first_column"))]
+        loans = loans[[c for c in dict.fromkeys(read) if c in loans.columns]]
     frame, from_rows = _sorted_by(loans, list(order))
     n = len(frame)
     term = frame["term"].to_numpy(dtype=np.int64)
