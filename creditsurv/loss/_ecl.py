@@ -493,14 +493,15 @@ class EclResult:
 def _tidy(loan_ids: pd.Series, names: tuple[str, ...], measures: dict[str, np.ndarray]) -> pd.DataFrame:
     """One row per loan and scenario from ``(n_loans, n_scenarios)`` arrays, scenario by scenario."""
     n, k = len(loan_ids), len(names)
-    return pd.DataFrame(
-        {
-            # the ids taken in their own array type (Arrow-backed strings are not rebuilt one by one)
-            "loan_id": loan_ids.array.take(np.tile(np.arange(n), k)),
-            "scenario": pd.Categorical.from_codes(np.repeat(np.arange(k), n), categories=list(names)),
-            **{m: np.ascontiguousarray(measures[m].T).ravel() for m in SCENARIO_MEASURES},
-        }
-    )
+    # the measures written once into the frame's own block (a column per measure, scenario after scenario)
+    block = np.empty((len(SCENARIO_MEASURES), k, n))
+    for j, m in enumerate(SCENARIO_MEASURES):
+        block[j] = measures[m].T
+    out = pd.DataFrame(block.reshape(len(SCENARIO_MEASURES), k * n).T, columns=list(SCENARIO_MEASURES), copy=False)
+    # the ids taken in their own array type (Arrow-backed strings are not rebuilt one by one)
+    out.insert(0, "loan_id", loan_ids.array.take(np.tile(np.arange(n), k)))
+    out.insert(1, "scenario", pd.Categorical.from_codes(np.repeat(np.arange(k), n), categories=list(names)))
+    return out
 
 
 def segment_summary(loans: pd.DataFrame) -> pd.DataFrame:
