@@ -813,14 +813,16 @@ def _house_price_series(frame, in_default, lookups, lgd_cfg, collateral: Collate
     missing = [c for c in need if c not in frame.columns]
     if missing:
         raise ProjectionError(f"loans: collateral LGD needs column(s) {missing}")
-    hpi_names = {r: hpi_series_name(collateral.hpi_series, r) for r in pd.unique(frame[region_column])}
+    codes, regions = pd.factorize(frame[region_column])  # the regions in order of appearance, as pd.unique
+    hpi_names = {r: hpi_series_name(collateral.hpi_series, r) for r in regions}
     live = ~in_default
     needs = {}
     ends = as_of_idx + remaining_term(frame["age"].to_numpy(), frame["term"].to_numpy()) + lgd_cfg.months_to_recovery
     to_sale = as_of_idx + months_to_sale(frame, lgd_cfg.months_to_recovery)
-    for region, name in hpi_names.items():
-        rows = frame[region_column].to_numpy() == region
-        months = [np.unique(frame["origination_idx"].to_numpy()[rows]), np.unique(to_sale[rows])]
+    origination = frame["origination_idx"].to_numpy()
+    for code, (region, name) in enumerate(hpi_names.items()):
+        rows = codes == code
+        months = [np.unique(origination[rows]), np.unique(to_sale[rows])]
         if (rows & live).any():
             months.append(np.arange(as_of_idx + 1, int(ends[rows & live].max()) + 1))
         needs.setdefault(name, []).extend(months)
