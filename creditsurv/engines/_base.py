@@ -126,12 +126,14 @@ class Engine(Protocol):
     def map_book(
         self, fn: Callable, book: pd.DataFrame, writers: Mapping[str, Callable], progress: Callable | None = None,
     ) -> list:
-        """Run ``fn(part, writers, progress)`` over partitions of the book; results in loan order.
+        """Run ``fn(part, writers, progress, workers)`` over partitions of the book; results in loan order.
 
         Each partition is a contiguous range of loan ids. Tables ``fn`` hands to
         ``writers`` reach the given writers in loan order, so the files do not
-        depend on the partitioning. With one partition the result list holds
-        exactly what ``fn(book, writers, progress)`` returned.
+        depend on the partitioning. ``workers`` is how many threads or processes
+        a partition may use (None: every core of this machine; 1 where the
+        engine runs partitions side by side). With one partition the result
+        list holds exactly what ``fn(book, writers, progress, None)`` returned.
         """
         ...
 

@@ -397,8 +397,8 @@ class DuckdbEngine:
         return _CellSums(store, design, first, first.fingerprint(design.names, design.digest()), codes, kind, threads)
 
     def map_book(self, fn, book, writers, progress=None) -> list:
-        """One partition, the whole book, in this process: the writers receive the tables directly."""
-        return [fn(book, writers, progress)]
+        """One partition, the whole book, in this process on every core: the writers receive the tables directly."""
+        return [fn(book, writers, progress, None)]
 
     def query(self, sql: str, params=None):
         """Run ``sql`` (with ``params``) and return a DuckDB relation."""

@@ -961,11 +961,12 @@ def _from_ipc(data: bytes) -> pa.Table:
 
 
 def _run_partition(fn, wanted, index, slices):
-    """Executor side: ``fn`` on one partition's loans; the long tables it writes kept as Arrow IPC bytes."""
+    """Executor side: ``fn`` on one partition's loans, on one core (Spark runs the partitions side by side); the long
+    tables it writes kept as Arrow IPC bytes."""
     for part in slices:
         tables = {name: [] for name in wanted}
         writers = {name: (lambda t, out=tables[name]: out.append(_ipc(t))) for name in wanted}
-        yield {"index": index, "n": len(part), "result": fn(part, writers, None), "tables": tables}
+        yield {"index": index, "n": len(part), "result": fn(part, writers, None, 1), "tables": tables}
 
 
 def _whole_partition(items):
@@ -991,7 +992,7 @@ def _map_book(engine, fn, book, writers, progress=None) -> list:
     from pyspark import StorageLevel
 
     if len(book) == 0:
-        return [fn(book, writers, progress)]
+        return [fn(book, writers, progress, 1)]
     sc = engine.spark.sparkContext
     slices = _split_book(book, engine.partitions)
     wanted = tuple(writers)

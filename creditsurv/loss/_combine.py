@@ -123,8 +123,8 @@ def expected_credit_loss_by_partition(engine, loans, source, paths, *, writers=N
     return combine_partitions(engine.map_book(task, loans, dict(writers or {}), progress))
 
 
-def _partition_ecl(source, paths, options, part, writers, progress):
+def _partition_ecl(source, paths, options, part, writers, progress, workers):
     return expected_credit_loss(
         part, source, paths, **options, progress=progress, schedule_writer=writers.get("schedule"),
-        curve_writer=writers.get("curve"), term_writer=writers.get("term"),
+        curve_writer=writers.get("curve"), term_writer=writers.get("term"), workers=workers,
     )
