@@ -16,6 +16,7 @@ from __future__ import annotations
 import ctypes
 import itertools
 import multiprocessing
+import signal
 import sys
 import warnings
 from collections import deque
@@ -93,6 +94,11 @@ def _start_worker() -> None:
     (128 kB until it adapts) to the system on every free, and every new one then starts with page faults."""
     _start_worker.limits = threadpool_limits(limits=1, user_api="blas")
     _keep_freed_memory()
+    # The run's handlers (SIGTERM and SIGHUP raise, to remove unfinished outputs) belong to the run's process: a
+    # worker writes nothing, and the pool stops it with SIGTERM, which must end it at once.
+    for name in ("SIGTERM", "SIGHUP"):
+        if hasattr(signal, name):
+            signal.signal(getattr(signal, name), signal.SIG_DFL)
 
 
 def _keep_freed_memory() -> None:
