@@ -330,7 +330,7 @@ def test_origination_pd_reads_one_path_from_the_origination_month():
     from creditsurv.config import ScenarioExtension
 
     src = LogitSource()
-    loans = _loans()
+    loans = _loans().drop(columns="age")  # the whole life from origination (the next test starts at the age)
     hist = _history()
     po = origination_pd(loans, src, hist, chunk_size=3, extension=ScenarioExtension(rule="hold_last"), workers=1)
     assert list(po.index) == sorted(loans["loan_id"])
@@ -346,6 +346,46 @@ def test_origination_pd_reads_one_path_from_the_origination_month():
     assert raw["age"][0] == 1
     assert raw["current_ltv"][0] == pytest.approx(first["original_balance"] / first["property_value"], rel=1e-12)
     assert ((po > 0) & (po < 1)).all()
+
+
+def test_origination_pd_from_the_age_equals_the_whole_life_view_conditioned_on_survival():
+    # The origination view of default after age a given survival to it (IFRS 9 B5.5.11: the same remaining life
+    # as today's PD) is computed by starting each loan's projection at a. Here it is rebuilt by hand from the
+    # whole life from origination: one loan a chunk, the source's inputs of each month recorded, its hazards
+    # recomputed and chained in plain Python from month a + 1 on.
+    loans = _loans()
+    hist = _history()
+    recorder = LogitSource()
+    origination_pd(loans.drop(columns="age"), recorder, hist, chunk_size=1, workers=1)
+    ordered = loans.sort_values(["origination_idx", "term", "loan_id"]).reset_index(drop=True)
+    assert len(recorder.calls) == len(ordered)
+    expected, ratio = {}, {}
+    for row, raw in zip(ordered.itertuples(), recorder.calls):
+        hd, hp = LogitSource().hazards(raw)
+        assert len(hd) == row.term
+        a = min(row.age, row.term - 1)  # at or past its term: its last contractual month
+        f = f_a = 0.0
+        s = s_a = 1.0
+        cond, s_cond = 0.0, 1.0
+        for u in range(row.term):  # month u + 1 of the loan's life
+            f += s * hd[u]
+            s *= 1.0 - hd[u] - hp[u]
+            if u + 1 == a:
+                f_a, s_a = f, s
+            if u >= a:
+                cond += s_cond * hd[u]
+                s_cond *= 1.0 - hd[u] - hp[u]
+        expected[row.loan_id] = cond
+        ratio[row.loan_id] = ((f - f_a) / s_a, s_a)
+    po = origination_pd(loans, LogitSource(), hist, chunk_size=2, workers=1)
+    np.testing.assert_allclose(po.to_numpy(), pd.Series(expected).loc[po.index].to_numpy(), rtol=1e-12)
+    assert (po > 0).all() and (po < 1).all()
+    # the same as (F(T) - F(a)) / S(a) where S(a) keeps that difference's digits; loan L04 reaches its last
+    # month with S(a) of about 6e-15, where the difference of two cumulative PDs near 0.98 has no digit left
+    for loan_id, (value, s_a) in ratio.items():
+        if s_a > 1e-3:
+            assert po[loan_id] == pytest.approx(value, rel=1e-12), loan_id
+    assert ratio["L04"][1] < 1e-14 and abs(ratio["L04"][0] / po["L04"] - 1) > 0.1
 
 
 # --------------------------------------------------------------------------- segment tables

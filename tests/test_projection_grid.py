@@ -284,10 +284,11 @@ needs_fork = pytest.mark.skipif(not can_fork(), reason="worker processes are for
 
 
 def _pids(source, workers, **kw):
-    """A projection without writers, and the processes that computed its chunks."""
+    """A projection without writers, and the processes that computed its chunks (one loan a chunk: 40 chunks make
+    5 blocks of pooled sums, enough for two workers)."""
     pids = []
     result = project_loans(
-        _loans(), source, _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=COLLATERAL, chunk_size=5,
+        _loans(), source, _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=COLLATERAL, chunk_size=1,
         prepare=lambda ch: os.getpid(), on_prepared=lambda rows, pid: pids.append(pid), workers=workers, **kw,
     )  # fmt: skip
     return result, set(pids)
@@ -320,7 +321,7 @@ def test_the_ecl_in_worker_processes_is_the_ecl_of_one_thread():
     loans = _loans().assign(days_past_due=0)
     # the staging projects each loan's PD at origination: origination_pd runs in the workers too
     kwargs = dict(
-        as_of_idx=AS_OF, weights=WEIGHTS, collateral=COLLATERAL, chunk_size=5, default_days_past_due=90,
+        as_of_idx=AS_OF, weights=WEIGHTS, collateral=COLLATERAL, chunk_size=1, default_days_past_due=90,
         loss=Loss(lgd=Lgd(kind="constant", constant=0.3, floor=0.0)), staging=Staging(),
     )  # fmt: skip
     one = expected_credit_loss(loans, _model(_spec()), _paths(), workers=1, **kwargs)
@@ -333,7 +334,7 @@ def test_the_ecl_in_worker_processes_is_the_ecl_of_one_thread():
 def test_an_error_in_a_worker_process_reaches_the_caller():
     model = _model(_spec(), kind="cause_specific")
     model.params.loc["intercept"] = 10.0
-    with pytest.raises(ModelError, match=r"summing above 1 for 5 loans"):
+    with pytest.raises(ModelError, match=r"summing above 1 for 1 loan \(L\d+\) in months"):  # the chunk of one loan
         _pids(model, 2)
 
 

@@ -65,6 +65,7 @@ from ..data import PREVIOUSLY_DEFAULTED
 from ..errors import ConfigError, ModelError, ProjectionError, problem_list
 from ..model import (
     InputGrid,
+    can_fork,
     chunk_map,
     equivalent_psa,
     equivalent_sda,
@@ -99,6 +100,10 @@ _DERIVED = ("age", "log_age", "current_ltv", "rate_incentive")
 CHUNK_SIZE = 256
 """Loans per chunk of a projection by default: a chunk's (loans x months) arrays of about 0.7 MB stay in a core's
 cache, which makes the chunk's many elementwise passes several times faster than larger chunks."""
+SUM_BLOCK = 8
+"""Chunks whose pooled sums are added together before they join the totals: a worker sends back a block's sums
+once (a chunk's are nearly a megabyte), and every route adds them in these same blocks, so the sums keep their
+bits for any number of workers."""
 
 
 # --------------------------------------------------------------------------- macro lookups
@@ -1047,6 +1052,7 @@ class _SegmentPool:
         self.sp = {key: np.zeros((K, G, max_age + 1)) for key in ("dexp", "dflt", "pexp", "ppay")}
         self.summary = {f"{m}_{s}": np.zeros(n_all) for s in names for m in ("pd_12m", "pd_lifetime", "prepay_lifetime")}
         self.balance = book.balance
+        self._open = None  # the pooled sums of the chunks added since the last block closed
 
     def chunk_sums(self, sl: slice, curves, haz, mask, bal_start, bal_end, ages) -> dict:
         """One chunk's contributions (loans ``sl``): their 12-month and lifetime PDs, term and speed sums.
@@ -1098,10 +1104,24 @@ class _SegmentPool:
         return out
 
     def add(self, sl: slice, sums: dict) -> None:
-        """Add one chunk's :meth:`chunk_sums` (loans ``sl``); called in the chunks' order, so the sums do not
-        depend on how many threads computed them."""
+        """Add one chunk's :meth:`chunk_sums` (loans ``sl``), in the chunks' order: its per-loan values to their
+        rows, its pooled sums to the open block's (:func:`add_sums`). :meth:`close_block` after every
+        :data:`SUM_BLOCK` chunks adds the block to the totals; a whole block's sums computed elsewhere (in a
+        worker, by the same :func:`add_sums`) go in with :meth:`add_block`. So the totals are the same bits
+        whatever computed the chunks."""
         for name, values in sums["summary"].items():
             self.summary[name][sl] = values
+        if "ts" in sums:
+            self._open = add_sums(self._open, sums)
+
+    def close_block(self) -> None:
+        """Add the open block's sums to the totals."""
+        if self._open is not None:
+            self.add_block(self._open)
+            self._open = None
+
+    def add_block(self, sums: dict) -> None:
+        """Add a block's pooled sums (chunk sums added in order by :func:`add_sums`) to the totals."""
         for name, values in sums["ts"].items():
             self.ts[name] += values
         for name, values in sums["sp"].items():
@@ -1109,10 +1129,22 @@ class _SegmentPool:
 
     def finish(self, weights, scenarios) -> SegmentSums:
         """The pooled sums, the weighted speeds computed from the scenarios' (linear in the expected balances)."""
+        self.close_block()
         K = len(self.names)
         for name in self.sp:
             self.sp[name][K - 1] = sum(weights[s] * self.sp[name][ki] for ki, s in enumerate(scenarios))
         return SegmentSums(self.segments, tuple(self.labels), self.ts, self.sp)
+
+
+def add_sums(block: dict | None, sums: dict) -> dict:
+    """The pooled sums (``ts``, ``sp``) of a block so far (None before its first chunk) plus one chunk's, added in
+    place: the one way chunk sums are added, in a worker and in the calling process alike."""
+    if block is None:
+        return {"ts": dict(sums["ts"]), "sp": dict(sums["sp"])}
+    for part in ("ts", "sp"):
+        for name, values in sums[part].items():
+            block[part][name] += values
+    return block
 
 
 def project_loans(
@@ -1228,11 +1260,37 @@ def project_loans(
         return _chunk_results(book, sl, chunk, curves, scenarios, w, pooled, tables, prepare, whole)
 
     chunks = chunk_rows(book.remaining, chunk_size, keep_order or any(tables))
-    in_processes = processes and not any(tables) and on_chunk is None
-    for rows, results in zip(chunks, chunk_map(work, chunks, worker_count(workers), processes=in_processes)):
-        _take_chunk(rows, results, pooled, curve_writer, term_writer, on_chunk, on_prepared)
+    blocks = [chunks[i : i + SUM_BLOCK] for i in range(0, len(chunks), SUM_BLOCK)]
+    n_workers = worker_count(workers)
+    if processes and not any(tables) and on_chunk is None and len(blocks) >= 2 * n_workers and can_fork():
+        for block, (parts, total) in zip(blocks, chunk_map(_block_of(work), blocks, n_workers, processes=True)):
+            for rows, results in zip(block, parts):
+                _take_chunk(rows, results, pooled, None, None, None, on_prepared)
+            pooled.add_block(total)
+    else:
+        for i, (rows, results) in enumerate(zip(chunks, chunk_map(work, chunks, n_workers, processes=False))):
+            _take_chunk(rows, results, pooled, curve_writer, term_writer, on_chunk, on_prepared)
+            if (i + 1) % SUM_BLOCK == 0:
+                pooled.close_block()
     sums = pooled.finish(w, scenarios)
     return _projection_result(book, pooled, sums, segment_column, scenarios, w, as_of_idx, band_edges)
+
+
+def _block_of(work):
+    """``work`` over a block of chunks, for a worker: each chunk's results with only its per-loan sums, and the
+    block's pooled sums added in the chunks' order (:func:`add_sums`), sent back once."""
+
+    def block_work(block):
+        parts, total = [], None
+        for sl in block:
+            results = work(sl)
+            sums = results["sums"]
+            total = add_sums(total, sums)
+            results["sums"] = {"summary": sums["summary"]}
+            parts.append(results)
+        return parts, total
+
+    return block_work
 
 
 def _checked_arguments(loans, scenarios, weights, chunk_size, segment_column, band_column) -> ScenarioWeights:
@@ -1553,6 +1611,14 @@ def origination_pd(
     default over the expected life); comparing today's remaining-life PD with
     a full-life PD at origination would understate every increase.
 
+    That PD needs no month before ``a``: where the hazards from ``a`` on do not
+    depend on earlier months (a competing-risk model whose panel inputs are
+    held), each loan's origination view starts at ``a``, with the balance
+    scheduled for then, and the PD is its cumulative PD. It equals the
+    difference form above, which a multi-state model still takes (its arrears
+    states at ``a`` come from the months before), and keeps its digits where
+    the difference of two cumulative PDs loses them.
+
     Parameters
     ----------
     loans : DataFrame
@@ -1571,50 +1637,84 @@ def origination_pd(
     Series of lifetime PD indexed by loan_id (sorted).
     """
     spec = _parse_inputs(list(source.required_inputs), loans.columns, source)
+    later = "age" in loans.columns and _starts_anywhere(source, spec)
     book, hpi_names = _prepare_book(
-        loans, spec, as_of_idx=0, collateral=collateral, origination=True, order=("origination_idx", "term", "loan_id")
-    )
+        loans, spec, as_of_idx=0, collateral=collateral, origination=True,
+        order=("origination_idx", "age", "term", "loan_id") if later else ("origination_idx", "term", "loan_id"),
+    )  # fmt: skip
     n_all = len(book.loan_id)
     out = np.zeros(n_all)
-    if "age" in loans.columns:
-        ages = book.frame["age"].to_numpy(dtype=np.int64)
-    else:
-        ages = np.zeros(n_all, dtype=np.int64)
-    # loans sorted by origination month: each month's loans are one run of rows, projected on that month's path
-    bounds = np.flatnonzero(np.diff(book.start_idx)) + 1
+    # the age to compare from; a loan at or past its term over its last contractual month (see remaining_term)
+    ages = book.frame["age"].to_numpy(dtype=np.int64) if "age" in loans.columns else np.zeros(n_all, dtype=np.int64)
+    ages = np.clip(ages, 0, book.remaining - 1)
+    if later:
+        book = _from_age(book, ages)
+    # loans sorted by origination month, then start month: each run of rows shares both (a chunk of the run shares
+    # its months' macro values), each origination month's runs share its path, long enough for the loans' terms
+    origination = book.start_idx - book.age
+    firsts = np.r_[0, np.flatnonzero(np.diff(origination) | np.diff(book.start_idx)) + 1] if n_all else []
+    ends = np.r_[firsts[1:], n_all] if n_all else []
     lookups, chunks = {}, []
     paths = OriginationPaths(macro, extension)
-    for first, stop in zip(np.r_[0, bounds], np.r_[bounds, n_all]):
+    for o in np.unique(origination):
+        rows = slice(*np.searchsorted(origination, [o, o + 1]))
+        last = int((book.age[rows] + book.remaining[rows]).max())
+        lookups[int(o)] = {"origination": MacroLookup.from_values(*paths.values(int(o), int(o) + last + 1), paths.columns)}
+    for first, stop in zip(firsts, ends):
         group = slice(int(first), int(stop))
-        o = int(book.start_idx[first])
-        lookups[o] = {"origination": MacroLookup.from_values(*paths.values(o, o + int(book.remaining[group].max()) + 1), paths.columns)}
+        o = int(origination[first])
         sub = _Book(**{f.name: _rows(getattr(book, f.name), group) for f in dataclasses.fields(_Book)})
         check_coverage(lookups[o], _coverage_needs(sub, spec, hpi_names, collateral.market_rate_series, hold=False))
         chunks += [(slice(start, min(start + chunk_size, group.stop)), o) for start in range(group.start, group.stop, chunk_size)]
 
-    def work(item):
-        sl, o = item
-        haz, *_ = _hazards_chunk(book, sl, spec, source, lookups[o], hpi_names, collateral.market_rate_series, hold=False)
-        hd, hp = haz["origination"]
-        # survival and cumulative PD as Curves.from_hazards gives them (the prepayment incidence is not needed)
-        s = np.cumprod(1.0 - hd - hp, axis=1)
-        marginal = hd.copy()
-        marginal[:, 1:] *= s[:, :-1]
-        f_d = np.cumsum(marginal, axis=1)
-        # a loan at or past its term is compared over its last contractual month (see remaining_term)
-        a = np.clip(ages[sl], 0, book.remaining[sl] - 1)
-        rows = np.arange(len(a))
-        f_a = np.where(a > 0, f_d[rows, np.maximum(a - 1, 0)], 0.0)
-        s_a = np.where(a > 0, s[rows, np.maximum(a - 1, 0)], 1.0)
-        return np.where(s_a > 0, (f_d[:, -1] - f_a) / np.where(s_a > 0, s_a, 1.0), 0.0)
+    def work(items):
+        return [_origination_chunk(book, sl, spec, source, lookups[o], hpi_names, collateral, ages) for sl, o in items]
 
-    for (sl, _), values in zip(chunks, chunk_map(work, chunks, worker_count(workers), processes=True)):
-        out[sl] = values
+    blocks = [chunks[i : i + SUM_BLOCK] for i in range(0, len(chunks), SUM_BLOCK)]
+    for block, values in zip(blocks, chunk_map(work, blocks, worker_count(workers), processes=True)):
+        for (sl, _), v in zip(block, values):
+            out[sl] = v
     if book.from_rows is not None:  # the loans came sorted by loan id: put each value back in its row
         in_order = np.empty(n_all)
         in_order[book.from_rows] = out
         return pd.Series(in_order, index=pd.Index(loans["loan_id"], name="loan_id"), name="pd_lifetime_origination")
     return pd.Series(out, index=pd.Index(book.loan_id, name="loan_id"), name="pd_lifetime_origination").sort_index()
+
+
+def _starts_anywhere(source, spec: _Spec) -> bool:
+    """Whether the origination view of a loan from age ``a`` on can start at ``a``: when its hazards from ``a`` on
+    do not depend on the months before. Not so for a multi-state model (the arrears states at ``a`` come from
+    the chain before), nor for a panel input that reverts month by month from its starting value."""
+    if hasattr(source, "transition_probabilities"):
+        return False
+    return all(rule.get("projection", "hold") == "hold" for rule in spec.panel)
+
+
+def _from_age(book: _Book, ages: np.ndarray) -> _Book:
+    """The origination view of ``book`` (projected from age 0) starting at ``ages`` instead: the scheduled balance
+    then, the months left, the calendar month. Each month from ``ages`` on reads the inputs it read before (the
+    same age, calendar month, balance up to rounding, house-price ratio to origination)."""
+    balance = scheduled_balance(book.balance, book.rate, book.remaining, ages)
+    return dataclasses.replace(
+        book, age=book.age + ages, remaining=book.remaining - ages, balance=balance, start_idx=book.start_idx + ages
+    )
+
+
+def _origination_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names, collateral, ages) -> np.ndarray:
+    """The origination view's lifetime PD of the loans in ``sl`` after ``ages``, given survival to them."""
+    haz, *_ = _hazards_chunk(book, sl, spec, source, lookups, hpi_names, collateral.market_rate_series, hold=False)
+    hd, hp = haz["origination"]
+    # survival and cumulative PD as Curves.from_hazards gives them (the prepayment incidence is not needed)
+    s = np.cumprod(1.0 - hd - hp, axis=1)
+    marginal = hd.copy()
+    marginal[:, 1:] *= s[:, :-1]
+    f_d = np.cumsum(marginal, axis=1)
+    # months ahead of the projection's start to compare from: 0 when it started at the age itself
+    a = ages[sl] - book.age[sl]
+    rows = np.arange(len(a))
+    f_a = np.where(a > 0, f_d[rows, np.maximum(a - 1, 0)], 0.0)
+    s_a = np.where(a > 0, s[rows, np.maximum(a - 1, 0)], 1.0)
+    return np.where(s_a > 0, (f_d[:, -1] - f_a) / np.where(s_a > 0, s_a, 1.0), 0.0)
 
 
 def _rows(value, rows: slice):
