@@ -30,6 +30,8 @@ from creditsurv.config import (
 )
 from creditsurv.errors import ModelError
 from creditsurv.forecast import (
+    Curves,
+    MixedCurves,
     chain_of_moves,
     markov_chain,
     origination_pd,
@@ -346,3 +348,44 @@ def test_the_origination_pd_does_not_depend_on_the_order_of_the_loans():
     shuffled = origination_pd(loans.sample(frac=1.0, random_state=7), model, base, collateral=COLLATERAL, chunk_size=3, workers=1)
     assert list(in_order.index) == sorted(loans["loan_id"])
     pd.testing.assert_series_equal(in_order, shuffled, check_exact=True)
+
+
+def test_weighted_curves_mixed_when_read_are_the_mix_by_hand_and_free_the_chunk():
+    # The weighted curves (IFRS 9 5.5.17: probability-weighted, linear in the scenarios' probabilities) are mixed
+    # when first read, whole or by columns; either way each value is w_a x a + w_b x b + w_c x c in that order.
+    import gc
+    import weakref
+
+    rng = np.random.default_rng(3)
+    weights = {"a": 0.5, "b": 0.2, "c": 0.3}
+    curves = {s: Curves.from_hazards(rng.uniform(0, 0.01, (6, 40)), rng.uniform(0, 0.03, (6, 40))) for s in weights}
+    cols = [11, 23, 39]
+    for field in ("survival", "cum_default", "cum_prepay", "marginal_default"):
+        by_hand = 0.5 * getattr(curves["a"], field)
+        by_hand += 0.2 * getattr(curves["b"], field)
+        by_hand += 0.3 * getattr(curves["c"], field)
+        mixed = MixedCurves(curves, weights)
+        np.testing.assert_array_equal(mixed.columns(field, cols), by_hand[:, cols])
+        np.testing.assert_array_equal(getattr(mixed, field), by_hand)
+        np.testing.assert_array_equal(mixed.columns(field, cols), by_hand[:, cols])  # now from the whole mix
+    with pytest.raises(AttributeError):
+        MixedCurves(curves, weights).not_a_curve
+    # a chunk's arrays are freed as soon as the chunk is done with, without waiting for the cycle collector (the
+    # weighted curves once held the dict that held them: every chunk's arrays stayed alive until a collection,
+    # and each new chunk took fresh memory)
+    probes = []
+
+    def consumer(ch):
+        assert all(probe() is None for probe in probes[:-1])  # every chunk before the one just done with
+        probes.append(weakref.ref(ch.marginal_pd["base"]))
+        ch.marginal_pd["weighted"]  # mixed when read
+
+    gc.disable()
+    try:
+        project_loans(
+            _loans(), _model(_spec()), _paths(), as_of_idx=AS_OF, weights=WEIGHTS, collateral=COLLATERAL, chunk_size=4,
+            on_chunk=consumer, workers=1,
+        )  # fmt: skip
+    finally:
+        gc.enable()
+    assert len(probes) == 10

@@ -7,6 +7,7 @@ from ._projection import (
     ChunkProjection,
     Curves,
     MacroLookup,
+    MixedCurves,
     ProjectionResult,
     SegmentSums,
     TableWriter,
@@ -41,7 +42,7 @@ from ._scenarios import (
 )
 
 __all__ = [
-    "CHUNK_SIZE", "ChainResult", "chain_of_moves", "markov_chain", "origination_path", "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "ProjectionResult", "SegmentSums", "TableWriter", "check_coverage",
+    "CHUNK_SIZE", "ChainResult", "chain_of_moves", "markov_chain", "origination_path", "WEIGHTED", "ChunkProjection", "Curves", "MacroLookup", "MixedCurves", "ProjectionResult", "SegmentSums", "TableWriter", "check_coverage",
     "extend_path", "extend_paths", "load_scenario_paths", "loan_list_text", "origination_pd", "panel_history_columns", "panel_history_name", "prepare_paths", "with_panel_history", "project_loans", "remaining_term",
     "repeat_ids", "scenario_column", "scenario_weights", "band_codes", "band_labels", "band_order", "sort_with_bands",
     "segment_level", "segment_pd_tables", "segment_speeds", "speeds_frames", "term_structure_frame",

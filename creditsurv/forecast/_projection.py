@@ -84,6 +84,7 @@ __all__ = [
     "CHUNK_SIZE",
     "remaining_term",
     "Curves",
+    "MixedCurves",
     "project_loans",
     "origination_pd",
     "ProjectionResult",
@@ -591,17 +592,8 @@ class Curves:
     @classmethod
     def weighted(cls, curves: Mapping[str, Curves], weights: Mapping[str, float]) -> Curves:
         """The probability-weighted curves sum_s w_s curve_s (linear in probabilities, IFRS 9 5.5.17)."""
-
-        def mix(field: str) -> np.ndarray:
-            out = None
-            for s, w in weights.items():
-                if out is None:
-                    out = w * getattr(curves[s], field)
-                else:
-                    out += w * getattr(curves[s], field)
-            return out
-
-        return cls(**{f.name: mix(f.name) for f in dataclasses.fields(cls)})
+        mixed = MixedCurves(curves, weights)
+        return cls(**{f.name: getattr(mixed, f.name) for f in dataclasses.fields(cls)})
 
     def hazards(self) -> tuple[np.ndarray, np.ndarray]:
         """The hazards these curves imply: marginal / S(u-1), 0 where S(u-1) is 0."""
@@ -609,6 +601,67 @@ class Curves:
             hd = np.where(self.survival_prev > 0, self.marginal_default / self.survival_prev, 0.0)
             hp = np.where(self.survival_prev > 0, self.marginal_prepay / self.survival_prev, 0.0)
         return hd, hp
+
+    def columns(self, field: str, cols) -> np.ndarray:
+        """Columns ``cols`` of one curve (``field``: ``survival``, ``cum_default``, ...)."""
+        return getattr(self, field)[:, cols]
+
+
+class MixedCurves:
+    """The probability-weighted curves of a chunk (:meth:`Curves.weighted`), each mixed when first read.
+
+    The pooled sums read a few columns of them (:meth:`columns`: the same bits as those columns of the whole
+    curve), so a chunk that goes to no writer or consumer needing every month never mixes whole curves.
+    """
+
+    _FIELDS = tuple(f.name for f in dataclasses.fields(Curves))
+
+    def __init__(self, curves: Mapping[str, Curves], weights: Mapping[str, float]):
+        self._curves, self._weights, self._mixed = curves, dict(weights), {}
+
+    def _mix(self, field: str, cols=None) -> np.ndarray:
+        out = None
+        for s, w in self._weights.items():
+            values = getattr(self._curves[s], field)
+            if cols is not None:
+                values = values[:, cols]
+            if out is None:
+                out = w * values
+            else:
+                out += w * values
+        return out
+
+    def __getattr__(self, field: str) -> np.ndarray:
+        if field not in MixedCurves._FIELDS:
+            raise AttributeError(field)
+        if field not in self._mixed:
+            self._mixed[field] = self._mix(field)
+        return self._mixed[field]
+
+    def columns(self, field: str, cols) -> np.ndarray:
+        """Columns ``cols`` of one weighted curve: mixed from the scenarios' columns unless it is mixed already."""
+        if field in self._mixed:
+            return self._mixed[field][:, cols]
+        return self._mix(field, cols)
+
+    hazards = Curves.hazards
+
+
+class CurveField(Mapping):
+    """One curve (``field``) of a chunk by scenario name, read from its curves when asked for (the weighted one
+    mixed then): the mappings of a :class:`ChunkProjection`."""
+
+    def __init__(self, curves: Mapping[str, Curves | MixedCurves], field: str):
+        self._curves, self._field = curves, field
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        return getattr(self._curves[name], self._field)
+
+    def __iter__(self):
+        return iter(self._curves)
+
+    def __len__(self) -> int:
+        return len(self._curves)
 
 
 # --------------------------------------------------------------------------- results
@@ -627,6 +680,8 @@ class ChunkProjection:
     maturity the probabilities stay where they were. ``None`` for a competing-risk source.
     ``h_default`` and ``h_prepay`` hold the weighted scenario's implied hazards only when the chunk goes to
     ``on_chunk`` or the curve writer (a ``prepare`` of a chunk that goes to neither sees the scenarios').
+    The curve mappings (``survival_prev`` ... ``marginal_pd``, :class:`CurveField`) read a scenario's curve
+    when asked for it; the weighted one is mixed then (:class:`MixedCurves`).
     """
 
     rows: slice | np.ndarray
@@ -1076,14 +1131,12 @@ class _SegmentPool:
         sp = {name: np.empty((K - 1, G, max_age + 1)) for name in self.sp}  # the scenarios' (weighted: see finish)
         out = {"summary": {}, "ts": ts, "sp": sp}
         for ki, s in enumerate(self.names):
-            c = curves[s]
-            s_prev, surv, F_d, F_p, marg_d, marg_p = (
-                c.survival_prev, c.survival, c.cum_default, c.cum_prepay, c.marginal_default, c.marginal_prepay
-            )
-            out["summary"][f"pd_12m_{s}"] = F_d[:, i12]
-            out["summary"][f"pd_lifetime_{s}"] = F_d[:, -1]
-            out["summary"][f"prepay_lifetime_{s}"] = F_p[:, -1]
-            Fy, Sy = F_d[:, yidx], surv[:, yidx]
+            c = curves[s]  # the columns the sums read (the weighted curves are mixed for those alone)
+            F_ends = c.columns("cum_default", [i12, H - 1])
+            out["summary"][f"pd_12m_{s}"] = F_ends[:, 0]
+            out["summary"][f"pd_lifetime_{s}"] = F_ends[:, 1]
+            out["summary"][f"prepay_lifetime_{s}"] = c.columns("cum_prepay", [H - 1])[:, 0]
+            Fy, Sy = c.columns("cum_default", yidx), c.columns("survival", yidx)
             Sy_prev = np.concatenate([np.ones((n, 1)), Sy[:, :-1]], axis=1)
             for tag, oh in (("n", onehot), ("b", onehot_b)):
                 np.matmul(oh, Fy, out=ts["F_" + tag][ki])
@@ -1093,6 +1146,7 @@ class _SegmentPool:
             ts["bal"][ki] = onehot_b.sum(axis=1)[:, None]
             if s != WEIGHTED:
                 hd, hp = haz[s]
+                s_prev, marg_d, marg_p = c.survival_prev, c.marginal_default, c.marginal_prepay
                 size = G * (max_age + 1)
                 for name, vals in (
                     ("dexp", s_prev * bal_start),
@@ -1351,7 +1405,8 @@ def _chunk_curves(chunk, scenarios, w, weighted_hazards: bool) -> dict:
     ``weighted_hazards``, the weighted hazards (the ones its curves imply) to ``chunk``."""
     haz, states = chunk[0], chunk[-1]
     curves = {s: Curves.from_hazards(*haz[s]) for s in scenarios}
-    curves[WEIGHTED] = Curves.weighted(curves, {s: w[s] for s in scenarios})
+    # each weighted curve mixed when first read (from a dict of their own: no cycle keeps the chunk's arrays alive)
+    curves[WEIGHTED] = MixedCurves(dict(curves), {s: w[s] for s in scenarios})
     if weighted_hazards:
         haz[WEIGHTED] = curves[WEIGHTED].hazards()
     if states is not None:  # state probabilities mix linearly over scenarios
@@ -1376,11 +1431,9 @@ def _chunk_results(book, sl, chunk, curves, scenarios, w, pooled, tables: tuple[
         balance_start=bal_start, balance_end=bal_end, note_rate=book.rate[sl],
         scenarios=scenarios, weights=w,
         h_default={s: h[0] for s, h in haz.items()}, h_prepay={s: h[1] for s, h in haz.items()},
-        survival_prev={s: curves[s].survival_prev for s in names},
-        survival={s: curves[s].survival for s in names},
-        cum_default={s: curves[s].cum_default for s in names},
-        cum_prepay={s: curves[s].cum_prepay for s in names},
-        marginal_pd={s: curves[s].marginal_default for s in names},
+        survival_prev=CurveField(curves, "survival_prev"), survival=CurveField(curves, "survival"),
+        cum_default=CurveField(curves, "cum_default"), cum_prepay=CurveField(curves, "cum_prepay"),
+        marginal_pd=CurveField(curves, "marginal_default"),
         arrears_states=states,
     )  # fmt: skip
     if prepare is not None:
