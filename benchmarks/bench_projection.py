@@ -7,7 +7,7 @@ model fitted once on the development window as a competing-risk multinomial
 logit (``--model multinomial``, the default) or as the demo's multi-state model
 (``--model multi_state``). Each route runs in its own subprocess so that its
 peak memory is its own: the proportional set size of that process and its
-worker processes together, sampled (``_PeakMemory``), beside an upper bound
+worker processes together, sampled (``PeakMemory``), beside an upper bound
 from the largest resident sets:
 
 ``ecl``         ``expected_credit_loss``: projection, staging (with the PD at
@@ -40,11 +40,12 @@ from __future__ import annotations
 
 import argparse
 import json
-import resource
 import subprocess
 import sys
 import time
 from pathlib import Path
+
+from peak_memory import PeakMemory
 
 ROOT = Path(__file__).resolve().parents[1]
 DATA = ROOT / "benchmarks" / "_data"
@@ -85,61 +86,11 @@ def _demo(kind: str = "multinomial"):
     return cfg, book, paths, model
 
 
-class _PeakMemory:
-    """The peak of this process and its worker processes together, sampled every 200 ms.
+def _workers() -> int:
+    """The worker processes the projection forks (one per core this process may use)."""
+    from creditsurv.forecast import worker_count
 
-    Each process's proportional set size (``Pss`` of ``/proc/PID/smaps_rollup``): a page shared by k
-    processes counts 1/k to each, so the book a worker shares copy-on-write with its parent is counted
-    once. A sample can miss a spike shorter than its interval, so :meth:`stop` also gives an upper
-    bound that cannot: the largest resident set of this process (``ru_maxrss``) plus that of the
-    largest worker (``RUSAGE_CHILDREN``) times the workers, which counts every shared page again.
-    """
-
-    def __init__(self):
-        import threading
-
-        self.peak_kib = 0
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._sample, daemon=True)
-        self._thread.start()
-
-    @staticmethod
-    def _tree(pid: int) -> list[int]:
-        pids = [pid]
-        for task in Path(f"/proc/{pid}/task").glob("*"):
-            try:
-                children = (task / "children").read_text().split()
-            except OSError:
-                continue
-            for child in children:
-                pids += _PeakMemory._tree(int(child))
-        return pids
-
-    @staticmethod
-    def _pss_kib(pid: int) -> int:
-        try:
-            for line in Path(f"/proc/{pid}/smaps_rollup").read_text().splitlines():
-                if line.startswith("Pss:"):
-                    return int(line.split()[1])
-        except OSError:
-            pass
-        return 0
-
-    def _sample(self) -> None:
-        import os
-
-        while not self._stop.wait(0.2):
-            self.peak_kib = max(self.peak_kib, sum(self._pss_kib(p) for p in self._tree(os.getpid())))
-
-    def stop(self) -> dict:
-        from creditsurv.forecast import worker_count
-        from creditsurv.model import can_fork
-
-        self._stop.set()
-        self._thread.join()
-        main = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-        worker = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024 if can_fork() else 0.0
-        return {"peak_mib": self.peak_kib / 1024, "bound_mib": main + worker_count(None) * worker, "main_rss_mib": main}
+    return worker_count(None)
 
 
 def _replicate(book, n: int):
@@ -265,7 +216,7 @@ def main() -> None:
     ap.add_argument("--n", type=int)
     args = ap.parse_args()
     if args.child:
-        memory = _PeakMemory()
+        memory = PeakMemory(_workers())
         result = route(args.child, args.n, args.model)
         print(json.dumps(result | memory.stop()))
         return

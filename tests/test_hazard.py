@@ -27,7 +27,9 @@ from creditsurv.errors import (
     SingularDesignError,
 )
 from creditsurv.model import (
+    FIT_GROUP_BLOCKS,
     HazardResults,
+    can_fork,
     feature_spec,
     fit_hazard,
     fit_model,
@@ -289,21 +291,29 @@ def test_refit_is_identical_and_inputs_untouched(small_con):
 
 
 def test_threads_and_batch_size_leave_the_saved_model_byte_identical(small_con, tmp_path):
-    # Blocks of 500 rows, so that the sums of several blocks are computed in parallel and added.
+    # Blocks of 150 rows, so that the sums of several blocks are computed in parallel and added: 69 blocks in
+    # groups of FIT_GROUP_BLOCKS, enough for two worker processes where the platform can fork.
+    import resource
+
     spec = _spec(small_con, *MIXED, baseline=_spline(), interactions=(("score", "region"), ("score", "ltv")))
     X, names, y = _design(small_con, spec)
     threads = small_con.execute("SELECT current_setting('threads')").fetchone()[0]
-    saved = {}
+    saved, children_cpu = {}, {}
     try:
         for n_threads, batch_size in ((1, 250_000), (2, 250_000), (2, 333)):
             small_con.execute(f"SET threads = {n_threads}")
-            res = fit_hazard(on_connection(small_con), spec, batch_size=batch_size, block_rows=500)
+            before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_utime
+            res = fit_hazard(on_connection(small_con), spec, batch_size=batch_size, block_rows=150)
+            children_cpu[n_threads, batch_size] = resource.getrusage(resource.RUSAGE_CHILDREN).ru_utime - before
             saved[n_threads, batch_size] = res.save(tmp_path / f"model-{n_threads}-{batch_size}.json").read_bytes()
     finally:
         small_con.execute(f"SET threads = {threads}")
-    assert res.n_stored_rows == len(y) > 4 * 500
+    assert res.n_stored_rows == len(y) > 2 * 2 * FIT_GROUP_BLOCKS * 150
     # The same bytes with one thread or two, and with any batch size (what `creditsurv reproduce` compares).
     assert saved[1, 250_000] == saved[2, 250_000] == saved[2, 333]
+    assert children_cpu[1, 250_000] == 0
+    if can_fork():  # the Newton passes of the two-thread fits ran in worker processes
+        assert children_cpu[2, 250_000] > 0 and children_cpu[2, 333] > 0
     # Reference: statsmodels MNLogit (Newton) on the full in-memory design.
     ref = sm.MNLogit(y, X).fit(method="newton", maxiter=100, tol=1e-12, disp=0)
     np.testing.assert_allclose(res.params.to_numpy(), ref.params, rtol=1e-6)

@@ -36,7 +36,7 @@ import numpy as np
 from ..errors import DataError, ModelError
 
 __all__ = [
-    "FIT_BLOCK_ROWS", "KERNEL_ROWS", "MAX_CELLS", "N_CODES", "CellBlock", "CellDesign", "FirstPass", "FirstSums", "PassSums",
+    "FIT_BLOCK_ROWS", "FIT_GROUP_BLOCKS", "KERNEL_ROWS", "MAX_CELLS", "N_CODES", "CellBlock", "CellDesign", "FirstPass", "FirstSums", "PassSums",
     "block_first_sums", "block_sums", "cell_design", "fit_fingerprint",
 ]  # fmt: skip
 
@@ -46,6 +46,11 @@ N_CODES = 16
 FIT_BLOCK_ROWS = 65_536
 """Rows per block of the fit's sums: the blocks are summed in order, so the results depend on this
 number but not on the batch size of the reads or on the number of threads."""
+
+FIT_GROUP_BLOCKS = 4
+"""Blocks whose Newton-pass sums are added together before they join the pass's total: a worker process
+sends back a group's sums once (a block's sums by cell are about two megabytes), and the threads add the
+same groups the same way, so the results depend on this number but not on the threads or processes."""
 
 KERNEL_ROWS = 8_192
 """Rows the kernels take at a time within a block: their temporaries (a few dozen float64 a row) then stay

@@ -24,11 +24,11 @@ from concurrent.futures import ThreadPoolExecutor
 
 from threadpoolctl import threadpool_limits
 
-__all__ = ["can_fork", "chunk_map", "ordered_map"]
+__all__ = ["ProcessPool", "can_fork", "chunk_map", "ordered_map"]
 
-_TASKS: dict[int, tuple] = {}
-"""The work of each running :func:`chunk_map`, by number: a forked worker finds it here (it was copied
-with the process), so only an item's number crosses to the worker."""
+_TASKS: dict[int, object] = {}
+"""The function of each :class:`ProcessPool`, by number: a forked worker finds it here (it was copied with
+the process), so only the pool's number crosses to the worker with each item."""
 _numbers = itertools.count()
 
 
@@ -45,24 +45,55 @@ def chunk_map(fn, items, workers: int, *, processes: bool):
     if not (processes and workers > 1 and len(items) >= 2 * workers and can_fork()):
         yield from ordered_map(fn, items, workers)
         return
-    number = next(_numbers)
-    _TASKS[number] = (fn, items)
-    try:
-        # The workers run NumPy on arrays they inherited and never touch the parent's other threads' state
-        # (DuckDB's and Arrow's pools sit idle), which is the hazard Python's fork warning is about.
-        with warnings.catch_warnings():
-            warnings.filterwarnings("ignore", message=r".*fork\(\) may lead to deadlocks", category=DeprecationWarning)
-            pool = multiprocessing.get_context("fork").Pool(workers, initializer=_start_worker)
-        with pool:
-            waiting: deque = deque()  # at most two items a worker in flight, which bounds the memory
-            for i in range(len(items)):
-                waiting.append(pool.apply_async(_run, ((number, i),)))
-                if len(waiting) >= 2 * workers:
-                    yield waiting.popleft().get()
-            while waiting:
+    with ProcessPool(fn, workers) as pool:
+        yield from pool.map(items)
+
+
+class ProcessPool:
+    """``workers`` processes forked from this one, that compute ``fn(item, *args)`` for the items of each
+    :meth:`map`, yielded in the items' order.
+
+    ``fn`` and what it reads are copied with the processes when they are forked, here; each item and the
+    call's ``args`` are sent to a worker, and its result back. So one pool serves many calls over the
+    same data (a fit's Newton passes over its stored blocks, with each pass's coefficients as ``args``),
+    and each worker keeps its memory from call to call. At most two items a worker are in flight, which
+    bounds the memory. Use it as a context manager: leaving stops the workers.
+    """
+
+    def __init__(self, fn, workers: int):
+        self.workers = workers
+        self._number = next(_numbers)
+        _TASKS[self._number] = fn
+        try:
+            # The workers run NumPy on arrays they inherited and never touch the parent's other threads' state
+            # (DuckDB's and Arrow's pools sit idle), which is the hazard Python's fork warning is about.
+            with warnings.catch_warnings():
+                warnings.filterwarnings("ignore", message=r".*fork\(\) may lead to deadlocks", category=DeprecationWarning)
+                self._pool = multiprocessing.get_context("fork").Pool(workers, initializer=_start_worker)
+        except BaseException:
+            del _TASKS[self._number]
+            raise
+
+    def map(self, items, *args):
+        waiting: deque = deque()
+        for item in items:
+            waiting.append(self._pool.apply_async(_call, (self._number, item, args)))
+            if len(waiting) >= 2 * self.workers:
                 yield waiting.popleft().get()
-    finally:
-        del _TASKS[number]
+        while waiting:
+            yield waiting.popleft().get()
+
+    def close(self) -> None:
+        """Stop the workers (any item still in flight is dropped)."""
+        self._pool.terminate()
+        self._pool.join()
+        _TASKS.pop(self._number, None)
+
+    def __enter__(self) -> ProcessPool:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
 
 
 def ordered_map(fn, items, threads: int):
@@ -112,6 +143,5 @@ def _keep_freed_memory() -> None:
     libc.mallopt(m_trim_threshold, 256 * 2**20)
 
 
-def _run(task: tuple[int, int]):
-    fn, items = _TASKS[task[0]]
-    return fn(items[task[1]])
+def _call(number: int, item, args: tuple):
+    return _TASKS[number](item, *args)
