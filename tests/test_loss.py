@@ -26,6 +26,8 @@ from creditsurv.loss import (
     discount_factors,
     expected_credit_loss,
     exposure_at_default,
+    lgd_of_recovery,
+    loss_at_default,
 )
 from creditsurv.model import HazardTable
 from creditsurv.months import parse_month
@@ -710,3 +712,18 @@ def test_partitions_combined_from_their_sums_equal_the_whole_book():
         pd.testing.assert_frame_equal(
             getattr(combined.projection, name), getattr(whole.projection, name), check_exact=False, rtol=1e-10, atol=1e-15
         )
+
+
+@pytest.mark.parametrize("floor", [0.0, 0.1])
+def test_the_loss_at_default_is_the_clipped_lgd_times_the_ead(floor):
+    # The chunks compute the loss at default without a division, clip(EAD - PV, floor x EAD, EAD); by hand it is
+    # EAD x clip(1 - PV / EAD, floor, 1), the collateral LGD of the README (recovery shortfall, floored, at most
+    # the whole exposure). Equal up to rounding, and exactly at the clips and at EAD = 0.
+    rng = np.random.default_rng(11)
+    ead = np.r_[rng.uniform(1e3, 5e5, 2000), 0.0, 1e5, 1e5]
+    pv = np.r_[ead[:2000] * rng.uniform(0.0, 1.6, 2000), 5e4, 2e5, 0.0]  # shortfalls, recoveries above the EAD
+    by_hand = ead * lgd_of_recovery(ead, pv, floor)
+    np.testing.assert_allclose(loss_at_default(ead, pv, floor), by_hand, rtol=1e-13, atol=0)
+    assert loss_at_default(ead, pv, floor)[2000] == 0.0  # no exposure, no loss
+    assert loss_at_default(ead, pv, floor)[2001] == floor * 1e5  # the recovery covers the EAD: the floor
+    assert loss_at_default(ead, pv, floor)[2002] == 1e5  # nothing recovered: the whole EAD

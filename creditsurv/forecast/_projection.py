@@ -143,11 +143,15 @@ class MacroLookup:
         vals = self._values[series][months[inside] - self.start]
         return sorted(bad + months[inside][np.isnan(vals)].tolist())
 
+    def _positions(self, months) -> np.ndarray:
+        """Rows of the dense arrays for month indices ``months``, a new array (held inside the table: the months
+        were checked beforehand, and a position outside would only read a value the check refused)."""
+        pos = np.asarray(months, dtype=np.int64) - self.start
+        return np.clip(pos, 0, max(self.stop - self.start - 1, 0), out=pos)
+
     def get(self, series: str, months) -> np.ndarray:
         """Values of ``series`` at month indices ``months`` (any shape; checked beforehand)."""
-        pos = np.asarray(months, dtype=np.int64) - self.start
-        np.clip(pos, 0, max(self.stop - self.start - 1, 0), out=pos)
-        return self._values[series].take(pos)
+        return self._values[series].take(self._positions(months))
 
     def get_by_row(self, series, codes: np.ndarray, months: np.ndarray) -> np.ndarray:
         """Values at ``months`` (n, ...) of the series ``series[codes[i]]`` for row i: one series per row (a region's
@@ -156,8 +160,7 @@ class MacroLookup:
         table = self._tables.get(key)
         if table is None:
             table = self._tables[key] = np.stack([self._values[name] for name in series])
-        pos = np.asarray(months, dtype=np.int64) - self.start
-        np.clip(pos, 0, max(self.stop - self.start - 1, 0), out=pos)
+        pos = self._positions(months)
         # one gather from the stacked table (a row per series, a column per month) at flat positions: twice as
         # fast as indexing it with two index arrays
         pos += (np.asarray(codes, dtype=np.int64) * table.shape[1]).reshape((-1,) + (1,) * (pos.ndim - 1))
