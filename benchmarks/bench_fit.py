@@ -123,9 +123,11 @@ def ensure_risk_set(book: Path) -> Path:
 # ------------------------------------------------------------------ routes (run in subprocesses)
 
 
-def _scratch_bytes() -> int:
-    """Bytes of the fit's temporary files (its folders under ``benchmarks/_data``)."""
-    return sum(f.stat().st_size for f in DATA.glob("creditsurv-fit-*/**/*") if f.is_file())
+def _scratch_bytes(before: set) -> int:
+    """Bytes of the fit's temporary files: its folders under ``benchmarks/_data``, those not in ``before`` (a
+    folder left by a fit that was killed would count otherwise)."""
+    folders = [d for d in DATA.glob("creditsurv-fit-*") if d not in before]
+    return sum(f.stat().st_size for d in folders for f in d.glob("**/*") if f.is_file())
 
 
 def route_creditsurv(book: Path, kind: str) -> dict:
@@ -142,10 +144,11 @@ def route_creditsurv(book: Path, kind: str) -> dict:
         Newton pass (one per iteration, plus any step-halving passes) by wrapping the engine's methods."""
 
         def wrapped(*args, **kwargs):
+            before = set(DATA.glob("creditsurv-fit-*"))
             marks["first_start"] = time.perf_counter()
             sums = design_sums(*args, **kwargs)
             marks["first_end"] = time.perf_counter()
-            marks["scratch_bytes"] = _scratch_bytes()
+            marks["scratch_bytes"] = _scratch_bytes(before)
             evaluate = sums.evaluate
 
             def timed(*a, **k):

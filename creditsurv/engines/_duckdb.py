@@ -361,8 +361,9 @@ class DuckdbEngine:
         """Keep the fit's rows in their cell form in temporary Parquet files and sum over them block by block.
 
         The rows are cut into fixed blocks of ``block_rows`` (whatever the batches of the read), one
-        file each; the first pass and every Newton pass compute the blocks in as many threads as DuckDB
-        has (``duckdb.threads``) and add their sums in block order. Memory is bounded by a few blocks.
+        file each; the first pass computes the blocks in as many threads as DuckDB has
+        (``duckdb.threads``) and adds their sums in block order; the Newton passes take them in groups
+        (:meth:`_CellSums.evaluate`). Memory is bounded by a few blocks.
         """
         design = cell_design(spec)
         threads = int(self.con.execute("SELECT current_setting('threads')").fetchall()[0][0])

@@ -3,12 +3,15 @@
 The fit's blocks of rows and the projection's chunks of loans are pure functions of data this
 process holds, so they can run anywhere; their results are taken in the items' order, so every
 sum is the same bits whatever ran it (:func:`ordered_map` in threads, :func:`chunk_map` in
-threads or processes). Threads suit a piece whose whole result must come back (the projection's
+threads or processes, :class:`ProcessPool` in processes kept for many calls: the fit's Newton
+passes). Threads suit a piece whose whole result must come back (the projection's
 writers and ``on_chunk`` consumers) or whose input arrives as it is read (the fit's first pass);
 but much of a piece's time goes to NumPy calls that keep the interpreter lock (``cumsum``,
 ``cumprod``, ``bincount``, many small elementwise passes), so two threads barely beat one.
 Processes do scale: a worker forked from this process shares its arrays and files copy-on-write,
 computes its pieces, and sends back only what a piece reduces to (pooled sums, per-loan values).
+Pieces whose sums are large (by cell, by segment and age) are grouped so that a worker sends a
+group's sums once; every route adds the same groups the same way.
 """
 
 from __future__ import annotations
