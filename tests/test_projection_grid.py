@@ -173,6 +173,18 @@ def test_terms_at_their_grains_equal_the_full_design_times_the_coefficients():
     X, _ = spec.design(cells)
     expected = (X @ beta).T.reshape(3, n, H)
     np.testing.assert_allclose(eta, expected, rtol=1e-12, atol=1e-13)
+    # an input given as a loan part plus a month part (the note rate less the market rate): its term evaluated
+    # per loan and per month when it is affine in it (the incentive; the standardised score_now), per cell
+    # when not (LTV: floor and cap, and an interaction with the score)
+    parts = {
+        "rate_incentive": (rng.uniform(2, 7, n), -rng.uniform(3, 6, H)),
+        "current_ltv": (rng.uniform(0.0, 1.5, n), rng.uniform(-0.2, 0.8, H)),
+        "panel:score_now:2": (rng.uniform(600, 800, n), rng.uniform(-30, 30, H)),
+    }
+    split = dataclasses.replace(grid, cell={}, loan_plus_month=parts)
+    cells |= {k: (a[:, None] + b[None, :]).reshape(-1) for k, (a, b) in parts.items()}
+    X, _ = spec.design(cells)
+    np.testing.assert_allclose(spec.grid_predictors(beta, split), (X @ beta).T.reshape(3, n, H), rtol=1e-12, atol=1e-13)
 
 
 @pytest.mark.parametrize("kind", ["multinomial", "cause_specific"])

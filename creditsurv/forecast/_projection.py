@@ -457,8 +457,9 @@ def _grid_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names,
 
     Each input is held at the grain it varies at: static loan columns (and a panel input that is held
     from the first month) once per loan; macro series once per month when the chunk's loans share
-    their start month (always, here: the reporting month, or one origination month); current LTV, the
-    rate incentive and panel paths per loan and month. Cells past a loan's maturity get valid values
+    their start month (always, here: the reporting month, or one origination month); the rate incentive
+    then as the note rate (per loan) less the market rate (per month); current LTV and panel paths per
+    loan and month. Cells past a loan's maturity get valid values
     (its first month's) and zero hazards, as on the general route.
     """
     rem = book.remaining[sl]
@@ -493,23 +494,33 @@ def _grid_chunk(book: _Book, sl: slice, spec: _Spec, source, lookups, hpi_names,
 
     out, states = {}, {}
     for scen, lk in lookups.items():
-        grains = {"loan": loan, "month": {}, "cell": dict(cell)}
+        grains = {"loan": loan, "month": {}, "cell": dict(cell), "loan_plus_month": {}}
         for name, series, lag in spec.macro:
             g, values = macro(lk, series, lag)
             grains[g][name] = values
         if spec.ltv:
             codes = book.region_code[sl]
             orig = book.orig_idx[sl]
-            # the index as of the start of the month (spec.hpi_lag earlier), never before the valuation at origination
-            hpi_now = lk.get_by_row(hpi_names, codes, np.maximum(cal - spec.hpi_lag, orig[:, None]))
-            hpi_orig = lk.get_by_row(hpi_names, codes, orig)
-            value_now = book.value[sl][:, None] * hpi_now / hpi_orig[:, None]
-            ltv = bal_start / value_now
+            # balance / (value x index now / index at origination), the index as of the start of the month
+            # (spec.hpi_lag earlier) and never before the valuation at origination
+            per_point = lk.get_by_row(hpi_names, codes, orig) / book.value[sl]
+            if shared_start and (orig <= start[0] + 1 - spec.hpi_lag).all():
+                # no month reads before a valuation: each region's months once, a row of them per loan
+                regions = np.arange(len(hpi_names))
+                months = np.broadcast_to(int(start[0]) + u - spec.hpi_lag, (len(hpi_names), H))
+                hpi_now = lk.get_by_row(hpi_names, regions, months).take(codes, axis=0)
+            else:
+                hpi_now = lk.get_by_row(hpi_names, codes, np.maximum(cal - spec.hpi_lag, orig[:, None]))
+            ltv = bal_start * per_point[:, None]
+            ltv /= hpi_now
             np.copyto(ltv, ltv[:, :1], where=beyond)
             grains["cell"]["current_ltv"] = ltv
         if spec.incentive:
             g, market = macro(lk, market_rate, spec.rate_lag)
-            grains["cell"]["rate_incentive"] = 100.0 * rate[:, None] - (market[None, :] if g == "month" else market)
+            if g == "month":  # the note rate less the month's market rate: a loan part plus a month part
+                grains["loan_plus_month"]["rate_incentive"] = (100.0 * rate, -market)
+            else:
+                grains["cell"]["rate_incentive"] = 100.0 * rate[:, None] - market
         grid = InputGrid(ages=ages, **grains)
         if hasattr(source, "grid_transitions"):
             hd, hp, states[scen] = _grid_chain_hazards(source, grid, mask, book.state[sl])

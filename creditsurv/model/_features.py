@@ -928,6 +928,12 @@ class FeatureSpec:
         }
         size = {"age": table.shape[0], "loan": n, "month": H, "cell": n * H}
         index = ages - lo
+        in_interactions = {name for pair in self.interactions for name in pair}
+        for c in self.covariates:  # an input given as loan part + month part, its term not affine in it: per cell
+            key = input_key(c)
+            if key in grid.loan_plus_month and (c["name"] in in_interactions or _affine(c) is None):
+                loan_part, month_part = grid.loan_plus_month[key]
+                raw["cell"][key] = (np.asarray(loan_part, dtype=np.float64)[:, None] + month_part[None, :]).reshape(-1)
 
         def grain(key: str) -> str:
             if key in ("age", "log_age"):
@@ -935,7 +941,10 @@ class FeatureSpec:
             for g in ("loan", "month", "cell"):
                 if key in raw[g]:
                     return g
-            raise FeatureError(f"grid inputs lack {key!r} (have: {', '.join(sorted(k for g in raw.values() for k in g))})")
+            if key in grid.loan_plus_month:
+                return "loan_plus_month"
+            have = sorted({k for g in raw.values() for k in g} | set(grid.loan_plus_month))
+            raise FeatureError(f"grid inputs lack {key!r} (have: {', '.join(have)})")
 
         def per_cell(g: str, values: np.ndarray) -> np.ndarray:
             if g == "age":
@@ -946,14 +955,26 @@ class FeatureSpec:
                 return np.tile(values, (n, 1))
             return values
 
-        blocks = {g: ([], []) for g in size}  # grain -> (column indices, value blocks)
+        blocks = {g: ([], []) for g in size}  # grain -> (design column indices, value blocks)
         base = self.baseline_design(table)
         blocks["age"][0].extend(range(base.shape[1]))
         blocks["age"][1].append(base)
         col = base.shape[1]
         terms = {}
         for c in self.covariates:
-            g = grain(input_key(c))
+            key = input_key(c)
+            g = grain(key)
+            if g == "loan_plus_month":
+                # a term a x + b of an input x = loan part + month part: a x_loan + b per loan, a x_month per month
+                loan_part, month_part = grid.loan_plus_month[key]
+                scale = _affine(c)(lrn)
+                values = self._term_values(c, {key: loan_part}, n, lrn)
+                month_values = self._term_values({**c, "transform": "none"}, {key: month_part}, H, lrn) * scale
+                for part, vals in (("loan", values), ("month", month_values)):
+                    blocks[part][0].append(col)
+                    blocks[part][1].append(vals)
+                col += 1
+                continue
             values = self._term_values(c, raw[g], size[g], lrn)
             terms[c["name"]] = (g, values)
             blocks[g][0].extend(range(col, col + values.shape[1]))
@@ -997,14 +1018,31 @@ class InputGrid:
     ``ages`` (n, H) int is the loan age of each cell (the inputs ``age`` and ``log_age`` are read from it);
     ``loan`` holds the inputs constant over a loan's months, arrays (n,); ``month`` the inputs common to
     every loan of the block, arrays (H,) by month ahead; ``cell`` the inputs that vary by loan and month,
-    arrays (n, H). Every cell must hold a valid value, also cells past a loan's maturity (they are
-    evaluated, then left out by the caller).
+    arrays (n, H); ``loan_plus_month`` the inputs that are the sum of a loan part (n,) and a month part
+    (H,), as pairs (the rate incentive: the note rate less the month's market rate). A term affine in
+    such an input (numeric, standardised or not, no floor, cap or interaction) is evaluated per loan
+    and per month; any other, per cell. Every cell must hold a valid value, also cells past a loan's
+    maturity (they are evaluated, then left out by the caller).
     """
 
     ages: np.ndarray
     loan: Mapping[str, np.ndarray] = field(default_factory=dict)
     month: Mapping[str, np.ndarray] = field(default_factory=dict)
     cell: Mapping[str, np.ndarray] = field(default_factory=dict)
+    loan_plus_month: Mapping[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
+
+
+def _affine(c: dict):
+    """For a covariate whose term is a x + b in its input x (numeric, no floor or cap, no log): a function of the
+    learned constants giving ``a``; else None."""
+    if c.get("kind", "numeric") != "numeric" or c.get("floor") is not None or c.get("cap") is not None:
+        return None
+    transform = c.get("transform", "none")
+    if transform == "none":
+        return lambda lrn: 1.0
+    if transform == "standardise":
+        return lambda lrn: 1.0 / lrn["covariates"][c["name"]]["sd"]
+    return None
 
 
 def _example_loans(con, body: str, params, condition: str, limit: int = 5) -> str:
