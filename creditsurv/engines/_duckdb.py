@@ -68,9 +68,9 @@ from ..model import (
     ProcessPool,
     block_first_sums,
     block_sums,
-    can_fork,
     cell_design,
     ordered_map,
+    worth_forking,
 )
 from ..processes import process_running
 from ..sql import month_index_sql, quote_ident
@@ -744,6 +744,17 @@ class _CellStore:
         shutil.rmtree(self.dir, ignore_errors=True)
 
 
+def _added_in_order(parts):
+    """The first of ``parts`` with the others added to it with ``+=``, in their order (sums with a fixed order)."""
+    total = None
+    for part in parts:
+        if total is None:
+            total = part
+        else:
+            total += part
+    return total
+
+
 class _CellSums:
     """The engine's :class:`~creditsurv.engines.DesignSums`: the stored blocks and their first pass."""
 
@@ -763,30 +774,18 @@ class _CellSums:
         eta_cell = self.design.prepare(beta)
         blocks = self.store.blocks
         groups = [blocks[i : i + FIT_GROUP_BLOCKS] for i in range(0, len(blocks), FIT_GROUP_BLOCKS)]
-        if self._pool is None and self._threads > 1 and len(groups) >= 2 * self._threads and can_fork():
+        if self._pool is None and worth_forking(len(groups), self._threads):
             self._pool = ProcessPool(self._group_sums, self._threads)
         if self._pool is not None:
             parts = self._pool.map(groups, eta_cell, beta, need_hess)
         else:
             parts = ordered_map(lambda group: self._group_sums(group, eta_cell, beta, need_hess), groups, self._threads)
-        total = None
-        for part in parts:
-            if total is None:
-                total = part
-            else:
-                total += part
-        return self.design.finish(total, beta.shape[0], need_hess)
+        return self.design.finish(_added_in_order(parts), beta.shape[0], need_hess)
 
     def _group_sums(self, group, eta_cell, beta, need_hess):
         """The sums of a group of stored blocks, added in block order."""
-        total = None
-        for i in group:
-            part = block_sums(self.design, self.store.read(i), eta_cell, beta, self._codes, self._kind, need_hess)
-            if total is None:
-                total = part
-            else:
-                total += part
-        return total
+        design, read = self.design, self.store.read
+        return _added_in_order(block_sums(design, read(i), eta_cell, beta, self._codes, self._kind, need_hess) for i in group)
 
     def close(self) -> None:
         if self._pool is not None:

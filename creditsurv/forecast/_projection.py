@@ -65,7 +65,6 @@ from ..data import PREVIOUSLY_DEFAULTED
 from ..errors import ConfigError, ModelError, ProjectionError, problem_list
 from ..model import (
     InputGrid,
-    can_fork,
     chunk_map,
     equivalent_psa,
     equivalent_sda,
@@ -75,6 +74,7 @@ from ..model import (
     parse_panel_key,
     scheduled_balance,
     smm_to_cpr,
+    worth_forking,
 )
 from ..months import month_ranges
 from ._chain import chain_of_moves, markov_chain
@@ -1330,7 +1330,7 @@ def project_loans(
     chunks = chunk_rows(book.remaining, chunk_size, keep_order or any(tables))
     blocks = [chunks[i : i + SUM_BLOCK] for i in range(0, len(chunks), SUM_BLOCK)]
     n_workers = worker_count(workers)
-    if processes and not any(tables) and on_chunk is None and len(blocks) >= 2 * n_workers and can_fork():
+    if processes and not any(tables) and on_chunk is None and worth_forking(len(blocks), n_workers):
         for block, (parts, total) in zip(blocks, chunk_map(_block_of(work), blocks, n_workers, processes=True)):
             for rows, results in zip(block, parts):
                 _take_chunk(rows, results, pooled, None, None, None, on_prepared)

@@ -72,13 +72,13 @@ from ._speeds import (
     smm_to_cpr,
     speeds_to_hazards,
 )
-from ._workers import ProcessPool, can_fork, chunk_map, ordered_map
+from ._workers import ProcessPool, can_fork, chunk_map, ordered_map, worth_forking
 
 __all__ = [
     "DESIGNS", "MULTI_STATE_FORMAT", "MultiStateResults", "N_CODES", "fit_multi_state", "fit_outcomes", "read_model_file", "results_from_dict",
     "state_codes", "BenchmarkCurves", "CAUSES", "TRUST_LIMITS", "FeatureSpec", "InputGrid", "HazardSource", "FirstPass", "block_first_sums", "block_sums", "check_fit_arguments",
     "development_window", "fit_fingerprint", "fit_from_sums", "hazard_source", "hpi_series_name", "with_age_tail", "macro_key", "panel_key", "parse_macro_key", "parse_panel_key", "scheduled_balance", "scheduled_balance_sql", "raw_design_sql", "resolve_collapse", "HazardResults", "HazardTable", "RawInput",
     "cdr_to_mdr", "cpr_to_smm", "equivalent_psa", "equivalent_sda", "feature_spec", "fit_hazard", "fit_model",
-    "CellBlock", "CellDesign", "FIT_BLOCK_ROWS", "FirstSums", "PassSums", "cell_design", "ordered_map", "can_fork", "chunk_map", "ProcessPool", "FIT_GROUP_BLOCKS",
+    "CellBlock", "CellDesign", "FIT_BLOCK_ROWS", "FirstSums", "PassSums", "cell_design", "ordered_map", "can_fork", "chunk_map", "ProcessPool", "FIT_GROUP_BLOCKS", "worth_forking",
     "load_model", "loosened_limits", "mdr_to_cdr", "natural_spline_basis", "psa_cpr", "sda_cdr", "smm_to_cpr", "speeds_to_hazards",
 ]  # fmt: skip

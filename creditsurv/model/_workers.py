@@ -27,7 +27,7 @@ from concurrent.futures import ThreadPoolExecutor
 
 from threadpoolctl import threadpool_limits
 
-__all__ = ["ProcessPool", "can_fork", "chunk_map", "ordered_map"]
+__all__ = ["ProcessPool", "can_fork", "chunk_map", "ordered_map", "worth_forking"]
 
 _TASKS: dict[int, object] = {}
 """The function of each :class:`ProcessPool`, by number: a forked worker finds it here (it was copied with
@@ -41,11 +41,17 @@ def can_fork() -> bool:
     return sys.platform.startswith("linux") and "fork" in multiprocessing.get_all_start_methods()
 
 
+def worth_forking(n_items: int, workers: int) -> bool:
+    """Whether ``n_items`` pieces of work go to ``workers`` forked processes: more than one worker, at least two
+    pieces each (fewer would leave a worker idle for a fork's cost), and a platform that can fork."""
+    return workers > 1 and n_items >= 2 * workers and can_fork()
+
+
 def chunk_map(fn, items, workers: int, *, processes: bool):
-    """``fn`` of each item, yielded in the items' order: in ``workers`` forked processes when ``processes`` (and
-    the platform can fork, and there are at least two items per worker), else in threads (:func:`ordered_map`)."""
+    """``fn`` of each item, yielded in the items' order: in ``workers`` forked processes when ``processes`` and
+    :func:`worth_forking`, else in threads (:func:`ordered_map`)."""
     items = list(items)
-    if not (processes and workers > 1 and len(items) >= 2 * workers and can_fork()):
+    if not (processes and worth_forking(len(items), workers)):
         yield from ordered_map(fn, items, workers)
         return
     with ProcessPool(fn, workers) as pool:
